@@ -1,0 +1,30 @@
+# Everything a fresh clone needs: `make demo` and `make test` create .venv and install first.
+PYTHON ?= python3
+VENV   := .venv
+PY     := $(VENV)/bin/python
+STAMP  := $(VENV)/.installed
+
+.PHONY: demo test test-fast bench install clean
+
+$(STAMP): pyproject.toml
+	@test -x $(PY) || $(PYTHON) -m venv $(VENV)
+	$(PY) -m pip install --quiet --upgrade pip
+	$(PY) -m pip install --quiet -e '.[test]'
+	@touch $(STAMP)
+
+install: $(STAMP)
+
+demo: $(STAMP)
+	$(VENV)/bin/ldpt demo --dir demo_out
+
+test: $(STAMP)
+	$(PY) -m pytest -q
+
+test-fast: $(STAMP)
+	$(PY) -m pytest -q -m "not slow"
+
+bench: $(STAMP)
+	$(PY) benchmarks/bench_privatize.py
+
+clean:
+	rm -rf $(VENV) demo_out .pytest_cache build dist *.egg-info

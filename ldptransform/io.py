@@ -1,0 +1,317 @@
+"""Streaming readers and writers, and atomic replacement of files.
+
+Readers yield Arrow record batches of exactly ``batch_rows`` rows (the last may be
+shorter), whatever the file's own blocks or row groups, so that memory stays flat.
+Writers write beside the destination under a hidden ``.NAME.ldpt-partial-PID-XXXX``
+name and rename on success; an interrupted run leaves nothing at the destination (a
+partial file from a killed run is removed by the next run on the same destination).
+Parquet output is written in fixed row groups, so its bytes do not depend on the batch
+size either.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import os
+import re
+import secrets
+import signal
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import pyarrow as pa
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+
+from .errors import DataError, InputFileError, OutputExistsError, UsageError
+
+FORMATS = {".csv": "csv", ".parquet": "parquet", ".pq": "parquet"}
+ROW_GROUP_ROWS = 131072
+CSV_BLOCK_BYTES = 1 << 22
+_PARTIAL = re.compile(r"^\.(?P<name>.+)\.ldpt-partial-(?P<pid>\d+)-[0-9a-f]{8}$")
+
+
+def file_format(path: Path, role: str) -> str:
+    fmt = FORMATS.get(Path(path).suffix.lower())
+    if fmt is None:
+        raise UsageError(f"{role} {path}: the file name must end in .csv or .parquet (the format is chosen by "
+                         "extension).")
+    return fmt
+
+
+# -- reading ------------------------------------------------------------------------------
+
+class TableSource:
+    """A CSV or Parquet file read as a stream of record batches."""
+
+    def __init__(self, path: Path | str, *, csv_null_values: list[str] | None = None,
+                 csv_delimiter: str = ",", string_columns: bool = True) -> None:
+        self.path = Path(path)
+        self.format = file_format(self.path, "input")
+        self._nulls = csv_null_values if csv_null_values is not None else [""]
+        self._delim = csv_delimiter
+        if not self.path.exists():
+            raise InputFileError(f"input file {self.path} does not exist. Check the path.")
+        if not self.path.is_file():
+            raise InputFileError(f"input {self.path} is not a file. (A folder of Parquet parts is not yet read by "
+                                 "this command; give one file.)")
+        if not os.access(self.path, os.R_OK):
+            raise InputFileError(f"input file {self.path} is not readable by this user. Check its permissions.")
+        self.size_bytes = self.path.stat().st_size
+        self.num_rows: int | None = None
+        try:
+            if self.format == "parquet":
+                self._pf = pq.ParquetFile(self.path)
+                self.schema = self._pf.schema_arrow
+                self.num_rows = self._pf.metadata.num_rows
+            else:
+                with self._open_csv(None, {}) as reader:
+                    self.schema = reader.schema
+        except (pa.ArrowInvalid, pa.ArrowIOError, OSError) as err:
+            raise InputFileError(f"input file {self.path} cannot be read as {self.format.upper()}: "
+                                 f"{_clean_arrow_message(err)}. Check that the file is complete and really "
+                                 f"is {self.format.upper()}.") from None
+        names = self.schema.names
+        dups = sorted({n for n in names if names.count(n) > 1})
+        if dups:
+            raise DataError(f"input file {self.path} has duplicate column names: {', '.join(map(repr, dups))}. "
+                            "Rename them so each column has one name.")
+
+    @property
+    def column_names(self) -> list[str]:
+        return list(self.schema.names)
+
+    def _open_csv(self, columns: list[str] | None, types: dict[str, pa.DataType]) -> Any:
+        read = pacsv.ReadOptions(block_size=CSV_BLOCK_BYTES, use_threads=True)
+        parse = pacsv.ParseOptions(delimiter=self._delim, newlines_in_values=False)
+        conv = pacsv.ConvertOptions(include_columns=columns, column_types=types, null_values=self._nulls,
+                                    strings_can_be_null=True, quoted_strings_can_be_null=True)
+        return contextlib.closing(pacsv.open_csv(self.path, read_options=read, parse_options=parse,
+                                                 convert_options=conv))
+
+    def batches(self, columns: list[str], batch_rows: int,
+                csv_types: dict[str, pa.DataType] | None = None) -> Iterator[pa.RecordBatch]:
+        """Batches of exactly ``batch_rows`` rows (last may be shorter), only ``columns``.
+
+        CSV columns are read as text unless ``csv_types`` names another type for them.
+        """
+        if batch_rows < 1:
+            raise UsageError("--batch-rows must be a positive number of rows")
+        return _rebatch(self._raw_batches(columns, batch_rows, csv_types or {}), batch_rows)
+
+    def _raw_batches(self, columns: list[str], batch_rows: int,
+                     csv_types: dict[str, pa.DataType]) -> Iterator[pa.RecordBatch]:
+        rows_done = 0
+        try:
+            if self.format == "parquet":
+                for b in self._pf.iter_batches(batch_size=batch_rows, columns=columns, use_threads=True):
+                    rows_done += b.num_rows
+                    yield b
+            else:
+                types = {c: csv_types.get(c, pa.string()) for c in columns}
+                with self._open_csv(columns, types) as reader:
+                    for b in reader:
+                        rows_done += b.num_rows
+                        yield b
+        except (pa.ArrowInvalid, pa.ArrowIOError, OSError) as err:
+            raise DataError(f"input file {self.path} could not be read after data row {rows_done}: "
+                            f"{_clean_arrow_message(err)}. Fix that part of the file (for CSV: every row needs "
+                            "the same number of fields, quotes must be closed).") from None
+
+
+def _clean_arrow_message(err: Exception) -> str:
+    """Arrow's messages can quote a whole CSV row; keep the diagnosis, drop the data."""
+    msg = str(err).strip().splitlines()[0] if str(err).strip() else type(err).__name__
+    m = re.search(r"Expected (\d+) columns?, got (\d+)", msg)
+    if m:
+        return f"a row has {m.group(2)} fields where the header has {m.group(1)}"
+    if "conversion error" in msg.lower() or "invalid value" in msg.lower():
+        return "a value could not be converted to the column's type"
+    msg = re.sub(r":\s*'[^']*'.*$", "", msg)
+    msg = re.sub(r"\"[^\"]{20,}\"", "<...>", msg)
+    return msg[:200]
+
+
+def _rebatch(source: Iterator[pa.RecordBatch], rows: int) -> Iterator[pa.RecordBatch]:
+    pending: list[pa.RecordBatch] = []
+    have = 0
+    for b in source:
+        if b.num_rows == 0:
+            continue
+        pending.append(b)
+        have += b.num_rows
+        while have >= rows:
+            table = pa.Table.from_batches(pending)
+            head = table.slice(0, rows).combine_chunks().to_batches()
+            out = head[0] if head else pa.RecordBatch.from_pylist([], schema=table.schema)
+            rest = table.slice(rows)
+            pending = [rb for rb in rest.combine_chunks().to_batches() if rb.num_rows] if rest.num_rows else []
+            have -= rows
+            yield out
+    if have:
+        table = pa.Table.from_batches(pending).combine_chunks()
+        yield table.to_batches()[0]
+
+
+# -- writing ------------------------------------------------------------------------------
+
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def remove_stale_partials(dest: Path) -> int:
+    """Remove partial files left beside ``dest`` by runs that were killed."""
+    dest = Path(dest)
+    removed = 0
+    with contextlib.suppress(OSError):
+        for p in dest.parent.iterdir():
+            m = _PARTIAL.match(p.name)
+            if m and m.group("name") == dest.name and not _pid_alive(int(m.group("pid"))):
+                with contextlib.suppress(OSError):
+                    p.unlink()
+                    removed += 1
+    return removed
+
+
+def partial_path(dest: Path) -> Path:
+    dest = Path(dest)
+    return dest.parent / f".{dest.name}.ldpt-partial-{os.getpid()}-{secrets.token_hex(4)}"
+
+
+def check_destination(dest: Path, role: str, overwrite: bool) -> None:
+    dest = Path(dest)
+    if not dest.parent.exists():
+        raise UsageError(f"{role} {dest}: folder {dest.parent} does not exist. Create it first.")
+    if dest.exists() and not overwrite:
+        raise OutputExistsError(f"{role} {dest} already exists. Give --overwrite to replace it, or choose "
+                                "another path.")
+    if dest.exists() and dest.is_dir():
+        raise UsageError(f"{role} {dest} is a folder; give a file path.")
+
+
+class StagedFiles:
+    """Temporary files beside their destinations, renamed into place by ``commit()``.
+
+    Used as a context manager: on any exception (or SIGTERM/SIGINT, which are turned
+    into exceptions while it is active) every temporary file is removed and nothing is
+    renamed.  ``commit`` renames in the order the files were added; the caller adds the
+    manifest last.
+    """
+
+    def __init__(self) -> None:
+        self._items: list[tuple[Path, Path]] = []
+        self._committed = False
+        self._old_handlers: dict[int, Any] = {}
+
+    def add(self, dest: Path) -> Path:
+        dest = Path(dest)
+        remove_stale_partials(dest)
+        tmp = partial_path(dest)
+        self._items.append((tmp, dest))
+        return tmp
+
+    def __enter__(self) -> "StagedFiles":
+        def _raise(signum: int, frame: Any) -> None:
+            raise KeyboardInterrupt(f"stopped by signal {signum}")
+
+        for sig in (signal.SIGTERM, signal.SIGINT, signal.SIGHUP):
+            with contextlib.suppress(ValueError, OSError):  # not in the main thread
+                self._old_handlers[sig] = signal.signal(sig, _raise)
+        return self
+
+    def __exit__(self, exc_type: Any, exc: Any, tb: Any) -> bool:
+        try:
+            if not self._committed:
+                self.discard()
+        finally:
+            for sig, h in self._old_handlers.items():
+                with contextlib.suppress(ValueError, OSError):
+                    signal.signal(sig, h)
+        return False
+
+    def discard(self) -> None:
+        for tmp, _ in self._items:
+            with contextlib.suppress(OSError):
+                tmp.unlink()
+
+    def commit(self) -> None:
+        for tmp, dest in self._items:
+            os.replace(tmp, dest)
+        self._committed = True
+
+
+class BatchWriter:
+    """Writes record batches to CSV or Parquet with a fixed schema."""
+
+    def __init__(self, path: Path, fmt: str, schema: pa.Schema) -> None:
+        self.path, self.format, self.schema = Path(path), fmt, schema
+        self.rows = 0
+        self._buffer: list[pa.RecordBatch] = []
+        self._buffered = 0
+        if fmt == "parquet":
+            self._writer: Any = pq.ParquetWriter(self.path, schema, compression="zstd", use_dictionary=True,
+                                                 write_statistics=False)
+        else:
+            self._csv_schema = pa.schema([pa.field(f.name, f.type.value_type if pa.types.is_dictionary(f.type)
+                                                   else f.type) for f in schema])
+            self._writer = pacsv.CSVWriter(self.path, self._csv_schema)
+
+    def write(self, batch: pa.RecordBatch) -> None:
+        self.rows += batch.num_rows
+        if self.format == "csv":
+            cols = [c.dictionary_decode() if pa.types.is_dictionary(c.type) else c for c in batch.columns]
+            self._writer.write_batch(pa.record_batch(cols, schema=self._csv_schema))
+            return
+        self._buffer.append(batch)
+        self._buffered += batch.num_rows
+        while self._buffered >= ROW_GROUP_ROWS:
+            self._flush(ROW_GROUP_ROWS)
+
+    def _flush(self, rows: int) -> None:
+        table = pa.Table.from_batches(self._buffer, schema=self.schema)
+        self._writer.write_table(table.slice(0, rows), row_group_size=rows)
+        rest = table.slice(rows)
+        self._buffer = rest.to_batches() if rest.num_rows else []
+        self._buffered = rest.num_rows
+
+    def close(self) -> None:
+        if self.format == "parquet" and self._buffered:
+            self._flush(self._buffered)
+        self._writer.close()
+
+
+def sha256_file(path: Path, chunk: int = 1 << 22) -> tuple[str, int]:
+    h = hashlib.sha256()
+    size = 0
+    with open(path, "rb") as f:
+        while True:
+            b = f.read(chunk)
+            if not b:
+                break
+            h.update(b)
+            size += len(b)
+    return h.hexdigest(), size
+
+
+def write_text_atomic(path: Path, text: str, mode: int = 0o644) -> None:
+    """Write a small text file beside its destination and rename it into place."""
+    path = Path(path)
+    tmp = partial_path(path)
+    try:
+        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, mode)
+        with os.fdopen(fd, "w", encoding="utf-8") as f:
+            f.write(text)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, path)
+    finally:
+        with contextlib.suppress(OSError):
+            tmp.unlink()

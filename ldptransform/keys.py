@@ -1,0 +1,198 @@
+"""Secret keys, release nonces and the keyed pseudorandom function (PRF).
+
+The PRF is the only source of release noise.  It is AES-256 in counter mode under a
+sub-key derived (HMAC-SHA256) from the steward's secret key, the release nonce, the
+column name and a purpose label.  The 128-bit counter block of row ``r`` and block
+``b`` is ``r * blocks_per_row + b``, so the words a row receives depend only on
+(key, nonce, column, purpose, global row index) and never on how rows are batched or
+split across workers.  numpy's generators are not used for release noise: they are
+fast but predictable.
+
+Keys are 32 bytes from the operating system's CSPRNG, stored as one line of hex
+under a header line, in a file created with mode 0600.  The manifest carries only a
+fingerprint (an HMAC of a fixed label), never the key.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import hmac
+import os
+import secrets
+import stat
+from pathlib import Path
+
+import numpy as np
+from cryptography.hazmat.primitives.ciphers import Cipher, algorithms, modes
+
+from .errors import KeyFileError, UsageError
+
+KEY_HEADER = "ldptransform secret key v1"
+KEY_BYTES = 32
+NONCE_BYTES = 16
+PRF_VERSION = "aes256-ctr/hmac-sha256-subkeys/v1"
+_U53 = 1.0 / (1 << 53)
+
+
+class SecretKey:
+    """32 bytes of secret key material.  Never printed, logged or serialized."""
+
+    __slots__ = ("_raw",)
+
+    def __init__(self, raw: bytes) -> None:
+        if len(raw) != KEY_BYTES:
+            raise KeyFileError(f"a secret key must be {KEY_BYTES} bytes, got {len(raw)}")
+        self._raw = bytes(raw)
+
+    def __repr__(self) -> str:
+        return "SecretKey(<redacted>)"
+
+    __str__ = __repr__
+
+    def __reduce__(self):  # keys must not travel by pickle by accident
+        raise TypeError("SecretKey cannot be pickled")
+
+    @classmethod
+    def generate(cls) -> "SecretKey":
+        return cls(secrets.token_bytes(KEY_BYTES))
+
+    def fingerprint(self) -> str:
+        """A public identifier of the key: HMAC(key, label), 16 hex characters."""
+        return hmac.new(self._raw, b"ldptransform/key-fingerprint/v1", hashlib.sha256).hexdigest()[:16]
+
+    def subkey(self, *labels: str | bytes) -> bytes:
+        msg = b"ldptransform/prf/v1"
+        for label in labels:
+            b = label.encode("utf-8") if isinstance(label, str) else label
+            msg += len(b).to_bytes(4, "big") + b  # length-prefixed: no ambiguity
+        return hmac.new(self._raw, msg, hashlib.sha256).digest()
+
+    def contains_in(self, text: str) -> bool:
+        """True if this key's material appears in ``text`` (hex or base64 forms)."""
+        import base64
+
+        forms = {self._raw.hex(), self._raw.hex().upper(), base64.b64encode(self._raw).decode(),
+                 base64.urlsafe_b64encode(self._raw).decode().rstrip("=")}
+        return any(f in text for f in forms)
+
+
+def new_key_file(path: Path) -> SecretKey:
+    """Write a new key to ``path`` with mode 0600.  Refuses to overwrite."""
+    path = Path(path)
+    if path.exists():
+        raise KeyFileError(
+            f"key file {path} already exists; ldpt never overwrites a key (releases made with it "
+            "could no longer be reproduced or audited). Choose another path, or move the old key "
+            "away yourself if you really mean to retire it.")
+    if not path.parent.exists():
+        raise KeyFileError(f"cannot create key file {path}: folder {path.parent} does not exist. "
+                           "Create the folder first (keep it private to the steward).")
+    key = SecretKey.generate()
+    text = f"{KEY_HEADER}\n{key._raw.hex()}\n"
+    try:
+        fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+    except OSError as err:
+        raise KeyFileError(f"cannot create key file {path}: {err.strerror}. "
+                           "Check that the folder is writable.") from None
+    try:
+        os.fchmod(fd, 0o600)
+        os.write(fd, text.encode("ascii"))
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+    return key
+
+
+def load_key(path: Path) -> SecretKey:
+    """Read a key file; refuse a missing, malformed or group/other-readable one."""
+    path = Path(path)
+    try:
+        st = path.stat()
+    except FileNotFoundError:
+        raise KeyFileError(f"key file {path} does not exist. Create one with `ldpt key new {path}` "
+                           "(and keep it: the same key is needed to reproduce or audit a release).") from None
+    except OSError as err:
+        raise KeyFileError(f"cannot read key file {path}: {err.strerror}.") from None
+    if not stat.S_ISREG(st.st_mode):
+        raise KeyFileError(f"key file {path} is not a regular file. Point --key at the file made by `ldpt key new`.")
+    if st.st_mode & 0o077:
+        raise KeyFileError(
+            f"key file {path} can be read or written by other users (mode {stat.S_IMODE(st.st_mode):04o}). "
+            f"A secret key must be private to the steward: run `chmod 600 {path}` and consider whether "
+            "the key has been exposed (if so, make a new one with `ldpt key new`).")
+    try:
+        text = path.read_text(encoding="ascii")
+    except (OSError, UnicodeDecodeError):
+        raise KeyFileError(f"key file {path} is not a key file written by `ldpt key new` "
+                           "(it is not plain ASCII text).") from None
+    lines = [ln.strip() for ln in text.strip().splitlines()]
+    if len(lines) != 2 or lines[0] != KEY_HEADER:
+        raise KeyFileError(f"key file {path} is malformed: expected the line '{KEY_HEADER}' followed by "
+                           f"{2 * KEY_BYTES} hex characters. Use a file made by `ldpt key new`.")
+    try:
+        raw = bytes.fromhex(lines[1])
+    except ValueError:
+        raw = b""
+    if len(raw) != KEY_BYTES:
+        raise KeyFileError(f"key file {path} is malformed: its second line must be {2 * KEY_BYTES} hex "
+                           "characters. Use a file made by `ldpt key new`.")
+    return SecretKey(raw)
+
+
+def new_nonce() -> str:
+    return secrets.token_hex(NONCE_BYTES)
+
+
+def check_nonce(nonce: str, where: str = "--nonce") -> str:
+    try:
+        raw = bytes.fromhex(nonce)
+    except ValueError:
+        raw = b""
+    if len(raw) != NONCE_BYTES:
+        raise UsageError(f"{where} must be {2 * NONCE_BYTES} hex characters (the 'nonce' field of the "
+                         "manifest of the release to reproduce).")
+    return raw.hex()
+
+
+class KeyedStream:
+    """Pseudorandom 64-bit words for one (key, nonce, column, purpose) stream.
+
+    ``words(row_start, n_rows, per_row)`` returns an array of shape (n_rows, per_row)
+    of uint64 words for global rows ``row_start .. row_start+n_rows-1``.  ``per_row``
+    is rounded up to an even number internally (one AES block gives two words);
+    callers must always ask with the same ``per_row`` for a stream.
+    """
+
+    __slots__ = ("_cipher_key", "label")
+
+    def __init__(self, key: SecretKey, nonce: str, *path: str) -> None:
+        self._cipher_key = key.subkey(bytes.fromhex(nonce), *path)
+        self.label = "/".join(path)
+
+    def __repr__(self) -> str:
+        return f"KeyedStream({self.label!r})"
+
+    def words(self, row_start: int, n_rows: int, per_row: int) -> np.ndarray:
+        blocks = (per_row + 1) // 2
+        if n_rows == 0:
+            return np.zeros((0, per_row), dtype=np.uint64)
+        first = row_start * blocks
+        iv = first.to_bytes(16, "big")
+        enc = Cipher(algorithms.AES(self._cipher_key), modes.CTR(iv)).encryptor()
+        stream = enc.update(bytes(16 * blocks * n_rows))
+        w = np.frombuffer(stream, dtype="<u8").reshape(n_rows, 2 * blocks)
+        return w[:, :per_row]
+
+
+def to_unit(words: np.ndarray) -> np.ndarray:
+    """uint64 words -> floats uniform on the 2^-53 grid in [0, 1)."""
+    return (words >> np.uint64(11)).astype(np.float64) * _U53
+
+
+def to_below(words: np.ndarray, bound: int) -> np.ndarray:
+    """uint64 words -> integers in [0, bound) by reduction modulo ``bound``.
+
+    Each value has probability within bound / 2^64 of 1/bound (below 2^-32 relative for
+    every bound the tool uses), far below anything a release of any size can detect.
+    """
+    return (words % np.uint64(bound)).astype(np.int64)

@@ -1,0 +1,146 @@
+"""The public manifest that travels with an extract.
+
+It says how every output column was made (the full mechanism spec), the privacy
+statement, and how to check integrity (extract hash, row count, key fingerprint,
+nonce).  It holds nothing else that depends on the raw data: the row count is the only
+data-dependent figure, and the extract's hash and size describe the extract itself.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, ValidationError
+
+from . import __version__
+from .errors import ManifestError
+
+FORMAT = "ldptransform-manifest"
+FORMAT_VERSION = 1
+
+CAUTIONS = [
+    "The epsilon values are a policy choice, not a guarantee of safety; they were set by the data steward.",
+    "Local differential privacy protects only the privatized columns. Columns of type 'public' are copied "
+    "as they are and are not protected at all; combined with other data they may identify people.",
+    "Protection composes: each row's total epsilon is the sum over its privatized columns, and separate "
+    "releases about the same people add up.",
+    "Do not try to link this extract to other data to single out people; that may be unlawful and breach "
+    "your agreement with the data steward.",
+]
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class OutputColumn(_Strict):
+    name: str
+    dtype: str
+    meaning: str
+
+
+class ColumnEntry(_Strict):
+    name: str
+    type: Literal["categorical", "binned", "numeric", "public"]
+    mechanism: dict[str, Any] | None = None
+    chosen_because: str | None = None
+    labels: list[str] | None = None
+    bins: list[float] | None = None
+    outputs: list[OutputColumn]
+    note: str | None = None
+
+
+class ExtractInfo(_Strict):
+    file: str
+    format: Literal["csv", "parquet"]
+    sha256: str
+    bytes: int
+    columns: list[str]
+
+
+class Privacy(_Strict):
+    model: str
+    epsilon_per_row_budget: float
+    epsilon_per_row_used: float
+    composition: str
+    public_columns: list[str]
+
+
+class Manifest(_Strict):
+    format: Literal["ldptransform-manifest"] = FORMAT
+    format_version: int = FORMAT_VERSION
+    tool_version: str
+    created_utc: str
+    rows: int = Field(ge=0)
+    nonce: str
+    key_fingerprint: str
+    prf: str
+    policy_sha256: str
+    policy: dict[str, Any]
+    privacy: Privacy
+    extract: ExtractInfo
+    columns: list[ColumnEntry]
+    cautions: list[str]
+
+    def column(self, name: str) -> ColumnEntry:
+        for c in self.columns:
+            if c.name == name:
+                return c
+        raise KeyError(name)
+
+    def to_json(self) -> str:
+        return json.dumps(self.model_dump(mode="json"), indent=2, allow_nan=False) + "\n"
+
+
+def now_utc() -> str:
+    return datetime.now(timezone.utc).replace(microsecond=0).isoformat().replace("+00:00", "Z")
+
+
+def default_manifest_path(extract: Path) -> Path:
+    extract = Path(extract)
+    return extract.with_name(extract.stem + ".manifest.json")
+
+
+def load_manifest(path: Path) -> Manifest:
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise ManifestError(f"manifest {path} does not exist. Give its path with --manifest (by default it is "
+                            "the extract's name with .manifest.json in place of the extension).") from None
+    except (OSError, UnicodeDecodeError) as err:
+        raise ManifestError(f"manifest {path} cannot be read ({err}).") from None
+    try:
+        data = json.loads(text)
+    except json.JSONDecodeError as err:
+        raise ManifestError(f"manifest {path} is not valid JSON (line {err.lineno}, column {err.colno}: "
+                            f"{err.msg}). Ask the data steward for an intact copy.") from None
+    if not isinstance(data, dict) or data.get("format") != FORMAT:
+        raise ManifestError(f"{path} is not an ldptransform manifest (its 'format' field is not {FORMAT!r}).")
+    if data.get("format_version") != FORMAT_VERSION:
+        raise ManifestError(f"manifest {path} has format_version {data.get('format_version')!r}; this ldpt reads "
+                            f"version {FORMAT_VERSION}. Use a matching ldptransform version.")
+    try:
+        m = Manifest.model_validate(data)
+    except ValidationError as err:
+        first = err.errors()[0]
+        loc = ".".join(str(p) for p in first.get("loc", ()))
+        raise ManifestError(f"manifest {path} is malformed: field '{loc}': {first.get('msg')} "
+                            f"({err.error_count()} problem(s) in all). Ask the data steward for an intact copy.") from None
+    _check_finite(data, path)
+    return m
+
+
+def _check_finite(obj: Any, path: Path) -> None:
+    if isinstance(obj, float) and not math.isfinite(obj):
+        raise ManifestError(f"manifest {path} contains a non-finite number.")
+    if isinstance(obj, dict):
+        for v in obj.values():
+            _check_finite(v, path)
+    elif isinstance(obj, list):
+        for v in obj:
+            _check_finite(v, path)

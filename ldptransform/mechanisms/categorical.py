@@ -1,0 +1,416 @@
+"""Categorical frequency oracles: GRR, SUE, OUE and OLH.
+
+Source for all four: T. Wang, J. Blocki, N. Li, S. Jha, "Locally Differentially Private
+Protocols for Frequency Estimation", USENIX Security 2017.  Generalized randomized
+response with k = 2 is Warner's randomized response (S. L. Warner, JASA 1965).
+
+Inputs are integer codes 0..k-1 (the policy's categories, in order, plus any extra
+category the policy asks for, such as one for missing values).
+"""
+
+from __future__ import annotations
+
+import math
+from functools import cached_property
+from typing import Any, ClassVar
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from ..errors import PolicyError
+from ..keys import to_below, to_unit
+from .base import Mechanism, check_epsilon, register
+
+MAX_CATEGORIES = 1 << 20
+
+
+class FrequencyOracle(Mechanism):
+    """Shared logic of the 'pure' protocols (support sets with constant p*, q*)."""
+
+    kind: ClassVar[str] = "categorical"
+
+    def __init__(self, epsilon: float, categories: list[str]) -> None:
+        self.epsilon = check_epsilon(epsilon, f"mechanism {self.name}")
+        cats = [str(c) for c in categories]
+        if len(cats) < 2:
+            raise PolicyError(f"mechanism {self.name}: needs at least 2 categories, got {len(cats)}")
+        if len(set(cats)) != len(cats):
+            raise PolicyError(f"mechanism {self.name}: categories must be distinct")
+        if len(cats) > MAX_CATEGORIES:
+            raise PolicyError(f"mechanism {self.name}: at most {MAX_CATEGORIES} categories")
+        self.categories = cats
+        self.k = len(cats)
+
+    # p*, q* ----------------------------------------------------------------------
+    @property
+    def p_star(self) -> float:
+        raise NotImplementedError
+
+    @property
+    def q_star(self) -> float:
+        raise NotImplementedError
+
+    def to_spec(self) -> dict[str, Any]:
+        return {"mechanism": self.name, "epsilon": self.epsilon, "categories": list(self.categories)}
+
+    @classmethod
+    def from_spec(cls, spec: dict[str, Any]) -> "FrequencyOracle":
+        cls._check_family(spec)
+        return cls(spec["epsilon"], spec["categories"])
+
+    # decoding ----------------------------------------------------------------------
+    def support(self, arrays: list[pa.Array]) -> np.ndarray:
+        """Boolean matrix of shape (n, k): entry (i, v) is 1[v in S(y_i)]."""
+        raise NotImplementedError
+
+    def support_counts(self, arrays: list[pa.Array]) -> np.ndarray:
+        """Integer vector of shape (k,): number of rows whose report supports each value."""
+        return self.support(arrays).sum(axis=0, dtype=np.int64)
+
+    def row_estimates(self, arrays: list[pa.Array]) -> np.ndarray:
+        """Per-row unbiased indicator estimates, shape (n, k)."""
+        s = self.support(arrays)
+        p, q = self.p_star, self.q_star
+        return (s - q) / (p - q)
+
+    def variance(self, freq: np.ndarray | float) -> np.ndarray:
+        """Exact n*Var of each frequency estimate for a fixed data set with frequencies ``freq``.
+
+        n*Var(f_v) = [q*(1-q*) + f_v (p*-q*)(1-p*-q*)] / (p*-q*)^2  (Wang et al. 2017, restated
+        in REFERENCE.md section 0.3; exact because the per-row reports are independent).
+        """
+        p, q = self.p_star, self.q_star
+        f = np.asarray(freq, dtype=float)
+        return (q * (1 - q) + f * (p - q) * (1 - p - q)) / (p - q) ** 2
+
+    def total_variance(self) -> float:
+        """n * sum_v Var(f_v): the expected squared L2 error of the whole frequency vector
+        times n.  Data-independent, because the exact variance is linear in f and sum f = 1."""
+        p, q = self.p_star, self.q_star
+        return float(self.k * q * (1 - q) / (p - q) ** 2 + (1 - p - q) / (p - q))
+
+    def approx_variance(self) -> float:
+        """The 'f small' n*Var used in the paper's comparisons: q*(1-q*)/(p*-q*)^2."""
+        p, q = self.p_star, self.q_star
+        return q * (1 - q) / (p - q) ** 2
+
+    def _labels_dictionary(self, codes: np.ndarray) -> pa.Array:
+        return pa.DictionaryArray.from_arrays(pa.array(codes.astype(np.int32)), pa.array(self.categories))
+
+
+@register
+class GRR(FrequencyOracle):
+    """Generalized (k-ary) randomized response: keep the value w.p. e^eps/(e^eps+k-1), else
+    report one of the other k-1 values uniformly.  Output: the reported category label."""
+
+    name: ClassVar[str] = "grr"
+
+    @property
+    def p_star(self) -> float:
+        e = math.exp(self.epsilon)
+        return e / (e + self.k - 1)
+
+    @property
+    def q_star(self) -> float:
+        return 1.0 / (math.exp(self.epsilon) + self.k - 1)
+
+    @property
+    def words_per_row(self) -> int:
+        return 2
+
+    def output_fields(self, column: str) -> list[pa.Field]:
+        return [pa.field(column, pa.dictionary(pa.int32(), pa.string()))]
+
+    def randomize_codes(self, x: np.ndarray, words: np.ndarray) -> np.ndarray:
+        keep = to_unit(words[:, 0]) < self.p_star
+        other = to_below(words[:, 1], self.k - 1)
+        other = other + (other >= x)
+        return np.where(keep, x, other)
+
+    def randomize(self, x: np.ndarray, words: np.ndarray) -> list[pa.Array]:
+        return [self._labels_dictionary(self.randomize_codes(x, words))]
+
+    def reported_codes(self, arrays: list[pa.Array]) -> np.ndarray:
+        codes = pc.index_in(_as_strings(arrays[0]), value_set=pa.array(self.categories))
+        return codes.to_numpy(zero_copy_only=False)
+
+    def support(self, arrays: list[pa.Array]) -> np.ndarray:
+        codes = self.reported_codes(arrays)
+        return codes[:, None] == np.arange(self.k)[None, :]
+
+    def support_counts(self, arrays: list[pa.Array]) -> np.ndarray:
+        codes = self.reported_codes(arrays)
+        codes = codes[~np.isnan(codes)] if codes.dtype.kind == "f" else codes
+        return np.bincount(codes.astype(np.int64), minlength=self.k)[: self.k]
+
+    def count_invalid(self, arrays: list[pa.Array]) -> int:
+        codes = pc.index_in(_as_strings(arrays[0]), value_set=pa.array(self.categories))
+        return int(codes.null_count)
+
+    def channel(self) -> np.ndarray:
+        p, q = self.p_star, self.q_star
+        return np.full((self.k, self.k), q) + np.eye(self.k) * (p - q)
+
+    def max_log_ratio(self) -> float:
+        return math.log(self.p_star / self.q_star)
+
+
+class _UnaryEncoding(FrequencyOracle):
+    """One-hot encode, then flip each bit independently: 1 stays 1 w.p. p, 0 becomes 1 w.p. q.
+    Output: one string of k characters '0'/'1'; character j is the bit of category j."""
+
+    @property
+    def words_per_row(self) -> int:
+        return self.k
+
+    def output_fields(self, column: str) -> list[pa.Field]:
+        return [pa.field(column, pa.string())]
+
+    def randomize_bits(self, x: np.ndarray, words: np.ndarray) -> np.ndarray:
+        n = x.shape[0]
+        u = to_unit(words)
+        thresh = np.full((n, self.k), self.q_star)
+        thresh[np.arange(n), x] = self.p_star
+        return u < thresh
+
+    def randomize(self, x: np.ndarray, words: np.ndarray) -> list[pa.Array]:
+        return [bits_to_strings(self.randomize_bits(x, words))]
+
+    def support(self, arrays: list[pa.Array]) -> np.ndarray:
+        bits, bad = strings_to_bits(arrays[0], self.k)
+        if bad.any():
+            bits[bad] = False
+        return bits
+
+    def count_invalid(self, arrays: list[pa.Array]) -> int:
+        _, bad = strings_to_bits(arrays[0], self.k)
+        return int(bad.sum())
+
+    def channel(self) -> np.ndarray:
+        """Exact P(bit vector | input) over all 2^k outputs (k <= 12), columns in binary order
+        with bit j of the output index = character j of the report."""
+        if self.k > 12:
+            raise ValueError("the full channel of a unary encoding is enumerated only for k <= 12")
+        outs = (np.arange(1 << self.k)[:, None] >> np.arange(self.k)[None, :]) & 1  # (2^k, k)
+        P = np.empty((self.k, 1 << self.k))
+        for x in range(self.k):
+            prob1 = np.full(self.k, self.q_star)
+            prob1[x] = self.p_star
+            P[x] = np.prod(np.where(outs == 1, prob1, 1 - prob1), axis=1)
+        return P
+
+    def max_log_ratio(self) -> float:
+        p, q = self.p_star, self.q_star
+        # Two inputs differ in two bit positions; the worst output has 1 at x and 0 at x'.
+        return math.log(p / q) + math.log((1 - q) / (1 - p))
+
+
+@register
+class SUE(_UnaryEncoding):
+    """Symmetric unary encoding: p = e^(eps/2)/(e^(eps/2)+1), q = 1 - p."""
+
+    name: ClassVar[str] = "sue"
+
+    @property
+    def p_star(self) -> float:
+        a = math.exp(self.epsilon / 2)
+        return a / (a + 1)
+
+    @property
+    def q_star(self) -> float:
+        return 1.0 / (math.exp(self.epsilon / 2) + 1)
+
+
+@register
+class OUE(_UnaryEncoding):
+    """Optimized unary encoding: p = 1/2, q = 1/(e^eps+1)."""
+
+    name: ClassVar[str] = "oue"
+
+    @property
+    def p_star(self) -> float:
+        return 0.5
+
+    @property
+    def q_star(self) -> float:
+        return 1.0 / (math.exp(self.epsilon) + 1)
+
+
+HASH_PRIME = (1 << 31) - 1  # Mersenne prime 2^31 - 1
+
+
+@register
+class OLH(FrequencyOracle):
+    """Optimized local hashing.
+
+    Each row draws a public hash H(v) = floor(((a*v + b) mod P) * g / P) with P = 2^31 - 1,
+    a uniform in 1..P-1 and b uniform in 0..P-1 (the pair is written to the extract as
+    ``a*P + b`` in the column ``<name>__hash``), then applies GRR over the g buckets to H(x)
+    (column ``<name>``).  For v != x the pair (a*v+b, a*x+b) mod P is uniform over distinct
+    pairs, so the collision probability c = P(H(v) = H(x)) is computed exactly from the
+    bucket sizes (it is 1/g up to O(1/P)), and q* uses that exact c: the estimator is
+    exactly unbiased, not only up to hashing error.  g defaults to the integer near
+    e^eps + 1 with the lower variance.
+    """
+
+    name: ClassVar[str] = "olh"
+
+    def __init__(self, epsilon: float, categories: list[str], hash_range: int | None = None) -> None:
+        super().__init__(epsilon, categories)
+        if self.k >= HASH_PRIME:
+            raise PolicyError(f"mechanism olh: at most {HASH_PRIME - 1} categories")
+        if hash_range is None:
+            hash_range = self.best_hash_range(self.epsilon)
+        if isinstance(hash_range, bool) or not isinstance(hash_range, int) or not 2 <= hash_range < (1 << 30):
+            raise PolicyError(f"mechanism olh: hash_range must be an integer from 2 to 2^30, got {hash_range!r}")
+        self.g = int(hash_range)
+
+    @staticmethod
+    def best_hash_range(epsilon: float) -> int:
+        e = math.exp(epsilon)
+        if e + 1 >= (1 << 30) - 1:
+            return (1 << 30) - 1
+        cands = {max(2, math.floor(e) + 1), max(2, math.ceil(e) + 1)}
+        return min(sorted(cands), key=lambda g: (e - 1 + g) ** 2 / ((e - 1) ** 2 * (g - 1)))
+
+    def to_spec(self) -> dict[str, Any]:
+        spec = super().to_spec()
+        spec["hash_range"] = self.g
+        return spec
+
+    @classmethod
+    def from_spec(cls, spec: dict[str, Any]) -> "OLH":
+        cls._check_family(spec)
+        return cls(spec["epsilon"], spec["categories"], spec.get("hash_range"))
+
+    @cached_property
+    def collision_probability(self) -> float:
+        P, g = HASH_PRIME, self.g
+        j = np.arange(g + 1, dtype=np.int64)
+        starts = -((-j * P) // g)  # ceil(j*P/g)
+        sizes = np.diff(starts)
+        return float((sizes * (sizes - 1)).sum()) / (P * (P - 1))
+
+    @property
+    def p_star(self) -> float:
+        e = math.exp(self.epsilon)
+        return e / (e + self.g - 1)
+
+    @property
+    def q_star(self) -> float:
+        p, c = self.p_star, self.collision_probability
+        return p * c + (1 - c) * (1 - p) / (self.g - 1)
+
+    @property
+    def words_per_row(self) -> int:
+        return 4
+
+    def output_fields(self, column: str) -> list[pa.Field]:
+        return [pa.field(column + "__hash", pa.int64()), pa.field(column, pa.int32())]
+
+    def hash_values(self, seeds: np.ndarray, v: np.ndarray) -> np.ndarray:
+        """H_seed(v) for broadcastable uint64 ``seeds`` and ``v``."""
+        P = np.uint64(HASH_PRIME)
+        a, b = seeds // P, seeds % P
+        z = (a * v.astype(np.uint64) + b) % P
+        return ((z * np.uint64(self.g)) // P).astype(np.int64)
+
+    def randomize(self, x: np.ndarray, words: np.ndarray) -> list[pa.Array]:
+        P = np.uint64(HASH_PRIME)
+        a = to_below(words[:, 0], HASH_PRIME - 1).astype(np.uint64) + np.uint64(1)
+        b = to_below(words[:, 1], HASH_PRIME).astype(np.uint64)
+        seeds = a * P + b
+        h = self.hash_values(seeds, x)
+        keep = to_unit(words[:, 2]) < self.p_star
+        other = to_below(words[:, 3], self.g - 1)
+        other = other + (other >= h)
+        y = np.where(keep, h, other)
+        return [pa.array(seeds.astype(np.int64)), pa.array(y.astype(np.int32))]
+
+    def _decode_inputs(self, arrays: list[pa.Array]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        seeds_arr = pc.cast(arrays[0], pa.int64(), safe=False)
+        y_arr = pc.cast(arrays[1], pa.int64(), safe=False)
+        null = np.asarray(pc.or_(pc.is_null(seeds_arr), pc.is_null(y_arr)))
+        seeds = np.asarray(pc.fill_null(seeds_arr, 0).to_numpy(zero_copy_only=False))
+        y = np.asarray(pc.fill_null(y_arr, -1).to_numpy(zero_copy_only=False))
+        P = HASH_PRIME
+        bad = null | (seeds < P) | (seeds >= P * P) | (y < 0) | (y >= self.g)
+        return seeds.astype(np.uint64), y, bad
+
+    def support(self, arrays: list[pa.Array]) -> np.ndarray:
+        seeds, y, bad = self._decode_inputs(arrays)
+        out = np.empty((len(y), self.k), dtype=bool)
+        v = np.arange(self.k, dtype=np.uint64)
+        step = max(1, (1 << 22) // max(self.k, 1))  # bound the temporary n*k matrix
+        for s in range(0, len(y), step):
+            e = min(s + step, len(y))
+            out[s:e] = self.hash_values(seeds[s:e, None], v[None, :]) == y[s:e, None]
+        out[bad] = False
+        return out
+
+    def count_invalid(self, arrays: list[pa.Array]) -> int:
+        return int(self._decode_inputs(arrays)[2].sum())
+
+    def channel_given_seeds(self, seeds: np.ndarray) -> np.ndarray:
+        """P(y | x, seed) for each seed: array of shape (len(seeds), k, g)."""
+        h = self.hash_values(seeds[:, None], np.arange(self.k, dtype=np.uint64)[None, :])  # (s, k)
+        p = self.p_star
+        q = (1 - p) / (self.g - 1)
+        out = np.full((len(seeds), self.k, self.g), q)
+        s_idx, x_idx = np.meshgrid(np.arange(len(seeds)), np.arange(self.k), indexing="ij")
+        out[s_idx, x_idx, h] = p
+        return out
+
+    def max_log_ratio(self) -> float:
+        # The seed is drawn independently of x; given the seed the channel is GRR on g buckets.
+        p = self.p_star
+        return math.log(p / ((1 - p) / (self.g - 1)))
+
+
+def _as_strings(arr: pa.Array) -> pa.Array:
+    if isinstance(arr, pa.ChunkedArray):
+        arr = arr.combine_chunks()
+    if pa.types.is_dictionary(arr.type):
+        arr = arr.dictionary_decode()
+    if not (pa.types.is_string(arr.type) or pa.types.is_large_string(arr.type)):
+        arr = pc.cast(arr, pa.string())
+    return arr
+
+
+def bits_to_strings(bits: np.ndarray) -> pa.Array:
+    """(n, k) booleans -> string array of '0'/'1' characters, built without a Python loop."""
+    n, k = bits.shape
+    data = (bits.astype(np.uint8) + np.uint8(48)).tobytes()
+    if n * k < (1 << 31) - 1:
+        offsets = np.arange(0, (n + 1) * k, k, dtype=np.int32)
+        return pa.StringArray.from_buffers(n, pa.py_buffer(offsets.tobytes()), pa.py_buffer(data))
+    offsets = np.arange(0, (n + 1) * k, k, dtype=np.int64)
+    return pa.LargeStringArray.from_buffers(n, pa.py_buffer(offsets.tobytes()), pa.py_buffer(data))
+
+
+def strings_to_bits(arr: pa.Array, k: int) -> tuple[np.ndarray, np.ndarray]:
+    """String array of '0'/'1' reports -> ((n, k) booleans, (n,) bad-row mask).
+
+    Integers (a CSV read by a tool that dropped leading zeros) are left-padded back to k
+    characters.  A row is bad if it is null, has another length, or has other characters.
+    """
+    if isinstance(arr, pa.ChunkedArray):
+        arr = arr.combine_chunks()
+    if pa.types.is_integer(arr.type):
+        arr = pc.utf8_lpad(pc.cast(arr, pa.string()), width=k, padding="0")
+    arr = _as_strings(arr)
+    n = len(arr)
+    lengths = pc.fill_null(pc.binary_length(arr), -1).to_numpy(zero_copy_only=False)
+    ok = lengths == k
+    if ok.all() and arr.null_count == 0:
+        offsets_dtype = np.int64 if pa.types.is_large_string(arr.type) else np.int32
+        offs = np.frombuffer(arr.buffers()[1], dtype=offsets_dtype)[arr.offset: arr.offset + n + 1]
+        raw = np.frombuffer(arr.buffers()[2], dtype=np.uint8)[offs[0]: offs[-1]].reshape(n, k)
+    else:
+        fixed = pc.if_else(pa.array(ok), arr, pa.scalar("0" * k))
+        ones, bad = strings_to_bits(fixed, k)
+        return ones, bad | ~ok
+    ones = raw == 49
+    bad = ~(ones | (raw == 48)).all(axis=1)
+    return ones, bad

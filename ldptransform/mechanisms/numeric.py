@@ -1,0 +1,264 @@
+"""Bounded numeric mechanisms for means: two-point, piecewise and hybrid.
+
+All three are built as one ``GridMechanism``: the input x in [lo, hi] is normalized to
+t in [-1, 1] and rounded at random to the grid t_i = -1 + 2i/N (to t_i or t_{i+1} with
+probabilities that keep E[t_i] = t), then sent through a finite channel Q[i, j] whose
+output values o_j satisfy sum_j Q[i, j] o_j = t_i exactly.  Random rounding is a mixture
+of two channels, so it keeps the eps bound and unbiasedness for every t in [-1, 1].
+
+* two-point: J. C. Duchi, M. I. Jordan, M. J. Wainwright, "Minimax Optimal Procedures for
+  Locally Private Estimation", JASA 2018.  Output +-C with C = (e^eps+1)/(e^eps-1) and
+  P(+C | t) = 1/2 + t (e^eps-1)/(2(e^eps+1)), which is exactly random rounding to {-1, 1}
+  followed by binary randomized response, so N = 1.
+* piecewise: N. Wang, X. Xiao, Y. Yang, J. Zhao, S. C. Hui, H. Shin, J. Shin, G. Yu,
+  "Collecting and Analyzing Multidimensional Data with Local Differential Privacy",
+  ICDE 2019.  The continuous output on [-C, C] (C = (e^(eps/2)+1)/(e^(eps/2)-1)) is
+  discretized exactly: the cell boundaries are every window end l(t_i), r(t_i) of every
+  grid input, so the density is constant on each cell for every grid input, the cell's
+  probability is density x width, and reporting the cell midpoint keeps the estimator
+  exactly unbiased.  The eps bound holds cell by cell (each cell's mass is a mixture of
+  high and low density with ratio e^eps).
+* hybrid: the same paper; with probability alpha run piecewise, else two-point, with
+  alpha = 1 - e^(-eps/2) for eps > 0.61 and alpha = 0 otherwise (the paper's rule, the
+  threshold value 0.61 as REFERENCE.md section 5.3 restates it).
+
+The value written to the extract is lo + (o_j + 1)(hi - lo)/2: the per-row unbiased
+estimate of x in the column's own units.
+"""
+
+from __future__ import annotations
+
+import math
+from functools import cached_property
+from typing import Any, ClassVar
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from ..errors import PolicyError
+from ..keys import to_unit
+from .base import Mechanism, check_epsilon, register
+
+DEFAULT_GRID = 256
+HYBRID_THRESHOLD = 0.61
+
+
+def check_bounds(bounds: Any, where: str) -> tuple[float, float]:
+    try:
+        lo, hi = (float(b) for b in bounds)
+    except (TypeError, ValueError):
+        raise PolicyError(f"{where}: bounds must be two numbers [low, high], got {bounds!r}") from None
+    if not (math.isfinite(lo) and math.isfinite(hi)):
+        raise PolicyError(f"{where}: bounds must be finite numbers, got {bounds!r}")
+    if lo >= hi:
+        raise PolicyError(f"{where}: bounds low ({lo:g}) must be below high ({hi:g})")
+    return lo, hi
+
+
+class GridMechanism(Mechanism):
+    """Shared implementation; subclasses provide the grid size and the channel."""
+
+    kind: ClassVar[str] = "numeric"
+
+    def __init__(self, epsilon: float, bounds: Any, grid: int = DEFAULT_GRID) -> None:
+        self.epsilon = check_epsilon(epsilon, f"mechanism {self.name}")
+        self.lo, self.hi = check_bounds(bounds, f"mechanism {self.name}")
+        if isinstance(grid, bool) or not isinstance(grid, int) or not 1 <= grid <= 4096:
+            raise PolicyError(f"mechanism {self.name}: grid must be an integer from 1 to 4096, got {grid!r}")
+        self.grid = grid
+
+    def to_spec(self) -> dict[str, Any]:
+        return {"mechanism": self.name, "epsilon": self.epsilon, "bounds": [self.lo, self.hi], "grid": self.grid}
+
+    @classmethod
+    def from_spec(cls, spec: dict[str, Any]) -> "GridMechanism":
+        cls._check_family(spec)
+        return cls(spec["epsilon"], spec["bounds"], spec.get("grid", DEFAULT_GRID))
+
+    # structure -------------------------------------------------------------------
+    @cached_property
+    def inputs(self) -> np.ndarray:
+        """Input grid in normalized units, shape (N+1,)."""
+        return np.linspace(-1.0, 1.0, self.grid + 1)
+
+    def _channel(self) -> tuple[np.ndarray, np.ndarray]:
+        """(output values o of shape (M,), channel Q of shape (N+1, M)); subclasses."""
+        raise NotImplementedError
+
+    @cached_property
+    def _structure(self) -> tuple[np.ndarray, np.ndarray]:
+        outs, Q = self._channel()
+        order = np.argsort(outs, kind="stable")
+        return outs[order], Q[:, order]
+
+    @property
+    def outputs(self) -> np.ndarray:
+        """Output alphabet in normalized units, sorted, shape (M,)."""
+        return self._structure[0]
+
+    def channel(self) -> np.ndarray:
+        """Exact P(output j | grid input i), shape (N+1, M)."""
+        return self._structure[1]
+
+    @cached_property
+    def output_values(self) -> np.ndarray:
+        """Output alphabet in the column's own units."""
+        return self.to_units(self.outputs)
+
+    def to_units(self, t: np.ndarray) -> np.ndarray:
+        return self.lo + (np.asarray(t) + 1.0) * ((self.hi - self.lo) / 2.0)
+
+    def normalize(self, x: np.ndarray) -> np.ndarray:
+        return np.clip((np.asarray(x, dtype=float) - self.lo) * (2.0 / (self.hi - self.lo)) - 1.0, -1.0, 1.0)
+
+    @cached_property
+    def _sampling_table(self) -> np.ndarray:
+        Q = self.channel()
+        cdf = np.cumsum(Q, axis=1)
+        cdf[:, -1] = 1.0
+        return (cdf + np.arange(Q.shape[0])[:, None]).ravel()
+
+    # randomization ---------------------------------------------------------------
+    @property
+    def words_per_row(self) -> int:
+        return 2
+
+    def output_fields(self, column: str) -> list[pa.Field]:
+        return [pa.field(column, pa.float64())]
+
+    def randomize_index(self, x: np.ndarray, words: np.ndarray) -> np.ndarray:
+        """Index into ``outputs`` for each input value x (column units, within bounds)."""
+        N = self.grid
+        s = (self.normalize(x) + 1.0) * (N / 2.0)
+        i0 = np.minimum(np.floor(s), N - 1).astype(np.int64)
+        frac = s - i0
+        i = i0 + (to_unit(words[:, 0]) < frac)
+        M = self.outputs.shape[0]
+        pos = np.searchsorted(self._sampling_table, i + to_unit(words[:, 1]), side="right") - i * M
+        return np.clip(pos, 0, M - 1)
+
+    def randomize(self, x: np.ndarray, words: np.ndarray) -> list[pa.Array]:
+        return [pa.array(self.output_values[self.randomize_index(x, words)])]
+
+    def count_invalid(self, arrays: list[pa.Array]) -> int:
+        arr = arrays[0]
+        if isinstance(arr, pa.ChunkedArray):
+            arr = arr.combine_chunks()
+        if not (pa.types.is_floating(arr.type) or pa.types.is_integer(arr.type)):
+            return len(arr)
+        vals = pc.cast(arr, pa.float64()).to_numpy(zero_copy_only=False)
+        ok = np.isfinite(vals)
+        alpha = self.output_values
+        idx = np.clip(np.searchsorted(alpha, vals), 1, len(alpha) - 1)
+        near = np.minimum(np.abs(vals - alpha[idx - 1]), np.abs(vals - alpha[idx]))
+        tol = 1e-9 * (self.hi - self.lo)
+        return int((~ok | ~(np.nan_to_num(near, nan=np.inf) <= tol)).sum())
+
+    # analysis --------------------------------------------------------------------
+    def max_log_ratio(self) -> float:
+        Q = self.channel()
+        return float(np.max(np.log(Q.max(axis=0)) - np.log(Q.min(axis=0))))
+
+    def second_moments(self) -> np.ndarray:
+        return self.channel() @ (self.outputs ** 2)
+
+    def variance(self, x: np.ndarray | float) -> np.ndarray:
+        """Exact Var of one report (column units) for true value(s) x, random rounding included."""
+        N = self.grid
+        t = self.normalize(np.atleast_1d(np.asarray(x, dtype=float)))
+        s = (t + 1.0) * (N / 2.0)
+        i0 = np.minimum(np.floor(s), N - 1).astype(np.int64)
+        lam = s - i0
+        S = self.second_moments()
+        var_t = (1 - lam) * S[i0] + lam * S[i0 + 1] - t ** 2
+        out = var_t * ((self.hi - self.lo) / 2.0) ** 2
+        return out if np.ndim(x) else out[0]
+
+    def worst_variance(self) -> float:
+        """Largest Var of one report over the whole domain (column units), random rounding
+        included: on each grid interval the variance is linear minus t^2, maximized in closed form."""
+        S = self.second_moments()
+        t = self.inputs
+        ta, tb, Sa, Sb = t[:-1], t[1:], S[:-1], S[1:]
+        slope = (Sb - Sa) / (tb - ta)
+        tstar = np.clip(slope / 2.0, ta, tb)
+        vals = Sa + slope * (tstar - ta) - tstar ** 2
+        return float(np.max(vals)) * ((self.hi - self.lo) / 2.0) ** 2
+
+
+def _two_point_channel(eps: float, t: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    e = math.exp(eps)
+    C = (e + 1) / (e - 1)
+    p_plus = 0.5 + t * (e - 1) / (2 * (e + 1))
+    return np.array([-C, C]), np.stack([1 - p_plus, p_plus], axis=1)
+
+
+def _piecewise_channel(eps: float, t: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    a = math.exp(eps / 2)
+    E = math.exp(eps)
+    C = (a + 1) / (a - 1)
+    high = (E - a) / (2 * a + 2)
+    low = high / E
+    left = (C + 1) / 2 * t - (C - 1) / 2
+    right = left + C - 1
+    pts = np.concatenate([[-C, C], left, right])
+    pts = np.unique(np.clip(pts, -C, C))
+    # merge breakpoints closer than float noise
+    keep = np.concatenate([[True], np.diff(pts) > 1e-12 * C])
+    pts = pts[keep]
+    pts[-1] = C
+    lo_edge, hi_edge = pts[:-1], pts[1:]
+    mids = (lo_edge + hi_edge) / 2
+    width = hi_edge - lo_edge
+    inside = (mids[None, :] >= left[:, None]) & (mids[None, :] <= right[:, None])
+    Q = np.where(inside, high, low) * width[None, :]
+    Q /= Q.sum(axis=1, keepdims=True)  # exact up to rounding; removes float drift
+    return mids, Q
+
+
+@register
+class TwoPoint(GridMechanism):
+    """Bounded two-point mechanism (Duchi, Jordan, Wainwright 2018): report +-C."""
+
+    name: ClassVar[str] = "two-point"
+
+    def __init__(self, epsilon: float, bounds: Any, grid: int = 1) -> None:
+        super().__init__(epsilon, bounds, 1)
+
+    def to_spec(self) -> dict[str, Any]:
+        return {"mechanism": self.name, "epsilon": self.epsilon, "bounds": [self.lo, self.hi]}
+
+    def _channel(self) -> tuple[np.ndarray, np.ndarray]:
+        return _two_point_channel(self.epsilon, self.inputs)
+
+
+@register
+class Piecewise(GridMechanism):
+    """Piecewise mechanism (Wang et al., ICDE 2019), exactly discretized."""
+
+    name: ClassVar[str] = "piecewise"
+
+    def _channel(self) -> tuple[np.ndarray, np.ndarray]:
+        return _piecewise_channel(self.epsilon, self.inputs)
+
+
+@register
+class Hybrid(GridMechanism):
+    """Hybrid mechanism (Wang et al., ICDE 2019): piecewise w.p. alpha, else two-point."""
+
+    name: ClassVar[str] = "hybrid"
+
+    @property
+    def alpha(self) -> float:
+        return 1 - math.exp(-self.epsilon / 2) if self.epsilon > HYBRID_THRESHOLD else 0.0
+
+    def _channel(self) -> tuple[np.ndarray, np.ndarray]:
+        o1, Q1 = _piecewise_channel(self.epsilon, self.inputs)
+        o2, Q2 = _two_point_channel(self.epsilon, self.inputs)
+        al = self.alpha
+        outs = np.concatenate([o1, o2])
+        Q = np.concatenate([al * Q1, (1 - al) * Q2], axis=1)
+        if al == 0.0:
+            return o2, Q2
+        return outs, Q

@@ -1,0 +1,392 @@
+"""Policy files: what each column of the input becomes, and the row's privacy budget.
+
+A policy is YAML or JSON.  Domains are declared, never inferred from the data (a
+domain read off the data would leak it).  Loading validates everything at once and
+reports every problem with the column and field it concerns.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Annotated, Any, Literal, Union
+
+import yaml
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+
+from . import mechanisms as mech
+from .errors import PolicyError
+
+EPS_TOLERANCE = 1e-9
+MISSING_LABEL = "<missing>"
+OTHER_LABEL = "<other>"
+DEFAULT_CSV_NULLS = ["", "NA", "N/A", "NaN", "nan", "null", "NULL"]
+
+Epsilon = Annotated[float, Field(gt=0, le=50, allow_inf_nan=False, strict=True,
+                                 description="Privacy parameter of this column (natural log).")]
+Scalar = Union[Annotated[str, Field(strict=True)], Annotated[int, Field(strict=True)],
+               Annotated[float, Field(strict=True)], Annotated[bool, Field(strict=True)]]
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+def category_label(value: Any) -> str:
+    """Canonical text of a category as written in a policy (YAML may give ints, bools...)."""
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, float) and value.is_integer():
+        return str(int(value))
+    return str(value)
+
+
+def number_label(value: float) -> str:
+    return str(int(value)) if float(value).is_integer() and abs(value) < 1e15 else repr(float(value))
+
+
+class Fill(_Strict):
+    fill: Annotated[float, Field(strict=True, allow_inf_nan=False,
+                                 description="Value used in place of a missing one (within bounds).")]
+
+
+class CategoricalColumn(_Strict):
+    type: Literal["categorical"]
+    categories: list[Scalar] = Field(description="The declared domain, in order.")
+    epsilon: Epsilon
+    mechanism: str | None = Field(None, description="grr, oue, sue or olh; absent or 'auto': lowest variance.")
+    missing: Literal["error", "as-category"] = "error"
+    unknown: Literal["error", "as-category"] = "error"
+    hash_range: int | None = Field(None, description="olh only: number of hash buckets g (default near e^eps+1).")
+
+    @field_validator("categories")
+    @classmethod
+    def _cats(cls, v: list[Any]) -> list[Any]:
+        if len(v) == 0:
+            raise ValueError("categories is empty: list the values this column may take")
+        labels = [category_label(c) for c in v]
+        seen: set[str] = set()
+        dups = sorted({x for x in labels if x in seen or seen.add(x)})  # type: ignore[func-returns-value]
+        if dups:
+            raise ValueError(f"categories has duplicates: {', '.join(map(repr, dups))}; list each value once")
+        for special in (MISSING_LABEL, OTHER_LABEL):
+            if special in labels:
+                raise ValueError(f"{special!r} is reserved for values the tool adds; rename that category")
+        return v
+
+
+class NumericColumn(_Strict):
+    type: Literal["numeric"]
+    bounds: tuple[float, float] | None = Field(None, description="[low, high]; values outside are clipped.")
+    bins: list[Annotated[float, Field(strict=True, allow_inf_nan=False)]] | None = Field(
+        None, description="Bin edges; the column is released as a categorical column of bins.")
+    epsilon: Epsilon
+    mechanism: str | None = Field(None, description="hybrid, piecewise, two-point (or, with bins, a categorical one).")
+    missing: Literal["error"] | Fill = "error"
+    out_of_bounds: Literal["clip", "error"] = "clip"
+    grid: int | None = Field(None, ge=1, le=4096, description="piecewise/hybrid: input grid size (default 256).")
+    hash_range: int | None = Field(None, description="olh on bins only.")
+
+    @model_validator(mode="after")
+    def _domain(self) -> "NumericColumn":
+        if self.bins is None and self.bounds is None:
+            raise ValueError("give bounds: [low, high] (or bins: [edges]) for a numeric column")
+        if self.bounds is not None:
+            lo, hi = self.bounds
+            if not (math.isfinite(lo) and math.isfinite(hi)):
+                raise ValueError("bounds must be finite numbers")
+            if lo >= hi:
+                raise ValueError(f"bounds low ({lo:g}) must be below high ({hi:g})")
+        if self.bins is not None:
+            b = self.bins
+            if len(b) < 3:
+                raise ValueError("bins needs at least 3 edges (2 bins)")
+            if any(b2 <= b1 for b1, b2 in zip(b, b[1:])):
+                raise ValueError("bins edges must be strictly increasing")
+            if self.bounds is not None and (self.bounds[0] != b[0] or self.bounds[1] != b[-1]):
+                raise ValueError("with bins, bounds (if given) must equal the first and last edge")
+        if isinstance(self.missing, Fill):
+            lo, hi = self.domain
+            if not lo <= self.missing.fill <= hi:
+                raise ValueError(f"missing fill value {self.missing.fill:g} lies outside the bounds [{lo:g}, {hi:g}]")
+        return self
+
+    @property
+    def domain(self) -> tuple[float, float]:
+        if self.bins is not None:
+            return (self.bins[0], self.bins[-1])
+        assert self.bounds is not None
+        return (float(self.bounds[0]), float(self.bounds[1]))
+
+    def bin_labels(self) -> list[str]:
+        assert self.bins is not None
+        b = self.bins
+        return [f"[{number_label(b[i])}, {number_label(b[i + 1])}{']' if i == len(b) - 2 else ')'}"
+                for i in range(len(b) - 1)]
+
+
+class DropColumn(_Strict):
+    type: Literal["drop"]
+
+
+class PublicColumn(_Strict):
+    type: Literal["public"]
+
+
+ColumnPolicy = Annotated[Union[CategoricalColumn, NumericColumn, DropColumn, PublicColumn],
+                         Field(discriminator="type")]
+
+
+class Budget(_Strict):
+    epsilon_per_row: Annotated[float, Field(gt=0, allow_inf_nan=False, strict=True,
+                                            description="Total eps over all columns of one row.")]
+
+
+class InputOptions(_Strict):
+    csv_null_values: list[str] = Field(default_factory=lambda: list(DEFAULT_CSV_NULLS),
+                                       description="CSV cells read as missing.")
+    csv_delimiter: Annotated[str, Field(min_length=1, max_length=1)] = ","
+
+
+class Policy(_Strict):
+    """A release policy (the file's top level)."""
+
+    budget: Budget
+    unlisted: Literal["error", "drop"] = "error"
+    input: InputOptions = Field(default_factory=InputOptions)
+    columns: dict[str, ColumnPolicy] = Field(min_length=1)
+
+    @model_validator(mode="after")
+    def _budget(self) -> "Policy":
+        total = sum(c.epsilon for c in self.columns.values() if isinstance(c, (CategoricalColumn, NumericColumn)))
+        if total > self.budget.epsilon_per_row + EPS_TOLERANCE:
+            parts = ", ".join(f"{n} {c.epsilon:g}" for n, c in self.columns.items()
+                              if isinstance(c, (CategoricalColumn, NumericColumn)))
+            raise ValueError(f"the column epsilons add up to {total:g} ({parts}), more than "
+                             f"budget.epsilon_per_row = {self.budget.epsilon_per_row:g}; lower some column "
+                             "epsilons or (after review) raise the budget")
+        return self
+
+    def canonical(self) -> dict[str, Any]:
+        return self.model_dump(mode="json", exclude_none=True)
+
+    def sha256(self) -> str:
+        return hashlib.sha256(json.dumps(self.canonical(), sort_keys=True, separators=(",", ":")).encode()).hexdigest()
+
+
+# -- resolution: policy column -> concrete mechanism ------------------------------------
+
+@dataclass
+class ResolvedColumn:
+    name: str
+    type: str                      # categorical | numeric | binned | public | drop
+    config: Any
+    mechanism: mech.Mechanism | None = None
+    chosen_because: str | None = None
+    labels: list[str] = field(default_factory=list)   # categorical/binned: declared labels (codes 0..)
+    missing_code: int | None = None
+    other_code: int | None = None
+
+    @property
+    def privatized(self) -> bool:
+        return self.mechanism is not None
+
+
+def _where(name: str, fieldname: str) -> str:
+    return f"column {name!r}, field '{fieldname}'"
+
+
+def resolve_column(name: str, col: Any) -> ResolvedColumn:
+    if isinstance(col, DropColumn):
+        return ResolvedColumn(name, "drop", col)
+    if isinstance(col, PublicColumn):
+        return ResolvedColumn(name, "public", col)
+    if isinstance(col, CategoricalColumn) or (isinstance(col, NumericColumn) and col.bins is not None):
+        if isinstance(col, CategoricalColumn):
+            labels = [category_label(c) for c in col.categories]
+            kind = "categorical"
+        else:
+            labels = col.bin_labels()
+            kind = "binned"
+        domain = list(labels)
+        rc = ResolvedColumn(name, kind, col, labels=labels)
+        if getattr(col, "missing", None) == "as-category":
+            rc.missing_code = len(domain)
+            domain.append(MISSING_LABEL)
+        if getattr(col, "unknown", None) == "as-category":
+            rc.other_code = len(domain)
+            domain.append(OTHER_LABEL)
+        if len(domain) < 2:
+            raise PolicyError(f"{_where(name, 'categories')}: a column needs at least 2 possible values "
+                              "(declare more categories, or use type: public / drop)")
+        name_ = col.mechanism or "auto"
+        if name_ == "auto":
+            m, why = mech.choose_categorical(col.epsilon, domain)
+            if col.hash_range is not None and m.name == "olh":
+                m = mech.OLH(col.epsilon, domain, col.hash_range)
+            rc.mechanism, rc.chosen_because = m, why
+        elif name_ in mech.CATEGORICAL:
+            params = {"hash_range": col.hash_range} if (name_ == "olh" and col.hash_range is not None) else {}
+            if col.hash_range is not None and name_ != "olh":
+                raise PolicyError(f"{_where(name, 'hash_range')}: hash_range applies to mechanism olh only")
+            rc.mechanism = mech.make(name_, "categorical", col.epsilon, domain, **params)
+        elif name_ in mech.NUMERIC:
+            raise PolicyError(f"{_where(name, 'mechanism')}: {name_!r} randomizes numbers, but this column is "
+                              f"released as categories{' (bins)' if kind == 'binned' else ''}; use one of "
+                              f"{', '.join(mech.CATEGORICAL)} or leave mechanism out")
+        else:
+            raise PolicyError(f"{_where(name, 'mechanism')}: unknown mechanism {name_!r}; for this column use one "
+                              f"of {', '.join(mech.CATEGORICAL)}, or leave it out to pick the lowest-variance one")
+        return rc
+    assert isinstance(col, NumericColumn)
+    rc = ResolvedColumn(name, "numeric", col)
+    name_ = col.mechanism or "auto"
+    grid = col.grid or mech.DEFAULT_GRID
+    if col.hash_range is not None:
+        raise PolicyError(f"{_where(name, 'hash_range')}: hash_range applies to mechanism olh on bins only")
+    if name_ == "auto":
+        rc.mechanism, rc.chosen_because = mech.choose_numeric(col.epsilon, col.domain, grid)
+    elif name_ in mech.NUMERIC:
+        params = {"grid": grid} if name_ != "two-point" else {}
+        rc.mechanism = mech.make(name_, "numeric", col.epsilon, col.domain, **params)
+    elif name_ in mech.CATEGORICAL:
+        raise PolicyError(f"{_where(name, 'mechanism')}: {name_!r} randomizes categories, but this column is "
+                          f"numeric; use one of {', '.join(mech.NUMERIC)}, or add bins: [edges] to release it "
+                          "as categories")
+    else:
+        raise PolicyError(f"{_where(name, 'mechanism')}: unknown mechanism {name_!r}; for a numeric column use one "
+                          f"of {', '.join(mech.NUMERIC)}, or leave it out to pick the lowest-variance one")
+    return rc
+
+
+@dataclass
+class LoadedPolicy:
+    policy: Policy
+    source: str
+    columns: list[ResolvedColumn]
+
+    @property
+    def by_name(self) -> dict[str, ResolvedColumn]:
+        return {c.name: c for c in self.columns}
+
+    @property
+    def epsilon_total(self) -> float:
+        return sum(c.mechanism.epsilon for c in self.columns if c.mechanism is not None)
+
+
+def resolve(policy: Policy, source: str = "<policy>") -> LoadedPolicy:
+    cols = []
+    for name, col in policy.columns.items():
+        try:
+            cols.append(resolve_column(name, col))
+        except PolicyError as err:
+            raise PolicyError(f"policy {source}: {err}") from None
+    return LoadedPolicy(policy, source, cols)
+
+
+# -- loading ------------------------------------------------------------------------------
+
+class _UniqueKeyLoader(yaml.SafeLoader):
+    pass
+
+
+def _construct_mapping(loader: yaml.SafeLoader, node: yaml.MappingNode, deep: bool = False) -> dict:
+    seen: dict[Any, Any] = {}
+    for key_node, _ in node.value:
+        key = loader.construct_object(key_node, deep=deep)
+        if key in seen:
+            mark = key_node.start_mark
+            raise yaml.constructor.ConstructorError(
+                None, None, f"the key {key!r} appears twice in the same mapping (line {mark.line + 1})", mark)
+        seen[key] = True
+    return loader.construct_mapping(node, deep=deep)
+
+
+_UniqueKeyLoader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _construct_mapping)
+
+
+def _format_loc(loc: tuple[Any, ...]) -> str:
+    parts = [str(p) for p in loc]
+    if len(parts) >= 2 and parts[0] == "columns":
+        col = parts[1]
+        rest = [p for p in parts[2:] if p not in ("categorical", "numeric", "drop", "public", "Fill",
+                                                     "literal['error']", "function-after[_domain(), NumericColumn]")]
+        rest = [p for p in rest if not p.startswith("function-") and not p.startswith("literal[")]
+        return f"column {col!r}" + (f", field '{'.'.join(rest)}'" if rest else "")
+    if not parts:
+        return "top level"
+    return "field '" + ".".join(p for p in parts if not p.startswith("function-")) + "'"
+
+
+def _format_validation(err: ValidationError) -> list[str]:
+    msgs: list[str] = []
+    seen: set[str] = set()
+    for e in err.errors():
+        where = _format_loc(tuple(e.get("loc", ())))
+        msg = e.get("msg", "invalid")
+        if msg.startswith("Value error, "):
+            msg = msg[len("Value error, "):]
+        etype = e.get("type", "")
+        if etype == "extra_forbidden":
+            msg = "is not a known field (check its spelling; `ldpt policy schema` lists the fields)"
+        elif etype == "union_tag_invalid":
+            msg = "type must be one of categorical, numeric, public, drop"
+        elif etype == "union_tag_not_found":
+            msg = "needs a 'type' (categorical, numeric, public or drop)"
+        elif "input" in e and etype not in ("missing",) and not isinstance(e["input"], (dict, list)):
+            msg = f"{msg} (got {e['input']!r})"
+        line = f"{where}: {msg}"
+        if line not in seen:
+            seen.add(line)
+            msgs.append(line)
+    return msgs
+
+
+def parse_policy(data: Any, source: str) -> LoadedPolicy:
+    if not isinstance(data, dict):
+        raise PolicyError(f"policy {source}: the top level must be a mapping with 'budget' and 'columns'. "
+                          "See README.md (Policy file) for an example.")
+    try:
+        policy = Policy.model_validate(data)
+    except ValidationError as err:
+        problems = _format_validation(err)
+        raise PolicyError(f"policy {source} has {len(problems)} problem{'s' if len(problems) > 1 else ''}: "
+                          + "; ".join(problems) + ". Fix the policy and run `ldpt policy check` again.") from None
+    return resolve(policy, source)
+
+
+def load_policy(path: Path | str) -> LoadedPolicy:
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise PolicyError(f"policy file {path} does not exist. Check the path given to --policy.") from None
+    except (OSError, UnicodeDecodeError) as err:
+        raise PolicyError(f"policy file {path} cannot be read ({getattr(err, 'strerror', None) or err}). "
+                          "A policy is a UTF-8 YAML or JSON text file.") from None
+    if path.suffix.lower() == ".json":
+        try:
+            data = json.loads(text)
+        except json.JSONDecodeError as err:
+            raise PolicyError(f"policy file {path}: JSON syntax error at line {err.lineno}, column {err.colno}: "
+                              f"{err.msg}. Fix the syntax and try again.") from None
+    else:
+        try:
+            data = yaml.load(text, Loader=_UniqueKeyLoader)  # noqa: S506 - SafeLoader subclass
+        except yaml.YAMLError as err:
+            mark = getattr(err, "problem_mark", None)
+            where = f" at line {mark.line + 1}, column {mark.column + 1}" if mark is not None else ""
+            problem = getattr(err, "problem", None) or str(err)
+            raise PolicyError(f"policy file {path}: YAML syntax error{where}: {problem}. Fix the syntax "
+                              "(indentation, colons, brackets) and try again.") from None
+    return parse_policy(data, str(path))
+
+
+def policy_json_schema() -> dict[str, Any]:
+    schema = Policy.model_json_schema()
+    schema["$schema"] = "https://json-schema.org/draft/2020-12/schema"
+    schema["title"] = "ldptransform release policy"
+    return schema

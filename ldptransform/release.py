@@ -1,0 +1,382 @@
+"""The release: read the raw table in batches, randomize every column, write the
+extract, then the public manifest (last), and the steward's private diagnostics.
+
+The batch kernel ``privatize_batch`` is pure: (batch, global row offset, plan, key,
+nonce) -> privatized batch.  Row ``r`` of column ``c`` always draws the PRF words for
+(key, nonce, c, r), so the extract does not depend on the batch size.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from . import __version__
+from .errors import DataError, PolicyError, UsageError
+from .io import BatchWriter, StagedFiles, TableSource, check_destination, file_format, sha256_file, write_text_atomic
+from .keys import PRF_VERSION, KeyedStream, SecretKey, check_nonce, new_nonce
+from .manifest import CAUTIONS, ColumnEntry, ExtractInfo, Manifest, OutputColumn, Privacy, default_manifest_path, now_utc
+from .policy import LoadedPolicy, NumericColumn, ResolvedColumn
+
+DEFAULT_BATCH_ROWS = 65536
+_NUMBER = r"^\s*[-+]?((\d+(\.\d*)?)|(\.\d+))([eE][-+]?\d+)?\s*$"
+
+
+def private_dir() -> Path:
+    """The steward's private folder (mode 0700) for diagnostics and, later, the ledger.
+
+    $LDPT_PRIVATE_DIR if set, else $XDG_STATE_HOME/ldptransform, else ~/.local/state/ldptransform.
+    """
+    env = os.environ.get("LDPT_PRIVATE_DIR")
+    if env:
+        d = Path(env)
+    else:
+        base = os.environ.get("XDG_STATE_HOME") or str(Path.home() / ".local" / "state")
+        d = Path(base) / "ldptransform"
+    d.mkdir(parents=True, exist_ok=True, mode=0o700)
+    return d
+
+
+# -- per-column statistics kept for the steward only ------------------------------------
+
+@dataclass
+class ColumnDiagnostics:
+    missing: int = 0
+    filled: int = 0
+    unknown_as_other: int = 0
+    missing_as_category: int = 0
+    clipped_low: int = 0
+    clipped_high: int = 0
+
+    def as_dict(self) -> dict[str, int]:
+        return {k: v for k, v in self.__dict__.items()}
+
+
+@dataclass
+class ColumnPlan:
+    rc: ResolvedColumn
+    fields: list[pa.Field]
+    stream: KeyedStream | None = None
+    diag: ColumnDiagnostics = field(default_factory=ColumnDiagnostics)
+
+
+def _rows_text(mask: np.ndarray, row0: int) -> str:
+    idx = np.flatnonzero(mask)
+    first = int(idx[0]) + row0 + 1
+    return f"{idx.size} value(s) in this batch, the first at data row {first}"
+
+
+def _as_string_array(values: pa.Array) -> pa.Array:
+    if isinstance(values, pa.ChunkedArray):
+        values = values.combine_chunks()
+    if pa.types.is_dictionary(values.type):
+        values = values.dictionary_decode()
+    if pa.types.is_string(values.type) or pa.types.is_large_string(values.type):
+        return values
+    return pc.cast(values, pa.string())
+
+
+def encode_categorical(values: pa.Array, plan: ColumnPlan, row0: int) -> np.ndarray:
+    """Policy labels -> integer codes; missing/unknown handled as the policy says."""
+    rc = plan.rc
+    name = rc.name
+    strings = _as_string_array(values)
+    if pa.types.is_string(strings.type) or pa.types.is_large_string(strings.type):
+        strings = pc.utf8_trim_whitespace(strings)
+    missing = np.asarray(pc.is_null(strings).to_numpy(zero_copy_only=False))
+    if rc.type == "binned":
+        raise AssertionError("binned columns use encode_binned")
+    codes_arr = pc.index_in(strings, value_set=pa.array(rc.labels, pa.string()))
+    codes = np.asarray(pc.fill_null(codes_arr, -1).to_numpy(zero_copy_only=False)).astype(np.int64)
+    unknown = (codes < 0) & ~missing
+    if missing.any():
+        plan.diag.missing += int(missing.sum())
+        if rc.missing_code is None:
+            raise DataError(f"column {name!r} has missing values ({_rows_text(missing, row0)}) and the policy says "
+                            f"missing: error. Fill them in the input, or set missing: as-category for {name!r} to "
+                            "randomize 'missing' like any other answer.")
+        codes[missing] = rc.missing_code
+        plan.diag.missing_as_category += int(missing.sum())
+    if unknown.any():
+        if rc.other_code is None:
+            raise DataError(f"column {name!r} has values that are not among its declared categories "
+                            f"({_rows_text(unknown, row0)}). Add them to the policy's categories, or set "
+                            f"unknown: as-category to release them as {'<other>'!r}.")
+        codes[unknown] = rc.other_code
+        plan.diag.unknown_as_other += int(unknown.sum())
+    return codes
+
+
+def _to_float(values: pa.Array, name: str, row0: int) -> tuple[np.ndarray, np.ndarray]:
+    """Column -> (float64 values, missing mask).  Text that is not a number is an error."""
+    if isinstance(values, pa.ChunkedArray):
+        values = values.combine_chunks()
+    if pa.types.is_dictionary(values.type):
+        values = values.dictionary_decode()
+    t = values.type
+    if pa.types.is_string(t) or pa.types.is_large_string(t):
+        missing = np.asarray(pc.is_null(values).to_numpy(zero_copy_only=False))
+        ok = pc.fill_null(pc.match_substring_regex(values, _NUMBER), True)
+        ok_np = np.asarray(ok.to_numpy(zero_copy_only=False))
+        if not ok_np.all():
+            raise DataError(f"column {name!r} is numeric in the policy but holds text that is not a number "
+                            f"({_rows_text(~ok_np, row0)}). Clean the column (plain numbers such as 1234.5, no "
+                            "thousands separators or units), or mark such cells empty to treat them as missing.")
+        x = pc.cast(pc.utf8_trim_whitespace(values), pa.float64())
+    elif pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t):
+        x = pc.cast(values, pa.float64())
+        missing = np.asarray(pc.is_null(x).to_numpy(zero_copy_only=False))
+    elif pa.types.is_boolean(t):
+        x = pc.cast(values, pa.float64())
+        missing = np.asarray(pc.is_null(x).to_numpy(zero_copy_only=False))
+    else:
+        raise DataError(f"column {name!r} is numeric in the policy but the input stores it as {t}. Convert it to "
+                        "numbers, or change the column's type in the policy.")
+    arr = np.array(pc.fill_null(x, np.nan).to_numpy(zero_copy_only=False), dtype=np.float64)
+    missing = missing | np.isnan(arr)
+    inf = np.isinf(arr)
+    if inf.any():
+        raise DataError(f"column {name!r} holds infinite values ({_rows_text(inf, row0)}). Replace them with "
+                        "numbers within the bounds, or leave the cells empty to treat them as missing.")
+    return arr, missing
+
+
+def encode_numeric(values: pa.Array, plan: ColumnPlan, row0: int) -> np.ndarray:
+    rc = plan.rc
+    col: NumericColumn = rc.config
+    name = rc.name
+    x, missing = _to_float(values, name, row0)
+    if missing.any():
+        plan.diag.missing += int(missing.sum())
+        if col.missing == "error":
+            raise DataError(f"column {name!r} has missing values ({_rows_text(missing, row0)}) and the policy says "
+                            f"missing: error. Fill them in the input, or set missing: {{fill: VALUE}} for {name!r} "
+                            "(a value within the bounds).")
+        x[missing] = col.missing.fill
+        plan.diag.filled += int(missing.sum())
+    lo, hi = col.domain
+    low, high = x < lo, x > hi
+    if low.any() or high.any():
+        if col.out_of_bounds == "error":
+            bad = low | high
+            raise DataError(f"column {name!r} has values outside its bounds [{lo:g}, {hi:g}] "
+                            f"({_rows_text(bad, row0)}) and the policy says out_of_bounds: error. Widen the bounds "
+                            "or set out_of_bounds: clip.")
+        plan.diag.clipped_low += int(low.sum())
+        plan.diag.clipped_high += int(high.sum())
+        x = np.clip(x, lo, hi)
+    return x
+
+
+def encode_binned(values: pa.Array, plan: ColumnPlan, row0: int) -> np.ndarray:
+    col: NumericColumn = plan.rc.config
+    x = encode_numeric(values, plan, row0)
+    edges = np.asarray(col.bins, dtype=float)
+    codes = np.searchsorted(edges, x, side="right") - 1
+    return np.clip(codes, 0, len(edges) - 2).astype(np.int64)
+
+
+# -- planning -----------------------------------------------------------------------------
+
+def plan_columns(policy: LoadedPolicy, input_columns: list[str], source: str) -> list[ColumnPlan]:
+    by_name = policy.by_name
+    absent = [n for n in by_name if n not in input_columns]
+    if absent:
+        raise DataError(f"the policy names column(s) {', '.join(map(repr, absent))} that input {source} does not have "
+                        f"(its columns: {', '.join(map(repr, input_columns))}). Fix the names in the policy or "
+                        "remove those entries.")
+    unlisted = [n for n in input_columns if n not in by_name]
+    if unlisted and policy.policy.unlisted == "error":
+        raise DataError(f"input {source} has column(s) {', '.join(map(repr, unlisted))} that the policy does not "
+                        "name. Add each one to the policy (type: drop to leave it out), or set unlisted: drop.")
+    plans: list[ColumnPlan] = []
+    for name in input_columns:
+        rc = by_name.get(name)
+        if rc is None or rc.type == "drop":
+            continue
+        if rc.type == "public":
+            plans.append(ColumnPlan(rc, []))  # fields filled from the input schema
+        else:
+            assert rc.mechanism is not None
+            plans.append(ColumnPlan(rc, rc.mechanism.output_fields(name)))
+    if not plans:
+        raise PolicyError(f"policy {policy.source}: every column is dropped; there is nothing to release.")
+    return plans
+
+
+def _output_schema(plans: list[ColumnPlan], input_schema: pa.Schema, fmt_in: str) -> pa.Schema:
+    fields: list[pa.Field] = []
+    for p in plans:
+        if p.rc.type == "public":
+            t = pa.string() if fmt_in == "csv" else input_schema.field(p.rc.name).type
+            p.fields = [pa.field(p.rc.name, t)]
+        fields.extend(p.fields)
+    names = [f.name for f in fields]
+    clash = sorted({n for n in names if names.count(n) > 1})
+    if clash:
+        raise DataError(f"output column name(s) {', '.join(map(repr, clash))} would be written twice (an input "
+                        "column has the same name as a column another mechanism adds, such as NAME__hash). "
+                        "Rename the input column.")
+    return pa.schema(fields)
+
+
+def privatize_batch(batch: pa.RecordBatch, row0: int, plans: list[ColumnPlan], schema: pa.Schema) -> pa.RecordBatch:
+    """The pure batch kernel: raw batch rows [row0, row0+n) -> privatized batch."""
+    n = batch.num_rows
+    arrays: list[pa.Array] = []
+    for p in plans:
+        values = batch.column(p.rc.name)
+        if p.rc.type == "public":
+            arrays.append(values if values.type == p.fields[0].type else pc.cast(values, p.fields[0].type))
+            continue
+        if p.rc.type == "categorical":
+            x: np.ndarray = encode_categorical(values, p, row0)
+        elif p.rc.type == "binned":
+            x = encode_binned(values, p, row0)
+        else:
+            x = encode_numeric(values, p, row0)
+        m = p.rc.mechanism
+        assert m is not None and p.stream is not None
+        words = p.stream.words(row0, n, m.words_per_row)
+        arrays.extend(m.randomize(x, words))
+    return pa.RecordBatch.from_arrays(arrays, schema=schema)
+
+
+def column_entries(plans: list[ColumnPlan]) -> list[ColumnEntry]:
+    out = []
+    for p in plans:
+        rc = p.rc
+        if rc.type == "public":
+            out.append(ColumnEntry(name=rc.name, type="public", outputs=[OutputColumn(
+                name=rc.name, dtype=str(p.fields[0].type), meaning="copied from the input as is: NOT privatized")],
+                note="released in the clear; local differential privacy does not protect this column"))
+            continue
+        m = rc.mechanism
+        assert m is not None
+        outs = [OutputColumn(name=f.name, dtype=str(f.type), meaning=_meaning(m.name, f.name, rc.name))
+                for f in p.fields]
+        cfg = rc.config
+        out.append(ColumnEntry(
+            name=rc.name, type=rc.type, mechanism=m.to_spec(), chosen_because=rc.chosen_because,
+            labels=list(rc.labels) if rc.labels else None,
+            bins=[float(b) for b in cfg.bins] if rc.type == "binned" else None,
+            outputs=outs))
+    return out
+
+
+def _meaning(mech: str, out_name: str, col: str) -> str:
+    if mech == "grr":
+        return "reported category (randomized response over the mechanism's categories)"
+    if mech in ("oue", "sue"):
+        return "report bits: character j is the randomized bit of category j of the mechanism's categories"
+    if mech == "olh":
+        if out_name.endswith("__hash"):
+            return "public hash seed a*P+b of this row (P = 2^31-1)"
+        return "reported hash bucket (randomized response over the hash_range buckets)"
+    return "randomized value; on average equal to the true value (per-row unbiased estimate, column units)"
+
+
+@dataclass
+class ReleaseResult:
+    manifest: Manifest
+    extract_path: Path
+    manifest_path: Path
+    diagnostics_path: Path
+    seconds: float
+
+
+def privatize(input_path: Path | str, policy: LoadedPolicy, key: SecretKey, out: Path | str, *,
+              manifest_path: Path | str | None = None, diagnostics_path: Path | str | None = None,
+              batch_rows: int = DEFAULT_BATCH_ROWS, overwrite: bool = False, nonce: str | None = None,
+              on_progress: Callable[[int], None] | None = None) -> ReleaseResult:
+    """Privatize ``input_path`` under ``policy`` into ``out`` (+ manifest, + private diagnostics)."""
+    t0 = time.perf_counter()
+    input_path, out = Path(input_path), Path(out)
+    fmt_out = file_format(out, "output")
+    manifest_path = Path(manifest_path) if manifest_path else default_manifest_path(out)
+    if batch_rows < 1:
+        raise UsageError("--batch-rows must be a positive number of rows")
+    nonce = check_nonce(nonce) if nonce else new_nonce()
+    src = TableSource(input_path, csv_null_values=policy.policy.input.csv_null_values,
+                      csv_delimiter=policy.policy.input.csv_delimiter)
+    try:
+        same = out.exists() and out.resolve() == input_path.resolve()
+    except OSError:
+        same = False
+    if same or manifest_path.resolve() == input_path.resolve():
+        raise UsageError(f"output {out} is the input file; write the extract to another path.")
+    if manifest_path.resolve() == out.resolve():
+        raise UsageError("the manifest path and the output path are the same; give different paths.")
+    check_destination(out, "output", overwrite)
+    check_destination(manifest_path, "manifest", overwrite)
+    if diagnostics_path is None:
+        diagnostics_path = private_dir() / f"{out.stem}.{nonce[:12]}.PRIVATE-diagnostics.json"
+    diagnostics_path = Path(diagnostics_path)
+    check_destination(diagnostics_path, "diagnostics file", overwrite)
+
+    plans = plan_columns(policy, src.column_names, str(input_path))
+    schema = _output_schema(plans, src.schema, src.format)
+    for p in plans:
+        if p.rc.mechanism is not None:
+            p.stream = KeyedStream(key, nonce, "column", p.rc.name)
+    read_cols = [p.rc.name for p in plans]
+
+    rows = 0
+    with StagedFiles() as staged:
+        tmp_extract = staged.add(out)
+        writer = BatchWriter(tmp_extract, fmt_out, schema)
+        try:
+            for batch in src.batches(read_cols, batch_rows):
+                writer.write(privatize_batch(batch, rows, plans, schema))
+                rows += batch.num_rows
+                if on_progress is not None:
+                    on_progress(batch.num_rows)
+        finally:
+            writer.close()
+        digest, size = sha256_file(tmp_extract)
+        manifest = Manifest(
+            tool_version=__version__, created_utc=now_utc(), rows=rows, nonce=nonce,
+            key_fingerprint=key.fingerprint(), prf=PRF_VERSION, policy_sha256=policy.policy.sha256(),
+            policy=policy.policy.canonical(),
+            privacy=Privacy(
+                model="local differential privacy: every row is randomized on its own, column by column",
+                epsilon_per_row_budget=policy.policy.budget.epsilon_per_row,
+                epsilon_per_row_used=sum(p.rc.mechanism.epsilon for p in plans if p.rc.mechanism is not None),
+                composition="sequential: a row's epsilon is the sum over its privatized columns; releases about "
+                            "the same people add up",
+                public_columns=[p.rc.name for p in plans if p.rc.type == "public"]),
+            extract=ExtractInfo(file=out.name, format=fmt_out, sha256=digest, bytes=size, columns=schema.names),
+            columns=column_entries(plans), cautions=list(CAUTIONS))
+        tmp_manifest = staged.add(manifest_path)
+        write_text_atomic_into(tmp_manifest, manifest.to_json())
+        seconds = time.perf_counter() - t0
+        diag = {
+            "PRIVATE": "steward-only diagnostics: data-dependent counts. Do not give this file to partners.",
+            "extract": str(out), "manifest": str(manifest_path), "nonce": nonce, "rows": rows,
+            "seconds": round(seconds, 3), "batch_rows": batch_rows, "input": str(input_path),
+            "columns": {p.rc.name: p.diag.as_dict() for p in plans if p.rc.mechanism is not None},
+        }
+        tmp_diag = staged.add(diagnostics_path)
+        write_text_atomic_into(tmp_diag, json.dumps(diag, indent=2) + "\n", mode=0o600)
+        if overwrite and manifest_path.exists():
+            manifest_path.unlink()  # never leave an old manifest beside a new extract
+        staged.commit()
+    return ReleaseResult(manifest, out, manifest_path, diagnostics_path, time.perf_counter() - t0)
+
+
+def write_text_atomic_into(tmp: Path, text: str, mode: int = 0o644) -> None:
+    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, mode)
+    with os.fdopen(fd, "w", encoding="utf-8") as f:
+        f.write(text)
+        f.flush()
+        os.fsync(f.fileno())

@@ -1,0 +1,291 @@
+"""Release checks: integrity, privacy budget, output alphabet, secrets, and (with the raw
+data and the key) bit-for-bit reproduction and calibration of the estimates.
+
+Each check ends as pass, warn or fail; ``ok`` is False when any check fails.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import re
+import tempfile
+from dataclasses import dataclass, field
+from pathlib import Path
+from statistics import NormalDist
+from typing import Any
+
+import numpy as np
+
+from . import mechanisms as mech
+from .errors import LdptError
+from .estimate import CategoricalStats, NumericStats, accumulate, report, z_value
+from .io import TableSource, sha256_file
+from .keys import SecretKey
+from .manifest import Manifest, default_manifest_path, load_manifest
+from .policy import EPS_TOLERANCE, parse_policy
+from .release import ColumnPlan, encode_binned, encode_categorical, encode_numeric, plan_columns, privatize
+
+MIN_CALIBRATION_ROWS = 200  # common practice for a normal approximation of these means; no source
+FAMILY_ALPHA = 0.001  # calibration: chance of a false failure over all cells, for a correct release
+_HEX = re.compile(r"\b[0-9a-fA-F]{32,}\b")
+
+
+@dataclass
+class Check:
+    name: str
+    status: str  # pass | warn | fail
+    detail: str
+
+    def as_dict(self) -> dict[str, str]:
+        return {"check": self.name, "status": self.status, "detail": self.detail}
+
+
+@dataclass
+class ValidationReport:
+    extract: str
+    manifest: str
+    checks: list[Check] = field(default_factory=list)
+    calibration: dict[str, Any] | None = None
+
+    @property
+    def ok(self) -> bool:
+        return all(c.status != "fail" for c in self.checks)
+
+    def add(self, name: str, ok: bool | None, detail: str) -> None:
+        self.checks.append(Check(name, "pass" if ok else ("warn" if ok is None else "fail"), detail))
+
+    def as_dict(self) -> dict[str, Any]:
+        d: dict[str, Any] = {"extract": self.extract, "manifest": self.manifest, "ok": self.ok,
+                             "checks": [c.as_dict() for c in self.checks]}
+        if self.calibration is not None:
+            d["calibration"] = self.calibration
+        return d
+
+
+def _check_secrets(manifest: Manifest, text: str, key: SecretKey | None, rep: ValidationReport) -> None:
+    allowed = {manifest.extract.sha256, manifest.policy_sha256, manifest.nonce, manifest.key_fingerprint}
+    stray = [h for h in _HEX.findall(text) if h not in allowed]
+    problems = []
+    if stray:
+        problems.append(f"{len(stray)} long hex string(s) in unexpected places")
+    data = json.loads(text)
+
+    def walk(o: Any, path: str) -> None:
+        if isinstance(o, dict):
+            for k, v in o.items():
+                if "key" in k.lower() and k != "key_fingerprint" and not path.startswith("policy"):
+                    problems.append(f"a field named {k!r} at {path or 'top level'}")
+                walk(v, f"{path}.{k}" if path else k)
+        elif isinstance(o, list):
+            for v in o:
+                walk(v, path)
+
+    walk(data, "")
+    if key is not None:
+        if key.contains_in(text):
+            problems.append("the secret key itself")
+        if key.fingerprint() != manifest.key_fingerprint:
+            rep.add("key matches", False, "the key given has fingerprint "
+                    f"{key.fingerprint()}, the manifest records {manifest.key_fingerprint}: not the release's key")
+        else:
+            rep.add("key matches", True, f"key fingerprint {manifest.key_fingerprint} matches the manifest")
+    rep.add("no key material", not problems,
+            "the manifest holds only the key fingerprint" if not problems else "the manifest contains " + "; ".join(problems))
+
+
+def _check_privacy(manifest: Manifest, rep: ValidationReport) -> None:
+    issues = []
+    total = 0.0
+    for c in manifest.columns:
+        if c.mechanism is None:
+            continue
+        try:
+            m = mech.build(c.mechanism)
+        except LdptError as err:
+            issues.append(f"column {c.name!r}: mechanism spec cannot be rebuilt ({err})")
+            continue
+        eps = float(c.mechanism.get("epsilon", float("nan")))
+        total += eps
+        worst = m.max_log_ratio()
+        if not worst <= eps + 1e-9:
+            issues.append(f"column {c.name!r}: its channel allows a likelihood ratio of e^{worst:.6g}, above its "
+                          f"stated eps {eps:g}")
+    budget = manifest.privacy.epsilon_per_row_budget
+    if total > budget + EPS_TOLERANCE:
+        issues.append(f"the column epsilons add up to {total:g}, above the stated budget {budget:g} per row")
+    if abs(total - manifest.privacy.epsilon_per_row_used) > 1e-9:
+        issues.append(f"privacy.epsilon_per_row_used says {manifest.privacy.epsilon_per_row_used:g} but the columns "
+                      f"add up to {total:g}")
+    try:
+        lp = parse_policy(manifest.policy, "embedded in the manifest")
+        if lp.policy.sha256() != manifest.policy_sha256:
+            issues.append("the embedded policy does not match policy_sha256")
+        pol_eps = {rc.name: rc.mechanism.epsilon for rc in lp.columns if rc.mechanism is not None}
+        for c in manifest.columns:
+            if c.mechanism is not None and abs(pol_eps.get(c.name, -1) - float(c.mechanism["epsilon"])) > 1e-12:
+                issues.append(f"column {c.name!r}: mechanism eps differs from the policy's")
+    except LdptError as err:
+        issues.append(f"the embedded policy is invalid ({err})")
+    rep.add("privacy budget", not issues,
+            f"every channel meets its eps exactly; the columns use {total:g} of {budget:g} per row "
+            "(sequential composition)" if not issues else "; ".join(issues))
+    public = manifest.privacy.public_columns
+    if public:
+        rep.add("public columns", None, f"{', '.join(public)} copied in the clear: NOT protected by local DP "
+                "(they may identify people, alone or linked to other data)")
+
+
+def _true_stats(raw: Path, manifest: Manifest) -> dict[str, Any]:
+    """True frequencies and means of the raw data as the policy encodes them."""
+    lp = parse_policy(manifest.policy, "embedded in the manifest")
+    src = TableSource(raw, csv_null_values=lp.policy.input.csv_null_values, csv_delimiter=lp.policy.input.csv_delimiter)
+    plans = [p for p in plan_columns(lp, src.column_names, str(raw)) if p.rc.mechanism is not None]
+    counts = {p.rc.name: np.zeros(getattr(p.rc.mechanism, "k", 0), dtype=np.int64) for p in plans}
+    sums = {p.rc.name: 0.0 for p in plans}
+    n = 0
+    for batch in src.batches([p.rc.name for p in plans], 65536):
+        for p in plans:
+            v = batch.column(p.rc.name)
+            if p.rc.type == "categorical":
+                counts[p.rc.name] += np.bincount(encode_categorical(v, p, n), minlength=p.rc.mechanism.k)
+            elif p.rc.type == "binned":
+                counts[p.rc.name] += np.bincount(encode_binned(v, p, n), minlength=p.rc.mechanism.k)
+            else:
+                sums[p.rc.name] += float(encode_numeric(v, p, n).sum())
+        n += batch.num_rows
+    out: dict[str, Any] = {"rows": n}
+    for p in plans:
+        if p.rc.type == "numeric":
+            out[p.rc.name] = sums[p.rc.name] / max(n, 1)
+        else:
+            out[p.rc.name] = counts[p.rc.name] / max(n, 1)
+    return out
+
+
+def validate(extract: Path | str, manifest_path: Path | str | None = None, *, raw: Path | str | None = None,
+             key: SecretKey | None = None, confidence: float = 0.95) -> ValidationReport:
+    extract = Path(extract)
+    mpath = Path(manifest_path) if manifest_path else default_manifest_path(extract)
+    manifest = load_manifest(mpath)
+    text = mpath.read_text(encoding="utf-8")
+    rep = ValidationReport(str(extract), str(mpath))
+    if not extract.exists():
+        rep.add("extract present", False, f"{extract} does not exist")
+        return rep
+    digest, size = sha256_file(extract)
+    rep.add("extract hash", digest == manifest.extract.sha256 and size == manifest.extract.bytes,
+            f"sha256 {digest[:16]}... and {size} bytes match the manifest" if digest == manifest.extract.sha256
+            else f"sha256 of the file ({digest[:16]}...) differs from the manifest ({manifest.extract.sha256[:16]}...): "
+                 "the extract was changed or is not this manifest's")
+    if extract.name != manifest.extract.file:
+        rep.add("file name", None, f"the manifest describes {manifest.extract.file!r}; this file is named {extract.name!r}")
+    _check_privacy(manifest, rep)
+    _check_secrets(manifest, text, key, rep)
+
+    stats: dict[str, Any] | None = None
+    try:
+        src = TableSource(extract)
+        cols_ok = src.column_names == manifest.extract.columns
+        rep.add("columns", cols_ok, "the extract has exactly the columns the manifest lists" if cols_ok else
+                f"extract columns {src.column_names} differ from the manifest's {manifest.extract.columns}")
+        _, stats, rows = accumulate(extract, mpath, check_alphabet=False)
+    except LdptError as err:
+        if "rows but manifest" in str(err):
+            rep.add("row count", False, str(err))
+        else:
+            rep.add("extract readable", False, str(err))
+        stats = None
+    if stats is not None:
+        rep.add("row count", True, f"{rows} rows, as the manifest says")
+        bad = _count_invalid(extract, mpath, manifest)
+        rep.add("output alphabet", not bad, "every value lies in its mechanism's output alphabet" if not bad else
+                "values outside the output alphabet: " + ", ".join(f"{k} {v}" for k, v in bad.items()))
+
+    if raw is not None:
+        if key is None:
+            raise LdptError("--raw needs --key as well: re-deriving the extract takes the release's secret key.")
+        _reproduce(Path(raw), extract, manifest, key, rep)
+        if stats is not None:
+            rep.calibration = _calibrate(Path(raw), manifest, stats, rows, confidence, rep)
+    return rep
+
+
+def _count_invalid(extract: Path, mpath: Path, manifest: Manifest) -> dict[str, int]:
+    from .estimate import iter_column_arrays, open_extract
+
+    _, src, _ = open_extract(extract, mpath)
+    built = {c.name: mech.build(c.mechanism) for c in manifest.columns if c.mechanism is not None}
+    bad: dict[str, int] = {}
+    for _, cols in iter_column_arrays(manifest, src):
+        for name, arrays in cols.items():
+            k = built[name].count_invalid(arrays)
+            if k:
+                bad[name] = bad.get(name, 0) + k
+    return bad
+
+
+def _reproduce(raw: Path, extract: Path, manifest: Manifest, key: SecretKey, rep: ValidationReport) -> None:
+    lp = parse_policy(manifest.policy, "embedded in the manifest")
+    with tempfile.TemporaryDirectory(prefix="ldpt-validate-") as tmp:
+        out = Path(tmp) / manifest.extract.file
+        res = privatize(raw, lp, key, out, manifest_path=Path(tmp) / "m.json",
+                        diagnostics_path=Path(tmp) / "d.json", nonce=manifest.nonce)
+        digest = res.manifest.extract.sha256
+        specs_same = [c.mechanism for c in res.manifest.columns] == [c.mechanism for c in manifest.columns]
+        if digest == manifest.extract.sha256 and specs_same:
+            rep.add("reproduced", True, "re-deriving the extract from the raw data, the key and the manifest's nonce "
+                    "gives a bit-identical file")
+            return
+        same_values = False
+        try:
+            import pyarrow.parquet as pq  # noqa: F401
+            from .io import TableSource as _TS
+
+            a = _TS(out)
+            b = _TS(extract)
+            ta = [x for x in a.batches(a.column_names, 1 << 20)]
+            tb = [x for x in b.batches(b.column_names, 1 << 20)]
+            import pyarrow as pa
+
+            same_values = pa.Table.from_batches(ta).equals(pa.Table.from_batches(tb))
+        except LdptError:
+            same_values = False
+        if same_values and specs_same:
+            rep.add("reproduced", None, "every value re-derives identically, but the file bytes differ (written by "
+                    "another library version)")
+        else:
+            rep.add("reproduced", False, "re-deriving the extract from the raw data and key gives different values: "
+                    "the extract, the raw file, the key or the manifest is not the release's")
+
+
+def _calibrate(raw: Path, manifest: Manifest, stats: dict[str, Any], rows: int, confidence: float,
+               rep: ValidationReport) -> dict[str, Any]:
+    truth = _true_stats(raw, manifest)
+    est = report(manifest, stats, rows, confidence)
+    zs: list[tuple[str, float]] = []
+    inside = 0
+    for name, col in est["columns"].items():
+        if "frequencies" in col:
+            for f, t in zip(col["frequencies"], truth[name]):
+                if f["se"] > 0:
+                    zs.append((f"{name}={f['value']}", float((f["estimate"] - t) / f["se"])))
+                inside += int(f["ci_low"] <= float(t) <= f["ci_high"])
+        else:
+            m = col["mean"]
+            if m["se"]:
+                zs.append((f"{name} mean", (m["estimate"] - truth[name]) / m["se"]))
+            inside += int(m["ci_low"] <= truth[name] <= m["ci_high"])
+    total = sum(len(c.get("frequencies", [None])) for c in est["columns"].values())
+    worst = max(zs, key=lambda t: abs(t[1])) if zs else ("-", 0.0)
+    crit = NormalDist().inv_cdf(1 - FAMILY_ALPHA / (2 * max(len(zs), 1)))
+    ok: bool | None = abs(worst[1]) <= crit
+    share = inside / total if total else float("nan")
+    small = rows < MIN_CALIBRATION_ROWS
+    if small:
+        ok = None  # the normal approximation is not trustworthy on so few rows: report, do not judge
+    rep.add("calibration", ok, (f"only {rows} rows, too few to judge calibration (needs {MIN_CALIBRATION_ROWS}); " if small else "") +
+            f"{inside} of {total} true values ({share:.1%}) lie inside their {confidence:.0%} intervals; largest |z| "
+            f"{abs(worst[1]):.2f} ({worst[0]}), limit {crit:.2f} (family-wise {FAMILY_ALPHA:g})")
+    return {"statistics": total, "inside": inside, "share_inside": share, "confidence": confidence,
+            "max_abs_z": abs(worst[1]), "max_abs_z_at": worst[0], "z_limit": crit}
