@@ -147,6 +147,10 @@ def privatize(
 
 # -- estimate -------------------------------------------------------------------------------
 
+def _num(v: float | None, spec: str) -> str:
+    return "-" if v is None else format(v, spec)
+
+
 def _estimate_table(result: dict) -> None:
     out_console.print(f"{result['rows']} rows; {result['confidence']:.0%} intervals (normal approximation). "
                       "Estimates are unbiased and may fall slightly outside [0, 1]; 'consistent' is the "
@@ -158,14 +162,15 @@ def _estimate_table(result: dict) -> None:
             for h in ("value", "estimate", "se", "ci_low", "ci_high", "consistent"):
                 t.add_column(h, justify="left" if h == "value" else "right")
             for f in col["frequencies"]:
-                t.add_row(f["value"], f"{f['estimate']:.4f}", f"{f['se']:.4f}", f"{f['ci_low']:.4f}",
-                          f"{f['ci_high']:.4f}", f"{f['consistent']:.4f}")
+                t.add_row(f["value"], *(_num(f[k], ".4f") for k in ("estimate", "se", "ci_low", "ci_high",
+                                                                    "consistent")))
         else:
             t = Table(title=title, title_justify="left")
             for h in ("statistic", "estimate", "se", "ci_low", "ci_high"):
                 t.add_column(h, justify="left" if h == "statistic" else "right")
             m = col["mean"]
-            t.add_row("mean", f"{m['estimate']:.6g}", f"{m['se']:.4g}", f"{m['ci_low']:.6g}", f"{m['ci_high']:.6g}")
+            t.add_row("mean", _num(m["estimate"], ".6g"), _num(m["se"], ".4g"), _num(m["ci_low"], ".6g"),
+                      _num(m["ci_high"], ".6g"))
         out_console.print(t)
     if result.get("public_columns"):
         out_console.print(f"not estimated (public, released in the clear): {', '.join(result['public_columns'])}")
@@ -244,8 +249,10 @@ def validate(
     format: TableJson = typer.Option(TableJson.table, "--format", help="Output format."),
     confidence: float = typer.Option(0.95, "--confidence", help="Interval level used for calibration."),
 ) -> None:
-    """Check a release: integrity, privacy budget, output alphabet, no key material; with --raw and
-    --key also bit-for-bit reproduction and calibration. Exit 0 if every check passes, 1 if one fails.
+    """Check a release; exit 0 if every check passes, 1 if one fails.
+
+    Integrity, privacy budget, output alphabet, no key material; with --raw and --key also
+    bit-for-bit reproduction and calibration.
 
     Example: ldpt validate extract.parquet --raw survey.csv --key release.key
     """

@@ -62,6 +62,9 @@ class CategoricalStats:
 
     def frequencies(self, z: float) -> list[dict[str, Any]]:
         m, n = self.mechanism, self.n
+        if n == 0:
+            return [{"value": label, "estimate": None, "se": None, "ci_low": None, "ci_high": None,
+                     "count_estimate": 0.0, "consistent": None} for label in m.categories]
         p, q = m.p_star, m.q_star
         d = p - q
         s = self.support.astype(float)

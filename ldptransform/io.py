@@ -85,7 +85,7 @@ class TableSource:
 
     def _open_csv(self, columns: list[str] | None, types: dict[str, pa.DataType]) -> Any:
         read = pacsv.ReadOptions(block_size=CSV_BLOCK_BYTES, use_threads=True)
-        parse = pacsv.ParseOptions(delimiter=self._delim, newlines_in_values=False)
+        parse = pacsv.ParseOptions(delimiter=self._delim, newlines_in_values=True)
         conv = pacsv.ConvertOptions(include_columns=columns, column_types=types, null_values=self._nulls,
                                     strings_can_be_null=True, quoted_strings_can_be_null=True)
         return contextlib.closing(pacsv.open_csv(self.path, read_options=read, parse_options=parse,

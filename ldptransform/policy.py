@@ -72,6 +72,9 @@ class CategoricalColumn(_Strict):
         dups = sorted({x for x in labels if x in seen or seen.add(x)})  # type: ignore[func-returns-value]
         if dups:
             raise ValueError(f"categories has duplicates: {', '.join(map(repr, dups))}; list each value once")
+        if "" in labels:
+            raise ValueError("an empty category cannot be told apart from a missing value; use missing: "
+                             "as-category instead")
         for special in (MISSING_LABEL, OTHER_LABEL):
             if special in labels:
                 raise ValueError(f"{special!r} is reserved for values the tool adds; rename that category")

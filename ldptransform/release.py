@@ -325,6 +325,15 @@ def privatize(input_path: Path | str, policy: LoadedPolicy, key: SecretKey, out:
     check_destination(diagnostics_path, "diagnostics file", overwrite)
 
     plans = plan_columns(policy, src.column_names, str(input_path))
+    if src.format == "csv":
+        nulls = set(policy.policy.input.csv_null_values)
+        for p in plans:
+            clash = [lab for lab in p.rc.labels if lab in nulls]
+            if clash:
+                raise PolicyError(f"policy {policy.source}: column {p.rc.name!r}, field 'categories': "
+                                  f"{', '.join(map(repr, clash))} is also a CSV missing-value marker "
+                                  "(input.csv_null_values), so such cells would be read as missing. Remove it "
+                                  "from input.csv_null_values or rename the category.")
     schema = _output_schema(plans, src.schema, src.format)
     for p in plans:
         if p.rc.mechanism is not None:

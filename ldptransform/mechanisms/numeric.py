@@ -5,6 +5,10 @@ t in [-1, 1] and rounded at random to the grid t_i = -1 + 2i/N (to t_i or t_{i+1
 probabilities that keep E[t_i] = t), then sent through a finite channel Q[i, j] whose
 output values o_j satisfy sum_j Q[i, j] o_j = t_i exactly.  Random rounding is a mixture
 of two channels, so it keeps the eps bound and unbiasedness for every t in [-1, 1].
+The channel is held as whole-number masses in units of 2^-50 and sampled by exact integer
+comparison with the top 50 bits of a PRF word, so ``channel()`` is exactly the realized
+channel and its eps bound is checked on what is actually sampled (the masses differ from
+the real-valued channel by at most a few units, i.e. a mean error below 1e-11).
 
 * two-point: J. C. Duchi, M. I. Jordan, M. J. Wainwright, "Minimax Optimal Procedures for
   Locally Private Estimation", JASA 2018.  Output +-C with C = (e^eps+1)/(e^eps-1) and
@@ -42,6 +46,10 @@ from .base import Mechanism, check_epsilon, register
 
 DEFAULT_GRID = 256
 HYBRID_THRESHOLD = 0.61
+# The channel is stored and sampled as integer masses in units of 2^-SAMPLING_BITS; the
+# second-stage uniform is the top SAMPLING_BITS bits of a PRF word.  50 bits keep the
+# flattened threshold table (N+1) * 2^50 below 2^63 for every allowed grid (N <= 4096).
+SAMPLING_BITS = 50
 
 
 def check_bounds(bounds: Any, where: str) -> tuple[float, float]:
@@ -97,9 +105,32 @@ class GridMechanism(Mechanism):
         """Output alphabet in normalized units, sorted, shape (M,)."""
         return self._structure[0]
 
+    @cached_property
+    def _integer_channel(self) -> np.ndarray:
+        """The channel as masses in units of 2^-SAMPLING_BITS (whole numbers held exactly in
+        float64): exactly what ``randomize_index`` realizes.  Each mass is within one unit
+        of the float channel (cumulative rounding of the remainders keeps every row's
+        total); then, per output, masses are raised to ceil(max / e^eps) so no input gets
+        more than e^eps times the mass of another, and each row's few units of surplus
+        come off its largest cell.  Without this a cell of tiny probability could be
+        realized as 0 for one input and > 0 for another (an unbounded privacy loss)."""
+        S = float(1 << SAMPLING_BITS)
+        X = self._structure[1] * S
+        F = np.floor(X)
+        X -= F
+        np.cumsum(X, axis=1, out=X)
+        np.round(X, out=X)
+        F[:, 0] += X[:, 0]
+        F[:, 1:] += np.diff(X, axis=1)
+        del X
+        need = np.ceil(F.max(axis=0) / math.exp(self.epsilon))
+        np.maximum(F, need[None, :], out=F)
+        F[np.arange(F.shape[0]), F.argmax(axis=1)] += S - F.sum(axis=1)
+        return F
+
     def channel(self) -> np.ndarray:
-        """Exact P(output j | grid input i), shape (N+1, M)."""
-        return self._structure[1]
+        """Exact P(output j | grid input i) as realized by the sampler, shape (N+1, M)."""
+        return self._integer_channel / float(1 << SAMPLING_BITS)
 
     @cached_property
     def output_values(self) -> np.ndarray:
@@ -114,10 +145,10 @@ class GridMechanism(Mechanism):
 
     @cached_property
     def _sampling_table(self) -> np.ndarray:
-        Q = self.channel()
-        cdf = np.cumsum(Q, axis=1)
-        cdf[:, -1] = 1.0
-        return (cdf + np.arange(Q.shape[0])[:, None]).ravel()
+        """Row i's integer cumulative masses offset by i * 2^SAMPLING_BITS, flattened (int64)."""
+        cum = np.cumsum(self._integer_channel, axis=1).astype(np.int64)  # exact: sums <= 2^50
+        cum += np.arange(cum.shape[0], dtype=np.int64)[:, None] << SAMPLING_BITS
+        return cum.ravel()
 
     # randomization ---------------------------------------------------------------
     @property
@@ -135,7 +166,9 @@ class GridMechanism(Mechanism):
         frac = s - i0
         i = i0 + (to_unit(words[:, 0]) < frac)
         M = self.outputs.shape[0]
-        pos = np.searchsorted(self._sampling_table, i + to_unit(words[:, 1]), side="right") - i * M
+        # exact integer comparison: output j iff cum[i, j-1] <= u < cum[i, j], u uniform on [0, 2^50)
+        u = (words[:, 1] >> np.uint64(64 - SAMPLING_BITS)).astype(np.int64)
+        pos = np.searchsorted(self._sampling_table, (i << SAMPLING_BITS) + u, side="right") - i * M
         return np.clip(pos, 0, M - 1)
 
     def randomize(self, x: np.ndarray, words: np.ndarray) -> list[pa.Array]:
@@ -158,7 +191,9 @@ class GridMechanism(Mechanism):
     # analysis --------------------------------------------------------------------
     def max_log_ratio(self) -> float:
         Q = self.channel()
-        return float(np.max(np.log(Q.max(axis=0)) - np.log(Q.min(axis=0))))
+        used = Q.max(axis=0) > 0  # an output no input can produce reveals nothing
+        with np.errstate(divide="ignore"):
+            return float(np.max(np.log(Q.max(axis=0)[used]) - np.log(Q.min(axis=0)[used])))
 
     def second_moments(self) -> np.ndarray:
         return self.channel() @ (self.outputs ** 2)
