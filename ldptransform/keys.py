@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import hashlib
 import hmac
+import math
 import os
 import secrets
 import stat
@@ -187,6 +188,20 @@ class KeyedStream:
 def to_unit(words: np.ndarray) -> np.ndarray:
     """uint64 words -> floats uniform on the 2^-53 grid in [0, 1)."""
     return (words >> np.uint64(11)).astype(np.float64) * _U53
+
+
+def unit_below(words: np.ndarray, t: float) -> np.ndarray:
+    """``to_unit(words) < t`` exactly, by one integer comparison (no float array).
+
+    to_unit(w) = m * 2^-53 with m = w >> 11, and for integer m, m * 2^-53 < t iff
+    m < ceil(t * 2^53) iff w < ceil(t * 2^53) * 2^11 (all exact for 0 < t < 1).
+    """
+    t = float(t)
+    if not t > 0.0:
+        return np.zeros(words.shape, dtype=bool)
+    if t >= 1.0:
+        return np.ones(words.shape, dtype=bool)
+    return words < np.uint64(math.ceil(t * (1 << 53)) << 11)
 
 
 def to_below(words: np.ndarray, bound: int) -> np.ndarray:

@@ -19,7 +19,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from ..errors import PolicyError
-from ..keys import to_below, to_unit
+from ..keys import to_below, to_unit, unit_below
 from .base import Mechanism, check_epsilon, register
 
 MAX_CATEGORIES = 1 << 20
@@ -168,11 +168,11 @@ class _UnaryEncoding(FrequencyOracle):
         return [pa.field(column, pa.string())]
 
     def randomize_bits(self, x: np.ndarray, words: np.ndarray) -> np.ndarray:
-        n = x.shape[0]
-        u = to_unit(words)
-        thresh = np.full((n, self.k), self.q_star)
-        thresh[np.arange(n), x] = self.p_star
-        return u < thresh
+        # bit j = to_unit(word j) < (p* if j == x else q*), compared as integers (keys.unit_below)
+        rows = np.arange(x.shape[0])
+        bits = unit_below(words, self.q_star)
+        bits[rows, x] = unit_below(words[rows, x], self.p_star)
+        return bits
 
     def randomize(self, x: np.ndarray, words: np.ndarray) -> list[pa.Array]:
         return [bits_to_strings(self.randomize_bits(x, words))]

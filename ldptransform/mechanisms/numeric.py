@@ -168,7 +168,17 @@ class GridMechanism(Mechanism):
         M = self.outputs.shape[0]
         # exact integer comparison: output j iff cum[i, j-1] <= u < cum[i, j], u uniform on [0, 2^50)
         u = (words[:, 1] >> np.uint64(64 - SAMPLING_BITS)).astype(np.int64)
-        pos = np.searchsorted(self._sampling_table, (i << SAMPLING_BITS) + u, side="right") - i * M
+        keys = (i << SAMPLING_BITS) + u
+        table = self._sampling_table
+        if table.size > 64 and keys.size > 64:
+            # Same search on sorted keys (then put back in row order): the table is walked in
+            # order instead of at random, several times faster for large grids; same result.
+            order = np.argsort(keys)
+            pos = np.empty_like(keys)
+            pos[order] = np.searchsorted(table, keys[order], side="right")
+        else:
+            pos = np.searchsorted(table, keys, side="right")
+        pos -= i * M
         return np.clip(pos, 0, M - 1)
 
     def randomize(self, x: np.ndarray, words: np.ndarray) -> list[pa.Array]:
