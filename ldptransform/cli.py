@@ -17,6 +17,7 @@ from typing import Iterator, Optional
 
 import typer
 from rich.console import Console
+from rich.markup import escape
 from rich.table import Table
 
 from . import __version__
@@ -49,17 +50,21 @@ def _user_errors() -> Iterator[None]:
     try:
         yield
     except LdptError as err:
-        err_console.print(f"[bold red]Error:[/] {err}", markup=True, highlight=False)
+        err_console.print(f"[bold red]Error:[/] {escape(str(err))}", markup=True, highlight=False)
         raise typer.Exit(code=err.exit_code) from None
     except PermissionError as err:
-        err_console.print(f"[bold red]Error:[/] permission denied on {err.filename}: check that you may read or "
-                          "write it.", markup=True)
+        err_console.print(f"[bold red]Error:[/] permission denied on {escape(str(err.filename))}: check that you "
+                          "may read or write it.", markup=True)
         raise typer.Exit(code=2) from None
     except OSError as err:
         where = f" on {err.filename}" if getattr(err, "filename", None) else ""
-        err_console.print(f"[bold red]Error:[/] {err.strerror or err}{where}. Check the path, free disk space and "
-                          "permissions.", markup=True)
+        err_console.print(f"[bold red]Error:[/] {escape(str(err.strerror or err) + where)}. Check the path, free "
+                          "disk space and permissions.", markup=True)
         raise typer.Exit(code=2) from None
+    except KeyboardInterrupt:
+        err_console.print("interrupted: stopped before finishing; nothing was left at the destination.",
+                          markup=False)
+        raise typer.Exit(code=130) from None
 
 
 def _version(value: bool) -> None:
@@ -88,7 +93,7 @@ def key_new(path: Path = typer.Argument(..., help="Where to write the key file (
     with _user_errors():
         key = new_key_file(path)
     err_console.print(f"wrote a new secret key to {path} (fingerprint {key.fingerprint()}). Keep it private and "
-                      "backed up: reproducing or auditing a release needs it.")
+                      "backed up: reproducing or auditing a release needs it.", markup=False)
 
 
 # -- privatize ------------------------------------------------------------------------------
@@ -142,7 +147,7 @@ def privatize(
                if public else "")
     err_console.print(f"privatized {res.manifest.rows} rows into {res.extract_path} (manifest {res.manifest_path}; "
                       f"steward-only diagnostics {res.diagnostics_path}) in {res.seconds:.1f} s, "
-                      f"eps {res.manifest.privacy.epsilon_per_row_used:g} per row{caution}")
+                      f"eps {res.manifest.privacy.epsilon_per_row_used:g} per row{caution}", markup=False)
 
 
 # -- estimate -------------------------------------------------------------------------------
@@ -156,13 +161,13 @@ def _estimate_table(result: dict) -> None:
                       "Estimates are unbiased and may fall slightly outside [0, 1]; 'consistent' is the "
                       "Norm-Sub projection to a valid distribution.")
     for name, col in result["columns"].items():
-        title = f"{name}: {col['type']}, {col['mechanism']}, eps {col['epsilon']:g}"
+        title = escape(f"{name}: {col['type']}, {col['mechanism']}, eps {col['epsilon']:g}")
         if "frequencies" in col:
             t = Table(title=title, title_justify="left")
             for h in ("value", "estimate", "se", "ci_low", "ci_high", "consistent"):
                 t.add_column(h, justify="left" if h == "value" else "right")
             for f in col["frequencies"]:
-                t.add_row(f["value"], *(_num(f[k], ".4f") for k in ("estimate", "se", "ci_low", "ci_high",
+                t.add_row(escape(f["value"]), *(_num(f[k], ".4f") for k in ("estimate", "se", "ci_low", "ci_high",
                                                                     "consistent")))
         else:
             t = Table(title=title, title_justify="left")
@@ -173,7 +178,8 @@ def _estimate_table(result: dict) -> None:
                       _num(m["ci_high"], ".6g"))
         out_console.print(t)
     if result.get("public_columns"):
-        out_console.print(f"not estimated (public, released in the clear): {', '.join(result['public_columns'])}")
+        out_console.print(f"not estimated (public, released in the clear): {', '.join(result['public_columns'])}",
+                          markup=False)
 
 
 def _estimate_csv(result: dict) -> str:
@@ -233,7 +239,7 @@ def estimate(
                 return
         if out is not None:
             write_text_atomic(out, text)
-            err_console.print(f"wrote estimates to {out}")
+            err_console.print(f"wrote estimates to {out}", markup=False)
         else:
             sys.stdout.write(text)
 
@@ -270,13 +276,13 @@ def validate(
     if format == TableJson.json:
         sys.stdout.write(json.dumps(rep.as_dict(), indent=2) + "\n")
     else:
-        t = Table(title=f"validation of {rep.extract} (manifest {rep.manifest})", title_justify="left")
+        t = Table(title=escape(f"validation of {rep.extract} (manifest {rep.manifest})"), title_justify="left")
         t.add_column("check")
         t.add_column("status")
         t.add_column("detail", overflow="fold")
         colors = {"pass": "green", "warn": "yellow", "fail": "bold red"}
         for c in rep.checks:
-            t.add_row(c.name, f"[{colors[c.status]}]{c.status}[/]", c.detail)
+            t.add_row(escape(c.name), f"[{colors[c.status]}]{c.status}[/]", escape(c.detail))
         out_console.print(t)
         out_console.print("result: " + ("[green]all checks passed[/]" if rep.ok else "[bold red]FAILED[/]"))
     raise typer.Exit(code=0 if rep.ok else 1)
@@ -291,7 +297,7 @@ def policy_check(policy: Path = typer.Argument(..., help="Policy file to check."
 
     with _user_errors():
         lp = load_policy(policy)
-    t = Table(title=f"{policy}: valid", title_justify="left")
+    t = Table(title=escape(f"{policy}: valid"), title_justify="left")
     for h in ("column", "type", "mechanism", "eps", "domain"):
         t.add_column(h)
     for rc in lp.columns:
@@ -304,7 +310,7 @@ def policy_check(policy: Path = typer.Argument(..., help="Policy file to check."
         else:
             dom = "released in the clear (NOT protected)" if rc.type == "public" else "not released"
         mname = (m.name + (" (auto)" if rc.chosen_because else "")) if m else "-"
-        t.add_row(rc.name, rc.type, mname, f"{m.epsilon:g}" if m else "-", dom)
+        t.add_row(escape(rc.name), rc.type, mname, f"{m.epsilon:g}" if m else "-", escape(dom))
     out_console.print(t)
     out_console.print(f"eps per row: {lp.epsilon_total:g} of the budget {lp.policy.budget.epsilon_per_row:g}")
 
@@ -320,12 +326,14 @@ def policy_schema() -> None:
 # -- demo -----------------------------------------------------------------------------------
 
 @app.command()
-def demo(dir: Path = typer.Option(Path("demo_out"), "--dir", help="Folder for the demo's files.")) -> None:
+def demo(dir: Path = typer.Option(Path("demo_out"), "--dir", help="Folder for the demo's files."),
+         nonce: Optional[str] = typer.Option(None, "--nonce", help="Reuse a release nonce (to repeat a demo run "
+                                             "exactly with the same key).")) -> None:
     """Make the demo data (a fictional staff survey), privatize, estimate and validate it."""
     from .demo import run_demo
 
     with _user_errors():
-        code = run_demo(dir, out_console, err_console)
+        code = run_demo(dir, out_console, err_console, nonce=nonce)
     raise typer.Exit(code=code)
 
 

@@ -61,7 +61,7 @@ def bundled_policy(name: str = "staff_survey.yaml") -> Path:
         return Path(p)
 
 
-def run_demo(folder: Path, out: Console, err: Console) -> int:
+def run_demo(folder: Path, out: Console, err: Console, nonce: str | None = None) -> int:
     from .estimate import estimate
     from .keys import load_key, new_key_file
     from .policy import load_policy
@@ -82,11 +82,11 @@ def run_demo(folder: Path, out: Console, err: Console) -> int:
     lp = load_policy(policy_path)
     extract = partner / "staff_survey_extract.parquet"
     res = privatize(raw, lp, key, extract, diagnostics_path=steward / "release.PRIVATE-diagnostics.json",
-                    overwrite=True)
-    out.print(f"1. privatized {res.manifest.rows} rows of the invented survey {raw} under {policy_path}")
-    out.print(f"   extract {extract} and manifest {res.manifest_path} (for the partner)")
-    out.print(f"   steward-only: key {key_path}, diagnostics {res.diagnostics_path}")
-    out.print("2. the partner's estimates from the extract alone:")
+                    overwrite=True, nonce=nonce)
+    out.print(f"1. privatized {res.manifest.rows} rows of the invented survey {raw} under {policy_path}", markup=False)
+    out.print(f"   extract {extract} and manifest {res.manifest_path} (for the partner)", markup=False)
+    out.print(f"   steward-only: key {key_path}, diagnostics {res.diagnostics_path}", markup=False)
+    out.print("2. the partner's estimates from the extract alone:", markup=False)
     result = estimate(extract)
     from .cli import _estimate_table
 
@@ -94,11 +94,11 @@ def run_demo(folder: Path, out: Console, err: Console) -> int:
     import json
 
     (partner / "estimates.json").write_text(json.dumps(result, indent=2) + "\n")
-    out.print("3. the steward's validation, with the raw data and the key:")
+    out.print("3. the steward's validation, with the raw data and the key:", markup=False)
     rep = validate(extract, raw=raw, key=key)
     for c in rep.checks:
-        out.print(f"   {c.status:4}  {c.name}: {c.detail}")
-    out.print(f"done: everything is under {folder}/ (estimates also in {partner / 'estimates.json'}).")
+        out.print(f"   {c.status:4}  {c.name}: {c.detail}", markup=False)
+    out.print(f"done: everything is under {folder}/ (estimates also in {partner / 'estimates.json'}).", markup=False)
     out.print("Cautions: eps is a policy choice; the public column survey_wave is NOT protected; linkage with other "
               "data can expose people. Real releases follow local law and your privacy officer's review.")
     return 0 if rep.ok else 1

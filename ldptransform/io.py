@@ -18,6 +18,7 @@ import re
 import secrets
 import signal
 from collections.abc import Iterator
+from concurrent.futures import Future, ThreadPoolExecutor
 from pathlib import Path
 from typing import Any
 
@@ -29,7 +30,7 @@ from .errors import DataError, InputFileError, OutputExistsError, UsageError
 
 FORMATS = {".csv": "csv", ".parquet": "parquet", ".pq": "parquet"}
 ROW_GROUP_ROWS = 131072
-CSV_BLOCK_BYTES = 1 << 22
+CSV_BLOCK_BYTES = 1 << 20
 _PARTIAL = re.compile(r"^\.(?P<name>.+)\.ldpt-partial-(?P<pid>\d+)-[0-9a-f]{8}$")
 
 
@@ -134,25 +135,42 @@ def _clean_arrow_message(err: Exception) -> str:
     return msg[:200]
 
 
+def _concat(parts: list[pa.RecordBatch]) -> pa.RecordBatch:
+    if len(parts) == 1:
+        return parts[0]
+    return pa.Table.from_batches(parts).combine_chunks().to_batches()[0]
+
+
 def _rebatch(source: Iterator[pa.RecordBatch], rows: int) -> Iterator[pa.RecordBatch]:
+    """Cut the source's batches into batches of exactly ``rows`` rows (the last may be shorter).
+
+    Batches that already have the right size (the Parquet reader's) pass through as they
+    are, larger ones are sliced without copying, and only a batch made of pieces of
+    several source batches is copied together.
+    """
     pending: list[pa.RecordBatch] = []
     have = 0
     for b in source:
-        if b.num_rows == 0:
+        n = b.num_rows
+        if n == 0:
             continue
-        pending.append(b)
-        have += b.num_rows
-        while have >= rows:
-            table = pa.Table.from_batches(pending)
-            head = table.slice(0, rows).combine_chunks().to_batches()
-            out = head[0] if head else pa.RecordBatch.from_pylist([], schema=table.schema)
-            rest = table.slice(rows)
-            pending = [rb for rb in rest.combine_chunks().to_batches() if rb.num_rows] if rest.num_rows else []
-            have -= rows
-            yield out
+        start = 0
+        if have:
+            need = rows - have
+            if n < need:
+                pending.append(b)
+                have += n
+                continue
+            pending.append(b.slice(0, need))
+            yield _concat(pending)
+            pending, have, start = [], 0, need
+        while n - start >= rows:
+            yield b if (start == 0 and n == rows) else b.slice(start, rows)
+            start += rows
+        if start < n:
+            pending, have = [b.slice(start)], n - start
     if have:
-        table = pa.Table.from_batches(pending).combine_chunks()
-        yield table.to_batches()[0]
+        yield _concat(pending)
 
 
 # -- writing ------------------------------------------------------------------------------
@@ -200,16 +218,19 @@ def check_destination(dest: Path, role: str, overwrite: bool) -> None:
 class StagedFiles:
     """Temporary files beside their destinations, renamed into place by ``commit()``.
 
-    Used as a context manager: on any exception (or SIGTERM/SIGINT, which are turned
-    into exceptions while it is active) every temporary file is removed and nothing is
-    renamed.  ``commit`` renames in the order the files were added; the caller adds the
-    manifest last.
+    Used as a context manager: on any exception every temporary file is removed and
+    nothing is renamed.  SIGTERM/SIGINT/SIGHUP, while it is active, only set a flag (an
+    exception raised from a signal handler can land anywhere, for instance inside a lazy
+    import or code that swallows it); ``check()`` between batches and ``commit()`` turn
+    the flag into KeyboardInterrupt.  A second signal raises at once.  ``commit`` renames
+    in the order the files were added; the caller adds the manifest last.
     """
 
     def __init__(self) -> None:
         self._items: list[tuple[Path, Path]] = []
         self._committed = False
         self._old_handlers: dict[int, Any] = {}
+        self.stop_signal: int | None = None
 
     def add(self, dest: Path) -> Path:
         dest = Path(dest)
@@ -220,7 +241,10 @@ class StagedFiles:
 
     def __enter__(self) -> "StagedFiles":
         def _raise(signum: int, frame: Any) -> None:
-            raise KeyboardInterrupt(f"stopped by signal {signum}")
+            again = self.stop_signal is not None
+            self.stop_signal = signum
+            if again:
+                raise KeyboardInterrupt(f"stopped by signal {signum}")
 
         for sig in (signal.SIGTERM, signal.SIGINT, signal.SIGHUP):
             with contextlib.suppress(ValueError, OSError):  # not in the main thread
@@ -242,14 +266,29 @@ class StagedFiles:
             with contextlib.suppress(OSError):
                 tmp.unlink()
 
+    def check(self) -> None:
+        """Raise KeyboardInterrupt if a signal asked the run to stop."""
+        if self.stop_signal is not None:
+            raise KeyboardInterrupt(f"stopped by signal {self.stop_signal}")
+
     def commit(self) -> None:
+        self.check()
         for tmp, dest in self._items:
             os.replace(tmp, dest)
         self._committed = True
 
 
 class BatchWriter:
-    """Writes record batches to CSV or Parquet with a fixed schema."""
+    """Writes record batches to CSV or Parquet with a fixed schema.
+
+    Encoding and compressing a chunk run in one background thread while the caller
+    randomizes the next batch (pyarrow releases the GIL while it writes).  At most one
+    chunk is in flight, so memory holds at most one extra row group, and chunks are
+    written one after another in order: the bytes are those of a plain sequential write.
+    After every ROW_GROUP_ROWS rows written, the thread hands the encoder's freed buffers
+    back to the system, which keeps peak memory flat however many rows are written.
+    An error of the writer is raised by the next ``write`` or by ``close``.
+    """
 
     def __init__(self, path: Path, fmt: str, schema: pa.Schema) -> None:
         self.path, self.format, self.schema = Path(path), fmt, schema
@@ -263,12 +302,31 @@ class BatchWriter:
             self._csv_schema = pa.schema([pa.field(f.name, f.type.value_type if pa.types.is_dictionary(f.type)
                                                    else f.type) for f in schema])
             self._writer = pacsv.CSVWriter(self.path, self._csv_schema)
+        self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="ldpt-writer")
+        self._pending: Future | None = None
+        self._unreleased = 0  # rows written since the last release_unused (writer thread only)
+
+    def _submit(self, rows: int, fn: Any, *args: Any, **kwargs: Any) -> None:
+        self._wait()
+        self._pending = self._pool.submit(self._run, rows, fn, args, kwargs)
+
+    def _run(self, rows: int, fn: Any, args: tuple, kwargs: dict) -> None:
+        fn(*args, **kwargs)
+        self._unreleased += rows
+        if self._unreleased >= ROW_GROUP_ROWS:
+            pa.default_memory_pool().release_unused()
+            self._unreleased = 0
+
+    def _wait(self) -> None:
+        if self._pending is not None:
+            pending, self._pending = self._pending, None
+            pending.result()
 
     def write(self, batch: pa.RecordBatch) -> None:
         self.rows += batch.num_rows
         if self.format == "csv":
             cols = [c.dictionary_decode() if pa.types.is_dictionary(c.type) else c for c in batch.columns]
-            self._writer.write_batch(pa.record_batch(cols, schema=self._csv_schema))
+            self._submit(batch.num_rows, self._writer.write_batch, pa.record_batch(cols, schema=self._csv_schema))
             return
         self._buffer.append(batch)
         self._buffered += batch.num_rows
@@ -277,15 +335,19 @@ class BatchWriter:
 
     def _flush(self, rows: int) -> None:
         table = pa.Table.from_batches(self._buffer, schema=self.schema)
-        self._writer.write_table(table.slice(0, rows), row_group_size=rows)
+        self._submit(rows, self._writer.write_table, table.slice(0, rows), row_group_size=rows)
         rest = table.slice(rows)
         self._buffer = rest.to_batches() if rest.num_rows else []
         self._buffered = rest.num_rows
 
     def close(self) -> None:
-        if self.format == "parquet" and self._buffered:
-            self._flush(self._buffered)
-        self._writer.close()
+        try:
+            if self.format == "parquet" and self._buffered:
+                self._flush(self._buffered)
+            self._wait()
+        finally:
+            self._pool.shutdown(wait=True)
+            self._writer.close()
 
 
 def sha256_file(path: Path, chunk: int = 1 << 22) -> tuple[str, int]:

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import json
 import os
+import secrets
 import sys
 import time
 from collections.abc import Callable
@@ -320,7 +321,8 @@ def privatize(input_path: Path | str, policy: LoadedPolicy, key: SecretKey, out:
     check_destination(out, "output", overwrite)
     check_destination(manifest_path, "manifest", overwrite)
     if diagnostics_path is None:
-        diagnostics_path = private_dir() / f"{out.stem}.{nonce[:12]}.PRIVATE-diagnostics.json"
+        # a fresh name per run: re-running a release (same nonce, same file name) must not collide
+        diagnostics_path = private_dir() / f"{out.stem}.{nonce[:12]}.{secrets.token_hex(4)}.PRIVATE-diagnostics.json"
     diagnostics_path = Path(diagnostics_path)
     check_destination(diagnostics_path, "diagnostics file", overwrite)
 
@@ -348,6 +350,7 @@ def privatize(input_path: Path | str, policy: LoadedPolicy, key: SecretKey, out:
             for batch in src.batches(read_cols, batch_rows):
                 writer.write(privatize_batch(batch, rows, plans, schema))
                 rows += batch.num_rows
+                staged.check()  # stop between batches on SIGTERM/SIGINT
                 if on_progress is not None:
                     on_progress(batch.num_rows)
         finally:
