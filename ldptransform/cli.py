@@ -156,27 +156,72 @@ def _num(v: float | None, spec: str) -> str:
     return "-" if v is None else format(v, spec)
 
 
+def _print(*args: object) -> None:
+    out_console.print(*args)
+
+
 def _estimate_table(result: dict) -> None:
-    out_console.print(f"{result['rows']} rows; {result['confidence']:.0%} intervals (normal approximation). "
-                      "Estimates are unbiased and may fall slightly outside [0, 1]; 'consistent' is the "
-                      "Norm-Sub projection to a valid distribution.")
+    cm = next((c.get("consistent_method", "") for c in result["columns"].values() if "consistent_method" in c),
+              "norm-sub").split(" ")[0]
+    _print(escape(f"{result['rows']} rows" + (f" from {len(result['extracts'])} merged extracts"
+                                               if result.get("extracts") else "") +
+                  f"; {result['confidence']:.0%} intervals (normal approximation)."))
+    _print(escape(f"Frequencies: 'share' is the consistent estimate ({cm}: post-processed to a valid "
+                  "distribution, slightly biased); 'unbiased' is the raw unbiased estimate, which may fall "
+                  "outside [0, 1], with its SE and interval."))
     for name, col in result["columns"].items():
-        title = escape(f"{name}: {col['type']}, {col['mechanism']}, eps {col['epsilon']:g}")
+        title = escape(f"{name}: {col['type']}, {col['mechanism']}, eps {col['epsilon']:g}" +
+                       (f", {col['rows_reported']} rows reported" if "rows_reported" in col else ""))
         if "frequencies" in col:
             t = Table(title=title, title_justify="left")
-            for h in ("value", "estimate", "se", "ci_low", "ci_high", "consistent"):
+            for h in ("value", "share", "unbiased", "se", "ci_low", "ci_high"):
                 t.add_column(h, justify="left" if h == "value" else "right")
             for f in col["frequencies"]:
-                t.add_row(escape(f["value"]), *(_num(f[k], ".4f") for k in ("estimate", "se", "ci_low", "ci_high",
-                                                                    "consistent")))
-        else:
+                t.add_row(escape(f["value"]), *(_num(f[k], ".4f") for k in ("consistent", "estimate", "se", "ci_low",
+                                                                            "ci_high")))
+            _print(t)
+        if "mean" in col:
             t = Table(title=title, title_justify="left")
             for h in ("statistic", "estimate", "se", "ci_low", "ci_high"):
                 t.add_column(h, justify="left" if h == "statistic" else "right")
             m = col["mean"]
-            t.add_row("mean", _num(m["estimate"], ".6g"), _num(m["se"], ".4g"), _num(m["ci_low"], ".6g"),
-                      _num(m["ci_high"], ".6g"))
-        out_console.print(t)
+            t.add_row("mean", _num(m.get("estimate"), ".6g"), _num(m.get("se"), ".4g"), _num(m.get("ci_low"), ".6g"),
+                      _num(m.get("ci_high"), ".6g"))
+            _print(t)
+        if "distribution" in col:
+            d = col["distribution"]
+            t = Table(title=escape(f"{name}: quantiles and ranges ({d.get('method', '')})"), title_justify="left")
+            for h in ("statistic", "estimate", "ci_low", "ci_high"):
+                t.add_column(h, justify="left" if h == "statistic" else "right")
+            for q in d.get("quantiles", []):
+                t.add_row(f"quantile {q['q']:g}", _num(q.get("estimate"), ".6g"), _num(q.get("ci_low"), ".6g"),
+                          _num(q.get("ci_high"), ".6g"))
+            for r in d.get("ranges", []):
+                t.add_row(escape(f"share in [{r['low']:g}, {r['high']:g})"), _num(r.get("estimate"), ".4f"),
+                          _num(r.get("ci_low"), ".4f"), _num(r.get("ci_high"), ".4f"))
+            _print(t)
+    for x in result.get("crosstabs", []):
+        t = Table(title=escape(f"cross-tab {x['rows']} x {x['columns']} ({x['rows_used']} rows): joint share "
+                               f"(consistent {x['consistent_method']}), unbiased with CI, and share of "
+                               f"{x['columns']} within {x['rows']}"), title_justify="left")
+        for h in (x["rows"], x["columns"], "joint", "unbiased", "interval", "within row", "interval "):
+            t.add_column(escape(h), justify="left" if h in (x["rows"], x["columns"]) else "right")
+        for c, r in zip(x["cells"], x["row_shares"]):
+            t.add_row(escape(c["row"]), escape(c["column"]), _num(c["consistent"], ".3f"), _num(c["estimate"], ".3f"),
+                      "-" if c["estimate"] is None else f"{c['ci_low']:.3f}..{c['ci_high']:.3f}",
+                      _num(r["estimate"], ".3f"),
+                      "-" if r["estimate"] is None else f"{r['ci_low']:.3f}..{r['ci_high']:.3f}")
+        _print(t)
+    for g in result.get("grouped_means", []):
+        t = Table(title=escape(f"mean of {g['column']} by {g['by']} ({g['rows_used']} rows; delta-method SE)"),
+                  title_justify="left")
+        for h in (g["by"], "mean", "se", "ci_low", "ci_high", "group share"):
+            t.add_column(escape(h), justify="left" if h == g["by"] else "right")
+        for row in g["groups"]:
+            m = row["mean"]
+            t.add_row(escape(row["group"]), _num(m["estimate"], ".6g"), _num(m["se"], ".4g"), _num(m["ci_low"], ".6g"),
+                      _num(m["ci_high"], ".6g"), _num(row.get("share"), ".4f"))
+        _print(t)
     if result.get("public_columns"):
         out_console.print(f"not estimated (public, released in the clear): {', '.join(result['public_columns'])}",
                           markup=False)
@@ -190,53 +235,92 @@ def _estimate_csv(result: dict) -> str:
     w = csv.writer(buf, lineterminator="\n")
     w.writerow(["column", "type", "mechanism", "epsilon", "statistic", "value", "estimate", "se", "ci_low",
                 "ci_high", "consistent"])
+
+    def r(v: object) -> str:
+        return "" if v is None else repr(v) if isinstance(v, float) else str(v)
+
     for name, col in result["columns"].items():
-        if "frequencies" in col:
-            for f in col["frequencies"]:
-                w.writerow([name, col["type"], col["mechanism"], col["epsilon"], "frequency", f["value"],
-                            repr(f["estimate"]), repr(f["se"]), repr(f["ci_low"]), repr(f["ci_high"]),
-                            repr(f["consistent"])])
-        else:
+        head = [name, col["type"], col["mechanism"], col["epsilon"]]
+        for f in col.get("frequencies", []):
+            w.writerow(head + ["frequency", f["value"], r(f["estimate"]), r(f["se"]), r(f["ci_low"]),
+                               r(f["ci_high"]), r(f["consistent"])])
+        if "mean" in col:
             m = col["mean"]
-            w.writerow([name, col["type"], col["mechanism"], col["epsilon"], "mean", "", repr(m["estimate"]),
-                        repr(m["se"]), repr(m["ci_low"]), repr(m["ci_high"]), ""])
+            w.writerow(head + ["mean", "", r(m.get("estimate")), r(m.get("se")), r(m.get("ci_low")),
+                               r(m.get("ci_high")), ""])
+        for q in col.get("distribution", {}).get("quantiles", []):
+            w.writerow(head + ["quantile", r(q["q"]), r(q.get("estimate")), r(q.get("se")), r(q.get("ci_low")),
+                               r(q.get("ci_high")), ""])
+        for g in col.get("distribution", {}).get("ranges", []):
+            w.writerow(head + ["range share", f"{g['low']:g}..{g['high']:g}", r(g.get("estimate")), r(g.get("se")),
+                               r(g.get("ci_low")), r(g.get("ci_high")), ""])
+    for x in result.get("crosstabs", []):
+        for c, s in zip(x["cells"], x["row_shares"]):
+            w.writerow([f"{x['rows']}:{x['columns']}", "crosstab", "", "", "joint share", f"{c['row']}|{c['column']}",
+                        r(c["estimate"]), r(c["se"]), r(c["ci_low"]), r(c["ci_high"]), r(c["consistent"])])
+            w.writerow([f"{x['rows']}:{x['columns']}", "crosstab", "", "", "share within row",
+                        f"{s['row']}|{s['column']}", r(s["estimate"]), r(s["se"]), r(s["ci_low"]), r(s["ci_high"]),
+                        ""])
+    for g in result.get("grouped_means", []):
+        for row in g["groups"]:
+            m = row["mean"]
+            w.writerow([f"{g['column']}:{g['by']}", "grouped mean", "", "", "mean", row["group"], r(m["estimate"]),
+                        r(m["se"]), r(m["ci_low"]), r(m["ci_high"]), ""])
     return buf.getvalue()
 
 
 @app.command()
 def estimate(
-    extract: Path = typer.Argument(..., help="Extract (.csv or .parquet) written by `ldpt privatize`."),
-    manifest: Optional[Path] = typer.Option(None, "--manifest", help="Manifest [default: beside the extract]."),
+    extracts: list[Path] = typer.Argument(..., help="Extract(s) (.csv or .parquet) written by `ldpt privatize`; "
+                                          "several extracts with identical mechanism specs are merged."),
+    manifest: Optional[list[Path]] = typer.Option(None, "--manifest", help="Manifest(s), one per extract "
+                                                  "[default: beside each extract]."),
     format: TableJsonCsv = typer.Option(TableJsonCsv.table, "--format", help="Output format."),
     confidence: float = typer.Option(0.95, "--confidence", help="Confidence level of the intervals."),
+    crosstab: Optional[list[str]] = typer.Option(None, "--crosstab", help="Cross-tab of two categorical columns, "
+                                                 "A:B (repeatable)."),
+    mean_by: Optional[list[str]] = typer.Option(None, "--mean-by", help="Mean of a numeric column within each "
+                                                "category of another, NUM:CAT (repeatable)."),
+    quantiles: Optional[str] = typer.Option(None, "--quantiles", help="Quantiles of distribution columns, e.g. "
+                                            "0.1,0.5,0.9 [default: 0.5]."),
+    range_: Optional[list[str]] = typer.Option(None, "--range", help="Share of a distribution column in "
+                                               "[LOW, HIGH), COLUMN:LOW..HIGH (repeatable)."),
+    consistency: str = typer.Option("norm-sub", "--consistency", help="Post-processing shown as 'share': "
+                                    "norm-sub, norm-mul or norm."),
     out: Optional[Path] = typer.Option(None, "--out", help="Write the result to this file instead of stdout."),
 ) -> None:
-    """Unbiased frequencies and means with standard errors and confidence intervals.
+    """Unbiased frequencies, means, cross-tabs, grouped means and quantiles with SEs and intervals.
 
-    Example: ldpt estimate extract.parquet --format json
+    Example: ldpt estimate extract.parquet --crosstab site:role --mean-by pay:site --format json
     """
     from .estimate import estimate as run
+    from .estimate import parse_pair, parse_quantiles, parse_range
     from .io import write_text_atomic
 
+    global out_console
     with _user_errors():
-        result = run(extract, manifest, confidence=confidence)
+        result = run(extracts, list(manifest) if manifest else None, confidence=confidence,
+                     crosstabs=[parse_pair(x, "--crosstab") for x in crosstab or []],
+                     mean_by=[parse_pair(x, "--mean-by") for x in mean_by or []],
+                     quantiles=parse_quantiles(quantiles) if quantiles else None,
+                     ranges=[parse_range(x) for x in range_ or []], consistency=consistency)
         if format == TableJsonCsv.json:
             text = json.dumps(result, indent=2) + "\n"
         elif format == TableJsonCsv.csv:
             text = _estimate_csv(result)
         else:
-            if out is not None:
-                rec = Console(record=True, width=120, file=open("/dev/null", "w"))
-                global out_console
-                saved, out_console = out_console, rec
-                try:
-                    _estimate_table(result)
-                finally:
-                    out_console = saved
-                text = rec.export_text()
-            else:
+            if out is None:
                 _estimate_table(result)
                 return
+            import io
+
+            rec = Console(record=True, width=120, file=io.StringIO())
+            saved, out_console = out_console, rec
+            try:
+                _estimate_table(result)
+            finally:
+                out_console = saved
+            text = rec.export_text()
         if out is not None:
             write_text_atomic(out, text)
             err_console.print(f"wrote estimates to {out}", markup=False)

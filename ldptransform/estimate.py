@@ -1,13 +1,25 @@
-"""Decoding: stream an extract, accumulate sufficient statistics, report estimates.
+"""Decoding: stream extracts, accumulate sufficient statistics, report estimates.
 
 For every privatized column the per-row unbiased estimates are summed, and so are
-their squares: that is all the decoder keeps (sufficient statistics add, so batches,
-files and workers merge by addition, and memory does not grow with the extract).
+their squares (and, for joint analyses, products across two columns): that is all the
+decoder keeps.  Sufficient statistics add, so batches, files and workers merge by
+addition, and memory does not grow with the extract.
 
-* categorical / binned: per row and value v, u_v = (1[v in S(y)] - q*)/(p* - q*); its
-  sum and sum of squares follow from the support count s_v alone.
+* categorical / binned: per row and value v, u_v = (1[v in S(y)] - q*)/(p* - q*); the
+  sums of u and u^2 follow from the support counts alone.
 * numeric: the written value is the per-row unbiased estimate; keep n, sum, sum of squares
   (around the middle of the bounds, for numerical accuracy).
+* cross-tab of columns A and B: the average of u_a(y_A) * u_b(y_B) is unbiased for the
+  joint share, because the two columns are randomized independently given the row
+  (REFERENCE.md section 12); conditional shares and grouped means are ratios of two such
+  averages, with delta-method standard errors.
+* distribution mechanisms (and binned columns): additive histograms, decoded into a
+  distribution with CDF, quantiles and range shares (``distribution.py``).
+
+Rows whose cell is empty (a column not reported by that row under ``budget.strategy:
+sample``) are left out of that column's statistics: which rows report a column is chosen
+by the keyed PRF independently of the data, so the reporting rows are a random sample of
+all rows and their average is unbiased for the whole table.
 
 The standard error is the sample standard deviation of the per-row estimates over
 sqrt(n).  For rows drawn at random from a population it is the usual SE of a mean; for
@@ -21,7 +33,7 @@ import math
 from dataclasses import dataclass, field
 from pathlib import Path
 from statistics import NormalDist
-from typing import Any
+from typing import Any, Iterator
 
 import numpy as np
 import pyarrow as pa
@@ -33,6 +45,7 @@ from .io import TableSource
 from .manifest import ColumnEntry, Manifest, default_manifest_path, load_manifest
 
 DECODE_BATCH_ROWS = 65536
+CONSISTENCY_METHODS = ("norm-sub", "norm-mul", "norm")
 
 
 def csv_type(dtype: str) -> pa.DataType:
@@ -42,86 +55,13 @@ def csv_type(dtype: str) -> pa.DataType:
                                                                                                           pa.string())
 
 
-@dataclass
-class CategoricalStats:
-    mechanism: mech.FrequencyOracle
-    n: int = 0
-    support: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
-
-    def __post_init__(self) -> None:
-        if self.support.size == 0:
-            self.support = np.zeros(self.mechanism.k, dtype=np.int64)
-
-    def add(self, arrays: list[pa.Array]) -> None:
-        self.n += len(arrays[0])
-        self.support += self.mechanism.support_counts(arrays)
-
-    def merge(self, other: "CategoricalStats") -> None:
-        self.n += other.n
-        self.support += other.support
-
-    def frequencies(self, z: float) -> list[dict[str, Any]]:
-        m, n = self.mechanism, self.n
-        if n == 0:
-            return [{"value": label, "estimate": None, "se": None, "ci_low": None, "ci_high": None,
-                     "count_estimate": 0.0, "consistent": None} for label in m.categories]
-        p, q = m.p_star, m.q_star
-        d = p - q
-        s = self.support.astype(float)
-        total = (s - n * q) / d
-        sq = (s * (1 - q) ** 2 + (n - s) * q ** 2) / d ** 2
-        est = total / n
-        var_rows = np.maximum(sq - total ** 2 / n, 0.0) / max(n - 1, 1)
-        se = np.sqrt(var_rows / n)
-        consistent = norm_sub(est)
-        out = []
-        for i, label in enumerate(m.categories):
-            out.append({"value": label, "estimate": float(est[i]), "se": float(se[i]),
-                        "ci_low": float(est[i] - z * se[i]), "ci_high": float(est[i] + z * se[i]),
-                        "count_estimate": float(total[i]), "consistent": float(consistent[i])})
-        return out
-
-
-@dataclass
-class NumericStats:
-    mechanism: mech.GridMechanism
-    n: int = 0
-    s1: float = 0.0
-    s2: float = 0.0
-
-    @property
-    def shift(self) -> float:
-        return (self.mechanism.lo + self.mechanism.hi) / 2.0
-
-    def add(self, arrays: list[pa.Array]) -> None:
-        arr = arrays[0]
-        vals = np.asarray(pc.cast(arr, pa.float64()).to_numpy(zero_copy_only=False), dtype=float) - self.shift
-        self.n += vals.size
-        self.s1 += float(vals.sum())
-        self.s2 += float(np.dot(vals, vals))
-
-    def merge(self, other: "NumericStats") -> None:
-        self.n += other.n
-        self.s1 += other.s1
-        self.s2 += other.s2
-
-    def mean(self, z: float) -> dict[str, Any]:
-        n = self.n
-        if n == 0:
-            return {"estimate": None, "se": None, "ci_low": None, "ci_high": None}
-        mean_c = self.s1 / n
-        var_rows = max(self.s2 - n * mean_c ** 2, 0.0) / max(n - 1, 1)
-        se = math.sqrt(var_rows / n)
-        est = mean_c + self.shift
-        return {"estimate": est, "se": se, "ci_low": est - z * se, "ci_high": est + z * se}
-
+# -- consistency (post-processing to a valid distribution) ---------------------------------
 
 def norm_sub(est: np.ndarray) -> np.ndarray:
-    """Norm-Sub: Euclidean projection onto the probability simplex (non-negative, sums to 1).
-
-    Wang, Lopuhaä-Zwakenberg, Li, Škorić, Li, "Locally Differentially Private Frequency
-    Estimation with Consistency", NDSS 2020.
-    """
+    """Norm-Sub: subtract one delta from every value and clip at 0 so the result sums to 1
+    (the Euclidean projection onto the probability simplex).  Wang, Lopuhaä-Zwakenberg,
+    Li, Škorić, Li, "Locally Differentially Private Frequency Estimation with Consistency",
+    NDSS 2020."""
     v = np.asarray(est, dtype=float)
     u = np.sort(v)[::-1]
     css = np.cumsum(u) - 1.0
@@ -134,15 +74,326 @@ def norm_sub(est: np.ndarray) -> np.ndarray:
     return np.maximum(v - delta, 0.0)
 
 
-def _stats_for(entry: ColumnEntry) -> CategoricalStats | NumericStats | None:
+def norm_mul(est: np.ndarray) -> np.ndarray:
+    """Norm-Mul: clip negatives to 0, then rescale to sum to 1 (same NDSS 2020 paper)."""
+    v = np.maximum(np.asarray(est, dtype=float), 0.0)
+    s = v.sum()
+    return v / s if s > 0 else np.full_like(v, 1.0 / v.size)
+
+
+def norm_additive(est: np.ndarray) -> np.ndarray:
+    """Norm: add the same delta to every value so that they sum to 1 (unbiased, may stay
+    negative; same NDSS 2020 paper)."""
+    v = np.asarray(est, dtype=float)
+    return v + (1.0 - v.sum()) / v.size
+
+
+def consistent(est: np.ndarray, method: str) -> np.ndarray:
+    if method == "norm-sub":
+        return norm_sub(est)
+    if method == "norm-mul":
+        return norm_mul(est)
+    if method == "norm":
+        return norm_additive(est)
+    raise UsageError(f"--consistency must be one of {', '.join(CONSISTENCY_METHODS)}, got {method!r}")
+
+
+# -- per-row estimates ------------------------------------------------------------------------
+
+def reported_mask(arrays: list[pa.Array]) -> np.ndarray | None:
+    """Rows whose report is present (None when every row reported)."""
+    last = arrays[-1]
+    if last.null_count == 0:
+        return None
+    return np.asarray(pc.is_valid(last).to_numpy(zero_copy_only=False))
+
+
+def _take(arrays: list[pa.Array], mask: np.ndarray | None) -> list[pa.Array]:
+    if mask is None:
+        return arrays
+    m = pa.array(mask)
+    return [a.filter(m) for a in arrays]
+
+
+def _moments(total: np.ndarray | float, sq: np.ndarray | float, n: int) -> tuple[Any, Any]:
+    """(mean, SE of the mean) from sum and sum of squares of n per-row values."""
+    if n == 0:
+        return None, None
+    mean = np.asarray(total, dtype=float) / n
+    var_rows = np.maximum(np.asarray(sq, dtype=float) - np.asarray(total, dtype=float) ** 2 / n, 0.0) / max(n - 1, 1)
+    return mean, np.sqrt(var_rows / n)
+
+
+def _interval(est: float | None, se: float | None, z: float) -> dict[str, Any]:
+    if est is None or se is None:
+        return {"estimate": None, "se": None, "ci_low": None, "ci_high": None}
+    return {"estimate": float(est), "se": float(se), "ci_low": float(est - z * se), "ci_high": float(est + z * se)}
+
+
+# -- one-column statistics ---------------------------------------------------------------------
+
+@dataclass
+class CategoricalStats:
+    mechanism: mech.FrequencyOracle
+    n: int = 0                                      # rows that reported this column
+    support: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
+    prefix: bool = False                            # also keep prefix-sum squares (binned columns: CDF SEs)
+    prefix_sq: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.float64))
+
+    def __post_init__(self) -> None:
+        if self.support.size == 0:
+            self.support = np.zeros(self.mechanism.k, dtype=np.int64)
+        if self.prefix_sq.size == 0:
+            self.prefix_sq = np.zeros(self.mechanism.k, dtype=np.float64)
+
+    def add(self, arrays: list[pa.Array]) -> None:
+        self.n += len(arrays[0])
+        if self.prefix:
+            s = self.mechanism.support(arrays)
+            self.support += s.sum(axis=0, dtype=np.int64)
+            c = np.cumsum(s, axis=1, dtype=np.int64).astype(np.float64)
+            self.prefix_sq += (c * c).sum(axis=0)
+        else:
+            self.support += self.mechanism.support_counts(arrays)
+
+    def merge(self, other: "CategoricalStats") -> None:
+        self.n += other.n
+        self.support += other.support
+        self.prefix_sq += other.prefix_sq
+
+    def sums(self) -> tuple[np.ndarray, np.ndarray]:
+        """(sum of u_v, sum of u_v^2) over the reporting rows, per value v."""
+        m, n = self.mechanism, self.n
+        p, q = m.p_star, m.q_star
+        d = p - q
+        s = self.support.astype(float)
+        return (s - n * q) / d, (s * (1 - q) ** 2 + (n - s) * q ** 2) / d ** 2
+
+    def estimates(self) -> tuple[np.ndarray | None, np.ndarray | None]:
+        total, sq = self.sums()
+        return _moments(total, sq, self.n)
+
+    def prefix_estimates(self) -> tuple[np.ndarray, np.ndarray]:
+        """Estimates and SEs of the cumulative shares F_j = sum_{v<=j} f_v, j = 0..k-1."""
+        m, n = self.mechanism, self.n
+        p, q = m.p_star, m.q_star
+        d = p - q
+        j = np.arange(1, m.k + 1)
+        c = np.cumsum(self.support.astype(float))           # sum_i |S(y_i) ∩ [0, j]|
+        total = (c - n * j * q) / d
+        sq = (self.prefix_sq - 2 * j * q * c + n * (j * q) ** 2) / d ** 2
+        est, se = _moments(total, sq, n)
+        return est, se
+
+    def frequencies(self, z: float, method: str = "norm-sub") -> list[dict[str, Any]]:
+        m = self.mechanism
+        est, se = self.estimates()
+        if est is None:
+            return [{"value": label, "estimate": None, "se": None, "ci_low": None, "ci_high": None,
+                     "count_estimate": 0.0, "consistent": None} for label in m.categories]
+        cons = consistent(est, method)
+        out = []
+        for i, label in enumerate(m.categories):
+            row = {"value": label, **_interval(est[i], se[i], z), "count_estimate": float(est[i] * self.n),
+                   "consistent": float(cons[i])}
+            out.append(row)
+        return out
+
+
+@dataclass
+class NumericStats:
+    mechanism: mech.Mechanism
+    n: int = 0
+    s1: float = 0.0
+    s2: float = 0.0
+
+    @property
+    def shift(self) -> float:
+        return (self.mechanism.lo + self.mechanism.hi) / 2.0  # type: ignore[attr-defined]
+
+    def add(self, arrays: list[pa.Array]) -> None:
+        vals = numeric_values(arrays) - self.shift
+        self.n += vals.size
+        self.s1 += float(vals.sum())
+        self.s2 += float(np.dot(vals, vals))
+
+    def merge(self, other: "NumericStats") -> None:
+        self.n += other.n
+        self.s1 += other.s1
+        self.s2 += other.s2
+
+    def mean(self, z: float) -> dict[str, Any]:
+        est, se = _moments(self.s1, self.s2, self.n)
+        if est is None:
+            return _interval(None, None, z)
+        return _interval(float(est) + self.shift, float(se), z)
+
+
+@dataclass
+class DistributionStats:
+    """Histogram-like additive statistics of a distribution mechanism (square wave, hierarchy)."""
+
+    mechanism: Any
+    n: int = 0
+    stats: Any = None
+
+    def __post_init__(self) -> None:
+        if self.stats is None:
+            self.stats = self.mechanism.new_stats()
+
+    def add(self, arrays: list[pa.Array]) -> None:
+        self.n += len(arrays[0])
+        self.mechanism.add_stats(self.stats, arrays)
+
+    def merge(self, other: "DistributionStats") -> None:
+        self.n += other.n
+        self.stats += other.stats
+
+    def distribution(self) -> Any:
+        return self.mechanism.decode(self.stats, self.n)
+
+
+def numeric_values(arrays: list[pa.Array]) -> np.ndarray:
+    arr = arrays[0]
+    return np.asarray(pc.cast(arr, pa.float64()).to_numpy(zero_copy_only=False), dtype=float)
+
+
+def is_distribution(m: mech.Mechanism) -> bool:
+    return hasattr(m, "decode") and hasattr(m, "new_stats")
+
+
+def stats_for(entry: ColumnEntry) -> CategoricalStats | NumericStats | DistributionStats | None:
     if entry.mechanism is None:
         return None
     m = mech.build(entry.mechanism)
     if isinstance(m, mech.FrequencyOracle):
-        return CategoricalStats(m)
-    assert isinstance(m, mech.GridMechanism)
+        return CategoricalStats(m, prefix=entry.type == "binned")
+    if is_distribution(m):
+        return DistributionStats(m)
     return NumericStats(m)
 
+
+# -- two-column statistics ------------------------------------------------------------------
+
+@dataclass
+class CrossStats:
+    """Cross-tab of two categorical (or binned) columns: sums over rows where both reported."""
+
+    a: mech.FrequencyOracle
+    b: mech.FrequencyOracle
+    n: int = 0
+    S: np.ndarray = field(default=None)    # sum u_a u_b          (ka, kb)
+    SS: np.ndarray = field(default=None)   # sum (u_a u_b)^2      (ka, kb)
+    T: np.ndarray = field(default=None)    # sum u_a^2 u_b        (ka, kb)  cov(joint, marginal a)
+    SA: np.ndarray = field(default=None)   # sum u_a              (ka,)
+    SAA: np.ndarray = field(default=None)  # sum u_a^2            (ka,)
+
+    def __post_init__(self) -> None:
+        ka, kb = self.a.k, self.b.k
+        for name, shape in (("S", (ka, kb)), ("SS", (ka, kb)), ("T", (ka, kb)), ("SA", (ka,)), ("SAA", (ka,))):
+            if getattr(self, name) is None:
+                setattr(self, name, np.zeros(shape))
+
+    def add(self, arrays_a: list[pa.Array], arrays_b: list[pa.Array]) -> None:
+        ua = self.a.row_estimates(arrays_a)
+        ub = self.b.row_estimates(arrays_b)
+        ua2, ub2 = ua * ua, ub * ub
+        self.n += ua.shape[0]
+        self.S += ua.T @ ub
+        self.SS += ua2.T @ ub2
+        self.T += ua2.T @ ub
+        self.SA += ua.sum(axis=0)
+        self.SAA += ua2.sum(axis=0)
+
+    def merge(self, o: "CrossStats") -> None:
+        self.n += o.n
+        for name in ("S", "SS", "T", "SA", "SAA"):
+            setattr(self, name, getattr(self, name) + getattr(o, name))
+
+    def report(self, z: float, method: str) -> dict[str, Any]:
+        n = self.n
+        if n < 2:
+            return {"rows_used": n, "cells": [], "row_shares": []}
+        joint, joint_se = _moments(self.S, self.SS, n)
+        marg, marg_se = _moments(self.SA, self.SAA, n)
+        cons = consistent(joint.ravel(), method).reshape(joint.shape)
+        # conditional share of b within a: R = joint / marginal_a, delta method
+        cov = (self.T - self.S * self.SA[:, None] / n) / (n - 1) / n
+        var_j, var_m = joint_se ** 2, (marg_se ** 2)[:, None]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            R = joint / marg[:, None]
+            var_R = (var_j - 2 * R * cov + R ** 2 * var_m) / marg[:, None] ** 2
+        cells, shares = [], []
+        for i, la in enumerate(self.a.categories):
+            for j, lb in enumerate(self.b.categories):
+                cells.append({"row": la, "column": lb, **_interval(joint[i, j], joint_se[i, j], z),
+                              "consistent": float(cons[i, j])})
+                ok = marg[i] > 0 and np.isfinite(var_R[i, j])
+                shares.append({"row": la, "column": lb,
+                               **(_interval(R[i, j], math.sqrt(max(var_R[i, j], 0.0)), z) if ok
+                                  else _interval(None, None, z))})
+        return {"rows_used": n, "cells": cells, "row_shares": shares}
+
+
+@dataclass
+class GroupMeanStats:
+    """Mean of a numeric column within each category of another: ratio of two unbiased
+    averages, sum(y u_a)/sum(u_a), with a delta-method SE."""
+
+    group: mech.FrequencyOracle
+    shift: float
+    n: int = 0
+    A: np.ndarray = field(default=None)    # sum (y-s) u_a
+    AA: np.ndarray = field(default=None)   # sum (y-s)^2 u_a^2
+    C: np.ndarray = field(default=None)    # sum (y-s) u_a^2
+    SA: np.ndarray = field(default=None)   # sum u_a
+    SAA: np.ndarray = field(default=None)  # sum u_a^2
+
+    def __post_init__(self) -> None:
+        for name in ("A", "AA", "C", "SA", "SAA"):
+            if getattr(self, name) is None:
+                setattr(self, name, np.zeros(self.group.k))
+
+    def add(self, arrays_y: list[pa.Array], arrays_g: list[pa.Array]) -> None:
+        y = numeric_values(arrays_y) - self.shift
+        u = self.group.row_estimates(arrays_g)
+        u2 = u * u
+        self.n += y.size
+        self.A += y @ u
+        self.AA += (y * y) @ u2
+        self.C += y @ u2
+        self.SA += u.sum(axis=0)
+        self.SAA += u2.sum(axis=0)
+
+    def merge(self, o: "GroupMeanStats") -> None:
+        self.n += o.n
+        for name in ("A", "AA", "C", "SA", "SAA"):
+            setattr(self, name, getattr(self, name) + getattr(o, name))
+
+    def report(self, z: float) -> list[dict[str, Any]]:
+        n = self.n
+        out = []
+        if n < 2:
+            return [{"group": g, "mean": _interval(None, None, z), "share": None} for g in self.group.categories]
+        num, num_se = _moments(self.A, self.AA, n)
+        den, den_se = _moments(self.SA, self.SAA, n)
+        cov = (self.C - self.A * self.SA / n) / (n - 1) / n
+        for i, g in enumerate(self.group.categories):
+            if den[i] <= 0:
+                out.append({"group": g, "mean": _interval(None, None, z), "share": float(den[i]),
+                            "note": "the estimated share of this group is not positive: no mean"})
+                continue
+            R = num[i] / den[i]
+            var = (num_se[i] ** 2 - 2 * R * cov[i] + R ** 2 * den_se[i] ** 2) / den[i] ** 2
+            row = {"group": g, "mean": _interval(self.shift + R, math.sqrt(max(var, 0.0)), z),
+                   "share": float(den[i])}
+            if den[i] - z * den_se[i] <= 0:
+                row["note"] = "the group's share is not clearly above 0: the ratio and its SE are unreliable"
+            out.append(row)
+        return out
+
+
+# -- reading ---------------------------------------------------------------------------------
 
 def open_extract(extract: Path, manifest_path: Path | None) -> tuple[Manifest, TableSource, Path]:
     extract = Path(extract)
@@ -156,40 +407,198 @@ def open_extract(extract: Path, manifest_path: Path | None) -> tuple[Manifest, T
     return manifest, src, mpath
 
 
-def iter_column_arrays(manifest: Manifest, src: TableSource, batch_rows: int = DECODE_BATCH_ROWS):
+def iter_column_arrays(manifest: Manifest, src: TableSource,
+                       batch_rows: int = DECODE_BATCH_ROWS) -> Iterator[tuple[pa.RecordBatch, dict[str, list]]]:
     """Yield (batch, {column name: [output arrays]}) for every privatized column."""
     entries = [c for c in manifest.columns if c.mechanism is not None]
     names = [o.name for c in entries for o in c.outputs]
     types = {o.name: csv_type(o.dtype) for c in entries for o in c.outputs}
     for batch in src.batches(names, batch_rows, csv_types=types):
-        yield batch, {c.name: [batch.column(o.name) for o in c.outputs] for c in entries}
+        yield batch, {c.name: [_chunk(batch.column(o.name)) for o in c.outputs] for c in entries}
+
+
+def _chunk(a: Any) -> pa.Array:
+    return a.combine_chunks() if isinstance(a, pa.ChunkedArray) else a
+
+
+def parse_pair(text: str, option: str) -> tuple[str, str]:
+    parts = text.split(":")
+    if len(parts) != 2 or not parts[0] or not parts[1]:
+        raise UsageError(f"{option} takes two column names joined by a colon (e.g. site:role), got {text!r}")
+    return parts[0], parts[1]
+
+
+@dataclass
+class Analyses:
+    """What to compute beyond one-column frequencies and means."""
+
+    crosstabs: list[tuple[str, str]] = field(default_factory=list)
+    mean_by: list[tuple[str, str]] = field(default_factory=list)
+    quantiles: list[float] = field(default_factory=lambda: [0.5])
+    ranges: list[tuple[str, float, float]] = field(default_factory=list)
+    consistency: str = "norm-sub"
+
+
+def parse_range(text: str) -> tuple[str, float, float]:
+    try:
+        col, span = text.rsplit(":", 1)
+        lo_s, hi_s = span.split("..")
+        lo, hi = float(lo_s), float(hi_s)
+    except ValueError:
+        raise UsageError(f"--range takes COLUMN:LOW..HIGH (e.g. pay:40000..60000), got {text!r}") from None
+    if not col or not lo < hi:
+        raise UsageError(f"--range {text!r}: give a column and LOW below HIGH")
+    return col, lo, hi
+
+
+def parse_quantiles(text: str) -> list[float]:
+    try:
+        qs = [float(x) for x in text.split(",") if x.strip()]
+    except ValueError:
+        raise UsageError(f"--quantiles takes numbers between 0 and 1 separated by commas (e.g. 0.1,0.5,0.9), "
+                         f"got {text!r}") from None
+    if not qs or any(not 0 < q < 1 for q in qs):
+        raise UsageError(f"--quantiles: every value must lie strictly between 0 and 1, got {text!r}")
+    return qs
+
+
+def _spec_signature(m: Manifest) -> list[Any]:
+    return [(c.name, c.type, c.mechanism, c.labels, c.bins, [(o.name, o.dtype) for o in c.outputs],
+             getattr(c, "report_rate", None)) for c in m.columns]
+
+
+def _check_analyses(manifest: Manifest, an: Analyses) -> None:
+    by = {c.name: c for c in manifest.columns}
+
+    def need(name: str, option: str, kinds: tuple[str, ...]) -> ColumnEntry:
+        c = by.get(name)
+        if c is None or c.mechanism is None:
+            known = ", ".join(n for n, e in by.items() if e.mechanism is not None)
+            raise UsageError(f"{option}: {name!r} is not a privatized column of this extract (privatized: {known}).")
+        family = "categorical" if isinstance(mech.build(c.mechanism), mech.FrequencyOracle) else "numeric"
+        if family not in kinds:
+            raise UsageError(f"{option}: column {name!r} is {c.type} ({c.mechanism['mechanism']}); this analysis "
+                             f"needs a {' or '.join(kinds)} column.")
+        return c
+
+    for a, b in an.crosstabs:
+        need(a, "--crosstab", ("categorical",))
+        need(b, "--crosstab", ("categorical",))
+        if a == b:
+            raise UsageError("--crosstab needs two different columns")
+    for y, g in an.mean_by:
+        c = need(y, "--mean-by", ("numeric",))
+        if is_distribution(mech.build(c.mechanism)):
+            raise UsageError(f"--mean-by: column {y!r} uses {c.mechanism['mechanism']}, which estimates distributions; "
+                             "its mean comes from the distribution (see its 'distribution' entry), not per row.")
+        need(g, "--mean-by", ("categorical",))
+    for col, _, _ in an.ranges:
+        c = by.get(col)
+        if c is None or c.mechanism is None or not (c.type == "binned" or is_distribution(mech.build(c.mechanism))):
+            raise UsageError(f"--range: column {col!r} has no distribution in this extract (ranges need a numeric "
+                             "column released with bins: or a distribution mechanism such as square-wave or "
+                             "hierarchy).")
+    if an.consistency not in CONSISTENCY_METHODS:
+        raise UsageError(f"--consistency must be one of {', '.join(CONSISTENCY_METHODS)}, got {an.consistency!r}")
+
+
+@dataclass
+class Accumulated:
+    manifest: Manifest
+    rows: int
+    columns: dict[str, Any]
+    crosstabs: dict[tuple[str, str], CrossStats]
+    mean_by: dict[tuple[str, str], GroupMeanStats]
+    extracts: list[str]
+
+
+def _accumulate_one(extract: Path, manifest_path: Path | None, an: Analyses, batch_rows: int,
+                    check_alphabet: bool) -> Accumulated:
+    manifest, src, mpath = open_extract(extract, manifest_path)
+    _check_analyses(manifest, an)
+    entries = {c.name: c for c in manifest.columns if c.mechanism is not None}
+    cols = {name: stats_for(e) for name, e in entries.items()}
+    xt = {(a, b): CrossStats(cols[a].mechanism, cols[b].mechanism) for a, b in an.crosstabs}
+    mb = {(y, g): GroupMeanStats(cols[g].mechanism, cols[y].shift) for y, g in an.mean_by}
+    rows = 0
+    for batch, arrays in iter_column_arrays(manifest, src, batch_rows):
+        masks = {name: reported_mask(a) for name, a in arrays.items()}
+        for name, a in arrays.items():
+            st = cols[name]
+            mine = _take(a, masks[name])
+            if check_alphabet:
+                bad = st.mechanism.count_invalid(mine)
+                if bad:
+                    raise DataError(f"extract {extract}: column {name!r} has {bad} value(s) outside the output "
+                                    f"alphabet of its mechanism ({entries[name].mechanism['mechanism']}) near data "
+                                    f"row {rows + 1}. The extract was altered or does not belong to manifest {mpath}; "
+                                    "run `ldpt validate` for details.")
+            st.add(mine)
+        for (a, b), st in xt.items():
+            both = _both(masks[a], masks[b], batch.num_rows)
+            st.add(_take(arrays[a], both), _take(arrays[b], both))
+        for (y, g), st in mb.items():
+            both = _both(masks[y], masks[g], batch.num_rows)
+            st.add(_take(arrays[y], both), _take(arrays[g], both))
+        rows += batch.num_rows
+    if rows != manifest.rows:
+        raise ManifestError(f"extract {extract} has {rows} rows but manifest {mpath} says {manifest.rows}. The files "
+                            "do not belong together, or the extract is incomplete; run `ldpt validate`.")
+    return Accumulated(manifest, rows, cols, xt, mb, [str(extract)])
+
+
+def _both(a: np.ndarray | None, b: np.ndarray | None, n: int) -> np.ndarray | None:
+    if a is None and b is None:
+        return None
+    return (np.ones(n, bool) if a is None else a) & (np.ones(n, bool) if b is None else b)
+
+
+def accumulate_many(extracts: list[Path], manifests: list[Path | None] | None = None, *,
+                    analyses: Analyses | None = None, batch_rows: int = DECODE_BATCH_ROWS,
+                    check_alphabet: bool = True) -> Accumulated:
+    """Accumulate one or more extracts; extracts must share their mechanism specs."""
+    an = analyses or Analyses()
+    if not extracts:
+        raise UsageError("give at least one extract")
+    manifests = manifests or [None] * len(extracts)
+    if len(manifests) != len(extracts):
+        raise UsageError("give one --manifest per extract (or none, to use the default beside each extract)")
+    total: Accumulated | None = None
+    for ex, mp in zip(extracts, manifests):
+        acc = _accumulate_one(Path(ex), Path(mp) if mp else None, an, batch_rows, check_alphabet)
+        if total is None:
+            total = acc
+            seen_nonces, seen_hashes = {acc.manifest.nonce}, {acc.manifest.extract.sha256}
+            continue
+        if acc.manifest.nonce in seen_nonces or acc.manifest.extract.sha256 in seen_hashes:
+            raise UsageError(f"{ex} is the same release as an extract given before it (same nonce or same file): "
+                             "merging a release with itself would count its rows twice. Give each release once.")
+        seen_nonces.add(acc.manifest.nonce)
+        seen_hashes.add(acc.manifest.extract.sha256)
+        if _spec_signature(acc.manifest) != _spec_signature(total.manifest):
+            raise UsageError(f"cannot merge {ex} with {total.extracts[0]}: their manifests describe different columns "
+                             "or mechanism specs (names, eps, categories, bounds, output columns must all be equal; "
+                             "only the nonce, time and hashes may differ). Estimate them separately.")
+        for name, st in acc.columns.items():
+            total.columns[name].merge(st)
+        for k, st in acc.crosstabs.items():
+            total.crosstabs[k].merge(st)
+        for k, st in acc.mean_by.items():
+            total.mean_by[k].merge(st)
+        total.rows += acc.rows
+        total.extracts.append(str(ex))
+    assert total is not None
+    return total
 
 
 def accumulate(extract: Path, manifest_path: Path | None = None, *, batch_rows: int = DECODE_BATCH_ROWS,
-               check_alphabet: bool = True) -> tuple[Manifest, dict[str, CategoricalStats | NumericStats], int]:
-    manifest, src, mpath = open_extract(extract, manifest_path)
-    stats: dict[str, Any] = {}
-    entries = {c.name: c for c in manifest.columns if c.mechanism is not None}
-    for name, entry in entries.items():
-        stats[name] = _stats_for(entry)
-    rows = 0
-    for batch, cols in iter_column_arrays(manifest, src, batch_rows):
-        for name, arrays in cols.items():
-            st = stats[name]
-            if check_alphabet:
-                bad = st.mechanism.count_invalid(arrays)
-                if bad:
-                    raise DataError(f"extract {extract}: column {name!r} has {bad} value(s) outside the output alphabet "
-                                    f"of its mechanism ({entries[name].mechanism['mechanism']}) near data row "
-                                    f"{rows + 1}. The extract was altered or does not belong to manifest {mpath}; "
-                                    "run `ldpt validate` for details.")
-            st.add(arrays)
-        rows += batch.num_rows
-    if rows != manifest.rows:
-        raise ManifestError(f"extract {extract} has {rows} rows but manifest {mpath} says {manifest.rows}. The files do "
-                            "not belong together, or the extract is incomplete; run `ldpt validate`.")
-    return manifest, stats, rows
+               check_alphabet: bool = True) -> tuple[Manifest, dict[str, Any], int]:
+    """One extract, one-column statistics only (used by validate)."""
+    acc = accumulate_many([extract], [manifest_path], batch_rows=batch_rows, check_alphabet=check_alphabet)
+    return acc.manifest, acc.columns, acc.rows
 
+
+# -- reporting -------------------------------------------------------------------------------
 
 def z_value(confidence: float) -> float:
     if not 0 < confidence < 1:
@@ -197,7 +606,33 @@ def z_value(confidence: float) -> float:
     return NormalDist().inv_cdf(0.5 + confidence / 2)
 
 
-def report(manifest: Manifest, stats: dict[str, Any], rows: int, confidence: float) -> dict[str, Any]:
+def _distribution_report(dist: Any, an: Analyses, col: str, confidence: float) -> dict[str, Any]:
+    out: dict[str, Any] = {"method": getattr(dist, "method", "")}
+    qs = []
+    for q in an.quantiles:
+        qs.append({"q": q, **dist.quantile_ci(q, confidence)})
+    out["quantiles"] = qs
+    rngs = []
+    for c, lo, hi in an.ranges:
+        if c == col:
+            rngs.append({"low": lo, "high": hi, **dist.range_ci(lo, hi, confidence)})
+    if rngs:
+        out["ranges"] = rngs
+    out["histogram"] = dist.histogram()
+    return out
+
+
+def _have_distribution() -> bool:
+    try:
+        from . import distribution  # noqa: F401
+    except ImportError:
+        return False
+    return True
+
+
+def report(manifest: Manifest, stats: dict[str, Any], rows: int, confidence: float,
+           analyses: Analyses | None = None, acc: Accumulated | None = None) -> dict[str, Any]:
+    an = analyses or Analyses()
     z = z_value(confidence)
     out: dict[str, Any] = {"rows": rows, "confidence": confidence, "columns": {}}
     for entry in manifest.columns:
@@ -205,26 +640,65 @@ def report(manifest: Manifest, stats: dict[str, Any], rows: int, confidence: flo
         if st is None:
             continue
         spec = entry.mechanism or {}
-        base = {"type": entry.type, "mechanism": spec.get("mechanism"), "epsilon": spec.get("epsilon")}
+        base: dict[str, Any] = {"type": entry.type, "mechanism": spec.get("mechanism"), "epsilon": spec.get("epsilon")}
+        if st.n != rows:
+            base["rows_reported"] = st.n
         if isinstance(st, CategoricalStats):
-            base["frequencies"] = st.frequencies(z)
-            base["consistent_method"] = "norm-sub (projection onto the probability simplex; biased, for display)"
+            base["frequencies"] = st.frequencies(z, an.consistency)
+            base["consistent_method"] = f"{an.consistency} (post-processed to a valid distribution; biased, for display)"
+            if entry.type == "binned" and entry.bins is not None and st.n > 1 and _have_distribution():
+                from .distribution import binned_distribution
+
+                est, se = st.prefix_estimates()
+                dist = binned_distribution(np.asarray(entry.bins, float), est, se, n=st.n)
+                base["distribution"] = _distribution_report(dist, an, entry.name, confidence)
+        elif isinstance(st, DistributionStats):
+            base["bounds"] = spec.get("bounds")
+            if st.n > 1:
+                dist = st.distribution()
+                base["mean"] = dist.mean_ci(confidence) if hasattr(dist, "mean_ci") else {"estimate": dist.mean()}
+                base["distribution"] = _distribution_report(dist, an, entry.name, confidence)
         else:
             base["bounds"] = spec.get("bounds")
             base["mean"] = st.mean(z)
         out["columns"][entry.name] = base
+    if acc is not None:
+        if acc.crosstabs:
+            out["crosstabs"] = [{"rows": a, "columns": b, **st.report(z, an.consistency),
+                                 "consistent_method": an.consistency} for (a, b), st in acc.crosstabs.items()]
+        if acc.mean_by:
+            out["grouped_means"] = [{"column": y, "by": g, "rows_used": st.n, "groups": st.report(z)}
+                                    for (y, g), st in acc.mean_by.items()]
+        if len(acc.extracts) > 1:
+            out["extracts"] = acc.extracts
     out["se_method"] = ("sample standard deviation of the per-row unbiased estimates / sqrt(rows); "
-                        "normal-approximation intervals")
+                        "normal-approximation intervals; ratios (shares within a group, grouped means) by the "
+                        "delta method")
     public = [c.name for c in manifest.columns if c.type == "public"]
     if public:
         out["public_columns"] = public
     return out
 
 
-def estimate(extract: Path | str, manifest_path: Path | str | None = None, *, confidence: float = 0.95,
-             batch_rows: int = DECODE_BATCH_ROWS) -> dict[str, Any]:
-    """Unbiased frequencies and means, with SE and CI, for every privatized column."""
+def estimate(extract: Path | str | list[Path | str], manifest_path: Path | str | list | None = None, *,
+             confidence: float = 0.95, batch_rows: int = DECODE_BATCH_ROWS,
+             crosstabs: list[tuple[str, str]] | None = None, mean_by: list[tuple[str, str]] | None = None,
+             quantiles: list[float] | None = None, ranges: list[tuple[str, float, float]] | None = None,
+             consistency: str = "norm-sub") -> dict[str, Any]:
+    """Unbiased frequencies and means (and the requested joint analyses, quantiles and
+    ranges) with SE and CI.  ``extract`` may be a list: extracts with identical mechanism
+    specs are merged by adding their sufficient statistics."""
     z_value(confidence)
-    manifest, stats, rows = accumulate(Path(extract), Path(manifest_path) if manifest_path else None,
-                                       batch_rows=batch_rows)
-    return report(manifest, stats, rows, confidence)
+    extracts = list(extract) if isinstance(extract, (list, tuple)) else [extract]
+    if isinstance(manifest_path, (list, tuple)):
+        manifests = list(manifest_path)
+    else:
+        manifests = [manifest_path] * len(extracts) if manifest_path and len(extracts) == 1 else \
+            ([None] * len(extracts) if manifest_path is None else None)
+        if manifests is None:
+            raise UsageError("with several extracts, give one --manifest per extract or none")
+    an = Analyses(crosstabs=list(crosstabs or []), mean_by=list(mean_by or []),
+                  quantiles=list(quantiles) if quantiles else [0.5], ranges=list(ranges or []),
+                  consistency=consistency)
+    acc = accumulate_many([Path(e) for e in extracts], manifests, analyses=an, batch_rows=batch_rows)
+    return report(acc.manifest, acc.columns, acc.rows, confidence, an, acc)
