@@ -396,6 +396,11 @@ def policy_check(policy: Path = typer.Argument(..., help="Policy file to check."
         mname = (m.name + (" (auto)" if rc.chosen_because else "")) if m else "-"
         t.add_row(escape(rc.name), rc.type, mname, f"{m.epsilon:g}" if m else "-", escape(dom))
     out_console.print(t)
+    if getattr(lp, "strategy", "split") == "sample":
+        pol = lp.policy
+        out_console.print(f"budget.strategy sample: each row reports {pol.reported_columns} of its "
+                          f"{len(pol.privatized_columns)} privatized columns (chosen by the keyed PRF, independent "
+                          f"of the data) at eps {pol.sampled_epsilon:g} each", markup=False)
     out_console.print(f"eps per row: {lp.epsilon_total:g} of the budget {lp.policy.budget.epsilon_per_row:g}")
 
 

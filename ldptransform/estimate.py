@@ -137,29 +137,30 @@ class CategoricalStats:
     mechanism: mech.FrequencyOracle
     n: int = 0                                      # rows that reported this column
     support: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
-    prefix: bool = False                            # also keep prefix-sum squares (binned columns: CDF SEs)
-    prefix_sq: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.float64))
+    joint: bool = False                             # also keep co-support counts (binned columns: range SEs)
+    cosupport: np.ndarray = field(default_factory=lambda: np.zeros((0, 0), dtype=np.int64))
 
     def __post_init__(self) -> None:
         if self.support.size == 0:
             self.support = np.zeros(self.mechanism.k, dtype=np.int64)
-        if self.prefix_sq.size == 0:
-            self.prefix_sq = np.zeros(self.mechanism.k, dtype=np.float64)
+        if self.joint and self.cosupport.size == 0:
+            self.cosupport = np.zeros((self.mechanism.k, self.mechanism.k), dtype=np.int64)
 
     def add(self, arrays: list[pa.Array]) -> None:
         self.n += len(arrays[0])
-        if self.prefix:
+        if self.joint:
             s = self.mechanism.support(arrays)
             self.support += s.sum(axis=0, dtype=np.int64)
-            c = np.cumsum(s, axis=1, dtype=np.int64).astype(np.float64)
-            self.prefix_sq += (c * c).sum(axis=0)
+            si = s.astype(np.int64)
+            self.cosupport += si.T @ si       # reports supporting both v and w
         else:
             self.support += self.mechanism.support_counts(arrays)
 
     def merge(self, other: "CategoricalStats") -> None:
         self.n += other.n
         self.support += other.support
-        self.prefix_sq += other.prefix_sq
+        if self.joint:
+            self.cosupport += other.cosupport
 
     def sums(self) -> tuple[np.ndarray, np.ndarray]:
         """(sum of u_v, sum of u_v^2) over the reporting rows, per value v."""
@@ -173,20 +174,19 @@ class CategoricalStats:
         total, sq = self.sums()
         return _moments(total, sq, self.n)
 
-    def prefix_estimates(self) -> tuple[np.ndarray, np.ndarray]:
-        """Estimates and SEs of the cumulative shares F_j = sum_{v<=j} f_v, j = 0..k-1."""
-        m, n = self.mechanism, self.n
-        p, q = m.p_star, m.q_star
-        d = p - q
-        j = np.arange(1, m.k + 1)
-        c = np.cumsum(self.support.astype(float))           # sum_i |S(y_i) ∩ [0, j]|
-        total = (c - n * j * q) / d
-        sq = (self.prefix_sq - 2 * j * q * c + n * (j * q) ** 2) / d ** 2
-        est, se = _moments(total, sq, n)
-        return est, se
+    def covariance(self) -> np.ndarray:
+        """Covariance matrix of the frequency estimates (needs ``joint``; REFERENCE.md 0.3)."""
+        from .distribution import frequency_covariance
 
-    def frequencies(self, z: float, method: str = "norm-sub") -> list[dict[str, Any]]:
         m = self.mechanism
+        return frequency_covariance(m.p_star, m.q_star, self.n, self.support, self.cosupport)
+
+    def frequencies(self, z: float, method: str = "norm-sub", rows: int | None = None) -> list[dict[str, Any]]:
+        """Per value: unbiased share, SE, interval, estimated count (share x all ``rows`` of the
+        table, which under budget.strategy sample is more than the rows that reported), and the
+        consistent share."""
+        m = self.mechanism
+        rows = self.n if rows is None else rows
         est, se = self.estimates()
         if est is None:
             return [{"value": label, "estimate": None, "se": None, "ci_low": None, "ci_high": None,
@@ -194,7 +194,7 @@ class CategoricalStats:
         cons = consistent(est, method)
         out = []
         for i, label in enumerate(m.categories):
-            row = {"value": label, **_interval(est[i], se[i], z), "count_estimate": float(est[i] * self.n),
+            row = {"value": label, **_interval(est[i], se[i], z), "count_estimate": float(est[i] * rows),
                    "consistent": float(cons[i])}
             out.append(row)
         return out
@@ -267,7 +267,7 @@ def stats_for(entry: ColumnEntry) -> CategoricalStats | NumericStats | Distribut
         return None
     m = mech.build(entry.mechanism)
     if isinstance(m, mech.FrequencyOracle):
-        return CategoricalStats(m, prefix=entry.type == "binned")
+        return CategoricalStats(m, joint=entry.type == "binned")
     if is_distribution(m):
         return DistributionStats(m)
     return NumericStats(m)
@@ -481,6 +481,12 @@ def _check_analyses(manifest: Manifest, an: Analyses) -> None:
                              f"needs a {' or '.join(kinds)} column.")
         return c
 
+    pairs = [("--crosstab", a, b) for a, b in an.crosstabs] + [("--mean-by", y, g) for y, g in an.mean_by]
+    if pairs and getattr(manifest.privacy, "strategy", "split") == "sample" and \
+            getattr(manifest.privacy, "reported_columns", None) == 1:
+        raise UsageError(f"{pairs[0][0]} {pairs[0][1]}:{pairs[0][2]}: this release uses budget.strategy sample with "
+                         "one reported column per row, so no row reports two columns and joint analyses are "
+                         "impossible. Use one-column estimates, or a release with sample_columns of 2 or more.")
     for a, b in an.crosstabs:
         need(a, "--crosstab", ("categorical",))
         need(b, "--crosstab", ("categorical",))
@@ -606,28 +612,27 @@ def z_value(confidence: float) -> float:
     return NormalDist().inv_cdf(0.5 + confidence / 2)
 
 
+def _interval_dict(iv: Any) -> dict[str, Any]:
+    """distribution.Interval -> the estimate/se/ci_low/ci_high/method keys used everywhere."""
+    d = iv.as_dict() if hasattr(iv, "as_dict") else dict(iv)
+    return {"estimate": d.get("estimate"), "se": d.get("se"), "ci_low": d.get("lo", d.get("ci_low")),
+            "ci_high": d.get("hi", d.get("ci_high")), "method": d.get("method")}
+
+
 def _distribution_report(dist: Any, an: Analyses, col: str, confidence: float) -> dict[str, Any]:
     out: dict[str, Any] = {"method": getattr(dist, "method", "")}
     qs = []
     for q in an.quantiles:
-        qs.append({"q": q, **dist.quantile_ci(q, confidence)})
+        qs.append({"q": q, **_interval_dict(dist.quantile_ci(q, confidence))})
     out["quantiles"] = qs
     rngs = []
     for c, lo, hi in an.ranges:
         if c == col:
-            rngs.append({"low": lo, "high": hi, **dist.range_ci(lo, hi, confidence)})
+            rngs.append({"low": lo, "high": hi, **_interval_dict(dist.range_ci(lo, hi, confidence))})
     if rngs:
         out["ranges"] = rngs
     out["histogram"] = dist.histogram()
     return out
-
-
-def _have_distribution() -> bool:
-    try:
-        from . import distribution  # noqa: F401
-    except ImportError:
-        return False
-    return True
 
 
 def report(manifest: Manifest, stats: dict[str, Any], rows: int, confidence: float,
@@ -644,19 +649,23 @@ def report(manifest: Manifest, stats: dict[str, Any], rows: int, confidence: flo
         if st.n != rows:
             base["rows_reported"] = st.n
         if isinstance(st, CategoricalStats):
-            base["frequencies"] = st.frequencies(z, an.consistency)
+            base["frequencies"] = st.frequencies(z, an.consistency, rows)
             base["consistent_method"] = f"{an.consistency} (post-processed to a valid distribution; biased, for display)"
-            if entry.type == "binned" and entry.bins is not None and st.n > 1 and _have_distribution():
+            if entry.type == "binned" and entry.bins is not None and st.n > 1:
                 from .distribution import binned_distribution
 
-                est, se = st.prefix_estimates()
-                dist = binned_distribution(np.asarray(entry.bins, float), est, se, n=st.n)
+                cov = st.covariance()
+                prefix_se = np.sqrt(np.maximum(np.diag(np.cumsum(np.cumsum(cov, axis=0), axis=1)), 0.0))
+                dist = binned_distribution(np.asarray(entry.bins, float), st.estimates()[0], prefix_se, cov=cov,
+                                           n=st.n)
                 base["distribution"] = _distribution_report(dist, an, entry.name, confidence)
         elif isinstance(st, DistributionStats):
             base["bounds"] = spec.get("bounds")
             if st.n > 1:
                 dist = st.distribution()
-                base["mean"] = dist.mean_ci(confidence) if hasattr(dist, "mean_ci") else {"estimate": dist.mean()}
+                base["mean"] = {"estimate": float(dist.mean()), "se": None, "ci_low": None, "ci_high": None,
+                                "note": "mean of the estimated distribution (no SE: use a mean mechanism such as "
+                                        "hybrid when the mean matters)"}
                 base["distribution"] = _distribution_report(dist, an, entry.name, confidence)
         else:
             base["bounds"] = spec.get("bounds")

@@ -26,8 +26,8 @@ CAUTIONS = [
     "The epsilon values are a policy choice, not a guarantee of safety; they were set by the data steward.",
     "Local differential privacy protects only the privatized columns. Columns of type 'public' are copied "
     "as they are and are not protected at all; combined with other data they may identify people.",
-    "Protection composes: each row's total epsilon is the sum over its privatized columns, and separate "
-    "releases about the same people add up.",
+    "Protection composes: each row's total epsilon is the sum over the privatized columns it reports (all of "
+    "them, unless privacy.strategy is 'sample'), and separate releases about the same people add up.",
     "Do not try to link this extract to other data to single out people; that may be unlawful and breach "
     "your agreement with the data steward.",
 ]
@@ -52,6 +52,10 @@ class ColumnEntry(_Strict):
     bins: list[float] | None = None
     outputs: list[OutputColumn]
     note: str | None = None
+    # Share of rows whose report of this column is present (budget.strategy sample: m/d, the
+    # other cells are empty; 1.0 otherwise).  A decoder counts an empty cell as a per-row
+    # estimate of 0 and divides the reported per-row estimates by this rate.
+    report_rate: float = Field(1.0, gt=0, le=1)
 
 
 class ExtractInfo(_Strict):
@@ -68,6 +72,12 @@ class Privacy(_Strict):
     epsilon_per_row_used: float
     composition: str
     public_columns: list[str]
+    # budget.strategy: "split" (every row reports all its privatized columns) or "sample"
+    # (each row reports reported_columns of its privatized_columns, chosen by the keyed PRF
+    # independently of the data).  Absent in manifests written before strategies existed.
+    strategy: Literal["split", "sample"] = "split"
+    privatized_columns: int | None = Field(None, ge=0)  # d
+    reported_columns: int | None = Field(None, ge=0)    # m
 
 
 class Manifest(_Strict):

@@ -16,6 +16,7 @@ from typing import Annotated, Any, Literal, Union
 
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+from pydantic_core import InitErrorDetails, PydanticCustomError
 
 from . import mechanisms as mech
 from .errors import PolicyError
@@ -27,6 +28,8 @@ DEFAULT_CSV_NULLS = ["", "NA", "N/A", "NaN", "nan", "null", "NULL"]
 
 Epsilon = Annotated[float, Field(gt=0, le=50, allow_inf_nan=False, strict=True,
                                  description="Privacy parameter of this column (natural log).")]
+_EPS_FIELD = ("Privacy parameter of this column (natural log): required under budget.strategy split, "
+              "absent under sample (every reported column then gets epsilon_per_row / m).")
 Scalar = Union[Annotated[str, Field(strict=True)], Annotated[int, Field(strict=True)],
                Annotated[float, Field(strict=True)], Annotated[bool, Field(strict=True)]]
 
@@ -56,7 +59,7 @@ class Fill(_Strict):
 class CategoricalColumn(_Strict):
     type: Literal["categorical"]
     categories: list[Scalar] = Field(description="The declared domain, in order.")
-    epsilon: Epsilon
+    epsilon: Epsilon | None = Field(None, description=_EPS_FIELD)
     mechanism: str | None = Field(None, description="grr, oue, sue or olh; absent or 'auto': lowest variance.")
     missing: Literal["error", "as-category"] = "error"
     unknown: Literal["error", "as-category"] = "error"
@@ -86,12 +89,22 @@ class NumericColumn(_Strict):
     bounds: tuple[float, float] | None = Field(None, description="[low, high]; values outside are clipped.")
     bins: list[Annotated[float, Field(strict=True, allow_inf_nan=False)]] | None = Field(
         None, description="Bin edges; the column is released as a categorical column of bins.")
-    epsilon: Epsilon
-    mechanism: str | None = Field(None, description="hybrid, piecewise, two-point (or, with bins, a categorical one).")
+    epsilon: Epsilon | None = Field(None, description=_EPS_FIELD)
+    mechanism: str | None = Field(None, description="hybrid, piecewise, two-point (means); square-wave, hierarchy "
+                                                    "(distributions: quantiles, range shares); with bins, a "
+                                                    "categorical one.")
     missing: Literal["error"] | Fill = "error"
     out_of_bounds: Literal["clip", "error"] = "clip"
-    grid: int | None = Field(None, ge=1, le=4096, description="piecewise/hybrid: input grid size (default 256).")
+    grid: int | None = Field(None, ge=1, le=4096, description="piecewise/hybrid/square-wave: input grid size "
+                                                               "(default 256).")
     hash_range: int | None = Field(None, description="olh on bins only.")
+    needs: list[Literal["mean", "quantiles"]] | None = Field(
+        None, min_length=1, description="What partners will estimate: mean and/or quantiles (default [mean]). With "
+                                        "quantiles and no mechanism, the tool's distribution default is used.")
+    branching: int | None = Field(None, ge=2, le=16, description="hierarchy: branching factor of the tree "
+                                                                 "(default 4).")
+    leaves: int | None = Field(None, ge=2, le=1024, description="hierarchy: number of equal leaf buckets of the "
+                                                                "bounds, a power of branching (default 64).")
 
     @model_validator(mode="after")
     def _domain(self) -> "NumericColumn":
@@ -111,6 +124,8 @@ class NumericColumn(_Strict):
                 raise ValueError("bins edges must be strictly increasing")
             if self.bounds is not None and (self.bounds[0] != b[0] or self.bounds[1] != b[-1]):
                 raise ValueError("with bins, bounds (if given) must equal the first and last edge")
+        if self.needs is not None and len(set(self.needs)) != len(self.needs):
+            raise ValueError("needs lists a value twice; list each of mean, quantiles at most once")
         if isinstance(self.missing, Fill):
             lo, hi = self.domain
             if not lo <= self.missing.fill <= hi:
@@ -143,9 +158,30 @@ ColumnPolicy = Annotated[Union[CategoricalColumn, NumericColumn, DropColumn, Pub
                          Field(discriminator="type")]
 
 
+MAX_COLUMN_EPSILON = 50.0  # the largest column epsilon a policy may give (see Epsilon)
+SAMPLE_EPSILON_STEP = 2.5  # the m rule of Wang et al., ICDE 2019 (see sample_size)
+
+
+def sample_size(epsilon_per_row: float, d: int) -> int:
+    """How many of its d privatized columns a row reports under ``strategy: sample``.
+
+    m = max(1, min(d, floor(eps / 2.5))): the rule of N. Wang, X. Xiao, Y. Yang, J. Zhao,
+    S. C. Hui, H. Shin, J. Shin, G. Yu, "Collecting and Analyzing Multidimensional Data with
+    Local Differential Privacy", ICDE 2019 (restated in REFERENCE.md section 5.4; tag [M]).
+    """
+    return max(1, min(d, math.floor(epsilon_per_row / SAMPLE_EPSILON_STEP)))
+
+
 class Budget(_Strict):
     epsilon_per_row: Annotated[float, Field(gt=0, allow_inf_nan=False, strict=True,
                                             description="Total eps over all columns of one row.")]
+    strategy: Literal["split", "sample"] = Field(
+        "split", description="split: each privatized column has its own epsilon, their sum <= epsilon_per_row. "
+                             "sample: each row reports only m of its d privatized columns (chosen by the keyed "
+                             "PRF, independently of the data), each at epsilon_per_row / m; the others are empty.")
+    sample_columns: Annotated[int, Field(ge=1, strict=True)] | None = Field(
+        None, description="strategy sample only: m, the number of columns each row reports (default "
+                          "max(1, min(d, floor(epsilon_per_row / 2.5))).")
 
 
 class InputOptions(_Strict):
@@ -162,8 +198,67 @@ class Policy(_Strict):
     input: InputOptions = Field(default_factory=InputOptions)
     columns: dict[str, ColumnPolicy] = Field(min_length=1)
 
+    @property
+    def privatized_columns(self) -> list[str]:
+        """Names of the categorical and numeric columns (d of them), in policy order."""
+        return [n for n, c in self.columns.items() if isinstance(c, (CategoricalColumn, NumericColumn))]
+
+    @property
+    def reported_columns(self) -> int:
+        """m: how many privatized columns each row reports (all d of them under split)."""
+        d = len(self.privatized_columns)
+        if self.budget.strategy == "split":
+            return d
+        return self.budget.sample_columns or sample_size(self.budget.epsilon_per_row, d)
+
+    @property
+    def sampled_epsilon(self) -> float:
+        """strategy sample: the epsilon of every reported column, epsilon_per_row / m."""
+        return self.budget.epsilon_per_row / self.reported_columns
+
     @model_validator(mode="after")
     def _budget(self) -> "Policy":
+        problems = []
+        names = self.privatized_columns
+        strategy, eps_row = self.budget.strategy, self.budget.epsilon_per_row
+        if strategy == "split":
+            for n in names:
+                if self.columns[n].epsilon is None:
+                    problems.append((("columns", n, "epsilon"), self.columns[n].model_dump(exclude_none=True),
+                                     "is required under budget.strategy split (the default): give this column its "
+                                     "own epsilon (the column epsilons may add up to at most budget.epsilon_per_row), "
+                                     "or set budget.strategy: sample"))
+            if self.budget.sample_columns is not None:
+                problems.append((("budget", "sample_columns"), self.budget.sample_columns,
+                                 "applies only to budget.strategy: sample; remove it, or set strategy: sample"))
+        else:
+            for n in names:
+                eps = self.columns[n].epsilon
+                if eps is not None:
+                    problems.append((("columns", n, "epsilon"), eps,
+                                     "must be left out under budget.strategy sample: each row reports m of its d "
+                                     "privatized columns and every reported column gets epsilon_per_row / m; "
+                                     "remove this field"))
+            m, d = self.budget.sample_columns, len(names)
+            if d == 0:
+                problems.append((("budget", "strategy"), strategy, "sample needs at least one categorical or "
+                                 "numeric column to sample from; use strategy: split (the default)"))
+            elif m is not None and m > d:
+                problems.append((("budget", "sample_columns"), m,
+                                 f"is more than the {d} privatized (categorical and numeric) column(s) of this policy "
+                                 "(public and drop columns do not count); give at most "
+                                 f"{d}, or leave it out for the default rule"))
+            elif eps_row / self.reported_columns > MAX_COLUMN_EPSILON:
+                problems.append((("budget", "epsilon_per_row"), eps_row,
+                                 f"under strategy sample each reported column gets epsilon_per_row / m = "
+                                 f"{eps_row / self.reported_columns:g}, above the largest column epsilon "
+                                 f"({MAX_COLUMN_EPSILON:g}); lower the budget or raise budget.sample_columns"))
+        if problems:
+            raise ValidationError.from_exception_data("Policy", [
+                InitErrorDetails(type=PydanticCustomError("policy_budget", msg),
+                                 loc=loc, input=value) for loc, value, msg in problems])
+        if strategy == "sample":
+            return self
         total = sum(c.epsilon for c in self.columns.values() if isinstance(c, (CategoricalColumn, NumericColumn)))
         if total > self.budget.epsilon_per_row + EPS_TOLERANCE:
             parts = ", ".join(f"{n} {c.epsilon:g}" for n, c in self.columns.items()
@@ -174,7 +269,10 @@ class Policy(_Strict):
         return self
 
     def canonical(self) -> dict[str, Any]:
-        return self.model_dump(mode="json", exclude_none=True)
+        out = self.model_dump(mode="json", exclude_none=True)
+        if out["budget"].get("strategy") == "split":
+            del out["budget"]["strategy"]  # the default: policies keep the hash they had before strategies
+        return out
 
     def sha256(self) -> str:
         return hashlib.sha256(json.dumps(self.canonical(), sort_keys=True, separators=(",", ":")).encode()).hexdigest()
@@ -236,7 +334,7 @@ def resolve_column(name: str, col: Any) -> ResolvedColumn:
             if col.hash_range is not None and name_ != "olh":
                 raise PolicyError(f"{_where(name, 'hash_range')}: hash_range applies to mechanism olh only")
             rc.mechanism = mech.make(name_, "categorical", col.epsilon, domain, **params)
-        elif name_ in mech.NUMERIC:
+        elif name_ in mech.NUMERIC + mech.DISTRIBUTION:
             raise PolicyError(f"{_where(name, 'mechanism')}: {name_!r} randomizes numbers, but this column is "
                               f"released as categories{' (bins)' if kind == 'binned' else ''}; use one of "
                               f"{', '.join(mech.CATEGORICAL)} or leave mechanism out")
@@ -248,20 +346,39 @@ def resolve_column(name: str, col: Any) -> ResolvedColumn:
     rc = ResolvedColumn(name, "numeric", col)
     name_ = col.mechanism or "auto"
     grid = col.grid or mech.DEFAULT_GRID
+    numeric_names = ", ".join(mech.NUMERIC + mech.DISTRIBUTION)
     if col.hash_range is not None:
         raise PolicyError(f"{_where(name, 'hash_range')}: hash_range applies to mechanism olh on bins only")
+    if name_ == "auto" and "quantiles" in (col.needs or ()):
+        name_ = mech.DEFAULT_DISTRIBUTION
+        rc.chosen_because = mech.DEFAULT_DISTRIBUTION_REASON
+    for fieldname in ("branching", "leaves"):
+        if getattr(col, fieldname) is not None and name_ != "hierarchy":
+            raise PolicyError(f"{_where(name, fieldname)}: {fieldname} applies to mechanism hierarchy only")
     if name_ == "auto":
         rc.mechanism, rc.chosen_because = mech.choose_numeric(col.epsilon, col.domain, grid)
     elif name_ in mech.NUMERIC:
         params = {"grid": grid} if name_ != "two-point" else {}
         rc.mechanism = mech.make(name_, "numeric", col.epsilon, col.domain, **params)
+    elif name_ in mech.DISTRIBUTION:
+        if name_ == "hierarchy":
+            if col.grid is not None:
+                raise PolicyError(f"{_where(name, 'grid')}: grid does not apply to mechanism hierarchy (its buckets "
+                                  "are set by leaves)")
+            params = {k: v for k, v in (("branching", col.branching), ("leaves", col.leaves)) if v is not None}
+        else:
+            params = {"grid": grid}
+        try:
+            rc.mechanism = mech.make(name_, "numeric", col.epsilon, col.domain, **params)
+        except PolicyError as err:
+            raise PolicyError(f"column {name!r}: {err}") from None
     elif name_ in mech.CATEGORICAL:
         raise PolicyError(f"{_where(name, 'mechanism')}: {name_!r} randomizes categories, but this column is "
-                          f"numeric; use one of {', '.join(mech.NUMERIC)}, or add bins: [edges] to release it "
+                          f"numeric; use one of {numeric_names}, or add bins: [edges] to release it "
                           "as categories")
     else:
         raise PolicyError(f"{_where(name, 'mechanism')}: unknown mechanism {name_!r}; for a numeric column use one "
-                          f"of {', '.join(mech.NUMERIC)}, or leave it out to pick the lowest-variance one")
+                          f"of {numeric_names}, or leave it out to pick the lowest-variance one")
     return rc
 
 
@@ -276,13 +393,29 @@ class LoadedPolicy:
         return {c.name: c for c in self.columns}
 
     @property
+    def strategy(self) -> str:
+        return self.policy.budget.strategy
+
+    @property
+    def report_rate(self) -> float:
+        """m/d: the share of rows in which each privatized column is reported (1 under split)."""
+        d = len(self.policy.privatized_columns)
+        return self.policy.reported_columns / d if (self.strategy == "sample" and d) else 1.0
+
+    @property
     def epsilon_total(self) -> float:
+        """A row's privacy loss: the sum over its privatized columns (split), or m x eps_row/m
+        over the m columns it reports (sample; which ones is independent of the data)."""
+        if self.strategy == "sample":
+            return self.policy.reported_columns * self.policy.sampled_epsilon
         return sum(c.mechanism.epsilon for c in self.columns if c.mechanism is not None)
 
 
 def resolve(policy: Policy, source: str = "<policy>") -> LoadedPolicy:
     cols = []
     for name, col in policy.columns.items():
+        if policy.budget.strategy == "sample" and isinstance(col, (CategoricalColumn, NumericColumn)):
+            col = col.model_copy(update={"epsilon": policy.sampled_epsilon})  # every reported column: eps_row/m
         try:
             cols.append(resolve_column(name, col))
         except PolicyError as err:

@@ -4,6 +4,12 @@ extract, then the public manifest (last), and the steward's private diagnostics.
 The batch kernel ``privatize_batch`` is pure: (batch, global row offset, plan, key,
 nonce) -> privatized batch.  Row ``r`` of column ``c`` always draws the PRF words for
 (key, nonce, c, r), so the extract does not depend on the batch size.
+
+Under ``budget.strategy: sample`` row ``r`` also draws one word per privatized column from
+the stream (key, nonce, "sampling"); the m columns with the smallest words are reported
+and the other cells are left empty (null).  The choice depends only on the key, the nonce,
+the row index and the policy (never on the data); every column still draws its own words
+for every row, so nothing else changes with the choice or the batch size.
 """
 
 from __future__ import annotations
@@ -69,6 +75,44 @@ class ColumnPlan:
     fields: list[pa.Field]
     stream: KeyedStream | None = None
     diag: ColumnDiagnostics = field(default_factory=ColumnDiagnostics)
+    sample_index: int | None = None  # strategy sample: this column's position among the d privatized columns
+    reported: int = 0                # strategy sample: cells reported so far (private diagnostics only)
+
+
+@dataclass
+class ColumnSampler:
+    """strategy sample: which m of its d privatized columns each row reports.
+
+    One PRF word per (row, column) from ``stream``; a row reports the m columns with the
+    smallest words.  The words of a row are i.i.d. uniform, so their order is a uniform
+    random permutation and the first m positions a uniform m-subset (chosen without
+    replacement; ties have probability about d^2/2^65 and are broken by column position).
+    Columns are numbered in policy order, so the choice does not depend on the input.
+    """
+
+    stream: KeyedStream
+    d: int
+    m: int
+
+    def reported(self, row0: int, n: int) -> np.ndarray:
+        """Boolean matrix (n, d): True where row row0+i reports privatized column j."""
+        words = self.stream.words(row0, n, self.d)
+        chosen = np.argsort(words, axis=1, kind="stable")[:, : self.m]
+        mask = np.zeros((n, self.d), dtype=bool)
+        mask[np.arange(n)[:, None], chosen] = True
+        return mask
+
+
+def blank_unreported(arr: pa.Array, reported: np.ndarray) -> pa.Array:
+    """``arr`` with the cells of unreported rows null.  Built from the reported values only
+    (filter, then take with null indices), so no buffer of the result holds anything of an
+    unreported cell's randomized value, whatever the array type: at most a copy of a value
+    that another row reports."""
+    if isinstance(arr, pa.ChunkedArray):
+        arr = arr.combine_chunks()
+    kept = arr.filter(pa.array(reported))
+    idx = np.maximum(np.cumsum(reported, dtype=np.int64) - 1, 0)
+    return pc.take(kept, pa.array(idx, mask=~reported))
 
 
 def _rows_text(mask: np.ndarray, row0: int) -> str:
@@ -231,10 +275,12 @@ def _output_schema(plans: list[ColumnPlan], input_schema: pa.Schema, fmt_in: str
     return pa.schema(fields)
 
 
-def privatize_batch(batch: pa.RecordBatch, row0: int, plans: list[ColumnPlan], schema: pa.Schema) -> pa.RecordBatch:
+def privatize_batch(batch: pa.RecordBatch, row0: int, plans: list[ColumnPlan], schema: pa.Schema,
+                    sampler: ColumnSampler | None = None) -> pa.RecordBatch:
     """The pure batch kernel: raw batch rows [row0, row0+n) -> privatized batch."""
     n = batch.num_rows
     arrays: list[pa.Array] = []
+    reported = sampler.reported(row0, n) if sampler is not None else None
     for p in plans:
         values = batch.column(p.rc.name)
         if p.rc.type == "public":
@@ -249,11 +295,17 @@ def privatize_batch(batch: pa.RecordBatch, row0: int, plans: list[ColumnPlan], s
         m = p.rc.mechanism
         assert m is not None and p.stream is not None
         words = p.stream.words(row0, n, m.words_per_row)
-        arrays.extend(m.randomize(x, words))
+        if reported is None:
+            arrays.extend(m.randomize(x, words))
+        else:
+            assert p.sample_index is not None
+            rep = reported[:, p.sample_index]
+            p.reported += int(rep.sum())
+            arrays.extend(blank_unreported(a, rep) for a in m.randomize(x, words))
     return pa.RecordBatch.from_arrays(arrays, schema=schema)
 
 
-def column_entries(plans: list[ColumnPlan]) -> list[ColumnEntry]:
+def column_entries(plans: list[ColumnPlan], report_rate: float = 1.0) -> list[ColumnEntry]:
     out = []
     for p in plans:
         rc = p.rc
@@ -271,7 +323,7 @@ def column_entries(plans: list[ColumnPlan]) -> list[ColumnEntry]:
             name=rc.name, type=rc.type, mechanism=m.to_spec(), chosen_because=rc.chosen_because,
             labels=list(rc.labels) if rc.labels else None,
             bins=[float(b) for b in cfg.bins] if rc.type == "binned" else None,
-            outputs=outs))
+            outputs=outs, report_rate=report_rate))
     return out
 
 
@@ -284,7 +336,37 @@ def _meaning(mech: str, out_name: str, col: str) -> str:
         if out_name.endswith("__hash"):
             return "public hash seed a*P+b of this row (P = 2^31-1)"
         return "reported hash bucket (randomized response over the hash_range buckets)"
+    if mech == "square-wave":
+        return ("index j of the reported output cell of the square-wave channel (cells are numbered from 0 by "
+                "position, from below the lower bound to above the upper; the mechanism spec rebuilds them); "
+                "not an estimate of the row's value: decode the column's distribution with `ldpt estimate`")
+    if mech == "hierarchy":
+        if out_name.endswith("__level"):
+            return "tree level (1 = coarsest) this row reports; drawn from the keyed PRF, independent of the data"
+        if out_name.endswith("__hash"):
+            return "public hash seed a*P+b of this row (P = 2^31-1) on levels reported by olh; 0 on grr levels"
+        return ("reported node of that level: the node index (grr levels) or the reported hash bucket (olh "
+                "levels); see the mechanism spec's levels")
     return "randomized value; on average equal to the true value (per-row unbiased estimate, column units)"
+
+
+def _privacy(policy: LoadedPolicy, plans: list[ColumnPlan]) -> Privacy:
+    d, m = len(policy.policy.privatized_columns), policy.policy.reported_columns
+    common = dict(model="local differential privacy: every row is randomized on its own, column by column",
+                  epsilon_per_row_budget=policy.policy.budget.epsilon_per_row,
+                  public_columns=[p.rc.name for p in plans if p.rc.type == "public"],
+                  strategy=policy.strategy, privatized_columns=d, reported_columns=m)
+    if policy.strategy == "sample":
+        return Privacy(**common, epsilon_per_row_used=policy.epsilon_total,
+                       composition=f"sequential over the columns a row reports: each row reports {m} of its {d} "
+                                   f"privatized columns, each randomized at eps {policy.policy.sampled_epsilon:g} "
+                                   f"(epsilon_per_row / {m}), so a row's epsilon is {m} x that; which columns a row "
+                                   "reports is chosen by the keyed PRF independently of the data (the other cells "
+                                   "are empty); releases about the same people add up")
+    used = sum(p.rc.mechanism.epsilon for p in plans if p.rc.mechanism is not None)
+    return Privacy(**common, epsilon_per_row_used=used,
+                   composition="sequential: a row's epsilon is the sum over its privatized columns; releases about "
+                               "the same people add up")
 
 
 @dataclass
@@ -340,6 +422,13 @@ def privatize(input_path: Path | str, policy: LoadedPolicy, key: SecretKey, out:
     for p in plans:
         if p.rc.mechanism is not None:
             p.stream = KeyedStream(key, nonce, "column", p.rc.name)
+    sampler = None
+    if policy.strategy == "sample":
+        order = policy.policy.privatized_columns  # policy order: the choice never depends on the input's layout
+        sampler = ColumnSampler(KeyedStream(key, nonce, "sampling"), len(order), policy.policy.reported_columns)
+        for p in plans:
+            if p.rc.mechanism is not None:
+                p.sample_index = order.index(p.rc.name)
     read_cols = [p.rc.name for p in plans]
 
     rows = 0
@@ -348,7 +437,7 @@ def privatize(input_path: Path | str, policy: LoadedPolicy, key: SecretKey, out:
         writer = BatchWriter(tmp_extract, fmt_out, schema)
         try:
             for batch in src.batches(read_cols, batch_rows):
-                writer.write(privatize_batch(batch, rows, plans, schema))
+                writer.write(privatize_batch(batch, rows, plans, schema, sampler))
                 rows += batch.num_rows
                 staged.check()  # stop between batches on SIGTERM/SIGINT
                 if on_progress is not None:
@@ -360,15 +449,9 @@ def privatize(input_path: Path | str, policy: LoadedPolicy, key: SecretKey, out:
             tool_version=__version__, created_utc=now_utc(), rows=rows, nonce=nonce,
             key_fingerprint=key.fingerprint(), prf=PRF_VERSION, policy_sha256=policy.policy.sha256(),
             policy=policy.policy.canonical(),
-            privacy=Privacy(
-                model="local differential privacy: every row is randomized on its own, column by column",
-                epsilon_per_row_budget=policy.policy.budget.epsilon_per_row,
-                epsilon_per_row_used=sum(p.rc.mechanism.epsilon for p in plans if p.rc.mechanism is not None),
-                composition="sequential: a row's epsilon is the sum over its privatized columns; releases about "
-                            "the same people add up",
-                public_columns=[p.rc.name for p in plans if p.rc.type == "public"]),
+            privacy=_privacy(policy, plans),
             extract=ExtractInfo(file=out.name, format=fmt_out, sha256=digest, bytes=size, columns=schema.names),
-            columns=column_entries(plans), cautions=list(CAUTIONS))
+            columns=column_entries(plans, policy.report_rate), cautions=list(CAUTIONS))
         tmp_manifest = staged.add(manifest_path)
         write_text_atomic_into(tmp_manifest, manifest.to_json())
         seconds = time.perf_counter() - t0
@@ -378,6 +461,8 @@ def privatize(input_path: Path | str, policy: LoadedPolicy, key: SecretKey, out:
             "seconds": round(seconds, 3), "batch_rows": batch_rows, "input": str(input_path),
             "columns": {p.rc.name: p.diag.as_dict() for p in plans if p.rc.mechanism is not None},
         }
+        if sampler is not None:
+            diag["reported_cells"] = {p.rc.name: p.reported for p in plans if p.rc.mechanism is not None}
         tmp_diag = staged.add(diagnostics_path)
         write_text_atomic_into(tmp_diag, json.dumps(diag, indent=2) + "\n", mode=0o600)
         if overwrite and manifest_path.exists():

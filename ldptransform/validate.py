@@ -16,6 +16,8 @@ from statistics import NormalDist
 from typing import Any
 
 import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
 
 from . import mechanisms as mech
 from .errors import LdptError
@@ -112,15 +114,41 @@ def _check_privacy(manifest: Manifest, rep: ValidationReport) -> None:
             issues.append(f"column {c.name!r}: its channel allows a likelihood ratio of e^{worst:.6g}, above its "
                           f"stated eps {eps:g}")
     budget = manifest.privacy.epsilon_per_row_budget
+    priv = manifest.privacy
+    privatized = [c for c in manifest.columns if c.mechanism is not None]
+    if priv.strategy == "sample":
+        # each row reports m of its d columns (chosen independently of the data): its loss is
+        # m x the largest column eps (sequential composition over the reported columns)
+        d, m = priv.privatized_columns, priv.reported_columns
+        if d != len(privatized) or m is None or not 1 <= m <= d:
+            issues.append(f"strategy sample: the manifest says each row reports {m} of {d} columns, but it "
+                          f"describes {len(privatized)} privatized columns")
+            m = d = len(privatized)
+        total = m * max((float(c.mechanism.get("epsilon", float("nan"))) for c in privatized), default=0.0)
+        rates = [c.name for c in privatized if abs(c.report_rate - m / max(d, 1)) > 1e-12]
+        adds = used = "the reported columns use"
+        summary = (f"each row reports {m} of {d} columns (chosen independently of the data) at eps up to "
+                   f"{total / max(m, 1):g} each: {total:g} of {budget:g} per row (sequential composition over the "
+                   "reported columns)")
+    else:
+        rates = [c.name for c in manifest.columns if c.report_rate != 1.0]
+        adds, used = "the column epsilons add up to", "the columns add up to"
+        summary = f"the columns use {total:g} of {budget:g} per row (sequential composition)"
+    if rates:
+        issues.append(f"column(s) {', '.join(map(repr, rates))}: report_rate does not match the strategy")
     if total > budget + EPS_TOLERANCE:
-        issues.append(f"the column epsilons add up to {total:g}, above the stated budget {budget:g} per row")
+        issues.append(f"{adds} {total:g}, above the stated budget {budget:g} per row")
     if abs(total - manifest.privacy.epsilon_per_row_used) > 1e-9:
-        issues.append(f"privacy.epsilon_per_row_used says {manifest.privacy.epsilon_per_row_used:g} but the columns "
-                      f"add up to {total:g}")
+        issues.append(f"privacy.epsilon_per_row_used says {manifest.privacy.epsilon_per_row_used:g} but {used} "
+                      f"{total:g}")
     try:
         lp = parse_policy(manifest.policy, "embedded in the manifest")
         if lp.policy.sha256() != manifest.policy_sha256:
             issues.append("the embedded policy does not match policy_sha256")
+        if lp.strategy != priv.strategy or (priv.strategy == "sample" and (
+                priv.privatized_columns, priv.reported_columns) != (len(lp.policy.privatized_columns),
+                                                                    lp.policy.reported_columns)):
+            issues.append("privacy.strategy and the reported columns per row differ from the embedded policy's")
         pol_eps = {rc.name: rc.mechanism.epsilon for rc in lp.columns if rc.mechanism is not None}
         for c in manifest.columns:
             if c.mechanism is not None and abs(pol_eps.get(c.name, -1) - float(c.mechanism["epsilon"])) > 1e-12:
@@ -128,8 +156,7 @@ def _check_privacy(manifest: Manifest, rep: ValidationReport) -> None:
     except LdptError as err:
         issues.append(f"the embedded policy is invalid ({err})")
     rep.add("privacy budget", not issues,
-            f"every channel meets its eps exactly; the columns use {total:g} of {budget:g} per row "
-            "(sequential composition)" if not issues else "; ".join(issues))
+            f"every channel meets its eps exactly; {summary}" if not issues else "; ".join(issues))
     public = manifest.privacy.public_columns
     if public:
         rep.add("public columns", None, f"{', '.join(public)} copied in the clear: NOT protected by local DP "
@@ -199,7 +226,11 @@ def validate(extract: Path | str, manifest_path: Path | str | None = None, *, ra
     if stats is not None:
         rep.add("row count", True, f"{rows} rows, as the manifest says")
         bad = _count_invalid(extract, mpath, manifest)
-        rep.add("output alphabet", not bad, "every value lies in its mechanism's output alphabet" if not bad else
+        priv = manifest.privacy
+        sampled = (f"; every row reports exactly {priv.reported_columns} of the {priv.privatized_columns} privatized "
+                   "columns" if priv.strategy == "sample" else "")
+        rep.add("output alphabet", not bad,
+                "every value lies in its mechanism's output alphabet" + sampled if not bad else
                 "values outside the output alphabet: " + ", ".join(f"{k} {v}" for k, v in bad.items()))
 
     if raw is not None:
@@ -217,11 +248,27 @@ def _count_invalid(extract: Path, mpath: Path, manifest: Manifest) -> dict[str, 
     _, src, _ = open_extract(extract, mpath)
     built = {c.name: mech.build(c.mechanism) for c in manifest.columns if c.mechanism is not None}
     bad: dict[str, int] = {}
-    for _, cols in iter_column_arrays(manifest, src):
+    priv = manifest.privacy
+    for batch, cols in iter_column_arrays(manifest, src):
+        per_row = np.zeros(batch.num_rows, dtype=np.int64)
         for name, arrays in cols.items():
-            k = built[name].count_invalid(arrays)
+            k = 0
+            if priv.strategy == "sample":
+                # an unreported cell is empty in every output of its column; only reported ones are checked
+                nulls = np.stack([np.asarray(pc.is_null(a).to_numpy(zero_copy_only=False)) for a in arrays])
+                present = ~nulls.any(axis=0)
+                k = int((nulls.any(axis=0) & ~nulls.all(axis=0)).sum())
+                per_row += present
+                arrays = [a.filter(pa.array(present)) for a in arrays]
+            k += built[name].count_invalid(arrays)
             if k:
                 bad[name] = bad.get(name, 0) + k
+        if priv.strategy == "sample":
+            k = int((per_row != priv.reported_columns).sum())
+            if k:
+                label = (f"rows that do not report exactly {priv.reported_columns} of the {priv.privatized_columns} "
+                         "columns")
+                bad[label] = bad.get(label, 0) + k
     return bad
 
 

@@ -285,7 +285,7 @@ def true_values(raw: pd.DataFrame) -> dict[str, Any]:
 # The documented shape of `estimate --format json`; the tool also adds a few informative
 # keys, listed here so that any other addition or removal is noticed.
 DOC_TOP, EXTRA_TOP = {"rows", "confidence", "columns"}, {"se_method", "public_columns"}
-DOC_COL, EXTRA_CAT, EXTRA_NUM = {"type", "mechanism", "epsilon"}, {"consistent_method"}, {"bounds"}
+DOC_COL, EXTRA_CAT, EXTRA_NUM = {"type", "mechanism", "epsilon"}, {"consistent_method", "distribution"}, {"bounds", "distribution"}
 DOC_FREQ, EXTRA_FREQ = {"value", "estimate", "se", "ci_low", "ci_high"}, {"count_estimate", "consistent"}
 DOC_MEAN = {"estimate", "se", "ci_low", "ci_high"}
 
@@ -356,8 +356,14 @@ def test_estimate_csv_matches_json(released: dict[str, Path], ldpt) -> None:
         else:
             m = col["mean"]
             expected.append((name, "mean", "", m["estimate"], m["se"], m["ci_low"], m["ci_high"]))
-    got = [(r["column"], r["statistic"], r["value"], float(r["estimate"]), float(r["se"]), float(r["ci_low"]),
-            float(r["ci_high"])) for r in rows]
+        for q in col.get("distribution", {}).get("quantiles", []):
+            expected.append((name, "quantile", repr(q["q"]), q["estimate"], q["se"], q["ci_low"], q["ci_high"]))
+
+    def num(v: str) -> float | None:
+        return None if v == "" else float(v)
+
+    got = [(r["column"], r["statistic"], r["value"], num(r["estimate"]), num(r["se"]), num(r["ci_low"]),
+            num(r["ci_high"])) for r in rows]
     assert got == expected
 
 

@@ -7,13 +7,16 @@ from typing import Any
 
 from .base import Mechanism, build, registry
 from .categorical import GRR, OLH, OUE, SUE, FrequencyOracle
+from .distribution import Hierarchy, SquareWave
 from .numeric import DEFAULT_GRID, GridMechanism, Hybrid, Piecewise, TwoPoint
 
 CATEGORICAL = ("grr", "oue", "olh", "sue")
 NUMERIC = ("hybrid", "piecewise", "two-point")
+DISTRIBUTION = ("square-wave", "hierarchy")
 
 __all__ = ["Mechanism", "FrequencyOracle", "GridMechanism", "GRR", "SUE", "OUE", "OLH",
-           "TwoPoint", "Piecewise", "Hybrid", "build", "registry", "choose_categorical", "choose_numeric", "make", "CATEGORICAL", "NUMERIC"]
+           "TwoPoint", "Piecewise", "Hybrid", "SquareWave", "Hierarchy", "build", "registry",
+           "choose_categorical", "choose_numeric", "default_distribution", "make", "DEFAULT_DISTRIBUTION", "CATEGORICAL", "NUMERIC", "DISTRIBUTION"]
 
 
 def choose_categorical(epsilon: float, categories: list[str]) -> tuple[FrequencyOracle, str]:
@@ -37,6 +40,19 @@ def choose_numeric(epsilon: float, bounds: tuple[float, float], grid: int = DEFA
     why = ("lowest worst-case variance of one report among " +
            ", ".join(f"{m.name} {v:.4g}" for v, _, m in scored) + " (column units squared)")
     return best[2], why
+
+
+# The tool's default for a numeric column whose policy says `needs: [..., quantiles]` and names
+# no mechanism: the one with the lowest median error in benchmarks/bench_quantiles.py (see
+# benchmarks/README.md for the measured figures).
+DEFAULT_DISTRIBUTION = "square-wave"
+DEFAULT_DISTRIBUTION_REASON = ("needs quantiles: square-wave, the distribution mechanism with the lowest median error "
+                               "in the tool's benchmark (benchmarks/bench_quantiles.py)")
+
+
+def default_distribution(epsilon: float, bounds: tuple[float, float]) -> tuple[Mechanism, str]:
+    """The tool's default mechanism for a numeric column whose policy needs quantiles."""
+    return make(DEFAULT_DISTRIBUTION, "numeric", epsilon, bounds), DEFAULT_DISTRIBUTION_REASON
 
 
 def make(name: str, kind: str, epsilon: float, domain: Any, **params: Any) -> Mechanism:

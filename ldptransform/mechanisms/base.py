@@ -62,7 +62,7 @@ class Mechanism(ABC):
     """Common interface.  Subclasses set ``name`` and ``kind`` and implement the rest."""
 
     name: ClassVar[str]
-    kind: ClassVar[str]  # "categorical" or "numeric"
+    kind: ClassVar[str]  # "categorical", "numeric" (means) or "distribution" (mechanisms/distribution.py)
     epsilon: float
 
     # -- construction and spec ------------------------------------------------------

@@ -64,6 +64,56 @@ def check_bounds(bounds: Any, where: str) -> tuple[float, float]:
     return lo, hi
 
 
+def integer_masses(Q: np.ndarray, epsilon: float) -> np.ndarray:
+    """A finite channel ``Q`` (inputs x outputs, rows summing to 1) as whole-number masses in
+    units of 2^-SAMPLING_BITS, held exactly in float64: what ``draw_index`` realizes.
+
+    Each mass is within one unit of the float channel (cumulative rounding of the remainders
+    keeps every row's total); then, per output, masses are raised to ceil(max / e^eps) so no
+    input gets more than e^eps times the mass of another, and each row's few units of surplus
+    come off its largest cell.  Without this a cell of tiny probability could be realized as 0
+    for one input and > 0 for another (an unbounded privacy loss)."""
+    S = float(1 << SAMPLING_BITS)
+    X = np.asarray(Q, dtype=float) * S
+    F = np.floor(X)
+    X -= F
+    np.cumsum(X, axis=1, out=X)
+    np.round(X, out=X)
+    F[:, 0] += X[:, 0]
+    F[:, 1:] += np.diff(X, axis=1)
+    del X
+    need = np.ceil(F.max(axis=0) / math.exp(epsilon))
+    np.maximum(F, need[None, :], out=F)
+    F[np.arange(F.shape[0]), F.argmax(axis=1)] += S - F.sum(axis=1)
+    return F
+
+
+def sampling_table(F: np.ndarray) -> np.ndarray:
+    """Row i's integer cumulative masses (``integer_masses``) offset by i * 2^SAMPLING_BITS,
+    flattened (int64; needs rows * 2^SAMPLING_BITS < 2^63, i.e. at most 8192 rows)."""
+    cum = np.cumsum(F, axis=1).astype(np.int64)  # exact: sums <= 2^50
+    cum += np.arange(cum.shape[0], dtype=np.int64)[:, None] << SAMPLING_BITS
+    return cum.ravel()
+
+
+def draw_index(table: np.ndarray, i: np.ndarray, words: np.ndarray, M: int) -> np.ndarray:
+    """Output index for input row ``i`` of a channel with ``M`` outputs, by exact integer
+    comparison of the top SAMPLING_BITS bits of each PRF word with the cumulative masses:
+    output j iff cum[i, j-1] <= u < cum[i, j], u uniform on [0, 2^SAMPLING_BITS)."""
+    u = (words >> np.uint64(64 - SAMPLING_BITS)).astype(np.int64)
+    keys = (i << SAMPLING_BITS) + u
+    if table.size > 64 and keys.size > 64:
+        # Same search on sorted keys (then put back in row order): the table is walked in
+        # order instead of at random, several times faster for large grids; same result.
+        order = np.argsort(keys)
+        pos = np.empty_like(keys)
+        pos[order] = np.searchsorted(table, keys[order], side="right")
+    else:
+        pos = np.searchsorted(table, keys, side="right")
+    pos -= i * M
+    return np.clip(pos, 0, M - 1)
+
+
 class GridMechanism(Mechanism):
     """Shared implementation; subclasses provide the grid size and the channel."""
 
@@ -107,26 +157,9 @@ class GridMechanism(Mechanism):
 
     @cached_property
     def _integer_channel(self) -> np.ndarray:
-        """The channel as masses in units of 2^-SAMPLING_BITS (whole numbers held exactly in
-        float64): exactly what ``randomize_index`` realizes.  Each mass is within one unit
-        of the float channel (cumulative rounding of the remainders keeps every row's
-        total); then, per output, masses are raised to ceil(max / e^eps) so no input gets
-        more than e^eps times the mass of another, and each row's few units of surplus
-        come off its largest cell.  Without this a cell of tiny probability could be
-        realized as 0 for one input and > 0 for another (an unbounded privacy loss)."""
-        S = float(1 << SAMPLING_BITS)
-        X = self._structure[1] * S
-        F = np.floor(X)
-        X -= F
-        np.cumsum(X, axis=1, out=X)
-        np.round(X, out=X)
-        F[:, 0] += X[:, 0]
-        F[:, 1:] += np.diff(X, axis=1)
-        del X
-        need = np.ceil(F.max(axis=0) / math.exp(self.epsilon))
-        np.maximum(F, need[None, :], out=F)
-        F[np.arange(F.shape[0]), F.argmax(axis=1)] += S - F.sum(axis=1)
-        return F
+        """The channel as masses in units of 2^-SAMPLING_BITS: exactly what ``randomize_index``
+        realizes (see ``integer_masses``)."""
+        return integer_masses(self._structure[1], self.epsilon)
 
     def channel(self) -> np.ndarray:
         """Exact P(output j | grid input i) as realized by the sampler, shape (N+1, M)."""
@@ -146,9 +179,7 @@ class GridMechanism(Mechanism):
     @cached_property
     def _sampling_table(self) -> np.ndarray:
         """Row i's integer cumulative masses offset by i * 2^SAMPLING_BITS, flattened (int64)."""
-        cum = np.cumsum(self._integer_channel, axis=1).astype(np.int64)  # exact: sums <= 2^50
-        cum += np.arange(cum.shape[0], dtype=np.int64)[:, None] << SAMPLING_BITS
-        return cum.ravel()
+        return sampling_table(self._integer_channel)
 
     # randomization ---------------------------------------------------------------
     @property
@@ -165,21 +196,7 @@ class GridMechanism(Mechanism):
         i0 = np.minimum(np.floor(s), N - 1).astype(np.int64)
         frac = s - i0
         i = i0 + (to_unit(words[:, 0]) < frac)
-        M = self.outputs.shape[0]
-        # exact integer comparison: output j iff cum[i, j-1] <= u < cum[i, j], u uniform on [0, 2^50)
-        u = (words[:, 1] >> np.uint64(64 - SAMPLING_BITS)).astype(np.int64)
-        keys = (i << SAMPLING_BITS) + u
-        table = self._sampling_table
-        if table.size > 64 and keys.size > 64:
-            # Same search on sorted keys (then put back in row order): the table is walked in
-            # order instead of at random, several times faster for large grids; same result.
-            order = np.argsort(keys)
-            pos = np.empty_like(keys)
-            pos[order] = np.searchsorted(table, keys[order], side="right")
-        else:
-            pos = np.searchsorted(table, keys, side="right")
-        pos -= i * M
-        return np.clip(pos, 0, M - 1)
+        return draw_index(self._sampling_table, i, words[:, 1], self.outputs.shape[0])
 
     def randomize(self, x: np.ndarray, words: np.ndarray) -> list[pa.Array]:
         return [pa.array(self.output_values[self.randomize_index(x, words)])]
