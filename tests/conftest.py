@@ -139,3 +139,29 @@ def survey(tmp_path: Path, key_file: Path) -> dict[str, Path]:
     csv.write_bytes(DEMO_CSV.read_bytes())
     policy = write_policy(work / "survey_policy.yaml", survey_policy())
     return {"dir": work, "csv": csv, "policy": policy, "key": key_file}
+
+
+def realized_channel(randomize_index, xs: "np.ndarray", M: int) -> "np.ndarray":
+    """P(output j | grid input i) as a sampler actually realizes it, found by bisection over
+    the PRF word that drives its second stage: for every (grid input x_i, output j) the
+    smallest 53-bit word prefix whose output index is >= j.  It assumes (as keys.to_unit
+    does) that the sampler reads at most the top 53 bits of each word, and that ``xs`` are
+    exact grid points so the first (rounding) stage lands on row i with certainty."""
+    import numpy as np
+
+    R = len(xs)
+    rows = np.repeat(np.arange(R), M)
+    js = np.tile(np.arange(M), R)
+    x = np.asarray(xs)[rows]
+    lo = np.zeros(R * M, dtype=np.int64)
+    hi = np.full(R * M, 1 << 53, dtype=np.int64)
+    words = np.zeros((R * M, 2), dtype=np.uint64)
+    while (lo < hi).any():
+        mid = (lo + hi) // 2
+        words[:, 1] = mid.astype(np.uint64) << np.uint64(11)
+        ge = randomize_index(x, words) >= js
+        hi = np.where(ge, mid, hi)
+        lo = np.where(ge, lo, np.minimum(mid + 1, hi))
+    first = lo.reshape(R, M)
+    nxt = np.concatenate([first[:, 1:], np.full((R, 1), 1 << 53)], axis=1)
+    return (nxt - first) / float(1 << 53)

@@ -16,6 +16,7 @@ import json
 import math
 from statistics import NormalDist
 
+from conftest import realized_channel
 import numpy as np
 import pyarrow as pa
 import pyarrow.csv as pacsv
@@ -186,26 +187,10 @@ def test_square_wave_structured_products_equal_the_dense_channel():
 
 
 def _realized_square_wave_channel(m) -> np.ndarray:
-    """P(cell j | grid input i) as the sampler realizes it, by bisection over the PRF word
-    of the second stage (the sampler reads at most its top 53 bits).  Bounds (0, 1) and a
-    power-of-two grid make the grid points exact, so the rounding stage lands on row i."""
+    """P(cell j | grid input i) as the sampler realizes it (bounds (0, 1) and a power-of-two grid
+    make the grid points exact)."""
     assert (m.lo, m.hi) == (0.0, 1.0)
-    R, M = m.grid + 1, m.n_cells
-    rows = np.repeat(np.arange(R), M)
-    js = np.tile(np.arange(M), R)
-    xs = m.inputs[rows]
-    lo = np.zeros(R * M, dtype=np.int64)
-    hi = np.full(R * M, 1 << 53, dtype=np.int64)
-    words = np.zeros((R * M, 2), dtype=np.uint64)
-    while (lo < hi).any():  # smallest 53-bit prefix whose output index is >= j
-        mid = (lo + hi) // 2
-        words[:, 1] = mid.astype(np.uint64) << np.uint64(11)
-        ge = m.randomize_index(xs, words) >= js
-        hi = np.where(ge, mid, hi)
-        lo = np.where(ge, lo, np.minimum(mid + 1, hi))
-    first = lo.reshape(R, M)
-    nxt = np.concatenate([first[:, 1:], np.full((R, 1), 1 << 53)], axis=1)
-    return (nxt - first) / float(1 << 53)
+    return realized_channel(m.randomize_index, m.inputs, m.n_cells)
 
 
 @pytest.mark.parametrize("eps,N", [(1.0, 32), (0.5, 64), (4.0, 16),

@@ -14,6 +14,7 @@ from __future__ import annotations
 import json
 import math
 
+from conftest import realized_channel
 import numpy as np
 import pyarrow as pa
 import pytest
@@ -243,28 +244,10 @@ def test_numeric_channel_meets_eps_and_is_unbiased(case):
 
 
 def _realized_grid_channel(m) -> np.ndarray:
-    """P(output j | grid input i) as the sampler actually realizes it, found by bisection
-    over the PRF word that drives the second stage.  It assumes (as keys.to_unit does)
-    that the sampler reads at most the top 53 bits of each word; bounds must be (-1, 1)
-    and the grid a power of two so the grid points are exact and the first (rounding)
-    stage lands on row i with certainty."""
+    """P(output j | grid input i) as the sampler realizes it (bounds (-1, 1) and a power-of-two
+    grid make the grid points exact)."""
     assert (m.lo, m.hi) == (-1.0, 1.0)
-    R, M = m.grid + 1, m.outputs.shape[0]
-    rows = np.repeat(np.arange(R), M)
-    js = np.tile(np.arange(M), R)
-    xs = m.to_units(m.inputs)[rows]
-    lo = np.zeros(R * M, dtype=np.int64)
-    hi = np.full(R * M, 1 << 53, dtype=np.int64)
-    words = np.zeros((R * M, 2), dtype=np.uint64)
-    while (lo < hi).any():  # smallest 53-bit prefix whose output index is >= j
-        mid = (lo + hi) // 2
-        words[:, 1] = mid.astype(np.uint64) << np.uint64(11)
-        ge = m.randomize_index(xs, words) >= js
-        hi = np.where(ge, mid, hi)
-        lo = np.where(ge, lo, np.minimum(mid + 1, hi))
-    first = lo.reshape(R, M)
-    nxt = np.concatenate([first[:, 1:], np.full((R, 1), 1 << 53)], axis=1)
-    return (nxt - first) / float(1 << 53)
+    return realized_channel(m.randomize_index, m.to_units(m.inputs), m.outputs.shape[0])
 
 
 @pytest.mark.parametrize("cls,eps,grid", [
