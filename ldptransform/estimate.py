@@ -631,7 +631,9 @@ def _distribution_report(dist: Any, an: Analyses, col: str, confidence: float) -
             rngs.append({"low": lo, "high": hi, **_interval_dict(dist.range_ci(lo, hi, confidence))})
     if rngs:
         out["ranges"] = rngs
-    out["histogram"] = dist.histogram()
+    hist = dist.histogram()
+    out["histogram"] = hist
+    out["cdf"] = {"x": hist["edges"], "F": [float(v) for v in np.atleast_1d(dist.cdf(np.asarray(hist["edges"])))]}
     return out
 
 

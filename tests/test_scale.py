@@ -94,7 +94,7 @@ def peak_rss_kb(args: list[str], private: Path) -> int:
 @pytest.mark.parametrize("fmt, small", [("parquet", 300_000), ("csv", 200_000)])
 def test_peak_memory_flat_in_rows(work: dict[str, Path], fmt: str, small: int) -> None:
     d = work["dir"]
-    peaks = {}
+    peaks, est_peaks = {}, {}
     for rows in (small, 10 * small):
         src = synthetic.write_input(d / f"in_{rows}.{fmt}", rows)
         out = d / f"out_{rows}.{fmt}"
@@ -104,8 +104,15 @@ def test_peak_memory_flat_in_rows(work: dict[str, Path], fmt: str, small: int) -
         src.unlink()  # keep the temporary folder small
         if fmt == "parquet":
             assert pq.ParquetFile(out).metadata.num_rows == rows
+        # decoding streams too: `estimate` keeps only sums
+        est_peaks[rows] = peak_rss_kb(["estimate", str(out), "--format", "json", "--out",
+                                       str(d / f"est_{rows}_{fmt}.json")], d)
         out.unlink()
     large = 10 * small
+    est_ratio = est_peaks[large] / est_peaks[small]
+    print(f"\n{fmt} estimate peak RSS: {small} rows {est_peaks[small] / 1024:.0f} MiB, {large} rows "
+          f"{est_peaks[large] / 1024:.0f} MiB, ratio {est_ratio:.3f}")
+    assert est_ratio <= MAX_MEMORY_RATIO, (fmt, est_peaks)
     ratio = peaks[large] / peaks[small]
     print(f"\n{fmt} peak RSS: {small} rows {peaks[small] / 1024:.0f} MiB, {large} rows "
           f"{peaks[large] / 1024:.0f} MiB, ratio {ratio:.3f}")
