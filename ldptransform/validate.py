@@ -284,18 +284,8 @@ def _reproduce(raw: Path, extract: Path, manifest: Manifest, key: SecretKey, rep
             rep.add("reproduced", True, "re-deriving the extract from the raw data, the key and the manifest's nonce "
                     "gives a bit-identical file")
             return
-        same_values = False
         try:
-            import pyarrow.parquet as pq  # noqa: F401
-            from .io import TableSource as _TS
-
-            a = _TS(out)
-            b = _TS(extract)
-            ta = [x for x in a.batches(a.column_names, 1 << 20)]
-            tb = [x for x in b.batches(b.column_names, 1 << 20)]
-            import pyarrow as pa
-
-            same_values = pa.Table.from_batches(ta).equals(pa.Table.from_batches(tb))
+            same_values = _same_values(out, extract)
         except LdptError:
             same_values = False
         if same_values and specs_same:
@@ -304,6 +294,20 @@ def _reproduce(raw: Path, extract: Path, manifest: Manifest, key: SecretKey, rep
         else:
             rep.add("reproduced", False, "re-deriving the extract from the raw data and key gives different values: "
                     "the extract, the raw file, the key or the manifest is not the release's")
+
+
+def _same_values(a_path: Path, b_path: Path, batch_rows: int = 65536) -> bool:
+    """Whether two extracts hold the same columns and values, compared batch by batch
+    (streaming: memory does not grow with the extract)."""
+    from itertools import zip_longest
+
+    a, b = TableSource(a_path), TableSource(b_path)
+    if a.column_names != b.column_names:
+        return False
+    for x, y in zip_longest(a.batches(a.column_names, batch_rows), b.batches(b.column_names, batch_rows)):
+        if x is None or y is None or not x.equals(y):
+            return False
+    return True
 
 
 def _calibrate(raw: Path, manifest: Manifest, stats: dict[str, Any], rows: int, confidence: float,
