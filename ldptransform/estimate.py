@@ -142,19 +142,16 @@ class CategoricalStats:
 
     def __post_init__(self) -> None:
         if self.support.size == 0:
-            self.support = np.zeros(self.mechanism.k, dtype=np.int64)
+            self.support = np.zeros(self.mechanism.summary_size, dtype=np.int64)
         if self.joint and self.cosupport.size == 0:
             self.cosupport = np.zeros((self.mechanism.k, self.mechanism.k), dtype=np.int64)
 
     def add(self, arrays: list[pa.Array]) -> None:
         self.n += len(arrays[0])
+        self.support += self.mechanism.summarize(arrays)
         if self.joint:
-            s = self.mechanism.support(arrays)
-            self.support += s.sum(axis=0, dtype=np.int64)
-            si = s.astype(np.int64)
+            si = self.mechanism.support(arrays).astype(np.int64)
             self.cosupport += si.T @ si       # reports supporting both v and w
-        else:
-            self.support += self.mechanism.support_counts(arrays)
 
     def merge(self, other: "CategoricalStats") -> None:
         self.n += other.n
@@ -164,11 +161,7 @@ class CategoricalStats:
 
     def sums(self) -> tuple[np.ndarray, np.ndarray]:
         """(sum of u_v, sum of u_v^2) over the reporting rows, per value v."""
-        m, n = self.mechanism, self.n
-        p, q = m.p_star, m.q_star
-        d = p - q
-        s = self.support.astype(float)
-        return (s - n * q) / d, (s * (1 - q) ** 2 + (n - s) * q ** 2) / d ** 2
+        return self.mechanism.decode_sums(self.support, self.n)
 
     def estimates(self) -> tuple[np.ndarray | None, np.ndarray | None]:
         total, sq = self.sums()
@@ -176,10 +169,7 @@ class CategoricalStats:
 
     def covariance(self) -> np.ndarray:
         """Covariance matrix of the frequency estimates (needs ``joint``; REFERENCE.md 0.3)."""
-        from .distribution import frequency_covariance
-
-        m = self.mechanism
-        return frequency_covariance(m.p_star, m.q_star, self.n, self.support, self.cosupport)
+        return self.mechanism.decode_covariance(self.support, self.n, self.cosupport)
 
     def frequencies(self, z: float, method: str = "norm-sub", rows: int | None = None) -> list[dict[str, Any]]:
         """Per value: unbiased share, SE, interval, estimated count (share x all ``rows`` of the

@@ -68,6 +68,36 @@ class FrequencyOracle(Mechanism):
         """Integer vector of shape (k,): number of rows whose report supports each value."""
         return self.support(arrays).sum(axis=0, dtype=np.int64)
 
+    # The decoder's additive summary of a batch of reports.  By default the support counts;
+    # a mechanism with a small output alphabet may keep the histogram of its outputs instead
+    # and turn it into support counts when decoding (hadamard: one fast Walsh-Hadamard
+    # transform), and a mechanism that is not a pure protocol (matrix) overrides the decoding.
+    @property
+    def summary_size(self) -> int:
+        return self.k
+
+    def summarize(self, arrays: list[pa.Array]) -> np.ndarray:
+        """Additive int64 summary of the reports in ``arrays`` (rows that did not report removed)."""
+        return self.support_counts(arrays)
+
+    def support_from_summary(self, summary: np.ndarray, n: int) -> np.ndarray:
+        return np.asarray(summary)
+
+    def decode_sums(self, summary: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
+        """(sum of u_v, sum of u_v^2) over n reports, per value v, from their summary."""
+        p, q = self.p_star, self.q_star
+        d = p - q
+        s = np.asarray(self.support_from_summary(summary, n), dtype=float)
+        return (s - n * q) / d, (s * (1 - q) ** 2 + (n - s) * q ** 2) / d ** 2
+
+    def decode_covariance(self, summary: np.ndarray, n: int, cosupport: np.ndarray | None) -> np.ndarray:
+        """Covariance matrix of the frequency estimates (REFERENCE.md section 0.3); ``cosupport``
+        counts the reports supporting both v and w (None: reports support one value each)."""
+        from ..distribution import frequency_covariance
+
+        s = self.support_from_summary(summary, n)
+        return frequency_covariance(self.p_star, self.q_star, n, s, cosupport)
+
     def row_estimates(self, arrays: list[pa.Array]) -> np.ndarray:
         """Per-row unbiased indicator estimates, shape (n, k)."""
         s = self.support(arrays)
