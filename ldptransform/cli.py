@@ -412,6 +412,89 @@ def policy_schema() -> None:
     sys.stdout.write(json.dumps(policy_json_schema(), indent=2) + "\n")
 
 
+# -- plan -----------------------------------------------------------------------------------
+
+def _fmt_se(v: object) -> str:
+    return "-" if v is None else f"{v:.4g}"
+
+
+def _plan_table(result: dict) -> None:
+    t = Table(title=f"Predicted precision at {result['rows']} rows (worst case over data; SE as `ldpt estimate` "
+                    "reports it)", title_justify="left")
+    for h in ("column", "mechanism", "eps", "statistic", "SE", "best possible", "target", "meets", "rows needed",
+              "efficiency"):
+        t.add_column(h)
+    for c in result["columns"]:
+        if "statistics" not in c:
+            t.add_row(escape(c["name"]), "-", "-", "-", "-", "-", "-", "-", "-", escape(c.get("note", "")))
+            continue
+        for s in c["statistics"]:
+            meets = s.get("meets_target")
+            if s.get("impossible_at_rows"):
+                meets_txt = "no (impossible)"
+            else:
+                meets_txt = "-" if meets is None else ("yes" if meets else "no")
+            target = s.get("target_se")
+            if s.get("target_relative_se") is not None:
+                target = (f"{_fmt_se(target)}; " if target is not None else "") + \
+                         f"{s['target_relative_se']:.3g} of width"
+            else:
+                target = _fmt_se(target)
+            se = _fmt_se(s.get("se"))
+            if s.get("relative_se") is not None:
+                se += f" ({s['relative_se']:.3g} of width)"
+            eff = s.get("efficiency")
+            t.add_row(escape(c["name"]), c["mechanism"], f"{c['epsilon']:g}", s["statistic"], se,
+                      _fmt_se(s.get("best_possible_se")), target, meets_txt,
+                      "-" if s.get("rows_needed") is None else str(s["rows_needed"]),
+                      "-" if eff is None else f"{eff:.3f}")
+    out_console.print(t)
+    out_console.print(f"eps per row: {result['epsilon_per_row']:g} of the budget "
+                      f"{result['epsilon_per_row_budget']:g} (strategy {result['strategy']})", markup=False)
+    for item in result["impossible"]:
+        err_console.print(f"warning: {item}: no eps-LDP mechanism can meet this target at {result['rows']} rows "
+                          "(lower bound); more rows, a looser target or a larger eps is needed", markup=False)
+    for item in result["targets_missed"]:
+        if item not in result["impossible"]:
+            err_console.print(f"warning: {item}: the target is missed at {result['rows']} rows", markup=False)
+    s = result.get("suggestion")
+    if s:
+        out_console.print("Suggested eps split (smallest eps per column that meets its targets):", markup=False)
+        for name, v in s["split"]["columns"].items():
+            eps = "-" if v.get("epsilon") is None else f"{v['epsilon']:g}"
+            out_console.print(f"  {name}: {eps}" + (f" ({v['mechanism']})" if v.get("mechanism") else "") +
+                              (f"  [{v['note']}]" if v.get("note") else ""), markup=False)
+        out_console.print(f"split: {s['split']['verdict']}", markup=False)
+        out_console.print(f"sample: {s['sample']['verdict']}", markup=False)
+    out_console.print("An eps is a policy choice, not a technical one: precision targets do not decide it alone. "
+                      "Agree it with the organisation's privacy officer.", markup=False)
+
+
+@app.command()
+def plan(
+    policy: Path = typer.Option(..., "--policy", help="Policy file (YAML or JSON)."),
+    rows: int = typer.Option(..., "--rows", help="Number of table rows the release will have."),
+    format: TableJson = typer.Option(TableJson.table, "--format", help="Output format."),
+    suggest: bool = typer.Option(False, "--suggest", help="Also suggest the smallest eps per column that meets the "
+                                 "policy's quality targets, and compare with budget.strategy sample."),
+) -> None:
+    """Predict each statistic's standard error before a release, against the policy's quality targets.
+    Example: ldpt plan --policy policy.yaml --rows 20000 --suggest"""
+    from .plan import plan as make_plan
+    from .plan import suggest as make_suggestion
+    from .policy import load_policy
+
+    with _user_errors():
+        lp = load_policy(policy)
+        result = make_plan(lp, rows)
+        if suggest:
+            result["suggestion"] = make_suggestion(lp, rows)
+    if format == TableJson.json:
+        sys.stdout.write(json.dumps(result, indent=2) + "\n")
+    else:
+        _plan_table(result)
+
+
 # -- demo -----------------------------------------------------------------------------------
 
 @app.command()

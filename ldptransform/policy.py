@@ -56,14 +56,41 @@ class Fill(_Strict):
                                  description="Value used in place of a missing one (within bounds).")]
 
 
+class Quality(_Strict):
+    """Fitness-for-use targets that `ldpt plan` and `ldpt validate` check."""
+
+    max_se: Annotated[float, Field(gt=0, allow_inf_nan=False, strict=False)] | None = Field(
+        None, description="Largest acceptable standard error: of each frequency share (0..1, root mean square over "
+                          "the column's values), or of a mean (column units). At the top level of a policy it "
+                          "applies to frequency shares only.")
+    max_relative_se: Annotated[float, Field(gt=0, allow_inf_nan=False, strict=False)] | None = Field(
+        None, description="Means: largest acceptable standard error as a share of the width of the bounds "
+                          "(hi - lo).")
+    median_max_se: Annotated[float, Field(gt=0, allow_inf_nan=False, strict=False)] | None = Field(
+        None, description="needs quantiles: largest acceptable standard error of the median (column units).")
+
+
+FREQUENCY_NEEDS = Literal["frequencies"]
+
+
 class CategoricalColumn(_Strict):
     type: Literal["categorical"]
     categories: list[Scalar] = Field(description="The declared domain, in order.")
     epsilon: Epsilon | None = Field(None, description=_EPS_FIELD)
-    mechanism: str | None = Field(None, description="grr, oue, sue or olh; absent or 'auto': lowest variance.")
+    mechanism: str | None = Field(None, description="grr, oue, sue, olh, hadamard, subset or matrix; absent or "
+                                                    "'auto': the lowest variance for what partners need.")
     missing: Literal["error", "as-category"] = "error"
     unknown: Literal["error", "as-category"] = "error"
     hash_range: int | None = Field(None, description="olh only: number of hash buckets g (default near e^eps+1).")
+    subset_size: int | None = Field(None, description="subset only: size m of the reported subsets (default: the "
+                                                      "m with the lowest total variance).")
+    matrix: list[list[Annotated[float, Field(strict=False, allow_inf_nan=False)]]] | None = Field(
+        None, description="matrix only: transition probabilities, one row per true category and one column per "
+                          "published category, in the order of categories (then <missing>, <other> if added); "
+                          "rows sum to 1, every entry > 0.")
+    needs: list[FREQUENCY_NEEDS] | None = Field(
+        None, min_length=1, description="What partners will estimate: [frequencies] (the default).")
+    quality: Quality | None = Field(None, description="Targets checked by `ldpt plan` and `ldpt validate`.")
 
     @field_validator("categories")
     @classmethod
@@ -90,17 +117,20 @@ class NumericColumn(_Strict):
     bins: list[Annotated[float, Field(strict=True, allow_inf_nan=False)]] | None = Field(
         None, description="Bin edges; the column is released as a categorical column of bins.")
     epsilon: Epsilon | None = Field(None, description=_EPS_FIELD)
-    mechanism: str | None = Field(None, description="hybrid, piecewise, two-point (means); square-wave, hierarchy "
-                                                    "(distributions: quantiles, range shares); with bins, a "
-                                                    "categorical one.")
+    mechanism: str | None = Field(None, description="hybrid, piecewise, two-point, discrete-laplace (means); "
+                                                    "square-wave, hierarchy (distributions: quantiles, range "
+                                                    "shares); with bins, a categorical one.")
     missing: Literal["error"] | Fill = "error"
     out_of_bounds: Literal["clip", "error"] = "clip"
-    grid: int | None = Field(None, ge=1, le=4096, description="piecewise/hybrid/square-wave: input grid size "
-                                                               "(default 256).")
+    grid: int | None = Field(None, ge=1, le=4096, description="piecewise/hybrid/square-wave/discrete-laplace: "
+                                                               "input grid size (default 256).")
     hash_range: int | None = Field(None, description="olh on bins only.")
-    needs: list[Literal["mean", "quantiles"]] | None = Field(
-        None, min_length=1, description="What partners will estimate: mean and/or quantiles (default [mean]). With "
-                                        "quantiles and no mechanism, the tool's distribution default is used.")
+    subset_size: int | None = Field(None, description="subset on bins only.")
+    needs: list[Literal["mean", "quantiles", "frequencies"]] | None = Field(
+        None, min_length=1, description="What partners will estimate: mean and/or quantiles (default [mean]); "
+                                        "with bins, frequencies (the default) and/or quantiles. With quantiles and "
+                                        "no mechanism, the tool's distribution default is used.")
+    quality: Quality | None = Field(None, description="Targets checked by `ldpt plan` and `ldpt validate`.")
     branching: int | None = Field(None, ge=2, le=16, description="hierarchy: branching factor of the tree "
                                                                  "(default 4).")
     leaves: int | None = Field(None, ge=2, le=1024, description="hierarchy: number of equal leaf buckets of the "
@@ -125,7 +155,14 @@ class NumericColumn(_Strict):
             if self.bounds is not None and (self.bounds[0] != b[0] or self.bounds[1] != b[-1]):
                 raise ValueError("with bins, bounds (if given) must equal the first and last edge")
         if self.needs is not None and len(set(self.needs)) != len(self.needs):
-            raise ValueError("needs lists a value twice; list each of mean, quantiles at most once")
+            raise ValueError("needs lists a value twice; list each of mean, quantiles, frequencies at most once")
+        if self.needs is not None and self.bins is None and "frequencies" in self.needs:
+            raise ValueError("needs: frequencies applies to a numeric column released as bins; add bins: [edges], "
+                             "or ask for mean / quantiles")
+        if self.needs is not None and self.bins is not None and "mean" in self.needs:
+            raise ValueError("needs: mean is not available for a column released as bins (a bin's values are not "
+                             "known); remove bins to release the value with a mean mechanism, or ask for "
+                             "frequencies / quantiles")
         if isinstance(self.missing, Fill):
             lo, hi = self.domain
             if not lo <= self.missing.fill <= hi:
@@ -196,6 +233,8 @@ class Policy(_Strict):
     budget: Budget
     unlisted: Literal["error", "drop"] = "error"
     input: InputOptions = Field(default_factory=InputOptions)
+    quality: Quality | None = Field(None, description="Policy-wide default targets: max_se for frequency shares, "
+                                                      "max_relative_se for means (a column's own quality overrides).")
     columns: dict[str, ColumnPolicy] = Field(min_length=1)
 
     @property
@@ -300,6 +339,9 @@ def _where(name: str, fieldname: str) -> str:
     return f"column {name!r}, field '{fieldname}'"
 
 
+CATEGORICAL_PARAMS = {"hash_range": "olh", "subset_size": "subset", "matrix": "matrix"}
+
+
 def resolve_column(name: str, col: Any) -> ResolvedColumn:
     if isinstance(col, DropColumn):
         return ResolvedColumn(name, "drop", col)
@@ -324,16 +366,26 @@ def resolve_column(name: str, col: Any) -> ResolvedColumn:
             raise PolicyError(f"{_where(name, 'categories')}: a column needs at least 2 possible values "
                               "(declare more categories, or use type: public / drop)")
         name_ = col.mechanism or "auto"
+        params: dict[str, Any] = {}
+        for fieldname, owner in CATEGORICAL_PARAMS.items():
+            value = getattr(col, fieldname, None)
+            if value is None:
+                continue
+            if name_ != owner:
+                raise PolicyError(f"{_where(name, fieldname)}: {fieldname} applies to mechanism {owner} only; set "
+                                  f"mechanism: {owner} to use it, or remove {fieldname}")
+            params[fieldname] = value
+        if name_ == "matrix" and "matrix" not in params:
+            raise PolicyError(f"{_where(name, 'matrix')}: mechanism matrix needs the transition matrix: give matrix: "
+                              f"[[...], ...] with one row and one column per value ({len(domain)}: "
+                              f"{', '.join(domain)})")
         if name_ == "auto":
-            m, why = mech.choose_categorical(col.epsilon, domain)
-            if col.hash_range is not None and m.name == "olh":
-                m = mech.OLH(col.epsilon, domain, col.hash_range)
-            rc.mechanism, rc.chosen_because = m, why
+            rc.mechanism, rc.chosen_because = mech.choose_categorical(col.epsilon, domain)
         elif name_ in mech.CATEGORICAL:
-            params = {"hash_range": col.hash_range} if (name_ == "olh" and col.hash_range is not None) else {}
-            if col.hash_range is not None and name_ != "olh":
-                raise PolicyError(f"{_where(name, 'hash_range')}: hash_range applies to mechanism olh only")
-            rc.mechanism = mech.make(name_, "categorical", col.epsilon, domain, **params)
+            try:
+                rc.mechanism = mech.make(name_, "categorical", col.epsilon, domain, **params)
+            except PolicyError as err:
+                raise PolicyError(f"column {name!r}: {err}") from None
         elif name_ in mech.NUMERIC + mech.DISTRIBUTION:
             raise PolicyError(f"{_where(name, 'mechanism')}: {name_!r} randomizes numbers, but this column is "
                               f"released as categories{' (bins)' if kind == 'binned' else ''}; use one of "
@@ -347,8 +399,10 @@ def resolve_column(name: str, col: Any) -> ResolvedColumn:
     name_ = col.mechanism or "auto"
     grid = col.grid or mech.DEFAULT_GRID
     numeric_names = ", ".join(mech.NUMERIC + mech.DISTRIBUTION)
-    if col.hash_range is not None:
-        raise PolicyError(f"{_where(name, 'hash_range')}: hash_range applies to mechanism olh on bins only")
+    for fieldname in ("hash_range", "subset_size"):
+        if getattr(col, fieldname) is not None:
+            raise PolicyError(f"{_where(name, fieldname)}: {fieldname} applies to mechanism "
+                              f"{CATEGORICAL_PARAMS[fieldname]} on bins only")
     if name_ == "auto" and "quantiles" in (col.needs or ()):
         name_ = mech.DEFAULT_DISTRIBUTION
         rc.chosen_because = mech.DEFAULT_DISTRIBUTION_REASON
@@ -359,6 +413,9 @@ def resolve_column(name: str, col: Any) -> ResolvedColumn:
         rc.mechanism, rc.chosen_because = mech.choose_numeric(col.epsilon, col.domain, grid)
     elif name_ in mech.NUMERIC:
         params = {"grid": grid} if name_ != "two-point" else {}
+        if name_ == "two-point" and col.grid is not None:
+            raise PolicyError(f"{_where(name, 'grid')}: two-point has no input grid (it reports one of two values); "
+                              "remove grid")
         rc.mechanism = mech.make(name_, "numeric", col.epsilon, col.domain, **params)
     elif name_ in mech.DISTRIBUTION:
         if name_ == "hierarchy":

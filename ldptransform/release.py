@@ -74,6 +74,7 @@ class ColumnPlan:
     rc: ResolvedColumn
     fields: list[pa.Field]
     stream: KeyedStream | None = None
+    draw_stream: KeyedStream | None = None  # mechanisms with a variable number of draws per row (rejection samplers)
     diag: ColumnDiagnostics = field(default_factory=ColumnDiagnostics)
     sample_index: int | None = None  # strategy sample: this column's position among the d privatized columns
     reported: int = 0                # strategy sample: cells reported so far (private diagnostics only)
@@ -294,15 +295,44 @@ def privatize_batch(batch: pa.RecordBatch, row0: int, plans: list[ColumnPlan], s
             x = encode_numeric(values, p, row0)
         m = p.rc.mechanism
         assert m is not None and p.stream is not None
-        words = p.stream.words(row0, n, m.words_per_row)
+        out = randomize_rows(p, x, row0)
         if reported is None:
-            arrays.extend(m.randomize(x, words))
+            arrays.extend(out)
         else:
             assert p.sample_index is not None
             rep = reported[:, p.sample_index]
             p.reported += int(rep.sum())
-            arrays.extend(blank_unreported(a, rep) for a in m.randomize(x, words))
+            arrays.extend(blank_unreported(a, rep) for a in out)
     return pa.RecordBatch.from_arrays(arrays, schema=schema)
+
+
+MAX_WORDS_PER_CALL = 1 << 22  # 32 MiB of PRF words per randomize call, whatever the report width
+
+
+def randomize_rows(p: ColumnPlan, x: np.ndarray, row0: int) -> list[pa.Array]:
+    """Randomize encoded values ``x`` of global rows row0.. in slices of at most
+    MAX_WORDS_PER_CALL words (wide reports such as subsets of a large domain), so memory does
+    not grow with the report width.  Words are addressed by global row, so slicing cannot
+    change any output.  Mechanisms that draw a variable number of words per row (exact
+    rejection samplers) also get ``draw(rows, j)``: word j of each given row, from a stream of
+    their own."""
+    m = p.rc.mechanism
+    assert m is not None and p.stream is not None
+    n, wpr = len(x), m.words_per_row
+    step = max(1, MAX_WORDS_PER_CALL // max(wpr, 1))
+    parts: list[list[pa.Array]] = []
+    for s in range(0, n, step):
+        e = min(n, s + step)
+        words = p.stream.words(row0 + s, e - s, wpr)
+        if getattr(m, "variable_draws", False):
+            ds, base = p.draw_stream, row0 + s
+            assert ds is not None
+            parts.append(m.randomize_with(x[s:e], words, lambda r, j, ds=ds, base=base: ds.words_at(base + r, j)))
+        else:
+            parts.append(m.randomize(x[s:e], words))
+    if len(parts) == 1:
+        return parts[0]
+    return [pa.concat_arrays([pt[i] for pt in parts]) for i in range(len(parts[0]))]
 
 
 def column_entries(plans: list[ColumnPlan], report_rate: float = 1.0) -> list[ColumnEntry]:
@@ -422,6 +452,8 @@ def privatize(input_path: Path | str, policy: LoadedPolicy, key: SecretKey, out:
     for p in plans:
         if p.rc.mechanism is not None:
             p.stream = KeyedStream(key, nonce, "column", p.rc.name)
+            if getattr(p.rc.mechanism, "variable_draws", False):
+                p.draw_stream = KeyedStream(key, nonce, "column-draws", p.rc.name)
     sampler = None
     if policy.strategy == "sample":
         order = policy.policy.privatized_columns  # policy order: the choice never depends on the input's layout

@@ -316,11 +316,12 @@ class OLH(FrequencyOracle):
 
     @cached_property
     def collision_probability(self) -> float:
+        # Bucket j holds the z with floor(z*g/P) = j: ceil((j+1)P/g) - ceil(jP/g) values, i.e.
+        # floor(P/g) or floor(P/g)+1; with P = a*g + r exactly r buckets hold a+1 (sizes add to P).
         P, g = HASH_PRIME, self.g
-        j = np.arange(g + 1, dtype=np.int64)
-        starts = -((-j * P) // g)  # ceil(j*P/g)
-        sizes = np.diff(starts)
-        return float((sizes * (sizes - 1)).sum()) / (P * (P - 1))
+        a, r = divmod(P, g)
+        pairs = r * (a + 1) * a + (g - r) * a * (a - 1)   # sum of size*(size-1), exact integers
+        return pairs / (P * (P - 1))
 
     @property
     def p_star(self) -> float:

@@ -1,0 +1,326 @@
+"""Release planning: how precise each statistic will be before anything is released.
+
+For every privatized column and every statistic the policy says partners need, the
+planner predicts the standard error that ``ldpt estimate`` will report at N rows, the rows
+needed to meet the policy's quality targets, and whether *any* eps-LDP mechanism could
+meet a target at N rows (from the lower bounds in ``mechanisms/bounds.py``, not from one
+mechanism).  Nothing here reads data: the predictions are worst cases over data sets.
+
+What "SE" means here (the same quantity ``ldpt estimate`` reports, see estimate.py: the
+spread of the per-row estimates over sqrt(n), which also counts the spread of the true
+values):
+
+* frequencies: the root mean square over the column's values of each share's SE.  Per
+  report, n * Var = (noise variance of the mechanism, summed over values) + (1 - sum f^2),
+  averaged over the k values; the second part is largest for equal shares, which is the case
+  predicted (REFERENCE.md sections 0.3 and 0.4).
+* means: the SE of the mean, worst case over data (data split evenly between the two
+  bounds, which maximizes the spread of the reports for every mean mechanism of the tool:
+  each one's second moment grows with |value - middle|).
+* medians (needs: quantiles): no closed form; predicted by simulating releases of evenly
+  spread data under a fixed public planning key and decoding them as ``ldpt estimate``
+  does, at min(N, 20000) rows, scaled by sqrt(rows simulated / N).  An approximation: say so
+  when quoting it.
+
+The lower bounds are in the same units: the smallest worst-case SE any eps-LDP mechanism is
+known to reach (frequencies: REFERENCE.md section 4 via bounds.frequency_lower_bound, plus
+the same spread term; means: the two-point bound, which two-point attains exactly).
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+
+from . import mechanisms as mech
+from .errors import UsageError
+from .mechanisms import bounds
+from .policy import (CategoricalColumn, LoadedPolicy, NumericColumn, Quality, ResolvedColumn, resolve_column,
+                     sample_size)
+
+SIM_ROWS = 20000
+SIM_RELEASES = 24
+MAX_COLUMN_EPS = 50.0
+
+
+# -- per-row variances (worst case over data) -----------------------------------------------
+
+def frequency_row_variance(m: mech.Mechanism) -> float:
+    """n * (mean over values of Var of a share) as ``ldpt estimate`` reports it, worst case."""
+    k = m.k
+    return (m.total_variance() + 1.0 - 1.0 / k) / k
+
+
+def frequency_row_variance_bound(epsilon: float, k: int) -> float:
+    return (bounds.frequency_lower_bound(epsilon, k) + 1.0 - 1.0 / k) / k
+
+
+def mean_row_variance(m: mech.Mechanism) -> float:
+    """n * Var of the mean as ``ldpt estimate`` reports it, worst case over data (column units)."""
+    half = (m.hi - m.lo) / 2.0
+    if hasattr(m, "second_moments"):
+        return float(np.max(m.second_moments())) * half * half
+    return float(max(m.variance(m.lo), m.variance(m.hi))) + half * half
+
+
+def mean_row_variance_bound(epsilon: float, lo: float, hi: float) -> float:
+    """Worst case over data of any unbiased eps-LDP mean estimate, as estimate reports it:
+    (hi - lo)^2 [e^eps/(e^eps - 1)^2 + 1/4] (bounds.mean_lower_bound plus the spread of data
+    split evenly between the bounds).  Two-point attains it."""
+    return bounds.mean_lower_bound(epsilon, (lo, hi)) + (hi - lo) ** 2 / 4.0
+
+
+# -- simulated median SE ----------------------------------------------------------------------
+
+_PLAN_KEY = bytes(range(32))  # public: planning simulates noise on invented, evenly spread values only
+
+
+def simulated_median_se(m: mech.Mechanism, rc: ResolvedColumn, rows: float) -> float | None:
+    """SE of the median estimate at ``rows`` rows, by simulation (see module docstring)."""
+    from .distribution import binned_distribution
+    from .estimate import CategoricalStats, DistributionStats
+    from .keys import KeyedStream, SecretKey
+
+    if rows < 2:
+        return None
+    n = int(min(rows, SIM_ROWS))
+    cfg = rc.config
+    lo, hi = cfg.domain
+    x = lo + (np.arange(n) + 0.5) / n * (hi - lo)
+    key = SecretKey(_PLAN_KEY)
+    meds = []
+    for r in range(SIM_RELEASES):
+        words = KeyedStream(key, f"{r:032x}", "plan", rc.name).words(0, n, m.words_per_row)
+        if rc.type == "binned":
+            edges = np.asarray(cfg.bins, dtype=float)
+            codes = np.clip(np.searchsorted(edges, x, side="right") - 1, 0, len(edges) - 2)
+            st = CategoricalStats(m, joint=True)
+            st.add(m.randomize(codes, words))
+            cov = st.covariance()
+            prefix_se = np.sqrt(np.maximum(np.diag(np.cumsum(np.cumsum(cov, axis=0), axis=1)), 0.0))
+            dist = binned_distribution(edges, st.estimates()[0], prefix_se, cov=cov, n=st.n)
+        else:
+            st = DistributionStats(m)
+            st.add(m.randomize(x, words))
+            dist = st.distribution()
+        meds.append(dist.quantile(0.5))
+    return float(np.std(meds, ddof=1) * math.sqrt(n / rows))
+
+
+# -- the plan ---------------------------------------------------------------------------------
+
+def needs_of(rc: ResolvedColumn) -> list[str]:
+    cfg = rc.config
+    needs = list(getattr(cfg, "needs", None) or [])
+    if rc.type in ("categorical", "binned"):
+        if not needs:
+            return ["frequencies"]
+        return needs
+    if not needs:
+        return ["mean"]
+    return needs
+
+
+def _stat(name: str, se: float | None, target: float | None, bound_se: float | None, row_var: float | None,
+          bound_row_var: float | None, rows: int, rate: float, **extra: Any) -> dict[str, Any]:
+    out: dict[str, Any] = {"statistic": name, "se": se, **extra, "target_se": target, "best_possible_se": bound_se}
+    if target is not None and se is not None:
+        out["meets_target"] = bool(se <= target * (1 + 1e-12))
+        if row_var is not None:
+            out["rows_needed"] = int(math.ceil(row_var / (target * target) / rate))
+        if bound_row_var is not None:
+            out["rows_needed_best_possible"] = int(math.ceil(bound_row_var / (target * target) / rate))
+        out["impossible_at_rows"] = bool(bound_se is not None and bound_se > target * (1 + 1e-12))
+    return out
+
+
+def column_statistics(rc: ResolvedColumn, rows: int, rate: float, default: Quality | None,
+                      simulate: bool = True) -> list[dict[str, Any]]:
+    """Predicted statistics of one resolved (privatized) column at ``rows`` table rows, of
+    which a share ``rate`` report it."""
+    m = rc.mechanism
+    assert m is not None
+    n = rows * rate
+    q: Quality | None = getattr(rc.config, "quality", None)
+    out = []
+    for need in needs_of(rc):
+        if need == "frequencies":
+            target = (q.max_se if q is not None and q.max_se is not None
+                      else default.max_se if default is not None else None)
+            v = frequency_row_variance(m)
+            vb = frequency_row_variance_bound(m.epsilon, m.k)
+            out.append(_stat("frequencies", math.sqrt(v / n) if n > 0 else None, target,
+                             math.sqrt(vb / n) if n > 0 else None, v, vb, rows, rate,
+                             efficiency=bounds.frequency_lower_bound(m.epsilon, m.k) / m.total_variance(),
+                             se_meaning="root mean square over values of each share's SE (equal shares: worst case)"))
+        elif need == "mean":
+            width = m.hi - m.lo
+            v = mean_row_variance(m)
+            vb = mean_row_variance_bound(m.epsilon, m.lo, m.hi)
+            target = q.max_se if q is not None else None
+            rel = (q.max_relative_se if q is not None and q.max_relative_se is not None
+                   else default.max_relative_se if default is not None else None)
+            se = math.sqrt(v / n) if n > 0 else None
+            bse = math.sqrt(vb / n) if n > 0 else None
+            stat = _stat("mean", se, target, bse, v, vb, rows, rate,
+                         relative_se=se / width if se is not None else None,
+                         efficiency=vb / v,
+                         se_meaning="SE of the mean in column units, worst case over data")
+            if rel is not None and se is not None:
+                stat["target_relative_se"] = rel
+                ok_rel = se / width <= rel * (1 + 1e-12)
+                stat["meets_target"] = bool(stat.get("meets_target", True) and ok_rel)
+                need_rel = int(math.ceil(v / (rel * width) ** 2 / rate))
+                stat["rows_needed"] = max(stat.get("rows_needed", 0), need_rel)
+                need_b = int(math.ceil(vb / (rel * width) ** 2 / rate))
+                stat["rows_needed_best_possible"] = max(stat.get("rows_needed_best_possible", 0), need_b)
+                stat["impossible_at_rows"] = bool(stat.get("impossible_at_rows", False) or
+                                                  (bse is not None and bse / width > rel * (1 + 1e-12)))
+            out.append(stat)
+        elif need == "quantiles":
+            target = q.median_max_se if q is not None else None
+            se = simulated_median_se(m, rc, n) if simulate else None
+            stat = {"statistic": "median", "se": se, "target_se": target, "best_possible_se": None,
+                    "se_meaning": (f"SD of the median over {SIM_RELEASES} simulated releases of evenly spread data "
+                                   f"at min(N, {SIM_ROWS}) rows, scaled by sqrt(rows); an approximation"),
+                    "note": "no lower bound known to the tool for quantiles"}
+            if target is not None and se is not None:
+                stat["meets_target"] = bool(se <= target)
+                sim_n = min(n, SIM_ROWS)
+                stat["rows_needed"] = int(math.ceil(se * se * n / (target * target) / rate)) if sim_n else None
+                stat["impossible_at_rows"] = None
+            out.append(stat)
+    return out
+
+
+def plan(policy: LoadedPolicy, rows: int, *, simulate: bool = True) -> dict[str, Any]:
+    if rows < 1:
+        raise UsageError(f"--rows must be a positive number of table rows, got {rows}")
+    rate = policy.report_rate
+    default = policy.policy.quality
+    cols = []
+    for rc in policy.columns:
+        if rc.mechanism is None:
+            if rc.type == "public":
+                cols.append({"name": rc.name, "type": "public", "note": "released in the clear: NOT protected"})
+            continue
+        cols.append({"name": rc.name, "type": rc.type, "mechanism": rc.mechanism.name,
+                     "epsilon": rc.mechanism.epsilon, "chosen_because": rc.chosen_because,
+                     "rows_reporting": rows * rate,
+                     "statistics": column_statistics(rc, rows, rate, default, simulate)})
+    missed = [(c["name"], s["statistic"]) for c in cols for s in c.get("statistics", [])
+              if s.get("meets_target") is False]
+    impossible = [(c["name"], s["statistic"]) for c in cols for s in c.get("statistics", [])
+                  if s.get("impossible_at_rows")]
+    return {"rows": rows, "strategy": policy.strategy, "epsilon_per_row": policy.epsilon_total,
+            "epsilon_per_row_budget": policy.policy.budget.epsilon_per_row, "report_rate": rate,
+            "columns": cols, "targets_missed": [f"{a}: {b}" for a, b in missed],
+            "impossible": [f"{a}: {b}" for a, b in impossible]}
+
+
+# -- suggest ------------------------------------------------------------------------------------
+
+def _with_eps(rc: ResolvedColumn, eps: float) -> ResolvedColumn:
+    return resolve_column(rc.name, rc.config.model_copy(update={"epsilon": eps}))
+
+
+def _meets(rc: ResolvedColumn, eps: float, rows: int, rate: float, default: Quality | None) -> bool:
+    stats = column_statistics(_with_eps(rc, eps), rows, rate, default, simulate=True)
+    return all(s.get("meets_target") is not False for s in stats)
+
+
+def _has_target(rc: ResolvedColumn, default: Quality | None) -> bool:
+    stats = column_statistics(rc, 1000, 1.0, default, simulate=False)
+    return any("target_se" in s and (s.get("target_se") is not None or s.get("target_relative_se") is not None)
+               for s in stats)
+
+
+def min_epsilon(rc: ResolvedColumn, rows: int, rate: float, default: Quality | None,
+                step: float = 0.01) -> float | None:
+    """Smallest eps (a multiple of ``step``) at which every target of the column is met, or None
+    if not even at eps = 50.  The variances fall as eps grows, so bisection applies."""
+    if not _meets(rc, MAX_COLUMN_EPS, rows, rate, default):
+        return None
+    lo, hi = 0, int(round(MAX_COLUMN_EPS / step))  # in units of step; hi meets, lo (eps 0) never does
+    while hi - lo > 1:
+        mid = (lo + hi) // 2
+        if _meets(rc, mid * step, rows, rate, default):
+            hi = mid
+        else:
+            lo = mid
+    return round(hi * step, 10)
+
+
+def suggest(policy: LoadedPolicy, rows: int) -> dict[str, Any]:
+    """The smallest per-column eps meeting every target (split), and the smallest
+    epsilon_per_row meeting them under strategy sample, for each m."""
+    default = policy.policy.quality
+    cols = [rc for rc in policy.columns if rc.mechanism is not None]
+    split: dict[str, Any] = {}
+    total = 0.0
+    unmet = []
+    for rc in cols:
+        if not _has_target(rc, default):
+            split[rc.name] = {"epsilon": rc.mechanism.epsilon, "note": "no target: eps kept as in the policy"}
+            total += rc.mechanism.epsilon
+            continue
+        eps = min_epsilon(rc, rows, 1.0, default)
+        if eps is None:
+            unmet.append(rc.name)
+            split[rc.name] = {"epsilon": None, "note": f"no eps up to {MAX_COLUMN_EPS:g} meets the target at "
+                                                       f"{rows} rows"}
+        else:
+            m = _with_eps(rc, eps).mechanism
+            split[rc.name] = {"epsilon": eps, "mechanism": m.name}
+            total += eps
+    budget = policy.policy.budget.epsilon_per_row
+    out: dict[str, Any] = {"rows": rows, "split": {"columns": split, "epsilon_per_row": None if unmet else
+                                                   round(total, 10)}}
+    if unmet:
+        out["split"]["verdict"] = (f"cannot meet the targets of {', '.join(unmet)} at {rows} rows with any eps up "
+                                   f"to {MAX_COLUMN_EPS:g}; more rows are needed")
+    elif total > budget * (1 + 1e-12):
+        out["split"]["verdict"] = (f"meets every target with epsilon_per_row {total:g}, above the policy's budget "
+                                   f"{budget:g}: the targets cannot be met within the budget at {rows} rows")
+    else:
+        out["split"]["verdict"] = f"meets every target with epsilon_per_row {total:g} (budget {budget:g})"
+    # strategy sample: each row reports m of d columns at eps_row / m; targets need eps_row / m per column
+    d = len(cols)
+    best = None
+    samples = []
+    if d > 1 and all(_has_target(rc, default) for rc in cols):
+        for m_cols in range(1, d + 1):
+            rate = m_cols / d
+            need = []
+            ok = True
+            for rc in cols:
+                eps = min_epsilon(rc, rows, rate, default)
+                if eps is None:
+                    ok = False
+                    break
+                need.append(eps)
+            if not ok:
+                samples.append({"sample_columns": m_cols, "epsilon_per_row": None})
+                continue
+            eps_row = round(max(need) * m_cols, 10)
+            samples.append({"sample_columns": m_cols, "epsilon_per_row": eps_row})
+            if best is None or eps_row < best["epsilon_per_row"]:
+                best = {"sample_columns": m_cols, "epsilon_per_row": eps_row}
+        out["sample"] = {"options": samples, "best": best}
+        if best is not None and (unmet or best["epsilon_per_row"] < total * (1 - 1e-9)):
+            out["sample"]["verdict"] = (f"strategy sample with sample_columns {best['sample_columns']} would meet every "
+                                        f"target with epsilon_per_row {best['epsilon_per_row']:g}"
+                                        + ("" if unmet else f", less than split's {total:g}"))
+        else:
+            out["sample"]["verdict"] = "strategy sample would not do better than split here"
+    else:
+        out["sample"] = {"verdict": "not compared: strategy sample needs at least two privatized columns, all with "
+                                    "targets"}
+    return out
+
+
+__all__ = ["plan", "suggest", "min_epsilon", "frequency_row_variance", "mean_row_variance",
+           "frequency_row_variance_bound", "mean_row_variance_bound", "simulated_median_se", "sample_size",
+           "CategoricalColumn", "NumericColumn"]
