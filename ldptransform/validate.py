@@ -233,6 +233,9 @@ def validate(extract: Path | str, manifest_path: Path | str | None = None, *, ra
                 "every value lies in its mechanism's output alphabet" + sampled if not bad else
                 "values outside the output alphabet: " + ", ".join(f"{k} {v}" for k, v in bad.items()))
 
+    if stats is not None:
+        _check_quality(manifest, rows, rep)
+
     if raw is not None:
         if key is None:
             raise LdptError("--raw needs --key as well: re-deriving the extract takes the release's secret key.")
@@ -240,6 +243,50 @@ def validate(extract: Path | str, manifest_path: Path | str | None = None, *, ra
         if stats is not None:
             rep.calibration = _calibrate(Path(raw), manifest, stats, rows, confidence, rep)
     return rep
+
+
+def _check_quality(manifest: Manifest, rows: int, rep: ValidationReport) -> None:
+    """Predicted SE of each statistic the policy needs at this extract's row count, against the
+    policy's quality targets (see plan.py for what is predicted and how)."""
+    from .plan import column_statistics
+    from .policy import ResolvedColumn
+
+    lp = parse_policy(manifest.policy, "embedded in the manifest")
+    default = lp.policy.quality
+    configs = lp.by_name
+    rate = manifest.privacy.reported_columns / manifest.privacy.privatized_columns \
+        if manifest.privacy.strategy == "sample" and manifest.privacy.privatized_columns else 1.0
+    missed, met, lines = [], 0, []
+    for c in manifest.columns:
+        if c.mechanism is None or c.name not in configs:
+            continue
+        rc = ResolvedColumn(c.name, c.type, configs[c.name].config, mechanism=mech.build(c.mechanism))
+        for st in column_statistics(rc, rows, rate, default):
+            target = st.get("target_se")
+            rel = st.get("target_relative_se")
+            if target is None and rel is None:
+                continue
+            want = " and ".join(x for x in (f"SE <= {target:.4g}" if target is not None else "",
+                                             f"SE/width <= {rel:.4g}" if rel is not None else "") if x)
+            se = st.get("se")
+            text = f"{c.name} {st['statistic']}: predicted SE {se:.4g} (target {want})" if se is not None else \
+                f"{c.name} {st['statistic']}: no prediction"
+            if st.get("meets_target") is False:
+                needed = st.get("rows_needed")
+                missed.append(text + (f", needs about {needed} rows" if needed else "") +
+                              (" (no eps-LDP mechanism could meet it at this row count)"
+                               if st.get("impossible_at_rows") else ""))
+            else:
+                met += 1
+                lines.append(text)
+    if not missed and not met:
+        rep.add("quality", True, "the policy sets no quality targets (quality: {max_se: ...}); nothing to check")
+    elif missed:
+        rep.add("quality", False, f"{len(missed)} statistic(s) miss their policy target at {rows} rows: " +
+                "; ".join(missed))
+    else:
+        rep.add("quality", True, f"all {met} targeted statistic(s) meet their policy targets at {rows} rows "
+                "(predicted worst case over data): " + "; ".join(lines))
 
 
 def _count_invalid(extract: Path, mpath: Path, manifest: Manifest) -> dict[str, int]:

@@ -189,3 +189,34 @@ def test_plan_cli(tmp_path, ldpt):
     assert data["rows"] == 20000 and "suggestion" in data
     r = ldpt("plan", "--policy", p, "--rows", 0)
     assert r.returncode == 2 and "--rows" in r.stderr and "Traceback" not in r.stderr
+
+
+def test_validate_quality_section(tmp_path, ldpt):
+    """validate predicts each targeted statistic's SE at the extract's row count: pass when
+    the targets are met, fail (exit 1) when one is missed, naming column and statistic."""
+    rows = 3000
+    rng = np.random.default_rng(8)
+    df = pd.DataFrame({"site": rng.choice(POLICY["columns"]["site"]["categories"], rows),
+                       "team": rng.choice(POLICY["columns"]["team"]["categories"], rows),
+                       "hours": rng.uniform(0, 60, rows).round(1), "wave": 1})
+    src = tmp_path / "in.csv"
+    df.to_csv(src, index=False)
+    key = write_fixed_key(tmp_path / "k.key")
+    loose = json.loads(json.dumps(POLICY))
+    loose["quality"] = {"max_se": 0.1, "max_relative_se": 0.1}
+    tight = json.loads(json.dumps(POLICY))
+    tight["columns"]["team"]["quality"] = {"max_se": 0.01}
+    for name, pol, code in (("loose", loose, 0), ("tight", tight, 1)):
+        p = tmp_path / f"{name}.yaml"
+        p.write_text(yaml.safe_dump(pol), encoding="utf-8")
+        out = tmp_path / f"{name}.parquet"
+        r = ldpt("privatize", src, "--policy", p, "--key", key, "--out", out, "--quiet")
+        assert r.returncode == 0, r.stderr
+        r = ldpt("validate", out, "--format", "json")
+        assert r.returncode == code, r.stdout + r.stderr
+        checks = {c["check"]: c for c in json.loads(r.stdout)["checks"]}
+        q = checks["quality"]
+        if code == 0:
+            assert q["status"] == "pass" and "team frequencies" in q["detail"]
+        else:
+            assert q["status"] == "fail" and "team frequencies" in q["detail"] and "rows" in q["detail"]
