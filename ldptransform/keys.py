@@ -184,6 +184,35 @@ class KeyedStream:
         w = np.frombuffer(stream, dtype="<u8").reshape(n_rows, 2 * blocks)
         return w[:, :per_row]
 
+    def words_at(self, rows: np.ndarray, draws: np.ndarray) -> np.ndarray:
+        """One uint64 word for each (global row index, draw index) pair, for samplers that
+        need an unbounded number of words per row (rejection loops).
+
+        The word for (row r, draw j) is the first 8 bytes (little-endian) of
+        AES-256(stream key, block), where the 128-bit block is big-endian
+        ``(2^63 + j) * 2^64 + r``: the draw index with its top bit set in the high 64 bits,
+        the row index in the low 64 bits (r < 2^64, j < 2^63).  So a word depends only on
+        (key, nonce, stream path, r, j), never on which other pairs are asked for with it
+        or in what order, and distinct pairs are distinct AES inputs.  The top bit keeps
+        these blocks apart from the counter blocks of ``words`` (below 2^127 for any
+        release) even under the same stream key; the release still gives such a column a
+        stream of its own.  ``rows`` and ``draws`` are broadcast together.
+        """
+        r, j = np.broadcast_arrays(np.asarray(rows), np.asarray(draws))
+        if r.size == 0:
+            return np.zeros(r.shape, dtype=np.uint64)
+        if (r < 0).any() or (j < 0).any():
+            raise ValueError("words_at: row and draw indices must be non-negative")
+        j = j.astype(np.uint64)
+        if (j >> np.uint64(63)).any():
+            raise ValueError("words_at: draw indices must be below 2^63")
+        blocks = np.empty(r.shape + (2,), dtype=">u8")
+        blocks[..., 0] = j | np.uint64(1 << 63)
+        blocks[..., 1] = r.astype(np.uint64)
+        enc = Cipher(algorithms.AES(self._cipher_key), modes.ECB()).encryptor()
+        out = enc.update(blocks.tobytes()) + enc.finalize()
+        return np.frombuffer(out, dtype="<u8").reshape(r.shape + (2,))[..., 0].copy()
+
 
 def to_unit(words: np.ndarray) -> np.ndarray:
     """uint64 words -> floats uniform on the 2^-53 grid in [0, 1)."""
