@@ -1,0 +1,236 @@
+"""Subset selection: a categorical frequency oracle whose report is a set of m values.
+
+Sources: M. Ye, A. Barg, "Optimal Schemes for Discrete Distribution Estimation under Locally
+Differential Privacy", IEEE Transactions on Information Theory 64(8), 2018; S. Wang, L. Huang,
+P. Wang, Y. Nie, H. Xu, W. Yang, X.-Y. Li, C. Qiao, "Mutual Information Optimally Local Private
+Discrete Distribution Estimation", arXiv:1607.08025, 2016.  Restated in REFERENCE.md
+sections 3.2 and 4.
+
+The report is a subset S of the k values with |S| = m and P(S | x) proportional to e^eps if
+x is in S and to 1 otherwise.  In the terms of REFERENCE.md section 0.3 (support = S):
+p* = mE/(mE + k - m), q* = m[(m-1)E + k - m] / ((k-1)(mE + k - m)), E = e^eps.
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+from typing import Any, ClassVar
+
+import numpy as np
+import pyarrow as pa
+
+from ..errors import PolicyError
+from ..keys import to_below, unit_below
+from .base import register
+from .categorical import FrequencyOracle, _as_strings, bits_to_strings, strings_to_bits
+
+# Rows x values handled at once (int32 permutation / bool bit matrices of this many entries).
+_CHUNK_ELEMENTS = 1 << 22
+MAX_CHANNEL_SUBSETS = 50_000
+
+
+def _total_variance_curve(epsilon: float, k: int) -> np.ndarray:
+    """n * sum_v Var(f_v) for m = 1..k-1 (REFERENCE.md section 4, [D]):
+    (k-1)[(mE+k-m)^2 - (mE^2+k-m)] / (m(k-m)(E-1)^2), evaluated with t = e^-eps after
+    dividing through by E^2 (no overflow at any finite eps, no cancellation: the bracket is
+    m(m-1)E^2 + 2m(k-m)E + (k-m)(k-m-1), a sum of non-negative terms)."""
+    t = math.exp(-epsilon)
+    m = np.arange(1, k, dtype=float)
+    num = m * (m - 1) + 2 * m * (k - m) * t + (k - m) * (k - m - 1) * t * t
+    return (k - 1) * num / (m * (k - m) * (1 - t) ** 2)
+
+
+@register
+class SubsetSelection(FrequencyOracle):
+    """Subset selection (Ye and Barg, IEEE Trans. Inf. Theory 2018; Wang et al., arXiv 2016).
+
+    Output: one string of k characters '0'/'1' (character j is 1 iff category j is in the
+    reported subset S), exactly m of them '1'.  Parameter ``subset_size`` (m, 1..k-1; default:
+    the m that minimizes the exact total variance n * sum_v Var(f_v), ``best_subset_size``).
+
+    Sampling (REFERENCE.md section 3.2): word 0 decides, by exact integer comparison, whether x
+    is in S (probability p* = mE/(mE + k - m)); the other members are a uniform subset of the
+    k - 1 other values (m - 1 of them if x is in S, else m), drawn by a partial Fisher-Yates
+    shuffle vectorized over rows, one word per step reduced with ``keys.to_below`` (off uniform
+    by less than bound/2^64 per step).  When 2m > k the shuffle picks the complement instead
+    (the k - m or k - 1 - m other values left out), so a row takes 1 + min(m, k - m) words.
+    Given whether x is in S, every subset of that kind is then equally likely, so
+    P(S | x) = E/Z for x in S and 1/Z otherwise, Z = C(k-1, m-1) E + C(k-1, m).
+    """
+
+    name: ClassVar[str] = "subset"
+
+    def __init__(self, epsilon: float, categories: list[str], subset_size: int | None = None) -> None:
+        super().__init__(epsilon, categories)
+        k = self.k
+        if subset_size is None:
+            subset_size = self.best_subset_size(self.epsilon, k)
+        if (isinstance(subset_size, bool) or not isinstance(subset_size, (int, np.integer))
+                or not 1 <= subset_size <= k - 1):
+            raise PolicyError(
+                f"mechanism subset, field subset_size: the size m of the reported subsets must be a whole "
+                f"number from 1 to {k - 1} (the number of categories, {k}, minus one), got {subset_size!r}. "
+                "Give such a number, or leave subset_size out to use the size with the lowest total variance "
+                f"for this epsilon and number of categories (here {self.best_subset_size(self.epsilon, k)}).")
+        self.m = int(subset_size)
+        # complement mode: shuffle out the values left out of S when that takes fewer steps
+        self._complement = 2 * self.m > k
+        self._draws = min(self.m, k - self.m)
+
+    @staticmethod
+    def best_subset_size(epsilon: float, k: int) -> int:
+        """The m in 1..k-1 with the lowest exact total variance n * sum_v Var(f_v) (REFERENCE.md
+        section 4), searched exhaustively; within 1e-12 relative of the minimum the smaller m
+        wins (a float tie-break, so the choice is reproducible)."""
+        if k < 2:
+            raise ValueError("best_subset_size: k must be at least 2")
+        tv = _total_variance_curve(float(epsilon), int(k))
+        best = tv.min()
+        return int(np.flatnonzero(tv <= best * (1 + 1e-12))[0]) + 1
+
+    # spec --------------------------------------------------------------------------------
+    def to_spec(self) -> dict[str, Any]:
+        spec = super().to_spec()
+        spec["subset_size"] = self.m
+        return spec
+
+    @classmethod
+    def from_spec(cls, spec: dict[str, Any]) -> "SubsetSelection":
+        cls._check_family(spec)
+        return cls(spec["epsilon"], spec["categories"], spec.get("subset_size"))
+
+    def describe(self) -> str:
+        return (f"subset (reports a set of {self.m} of the {self.k} values; "
+                f"n * total variance {self.total_variance():.4g})")
+
+    # p*, q* (written with t = e^-eps: finite at any eps) ----------------------------------
+    @property
+    def p_star(self) -> float:
+        k, m, t = self.k, self.m, math.exp(-self.epsilon)
+        return m / (m + (k - m) * t)
+
+    @property
+    def q_star(self) -> float:
+        k, m, t = self.k, self.m, math.exp(-self.epsilon)
+        return m * ((m - 1) + (k - m) * t) / ((k - 1) * (m + (k - m) * t))
+
+    # randomization -------------------------------------------------------------------------
+    @property
+    def words_per_row(self) -> int:
+        return 1 + self._draws
+
+    @property
+    def output_bytes_per_row(self) -> int:
+        """Width of one report in the extract (k characters), whatever words_per_row is."""
+        return self.k
+
+    def output_fields(self, column: str) -> list[pa.Field]:
+        return [pa.field(column, pa.string())]
+
+    def _bits_chunk(self, x: np.ndarray, w: np.ndarray) -> np.ndarray:
+        c, k, m, D = len(x), self.k, self.m, self._draws
+        N = k - 1                                  # the other values, by position 0..k-2
+        incl = unit_below(w[:, 0], self.p_star)    # is x in S?
+        perm = np.empty((c, N), dtype=np.int32)
+        perm[:] = np.arange(N, dtype=np.int32)
+        rows = np.arange(c)
+        for i in range(D):                         # partial Fisher-Yates, vectorized over rows
+            j = i + to_below(w[:, 1 + i], N - i)
+            a = perm[:, i].copy()
+            perm[:, i] = perm[rows, j]
+            perm[rows, j] = a
+        pos = perm[:, :D].astype(np.int64)
+        vals = pos + (pos >= x[:, None])           # position among the others -> value
+        if not self._complement:                   # pick the other members: m-1 or m of them
+            take = np.arange(D)[None, :] < np.where(incl, m - 1, m)[:, None]
+            bits = np.zeros((c, k), dtype=bool)
+            bits[rows[:, None], vals] = take
+        else:                                      # pick the others left out: k-m or k-1-m
+            drop = np.arange(D)[None, :] < np.where(incl, k - m, k - 1 - m)[:, None]
+            bits = np.ones((c, k), dtype=bool)
+            bits[rows[:, None], vals] = ~drop
+        bits[rows, x] = incl
+        return bits
+
+    def randomize_bits(self, x: np.ndarray, words: np.ndarray) -> np.ndarray:
+        """(n, k) booleans of the reported subsets; rows in chunks of at most 2^22 entries."""
+        x = np.asarray(x, dtype=np.int64)
+        n = len(x)
+        out = np.empty((n, self.k), dtype=bool)
+        step = max(1, _CHUNK_ELEMENTS // self.k)
+        for s in range(0, n, step):
+            e = min(n, s + step)
+            out[s:e] = self._bits_chunk(x[s:e], words[s:e])
+        return out
+
+    def randomize(self, x: np.ndarray, words: np.ndarray) -> list[pa.Array]:
+        return [bits_to_strings(self.randomize_bits(x, words))]
+
+    # decoding --------------------------------------------------------------------------------
+    def _chunks(self, arrays: list[pa.Array]):
+        """Yield (start, bits, bad) over row chunks of at most 2^22 characters.  A row is bad
+        if it is not a string of k '0'/'1' characters or has a number of '1's other than m."""
+        arr = arrays[0]
+        if isinstance(arr, pa.ChunkedArray):
+            arr = arr.combine_chunks()
+        if not pa.types.is_integer(arr.type):
+            arr = _as_strings(arr)
+        n = len(arr)
+        step = max(1, _CHUNK_ELEMENTS // self.k)
+        for s in range(0, n, step):
+            bits, bad = strings_to_bits(arr.slice(s, step), self.k)
+            bad |= np.count_nonzero(bits, axis=1) != self.m
+            bits[bad] = False
+            yield s, bits, bad
+
+    def support(self, arrays: list[pa.Array]) -> np.ndarray:
+        """(n, k) booleans: 1[v in S_i]; malformed rows support nothing."""
+        n = len(arrays[0])
+        out = np.empty((n, self.k), dtype=bool)
+        for s, bits, _ in self._chunks(arrays):
+            out[s: s + len(bits)] = bits
+        return out
+
+    def support_counts(self, arrays: list[pa.Array]) -> np.ndarray:
+        counts = np.zeros(self.k, dtype=np.int64)
+        for _, bits, _ in self._chunks(arrays):
+            counts += bits.sum(axis=0, dtype=np.int64)
+        return counts
+
+    def count_invalid(self, arrays: list[pa.Array]) -> int:
+        return int(sum(int(bad.sum()) for _, _, bad in self._chunks(arrays)))
+
+    # analysis ----------------------------------------------------------------------------------
+    def channel_outputs(self) -> list[str]:
+        """All C(k, m) reports, in the column order of ``channel()`` (lexicographic order of the
+        members, as itertools.combinations gives them)."""
+        self._check_channel_size()
+        out = []
+        for comb in itertools.combinations(range(self.k), self.m):
+            s = ["0"] * self.k
+            for j in comb:
+                s[j] = "1"
+            out.append("".join(s))
+        return out
+
+    def _check_channel_size(self) -> None:
+        if math.comb(self.k, self.m) > MAX_CHANNEL_SUBSETS:
+            raise ValueError(f"the channel of subset is enumerated only up to {MAX_CHANNEL_SUBSETS} subsets "
+                             f"(C({self.k}, {self.m}) = {math.comb(self.k, self.m)})")
+
+    def channel(self) -> np.ndarray:
+        """Exact P(S | x), shape (k, C(k, m)), columns as in ``channel_outputs()``:
+        p*/C(k-1, m-1) if x in S, (1-p*)/C(k-1, m) otherwise (= E/Z and 1/Z)."""
+        self._check_channel_size()
+        combs = np.array(list(itertools.combinations(range(self.k), self.m)), dtype=np.int64)
+        member = np.zeros((len(combs), self.k), dtype=bool)
+        member[np.arange(len(combs))[:, None], combs] = True
+        p = self.p_star
+        hit = p / math.comb(self.k - 1, self.m - 1)
+        miss = (1.0 - p) / math.comb(self.k - 1, self.m)
+        return np.where(member.T, hit, miss)
+
+    def max_log_ratio(self) -> float:
+        # P(S|x)/P(S|x') is E (x in S, x' not), 1 or 1/E; E occurs since 1 <= m <= k-1.
+        return float(self.epsilon)
