@@ -416,7 +416,10 @@ def resolve_column(name: str, col: Any) -> ResolvedColumn:
         if name_ == "two-point" and col.grid is not None:
             raise PolicyError(f"{_where(name, 'grid')}: two-point has no input grid (it reports one of two values); "
                               "remove grid")
-        rc.mechanism = mech.make(name_, "numeric", col.epsilon, col.domain, **params)
+        try:
+            rc.mechanism = mech.make(name_, "numeric", col.epsilon, col.domain, **params)
+        except PolicyError as err:
+            raise PolicyError(f"column {name!r}: {err}") from None
     elif name_ in mech.DISTRIBUTION:
         if name_ == "hierarchy":
             if col.grid is not None:

@@ -319,7 +319,10 @@ def randomize_rows(p: ColumnPlan, x: np.ndarray, row0: int) -> list[pa.Array]:
     m = p.rc.mechanism
     assert m is not None and p.stream is not None
     n, wpr = len(x), m.words_per_row
-    step = max(1, MAX_WORDS_PER_CALL // max(wpr, 1))
+    # a report may be wider than its words (a k-character subset string from 1 + m words):
+    # budget a slice by whichever is larger, words in or bytes out (counted in 8-byte words)
+    out_words = -(-int(getattr(m, "output_bytes_per_row", 8)) // 8)
+    step = max(1, MAX_WORDS_PER_CALL // max(wpr, out_words, 1))
     parts: list[list[pa.Array]] = []
     for s in range(0, n, step):
         e = min(n, s + step)
@@ -366,6 +369,17 @@ def _meaning(mech: str, out_name: str, col: str) -> str:
         if out_name.endswith("__hash"):
             return "public hash seed a*P+b of this row (P = 2^31-1)"
         return "reported hash bucket (randomized response over the hash_range buckets)"
+    if mech == "subset":
+        return ("reported subset: character j is 1 if category j of the mechanism's categories is in the row's "
+                "randomized subset (exactly subset_size ones per row)")
+    if mech == "hadamard":
+        return ("reported index of a Hadamard code row (0..K-1, K in the mechanism spec); each index supports "
+                "half of the categories")
+    if mech == "matrix":
+        return "reported category (drawn from the row of the policy's transition matrix for the true category)"
+    if mech == "discrete-laplace":
+        return ("randomized value on the grid lower bound + j * step (j any integer: values may fall outside the "
+                "bounds); on average equal to the true value (per-row unbiased estimate, column units)")
     if mech == "square-wave":
         return ("index j of the reported output cell of the square-wave channel (cells are numbered from 0 by "
                 "position, from below the lower bound to above the upper; the mechanism spec rebuilds them); "

@@ -27,6 +27,8 @@ from ldptransform.mechanisms import (
     DISTRIBUTION,
     NUMERIC,
     GRR,
+    HadamardResponse,
+    SubsetSelection,
     OLH,
     OUE,
     Hybrid,
@@ -114,13 +116,17 @@ def all_mechanisms():
 
 def test_registry_has_exactly_the_documented_mechanisms():
     names = set(registry())
-    assert names == {"grr", "sue", "oue", "olh", "two-point", "piecewise", "hybrid", "square-wave", "hierarchy"}
+    assert names == {"grr", "sue", "oue", "olh", "hadamard", "subset", "matrix", "two-point", "piecewise", "hybrid",
+                     "discrete-laplace", "square-wave", "hierarchy"}
     assert set(CATEGORICAL) | set(NUMERIC) | set(DISTRIBUTION) == names
     assert {registry()[n].kind for n in CATEGORICAL} == {"categorical"}
     assert {registry()[n].kind for n in NUMERIC} == {"numeric"}
     tested = {c[0] for c in CAT_CASES} | {c[0] for c in NUM_CASES}
-    # the distribution mechanisms (DISTRIBUTION) are exercised by tests/test_distribution.py
-    assert tested == names - set(DISTRIBUTION), "every registered mechanism must be exercised by this file"
+    # the distribution mechanisms (DISTRIBUTION) are exercised by tests/test_distribution.py, the
+    # newer oracles and discrete-laplace by their own files (test_hadamard_subset.py, test_matrix.py,
+    # test_discrete_laplace.py)
+    own_files = {"hadamard", "subset", "matrix", "discrete-laplace"}
+    assert tested == names - set(DISTRIBUTION) - own_files, "every registered mechanism must be exercised"
 
 
 @pytest.mark.parametrize("m", all_mechanisms())
@@ -569,7 +575,8 @@ def test_choose_categorical_matches_direct_computation():
         for k in [2, 3, 5, 8, 13, 21, 34, 60, 100, 250, 600]:
             cats = [str(i) for i in range(k)]
             chosen, why = choose_categorical(eps, cats)
-            cands = [GRR(eps, cats), OLH(eps, cats), OUE(eps, cats)]
+            cands = [GRR(eps, cats), HadamardResponse(eps, cats), OLH(eps, cats), SubsetSelection(eps, cats),
+                     OUE(eps, cats)]
             expected = _direct_choice(cands, lambda m: m.total_variance())
             assert chosen.name == expected.name, (eps, k, why)
             assert chosen.total_variance() == pytest.approx(min(m.total_variance() for m in cands), rel=1e-9)
@@ -597,9 +604,16 @@ def test_choose_categorical_follows_the_grr_oue_rule_away_from_the_boundary():
             # the exact-total switch between GRR and OUE
             if abs(k - k_star) > 1e-6:
                 assert (GRR(eps, cats).total_variance() < OUE(eps, cats).total_variance()) == (k < k_star)
-            if k <= 0.75 * rule or k >= 1.05 * rule:
-                chosen, _ = choose_categorical(eps, cats)
-                assert (chosen.name == "grr") == (k <= 0.75 * rule), (eps, k, chosen.name)
+            # the chooser also weighs subset selection, which at m = 1 *is* GRR (same total
+            # variance) and otherwise beats it: GRR is chosen exactly when the best m is 1,
+            # and never where OUE alone already beats GRR
+            chosen, _ = choose_categorical(eps, cats)
+            m_best = SubsetSelection.best_subset_size(eps, k)
+            assert SubsetSelection(eps, cats, 1).total_variance() == pytest.approx(GRR(eps, cats).total_variance(),
+                                                                                   rel=1e-12)
+            assert (chosen.name == "grr") == (m_best == 1), (eps, k, chosen.name, m_best)
+            if k >= 1.05 * rule:
+                assert chosen.name != "grr", (eps, k)
 
 
 def test_choose_numeric_matches_direct_computation():

@@ -226,8 +226,10 @@ def test_manifest_records_auto_choice(tmp_path):
     df.to_csv(raw, index=False)
     res = privatize(raw, load_policy(_write_policy(tmp_path / "p.yaml", policy)), KEY, tmp_path / "x.csv")
     cols = {c.name: c for c in res.manifest.columns}
-    assert cols["team"].mechanism["mechanism"] == "oue"  # k=12 > 3e+2: unary/hashing beat GRR
-    assert "lowest total variance" in cols["team"].chosen_because
+    # k=12 at eps 1: subset selection with m = 3 (Ye and Barg 2018) beats GRR, OLH and OUE
+    assert cols["team"].mechanism["mechanism"] == "subset" and cols["team"].mechanism["subset_size"] == 3
+    why = cols["team"].chosen_because
+    assert "lowest total variance" in why and "efficiency 1.000" in why and "lower bound" in why
     assert cols["hours"].mechanism["mechanism"] == "hybrid"
     # CSV extract decodes the same way
     est = estimate(tmp_path / "x.csv")
