@@ -373,8 +373,8 @@ def _meaning(mech: str, out_name: str, col: str) -> str:
         return ("reported subset: character j is 1 if category j of the mechanism's categories is in the row's "
                 "randomized subset (exactly subset_size ones per row)")
     if mech == "hadamard":
-        return ("reported index of a Hadamard code row (0..K-1, K in the mechanism spec); each index supports "
-                "half of the categories")
+        return ("reported output index y in 0..K-1, K the smallest power of two above the number of categories; "
+                "category j is supported when row j+1 of the K x K Hadamard matrix is +1 at y")
     if mech == "matrix":
         return "reported category (drawn from the row of the policy's transition matrix for the true category)"
     if mech == "discrete-laplace":
