@@ -225,7 +225,7 @@ def validate(extract: Path | str, manifest_path: Path | str | None = None, *, ra
         stats = None
     if stats is not None:
         rep.add("row count", True, f"{rows} rows, as the manifest says")
-        bad = _count_invalid(extract, mpath, manifest)
+        bad, fits = _scan(extract, mpath, manifest)
         priv = manifest.privacy
         sampled = (f"; every row reports exactly {priv.reported_columns} of the {priv.privatized_columns} privatized "
                    "columns" if priv.strategy == "sample" else "")
@@ -235,6 +235,7 @@ def validate(extract: Path | str, manifest_path: Path | str | None = None, *, ra
 
     if stats is not None:
         _check_quality(manifest, rows, rep)
+        _check_fit(manifest, fits, rep)
 
     if raw is not None:
         if key is None:
@@ -289,11 +290,51 @@ def _check_quality(manifest: Manifest, rows: int, rep: ValidationReport) -> None
                 "(predicted worst case over data): " + "; ".join(lines))
 
 
-def _count_invalid(extract: Path, mpath: Path, manifest: Manifest) -> dict[str, int]:
+FIT_ALPHA = 0.001  # family-wise false-alarm rate of the fit check, over all its tests (Bonferroni)
+
+
+def _check_fit(manifest: Manifest, fits: dict[str, Any], rep: ValidationReport) -> None:
+    """Goodness of fit of the reports to the declared mechanisms (gof.py): every test of every
+    column at level FIT_ALPHA / (number of tests), so that a correct release fails this check
+    with probability at most FIT_ALPHA."""
+    from .gof import no_fit_reason
+
+    built = {c.name: mech.build(c.mechanism) for c in manifest.columns if c.mechanism is not None}
+    tested = {n: f for n, f in fits.items() if f is not None}
+    untested = [f"{n} ({no_fit_reason(built[n])})" for n, f in fits.items() if f is None]
+    total = sum(f.n_tests for f in tested.values())
+    if not total:
+        rep.add("fit", None, "no column has a goodness-of-fit test" + (": " + "; ".join(untested) if untested else ""))
+        return
+    level = FIT_ALPHA / total
+    failed, passed = [], []
+    for name, f in tested.items():
+        for r in f.results(level):
+            if r.get("tested") is False:
+                continue
+            line = f"{name}: {r['kind']} p = {r['p_value']:.3g}"
+            (passed if r["passed"] else failed).append(line if r["passed"] else f"{line} ({r['detail']}; tested: "
+                                                                                 f"{r['test']})")
+    scope = (f"{total} test(s) over {len(tested)} column(s), each at level {level:.2g} (family-wise "
+             f"{FIT_ALPHA:g}, Bonferroni)")
+    tail = ("; not tested: " + "; ".join(untested)) if untested else ""
+    if failed:
+        rep.add("fit", False, f"the reports do not fit the mechanism the manifest declares (wrong eps, domain or "
+                f"parameters?) in {len(failed)} of {scope}: " + "; ".join(failed) + tail)
+    else:
+        rep.add("fit", True, f"the reports are consistent with the declared mechanisms: {scope}" +
+                (": " + "; ".join(passed) if passed else "") + tail)
+
+
+def _scan(extract: Path, mpath: Path, manifest: Manifest) -> tuple[dict[str, int], dict[str, Any]]:
+    """One pass over the extract: reports outside each column's output alphabet, and each
+    column's goodness-of-fit statistics (None where the mechanism has no test)."""
     from .estimate import iter_column_arrays, open_extract
+    from .gof import fit_stats_for
 
     _, src, _ = open_extract(extract, mpath)
     built = {c.name: mech.build(c.mechanism) for c in manifest.columns if c.mechanism is not None}
+    fits = {n: fit_stats_for(m) for n, m in built.items()}
     bad: dict[str, int] = {}
     priv = manifest.privacy
     for batch, cols in iter_column_arrays(manifest, src):
@@ -308,6 +349,8 @@ def _count_invalid(extract: Path, mpath: Path, manifest: Manifest) -> dict[str, 
                 per_row += present
                 arrays = [a.filter(pa.array(present)) for a in arrays]
             k += built[name].count_invalid(arrays)
+            if fits[name] is not None:
+                fits[name].add(arrays)
             if k:
                 bad[name] = bad.get(name, 0) + k
         if priv.strategy == "sample":
@@ -316,7 +359,7 @@ def _count_invalid(extract: Path, mpath: Path, manifest: Manifest) -> dict[str, 
                 label = (f"rows that do not report exactly {priv.reported_columns} of the {priv.privatized_columns} "
                          "columns")
                 bad[label] = bad.get(label, 0) + k
-    return bad
+    return bad, fits
 
 
 def _reproduce(raw: Path, extract: Path, manifest: Manifest, key: SecretKey, rep: ValidationReport) -> None:
