@@ -448,7 +448,9 @@ def _plan_table(result: dict) -> None:
                       _fmt_se(s.get("best_possible_se")), target, meets_txt,
                       "-" if s.get("rows_needed") is None else str(s["rows_needed"]),
                       "-" if eff is None else f"{eff:.3f}")
-    out_console.print(t)
+    # ten columns do not fit 80 characters: print the table at least 150 wide rather than fold
+    # every cell into ellipses (a narrow terminal wraps the lines instead)
+    Console(highlight=False, width=max(out_console.width, 150)).print(t)
     out_console.print(f"eps per row: {result['epsilon_per_row']:g} of the budget "
                       f"{result['epsilon_per_row_budget']:g} (strategy {result['strategy']})", markup=False)
     for item in result["impossible"]:

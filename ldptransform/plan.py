@@ -223,7 +223,9 @@ def plan(policy: LoadedPolicy, rows: int, *, simulate: bool = True) -> dict[str,
 # -- suggest ------------------------------------------------------------------------------------
 
 def _with_eps(rc: ResolvedColumn, eps: float) -> ResolvedColumn:
-    return resolve_column(rc.name, rc.config.model_copy(update={"epsilon": eps}))
+    # a short decimal (0.41, not 0.41000000000000003): what a steward would write, and what
+    # the exact samplers (discrete-laplace) can represent
+    return resolve_column(rc.name, rc.config.model_copy(update={"epsilon": round(eps, 10)}))
 
 
 def _meets(rc: ResolvedColumn, eps: float, rows: int, rate: float, default: Quality | None) -> bool:
@@ -266,6 +268,22 @@ def suggest(policy: LoadedPolicy, rows: int) -> dict[str, Any]:
             split[rc.name] = {"epsilon": rc.mechanism.epsilon, "note": "no target: eps kept as in the policy"}
             total += rc.mechanism.epsilon
             continue
+        if rc.mechanism.name == "matrix":
+            # the steward's matrix fixes the noise: eps only caps it, so the smallest eps the
+            # column can declare is the one the matrix actually gives, and more eps cannot help
+            actual = float(rc.mechanism.actual_epsilon)
+            need = math.ceil(actual * 100 - 1e-9) / 100        # in the planner's 0.01 steps, rounded up
+            if _meets(rc, rc.mechanism.epsilon, rows, 1.0, default):
+                split[rc.name] = {"epsilon": need, "mechanism": "matrix",
+                                  "note": f"the matrix gives eps {actual:.4g}; its precision does not depend on "
+                                          "the declared eps"}
+                total += need
+            else:
+                unmet.append(rc.name)
+                split[rc.name] = {"epsilon": None, "note": f"the matrix fixes the noise (it gives eps {actual:.4g}); "
+                                                           f"it misses the target at {rows} rows at any declared eps: "
+                                                           "more rows or a less noisy matrix are needed"}
+            continue
         eps = min_epsilon(rc, rows, 1.0, default)
         if eps is None:
             unmet.append(rc.name)
@@ -296,7 +314,11 @@ def suggest(policy: LoadedPolicy, rows: int) -> dict[str, Any]:
             need = []
             ok = True
             for rc in cols:
-                eps = min_epsilon(rc, rows, rate, default)
+                if rc.mechanism.name == "matrix":   # fixed noise: needs its own eps, meets or not
+                    eps = (math.ceil(float(rc.mechanism.actual_epsilon) * 100 - 1e-9) / 100
+                           if _meets(rc, rc.mechanism.epsilon, rows, rate, default) else None)
+                else:
+                    eps = min_epsilon(rc, rows, rate, default)
                 if eps is None:
                     ok = False
                     break
