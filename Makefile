@@ -4,7 +4,7 @@ VENV   := .venv
 PY     := $(VENV)/bin/python
 STAMP  := $(VENV)/.installed
 
-.PHONY: demo test test-fast bench install clean
+.PHONY: demo test test-fast bench bench-efficiency install clean
 
 $(STAMP): pyproject.toml
 	@test -x $(PY) || $(PYTHON) -m venv $(VENV)
@@ -25,6 +25,9 @@ test-fast: $(STAMP)
 
 bench: $(STAMP)
 	$(PY) benchmarks/bench_privatize.py
+
+bench-efficiency: $(STAMP)
+	$(PY) benchmarks/bench_efficiency.py
 
 clean:
 	rm -rf $(VENV) demo_out .pytest_cache build dist *.egg-info

@@ -17,10 +17,12 @@ values):
 * means: the SE of the mean, worst case over data (data split evenly between the two
   bounds, which maximizes the spread of the reports for every mean mechanism of the tool:
   each one's second moment grows with |value - middle|).
-* medians (needs: quantiles): no closed form; predicted by simulating releases of evenly
-  spread data under a fixed public planning key and decoding them as ``ldpt estimate``
-  does, at min(N, 20000) rows, scaled by sqrt(rows simulated / N).  An approximation: say so
-  when quoting it.
+* medians (needs: quantiles): no closed form; predicted by simulating releases of skewed
+  reference data (the Beta(2, 5) shape stretched over the bounds) under a fixed public
+  planning key and decoding them as ``ldpt estimate`` does, at min(N, 20000) rows: the root
+  mean squared error around the data's true median, its spread scaled by sqrt(rows simulated
+  / N) and its bias kept as simulated.  The shape is common practice for a skewed test
+  distribution, not a worst case; an approximation: say so when quoting it.
 
 The lower bounds are in the same units: the smallest worst-case SE any eps-LDP mechanism is
 known to reach (frequencies: REFERENCE.md section 4 via bounds.frequency_lower_bound, plus
@@ -85,10 +87,15 @@ def simulated_median_se(m: mech.Mechanism, rc: ResolvedColumn, rows: float) -> f
 
     if rows < 2:
         return None
+    from scipy.stats import beta
+
     n = int(min(rows, SIM_ROWS))
     cfg = rc.config
     lo, hi = cfg.domain
-    x = lo + (np.arange(n) + 0.5) / n * (hi - lo)
+    # skewed reference data: the Beta(2, 5) shape on the bounds (median at about 26% of the
+    # width), so that an estimator pulled toward the middle of the range shows its bias
+    x = lo + beta.ppf((np.arange(n) + 0.5) / n, 2, 5) * (hi - lo)
+    true_median = float(np.median(x))
     key = SecretKey(_PLAN_KEY)
     meds = []
     for r in range(SIM_RELEASES):
@@ -106,7 +113,11 @@ def simulated_median_se(m: mech.Mechanism, rc: ResolvedColumn, rows: float) -> f
             st.add(m.randomize(x, words))
             dist = st.distribution()
         meds.append(dist.quantile(0.5))
-    return float(np.std(meds, ddof=1) * math.sqrt(n / rows))
+    meds_a = np.asarray(meds, dtype=float)
+    bias = float(meds_a.mean() - true_median)
+    # root mean squared error: the spread shrinks like 1/sqrt(rows); the bias is kept as it is
+    # (it shrinks more slowly, if at all, for a smoothing decoder)
+    return float(math.sqrt(bias * bias + np.var(meds_a, ddof=1) * n / rows))
 
 
 # -- the plan ---------------------------------------------------------------------------------
@@ -155,6 +166,13 @@ def column_statistics(rc: ResolvedColumn, rows: int, rate: float, default: Quali
                              math.sqrt(vb / n) if n > 0 else None, v, vb, rows, rate,
                              efficiency=bounds.frequency_lower_bound(m.epsilon, m.k) / m.total_variance(),
                              se_meaning="root mean square over values of each share's SE (equal shares: worst case)"))
+        elif need == "mean" and not hasattr(m, "variance"):
+            # a distribution mechanism (needs mean and quantiles): estimate reads the mean off the
+            # decoded distribution and gives no SE for it, so there is nothing to predict
+            out.append({"statistic": "mean", "se": None, "target_se": None, "best_possible_se": None,
+                        "se_meaning": "no prediction",
+                        "note": f"{m.name} decodes a distribution; the mean is read off it without an SE. Name "
+                                "a mean mechanism (or leave needs at [mean]) for a predicted and reported SE"})
         elif need == "mean":
             width = m.hi - m.lo
             v = mean_row_variance(m)
@@ -183,8 +201,9 @@ def column_statistics(rc: ResolvedColumn, rows: int, rate: float, default: Quali
             target = q.median_max_se if q is not None else None
             se = simulated_median_se(m, rc, n) if simulate else None
             stat = {"statistic": "median", "se": se, "target_se": target, "best_possible_se": None,
-                    "se_meaning": (f"SD of the median over {SIM_RELEASES} simulated releases of evenly spread data "
-                                   f"at min(N, {SIM_ROWS}) rows, scaled by sqrt(rows); an approximation"),
+                    "se_meaning": (f"root mean squared error of the median over {SIM_RELEASES} simulated releases of "
+                                   f"skewed reference data (Beta(2, 5) shape) at min(N, {SIM_ROWS}) rows, spread "
+                                   "scaled by sqrt(rows), bias kept; an approximation"),
                     "note": "no lower bound known to the tool for quantiles"}
             if target is not None and se is not None:
                 stat["meets_target"] = bool(se <= target)
@@ -242,10 +261,22 @@ def _has_target(rc: ResolvedColumn, default: Quality | None) -> bool:
 def min_epsilon(rc: ResolvedColumn, rows: int, rate: float, default: Quality | None,
                 step: float = 0.01) -> float | None:
     """Smallest eps (a multiple of ``step``) at which every target of the column is met, or None
-    if not even at eps = 50.  The variances fall as eps grows, so bisection applies."""
-    if not _meets(rc, MAX_COLUMN_EPS, rows, rate, default):
+    if not up to eps = 50.  A coarse doubling scan from below finds the first eps that meets
+    (simulated medians of some mechanisms degrade again at very large eps, so the search does
+    not start from the top), then bisection between it and the scan point before it."""
+    hi_eps = None
+    prev = 0.0
+    e = 0.04
+    while e <= MAX_COLUMN_EPS * (1 + 1e-12):
+        if _meets(rc, e, rows, rate, default):
+            hi_eps = e
+            break
+        prev = e
+        e = min(2 * e, MAX_COLUMN_EPS) if e < MAX_COLUMN_EPS else MAX_COLUMN_EPS * 2
+    if hi_eps is None:
         return None
-    lo, hi = 0, int(round(MAX_COLUMN_EPS / step))  # in units of step; hi meets, lo (eps 0) never does
+    # in units of step; hi meets, lo does not (eps 0 never does)
+    lo, hi = int(math.floor(prev / step + 1e-9)), int(round(hi_eps / step))
     while hi - lo > 1:
         mid = (lo + hi) // 2
         if _meets(rc, mid * step, rows, rate, default):

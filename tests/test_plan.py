@@ -249,3 +249,26 @@ def test_suggest_handles_a_fixed_matrix_and_an_exact_sampler(tmp_path):
     few = suggest(lp, 2000)["split"]
     assert few["columns"]["c"]["epsilon"] is None and "matrix fixes the noise" in few["columns"]["c"]["note"]
     assert few["epsilon_per_row"] is None
+
+
+def test_median_prediction_counts_the_pull_toward_the_middle():
+    """At a tiny eps a smoothing decoder returns nearly the middle of the range whatever the
+    data, so the spread of its medians is small while its error is not.  The prediction is the
+    root mean squared error around the reference data's true median (Beta(2, 5) shape, median
+    at about 26% of the width, scipy.stats.beta), so at eps 0.01 it must be at least half the
+    distance from that median to the middle, and larger than at eps 1."""
+    from scipy.stats import beta
+
+    from ldptransform.plan import simulated_median_se
+
+    pol = {"budget": {"epsilon_per_row": 2}, "columns": {
+        "pay": {"type": "numeric", "bounds": [0, 100], "epsilon": 1, "needs": ["quantiles"]}}}
+    lp = parse_policy(pol, "test")
+    rc = lp.by_name["pay"]
+    from ldptransform.plan import _with_eps
+
+    tiny = simulated_median_se(_with_eps(rc, 0.01).mechanism, _with_eps(rc, 0.01), 5000)
+    one = simulated_median_se(rc.mechanism, rc, 5000)
+    gap = (0.5 - beta.median(2, 5)) * 100
+    assert tiny >= 0.5 * gap, (tiny, gap)
+    assert tiny > one
