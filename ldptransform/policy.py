@@ -30,6 +30,8 @@ Epsilon = Annotated[float, Field(gt=0, le=50, allow_inf_nan=False, strict=True,
                                  description="Privacy parameter of this column (natural log).")]
 _EPS_FIELD = ("Privacy parameter of this column (natural log): required under budget.strategy split, "
               "absent under sample (every reported column then gets epsilon_per_row / m).")
+# A whole number written as one (not true/false, not 2.0, not "2"): YAML reads `yes` as true.
+StrictInt = Annotated[int, Field(strict=True)]
 Scalar = Union[Annotated[str, Field(strict=True)], Annotated[int, Field(strict=True)],
                Annotated[float, Field(strict=True)], Annotated[bool, Field(strict=True)]]
 
@@ -81,10 +83,10 @@ class CategoricalColumn(_Strict):
                                                     "'auto': the lowest variance for what partners need.")
     missing: Literal["error", "as-category"] = "error"
     unknown: Literal["error", "as-category"] = "error"
-    hash_range: int | None = Field(None, description="olh only: number of hash buckets g (default near e^eps+1).")
-    subset_size: int | None = Field(None, description="subset only: size m of the reported subsets (default: the "
-                                                      "m with the lowest total variance).")
-    matrix: list[list[Annotated[float, Field(strict=False, allow_inf_nan=False)]]] | None = Field(
+    hash_range: StrictInt | None = Field(None, description="olh only: number of hash buckets g (default near e^eps+1).")
+    subset_size: StrictInt | None = Field(None, description="subset only: size m of the reported subsets "
+                                                            "(default: the m with the lowest total variance).")
+    matrix: list[list[Annotated[float, Field(strict=True, allow_inf_nan=False)]]] | None = Field(
         None, description="matrix only: transition probabilities, one row per true category and one column per "
                           "published category, in the order of categories (then <missing>, <other> if added); "
                           "rows sum to 1, every entry > 0.")
@@ -122,10 +124,10 @@ class NumericColumn(_Strict):
                                                     "shares); with bins, a categorical one.")
     missing: Literal["error"] | Fill = "error"
     out_of_bounds: Literal["clip", "error"] = "clip"
-    grid: int | None = Field(None, ge=1, le=4096, description="piecewise/hybrid/square-wave/discrete-laplace: "
-                                                               "input grid size (default 256).")
-    hash_range: int | None = Field(None, description="olh on bins only.")
-    subset_size: int | None = Field(None, description="subset on bins only.")
+    grid: StrictInt | None = Field(None, ge=1, le=4096, description="piecewise/hybrid/square-wave/"
+                                                                     "discrete-laplace: input grid size (default 256).")
+    hash_range: StrictInt | None = Field(None, description="olh on bins only.")
+    subset_size: StrictInt | None = Field(None, description="subset on bins only.")
     needs: list[Literal["mean", "quantiles", "frequencies"]] | None = Field(
         None, min_length=1, description="What partners will estimate: mean and/or quantiles (default [mean]); "
                                         "with bins, frequencies (the default) and/or quantiles. With quantiles and "
@@ -366,6 +368,11 @@ def resolve_column(name: str, col: Any) -> ResolvedColumn:
             raise PolicyError(f"{_where(name, 'categories')}: a column needs at least 2 possible values "
                               "(declare more categories, or use type: public / drop)")
         name_ = col.mechanism or "auto"
+        if name_ == "matrix" and kind == "binned":
+            raise PolicyError(f"{_where(name, 'mechanism')}: mechanism matrix is not available for a numeric column "
+                              "released as bins (its transition matrix is given only on a categorical column); use "
+                              f"one of {', '.join(m for m in mech.CATEGORICAL if m != 'matrix')}, or leave mechanism "
+                              "out to pick the lowest-variance one")
         params: dict[str, Any] = {}
         for fieldname, owner in CATEGORICAL_PARAMS.items():
             value = getattr(col, fieldname, None)
@@ -479,8 +486,24 @@ def resolve(policy: Policy, source: str = "<policy>") -> LoadedPolicy:
         try:
             cols.append(resolve_column(name, col))
         except PolicyError as err:
+            if (policy.budget.strategy == "sample" and isinstance(col, NumericColumn)
+                    and col.mechanism == "discrete-laplace" and "field 'epsilon'" in str(err)):
+                raise PolicyError(_sampled_exact_eps_message(policy, name, source)) from None
             raise PolicyError(f"policy {source}: {err}") from None
     return LoadedPolicy(policy, source, cols)
+
+
+def _sampled_exact_eps_message(policy: Policy, name: str, source: str) -> str:
+    """discrete-laplace takes its eps as the exact fraction its decimal text denotes; under
+    strategy sample that eps is the float epsilon_per_row / m, which the policy does not write."""
+    m = policy.reported_columns
+    return (f"policy {source}: column {name!r}, mechanism discrete-laplace: its exact sampler needs an epsilon whose "
+            "decimal form is a short fraction, but under budget.strategy sample the column's epsilon is "
+            f"budget.epsilon_per_row / m = {policy.budget.epsilon_per_row:g} / {m} = {policy.sampled_epsilon!r} "
+            "(m = budget.sample_columns, or the default rule), which it cannot use exactly. Choose "
+            "budget.epsilon_per_row and budget.sample_columns so that their quotient, computed in floating point, "
+            "has a short decimal form (for example 0.9 / 3 = 0.3; `ldpt policy check` shows whether it does), use "
+            "budget.strategy split with a column epsilon such as 0.3, or give this column another numeric mechanism")
 
 
 # -- loading ------------------------------------------------------------------------------

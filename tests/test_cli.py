@@ -463,8 +463,10 @@ def test_validate_detects_a_label_outside_the_alphabet(released: dict[str, Path]
     _tamper_value(released["out"], lambda old: "Ship's cat")
     res = ldpt("validate", released["out"], "--format", "json")
     failing = _failing(res)
-    assert set(failing) == {"extract hash", "output alphabet"}
+    # the fit check sees the same reports: they cannot come from the declared mechanism at all
+    assert set(failing) == {"extract hash", "output alphabet", "fit"}
     assert "role" in _checks(res)["output alphabet"]["detail"]
+    assert "role" in _checks(res)["fit"]["detail"] and "Ship's cat" not in _checks(res)["fit"]["detail"]
     _table_names_failure(ldpt, released["out"], "output alphabet")
     est = ldpt("estimate", released["out"])
     assert est.returncode == 2 and "role" in est.stderr and "Ship's cat" not in est.stderr
