@@ -280,6 +280,19 @@ def pearson_test(counts: np.ndarray, probs: np.ndarray, min_expected: float = MI
     return float(((c - e) ** 2 / e).sum()), len(c) - 1, len(c)
 
 
+def _pearson_result(name: str, kind: str, ref: str, counts: np.ndarray, probs: np.ndarray, alpha: float,
+                    rows: int, good: int, what: str) -> dict[str, Any]:
+    """A Pearson test of ``counts`` against the exact ``probs`` as a result dict (not tested when
+    the reports fill fewer than 2 pooled cells)."""
+    x2, df, cells = pearson_test(counts, probs)
+    if df == 0:
+        return _too_few(name, kind, ref, alpha, rows,
+                        f"{good} reports fill fewer than 2 cells of expected count {MIN_EXPECTED:g}")
+    return _result(name, kind, x2, df, f"chi-square with {df} df (simple null)", _chi2_sf(x2, df), alpha, rows, 0,
+                   f"Pearson chi-square {x2:.1f} on {cells} pooled {what} (expected >= {MIN_EXPECTED:g} each), "
+                   f"{good} reports")
+
+
 def _chi2_sf(x: float, df: int) -> float:
     from scipy.stats import chi2
 
@@ -426,15 +439,8 @@ class OnesCountFit(FitStats):
         out = [_result(mean_name, "ones-mean", z, None, ref_mean, _norm_two_sided(z), alpha, n, 0,
                        f"mean {mean:.5g} ones per report over {good} reports, expected {mu:.5g} (SE "
                        f"{math.sqrt(var / good):.2g}): z = {z:.2f}", observed=mean, expected=mu)]
-        x2, df, cells = pearson_test(h, self.pmf())
-        if df == 0:
-            out.append(_too_few(hist_name, "ones-histogram", ref_hist, alpha, n,
-                                f"{good} reports fill fewer than 2 cells of expected count {MIN_EXPECTED:g}"))
-        else:
-            out.append(_result(hist_name, "ones-histogram", x2, df, f"chi-square with {df} df (simple null)",
-                               _chi2_sf(x2, df), alpha, n, 0,
-                               f"Pearson chi-square {x2:.1f} on {cells} pooled cells of the ones count "
-                               f"(expected >= {MIN_EXPECTED:g} each), {good} reports"))
+        out.append(_pearson_result(hist_name, "ones-histogram", ref_hist, h, self.pmf(), alpha, n, good,
+                                   "cells of the ones count"))
         return out
 
 
@@ -519,15 +525,8 @@ class SupportSizeFit(FitStats):
         out = [_result(mean_name, "support-mean", z, None, ref_mean, pval, alpha, n, 0,
                        f"mean support size {mean:.5g} over {good} reports, expected {mu:.5g} (SE {se:.2g}): "
                        f"z = {z:.2f}", observed=mean, expected=mu)]
-        x2, df, cells = pearson_test(self.stats["buckets"], self._gprob)
-        if df == 0:
-            out.append(_too_few(bucket_name, "bucket-histogram", ref_b, alpha, n,
-                                f"{good} reports fill fewer than 2 cells of expected count {MIN_EXPECTED:g}"))
-        else:
-            out.append(_result(bucket_name, "bucket-histogram", x2, df, f"chi-square with {df} df (simple null)",
-                               _chi2_sf(x2, df), alpha, n, 0,
-                               f"Pearson chi-square {x2:.1f} on {cells} pooled groups of reported buckets, "
-                               f"{good} reports"))
+        out.append(_pearson_result(bucket_name, "bucket-histogram", ref_b, self.stats["buckets"], self._gprob,
+                                   alpha, n, good, "groups of reported buckets"))
         return out
 
 
