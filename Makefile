@@ -18,7 +18,7 @@ demo: $(STAMP)
 	$(VENV)/bin/ldpt demo --dir demo_out
 
 test: $(STAMP)
-	$(PY) -m pytest -q
+	$(PY) -m pytest -q -n 2
 
 test-fast: $(STAMP)
 	$(PY) -m pytest -q -m "not slow"
