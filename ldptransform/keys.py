@@ -240,3 +240,81 @@ def to_below(words: np.ndarray, bound: int) -> np.ndarray:
     every bound the tool uses), far below anything a release of any size can detect.
     """
     return (words % np.uint64(bound)).astype(np.int64)
+
+
+MEMO_PRF_VERSION = "aes256-ecbc-mac/aes256-expand/v1"
+
+
+class SubjectPRF:
+    """Pseudorandom words addressed by (subject, value code) instead of (nonce, row): the
+    randomness of memoized columns ("permanent randomized response").
+
+    Three AES-256 keys are derived from the secret key with labels of their own
+    (``key.subkey("memoized/v1", *labels, part)``; no nonce, so the words are the same in
+    every release).  A row's 128-bit seed is an encrypted CBC-MAC of the prefix-free message
+
+        block 0 = big-endian u64 byte length of the subject || big-endian u64 value code,
+        then the subject's bytes, zero-padded to whole 16-byte blocks,
+
+    i.e. ``seed = AES(k_final, CBC-MAC(k_chain, message))`` (a PRF on messages of any length;
+    the length in block 0 makes the encoding prefix-free).  It is evaluated for all rows at
+    once: one AES-ECB call per block position, each row stopping after its own blocks, so a
+    row's seed depends only on its own (subject, code).  The seed is expanded to words by
+    ``AES(k_expand, seed XOR b)`` for blocks b = 0, 1, ... (two little-endian u64 words per
+    block, the layout of ``KeyedStream.words``).
+    """
+
+    __slots__ = ("_chain", "_final", "_expand", "label")
+
+    def __init__(self, key: SecretKey, *labels: str | bytes) -> None:
+        self._chain = key.subkey("memoized/v1", *labels, "chain")
+        self._final = key.subkey("memoized/v1", *labels, "final")
+        self._expand = key.subkey("memoized/v1", *labels, "expand")
+        self.label = "/".join(lb if isinstance(lb, str) else lb.hex() for lb in labels)
+
+    def __repr__(self) -> str:
+        return f"SubjectPRF({self.label!r})"
+
+    @staticmethod
+    def _ecb(key: bytes, blocks: np.ndarray) -> np.ndarray:
+        enc = Cipher(algorithms.AES(key), modes.ECB()).encryptor()
+        out = enc.update(np.ascontiguousarray(blocks, dtype=np.uint8).tobytes()) + enc.finalize()
+        return np.frombuffer(out, dtype=np.uint8).reshape(blocks.shape).copy()
+
+    def seeds(self, data: np.ndarray, offsets: np.ndarray, codes: np.ndarray) -> np.ndarray:
+        """(n, 16) uint8 seeds for n subjects given as concatenated bytes ``data`` with
+        ``offsets`` (n + 1 int64, subject i is data[offsets[i]:offsets[i+1]]) and int64 value
+        ``codes`` (n)."""
+        offsets = np.asarray(offsets, dtype=np.int64)
+        n = len(offsets) - 1
+        if n <= 0:
+            return np.zeros((0, 16), dtype=np.uint8)
+        lens = np.diff(offsets)
+        head = np.empty((n, 2), dtype=">u8")
+        head[:, 0] = lens.astype(np.uint64)
+        head[:, 1] = np.asarray(codes, dtype=np.int64).astype(np.uint64)
+        state = self._ecb(self._chain, head.view(np.uint8).reshape(n, 16))
+        nblocks = -(-lens // 16)
+        width = int(nblocks.max()) * 16 if n else 0
+        if width:
+            mat = np.zeros((n, width), dtype=np.uint8)
+            total = int(lens.sum())
+            row = np.repeat(np.arange(n), lens)
+            pos = np.arange(total, dtype=np.int64) - np.repeat(offsets[:-1] - offsets[0], lens)
+            mat[row, pos] = np.asarray(data, dtype=np.uint8)[offsets[0]:offsets[0] + total]
+            for b in range(width // 16):
+                active = nblocks > b
+                state[active] = self._ecb(self._chain, state[active] ^ mat[active, 16 * b:16 * b + 16])
+        return self._ecb(self._final, state)
+
+    def words(self, seeds: np.ndarray, per_row: int) -> np.ndarray:
+        """(n, per_row) uint64 words from (n, 16) seeds."""
+        n = len(seeds)
+        blocks = (per_row + 1) // 2
+        if n == 0:
+            return np.zeros((0, per_row), dtype=np.uint64)
+        ctr = np.repeat(np.asarray(seeds, dtype=np.uint8)[:, None, :], blocks, axis=1)
+        b = np.arange(blocks, dtype=">u8").view(np.uint8).reshape(blocks, 8)
+        ctr[:, :, 8:] ^= b[None, :, :]
+        out = self._ecb(self._expand, ctr.reshape(n * blocks, 16))
+        return out.view("<u8").reshape(n, 2 * blocks)[:, :per_row].copy()

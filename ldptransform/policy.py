@@ -93,6 +93,10 @@ class CategoricalColumn(_Strict):
     needs: list[FREQUENCY_NEEDS] | None = Field(
         None, min_length=1, description="What partners will estimate: [frequencies] (the default).")
     quality: Quality | None = Field(None, description="Targets checked by `ldpt plan` and `ldpt validate`.")
+    memoize: Annotated[bool, Field(strict=True)] | None = Field(
+        None, description="true: memoized randomness (permanent randomized response): a person (budget's "
+                          "subject_key) with the same value gets the same report in every release; needs "
+                          "subject_key at the top level.")
 
     @field_validator("categories")
     @classmethod
@@ -137,6 +141,14 @@ class NumericColumn(_Strict):
                                                                  "(default 4).")
     leaves: int | None = Field(None, ge=2, le=1024, description="hierarchy: number of equal leaf buckets of the "
                                                                 "bounds, a power of branching (default 64).")
+    memoize: Annotated[bool, Field(strict=True)] | None = Field(
+        None, description="true: memoized randomness (permanent randomized response): a person (budget's "
+                          "subject_key) with the same value gets the same report in every release; needs "
+                          "subject_key at the top level.")
+    memo_grid: StrictInt | None = Field(
+        None, ge=1, le=4096, description="memoize on a numeric column (no bins): number of steps between the bounds "
+                                         "of the coarse grid the value is rounded to first, with a per-person random "
+                                         "offset (default 32).")
 
     @model_validator(mode="after")
     def _domain(self) -> "NumericColumn":
@@ -165,6 +177,11 @@ class NumericColumn(_Strict):
             raise ValueError("needs: mean is not available for a column released as bins (a bin's values are not "
                              "known); remove bins to release the value with a mean mechanism, or ask for "
                              "frequencies / quantiles")
+        if self.memo_grid is not None and not self.memoize:
+            raise ValueError("memo_grid applies only with memoize: true; add memoize: true or remove memo_grid")
+        if self.memo_grid is not None and self.bins is not None:
+            raise ValueError("memo_grid does not apply to a column released as bins (memoization uses the bin "
+                             "itself); remove memo_grid")
         if isinstance(self.missing, Fill):
             lo, hi = self.domain
             if not lo <= self.missing.fill <= hi:
@@ -237,6 +254,9 @@ class Policy(_Strict):
     input: InputOptions = Field(default_factory=InputOptions)
     quality: Quality | None = Field(None, description="Policy-wide default targets: max_se for frequency shares, "
                                                       "max_relative_se for means (a column's own quality overrides).")
+    subject_key: Annotated[str, Field(strict=True, min_length=1)] | None = Field(
+        None, description="Input column that identifies a person (memoized columns key their randomness on it). "
+                          "It is never released: leave it out of columns or give it type: drop.")
     columns: dict[str, ColumnPolicy] = Field(min_length=1)
 
     @property
@@ -309,6 +329,25 @@ class Policy(_Strict):
                              "epsilons or (after review) raise the budget")
         return self
 
+    @model_validator(mode="after")
+    def _subject(self) -> "Policy":
+        problems = []
+        sk = self.subject_key
+        for n, c in self.columns.items():
+            if getattr(c, "memoize", None) and sk is None:
+                problems.append((("columns", n, "memoize"), True,
+                                 "needs subject_key at the top level of the policy (the input column that identifies "
+                                 "a person, whose reports are memoized); add subject_key: COLUMN or remove memoize"))
+        if sk is not None and sk in self.columns and not isinstance(self.columns[sk], DropColumn):
+            problems.append((("columns", sk, "type"), self.columns[sk].type,
+                             "this column is the policy's subject_key (it identifies a person) and is never "
+                             "released; give it type: drop or leave it out of columns"))
+        if problems:
+            raise ValidationError.from_exception_data("Policy", [
+                InitErrorDetails(type=PydanticCustomError("policy_subject", msg), loc=loc, input=value)
+                for loc, value, msg in problems])
+        return self
+
     def canonical(self) -> dict[str, Any]:
         out = self.model_dump(mode="json", exclude_none=True)
         if out["budget"].get("strategy") == "split":
@@ -331,6 +370,8 @@ class ResolvedColumn:
     labels: list[str] = field(default_factory=list)   # categorical/binned: declared labels (codes 0..)
     missing_code: int | None = None
     other_code: int | None = None
+    memoize: bool = False          # memoized randomness keyed by (subject, value)
+    memo_grid: int | None = None   # numeric (not binned) memoized columns: steps of the coarse rounding grid
 
     @property
     def privatized(self) -> bool:
@@ -484,13 +525,30 @@ def resolve(policy: Policy, source: str = "<policy>") -> LoadedPolicy:
         if policy.budget.strategy == "sample" and isinstance(col, (CategoricalColumn, NumericColumn)):
             col = col.model_copy(update={"epsilon": policy.sampled_epsilon})  # every reported column: eps_row/m
         try:
-            cols.append(resolve_column(name, col))
+            rc = resolve_column(name, col)
+            if getattr(col, "memoize", None):
+                _memoize(rc, source)
+            cols.append(rc)
         except PolicyError as err:
             if (policy.budget.strategy == "sample" and isinstance(col, NumericColumn)
                     and col.mechanism == "discrete-laplace" and "field 'epsilon'" in str(err)):
                 raise PolicyError(_sampled_exact_eps_message(policy, name, source)) from None
             raise PolicyError(f"policy {source}: {err}") from None
     return LoadedPolicy(policy, source, cols)
+
+
+DEFAULT_MEMO_GRID = 32
+
+
+def _memoize(rc: ResolvedColumn, source: str) -> None:
+    assert rc.mechanism is not None
+    if getattr(rc.mechanism, "variable_draws", False):
+        raise PolicyError(f"{_where(rc.name, 'memoize')}: mechanism {rc.mechanism.name} draws a variable number of "
+                          "random words per row, which memoized randomness does not support; remove memoize, or "
+                          "choose another mechanism for this column (for example hybrid or piecewise)")
+    rc.memoize = True
+    if rc.type == "numeric":
+        rc.memo_grid = rc.config.memo_grid or DEFAULT_MEMO_GRID
 
 
 def _sampled_exact_eps_message(policy: Policy, name: str, source: str) -> str:

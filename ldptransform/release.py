@@ -14,6 +14,7 @@ for every row, so nothing else changes with the choice or the batch size.
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import secrets
@@ -31,7 +32,7 @@ import pyarrow.compute as pc
 from . import __version__
 from .errors import DataError, PolicyError, UsageError
 from .io import BatchWriter, StagedFiles, TableSource, check_destination, file_format, sha256_file, write_text_atomic
-from .keys import PRF_VERSION, KeyedStream, SecretKey, check_nonce, new_nonce
+from .keys import MEMO_PRF_VERSION, PRF_VERSION, KeyedStream, SecretKey, SubjectPRF, check_nonce, new_nonce, to_unit
 from .manifest import CAUTIONS, ColumnEntry, ExtractInfo, Manifest, OutputColumn, Privacy, default_manifest_path, now_utc
 from .policy import LoadedPolicy, NumericColumn, ResolvedColumn
 
@@ -78,6 +79,8 @@ class ColumnPlan:
     diag: ColumnDiagnostics = field(default_factory=ColumnDiagnostics)
     sample_index: int | None = None  # strategy sample: this column's position among the d privatized columns
     reported: int = 0                # strategy sample: cells reported so far (private diagnostics only)
+    memo: SubjectPRF | None = None         # memoize: words keyed by (subject, value code), not (nonce, row)
+    memo_offset: SubjectPRF | None = None  # memoize on a numeric column: per-subject offset of the coarse rounding
 
 
 @dataclass
@@ -236,19 +239,24 @@ def encode_binned(values: pa.Array, plan: ColumnPlan, row0: int) -> np.ndarray:
 
 def plan_columns(policy: LoadedPolicy, input_columns: list[str], source: str) -> list[ColumnPlan]:
     by_name = policy.by_name
+    subject = policy.policy.subject_key
+    if subject is not None and subject not in input_columns:
+        raise DataError(f"policy {policy.source}, field 'subject_key': column {subject!r} is not a column of input "
+                        f"{source} (its columns: {', '.join(map(repr, input_columns))}). Name the input column that "
+                        "identifies a person, or remove subject_key and memoize from the policy.")
     absent = [n for n in by_name if n not in input_columns]
     if absent:
         raise DataError(f"the policy names column(s) {', '.join(map(repr, absent))} that input {source} does not have "
                         f"(its columns: {', '.join(map(repr, input_columns))}). Fix the names in the policy or "
                         "remove those entries.")
-    unlisted = [n for n in input_columns if n not in by_name]
+    unlisted = [n for n in input_columns if n not in by_name and n != subject]  # the subject: never released
     if unlisted and policy.policy.unlisted == "error":
         raise DataError(f"input {source} has column(s) {', '.join(map(repr, unlisted))} that the policy does not "
                         "name. Add each one to the policy (type: drop to leave it out), or set unlisted: drop.")
     plans: list[ColumnPlan] = []
     for name in input_columns:
         rc = by_name.get(name)
-        if rc is None or rc.type == "drop":
+        if rc is None or rc.type == "drop" or name == subject:
             continue
         if rc.type == "public":
             plans.append(ColumnPlan(rc, []))  # fields filled from the input schema
@@ -276,12 +284,86 @@ def _output_schema(plans: list[ColumnPlan], input_schema: pa.Schema, fmt_in: str
     return pa.schema(fields)
 
 
+# -- memoized randomness ("permanent randomized response") ----------------------------------
+
+MAX_SUBJECT_BYTES = 256
+
+
+def memo_streams(key: SecretKey, rc: ResolvedColumn) -> tuple[SubjectPRF, SubjectPRF | None]:
+    """The PRFs of a memoized column: reports keyed by (key, column, mechanism spec, memo grid,
+    subject, value code), never by the nonce or the row; for a numeric column also the rounding
+    offset keyed by (key, column, subject) only.  A changed mechanism spec or grid gives fresh
+    randomness (a new release at the new settings), never the old words through a new channel."""
+    assert rc.mechanism is not None
+    context = json.dumps({"spec": rc.mechanism.to_spec(), "memo_grid": rc.memo_grid, "type": rc.type},
+                         sort_keys=True, separators=(",", ":"), default=str).encode()
+    report = SubjectPRF(key, "report", rc.name, hashlib.sha256(context).digest())
+    offset = SubjectPRF(key, "rounding-offset", rc.name) if rc.type == "numeric" else None
+    return report, offset
+
+
+def subject_bytes(values: pa.Array, name: str, row0: int) -> tuple[np.ndarray, np.ndarray]:
+    """The subject column as (concatenated UTF-8 bytes, n + 1 offsets): text as written (numbers
+    as their decimal text), surrounding spaces removed.  A missing or over-long subject is an error."""
+    strings = _as_string_array(values)
+    strings = pc.utf8_trim_whitespace(strings)
+    missing = np.asarray(pc.is_null(strings).to_numpy(zero_copy_only=False))
+    if missing.any():
+        raise DataError(f"column {name!r} is the policy's subject_key but has missing values "
+                        f"({_rows_text(missing, row0)}); memoized columns need to know whose row it is. Fill the "
+                        "identifier in the input, or remove memoize from the policy's columns.")
+    binary = pc.cast(strings, pa.large_binary())
+    if isinstance(binary, pa.ChunkedArray):
+        binary = binary.combine_chunks()
+    bufs = binary.buffers()
+    n = len(binary)
+    offs = np.frombuffer(bufs[1], dtype=np.int64)[binary.offset: binary.offset + n + 1]
+    data = np.frombuffer(bufs[2], dtype=np.uint8) if bufs[2] is not None else np.zeros(0, dtype=np.uint8)
+    long = np.diff(offs) > MAX_SUBJECT_BYTES
+    if long.any():
+        raise DataError(f"column {name!r} (the policy's subject_key) has identifiers longer than "
+                        f"{MAX_SUBJECT_BYTES} bytes ({_rows_text(long, row0)}). Use a shorter identifier (for "
+                        "example a stable hash of the long one) in the input.")
+    return data, offs
+
+
+def memo_round(p: ColumnPlan, x: np.ndarray, subjects: tuple[np.ndarray, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    """Round numeric values to the column's coarse memo grid (memo_grid steps between the
+    bounds) with a per-subject offset u in [0, 1) from the keyed PRF (alpha-point rounding):
+    grid index j = floor((x - lo) / step + u).  Over subjects u is uniform, so j = floor(t) + 1
+    with probability frac(t): unbiased, with rounding variance frac(t)(1 - frac(t)) step^2 <=
+    step^2 / 4 per row.  Returns (rounded values, grid indices)."""
+    assert p.memo_offset is not None and p.rc.memo_grid is not None
+    lo, hi = p.rc.config.domain
+    g = p.rc.memo_grid
+    data, offs = subjects
+    u = to_unit(p.memo_offset.words(p.memo_offset.seeds(data, offs, np.zeros(len(x), dtype=np.int64)), 1)[:, 0])
+    t = (x - lo) * (g / (hi - lo))
+    j = np.clip(np.floor(t + u), 0, g).astype(np.int64)
+    rounded = np.where(j == g, hi, lo + j * ((hi - lo) / g))
+    return np.minimum(rounded, hi), j
+
+
+def memo_note(rc: ResolvedColumn) -> str:
+    grid = ""
+    if rc.memo_grid is not None:
+        lo, hi = rc.config.domain
+        grid = (f"; before randomization each value is rounded to a grid of memo_grid = {rc.memo_grid} steps of "
+                f"{(hi - lo) / rc.memo_grid:g} between the bounds, with a random offset fixed per person (unbiased; "
+                "adds at most step^2/4 variance per row)")
+    return (f"memoized: true ({MEMO_PRF_VERSION}): the report is drawn from randomness keyed by the person "
+            "(the policy's subject_key, not released) and the value, so the same person with the same value gets "
+            "the same report in every release, and rows with the same person and value within a release are "
+            "identical; a report that changes between releases shows that the value changed" + grid)
+
+
 def privatize_batch(batch: pa.RecordBatch, row0: int, plans: list[ColumnPlan], schema: pa.Schema,
-                    sampler: ColumnSampler | None = None) -> pa.RecordBatch:
+                    sampler: ColumnSampler | None = None, subject_key: str | None = None) -> pa.RecordBatch:
     """The pure batch kernel: raw batch rows [row0, row0+n) -> privatized batch."""
     n = batch.num_rows
     arrays: list[pa.Array] = []
     reported = sampler.reported(row0, n) if sampler is not None else None
+    subjects = subject_bytes(batch.column(subject_key), subject_key, row0) if subject_key is not None else None
     for p in plans:
         values = batch.column(p.rc.name)
         if p.rc.type == "public":
@@ -295,7 +377,14 @@ def privatize_batch(batch: pa.RecordBatch, row0: int, plans: list[ColumnPlan], s
             x = encode_numeric(values, p, row0)
         m = p.rc.mechanism
         assert m is not None and p.stream is not None
-        out = randomize_rows(p, x, row0)
+        codes = None
+        if p.memo is not None:
+            assert subjects is not None, "memoized column without subject_key"
+            if p.rc.type == "numeric":
+                x, codes = memo_round(p, x, subjects)
+            else:
+                codes = x
+        out = randomize_rows(p, x, row0, subjects, codes)
         if reported is None:
             arrays.extend(out)
         else:
@@ -309,13 +398,16 @@ def privatize_batch(batch: pa.RecordBatch, row0: int, plans: list[ColumnPlan], s
 MAX_WORDS_PER_CALL = 1 << 22  # 32 MiB of PRF words per randomize call, whatever the report width
 
 
-def randomize_rows(p: ColumnPlan, x: np.ndarray, row0: int) -> list[pa.Array]:
+def randomize_rows(p: ColumnPlan, x: np.ndarray, row0: int,
+                   subjects: tuple[np.ndarray, np.ndarray] | None = None,
+                   codes: np.ndarray | None = None) -> list[pa.Array]:
     """Randomize encoded values ``x`` of global rows row0.. in slices of at most
     MAX_WORDS_PER_CALL words (wide reports such as subsets of a large domain), so memory does
     not grow with the report width.  Words are addressed by global row, so slicing cannot
     change any output.  Mechanisms that draw a variable number of words per row (exact
     rejection samplers) also get ``draw(rows, j)``: word j of each given row, from a stream of
-    their own."""
+    their own.  A memoized column takes its words from ``p.memo`` keyed by (subject, value code)
+    instead (``subjects`` = (bytes, offsets) of the batch's subject column, ``codes`` the value codes)."""
     m = p.rc.mechanism
     assert m is not None and p.stream is not None
     n, wpr = len(x), m.words_per_row
@@ -326,7 +418,12 @@ def randomize_rows(p: ColumnPlan, x: np.ndarray, row0: int) -> list[pa.Array]:
     parts: list[list[pa.Array]] = []
     for s in range(0, n, step):
         e = min(n, s + step)
-        words = p.stream.words(row0 + s, e - s, wpr)
+        if p.memo is not None:
+            assert subjects is not None and codes is not None
+            data, offs = subjects
+            words = p.memo.words(p.memo.seeds(data, offs[s:e + 1], codes[s:e]), wpr)
+        else:
+            words = p.stream.words(row0 + s, e - s, wpr)
         if getattr(m, "variable_draws", False):
             ds, base = p.draw_stream, row0 + s
             assert ds is not None
@@ -356,7 +453,7 @@ def column_entries(plans: list[ColumnPlan], report_rate: float = 1.0) -> list[Co
             name=rc.name, type=rc.type, mechanism=m.to_spec(), chosen_because=rc.chosen_because,
             labels=list(rc.labels) if rc.labels else None,
             bins=[float(b) for b in cfg.bins] if rc.type == "binned" else None,
-            outputs=outs, report_rate=report_rate))
+            outputs=outs, report_rate=report_rate, note=memo_note(rc) if rc.memoize else None))
     return out
 
 
@@ -468,6 +565,8 @@ def privatize(input_path: Path | str, policy: LoadedPolicy, key: SecretKey, out:
             p.stream = KeyedStream(key, nonce, "column", p.rc.name)
             if getattr(p.rc.mechanism, "variable_draws", False):
                 p.draw_stream = KeyedStream(key, nonce, "column-draws", p.rc.name)
+            if p.rc.memoize:
+                p.memo, p.memo_offset = memo_streams(key, p.rc)
     sampler = None
     if policy.strategy == "sample":
         order = policy.policy.privatized_columns  # policy order: the choice never depends on the input's layout
@@ -476,6 +575,9 @@ def privatize(input_path: Path | str, policy: LoadedPolicy, key: SecretKey, out:
             if p.rc.mechanism is not None:
                 p.sample_index = order.index(p.rc.name)
     read_cols = [p.rc.name for p in plans]
+    subject_key = policy.policy.subject_key if any(p.memo is not None for p in plans) else None
+    if subject_key is not None:
+        read_cols.append(subject_key)
 
     rows = 0
     with StagedFiles() as staged:
@@ -483,7 +585,7 @@ def privatize(input_path: Path | str, policy: LoadedPolicy, key: SecretKey, out:
         writer = BatchWriter(tmp_extract, fmt_out, schema)
         try:
             for batch in src.batches(read_cols, batch_rows):
-                writer.write(privatize_batch(batch, rows, plans, schema, sampler))
+                writer.write(privatize_batch(batch, rows, plans, schema, sampler, subject_key))
                 rows += batch.num_rows
                 staged.check()  # stop between batches on SIGTERM/SIGINT
                 if on_progress is not None:
