@@ -511,6 +511,77 @@ def demo(dir: Path = typer.Option(Path("demo_out"), "--dir", help="Folder for th
     raise typer.Exit(code=code)
 
 
+# -- ledger ---------------------------------------------------------------------------------
+
+ledger_app = typer.Typer(no_args_is_help=True, help="The privacy ledger (steward only): eps spent per subject "
+                         "over releases.")
+app.add_typer(ledger_app, name="ledger")
+
+
+def _ledger_path(ledger: Optional[Path]) -> Path:
+    from .ledger import default_ledger_path
+
+    return ledger if ledger is not None else default_ledger_path()
+
+
+_LEDGER_OPTION_HELP = "Ledger file [default: ledger.sqlite3 in the private folder, $LDPT_PRIVATE_DIR]."
+
+
+@ledger_app.command("show")
+def ledger_show(ledger: Optional[Path] = typer.Option(None, "--ledger", help=_LEDGER_OPTION_HELP),
+                format: TableJson = typer.Option(TableJson.table, "--format", help="Output format.")) -> None:
+    """Summarize the ledger: releases, eps recorded, per-subject spend (steward only: it depends on the data).
+
+    Example: ldpt ledger show --format json
+    """
+    from .ledger import Ledger
+
+    with _user_errors():
+        with Ledger.open(_ledger_path(ledger), create=False) as led:
+            summary = led.show()
+    if format == TableJson.json:
+        sys.stdout.write(json.dumps(summary, indent=2) + "\n")
+        return
+    t = Table(title=escape(f"ledger {summary['ledger']}: {summary['releases']} release(s)"), title_justify="left")
+    for h in ("release", "time (UTC)", "eps per row", "subjects charged", "lifetime eps"):
+        t.add_column(h)
+    for r in summary["release_list"]:
+        cap = r["lifetime_epsilon"]
+        t.add_row(str(r["id"]), escape(str(r["time"])), f"{r['eps_per_row']:g}", str(r["subjects_charged"]),
+                  "-" if cap is None else f"{cap:g}")
+    out_console.print(t)
+    out_console.print(f"eps per row summed over releases: {summary['eps_per_row_summed_over_releases']:g}; "
+                      f"head hash {summary['head']} (keep a copy elsewhere to anchor the chain)", markup=False)
+    out_console.print(f"STEWARD ONLY, {summary['steward_only']}:", markup=False)
+    out_console.print(f"  subjects in the ledger: {summary['subjects']}", markup=False)
+    if "spend_quantiles" in summary:
+        q = ", ".join(f"q{k} {v:g}" for k, v in summary["spend_quantiles"].items())
+        out_console.print(f"  eps spent per subject: {q}", markup=False)
+    if "near_cap" in summary:
+        near = ", ".join(f"{k} of the cap: {v}" for k, v in summary["near_cap"].items())
+        out_console.print(f"  subjects near the lifetime eps {summary['lifetime_epsilon']:g} (counts): {near}; "
+                          f"least remaining eps {summary['least_remaining_eps']:g}", markup=False)
+
+
+@ledger_app.command("verify")
+def ledger_verify(ledger: Optional[Path] = typer.Option(None, "--ledger", help=_LEDGER_OPTION_HELP)) -> None:
+    """Recompute the ledger's hash chain; exit 0 if intact, 1 if broken (naming the first broken release).
+
+    Example: ldpt ledger verify --ledger ~/private/ledger.sqlite3
+    """
+    from .ledger import Ledger
+
+    with _user_errors():
+        with Ledger.open(_ledger_path(ledger), create=False) as led:
+            res = led.verify()
+    if res.ok:
+        out_console.print(f"ledger {led.path}: {res.detail}; head {res.head}", markup=False)
+    else:
+        where = f"release {res.first_broken}" if res.first_broken is not None else "the ledger"
+        out_console.print(f"ledger {led.path}: BROKEN at {where}: {res.detail}", markup=False)
+    raise typer.Exit(code=0 if res.ok else 1)
+
+
 def main() -> None:
     try:
         app()
