@@ -113,6 +113,13 @@ def privatize(
     nonce: Optional[str] = typer.Option(None, "--nonce", help="Reuse a release nonce (from a manifest) to "
                                         "reproduce that release bit for bit."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar; only the summary line."),
+    ledger: Optional[Path] = typer.Option(
+        None, "--ledger", help="Privacy ledger to charge this release to (needs the policy's subject_key) "
+        "[default: none, unless the policy sets budget.lifetime_epsilon: then ledger.sqlite3 in the private "
+        "folder, $LDPT_PRIVATE_DIR]."),
+    allow_partial: bool = typer.Option(
+        False, "--allow-partial", help="With budget.lifetime_epsilon: release only the subjects still within "
+        "it (the others' rows are left out) instead of refusing the whole release."),
 ) -> None:
     """Randomize INPUT column by column under POLICY into OUT, plus a public manifest.
 
@@ -138,16 +145,23 @@ def privatize(
                 task = prog.add_task("rows", total=total)
                 res = run(input, lp, k, out, manifest_path=manifest, diagnostics_path=diagnostics,
                           batch_rows=batch_rows, overwrite=overwrite, nonce=nonce,
-                          on_progress=lambda n: prog.advance(task, n))
+                          on_progress=lambda n: prog.advance(task, n), ledger_path=ledger,
+                          allow_partial=allow_partial)
         else:
             res = run(input, lp, k, out, manifest_path=manifest, diagnostics_path=diagnostics,
-                      batch_rows=batch_rows, overwrite=overwrite, nonce=nonce)
+                      batch_rows=batch_rows, overwrite=overwrite, nonce=nonce, ledger_path=ledger,
+                      allow_partial=allow_partial)
     public = res.manifest.privacy.public_columns
     caution = (f"; CAUTION: {len(public)} column(s) released in the clear, not protected: {', '.join(public)}"
                if public else "")
     err_console.print(f"privatized {res.manifest.rows} rows into {res.extract_path} (manifest {res.manifest_path}; "
                       f"steward-only diagnostics {res.diagnostics_path}) in {res.seconds:.1f} s, "
                       f"eps {res.manifest.privacy.epsilon_per_row_used:g} per row{caution}", markup=False)
+    if res.ledger_release_id is not None:
+        held = (f"; held back (steward-only, do not publish): {res.held_back_subjects} subject(s) past the lifetime "
+                f"budget, {res.held_back_rows} row(s)" if res.held_back_subjects else "")
+        err_console.print(f"recorded as release {res.ledger_release_id} in ledger {res.ledger_path}{held}",
+                          markup=False)
 
 
 # -- estimate -------------------------------------------------------------------------------

@@ -160,6 +160,22 @@ def value_hashes(key: SecretKey, column: str, values: Any) -> np.ndarray:
     return _hmac_all(key.subkey(*_VALUE_LABELS, column), _encode_values(values, f"values of column {column!r}"))
 
 
+def memo_value_hashes(key: SecretKey, column: str, context: bytes, subject_h: np.ndarray,
+                      codes: np.ndarray) -> np.ndarray:
+    """Keyed hashes of (subject, value code) for a memoized column, dtype S32: HMAC-SHA256 under a
+    per-column sub-key that also binds ``context`` (the column's memo context: mechanism spec and
+    grid), of the subject's keyed hash followed by the code as 8 big-endian bytes.  The subject is
+    in the message so that two subjects with the same value do not share a hash (no equality
+    classes, hence no frequency analysis, in the ledger); a changed mechanism or grid gives
+    another hash, so the next release is charged, as its randomness is fresh."""
+    h = as_digests(subject_h)
+    rec = np.empty(len(h), dtype=[("h", DIGEST), ("c", ">i8")])
+    rec["h"] = h
+    rec["c"] = np.asarray(codes, dtype=np.int64)
+    msgs = rec.view(np.dtype((np.void, 40))).tolist() if len(h) else []
+    return _hmac_all(key.subkey(*_VALUE_LABELS, column, b"memo-context", context), msgs)
+
+
 def as_digests(h: Any, what: str = "subject hashes") -> np.ndarray:
     """Accept S32 / V32 arrays, (n, 32) uint8 arrays or a list of 32-byte strings; return contiguous S32."""
     if isinstance(h, (list, tuple)):
@@ -458,9 +474,22 @@ class Ledger:
 
     # writing ---------------------------------------------------------------------------
 
+    def _bind_key(self, stored: str | None, given: str) -> None:
+        if stored is not None and stored != given:
+            raise LedgerError(
+                f"ledger {self.path} belongs to another key (fingerprint {stored[:16]}..., this release's key "
+                f"{given[:16]}...). Subjects are kept only as hashes under the key, so a release under another key "
+                "would start everyone from zero spend. Use the key this ledger was made with, or a new ledger for "
+                "the new key (and count the old ledger's spend by hand).")
+
+    def check_key(self, key_fingerprint: str) -> None:
+        """Refuse a key other than the one this ledger's subjects are hashed under (read-only)."""
+        row = self._conn.execute("SELECT value FROM meta WHERE name = 'key_fingerprint'").fetchone()
+        self._bind_key(row[0] if row else None, key_fingerprint)
+
     def record_release(self, meta: ReleaseMeta | Mapping[str, Any], subject_hashes: Any, per_subject_eps: Any,
                        memo_updates: Mapping[str, tuple[Any, Any]] | None = None, *,
-                       lifetime_epsilon: float | None = None) -> int:
+                       lifetime_epsilon: float | None = None, key_fingerprint: str | None = None) -> int:
         """Record one release in one transaction; returns its id.
 
         ``memo_updates``: memoized column -> (subject hashes, value hashes from ``value_hashes``).
@@ -510,6 +539,10 @@ class Ledger:
                         "lower the release's eps, or raise the lifetime budget in the policy if that is "
                         "justified.")
             meta_now = dict(c.execute("SELECT name, value FROM meta"))
+            if key_fingerprint is not None:
+                self._bind_key(meta_now.get("key_fingerprint"), key_fingerprint)
+                if "key_fingerprint" not in meta_now:
+                    c.execute("INSERT INTO meta VALUES ('key_fingerprint', ?)", (key_fingerprint,))
             head, count = meta_now["head"], meta_now["release_count"]
             rid = int(count) + 1
             row = {"id": rid, "time": meta.time or _utc_now(), "policy_sha256": policy_sha,

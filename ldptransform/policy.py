@@ -238,6 +238,10 @@ class Budget(_Strict):
     sample_columns: Annotated[int, Field(ge=1, strict=True)] | None = Field(
         None, description="strategy sample only: m, the number of columns each row reports (default "
                           "max(1, min(d, floor(epsilon_per_row / 2.5))).")
+    lifetime_epsilon: Annotated[float, Field(gt=0, allow_inf_nan=False, strict=True)] | None = Field(
+        None, description="Most eps any one person (subject_key) may spend over all releases recorded in the "
+                          "privacy ledger; a release that would take someone past it is refused (or, with "
+                          "--allow-partial, leaves them out). Needs subject_key.")
 
 
 class InputOptions(_Strict):
@@ -338,6 +342,11 @@ class Policy(_Strict):
                 problems.append((("columns", n, "memoize"), True,
                                  "needs subject_key at the top level of the policy (the input column that identifies "
                                  "a person, whose reports are memoized); add subject_key: COLUMN or remove memoize"))
+        if self.budget.lifetime_epsilon is not None and sk is None:
+            problems.append((("budget", "lifetime_epsilon"), self.budget.lifetime_epsilon,
+                             "needs subject_key at the top level of the policy (the input column that identifies "
+                             "a person, whose spend the ledger adds up); add subject_key: COLUMN or remove "
+                             "lifetime_epsilon"))
         if sk is not None and sk in self.columns and not isinstance(self.columns[sk], DropColumn):
             problems.append((("columns", sk, "type"), self.columns[sk].type,
                              "this column is the policy's subject_key (it identifies a person) and is never "

@@ -21,7 +21,7 @@ import secrets
 import sys
 import time
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -289,15 +289,20 @@ def _output_schema(plans: list[ColumnPlan], input_schema: pa.Schema, fmt_in: str
 MAX_SUBJECT_BYTES = 256
 
 
+def memo_context(rc: ResolvedColumn) -> bytes:
+    """SHA-256 of a memoized column's mechanism spec, memo grid and type: what its randomness is bound to."""
+    assert rc.mechanism is not None
+    context = json.dumps({"spec": rc.mechanism.to_spec(), "memo_grid": rc.memo_grid, "type": rc.type},
+                         sort_keys=True, separators=(",", ":"), default=str).encode()
+    return hashlib.sha256(context).digest()
+
+
 def memo_streams(key: SecretKey, rc: ResolvedColumn) -> tuple[SubjectPRF, SubjectPRF | None]:
     """The PRFs of a memoized column: reports keyed by (key, column, mechanism spec, memo grid,
     subject, value code), never by the nonce or the row; for a numeric column also the rounding
     offset keyed by (key, column, subject) only.  A changed mechanism spec or grid gives fresh
     randomness (a new release at the new settings), never the old words through a new channel."""
-    assert rc.mechanism is not None
-    context = json.dumps({"spec": rc.mechanism.to_spec(), "memo_grid": rc.memo_grid, "type": rc.type},
-                         sort_keys=True, separators=(",", ":"), default=str).encode()
-    report = SubjectPRF(key, "report", rc.name, hashlib.sha256(context).digest())
+    report = SubjectPRF(key, "report", rc.name, memo_context(rc))
     offset = SubjectPRF(key, "rounding-offset", rc.name) if rc.type == "numeric" else None
     return report, offset
 
@@ -510,6 +515,108 @@ def _privacy(policy: LoadedPolicy, plans: list[ColumnPlan]) -> Privacy:
                                "the same people add up")
 
 
+# -- the privacy ledger: per-subject charges of this release -------------------------------
+
+@dataclass
+class LedgerCharges:
+    """What this release charges, from the pre-pass (all steward-only, data-dependent)."""
+
+    subjects: np.ndarray          # distinct subject hashes (S32), sorted
+    eps: np.ndarray               # eps each distinct subject is charged
+    within: np.ndarray            # per distinct subject: stays within lifetime_epsilon
+    row_within: np.ndarray        # per input row: its subject stays within (rows to release)
+    memo: dict[str, tuple[np.ndarray, np.ndarray, np.ndarray]]  # column -> (row index, subject hash, value hash)
+    over_count: int = 0
+    max_overshoot: float = 0.0
+
+    def memo_updates(self) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+        """Memo state of the released rows only (held-back subjects keep their old state)."""
+        out = {}
+        for col, (rows, sh, vh) in self.memo.items():
+            keep = self.row_within[rows]
+            out[col] = (sh[keep], vh[keep])
+        return out
+
+
+def subject_text(values: pa.Array, name: str, row0: int) -> pa.Array:
+    """The subject column as trimmed text, checked as ``subject_bytes`` checks it (the same identity
+    memoization uses, so the ledger and the memoized reports agree on who a person is)."""
+    subject_bytes(values, name, row0)  # missing / over-long identifiers: a DataError naming the rows
+    return pc.utf8_trim_whitespace(_as_string_array(values))
+
+
+def ledger_prepass(src: TableSource, plans: list[ColumnPlan], policy: LoadedPolicy, key: SecretKey,
+                   batch_rows: int, sampler: ColumnSampler | None, ledger: Any | None,
+                   cap: float | None) -> LedgerCharges:
+    """Read only the subject column and the memoized columns, in batches, and work out each
+    subject's charge for this release.  Under split a row costs the eps of its non-memoized
+    privatized columns, plus each memoized column's eps when the (subject, value) hash differs from
+    the ledger's last recorded one for that column (first release: charged).  Under sample a row
+    costs epsilon_per_row_used, memoized or not (simple and conservative).  Rows of one subject add
+    up.  ``ledger`` None: no ledger yet (nothing spent, no last values).  Nothing is written."""
+    from .ledger import memo_value_hashes, subject_hashes
+
+    subject = policy.policy.subject_key
+    assert subject is not None
+    memo_plans = [replace(p, diag=ColumnDiagnostics()) for p in plans if p.memo is not None]  # no double counts
+    contexts = {p.rc.name: memo_context(p.rc) for p in memo_plans}
+    priv = [p for p in plans if p.rc.mechanism is not None]
+    sample = sampler is not None
+    base = policy.epsilon_total if sample else sum(p.rc.mechanism.epsilon for p in priv if p.memo is None)
+    hashes: list[np.ndarray] = []
+    charges: list[np.ndarray] = []
+    memo: dict[str, list[tuple[np.ndarray, np.ndarray, np.ndarray]]] = {p.rc.name: [] for p in memo_plans}
+    row0 = 0
+    for batch in src.batches([subject] + [p.rc.name for p in memo_plans], batch_rows):
+        n = batch.num_rows
+        col = batch.column(subject)
+        sh = subject_hashes(key, subject_text(col, subject, row0))
+        eps = np.full(n, float(base))
+        reported = sampler.reported(row0, n) if sample else None
+        subjects = subject_bytes(col, subject, row0) if memo_plans else None
+        for p in memo_plans:
+            values = batch.column(p.rc.name)
+            if p.rc.type == "categorical":
+                codes = encode_categorical(values, p, row0)
+            elif p.rc.type == "binned":
+                codes = encode_binned(values, p, row0)
+            else:
+                assert subjects is not None
+                _, codes = memo_round(p, encode_numeric(values, p, row0), subjects)
+            vh = memo_value_hashes(key, p.rc.name, contexts[p.rc.name], sh, codes)
+            rows = np.arange(row0, row0 + n, dtype=np.int64)
+            if reported is not None:  # sample: the state is the last value a row *reported*
+                rep = reported[:, p.sample_index]
+                rows, shr, vhr = rows[rep], sh[rep], vh[rep]
+            else:
+                shr, vhr = sh, vh
+                last = ledger.last_values(p.rc.name, sh) if ledger is not None else np.zeros(n, dtype=sh.dtype)
+                eps += np.where(vh != last, p.rc.mechanism.epsilon, 0.0)
+            memo[p.rc.name].append((rows, shr, vhr))
+        hashes.append(sh)
+        charges.append(eps)
+        row0 += n
+    all_h = np.concatenate(hashes) if hashes else np.zeros(0, dtype="S32")
+    all_e = np.concatenate(charges) if charges else np.zeros(0)
+    uniq, inv = np.unique(all_h, return_inverse=True)
+    inv = inv.reshape(-1)
+    eps_u = np.bincount(inv, weights=all_e, minlength=len(uniq))
+    if cap is not None:
+        total = (ledger.spent(uniq) if ledger is not None else np.zeros(len(uniq))) + eps_u
+        from .ledger import CAP_TOLERANCE
+
+        within = total <= cap * (1 + CAP_TOLERANCE)
+        over = int((~within).sum())
+        overshoot = float((total - cap).max()) if over else 0.0
+    else:
+        within, over, overshoot = np.ones(len(uniq), dtype=bool), 0, 0.0
+    memo_cat = {}
+    for c, parts in memo.items():
+        memo_cat[c] = tuple(np.concatenate([pt[i] for pt in parts]) if parts else np.zeros(0, dtype=dt)
+                            for i, dt in enumerate((np.int64, "S32", "S32")))
+    return LedgerCharges(uniq, eps_u, within, within[inv], memo_cat, over, max(overshoot, 0.0))
+
+
 @dataclass
 class ReleaseResult:
     manifest: Manifest
@@ -517,13 +624,25 @@ class ReleaseResult:
     manifest_path: Path
     diagnostics_path: Path
     seconds: float
+    ledger_path: Path | None = None
+    ledger_release_id: int | None = None
+    held_back_subjects: int = 0  # --allow-partial: data-dependent, steward's stderr and diagnostics only
+    held_back_rows: int = 0
 
 
 def privatize(input_path: Path | str, policy: LoadedPolicy, key: SecretKey, out: Path | str, *,
               manifest_path: Path | str | None = None, diagnostics_path: Path | str | None = None,
               batch_rows: int = DEFAULT_BATCH_ROWS, overwrite: bool = False, nonce: str | None = None,
-              on_progress: Callable[[int], None] | None = None) -> ReleaseResult:
-    """Privatize ``input_path`` under ``policy`` into ``out`` (+ manifest, + private diagnostics)."""
+              on_progress: Callable[[int], None] | None = None, ledger_path: Path | str | None = None,
+              allow_partial: bool = False) -> ReleaseResult:
+    """Privatize ``input_path`` under ``policy`` into ``out`` (+ manifest, + private diagnostics).
+
+    With a ledger (``ledger_path``, or the default path when the policy sets
+    budget.lifetime_epsilon) a pre-pass works out each subject's charge before anything is
+    written; over the cap the release is refused, or with ``allow_partial`` only the rows of
+    subjects within it are released.  The release is recorded in the ledger after the extract
+    and manifest are staged and before they are renamed into place: a refused record leaves
+    nothing; a crash between the ledger commit and the rename leaves an over-count (safe side)."""
     t0 = time.perf_counter()
     input_path, out = Path(input_path), Path(out)
     fmt_out = file_format(out, "output")
@@ -548,6 +667,21 @@ def privatize(input_path: Path | str, policy: LoadedPolicy, key: SecretKey, out:
         diagnostics_path = private_dir() / f"{out.stem}.{nonce[:12]}.{secrets.token_hex(4)}.PRIVATE-diagnostics.json"
     diagnostics_path = Path(diagnostics_path)
     check_destination(diagnostics_path, "diagnostics file", overwrite)
+    cap = policy.policy.budget.lifetime_epsilon
+    if allow_partial and cap is None:
+        raise UsageError(f"--allow-partial applies only with a lifetime budget: policy {policy.source} does not set "
+                         "budget.lifetime_epsilon. Set it, or leave out --allow-partial.")
+    if ledger_path is not None or cap is not None:
+        if policy.policy.subject_key is None:
+            raise UsageError(f"--ledger needs policy field 'subject_key' (the input column that identifies a person, "
+                             f"whose spend the ledger adds up); policy {policy.source} does not set it. Add "
+                             "subject_key: COLUMN to the policy, or leave out --ledger.")
+        from .ledger import default_ledger_path
+
+        ledger_path = Path(ledger_path) if ledger_path is not None else default_ledger_path()
+        if not ledger_path.exists() and not ledger_path.parent.is_dir():
+            raise UsageError(f"cannot create ledger {ledger_path}: folder {ledger_path.parent} does not exist. "
+                             "Create it first (private to the steward, like the key), or give another --ledger.")
 
     plans = plan_columns(policy, src.column_names, str(input_path))
     if src.format == "csv":
@@ -579,13 +713,43 @@ def privatize(input_path: Path | str, policy: LoadedPolicy, key: SecretKey, out:
     if subject_key is not None:
         read_cols.append(subject_key)
 
+    charges: LedgerCharges | None = None
+    if ledger_path is not None:
+        from .ledger import BudgetExhaustedError, Ledger
+
+        led = Ledger.open(ledger_path, create=False) if ledger_path.exists() else None  # creates nothing
+        try:
+            if led is not None:
+                led.check_key(key.fingerprint())
+            charges = ledger_prepass(src, plans, policy, key, batch_rows, sampler, led, cap)
+        finally:
+            if led is not None:
+                led.close()
+        if charges.over_count and not allow_partial:
+            raise BudgetExhaustedError(
+                f"this release would take {charges.over_count} subject(s) past the lifetime budget "
+                f"(budget.lifetime_epsilon = {cap:g} in ledger {ledger_path}), by up to "
+                f"{charges.max_overshoot:.6g}; nothing was written. Run with --allow-partial to release only the "
+                "subjects still within the budget, lower the release's eps, or (after review) raise the lifetime "
+                "budget.")
+        if not charges.within.any():
+            raise BudgetExhaustedError(
+                f"every subject of this release is past the lifetime budget (budget.lifetime_epsilon = {cap:g} in "
+                f"ledger {ledger_path}); nothing was written, as there is nothing left to release.")
+    keep_rows = None if charges is None or charges.within.all() else charges.row_within
+
     rows = 0
+    released = 0
     with StagedFiles() as staged:
         tmp_extract = staged.add(out)
         writer = BatchWriter(tmp_extract, fmt_out, schema)
         try:
             for batch in src.batches(read_cols, batch_rows):
-                writer.write(privatize_batch(batch, rows, plans, schema, sampler, subject_key))
+                out_batch = privatize_batch(batch, rows, plans, schema, sampler, subject_key)
+                if keep_rows is not None:  # --allow-partial: drop the rows of subjects past the budget
+                    out_batch = out_batch.filter(pa.array(keep_rows[rows:rows + batch.num_rows]))
+                writer.write(out_batch)
+                released += out_batch.num_rows
                 rows += batch.num_rows
                 staged.check()  # stop between batches on SIGTERM/SIGINT
                 if on_progress is not None:
@@ -594,7 +758,7 @@ def privatize(input_path: Path | str, policy: LoadedPolicy, key: SecretKey, out:
             writer.close()
         digest, size = sha256_file(tmp_extract)
         manifest = Manifest(
-            tool_version=__version__, created_utc=now_utc(), rows=rows, nonce=nonce,
+            tool_version=__version__, created_utc=now_utc(), rows=released, nonce=nonce,
             key_fingerprint=key.fingerprint(), prf=PRF_VERSION, policy_sha256=policy.policy.sha256(),
             policy=policy.policy.canonical(),
             privacy=_privacy(policy, plans),
@@ -605,18 +769,48 @@ def privatize(input_path: Path | str, policy: LoadedPolicy, key: SecretKey, out:
         seconds = time.perf_counter() - t0
         diag = {
             "PRIVATE": "steward-only diagnostics: data-dependent counts. Do not give this file to partners.",
-            "extract": str(out), "manifest": str(manifest_path), "nonce": nonce, "rows": rows,
+            "extract": str(out), "manifest": str(manifest_path), "nonce": nonce, "rows": released,
+            "input_rows": rows,
             "seconds": round(seconds, 3), "batch_rows": batch_rows, "input": str(input_path),
             "columns": {p.rc.name: p.diag.as_dict() for p in plans if p.rc.mechanism is not None},
         }
         if sampler is not None:
             diag["reported_cells"] = {p.rc.name: p.reported for p in plans if p.rc.mechanism is not None}
+        held_subjects = held_rows = 0
+        if charges is not None:
+            held_subjects = int((~charges.within).sum())
+            held_rows = rows - released
+            diag["ledger"] = {
+                "path": str(ledger_path), "lifetime_epsilon": cap, "subjects_charged": int(charges.within.sum()),
+                "held_back_subjects": held_subjects, "held_back_rows": held_rows,
+                "eps_charged_max": float(charges.eps[charges.within].max()) if charges.within.any() else 0.0,
+            }
         tmp_diag = staged.add(diagnostics_path)
         write_text_atomic_into(tmp_diag, json.dumps(diag, indent=2) + "\n", mode=0o600)
+        release_id = None
+        if charges is not None:
+            staged.check()  # a stop asked for before the ledger commit leaves nothing at all
+            release_id = _record(ledger_path, charges, plans, policy, manifest, cap)
         if overwrite and manifest_path.exists():
             manifest_path.unlink()  # never leave an old manifest beside a new extract
         staged.commit()
-    return ReleaseResult(manifest, out, manifest_path, diagnostics_path, time.perf_counter() - t0)
+    return ReleaseResult(manifest, out, manifest_path, diagnostics_path, time.perf_counter() - t0,
+                         ledger_path if charges is not None else None, release_id, held_subjects, held_rows)
+
+
+def _record(ledger_path: Path, charges: LedgerCharges, plans: list[ColumnPlan], policy: LoadedPolicy,
+            manifest: Manifest, cap: float | None) -> int:
+    """Record the staged release in the ledger (one transaction; the cap re-checked under its lock)."""
+    from .ledger import Ledger, ReleaseMeta
+
+    meta = ReleaseMeta(policy_sha256=manifest.policy_sha256, extract_sha256=manifest.extract.sha256,
+                       nonce=manifest.nonce,
+                       columns={p.rc.name: {"eps": float(p.rc.mechanism.epsilon), "memoized": bool(p.rc.memoize)}
+                                for p in plans if p.rc.mechanism is not None})
+    with Ledger.open(ledger_path, create=True) as led:
+        return led.record_release(meta, charges.subjects[charges.within], charges.eps[charges.within],
+                                  charges.memo_updates(), lifetime_epsilon=cap,
+                                  key_fingerprint=manifest.key_fingerprint)
 
 
 def write_text_atomic_into(tmp: Path, text: str, mode: int = 0o644) -> None:
