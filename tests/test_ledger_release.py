@@ -328,3 +328,49 @@ def test_a_ledger_refuses_another_key(tmp_path: Path) -> None:
                   ledger_path=led)
     assert led.read_bytes() == before
     assert not (tmp_path / "other.parquet").exists() and not (tmp_path / "other.manifest.json").exists()
+
+
+def test_two_privatize_jobs_against_one_ledger(tmp_path: Path, private_dir: Path) -> None:
+    """Two `ldpt privatize` processes started together against one ledger.  Without a cap both
+    end with exit 0 and are recorded once each (ids 1 and 2, chain intact); with a cap that one
+    release fits and two do not, exactly one succeeds, the other exits 2 and writes nothing, and
+    the ledger holds one release.  Which one wins depends on timing; the outcome may not."""
+    import subprocess
+    import sys
+
+    from conftest import cli_env
+
+    key = write_fixed_key(tmp_path / "k.key")
+    raw = tmp_path / "in.csv"
+    people(200).to_csv(raw, index=False)
+
+    def start(pol: Path, led: Path, out: str, nonce: str) -> subprocess.Popen:
+        return subprocess.Popen([sys.executable, "-m", "ldptransform", "privatize", str(raw), "--policy", str(pol),
+                                 "--key", str(key), "--out", str(tmp_path / out), "--ledger", str(led), "--nonce",
+                                 nonce], env=cli_env(private_dir), stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                                text=True, stdin=subprocess.DEVNULL)
+
+    free = write_policy(tmp_path / "free.yaml", policy())
+    led = tmp_path / "free.sqlite3"
+    jobs = [start(free, led, f"free{i}.parquet", n) for i, n in enumerate((NIGHT1, NIGHT2))]
+    res = [(j.wait(timeout=180), j.stderr.read()) for j in jobs]
+    assert [r[0] for r in res] == [0, 0], res
+    with Ledger.open(led, create=False) as lg:
+        v = lg.verify()
+        assert v.ok and v.releases == 2
+    nonces = sorted(r[0] for r in sqlite3.connect(led).execute("SELECT nonce FROM releases"))
+    assert nonces == sorted([NIGHT1, NIGHT2])
+
+    capped = write_policy(tmp_path / "capped.yaml", policy(cap=4.0))   # one release costs 3 per person
+    led = tmp_path / "capped.sqlite3"
+    jobs = [start(capped, led, f"cap{i}.parquet", n) for i, n in enumerate((NIGHT1, NIGHT2))]
+    res = [(j.wait(timeout=180), j.stderr.read()) for j in jobs]
+    codes = sorted(r[0] for r in res)
+    assert codes == [0, 2], res
+    loser = [i for i, r in enumerate(res) if r[0] == 2][0]
+    assert "Traceback" not in res[loser][1] and "lifetime" in res[loser][1]
+    assert not (tmp_path / f"cap{loser}.parquet").exists() and not (tmp_path / f"cap{loser}.manifest.json").exists()
+    assert (tmp_path / f"cap{1 - loser}.parquet").exists()
+    with Ledger.open(led, create=False) as lg:
+        v = lg.verify()
+        assert v.ok and v.releases == 1
