@@ -62,7 +62,7 @@ import pyarrow.compute as pc
 from ..errors import PolicyError
 from ..keys import to_unit
 from .base import Mechanism, register
-from .numeric import DEFAULT_GRID
+from .numeric import DEFAULT_GRID, grid_position
 
 Draw = Callable[[np.ndarray, np.ndarray], np.ndarray]
 
@@ -266,11 +266,8 @@ class DiscreteLaplace(Mechanism):
 
     def _position(self, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Lower grid index i0 (0..G-1) and fraction in [0, 1] of x, as GridMechanism rounds."""
-        N = self.grid
-        t = np.clip((np.asarray(x, dtype=float) - self.lo) * (2.0 / (self.hi - self.lo)) - 1.0, -1.0, 1.0)
-        pos = (t + 1.0) * (N / 2.0)
-        i0 = np.minimum(np.floor(pos), N - 1).astype(np.int64)
-        return i0, pos - i0
+        _, i0, frac = grid_position(x, self.lo, self.hi, self.grid)
+        return i0, frac
 
     # -- randomization -------------------------------------------------------------------
     @property

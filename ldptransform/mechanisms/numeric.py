@@ -114,6 +114,22 @@ def draw_index(table: np.ndarray, i: np.ndarray, words: np.ndarray, M: int) -> n
     return np.clip(pos, 0, M - 1)
 
 
+def normalize(x: np.ndarray, lo: float, hi: float) -> np.ndarray:
+    """Column units -> t in [-1, 1] (values outside the bounds are clipped)."""
+    return np.clip((np.asarray(x, dtype=float) - lo) * (2.0 / (hi - lo)) - 1.0, -1.0, 1.0)
+
+
+def grid_position(x: np.ndarray, lo: float, hi: float, grid: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Where x falls on a grid of ``grid`` steps over [lo, hi]: (t, i0, frac) with t the normalized
+    value, i0 the lower grid index (0..grid-1) and frac in [0, 1] the share of the way to i0 + 1.
+    Unbiased random rounding goes up with probability frac (every grid mechanism and
+    discrete-laplace round this way)."""
+    t = normalize(x, lo, hi)
+    s = (t + 1.0) * (grid / 2.0)
+    i0 = np.minimum(np.floor(s), grid - 1).astype(np.int64)
+    return t, i0, s - i0
+
+
 class GridMechanism(Mechanism):
     """Shared implementation; subclasses provide the grid size and the channel."""
 
@@ -174,7 +190,7 @@ class GridMechanism(Mechanism):
         return self.lo + (np.asarray(t) + 1.0) * ((self.hi - self.lo) / 2.0)
 
     def normalize(self, x: np.ndarray) -> np.ndarray:
-        return np.clip((np.asarray(x, dtype=float) - self.lo) * (2.0 / (self.hi - self.lo)) - 1.0, -1.0, 1.0)
+        return normalize(x, self.lo, self.hi)
 
     @cached_property
     def _sampling_table(self) -> np.ndarray:
@@ -191,10 +207,7 @@ class GridMechanism(Mechanism):
 
     def randomize_index(self, x: np.ndarray, words: np.ndarray) -> np.ndarray:
         """Index into ``outputs`` for each input value x (column units, within bounds)."""
-        N = self.grid
-        s = (self.normalize(x) + 1.0) * (N / 2.0)
-        i0 = np.minimum(np.floor(s), N - 1).astype(np.int64)
-        frac = s - i0
+        _, i0, frac = grid_position(x, self.lo, self.hi, self.grid)
         i = i0 + (to_unit(words[:, 0]) < frac)
         return draw_index(self._sampling_table, i, words[:, 1], self.outputs.shape[0])
 
@@ -227,11 +240,7 @@ class GridMechanism(Mechanism):
 
     def variance(self, x: np.ndarray | float) -> np.ndarray:
         """Exact Var of one report (column units) for true value(s) x, random rounding included."""
-        N = self.grid
-        t = self.normalize(np.atleast_1d(np.asarray(x, dtype=float)))
-        s = (t + 1.0) * (N / 2.0)
-        i0 = np.minimum(np.floor(s), N - 1).astype(np.int64)
-        lam = s - i0
+        t, i0, lam = grid_position(np.atleast_1d(np.asarray(x, dtype=float)), self.lo, self.hi, self.grid)
         S = self.second_moments()
         var_t = (1 - lam) * S[i0] + lam * S[i0 + 1] - t ** 2
         out = var_t * ((self.hi - self.lo) / 2.0) ** 2
