@@ -2,8 +2,8 @@
 draws its words from a PRF keyed by (key, column, subject, value) instead of (nonce, row),
 so a person whose value does not change gets the same report in every release.
 
-The idea is the permanent randomized response of Erlingsson, Pihur, Korolova, "RAPPOR:
-Randomized Aggregatable Privacy-Preserving Ordinal Response" (CCS 2014); numeric columns are
+The idea is the permanent randomized response of Erlingsson, Pihur and Korolova (ACM CCS
+2014); numeric columns are
 first rounded to a coarse grid with a per-person random offset (alpha-point rounding: Ding,
 Kulkarni, Yekhanin, "Collecting Telemetry Data Privately", NeurIPS 2017).
 
