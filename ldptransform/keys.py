@@ -299,12 +299,17 @@ class SubjectPRF:
         if width:
             mat = np.zeros((n, width), dtype=np.uint8)
             total = int(lens.sum())
-            row = np.repeat(np.arange(n), lens)
-            pos = np.arange(total, dtype=np.int64) - np.repeat(offsets[:-1] - offsets[0], lens)
-            mat[row, pos] = np.asarray(data, dtype=np.uint8)[offsets[0]:offsets[0] + total]
+            # byte t of the data goes to row r, column t - start(r): flat index t + r * width - start(r)
+            shift = np.arange(n, dtype=np.int64) * width - (offsets[:-1] - offsets[0])
+            flat = np.arange(total, dtype=np.int64) + np.repeat(shift, lens)
+            mat.reshape(-1)[flat] = np.asarray(data, dtype=np.uint8)[offsets[0]:offsets[0] + total]
             for b in range(width // 16):
+                block = mat[:, 16 * b:16 * b + 16]
                 active = nblocks > b
-                state[active] = self._ecb(self._chain, state[active] ^ mat[active, 16 * b:16 * b + 16])
+                if active.all():  # e.g. identifiers of one length: no masking needed
+                    state = self._ecb(self._chain, state ^ block)
+                else:
+                    state[active] = self._ecb(self._chain, state[active] ^ block[active])
         return self._ecb(self._final, state)
 
     def words(self, seeds: np.ndarray, per_row: int) -> np.ndarray:

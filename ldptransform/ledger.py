@@ -2,24 +2,37 @@
 
 A ledger is one SQLite file, private to the steward (mode 0600, kept with the key).  It
 holds, per release, a row in ``releases`` (time, policy and extract hashes, nonce, the eps
-of each column and whether it is memoized, how many subjects were charged), the eps each
-subject was charged in ``subject_spend``, and for memoized columns the last value each
-subject reported in ``subject_state``.
+of each column and whether it is memoized, how many subjects were charged, a digest of the
+state after it) and the eps each subject was charged in ``release_spend``; and the current
+state in ``arrays``: the subject registry (every subject ever charged, in order of first
+charge), each subject's running total, and for memoized columns each subject's last value.
 
-Nothing raw goes in: a subject is stored only as HMAC-SHA256 under a sub-key of the
-release key with its own label ("ledger", "subject-hash/v1"), and a last value only as
-HMAC-SHA256 under a per-column sub-key ("ledger", "value-hash/v1", column).  Without the
+Storage is columnar, so a release of a million people is a few numpy operations and a few
+large writes, not a million SQL rows: the registry, totals and memo state are arrays stored
+as blobs (split into parts of at most 32 MiB), aligned by registry index; a release's spend
+is its subjects' registry indices (sorted, delta-coded) and their eps, both zlib-compressed.
+The registry only grows (a release appends its new subjects); totals and the memo state of
+the columns a release updates are rewritten.
+
+Nothing raw goes in: a subject is stored only as a 32-byte keyed digest (the AES-based PRF
+of ``keys.SubjectPRF``, evaluated for a whole batch at once) under keys derived from the
+release key with labels of their own ("ledger", "subject-hash/v2"), and a last value only as
+a keyed digest of (subject digest, value code) under per-column keys ("ledger",
+"value-hash/v2", column, ...).  Without the
 key the hashes cannot be linked to identifiers; with it, anyone can test a guess, so the
 ledger is as sensitive as the key.  Per-subject spend depends on the data (who appears in
 which release), so the summaries ``show`` gives are for the steward only.
 
 Integrity: releases form a hash chain.  ``row_hash`` = SHA-256 of a label, the canonical
-JSON of the release row, the previous ``row_hash`` and a digest of the release's
-``subject_spend`` rows (sorted by subject hash).  The head hash and the release count are
+JSON of the release row (which includes ``state_sha256``, the digest of the registry, totals
+and memo state after the release), the previous ``row_hash`` and a digest of the release's
+spend (registry indices and eps).  The head hash and the release count are
 also kept in ``meta``, so deleting the last release is caught too.  ``verify`` recomputes
 the chain and names the first broken release.  The chain catches edits that do not
-recompute it (mistakes, naive edits); someone who can write the file can rebuild the whole
-chain, so keep a copy of the head hash (``show`` prints it) somewhere else to anchor it.
+recompute it (mistakes, naive edits); the current registry, totals and memo state are
+checked against the last release's ``state_sha256`` and the totals against the sum of all
+spend.  Someone who can write the file can rebuild the whole chain, so keep a copy of the
+head hash (``show`` prints it) somewhere else to anchor it.
 
 Concurrency and crashes: ``record_release`` runs in one ``BEGIN IMMEDIATE`` transaction
 (busy timeout 30 s) and re-checks the lifetime cap inside it, so two jobs cannot both pass
@@ -34,6 +47,7 @@ import math
 import os
 import sqlite3
 import stat
+import zlib
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
@@ -44,18 +58,18 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from .errors import LdptError
-from .keys import SecretKey, check_nonce
+from .keys import SecretKey, SubjectPRF, check_nonce
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2  # 2: subjects and values hashed with the AES-based keyed PRF (1: HMAC-SHA256)
 APPLICATION_ID = 0x4C445450  # "LDTP": marks a SQLite file as an ldptransform ledger
 DEFAULT_NAME = "ledger.sqlite3"
 BUSY_TIMEOUT_S = 30.0
 GENESIS = "0" * 64
 CAP_TOLERANCE = 1e-9  # relative slack on the cap for floating-point sums (0.1 + 0.2 > 0.3)
-_ROW_LABEL = b"ldptransform/ledger/release-row/v1\n"
-_SPEND_LABEL = b"ldptransform/ledger/subject-spend/v1\n"
-_SUBJECT_LABELS = ("ledger", "subject-hash/v1")
-_VALUE_LABELS = ("ledger", "value-hash/v1")
+_ROW_LABEL = b"ldptransform/ledger/release-row/v2\n"
+_SPEND_LABEL = b"ldptransform/ledger/subject-spend/v2\n"
+_SUBJECT_LABELS = ("ledger", "subject-hash/v2")
+_VALUE_LABELS = ("ledger", "value-hash/v2")
 DIGEST = np.dtype("S32")
 SPEND_NOTE = ("data-dependent (who appears in which release): steward-only, never publish or send to "
               "partners")
@@ -71,23 +85,21 @@ _SCHEMA = [
         columns TEXT NOT NULL,
         subjects_charged INTEGER NOT NULL,
         lifetime_epsilon REAL,
+        state_sha256 TEXT NOT NULL,
         prev_hash TEXT NOT NULL,
         row_hash TEXT NOT NULL)""",
-    """CREATE TABLE IF NOT EXISTS subject_spend (
-        release_id INTEGER NOT NULL,
-        subject_hash BLOB NOT NULL,
-        eps REAL NOT NULL,
-        PRIMARY KEY (release_id, subject_hash)) WITHOUT ROWID""",
-    # running total per subject (a cache of SUM(eps) over subject_spend; verify checks it)
-    """CREATE TABLE IF NOT EXISTS subject_total (
-        subject_hash BLOB PRIMARY KEY,
-        eps REAL NOT NULL) WITHOUT ROWID""",
-    """CREATE TABLE IF NOT EXISTS subject_state (
-        subject_hash BLOB NOT NULL,
-        column TEXT NOT NULL,
-        last_value_hash BLOB NOT NULL,
-        updated_release INTEGER NOT NULL,
-        PRIMARY KEY (subject_hash, column)) WITHOUT ROWID""",
+    # a release's spend: registry indices (sorted, delta-coded, u64 LE) and eps (f64 LE), zlib
+    """CREATE TABLE IF NOT EXISTS release_spend (
+        release_id INTEGER PRIMARY KEY,
+        subject_ids BLOB NOT NULL,
+        eps BLOB NOT NULL)""",
+    # current state as arrays aligned by registry index: "subjects" (32-byte digests, appended
+    # one part per release), "totals" (f64 LE), "state:<column>" (32-byte last-value digests)
+    """CREATE TABLE IF NOT EXISTS arrays (
+        name TEXT NOT NULL,
+        part INTEGER NOT NULL,
+        data BLOB NOT NULL,
+        PRIMARY KEY (name, part))""",
 ]
 
 
@@ -101,8 +113,10 @@ class BudgetExhaustedError(LedgerError):
 
 # -- hashing of subjects and values --------------------------------------------------------
 
-def _encode_values(values: Any, what: str) -> list[bytes]:
-    """Values as UTF-8 bytes of their text form (42 and "42" are the same subject)."""
+def _encode_values(values: Any, what: str) -> tuple[np.ndarray, np.ndarray]:
+    """Values as their UTF-8 text form (42 and "42" are the same subject), returned as
+    (concatenated bytes, n + 1 int64 offsets) straight from the Arrow buffers: no per-value
+    Python objects."""
     if isinstance(values, (pa.ChunkedArray, pa.Array)):
         arr = values
     else:
@@ -114,36 +128,37 @@ def _encode_values(values: Any, what: str) -> list[bytes]:
     if nulls:
         raise LedgerError(f"{what}: {nulls} value(s) are missing. Every row charged to the ledger needs a "
                           "subject identifier: fill or drop those rows before the release.")
-    if pa.types.is_binary(arr.type) or pa.types.is_large_binary(arr.type):
-        return arr.to_pylist()
     if pa.types.is_floating(arr.type):
         raise LedgerError(f"{what}: identifiers are floating-point numbers (type {arr.type}); their text form "
                           "is ambiguous. Read the identifier column as text or whole numbers.")
-    try:
-        text = pc.cast(arr, pa.string()) if not pa.types.is_string(arr.type) else arr
-    except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
-        raise LedgerError(f"{what}: values of type {arr.type} cannot be used as identifiers; use text or "
-                          "whole numbers.") from None
-    return [s.encode("utf-8") for s in text.to_pylist()]
+    if not (pa.types.is_binary(arr.type) or pa.types.is_large_binary(arr.type)):
+        try:
+            arr = pc.cast(arr, pa.large_string()) if not pa.types.is_large_string(arr.type) else arr
+        except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+            raise LedgerError(f"{what}: values of type {arr.type} cannot be used as identifiers; use text or "
+                              "whole numbers.") from None
+    binary = pc.cast(arr, pa.large_binary())
+    if isinstance(binary, pa.ChunkedArray):
+        binary = binary.combine_chunks()
+    n = len(binary)
+    bufs = binary.buffers()
+    offs = np.frombuffer(bufs[1], dtype=np.int64)[binary.offset: binary.offset + n + 1] if n else np.zeros(1, np.int64)
+    data = np.frombuffer(bufs[2], dtype=np.uint8) if n and bufs[2] is not None else np.zeros(0, dtype=np.uint8)
+    return data, offs
 
 
-def _hmac_all(subkey: bytes, encoded: list[bytes]) -> np.ndarray:
-    """HMAC-SHA256(subkey, v) for every v (RFC 2104).  One hash per value cannot be vectorized in
-    numpy; the key pads are hashed once and their SHA-256 states copied per value, which we
-    measured at about 2.4x the speed of calling hmac.digest per value."""
-    padded = subkey.ljust(64, b"\0")  # a 32-byte key: no pre-hashing (RFC 2104)
-    inner = hashlib.sha256(bytes(b ^ 0x36 for b in padded)).copy
-    outer = hashlib.sha256(bytes(b ^ 0x5C for b in padded)).copy
-
-    def one(v: bytes) -> bytes:
-        i = inner()
-        i.update(v)
-        o = outer()
-        o.update(i.digest())
-        return o.digest()
-
-    joined = b"".join([one(v) for v in encoded])
-    return np.frombuffer(joined, dtype=DIGEST) if joined else np.zeros(0, dtype=DIGEST)
+def _keyed_digests(prf: SubjectPRF, data: np.ndarray, offs: np.ndarray,
+                   codes: np.ndarray | None = None) -> np.ndarray:
+    """32-byte keyed digests of n byte strings (and int64 codes), dtype S32, all rows at once:
+    the 128-bit seed of ``SubjectPRF`` (an encrypted CBC-MAC over a length-prefixed, hence
+    prefix-free, encoding: a PRF) expanded to four 64-bit words.  Collisions are governed by
+    the 128-bit seed (about n^2 / 2^129: negligible for any table)."""
+    n = len(offs) - 1
+    if n <= 0:
+        return np.zeros(0, dtype=DIGEST)
+    codes = np.zeros(n, dtype=np.int64) if codes is None else np.asarray(codes, dtype=np.int64)
+    words = prf.words(prf.seeds(data, offs, codes), 4)
+    return np.ascontiguousarray(words, dtype="<u8").view(DIGEST).reshape(-1)
 
 
 def subject_hashes(key: SecretKey, subject_values: Any) -> np.ndarray:
@@ -152,28 +167,27 @@ def subject_hashes(key: SecretKey, subject_values: Any) -> np.ndarray:
     Use ``arr.tobytes()`` (or ``as_digests``) rather than indexing single elements: numpy
     drops trailing zero bytes when it hands out one S32 element.
     """
-    return _hmac_all(key.subkey(*_SUBJECT_LABELS), _encode_values(subject_values, "subject identifiers"))
+    return _keyed_digests(SubjectPRF(key, *_SUBJECT_LABELS), *_encode_values(subject_values, "subject identifiers"))
 
 
 def value_hashes(key: SecretKey, column: str, values: Any) -> np.ndarray:
-    """Keyed hashes of a memoized column's values (per-column sub-key), dtype S32."""
-    return _hmac_all(key.subkey(*_VALUE_LABELS, column), _encode_values(values, f"values of column {column!r}"))
+    """Keyed hashes of a column's values (per-column sub-key), dtype S32."""
+    return _keyed_digests(SubjectPRF(key, *_VALUE_LABELS, column),
+                          *_encode_values(values, f"values of column {column!r}"))
 
 
 def memo_value_hashes(key: SecretKey, column: str, context: bytes, subject_h: np.ndarray,
                       codes: np.ndarray) -> np.ndarray:
-    """Keyed hashes of (subject, value code) for a memoized column, dtype S32: HMAC-SHA256 under a
-    per-column sub-key that also binds ``context`` (the column's memo context: mechanism spec and
-    grid), of the subject's keyed hash followed by the code as 8 big-endian bytes.  The subject is
-    in the message so that two subjects with the same value do not share a hash (no equality
-    classes, hence no frequency analysis, in the ledger); a changed mechanism or grid gives
-    another hash, so the next release is charged, as its randomness is fresh."""
+    """Keyed hashes of (subject, value code) for a memoized column, dtype S32, under per-column
+    keys that also bind ``context`` (the column's memo context: mechanism spec and grid); the
+    message is the subject's keyed hash with the code.  The subject is in the message so that
+    two subjects with the same value do not share a hash (no equality classes, hence no
+    frequency analysis, in the ledger); a changed mechanism or grid gives another hash, so the
+    next release is charged, as its randomness is fresh."""
     h = as_digests(subject_h)
-    rec = np.empty(len(h), dtype=[("h", DIGEST), ("c", ">i8")])
-    rec["h"] = h
-    rec["c"] = np.asarray(codes, dtype=np.int64)
-    msgs = rec.view(np.dtype((np.void, 40))).tolist() if len(h) else []
-    return _hmac_all(key.subkey(*_VALUE_LABELS, column, b"memo-context", context), msgs)
+    data = np.frombuffer(h.tobytes(), dtype=np.uint8)
+    offs = np.arange(0, 32 * len(h) + 1, 32, dtype=np.int64)
+    return _keyed_digests(SubjectPRF(key, *_VALUE_LABELS, column, b"memo-context", context), data, offs, codes)
 
 
 def as_digests(h: Any, what: str = "subject hashes") -> np.ndarray:
@@ -191,18 +205,117 @@ def as_digests(h: Any, what: str = "subject hashes") -> np.ndarray:
                       f"{a.dtype} and shape {a.shape}).")
 
 
-def _blobs(h: np.ndarray) -> list[bytes]:
-    raw = h.tobytes()
-    return [raw[i:i + 32] for i in range(0, len(raw), 32)]
+PART_BYTES = 1 << 25  # largest blob part stored (32 MiB): far below SQLite's default 1e9-byte limit
+_STATE_LABEL = b"ldptransform/ledger/state/v2\n"
+_REGISTRY, _TOTALS, _STATE_PREFIX = "subjects", "totals", "state:"
 
 
-def _spend_digest(hashes: np.ndarray, eps: np.ndarray) -> bytes:
-    """SHA-256 of (subject hash, eps as big-endian float64) pairs sorted by subject hash."""
-    order = np.argsort(hashes, kind="stable")
-    rec = np.empty(len(hashes), dtype=[("h", DIGEST), ("e", ">f8")])
-    rec["h"] = hashes[order]
-    rec["e"] = eps[order]
+def _spend_digest(ids: np.ndarray, eps: np.ndarray) -> bytes:
+    """SHA-256 of a release's spend: (registry index as big-endian u64, eps as big-endian f64)
+    pairs in index order."""
+    rec = np.empty(len(ids), dtype=[("i", ">u8"), ("e", ">f8")])
+    rec["i"] = ids
+    rec["e"] = eps
     return hashlib.sha256(_SPEND_LABEL + rec.tobytes()).digest()
+
+
+def _encode_spend(ids: np.ndarray, eps: np.ndarray) -> tuple[bytes, bytes]:
+    """(sorted registry indices, eps) -> two zlib blobs: the indices delta-coded (mostly 1s in
+    a dense release, so they compress to a few bits each), the eps as they are."""
+    deltas = np.diff(np.asarray(ids, dtype=np.int64), prepend=0).astype("<u8")
+    return zlib.compress(deltas.tobytes(), 1), zlib.compress(np.asarray(eps, dtype="<f8").tobytes(), 1)
+
+
+def _decode_spend(ids_blob: bytes, eps_blob: bytes) -> tuple[np.ndarray, np.ndarray]:
+    """Inverse of ``_encode_spend``; ValueError (or zlib.error) on damaged blobs."""
+    d = zlib.decompress(ids_blob)
+    e = zlib.decompress(eps_blob)
+    if len(d) % 8 or len(e) % 8:
+        raise ValueError("a spend blob's length is not a whole number of 8-byte values")
+    ids = np.cumsum(np.frombuffer(d, dtype="<u8"), dtype=np.uint64).astype(np.int64)
+    return ids, np.frombuffer(e, dtype="<f8").astype(np.float64)
+
+
+def _prefix64(h: np.ndarray) -> np.ndarray:
+    """The first 8 bytes of each digest as a big-endian u64: sorts like the digests' leading bytes."""
+    return np.ascontiguousarray(np.ascontiguousarray(h).view(np.uint8).reshape(-1, 32)[:, :8]).view(">u8").reshape(-1)
+
+
+def _words(h: np.ndarray) -> np.ndarray:
+    return np.ascontiguousarray(h).view("<u8").reshape(-1, 4)
+
+
+class _Index:
+    """Finds digests in an array of distinct digests (vectorized).  Sorting and binary search use
+    the 64-bit prefix (numpy compares S32 strings several times slower), then the whole digest is
+    compared; should two stored digests share a prefix (about n^2 / 2^65: one in 10^7 at 10^6
+    subjects), the index falls back to sorting whole digests."""
+
+    def __init__(self, digests: np.ndarray) -> None:
+        self.digests = digests
+        self.exact = False
+        if len(digests) == 0:
+            return
+        keys = _prefix64(digests)
+        self.order = np.argsort(keys, kind="stable")
+        self.keys = keys[self.order]
+        if len(self.keys) > 1 and not np.all(self.keys[1:] > self.keys[:-1]):
+            self.exact = True
+            self.order = np.argsort(digests, kind="stable")
+            self.keys = digests[self.order]
+
+    def find(self, q: np.ndarray) -> np.ndarray:
+        """Position in ``digests`` of each query digest, -1 where absent."""
+        out = np.full(len(q), -1, dtype=np.int64)
+        n = len(self.digests)
+        if n == 0 or len(q) == 0:
+            return out
+        qk = q if self.exact else _prefix64(q)
+        qo = np.argsort(qk, kind="stable")  # sorted queries: binary searches walk the table in order
+        pos = np.empty(len(q), dtype=np.int64)
+        pos[qo] = np.searchsorted(self.keys, qk[qo])
+        pos = np.minimum(pos, n - 1)
+        cand = self.order[pos]
+        hit = self.keys[pos] == qk
+        hit[hit] = (_words(self.digests[cand[hit]]) == _words(q[hit])).all(axis=1)
+        out[hit] = cand[hit]
+        return out
+
+
+@dataclass
+class _Snapshot:
+    """The registry, totals and memo state as of release ``head`` (arrays never changed in place)."""
+
+    head: str
+    digests: np.ndarray
+    totals: np.ndarray
+    states: dict[str, np.ndarray]
+    index: _Index = field(init=False, repr=False)
+
+    def __post_init__(self) -> None:
+        self.index = _Index(self.digests)
+
+    def state(self, column: str) -> np.ndarray:
+        """A column's last-value digests padded with zero digests to the registry's length."""
+        st = self.states.get(column, np.zeros(0, dtype=DIGEST))
+        if len(st) < len(self.digests):
+            st = np.concatenate([st, np.zeros(len(self.digests) - len(st), dtype=DIGEST)])
+        return st
+
+    def arrays(self) -> dict[str, bytes]:
+        out = {_REGISTRY: self.digests.tobytes(), _TOTALS: np.asarray(self.totals, dtype="<f8").tobytes()}
+        out.update({_STATE_PREFIX + c: v.tobytes() for c, v in self.states.items()})
+        return out
+
+
+def _state_digest(arrays: Mapping[str, bytes]) -> str:
+    """SHA-256 over the stored arrays (name, length, bytes), names in sorted order."""
+    h = hashlib.sha256(_STATE_LABEL)
+    for name in sorted(arrays):
+        data = arrays[name]
+        h.update(name.encode("utf-8") + b"\0" + len(data).to_bytes(8, "big"))
+        h.update(data)
+    return h.hexdigest()
 
 
 def _row_hash(row: Mapping[str, Any], prev_hash: str, spend_digest: bytes) -> str:
@@ -212,7 +325,8 @@ def _row_hash(row: Mapping[str, Any], prev_hash: str, spend_digest: bytes) -> st
         cols = {"<unparseable>": str(row["columns"])}
     body = {"id": row["id"], "time": row["time"], "policy_sha256": row["policy_sha256"],
             "extract_sha256": row["extract_sha256"], "nonce": row["nonce"], "columns": cols,
-            "subjects_charged": row["subjects_charged"], "lifetime_epsilon": row["lifetime_epsilon"]}
+            "subjects_charged": row["subjects_charged"], "lifetime_epsilon": row["lifetime_epsilon"],
+            "state_sha256": row["state_sha256"]}
     canon = json.dumps(body, sort_keys=True, separators=(",", ":"), ensure_ascii=True, allow_nan=False)
     try:
         prev = bytes.fromhex(prev_hash)
@@ -289,6 +403,7 @@ class Ledger:
     def __init__(self, path: Path, conn: sqlite3.Connection) -> None:
         self.path = path
         self._conn = conn
+        self._snap: _Snapshot | None = None  # cached state, valid while the head is unchanged
 
     # opening ---------------------------------------------------------------------------
 
@@ -368,7 +483,10 @@ class Ledger:
             raise LedgerError(not_ledger)
         if version != SCHEMA_VERSION:
             raise LedgerError(f"ledger {self.path} has schema version {version}; this ldptransform reads version "
-                              f"{SCHEMA_VERSION}. Use the ldptransform version that wrote it.")
+                              f"{SCHEMA_VERSION}. Use the ldptransform version that wrote it"
+                              + (" (version 1 ledgers hash subjects differently, so this version cannot match "
+                                 "them; start a new ledger only after your privacy officer has decided how to "
+                                 "account for the eps already spent)." if version == 1 else "."))
 
     def close(self) -> None:
         self._conn.close()
@@ -381,59 +499,74 @@ class Ledger:
 
     # reading ---------------------------------------------------------------------------
 
-    def _totals(self) -> tuple[np.ndarray, np.ndarray]:
-        """All (subject hash, total eps) pairs, sorted by hash (numpy and SQLite both order bytes as memcmp)."""
-        rows = self._conn.execute("SELECT subject_hash, eps FROM subject_total ORDER BY subject_hash").fetchall()
-        if not rows:
-            return np.zeros(0, dtype=DIGEST), np.zeros(0, dtype=np.float64)
-        h = np.frombuffer(b"".join([r[0] for r in rows]), dtype=DIGEST)
-        e = np.fromiter((r[1] for r in rows), dtype=np.float64, count=len(rows))
-        if len(h) > 1 and not np.all(h[1:] > h[:-1]):
-            order = np.argsort(h, kind="stable")
-            h, e = h[order], e[order]
-        return h, e
+    def _get(self, name: str) -> bytes:
+        return b"".join(r[0] for r in self._conn.execute(
+            "SELECT data FROM arrays WHERE name = ? ORDER BY part", (name,)))
 
-    def _spent_in(self, hashes: np.ndarray) -> np.ndarray:
-        th, te = self._totals()
-        out = np.zeros(len(hashes), dtype=np.float64)
-        if len(th) == 0 or len(hashes) == 0:
-            return out
-        pos = np.minimum(np.searchsorted(th, hashes), len(th) - 1)
-        hit = th[pos] == hashes
-        out[hit] = te[pos[hit]]
-        return out
+    def _load(self) -> _Snapshot:
+        """The current state (call inside a transaction); cached while the head hash is unchanged."""
+        c = self._conn
+        head = c.execute("SELECT value FROM meta WHERE name = 'head'").fetchone()[0]
+        if self._snap is not None and self._snap.head == head:
+            return self._snap
+        names = [r[0] for r in c.execute("SELECT DISTINCT name FROM arrays")]
+        reg, tot = self._get(_REGISTRY), self._get(_TOTALS)
+        if len(reg) % 32 or len(tot) != len(reg) // 32 * 8:
+            raise LedgerError(f"ledger {self.path} is damaged: its subject registry and running totals do not fit "
+                              "together. Run `ldpt ledger verify` and restore the ledger from a backup.")
+        states = {}
+        for name in names:
+            if name.startswith(_STATE_PREFIX):
+                data = self._get(name)
+                if len(data) % 32 or len(data) > len(reg):
+                    raise LedgerError(f"ledger {self.path} is damaged: the memo state of column "
+                                      f"{name[len(_STATE_PREFIX):]!r} does not fit the registry. Run `ldpt ledger "
+                                      "verify` and restore the ledger from a backup.")
+                states[name[len(_STATE_PREFIX):]] = np.frombuffer(data, dtype=DIGEST)
+        self._snap = _Snapshot(head, np.frombuffer(reg, dtype=DIGEST), np.frombuffer(tot, dtype="<f8").astype(
+            np.float64), states)
+        return self._snap
+
+    def _read(self) -> _Snapshot:
+        c = self._conn
+        c.execute("BEGIN")
+        try:
+            return self._load()
+        finally:
+            c.execute("COMMIT")
 
     def spent(self, subject_hashes: Any) -> np.ndarray:
         """Eps each subject has been charged so far (0 for subjects never charged)."""
         h = as_digests(subject_hashes)
-        c = self._conn
-        c.execute("BEGIN")
-        try:
-            return self._spent_in(h)
-        finally:
-            c.execute("COMMIT")
+        snap = self._read()
+        idx = snap.index.find(h)
+        return np.where(idx >= 0, snap.totals[np.maximum(idx, 0)] if len(snap.totals) else 0.0, 0.0)
 
     def last_values(self, column: str, subject_hashes: Any) -> np.ndarray:
         """Keyed hash of each subject's last value of a memoized column (all-zero digest if none)."""
         h = as_digests(subject_hashes)
-        c = self._conn
+        snap = self._read()
         out = np.zeros(len(h), dtype=DIGEST)
-        if len(h) == 0:
+        if column not in snap.states:
             return out
+        idx = snap.index.find(h)
+        hit = idx >= 0
+        out[hit] = snap.state(column)[idx[hit]]
+        return out
+
+    def release_spend(self, release_id: int) -> tuple[np.ndarray, np.ndarray]:
+        """(subject hashes, eps) charged by one release, in registry order (steward-only data)."""
+        c = self._conn
         c.execute("BEGIN")
         try:
-            c.execute("CREATE TEMP TABLE IF NOT EXISTS ledger_query (i INTEGER PRIMARY KEY, h BLOB NOT NULL)")
-            c.execute("DELETE FROM ledger_query")
-            c.executemany("INSERT INTO ledger_query VALUES (?, ?)", enumerate(_blobs(h)))
-            rows = c.execute("SELECT q.i, s.last_value_hash FROM ledger_query q JOIN subject_state s "
-                             "ON s.subject_hash = q.h AND s.column = ?", (column,)).fetchall()
-            c.execute("DELETE FROM ledger_query")
+            row = c.execute("SELECT subject_ids, eps FROM release_spend WHERE release_id = ?",
+                            (int(release_id),)).fetchone()
+            if row is None:
+                raise LedgerError(f"ledger {self.path} has no release {release_id}; `ldpt ledger show` lists them.")
+            ids, eps = _decode_spend(*row)
+            return self._load().digests[ids], eps
         finally:
             c.execute("COMMIT")
-        if rows:
-            idx = np.fromiter((r[0] for r in rows), dtype=np.int64, count=len(rows))
-            out[idx] = np.frombuffer(b"".join(r[1] for r in rows), dtype=DIGEST)
-        return out
 
     @staticmethod
     def _aggregate(h: np.ndarray, per_subject_eps: Any) -> tuple[np.ndarray, np.ndarray]:
@@ -517,9 +650,18 @@ class Ledger:
             if len(sh) != len(vh):
                 raise LedgerError(f"memo update for column {col!r}: {len(sh)} subject hashes but {len(vh)} value "
                                   "hashes; give one value hash per subject.")
-            order = np.argsort(sh, kind="stable")  # B-tree writes in key order; a repeated subject: last wins
-            sh, vh = sh[order], vh[order]
             memo.append((col, sh, vh))
+        uniq_index = _Index(uniq)
+        memo_pos = []
+        for col, sh, vh in memo:
+            pos = uniq_index.find(sh)
+            if (pos < 0).any():
+                raise LedgerError(f"memo update for column {col!r}: {int((pos < 0).sum())} subject(s) are not among "
+                                  "the release's charged subjects; a memoized value is only recorded for a subject "
+                                  "this release charges.")
+            rev = np.unique(pos[::-1], return_index=True)[1]  # a repeated subject: its last value wins
+            keep = len(pos) - 1 - rev
+            memo_pos.append((col, pos[keep], vh[keep]))
         columns_json = json.dumps(cols, sort_keys=True, separators=(",", ":"))
         c = self._conn
         try:
@@ -529,8 +671,13 @@ class Ledger:
                               f"{BUSY_TIMEOUT_S:g} s; another job is recording. Nothing was recorded: run the "
                               "release again when it has finished.") from None
         try:
+            snap = self._load()  # under the lock: nobody can record between this read and the commit
+            idx = snap.index.find(uniq)
+            known = idx >= 0
             if lifetime_epsilon is not None:
-                plan = self._plan(self._spent_in(uniq), eps, lifetime_epsilon)
+                spent = np.zeros(len(uniq))
+                spent[known] = snap.totals[idx[known]]
+                plan = self._plan(spent, eps, lifetime_epsilon)
                 if plan.over_count:
                     raise BudgetExhaustedError(
                         f"ledger {self.path}: recording this release would take {plan.over_count} subject(s) over "
@@ -545,50 +692,81 @@ class Ledger:
                     c.execute("INSERT INTO meta VALUES ('key_fingerprint', ?)", (key_fingerprint,))
             head, count = meta_now["head"], meta_now["release_count"]
             rid = int(count) + 1
+            # the new state: new subjects appended to the registry in digest order
+            n_old, n_new = len(snap.digests), int((~known).sum())
+            ids = idx.copy()
+            ids[~known] = n_old + np.arange(n_new)
+            added = uniq[~known]
+            totals = np.concatenate([snap.totals, np.zeros(n_new)])
+            totals[ids] += eps
+            states = dict(snap.states)
+            for col, pos, vh in memo_pos:
+                st = snap.state(col)
+                st = np.concatenate([st, np.zeros(n_new, dtype=DIGEST)]) if n_new else st.copy()
+                st[ids[pos]] = vh
+                states[col] = st
+            new = _Snapshot("", np.concatenate([snap.digests, added]), totals, states)
+            arrays = new.arrays()
+            order = np.argsort(ids, kind="stable")
+            ids_sorted, eps_sorted = ids[order], eps[order]
             row = {"id": rid, "time": meta.time or _utc_now(), "policy_sha256": policy_sha,
                    "extract_sha256": extract_sha, "nonce": nonce, "columns": columns_json,
                    "subjects_charged": int(len(uniq)),
-                   "lifetime_epsilon": None if lifetime_epsilon is None else float(lifetime_epsilon)}
-            row_hash = _row_hash(row, head, _spend_digest(uniq, eps))
+                   "lifetime_epsilon": None if lifetime_epsilon is None else float(lifetime_epsilon),
+                   "state_sha256": _state_digest(arrays)}
+            row_hash = _row_hash(row, head, _spend_digest(ids_sorted, eps_sorted))
             c.execute("INSERT INTO releases VALUES (:id, :time, :policy_sha256, :extract_sha256, :nonce, :columns, "
-                      ":subjects_charged, :lifetime_epsilon, :prev_hash, :row_hash)",
+                      ":subjects_charged, :lifetime_epsilon, :state_sha256, :prev_hash, :row_hash)",
                       {**row, "prev_hash": head, "row_hash": row_hash})
-            blobs, eps_list = _blobs(uniq), eps.tolist()
-            c.executemany("INSERT INTO subject_spend VALUES (?, ?, ?)", zip([rid] * len(uniq), blobs, eps_list))
-            c.executemany("INSERT INTO subject_total VALUES (?, ?) ON CONFLICT (subject_hash) DO UPDATE SET "
-                          "eps = eps + excluded.eps", zip(blobs, eps_list))
-            self._write_state(rid, memo)
+            c.execute("INSERT INTO release_spend VALUES (?, ?, ?)", (rid, *_encode_spend(ids_sorted, eps_sorted)))
+            if n_new:
+                self._append(_REGISTRY, added.tobytes())
+            self._put(_TOTALS, arrays[_TOTALS])
+            for col, _, _ in memo_pos:
+                self._put(_STATE_PREFIX + col, arrays[_STATE_PREFIX + col])
             c.executemany("UPDATE meta SET value = ? WHERE name = ?",
                           [(row_hash, "head"), (str(rid), "release_count")])
             c.execute("COMMIT")
         except BaseException:
+            self._snap = None
             if c.in_transaction:
                 c.execute("ROLLBACK")
             raise
+        new.head = row_hash
+        self._snap = new
         return rid
 
-    def _write_state(self, rid: int, memo: Iterable[tuple[str, np.ndarray, np.ndarray]]) -> None:
-        for col, sh, vh in memo:
-            self._conn.executemany(
-                "INSERT INTO subject_state VALUES (?, ?, ?, ?) ON CONFLICT (subject_hash, column) DO UPDATE SET "
-                "last_value_hash = excluded.last_value_hash, updated_release = excluded.updated_release",
-                zip(_blobs(sh), [col] * len(sh), _blobs(vh), [rid] * len(sh)))
+    def _put(self, name: str, data: bytes) -> None:
+        """Replace a stored array (in parts of at most PART_BYTES)."""
+        c = self._conn
+        c.execute("DELETE FROM arrays WHERE name = ?", (name,))
+        c.executemany("INSERT INTO arrays VALUES (?, ?, ?)",
+                      [(name, i, data[o:o + PART_BYTES]) for i, o in enumerate(range(0, len(data), PART_BYTES))])
+
+    def _append(self, name: str, data: bytes) -> None:
+        """Add parts at the end of a stored array (the registry only grows)."""
+        c = self._conn
+        first = c.execute("SELECT coalesce(max(part) + 1, 0) FROM arrays WHERE name = ?", (name,)).fetchone()[0]
+        c.executemany("INSERT INTO arrays VALUES (?, ?, ?)",
+                      [(name, first + i, data[o:o + PART_BYTES])
+                       for i, o in enumerate(range(0, len(data), PART_BYTES))])
 
     # checking and summarizing -----------------------------------------------------------
 
     def verify(self) -> VerifyResult:
-        """Recompute the hash chain; the result names the first broken release."""
+        """Recompute the hash chain, then check the current state against the last release's
+        state digest and the totals against the sum of all spend; names the first broken release."""
         c = self._conn
         c.execute("BEGIN")
         try:
             meta = dict(c.execute("SELECT name, value FROM meta"))
-            rows = c.execute("SELECT id, time, policy_sha256, extract_sha256, nonce, columns, subjects_charged, "
-                             "lifetime_epsilon, prev_hash, row_hash FROM releases ORDER BY id").fetchall()
             names = ("id", "time", "policy_sha256", "extract_sha256", "nonce", "columns", "subjects_charged",
-                     "lifetime_epsilon", "prev_hash", "row_hash")
+                     "lifetime_epsilon", "state_sha256", "prev_hash", "row_hash")
+            rows = c.execute(f"SELECT {', '.join(names)} FROM releases ORDER BY id").fetchall()
+            arrays = {name: self._get(name) for (name,) in c.execute("SELECT DISTINCT name FROM arrays")}
+            n_reg = len(arrays.get(_REGISTRY, b"")) // 32
+            acc = np.zeros(n_reg)
             prev = GENESIS
-            all_h: list[np.ndarray] = []
-            all_e: list[np.ndarray] = []
             for n, values in enumerate(rows, start=1):
                 r = dict(zip(names, values))
                 rid = r["id"]
@@ -599,53 +777,54 @@ class Ledger:
                     return VerifyResult(False, len(rows), rid, f"release {rid} does not link to release {rid - 1} "
                                         "(prev_hash differs): a release before it was changed, deleted or inserted",
                                         prev)
-                spend = c.execute("SELECT subject_hash, eps FROM subject_spend WHERE release_id = ?",
-                                  (rid,)).fetchall()
-                if any(not isinstance(s[0], bytes) or len(s[0]) != 32 for s in spend):
-                    return VerifyResult(False, len(rows), rid, f"release {rid}: a subject hash is not 32 bytes",
+                spend = c.execute("SELECT subject_ids, eps FROM release_spend WHERE release_id = ?",
+                                  (rid,)).fetchone()
+                try:
+                    if spend is None:
+                        raise ValueError("missing")
+                    ids, e = _decode_spend(*spend)
+                    ok = len(ids) == len(e) and (len(ids) == 0 or (ids[0] >= 0 and ids[-1] < n_reg
+                                                                    and np.all(np.diff(ids) > 0)))
+                except (ValueError, TypeError, zlib.error):
+                    ok = False
+                if not ok:
+                    return VerifyResult(False, len(rows), rid, f"release {rid}: its spend is missing or damaged",
                                         prev)
-                h = np.frombuffer(b"".join(s[0] for s in spend), dtype=DIGEST) if spend else np.zeros(0, DIGEST)
-                e = np.array([s[1] for s in spend], dtype=np.float64)
-                if len(spend) != r["subjects_charged"]:
-                    return VerifyResult(False, len(rows), rid, f"release {rid}: {len(spend)} subject spend rows, "
+                if len(ids) != r["subjects_charged"]:
+                    return VerifyResult(False, len(rows), rid, f"release {rid}: {len(ids)} subjects in its spend, "
                                         f"but the release says {r['subjects_charged']}", prev)
                 try:
-                    expected = _row_hash(r, r["prev_hash"], _spend_digest(h, e))
+                    expected = _row_hash(r, r["prev_hash"], _spend_digest(ids, e))
                 except (TypeError, ValueError):
                     expected = None
                 if expected != r["row_hash"]:
-                    return VerifyResult(False, len(rows), rid, f"release {rid}: its row or its subject spend rows "
-                                        "were changed after it was recorded (row_hash differs)", prev)
+                    return VerifyResult(False, len(rows), rid, f"release {rid}: its row or its spend was changed "
+                                        "after it was recorded (row_hash differs)", prev)
                 prev = r["row_hash"]
-                all_h.append(h)
-                all_e.append(e)
+                acc[ids] += e
             if meta.get("head") != prev or meta.get("release_count") != str(len(rows)):
                 return VerifyResult(False, len(rows), len(rows) + 1,
                                     f"the ledger's head records {meta.get('release_count')} release(s) but "
                                     f"{len(rows)} are stored: a release at the end was deleted or added", prev)
-            orphans = c.execute("SELECT count(*) FROM subject_spend WHERE release_id NOT IN "
+            orphans = c.execute("SELECT count(*) FROM release_spend WHERE release_id NOT IN "
                                 "(SELECT id FROM releases)").fetchone()[0]
             if orphans:
-                return VerifyResult(False, len(rows), None, f"{orphans} subject spend rows belong to no release",
-                                    prev)
-            th, te = self._totals()
-            if all_h:
-                uh, inv = np.unique(np.concatenate(all_h), return_inverse=True)
-                ue = np.bincount(inv.reshape(-1), weights=np.concatenate(all_e), minlength=len(uh))
-            else:
-                uh, ue = np.zeros(0, dtype=DIGEST), np.zeros(0)
-            if len(uh) != len(th) or not np.array_equal(uh, th) or \
-                    not np.allclose(ue, te, rtol=CAP_TOLERANCE, atol=CAP_TOLERANCE):
+                return VerifyResult(False, len(rows), None, f"{orphans} spend record(s) belong to no release", prev)
+            expected_state = rows[-1][names.index("state_sha256")] if rows else _state_digest({})
+            if _state_digest(arrays) != expected_state:
+                return VerifyResult(False, len(rows), None, "the subject registry, running totals or memo state "
+                                    "differ from what the last release recorded (edited after it)", prev)
+            totals = np.frombuffer(arrays.get(_TOTALS, b""), dtype="<f8")
+            if len(totals) != n_reg or not np.allclose(acc, totals, rtol=CAP_TOLERANCE, atol=CAP_TOLERANCE):
                 return VerifyResult(False, len(rows), None, "the per-subject running totals do not match the sum of "
-                                    "the recorded spend (subject_total was edited)", prev)
+                                    "the recorded spend", prev)
             return VerifyResult(True, len(rows), None, f"chain intact over {len(rows)} release(s)", prev)
         finally:
             c.execute("COMMIT")
 
     def spend_totals(self) -> np.ndarray:
-        """Total eps of every subject in the ledger (unordered; no identifiers)."""
-        rows = self._conn.execute("SELECT eps FROM subject_total").fetchall()
-        return np.fromiter((r[0] for r in rows), dtype=np.float64, count=len(rows))
+        """Total eps of every subject in the ledger (registry order; no identifiers)."""
+        return self._read().totals
 
     def show(self, lifetime_epsilon: float | None = None) -> dict[str, Any]:
         """A summary for the steward.  The spend figures depend on the data: steward-only."""
@@ -655,7 +834,7 @@ class Ledger:
             rel = c.execute("SELECT id, time, columns, subjects_charged, lifetime_epsilon FROM releases "
                             "ORDER BY id").fetchall()
             head = c.execute("SELECT value FROM meta WHERE name = 'head'").fetchone()[0]
-            totals = self.spend_totals()
+            totals = self._load().totals
         finally:
             c.execute("COMMIT")
         releases = []

@@ -6,8 +6,6 @@ of a failed record, the hash chain against hand edits, and two processes recordi
 
 from __future__ import annotations
 
-import hashlib
-import hmac
 import json
 import os
 import sqlite3
@@ -19,12 +17,13 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 import pytest
+from cryptography.hazmat.primitives.ciphers import Cipher, algorithms, modes
 
 from conftest import FIXED_KEY_BYTES, cli_env
 from ldptransform.errors import LdptError
 from ldptransform.keys import SecretKey
-from ldptransform.ledger import (DIGEST, BudgetExhaustedError, Ledger, LedgerError, ReleaseMeta, subject_hashes,
-                                 value_hashes)
+from ldptransform.ledger import (DIGEST, BudgetExhaustedError, Ledger, LedgerError, ReleaseMeta, _decode_spend,
+                                 _encode_spend, _Index, subject_hashes, value_hashes)
 
 KEY = SecretKey(FIXED_KEY_BYTES)
 OTHER_KEY = SecretKey(bytes(range(32)))
@@ -55,20 +54,45 @@ def led(tmp_path: Path):
 
 # -- hashing ------------------------------------------------------------------------------
 
-def test_subject_hashes_are_keyed_hmac_with_their_own_label() -> None:
-    h = subject_hashes(KEY, pa.array([42, 7]))
-    assert h.dtype == DIGEST and h.shape == (2,)
-    sub = KEY.subkey("ledger", "subject-hash/v1")
-    assert h.tobytes()[:32] == hmac.new(sub, b"42", hashlib.sha256).digest()
-    assert h.tobytes()[32:] == hmac.new(sub, b"7", hashlib.sha256).digest()
-    # the same identifier read as text or as a number is the same subject
-    assert subject_hashes(KEY, pa.array(["42"])).tobytes() == h.tobytes()[:32]
-    assert subject_hashes(KEY, np.array(["42", "7"])).tobytes() == h.tobytes()
-    # another key, or the value hash of a memoized column, gives other digests (domain separation)
-    assert subject_hashes(OTHER_KEY, pa.array([42])).tobytes() != h.tobytes()[:32]
+def _aes(key: bytes, block: bytes) -> bytes:
+    enc = Cipher(algorithms.AES(key), modes.ECB()).encryptor()
+    return enc.update(block) + enc.finalize()
+
+
+def _one_digest(labels: tuple, message: bytes, code: int = 0) -> bytes:
+    """The keyed digest of one message computed on its own, block by block (the encrypted
+    CBC-MAC of [u64 length || u64 code] + message zero-padded, expanded by AES of the seed
+    with a block counter in its low half): the reference the vectorized digests must equal."""
+    chain, final, expand = (KEY.subkey("memoized/v1", *labels, part) for part in ("chain", "final", "expand"))
+    state = _aes(chain, len(message).to_bytes(8, "big") + code.to_bytes(8, "big"))
+    padded = message + bytes(-len(message) % 16)
+    for b in range(0, len(padded), 16):
+        state = _aes(chain, bytes(x ^ y for x, y in zip(state, padded[b:b + 16])))
+    seed = _aes(final, state)
+    return b"".join(_aes(expand, seed[:8] + bytes(x ^ y for x, y in zip(seed[8:], i.to_bytes(8, "big"))))
+                    for i in range(2))
+
+
+def test_subject_hashes_are_keyed_digests_with_their_own_label() -> None:
+    ids_ = ["42", "7", "", "person-0000000000000017", "n\u00e9e"]
+    h = subject_hashes(KEY, pa.array(ids_))
+    assert h.dtype == DIGEST and h.shape == (5,)
+    raw = h.tobytes()
+    for i, s in enumerate(ids_):
+        assert raw[32 * i:32 * i + 32] == _one_digest(("ledger", "subject-hash/v2"), s.encode())
+    # the same identifier read as text or as a number is the same subject; a slice of a larger
+    # array (non-zero Arrow offset) and a chunked array hash the same
+    assert subject_hashes(KEY, pa.array([42, 7])).tobytes() == raw[:64]
+    assert subject_hashes(KEY, np.array(["42", "7"])).tobytes() == raw[:64]
+    assert subject_hashes(KEY, pa.array(ids_).slice(1, 3)).tobytes() == raw[32:128]
+    assert subject_hashes(KEY, pa.chunked_array([ids_[:2], ids_[2:]])).tobytes() == raw
+    assert subject_hashes(KEY, pa.array([], pa.string())).shape == (0,)
+    # another key, or the value hash of a column, gives other digests (domain separation)
+    assert subject_hashes(OTHER_KEY, pa.array([42])).tobytes() != raw[:32]
     v_site = value_hashes(KEY, "site", pa.array([42]))
     v_pay = value_hashes(KEY, "pay", pa.array([42]))
-    assert len({h.tobytes()[:32], v_site.tobytes(), v_pay.tobytes()}) == 3
+    assert v_site.tobytes() == _one_digest(("ledger", "value-hash/v2", "site"), b"42")
+    assert len({raw[:32], v_site.tobytes(), v_pay.tobytes()}) == 3
 
 
 def test_subject_hashes_refuse_missing_and_float_identifiers() -> None:
@@ -76,6 +100,39 @@ def test_subject_hashes_refuse_missing_and_float_identifiers() -> None:
         subject_hashes(KEY, pa.array(["a", None, "b"]))
     with pytest.raises(LedgerError, match="floating-point"):
         subject_hashes(KEY, pa.array([1.0, 2.0]))
+
+
+def test_index_finds_digests_also_when_two_share_a_64_bit_prefix() -> None:
+    """The registry index sorts by the first 8 bytes; digests sharing them must still be told
+    apart (the exact fallback), and absent digests give -1."""
+    h = subject_hashes(KEY, ids(0, 1000))
+    idx = _Index(h)
+    assert not idx.exact
+    np.testing.assert_array_equal(idx.find(h[::-1]), np.arange(1000)[::-1])
+    assert (idx.find(subject_hashes(KEY, ids(1000, 1100))) == -1).all()
+    raw = bytearray(h.tobytes())
+    raw[32 * 7:32 * 7 + 8] = raw[32 * 3:32 * 3 + 8]  # subject 7 now shares subject 3's prefix
+    twins = np.frombuffer(bytes(raw), dtype=DIGEST)
+    idx = _Index(twins)
+    assert idx.exact
+    np.testing.assert_array_equal(idx.find(twins), np.arange(1000))
+    fake = bytearray(raw[32 * 3:32 * 3 + 32])
+    fake[31] ^= 0xFF  # same prefix as both, another digest
+    assert idx.find(np.frombuffer(bytes(fake), dtype=DIGEST))[0] == -1
+
+
+def test_memo_updates_must_be_charged_subjects_and_the_last_repeat_wins(led: Ledger) -> None:
+    h = subject_hashes(KEY, ids(0, 10))
+    vh = value_hashes(KEY, "site", pa.array([f"v{i}" for i in range(12)]))
+    m = meta(1, site={"eps": 1.0, "memoized": True})
+    with pytest.raises(LedgerError, match="1 subject\\(s\\) are not among the release's charged subjects"):
+        led.record_release(m, h[:9], 1.0, {"site": (h, vh[:10])})
+    assert led.show()["releases"] == 0
+    rep = np.concatenate([h, h[2:4]])  # subjects 2 and 3 twice: their second values (v10, v11) stay
+    led.record_release(m, h, 1.0, {"site": (rep, vh)})
+    got = led.last_values("site", h)
+    np.testing.assert_array_equal(got[[0, 1, 4]], vh[[0, 1, 4]])
+    np.testing.assert_array_equal(got[[2, 3]], vh[[10, 11]])
 
 
 # -- opening --------------------------------------------------------------------------------
@@ -102,6 +159,14 @@ def test_open_creates_a_private_file_and_refuses_other_files(tmp_path: Path) -> 
     with pytest.raises(LedgerError, match="is not an ldptransform ledger"):
         Ledger.open(other)
     assert dump(other) == ["BEGIN TRANSACTION;", "CREATE TABLE t (x);", "COMMIT;"]  # left untouched
+    old = tmp_path / "old.sqlite3"  # a ledger of schema 1 hashed subjects otherwise: never mixed
+    Ledger.open(old).close()
+    con = sqlite3.connect(old)
+    con.execute("PRAGMA user_version = 1")
+    con.close()
+    with pytest.raises(LedgerError, match="schema version 1; this ldptransform reads version 2\\. .*hash subjects "
+                                          "differently"):
+        Ledger.open(old)
     p.chmod(0o644)
     with pytest.raises(LedgerError, match="chmod 600"):
         Ledger.open(p)
@@ -166,7 +231,9 @@ def test_memoized_state_and_no_raw_values_in_the_file(led: Ledger, key_hex: str)
     for s in ["staff-00003", "Riverside", "Head Office"]:
         assert s.encode() not in blob
     assert bytes.fromhex(key_hex) not in blob and key_hex.encode() not in blob
-    assert KEY.subkey("ledger", "subject-hash/v1") not in blob
+    for label in (("ledger", "subject-hash/v2"), ("ledger", "value-hash/v2", "site")):
+        for part in ("chain", "final", "expand"):
+            assert KEY.subkey("memoized/v1", *label, part) not in blob
 
 
 def test_show_summarizes_without_identifiers(led: Ledger) -> None:
@@ -190,10 +257,10 @@ def test_failure_inside_the_transaction_leaves_no_partial_release(led: Ledger,
     led.record_release(meta(1), h, 1.0)
     before = dump(led.path)
 
-    def boom(self, rid, memo):  # runs after the release row and its spend rows were inserted
+    def boom(self, name, data):  # runs after the release row, its spend and the registry were written
         raise RuntimeError("simulated crash mid-record")
 
-    monkeypatch.setattr(Ledger, "_write_state", boom)
+    monkeypatch.setattr(Ledger, "_put", boom)
     with pytest.raises(RuntimeError, match="simulated crash"):
         led.record_release(meta(2), subject_hashes(KEY, ids(25, 75)), 1.0)
     assert dump(led.path) == before
@@ -210,29 +277,67 @@ def test_failure_inside_the_transaction_leaves_no_partial_release(led: Ledger,
 def _three_releases(path: Path) -> None:
     with Ledger.open(path) as led:
         for n in (1, 2, 3):
-            led.record_release(meta(n), subject_hashes(KEY, ids(10 * n, 10 * n + 30)), 0.5 * n)
+            h = subject_hashes(KEY, ids(10 * n, 10 * n + 30))
+            vh = value_hashes(KEY, "site", pa.array([f"site-{n}"] * 30))
+            led.record_release(meta(n, site={"eps": 0.5 * n, "memoized": True}), h, 0.5 * n, {"site": (h, vh)})
+
+
+def _edit_spend(con: sqlite3.Connection, rid: int, change) -> None:
+    """Rewrite release ``rid``'s spend blobs after ``change(ids, eps) -> (ids, eps)``."""
+    ids, eps = _decode_spend(*con.execute("SELECT subject_ids, eps FROM release_spend WHERE release_id = ?",
+                                          (rid,)).fetchone())
+    ids, eps = change(ids.copy(), eps.copy())
+    con.execute("UPDATE release_spend SET subject_ids = ?, eps = ? WHERE release_id = ?",
+                (*_encode_spend(ids, eps), rid))
+
+
+def _edit_array(con: sqlite3.Connection, name: str, change) -> None:
+    data = bytearray(b"".join(r[0] for r in con.execute("SELECT data FROM arrays WHERE name = ? ORDER BY part",
+                                                       (name,))))
+    change(data)
+    con.execute("DELETE FROM arrays WHERE name = ?", (name,))
+    con.execute("INSERT INTO arrays VALUES (?, 0, ?)", (name, bytes(data)))
+
+
+def _set_first_eps(ids, eps):
+    eps[0] = 0.1
+    return ids, eps
+
+
+def _swap_registry(data: bytearray) -> None:
+    data[0:32], data[32:64] = data[32:64], data[0:32]
+
+
+def _zero_total(data: bytearray) -> None:
+    data[0:8] = bytes(8)
+
+
+def _change_state(data: bytearray) -> None:
+    data[0] ^= 1
 
 
 @pytest.mark.parametrize("edit, broken", [
-    ("UPDATE subject_spend SET eps = 0.1 WHERE release_id = 2 "
-     "AND subject_hash = (SELECT min(subject_hash) FROM subject_spend WHERE release_id = 2)", 2),
+    (lambda con: _edit_spend(con, 2, _set_first_eps), 2),
     ("UPDATE releases SET columns = '{\"site\":{\"eps\":0.1,\"memoized\":false}}' WHERE id = 2", 2),
     ("UPDATE releases SET time = '2020-01-01T00:00:00Z' WHERE id = 1", 1),
-    ("DELETE FROM subject_spend WHERE release_id = 3 AND subject_hash = "
-     "(SELECT min(subject_hash) FROM subject_spend WHERE release_id = 3)", 3),
+    (lambda con: _edit_spend(con, 3, lambda i, e: (i[1:], e[1:])), 3),  # one subject's charge removed
+    ("UPDATE release_spend SET eps = x'00' WHERE release_id = 2", 2),  # not zlib data
+    ("DELETE FROM release_spend WHERE release_id = 1", 1),
     ("DELETE FROM releases WHERE id = 2", 2),
     ("DELETE FROM releases WHERE id = 3", 3),  # the head still counts 3 releases
     ("INSERT INTO releases SELECT 4, time, policy_sha256, extract_sha256, nonce, columns, subjects_charged, "
-     "lifetime_epsilon, row_hash, row_hash FROM releases WHERE id = 3", 4),
-    ("UPDATE subject_total SET eps = 0 WHERE subject_hash = (SELECT min(subject_hash) FROM subject_total)", None),
+     "lifetime_epsilon, state_sha256, row_hash, row_hash FROM releases WHERE id = 3", 4),
+    (lambda con: _edit_array(con, "totals", _zero_total), None),
+    (lambda con: _edit_array(con, "subjects", _swap_registry), None),
+    (lambda con: _edit_array(con, "state:site", _change_state), None),
 ])
-def test_hand_edits_break_the_chain(tmp_path: Path, edit: str, broken: int | None) -> None:
+def test_hand_edits_break_the_chain(tmp_path: Path, edit, broken: int | None) -> None:
     p = tmp_path / "ledger.sqlite3"
     _three_releases(p)
     with Ledger.open(p) as led:
         assert led.verify().ok
     con = sqlite3.connect(p)
-    con.execute(edit)
+    con.execute(edit) if isinstance(edit, str) else edit(con)
     con.commit()
     con.close()
     with Ledger.open(p) as led:
@@ -256,7 +361,7 @@ def test_cli_ledger_verify_and_show(tmp_path: Path, ldpt, private_dir: Path) -> 
     assert res.returncode == 0 and "STEWARD ONLY" in res.stdout and "staff-" not in res.stdout
 
     con = sqlite3.connect(default)
-    con.execute("UPDATE subject_spend SET eps = eps + 1 WHERE release_id = 2")
+    con.execute("UPDATE releases SET lifetime_epsilon = 99 WHERE id = 2")
     con.commit()
     con.close()
     res = ldpt("ledger", "verify", "--ledger", default)
@@ -292,11 +397,11 @@ JOB = textwrap.dedent("""
                 sys.exit("barrier timed out")
             time.sleep(0.005)
 
-    orig = Ledger._write_state
-    def slow(self, rid, memo):  # hold the write lock a while, so the other job must wait
+    orig = Ledger._put
+    def slow(self, name, data):  # hold the write lock a while, so the other job must wait
         time.sleep(1.0)
-        orig(self, rid, memo)
-    Ledger._write_state = slow
+        orig(self, name, data)
+    Ledger._put = slow
 
     out = {"job": job}
     with Ledger.open(path) as led:

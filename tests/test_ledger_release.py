@@ -72,12 +72,8 @@ def spent(ledger: Path, ids: list[str]) -> np.ndarray:
 
 
 def release_spend(ledger: Path, rid: int) -> np.ndarray:
-    con = sqlite3.connect(ledger)
-    try:
-        return np.array(sorted(r[0] for r in con.execute("SELECT eps FROM subject_spend WHERE release_id = ?",
-                                                          (rid,))))
-    finally:
-        con.close()
+    with Ledger.open(ledger, create=False) as led:
+        return np.sort(led.release_spend(rid)[1])
 
 
 def test_unchanged_memoized_values_cost_only_the_other_columns(tmp_path: Path) -> None:
@@ -298,11 +294,9 @@ def test_strategy_sample_charges_the_row_total_and_tracks_reported_values(tmp_pa
     led = tmp_path / "ledger.sqlite3"
     r1 = run(df, pol, tmp_path, NIGHT1, "night1", led)
     out = pd.read_parquet(tmp_path / "night1.parquet")
-    con = sqlite3.connect(led)
-    try:
-        n_state = con.execute("SELECT count(*) FROM subject_state WHERE column = 'colour'").fetchone()[0]
-    finally:
-        con.close()
+    with Ledger.open(led, create=False) as ledger:
+        last = ledger.last_values("colour", subject_hashes(KEY, list(df["person"])))
+    n_state = int((last != np.zeros(1, dtype=last.dtype)).sum())
     reported = int(out["colour"].notna().sum())
     assert 0 < reported < 200 and n_state == reported
     r2 = run(df, pol, tmp_path, NIGHT2, "night2", led)
