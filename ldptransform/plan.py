@@ -67,6 +67,19 @@ def mean_row_variance(m: mech.Mechanism) -> float:
     return float(max(m.variance(m.lo), m.variance(m.hi))) + half * half
 
 
+def memo_rounding_variance(rc: ResolvedColumn) -> float:
+    """Per-row variance the memo grid adds to a memoized numeric column (0 otherwise): alpha-point
+    rounding to steps of (hi - lo) / memo_grid adds frac(t)(1 - frac(t)) step^2 <= step^2 / 4
+    (Ding, Kulkarni, Yekhanin 2017).  Added to the mechanism's worst case as it is, which
+    over-states the sum a little (values at the bounds, the mechanisms' worst case, are on the
+    grid and not rounded)."""
+    if not rc.memoize or not rc.memo_grid:
+        return 0.0
+    lo, hi = rc.config.domain
+    step = (hi - lo) / rc.memo_grid
+    return step * step / 4.0
+
+
 def mean_row_variance_bound(epsilon: float, lo: float, hi: float) -> float:
     """Worst case over data of any unbiased eps-LDP mean estimate, as estimate reports it:
     (hi - lo)^2 [e^eps/(e^eps - 1)^2 + 1/4] (bounds.mean_lower_bound plus the spread of data
@@ -83,7 +96,7 @@ def simulated_median_se(m: mech.Mechanism, rc: ResolvedColumn, rows: float) -> f
     """SE of the median estimate at ``rows`` rows, by simulation (see module docstring)."""
     from .distribution import binned_distribution
     from .estimate import CategoricalStats, DistributionStats
-    from .keys import KeyedStream, SecretKey
+    from .keys import KeyedStream, SecretKey, to_unit
 
     if rows < 2:
         return None
@@ -97,6 +110,11 @@ def simulated_median_se(m: mech.Mechanism, rc: ResolvedColumn, rows: float) -> f
     x = lo + beta.ppf((np.arange(n) + 0.5) / n, 2, 5) * (hi - lo)
     true_median = float(np.median(x))
     key = SecretKey(_PLAN_KEY)
+    if rc.memoize and rc.memo_grid and rc.type == "numeric":  # the memo grid's rounding, as release applies it
+        g = rc.memo_grid
+        u = to_unit(KeyedStream(key, "0" * 32, "plan-memo", rc.name).words(0, n, 1)[:, 0])
+        j = np.clip(np.floor((x - lo) * (g / (hi - lo)) + u), 0, g)
+        x = np.minimum(lo + j * ((hi - lo) / g), hi)
     meds = []
     for r in range(SIM_RELEASES):
         words = KeyedStream(key, f"{r:032x}", "plan", rc.name).words(0, n, m.words_per_row)
@@ -175,7 +193,7 @@ def column_statistics(rc: ResolvedColumn, rows: int, rate: float, default: Quali
                                 "a mean mechanism (or leave needs at [mean]) for a predicted and reported SE"})
         elif need == "mean":
             width = m.hi - m.lo
-            v = mean_row_variance(m)
+            v = mean_row_variance(m) + memo_rounding_variance(rc)
             vb = mean_row_variance_bound(m.epsilon, m.lo, m.hi)
             target = q.max_se if q is not None else None
             rel = (q.max_relative_se if q is not None and q.max_relative_se is not None
@@ -185,7 +203,9 @@ def column_statistics(rc: ResolvedColumn, rows: int, rate: float, default: Quali
             stat = _stat("mean", se, target, bse, v, vb, rows, rate,
                          relative_se=se / width if se is not None else None,
                          efficiency=vb / v,
-                         se_meaning="SE of the mean in column units, worst case over data")
+                         se_meaning="SE of the mean in column units, worst case over data"
+                                    + (" (memoized: includes the memo grid's rounding, <= step^2/4 per row)"
+                                       if memo_rounding_variance(rc) else ""))
             if rel is not None and se is not None:
                 stat["target_relative_se"] = rel
                 ok_rel = se / width <= rel * (1 + 1e-12)
@@ -374,6 +394,6 @@ def suggest(policy: LoadedPolicy, rows: int) -> dict[str, Any]:
     return out
 
 
-__all__ = ["plan", "suggest", "min_epsilon", "frequency_row_variance", "mean_row_variance",
+__all__ = ["plan", "suggest", "min_epsilon", "frequency_row_variance", "mean_row_variance", "memo_rounding_variance",
            "frequency_row_variance_bound", "mean_row_variance_bound", "simulated_median_se", "sample_size",
            "CategoricalColumn", "NumericColumn"]
