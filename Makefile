@@ -4,7 +4,7 @@ VENV   := .venv
 PY     := $(VENV)/bin/python
 STAMP  := $(VENV)/.installed
 
-.PHONY: demo test test-fast bench bench-efficiency install clean
+.PHONY: demo test test-fast bench bench-efficiency bench-ledger install clean
 
 $(STAMP): pyproject.toml
 	@test -x $(PY) || $(PYTHON) -m venv $(VENV)
@@ -28,6 +28,9 @@ bench: $(STAMP)
 
 bench-efficiency: $(STAMP)
 	$(PY) benchmarks/bench_efficiency.py
+
+bench-ledger: $(STAMP)
+	$(PY) benchmarks/bench_ledger.py
 
 clean:
 	rm -rf $(VENV) demo_out .pytest_cache build dist *.egg-info

@@ -396,7 +396,8 @@ def policy_check(policy: Path = typer.Argument(..., help="Policy file to check."
     with _user_errors():
         lp = load_policy(policy)
     t = Table(title=escape(f"{policy}: valid"), title_justify="left")
-    for h in ("column", "type", "mechanism", "eps", "domain"):
+    any_memo = any(rc.memoize for rc in lp.columns)
+    for h in ("column", "type", "mechanism", "eps", "domain") + (("memoized",) if any_memo else ()):
         t.add_column(h)
     for rc in lp.columns:
         m = rc.mechanism
@@ -408,8 +409,17 @@ def policy_check(policy: Path = typer.Argument(..., help="Policy file to check."
         else:
             dom = "released in the clear (NOT protected)" if rc.type == "public" else "not released"
         mname = (m.name + (" (auto)" if rc.chosen_because else "")) if m else "-"
-        t.add_row(escape(rc.name), rc.type, mname, f"{m.epsilon:g}" if m else "-", escape(dom))
+        memo = ("-" if not rc.memoize else f"yes (grid {rc.memo_grid})" if rc.memo_grid else "yes")
+        t.add_row(escape(rc.name), rc.type, mname, f"{m.epsilon:g}" if m else "-", escape(dom),
+                  *((memo,) if any_memo else ()))
     out_console.print(t)
+    pol = lp.policy
+    if pol.subject_key is not None:
+        out_console.print(f"subject_key: {pol.subject_key} (identifies a person for memoized columns and the "
+                          "ledger; never released)", markup=False)
+    if pol.budget.lifetime_epsilon is not None:
+        out_console.print(f"budget.lifetime_epsilon: {pol.budget.lifetime_epsilon:g} per person over all releases "
+                          "recorded in the ledger", markup=False)
     if getattr(lp, "strategy", "split") == "sample":
         pol = lp.policy
         out_console.print(f"budget.strategy sample: each row reports {pol.reported_columns} of its "

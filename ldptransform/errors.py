@@ -43,3 +43,7 @@ class ManifestError(LdptError):
 
 class UsageError(LdptError):
     """Options that contradict each other or do not fit the files given."""
+
+
+class OutputError(LdptError):
+    """An output file could not be written or moved into place."""

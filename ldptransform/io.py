@@ -271,8 +271,11 @@ class StagedFiles:
         if self.stop_signal is not None:
             raise KeyboardInterrupt(f"stopped by signal {self.stop_signal}")
 
-    def commit(self) -> None:
-        self.check()
+    def commit(self, *, check: bool = True) -> None:
+        """Rename every staged file into place.  ``check=False``: do not stop for a signal that
+        arrived meanwhile (after a ledger commit the release must be completed)."""
+        if check:
+            self.check()
         for tmp, dest in self._items:
             os.replace(tmp, dest)
         self._committed = True

@@ -30,7 +30,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from . import __version__
-from .errors import DataError, PolicyError, UsageError
+from .errors import DataError, OutputError, PolicyError, UsageError
 from .io import BatchWriter, StagedFiles, TableSource, check_destination, file_format, sha256_file, write_text_atomic
 from .keys import MEMO_PRF_VERSION, PRF_VERSION, KeyedStream, SecretKey, SubjectPRF, check_nonce, new_nonce, to_unit
 from .manifest import CAUTIONS, ColumnEntry, ExtractInfo, Manifest, OutputColumn, Privacy, default_manifest_path, now_utc
@@ -496,8 +496,22 @@ def _meaning(mech: str, out_name: str, col: str) -> str:
     return "randomized value; on average equal to the true value (per-row unbiased estimate, column units)"
 
 
+def memo_composition_text(policy: LoadedPolicy) -> str:
+    """What memoization means for composition, for the manifest ('' without memoized columns)."""
+    memo = [rc for rc in policy.columns if rc.memoize]
+    if not memo:
+        return ""
+    names = ", ".join(f"{rc.name} (rounded to a grid of {rc.memo_grid} steps with a per-person offset first)"
+                      if rc.memo_grid else rc.name for rc in memo)
+    return (f"; memoized columns: {names}. Their randomness is keyed by the person and the value, not by the "
+            "release, so a person whose value has not changed gets the very same report in every release under "
+            "this key and repeating it adds no eps; a changed value gets a fresh report and costs its eps again, "
+            "and a report that changes shows that the value changed (not to what)")
+
+
 def _privacy(policy: LoadedPolicy, plans: list[ColumnPlan]) -> Privacy:
     d, m = len(policy.policy.privatized_columns), policy.policy.reported_columns
+    memo_text = memo_composition_text(policy)
     common = dict(model="local differential privacy: every row is randomized on its own, column by column",
                   epsilon_per_row_budget=policy.policy.budget.epsilon_per_row,
                   public_columns=[p.rc.name for p in plans if p.rc.type == "public"],
@@ -508,11 +522,11 @@ def _privacy(policy: LoadedPolicy, plans: list[ColumnPlan]) -> Privacy:
                                    f"privatized columns, each randomized at eps {policy.policy.sampled_epsilon:g} "
                                    f"(epsilon_per_row / {m}), so a row's epsilon is {m} x that; which columns a row "
                                    "reports is chosen by the keyed PRF independently of the data (the other cells "
-                                   "are empty); releases about the same people add up")
+                                   "are empty); releases about the same people add up" + memo_text)
     used = sum(p.rc.mechanism.epsilon for p in plans if p.rc.mechanism is not None)
     return Privacy(**common, epsilon_per_row_used=used,
                    composition="sequential: a row's epsilon is the sum over its privatized columns; releases about "
-                               "the same people add up")
+                               "the same people add up" + memo_text)
 
 
 # -- the privacy ledger: per-subject charges of this release -------------------------------
@@ -791,9 +805,20 @@ def privatize(input_path: Path | str, policy: LoadedPolicy, key: SecretKey, out:
         if charges is not None:
             staged.check()  # a stop asked for before the ledger commit leaves nothing at all
             release_id = _record(ledger_path, charges, plans, policy, manifest, cap)
-        if overwrite and manifest_path.exists():
-            manifest_path.unlink()  # never leave an old manifest beside a new extract
-        staged.commit()
+        try:
+            if overwrite and manifest_path.exists():
+                manifest_path.unlink()  # never leave an old manifest beside a new extract
+            # once the ledger counts the release, a stop signal no longer cancels it
+            staged.commit(check=release_id is None)
+        except OSError as err:
+            if release_id is None:
+                raise
+            raise OutputError(
+                f"the release was recorded in ledger {ledger_path} as release {release_id}, but its files could not "
+                f"be moved into place ({err.strerror or err}: {err.filename or out}); nothing was published. The "
+                "ledger counts this release for every subject in it (an over-count, the safe side: nobody's spend "
+                "is understated). Fix the output folder and run the release again; tell your privacy officer if "
+                "the extra count matters.") from None
     return ReleaseResult(manifest, out, manifest_path, diagnostics_path, time.perf_counter() - t0,
                          ledger_path if charges is not None else None, release_id, held_subjects, held_rows)
 

@@ -368,3 +368,83 @@ def test_two_privatize_jobs_against_one_ledger(tmp_path: Path, private_dir: Path
     with Ledger.open(led, create=False) as lg:
         v = lg.verify()
         assert v.ok and v.releases == 1
+
+
+# -- crashes ---------------------------------------------------------------------------------
+
+def test_a_release_killed_mid_way_leaves_the_ledger_without_it(tmp_path: Path) -> None:
+    """SIGKILL (no clean-up possible) after the first batch: nothing published, the ledger
+    (made earlier by night 1) still holds only night 1 and verifies; the next run succeeds
+    and is release 2."""
+    import subprocess
+    import sys
+    import textwrap
+
+    led = tmp_path / "ledger.sqlite3"
+    df = people()
+    run(df, policy(), tmp_path, NIGHT1, "night1", led)
+    raw = tmp_path / "night2.csv"
+    df.to_csv(raw, index=False)
+    script = tmp_path / "job.py"
+    script.write_text(textwrap.dedent(f"""
+        import os, signal
+        from pathlib import Path
+        from ldptransform.keys import SecretKey
+        from ldptransform.policy import parse_policy
+        from ldptransform.release import privatize
+        pol = parse_policy({policy()!r}, "p.yaml")
+        def die(n):
+            os.kill(os.getpid(), signal.SIGKILL)
+        privatize(Path({str(raw)!r}), pol, SecretKey(bytes(range(100, 132))), Path({str(tmp_path / 'n2.parquet')!r}),
+                  nonce={NIGHT2!r}, ledger_path=Path({str(led)!r}), batch_rows=50, on_progress=die)
+    """))
+    p = subprocess.run([sys.executable, str(script)], capture_output=True, text=True, timeout=120)
+    assert p.returncode == -9, p.stderr
+    assert not (tmp_path / "n2.parquet").exists() and not (tmp_path / "n2.manifest.json").exists()
+    with Ledger.open(led, create=False) as lg:
+        v = lg.verify()
+        assert v.ok and v.releases == 1
+    r = run(df, policy(), tmp_path, NIGHT2, "n2", led)
+    assert r.ledger_release_id == 2 and (tmp_path / "n2.parquet").exists()
+
+
+def test_a_stop_signal_after_the_ledger_commit_still_publishes(tmp_path: Path,
+                                                               monkeypatch: pytest.MonkeyPatch) -> None:
+    """SIGTERM arriving just after the release was recorded must not cancel the publication
+    (the ledger would count a release nobody received)."""
+    import os
+    import signal
+
+    import ldptransform.release as rel
+
+    orig = rel._record
+
+    def record_then_term(*a, **k):
+        rid = orig(*a, **k)
+        os.kill(os.getpid(), signal.SIGTERM)  # the handler of StagedFiles only sets a flag
+        return rid
+
+    monkeypatch.setattr(rel, "_record", record_then_term)
+    led = tmp_path / "ledger.sqlite3"
+    r = run(people(), policy(), tmp_path, NIGHT1, "night1", led)
+    assert r.ledger_release_id == 1 and (tmp_path / "night1.parquet").exists()
+    assert json.loads((tmp_path / "night1.manifest.json").read_text())["nonce"] == NIGHT1
+
+
+def test_a_failed_move_after_the_ledger_commit_says_the_release_is_counted(tmp_path: Path,
+                                                                          monkeypatch: pytest.MonkeyPatch) -> None:
+    """If the files cannot be moved into place after the ledger recorded the release, the
+    error says so (an over-count, the safe side) and nothing is published."""
+    from ldptransform.errors import OutputError
+    from ldptransform.io import StagedFiles
+
+    def fail(self, *, check=True):
+        raise PermissionError(13, "Permission denied", str(tmp_path / "night1.parquet"))
+
+    monkeypatch.setattr(StagedFiles, "commit", fail)
+    led = tmp_path / "ledger.sqlite3"
+    with pytest.raises(OutputError, match="recorded in ledger .* as release 1.*nothing was published.*over-count"):
+        run(people(), policy(), tmp_path, NIGHT1, "night1", led)
+    assert not (tmp_path / "night1.parquet").exists() and partials(tmp_path) == []
+    with Ledger.open(led, create=False) as lg:
+        assert lg.verify().ok and lg.show()["releases"] == 1

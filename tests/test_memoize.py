@@ -274,6 +274,22 @@ def test_manifest_records_memoization_and_never_the_subject(nights: dict[str, An
     assert cols["hours"].get("note") is None
     assert m["policy"]["subject_key"] == "person" and m["policy"]["columns"]["score"]["memoize"] is True
     assert "person-000" not in text  # no identifier leaks into the manifest
+    comp = m["privacy"]["composition"]
+    assert "memoized columns: colour, score (rounded to a grid of 32 steps" in comp
+    assert "same report in every release" in comp and "shows that the value changed" in comp
+
+
+def test_policy_check_shows_memoization_and_the_subject(tmp_path: Path, ldpt) -> None:
+    pol = policy()
+    pol["budget"]["lifetime_epsilon"] = 12.5
+    path = tmp_path / "memo.json"
+    path.write_text(json.dumps(pol))
+    res = ldpt("policy", "check", path)
+    assert res.returncode == 0, res.stderr
+    rows = {line.split("│")[1].strip(): line for line in res.stdout.splitlines() if line.count("│") > 3}
+    assert "yes (grid 32)" in rows["score"] and "yes" in rows["colour"]
+    assert "yes" not in rows["hours"]
+    assert "subject_key: person" in res.stdout and "lifetime_epsilon: 12.5" in res.stdout
 
 
 # -- bad policies ------------------------------------------------------------------------------
