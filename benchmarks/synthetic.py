@@ -91,14 +91,35 @@ columns:
 """
 
 
-def policy_text() -> str:
-    return POLICY_YAML.format(regions=", ".join(REGIONS), products=", ".join(PRODUCTS),
+# The same table under only grr, oue and piecewise columns (and the public one): the policy the
+# distributed-engine issue sets its throughput target for.
+CORE_POLICY_YAML = """\
+# Synthetic benchmark policy of grr, oue and piecewise columns (invented data; arbitrary epsilons).
+budget:
+  epsilon_per_row: 7.0
+unlisted: error
+columns:
+  region:   {{type: categorical, categories: [{regions}], epsilon: 1.0, mechanism: grr}}
+  product:  {{type: categorical, categories: [{products}], epsilon: 1.0, mechanism: oue}}
+  channel:  {{type: categorical, categories: [{channels}], epsilon: 1.0, mechanism: oue, missing: as-category}}
+  amount:   {{type: numeric, bounds: [0, 1000], epsilon: 1.0, mechanism: piecewise}}
+  score:    {{type: numeric, bounds: [0, 100], epsilon: 1.0, mechanism: piecewise, missing: {{fill: 50}}}}
+  duration: {{type: numeric, bounds: [0, 60], epsilon: 1.0, mechanism: piecewise}}
+  age:      {{type: numeric, bounds: [18, 90], epsilon: 1.0, mechanism: piecewise}}
+  wave: {{type: public}}
+"""
+
+
+def policy_text(kind: str = "mixed") -> str:
+    return (CORE_POLICY_YAML if kind == "core" else POLICY_YAML).format(regions=", ".join(REGIONS), products=", ".join(PRODUCTS),
                               channels=", ".join(CHANNELS), age_bins=", ".join(map(str, AGE_BINS)))
 
 
-def write_policy(path: Path | str) -> Path:
+def write_policy(path: Path | str, kind: str = "mixed") -> Path:
+    """The benchmark policy: "mixed" (one column per kind of work, the table above) or "core"
+    (grr, oue and piecewise columns only)."""
     path = Path(path)
-    path.write_text(policy_text(), encoding="utf-8")
+    path.write_text(policy_text(kind), encoding="utf-8")
     return path
 
 

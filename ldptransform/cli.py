@@ -98,12 +98,19 @@ def key_new(path: Path = typer.Argument(..., help="Where to write the key file (
 
 # -- privatize ------------------------------------------------------------------------------
 
+class Engine(str, Enum):
+    local = "local"
+    dask = "dask"
+
+
 @app.command()
 def privatize(
-    input: Path = typer.Argument(..., help="Raw table, .csv or .parquet."),
+    input: str = typer.Argument(..., help="Raw table: a .csv or .parquet file, or a Parquet dataset (a folder, "
+                                "or an object-store URI such as s3://bucket/prefix)."),
     policy: Path = typer.Option(..., "--policy", help="Policy file (YAML or JSON)."),
     key: Path = typer.Option(..., "--key", help="Secret key file made by `ldpt key new`."),
-    out: Path = typer.Option(..., "--out", help="Extract to write, .csv or .parquet."),
+    out: Path = typer.Option(..., "--out", help="Extract to write: a .csv or .parquet file, or a folder path "
+                             "(no extension) for a Parquet dataset of parts."),
     manifest: Optional[Path] = typer.Option(None, "--manifest", help="Manifest path [default: OUT with .manifest.json]."),
     diagnostics: Optional[Path] = typer.Option(
         None, "--diagnostics", help="Steward-only diagnostics file [default: in the private folder, "
@@ -120,6 +127,14 @@ def privatize(
     allow_partial: bool = typer.Option(
         False, "--allow-partial", help="With budget.lifetime_epsilon: release only the subjects still within "
         "it (the others' rows are left out) instead of refusing the whole release."),
+    engine: Engine = typer.Option(Engine.local, "--engine", help="local: this process; dask: parts written "
+                                  "in parallel by dask workers (needs OUT to be a folder; pip install "
+                                  "'ldptransform[dask]'). Both write the same bytes."),
+    scheduler: Optional[str] = typer.Option(None, "--scheduler", help="With --engine dask: address of a running "
+                                            "dask scheduler (tls://HOST:PORT, or tcp:// on this machine) "
+                                            "[default: a local cluster, one worker per core]."),
+    part_rows: int = typer.Option(1 << 20, "--part-rows", min=1, help="Dataset output: the most rows per "
+                                  "part (Parquet input: whole row groups; never changes the rows' values)."),
 ) -> None:
     """Randomize INPUT column by column under POLICY into OUT, plus a public manifest.
 
@@ -129,6 +144,7 @@ def privatize(
     from .policy import load_policy
     from .release import privatize as run
 
+    source: str | Path = input if "://" in input else Path(input)
     with _user_errors():
         lp = load_policy(policy)
         k = load_key(key)
@@ -138,19 +154,21 @@ def privatize(
 
             from .io import TableSource
 
-            total = TableSource(input, csv_null_values=lp.policy.input.csv_null_values,
+            total = TableSource(source, csv_null_values=lp.policy.input.csv_null_values,
                                 csv_delimiter=lp.policy.input.csv_delimiter).num_rows
             with Progress(TextColumn("privatizing"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
                           console=err_console, transient=True) as prog:
                 task = prog.add_task("rows", total=total)
-                res = run(input, lp, k, out, manifest_path=manifest, diagnostics_path=diagnostics,
+                res = run(source, lp, k, out, manifest_path=manifest, diagnostics_path=diagnostics,
                           batch_rows=batch_rows, overwrite=overwrite, nonce=nonce,
                           on_progress=lambda n: prog.advance(task, n), ledger_path=ledger,
-                          allow_partial=allow_partial)
+                          allow_partial=allow_partial, engine=engine.value, scheduler=scheduler,
+                          fragment_rows=part_rows)
         else:
-            res = run(input, lp, k, out, manifest_path=manifest, diagnostics_path=diagnostics,
+            res = run(source, lp, k, out, manifest_path=manifest, diagnostics_path=diagnostics,
                       batch_rows=batch_rows, overwrite=overwrite, nonce=nonce, ledger_path=ledger,
-                      allow_partial=allow_partial)
+                      allow_partial=allow_partial, engine=engine.value, scheduler=scheduler,
+                      fragment_rows=part_rows)
     public = res.manifest.privacy.public_columns
     caution = (f"; CAUTION: {len(public)} column(s) released in the clear, not protected: {', '.join(public)}"
                if public else "")
@@ -285,7 +303,8 @@ def _estimate_csv(result: dict) -> str:
 
 @app.command()
 def estimate(
-    extracts: list[Path] = typer.Argument(..., help="Extract(s) (.csv or .parquet) written by `ldpt privatize`; "
+    extracts: list[Path] = typer.Argument(..., help="Extract(s) (.csv or .parquet, or a dataset folder) written "
+                                          "by `ldpt privatize`; "
                                           "several extracts with identical mechanism specs are merged."),
     manifest: Optional[list[Path]] = typer.Option(None, "--manifest", help="Manifest(s), one per extract "
                                                   "[default: beside each extract]."),
@@ -302,6 +321,11 @@ def estimate(
     consistency: str = typer.Option("norm-sub", "--consistency", help="Post-processing shown as 'share': "
                                     "norm-sub, norm-mul or norm."),
     out: Optional[Path] = typer.Option(None, "--out", help="Write the result to this file instead of stdout."),
+    engine: Engine = typer.Option(Engine.local, "--engine", help="local: this process; dask: the parts of a "
+                                  "Parquet dataset extract are decoded by dask workers and their sufficient "
+                                  "statistics merged (same estimates)."),
+    scheduler: Optional[str] = typer.Option(None, "--scheduler", help="With --engine dask: address of a running "
+                                            "dask scheduler [default: a local cluster]."),
 ) -> None:
     """Unbiased frequencies, means, cross-tabs, grouped means and quantiles with SEs and intervals.
 
@@ -317,7 +341,8 @@ def estimate(
                      crosstabs=[parse_pair(x, "--crosstab") for x in crosstab or []],
                      mean_by=[parse_pair(x, "--mean-by") for x in mean_by or []],
                      quantiles=parse_quantiles(quantiles) if quantiles else None,
-                     ranges=[parse_range(x) for x in range_ or []], consistency=consistency)
+                     ranges=[parse_range(x) for x in range_ or []], consistency=consistency,
+                     engine=engine.value, scheduler=scheduler)
         if format == TableJsonCsv.json:
             text = json.dumps(result, indent=2) + "\n"
         elif format == TableJsonCsv.csv:

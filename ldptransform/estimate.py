@@ -508,39 +508,88 @@ class Accumulated:
     extracts: list[str]
 
 
-def _accumulate_one(extract: Path, manifest_path: Path | None, an: Analyses, batch_rows: int,
-                    check_alphabet: bool) -> Accumulated:
-    manifest, src, mpath = open_extract(extract, manifest_path)
-    _check_analyses(manifest, an)
+def _empty_stats(manifest: Manifest, an: Analyses) -> Accumulated:
     entries = {c.name: c for c in manifest.columns if c.mechanism is not None}
     cols = {name: stats_for(e) for name, e in entries.items()}
     xt = {(a, b): CrossStats(cols[a].mechanism, cols[b].mechanism) for a, b in an.crosstabs}
     mb = {(y, g): GroupMeanStats(cols[g].mechanism, cols[y].shift) for y, g in an.mean_by}
-    rows = 0
-    for batch, arrays in iter_column_arrays(manifest, src, batch_rows):
+    return Accumulated(manifest, 0, cols, xt, mb, [])
+
+
+def _add_batches(acc: Accumulated, batches: Iterator[tuple[pa.RecordBatch, dict[str, list]]], check_alphabet: bool,
+                 where: str, row0: int = 0) -> None:
+    """Add decoded batches to ``acc`` (``where`` names the extract and manifest in errors)."""
+    entries = {c.name: c for c in acc.manifest.columns if c.mechanism is not None}
+    for batch, arrays in batches:
         masks = {name: reported_mask(a) for name, a in arrays.items()}
         for name, a in arrays.items():
-            st = cols[name]
+            st = acc.columns[name]
             mine = _take(a, masks[name])
             if check_alphabet:
                 bad = st.mechanism.count_invalid(mine)
                 if bad:
-                    raise DataError(f"extract {extract}: column {name!r} has {bad} value(s) outside the output "
-                                    f"alphabet of its mechanism ({entries[name].mechanism['mechanism']}) near data "
-                                    f"row {rows + 1}. The extract was altered or does not belong to manifest {mpath}; "
-                                    "run `ldpt validate` for details.")
+                    raise DataError(f"{where}: column {name!r} has {bad} value(s) outside the output alphabet of "
+                                    f"its mechanism ({entries[name].mechanism['mechanism']}) near data row "
+                                    f"{row0 + acc.rows + 1}. The extract was altered or does not belong to its "
+                                    "manifest; run `ldpt validate` for details.")
             st.add(mine)
-        for (a, b), st in xt.items():
+        for (a, b), st in acc.crosstabs.items():
             both = _both(masks[a], masks[b], batch.num_rows)
             st.add(_take(arrays[a], both), _take(arrays[b], both))
-        for (y, g), st in mb.items():
+        for (y, g), st in acc.mean_by.items():
             both = _both(masks[y], masks[g], batch.num_rows)
             st.add(_take(arrays[y], both), _take(arrays[g], both))
-        rows += batch.num_rows
-    if rows != manifest.rows:
-        raise ManifestError(f"extract {extract} has {rows} rows but manifest {mpath} says {manifest.rows}. The files "
-                            "do not belong together, or the extract is incomplete; run `ldpt validate`.")
-    return Accumulated(manifest, rows, cols, xt, mb, [str(extract)])
+        acc.rows += batch.num_rows
+
+
+def _merge_into(total: Accumulated, acc: Accumulated) -> None:
+    for name, st in acc.columns.items():
+        total.columns[name].merge(st)
+    for k, st in acc.crosstabs.items():
+        total.crosstabs[k].merge(st)
+    for k, st in acc.mean_by.items():
+        total.mean_by[k].merge(st)
+    total.rows += acc.rows
+
+
+def accumulate_fragment(manifest: Manifest, an: Analyses, fs: Any, frag: Any, batch_rows: int,
+                        check_alphabet: bool, where: str) -> Accumulated:
+    """The sufficient statistics of one part of a dataset extract (what a dask worker runs)."""
+    from .dataset import read_fragment
+    from .io import _rebatch
+
+    entries = [c for c in manifest.columns if c.mechanism is not None]
+    names = [o.name for c in entries for o in c.outputs]
+    acc = _empty_stats(manifest, an)
+    batches = ((b, {c.name: [_chunk(b.column(o.name)) for o in c.outputs] for c in entries})
+               for b in _rebatch(read_fragment(fs, frag, names, batch_rows), batch_rows))
+    _add_batches(acc, batches, check_alphabet, where, frag.row0)
+    return acc
+
+
+def _accumulate_one(extract: Path, manifest_path: Path | None, an: Analyses, batch_rows: int,
+                    check_alphabet: bool, engine: str = "local", scheduler: str | None = None) -> Accumulated:
+    manifest, src, mpath = open_extract(extract, manifest_path)
+    _check_analyses(manifest, an)
+    acc = _empty_stats(manifest, an)
+    where = f"extract {extract} (manifest {mpath})"
+    if engine == "dask":
+        if src.dataset is None:
+            raise UsageError(f"--engine dask reads a Parquet dataset extract (a folder of parts); {extract} is one "
+                             "file: use --engine local.")
+        from .engine_dask import map_fragments
+
+        parts = map_fragments(accumulate_fragment, manifest, an, src.dataset, batch_rows, check_alphabet, where,
+                              scheduler)
+        for part in parts:
+            _merge_into(acc, part)
+    else:
+        _add_batches(acc, iter_column_arrays(manifest, src, batch_rows), check_alphabet, where)
+    acc.extracts = [str(extract)]
+    if acc.rows != manifest.rows:
+        raise ManifestError(f"extract {extract} has {acc.rows} rows but manifest {mpath} says {manifest.rows}. The "
+                            "files do not belong together, or the extract is incomplete; run `ldpt validate`.")
+    return acc
 
 
 def _both(a: np.ndarray | None, b: np.ndarray | None, n: int) -> np.ndarray | None:
@@ -551,7 +600,8 @@ def _both(a: np.ndarray | None, b: np.ndarray | None, n: int) -> np.ndarray | No
 
 def accumulate_many(extracts: list[Path], manifests: list[Path | None] | None = None, *,
                     analyses: Analyses | None = None, batch_rows: int = DECODE_BATCH_ROWS,
-                    check_alphabet: bool = True) -> Accumulated:
+                    check_alphabet: bool = True, engine: str = "local",
+                    scheduler: str | None = None) -> Accumulated:
     """Accumulate one or more extracts; extracts must share their mechanism specs."""
     an = analyses or Analyses()
     if not extracts:
@@ -561,7 +611,7 @@ def accumulate_many(extracts: list[Path], manifests: list[Path | None] | None = 
         raise UsageError("give one --manifest per extract (or none, to use the default beside each extract)")
     total: Accumulated | None = None
     for ex, mp in zip(extracts, manifests):
-        acc = _accumulate_one(Path(ex), Path(mp) if mp else None, an, batch_rows, check_alphabet)
+        acc = _accumulate_one(Path(ex), Path(mp) if mp else None, an, batch_rows, check_alphabet, engine, scheduler)
         if total is None:
             total = acc
             seen_nonces, seen_hashes = {acc.manifest.nonce}, {acc.manifest.extract.sha256}
@@ -575,13 +625,7 @@ def accumulate_many(extracts: list[Path], manifests: list[Path | None] | None = 
             raise UsageError(f"cannot merge {ex} with {total.extracts[0]}: their manifests describe different columns "
                              "or mechanism specs (names, eps, categories, bounds, output columns must all be equal; "
                              "only the nonce, time and hashes may differ). Estimate them separately.")
-        for name, st in acc.columns.items():
-            total.columns[name].merge(st)
-        for k, st in acc.crosstabs.items():
-            total.crosstabs[k].merge(st)
-        for k, st in acc.mean_by.items():
-            total.mean_by[k].merge(st)
-        total.rows += acc.rows
+        _merge_into(total, acc)
         total.extracts.append(str(ex))
     assert total is not None
     return total
@@ -685,7 +729,7 @@ def estimate(extract: Path | str | list[Path | str], manifest_path: Path | str |
              confidence: float = 0.95, batch_rows: int = DECODE_BATCH_ROWS,
              crosstabs: list[tuple[str, str]] | None = None, mean_by: list[tuple[str, str]] | None = None,
              quantiles: list[float] | None = None, ranges: list[tuple[str, float, float]] | None = None,
-             consistency: str = "norm-sub") -> dict[str, Any]:
+             consistency: str = "norm-sub", engine: str = "local", scheduler: str | None = None) -> dict[str, Any]:
     """Unbiased frequencies and means (and the requested joint analyses, quantiles and
     ranges) with SE and CI.  ``extract`` may be a list: extracts with identical mechanism
     specs are merged by adding their sufficient statistics."""
@@ -701,5 +745,8 @@ def estimate(extract: Path | str | list[Path | str], manifest_path: Path | str |
     an = Analyses(crosstabs=list(crosstabs or []), mean_by=list(mean_by or []),
                   quantiles=list(quantiles) if quantiles else [0.5], ranges=list(ranges or []),
                   consistency=consistency)
-    acc = accumulate_many([Path(e) for e in extracts], manifests, analyses=an, batch_rows=batch_rows)
+    if engine not in ("local", "dask"):
+        raise UsageError(f"--engine {engine!r} is not known; use local or dask.")
+    acc = accumulate_many([Path(e) for e in extracts], manifests, analyses=an, batch_rows=batch_rows,
+                          engine=engine, scheduler=scheduler)
     return report(acc.manifest, acc.columns, acc.rows, confidence, an, acc)

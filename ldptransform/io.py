@@ -16,6 +16,7 @@ import hashlib
 import os
 import re
 import secrets
+import shutil
 import signal
 from collections.abc import Iterator
 from concurrent.futures import Future, ThreadPoolExecutor
@@ -45,23 +46,35 @@ def file_format(path: Path, role: str) -> str:
 # -- reading ------------------------------------------------------------------------------
 
 class TableSource:
-    """A CSV or Parquet file read as a stream of record batches."""
+    """A CSV or Parquet file, or a Parquet dataset (a folder or object-store URI of Parquet
+    files, see dataset.py), read as a stream of record batches."""
 
     def __init__(self, path: Path | str, *, csv_null_values: list[str] | None = None,
                  csv_delimiter: str = ",", string_columns: bool = True) -> None:
-        self.path = Path(path)
-        self.format = file_format(self.path, "input")
+        from .dataset import ParquetDataset, is_uri
+
+        self.location = str(path)
+        self.path = Path(path) if not is_uri(path) else Path(str(path).split("://", 1)[1])
         self._nulls = csv_null_values if csv_null_values is not None else [""]
         self._delim = csv_delimiter
+        self.dataset: ParquetDataset | None = None
+        self.num_rows: int | None = None
+        if is_uri(path) or self.path.is_dir():
+            self.format = "parquet"
+            self.dataset = ParquetDataset(path)
+            self.schema = self.dataset.schema
+            self.num_rows = self.dataset.num_rows
+            self.size_bytes = self.dataset.size_bytes
+            self._check_names()
+            return
+        self.format = file_format(self.path, "input")
         if not self.path.exists():
             raise InputFileError(f"input file {self.path} does not exist. Check the path.")
         if not self.path.is_file():
-            raise InputFileError(f"input {self.path} is not a file. (A folder of Parquet parts is not yet read by "
-                                 "this command; give one file.)")
+            raise InputFileError(f"input {self.path} is not a file or a folder of Parquet files. Check the path.")
         if not os.access(self.path, os.R_OK):
             raise InputFileError(f"input file {self.path} is not readable by this user. Check its permissions.")
         self.size_bytes = self.path.stat().st_size
-        self.num_rows: int | None = None
         try:
             if self.format == "parquet":
                 self._pf = pq.ParquetFile(self.path)
@@ -74,11 +87,25 @@ class TableSource:
             raise InputFileError(f"input file {self.path} cannot be read as {self.format.upper()}: "
                                  f"{_clean_arrow_message(err)}. Check that the file is complete and really "
                                  f"is {self.format.upper()}.") from None
+        self._check_names()
+
+    def _check_names(self) -> None:
         names = self.schema.names
         dups = sorted({n for n in names if names.count(n) > 1})
         if dups:
-            raise DataError(f"input file {self.path} has duplicate column names: {', '.join(map(repr, dups))}. "
+            raise DataError(f"input {self.location} has duplicate column names: {', '.join(map(repr, dups))}. "
                             "Rename them so each column has one name.")
+
+    def parquet_dataset(self, fragment_rows: int) -> Any:
+        """This Parquet input (a file or a dataset) as a dataset.ParquetDataset cut into fragments
+        of at most ``fragment_rows`` rows; None for CSV."""
+        from .dataset import ParquetDataset
+
+        if self.format != "parquet":
+            return None
+        if self.dataset is not None and self.dataset.fragment_rows == fragment_rows:
+            return self.dataset
+        return ParquetDataset(self.location, fragment_rows=fragment_rows)
 
     @property
     def column_names(self) -> list[str]:
@@ -105,6 +132,10 @@ class TableSource:
     def _raw_batches(self, columns: list[str], batch_rows: int,
                      csv_types: dict[str, pa.DataType]) -> Iterator[pa.RecordBatch]:
         rows_done = 0
+        if self.dataset is not None:  # its reader names the file and the row in its own errors
+            for frag in self.dataset.fragments:
+                yield from self.dataset.read(frag, columns, batch_rows)
+            return
         try:
             if self.format == "parquet":
                 for b in self._pf.iter_batches(batch_size=batch_rows, columns=columns, use_threads=True):
@@ -194,7 +225,10 @@ def remove_stale_partials(dest: Path) -> int:
             m = _PARTIAL.match(p.name)
             if m and m.group("name") == dest.name and not _pid_alive(int(m.group("pid"))):
                 with contextlib.suppress(OSError):
-                    p.unlink()
+                    if p.is_dir() and not p.is_symlink():
+                        shutil.rmtree(p)
+                    else:
+                        p.unlink()
                     removed += 1
     return removed
 
@@ -202,6 +236,32 @@ def remove_stale_partials(dest: Path) -> int:
 def partial_path(dest: Path) -> Path:
     dest = Path(dest)
     return dest.parent / f".{dest.name}.ldpt-partial-{os.getpid()}-{secrets.token_hex(4)}"
+
+
+def is_dataset_output(out: Path | str) -> bool:
+    """An output path names a Parquet dataset (a folder of parts) when it ends in "/", is an
+    existing folder, or has no file extension."""
+    text = str(out)
+    p = Path(out)
+    return text.endswith(("/", os.sep)) or p.is_dir() or p.suffix == ""
+
+
+def check_dataset_destination(dest: Path, overwrite: bool) -> None:
+    dest = Path(dest)
+    if not dest.parent.exists():
+        raise UsageError(f"output folder {dest}: its parent folder {dest.parent} does not exist. Create it first.")
+    if dest.exists() and not dest.is_dir():
+        raise UsageError(f"output {dest} is a file, but an output without a file extension names a dataset folder. "
+                         "Give a new folder path, or a file path ending in .parquet or .csv.")
+    if dest.exists() and not overwrite:
+        raise OutputExistsError(f"output folder {dest} already exists. Give --overwrite to replace it, or choose "
+                                "another path.")
+    if dest.exists():
+        strangers = [p.name for p in dest.iterdir() if not re.fullmatch(r"part-\d{5,}\.parquet", p.name)]
+        if strangers:
+            raise UsageError(f"output folder {dest} holds files that are not parts of a release "
+                             f"({', '.join(sorted(strangers)[:3])}{', ...' if len(strangers) > 3 else ''}); "
+                             "--overwrite replaces only a folder of release parts. Choose another path.")
 
 
 def check_destination(dest: Path, role: str, overwrite: bool) -> None:
@@ -264,7 +324,10 @@ class StagedFiles:
     def discard(self) -> None:
         for tmp, _ in self._items:
             with contextlib.suppress(OSError):
-                tmp.unlink()
+                if tmp.is_dir() and not tmp.is_symlink():
+                    shutil.rmtree(tmp)
+                else:
+                    tmp.unlink()
 
     def check(self) -> None:
         """Raise KeyboardInterrupt if a signal asked the run to stop."""
@@ -277,7 +340,13 @@ class StagedFiles:
         if check:
             self.check()
         for tmp, dest in self._items:
-            os.replace(tmp, dest)
+            if tmp.is_dir() and dest.is_dir():  # --overwrite of a dataset folder: move the old one aside first
+                old = partial_path(dest)
+                os.replace(dest, old)
+                os.replace(tmp, dest)
+                shutil.rmtree(old, ignore_errors=True)
+            else:
+                os.replace(tmp, dest)
         self._committed = True
 
 

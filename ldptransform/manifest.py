@@ -58,12 +58,25 @@ class ColumnEntry(_Strict):
     report_rate: float = Field(1.0, gt=0, le=1)
 
 
+class PartInfo(_Strict):
+    """One file of a Parquet dataset extract (format "parquet-dataset")."""
+
+    file: str
+    sha256: str
+    bytes: int = Field(ge=0)
+    rows: int = Field(ge=0)
+
+
 class ExtractInfo(_Strict):
     file: str
-    format: Literal["csv", "parquet"]
+    # "parquet-dataset": ``file`` is a folder of Parquet parts listed in ``parts`` (in row order);
+    # ``sha256`` is then dataset.dataset_digest over the parts and ``bytes`` their total
+    format: Literal["csv", "parquet", "parquet-dataset"]
     sha256: str
     bytes: int
     columns: list[str]
+    parts: list[PartInfo] | None = None
+    part_rows: int | None = Field(None, ge=1)  # the --part-rows setting the parts were cut with
 
 
 class Privacy(_Strict):
@@ -103,7 +116,11 @@ class Manifest(_Strict):
         raise KeyError(name)
 
     def to_json(self) -> str:
-        return json.dumps(self.model_dump(mode="json"), indent=2, allow_nan=False) + "\n"
+        d = self.model_dump(mode="json")
+        if d["extract"].get("parts") is None:  # single-file extracts: the manifest as before datasets existed
+            d["extract"].pop("parts", None)
+            d["extract"].pop("part_rows", None)
+        return json.dumps(d, indent=2, allow_nan=False) + "\n"
 
 
 def now_utc() -> str:

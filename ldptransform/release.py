@@ -31,12 +31,16 @@ import pyarrow.compute as pc
 
 from . import __version__
 from .errors import DataError, OutputError, PolicyError, UsageError
-from .io import BatchWriter, StagedFiles, TableSource, check_destination, file_format, sha256_file, write_text_atomic
+from .io import (BatchWriter, StagedFiles, TableSource, _rebatch, check_dataset_destination, check_destination,
+                 file_format, is_dataset_output, sha256_file, write_text_atomic)
 from .keys import MEMO_PRF_VERSION, PRF_VERSION, KeyedStream, SecretKey, SubjectPRF, check_nonce, new_nonce, to_unit
-from .manifest import CAUTIONS, ColumnEntry, ExtractInfo, Manifest, OutputColumn, Privacy, default_manifest_path, now_utc
+from .dataset import PART_NAME, dataset_digest, read_fragment
+from .manifest import (CAUTIONS, ColumnEntry, ExtractInfo, Manifest, OutputColumn, PartInfo, Privacy,
+                       default_manifest_path, now_utc)
 from .policy import LoadedPolicy, NumericColumn, ResolvedColumn
 
 DEFAULT_BATCH_ROWS = 65536
+ENGINES = ("local", "dask")
 _NUMBER = r"^\s*[-+]?((\d+(\.\d*)?)|(\.\d+))([eE][-+]?\d+)?\s*$"
 
 
@@ -631,6 +635,136 @@ def ledger_prepass(src: TableSource, plans: list[ColumnPlan], policy: LoadedPoli
     return LedgerCharges(uniq, eps_u, within, within[inv], memo_cat, over, max(overshoot, 0.0))
 
 
+# -- datasets: one output part per input fragment ---------------------------------------------
+
+@dataclass
+class PartJob:
+    """What every part of a release shares (picklable: sent to workers by the dask engine).
+    The plans carry only keys derived for this release and column, never the secret key."""
+
+    read_cols: list[str]
+    batch_rows: int
+    plans: list[ColumnPlan]
+    schema: pa.Schema
+    sampler: ColumnSampler | None
+    subject_key: str | None
+
+
+@dataclass
+class PartResult:
+    file: str
+    sha256: str
+    bytes: int
+    rows: int                     # rows written (fewer than input_rows under --allow-partial)
+    input_rows: int
+    diag: dict[str, dict[str, int]]  # steward-only diagnostics of this part
+    reported: dict[str, int]
+
+
+def write_part(job: PartJob, batches: Any, row0: int, keep: np.ndarray | None, path: Path, *,
+               on_batch: Callable[[int], None] | None = None) -> PartResult:
+    """Privatize rows [row0, row0 + n) given as ``batches`` into the Parquet file ``path``.
+    Pure apart from writing ``path``: the same rows, row0, plans and nonce give the same bytes
+    on any machine, in any order of parts."""
+    plans = [replace(p, diag=ColumnDiagnostics(), reported=0) for p in job.plans]
+    writer = BatchWriter(Path(path), "parquet", job.schema)
+    rows = released = 0
+    try:
+        for batch in batches:
+            n = batch.num_rows
+            out_batch = privatize_batch(batch, row0 + rows, plans, job.schema, job.sampler, job.subject_key)
+            if keep is not None:
+                out_batch = out_batch.filter(pa.array(keep[rows:rows + n]))
+            writer.write(out_batch)
+            released += out_batch.num_rows
+            rows += n
+            if on_batch is not None:
+                on_batch(n)
+    finally:
+        writer.close()
+    digest, size = sha256_file(Path(path))
+    return PartResult(Path(path).name, digest, size, released, rows,
+                      {p.rc.name: p.diag.as_dict() for p in plans if p.rc.mechanism is not None},
+                      {p.rc.name: p.reported for p in plans if p.rc.mechanism is not None})
+
+
+def fragment_part(job: PartJob, fs: Any, frag: Any, keep: np.ndarray | None, folder: str) -> PartResult:
+    """One Parquet fragment of the input -> its output part (what a dask worker runs)."""
+    batches = _rebatch(read_fragment(fs, frag, job.read_cols, job.batch_rows), job.batch_rows)
+    return write_part(job, batches, frag.row0, keep, Path(folder) / frag.part_name)
+
+
+class RowCutter:
+    """Cuts a stream of batches into consecutive runs of a given number of rows, lazily
+    (slicing a batch at a boundary), so that a part is written while it is read."""
+
+    def __init__(self, batches: Any) -> None:
+        self._it = iter(batches)
+        self._head: pa.RecordBatch | None = None
+
+    def take(self, n: int) -> Any:
+        left = n
+        while left > 0:
+            if self._head is None:
+                self._head = next(self._it, None)
+                if self._head is None:
+                    return
+            b = self._head
+            if b.num_rows <= left:
+                self._head = None
+                left -= b.num_rows
+                if b.num_rows:
+                    yield b
+            else:
+                self._head = b.slice(left)
+                yield b.slice(0, left)
+                left = 0
+
+    def exhausted(self) -> bool:
+        while self._head is None or self._head.num_rows == 0:
+            self._head = next(self._it, None)
+            if self._head is None:
+                return True
+        return False
+
+
+def _keep_slice(keep: np.ndarray | None, row0: int, n: int) -> np.ndarray | None:
+    return None if keep is None else keep[row0:row0 + n]
+
+
+def run_parts_local(job: PartJob, src: Any, keep: np.ndarray | None, folder: Path, fragment_rows: int,
+                    staged: StagedFiles, on_progress: Callable[[int], None] | None) -> list[PartResult]:
+    """The local engine's dataset output: parts one after the other, in order."""
+
+    def tick(n: int) -> None:
+        staged.check()
+        if on_progress is not None:
+            on_progress(n)
+
+    results: list[PartResult] = []
+    ds = src.parquet_dataset(fragment_rows) if hasattr(src, "parquet_dataset") else None
+    if ds is not None:
+        for frag in ds.fragments:
+            batches = _rebatch(read_fragment(ds.fs, frag, job.read_cols, job.batch_rows), job.batch_rows)
+            results.append(write_part(job, batches, frag.row0, _keep_slice(keep, frag.row0, frag.rows),
+                                      folder / frag.part_name, on_batch=tick))
+    else:  # CSV (or a frame): parts of fragment_rows rows, cut while reading
+        cutter = RowCutter(src.batches(job.read_cols, job.batch_rows))
+        row0 = 0
+        while True:
+            i = len(results)
+            part_keep = _keep_slice(keep, row0, fragment_rows)
+            res = write_part(job, _rebatch(cutter.take(fragment_rows), job.batch_rows), row0, part_keep,
+                             folder / PART_NAME.format(i), on_batch=tick)
+            results.append(res)
+            row0 += res.input_rows
+            if cutter.exhausted():
+                break
+    if not results:  # a dataset without row groups: one empty part keeps the schema
+        results.append(write_part(job, iter(()), 0, None, folder / PART_NAME.format(0)))
+    return results
+
+
 @dataclass
 class ReleaseResult:
     manifest: Manifest
@@ -644,11 +778,12 @@ class ReleaseResult:
     held_back_rows: int = 0
 
 
-def privatize(input_path: Path | str, policy: LoadedPolicy, key: SecretKey, out: Path | str, *,
+def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey, out: Path | str, *,
               manifest_path: Path | str | None = None, diagnostics_path: Path | str | None = None,
               batch_rows: int = DEFAULT_BATCH_ROWS, overwrite: bool = False, nonce: str | None = None,
               on_progress: Callable[[int], None] | None = None, ledger_path: Path | str | None = None,
-              allow_partial: bool = False) -> ReleaseResult:
+              allow_partial: bool = False, engine: str = "local", scheduler: str | None = None,
+              fragment_rows: int | None = None) -> ReleaseResult:
     """Privatize ``input_path`` under ``policy`` into ``out`` (+ manifest, + private diagnostics).
 
     With a ledger (``ledger_path``, or the default path when the policy sets
@@ -657,24 +792,50 @@ def privatize(input_path: Path | str, policy: LoadedPolicy, key: SecretKey, out:
     subjects within it are released.  The release is recorded in the ledger after the extract
     and manifest are staged and before they are renamed into place: a refused record leaves
     nothing; a crash between the ledger commit and the rename leaves an over-count (safe side)."""
+    from .dataset import DEFAULT_FRAGMENT_ROWS, is_uri
+
     t0 = time.perf_counter()
-    input_path, out = Path(input_path), Path(out)
-    fmt_out = file_format(out, "output")
+    frame_input = not isinstance(input_path, (str, Path))  # a dask DataFrame (engine_dask.privatize_frame)
+    if not frame_input and not is_uri(input_path):
+        input_path = Path(input_path)
+    out = Path(out)
+    dataset_out = is_dataset_output(out)
+    fmt_out = "parquet" if dataset_out else file_format(out, "output")
     manifest_path = Path(manifest_path) if manifest_path else default_manifest_path(out)
     if batch_rows < 1:
         raise UsageError("--batch-rows must be a positive number of rows")
+    fragment_rows = DEFAULT_FRAGMENT_ROWS if fragment_rows is None else int(fragment_rows)
+    if fragment_rows < 1:
+        raise UsageError("the rows per output part (fragment_rows) must be a positive number")
+    if engine not in ENGINES:
+        raise UsageError(f"--engine {engine!r} is not known; use one of: {', '.join(ENGINES)}.")
+    if engine == "dask" and not dataset_out:
+        raise UsageError(f"--engine dask writes a Parquet dataset (one part per input fragment, written in "
+                         f"parallel): give --out a folder path without a file extension (for example "
+                         f"{out.with_suffix('')}/), not the file {out}.")
+    if scheduler is not None and engine != "dask":
+        raise UsageError("--scheduler applies only with --engine dask.")
     nonce = check_nonce(nonce) if nonce else new_nonce()
-    src = TableSource(input_path, csv_null_values=policy.policy.input.csv_null_values,
-                      csv_delimiter=policy.policy.input.csv_delimiter)
-    try:
-        same = out.exists() and out.resolve() == input_path.resolve()
-    except OSError:
-        same = False
-    if same or manifest_path.resolve() == input_path.resolve():
-        raise UsageError(f"output {out} is the input file; write the extract to another path.")
+    if frame_input:
+        from .engine_dask import FrameSource
+
+        src = FrameSource(input_path)
+    else:
+        src = TableSource(input_path, csv_null_values=policy.policy.input.csv_null_values,
+                          csv_delimiter=policy.policy.input.csv_delimiter)
+    if isinstance(input_path, Path):
+        try:
+            same = out.exists() and out.resolve() == input_path.resolve()
+        except OSError:
+            same = False
+        if same or manifest_path.resolve() == input_path.resolve():
+            raise UsageError(f"output {out} is the input; write the extract to another path.")
     if manifest_path.resolve() == out.resolve():
         raise UsageError("the manifest path and the output path are the same; give different paths.")
-    check_destination(out, "output", overwrite)
+    if dataset_out:
+        check_dataset_destination(out, overwrite)
+    else:
+        check_destination(out, "output", overwrite)
     check_destination(manifest_path, "manifest", overwrite)
     if diagnostics_path is None:
         # a fresh name per run: re-running a release (same nonce, same file name) must not collide
@@ -697,7 +858,7 @@ def privatize(input_path: Path | str, policy: LoadedPolicy, key: SecretKey, out:
             raise UsageError(f"cannot create ledger {ledger_path}: folder {ledger_path.parent} does not exist. "
                              "Create it first (private to the steward, like the key), or give another --ledger.")
 
-    plans = plan_columns(policy, src.column_names, str(input_path))
+    plans = plan_columns(policy, src.column_names, getattr(src, "location", str(input_path)))
     if src.format == "csv":
         nulls = set(policy.policy.input.csv_null_values)
         for p in plans:
@@ -756,27 +917,51 @@ def privatize(input_path: Path | str, policy: LoadedPolicy, key: SecretKey, out:
     released = 0
     with StagedFiles() as staged:
         tmp_extract = staged.add(out)
-        writer = BatchWriter(tmp_extract, fmt_out, schema)
-        try:
-            for batch in src.batches(read_cols, batch_rows):
-                out_batch = privatize_batch(batch, rows, plans, schema, sampler, subject_key)
-                if keep_rows is not None:  # --allow-partial: drop the rows of subjects past the budget
-                    out_batch = out_batch.filter(pa.array(keep_rows[rows:rows + batch.num_rows]))
-                writer.write(out_batch)
-                released += out_batch.num_rows
-                rows += batch.num_rows
-                staged.check()  # stop between batches on SIGTERM/SIGINT
-                if on_progress is not None:
-                    on_progress(batch.num_rows)
-        finally:
-            writer.close()
-        digest, size = sha256_file(tmp_extract)
+        if dataset_out:
+            job = PartJob(read_cols, batch_rows, plans, schema, sampler, subject_key)
+            os.mkdir(tmp_extract, 0o755)
+            if engine == "dask":
+                from .engine_dask import run_parts
+
+                parts = run_parts(job, src, keep_rows, tmp_extract, fragment_rows, scheduler, staged, on_progress)
+            else:
+                parts = run_parts_local(job, src, keep_rows, tmp_extract, fragment_rows, staged, on_progress)
+            for part in parts:
+                for p in plans:
+                    if p.rc.name in part.diag:
+                        for k, v in part.diag[p.rc.name].items():
+                            setattr(p.diag, k, getattr(p.diag, k) + v)
+                        p.reported += part.reported.get(p.rc.name, 0)
+            rows = sum(part.input_rows for part in parts)
+            released = sum(part.rows for part in parts)
+            infos = [PartInfo(file=part.file, sha256=part.sha256, bytes=part.bytes, rows=part.rows) for part in parts]
+            extract_info = ExtractInfo(file=out.name, format="parquet-dataset",
+                                       sha256=dataset_digest([i.model_dump() for i in infos]),
+                                       bytes=sum(i.bytes for i in infos), columns=schema.names, parts=infos,
+                                       part_rows=fragment_rows)
+        else:
+            writer = BatchWriter(tmp_extract, fmt_out, schema)
+            try:
+                for batch in src.batches(read_cols, batch_rows):
+                    out_batch = privatize_batch(batch, rows, plans, schema, sampler, subject_key)
+                    if keep_rows is not None:  # --allow-partial: drop the rows of subjects past the budget
+                        out_batch = out_batch.filter(pa.array(keep_rows[rows:rows + batch.num_rows]))
+                    writer.write(out_batch)
+                    released += out_batch.num_rows
+                    rows += batch.num_rows
+                    staged.check()  # stop between batches on SIGTERM/SIGINT
+                    if on_progress is not None:
+                        on_progress(batch.num_rows)
+            finally:
+                writer.close()
+            digest, size = sha256_file(tmp_extract)
+            extract_info = ExtractInfo(file=out.name, format=fmt_out, sha256=digest, bytes=size, columns=schema.names)
         manifest = Manifest(
             tool_version=__version__, created_utc=now_utc(), rows=released, nonce=nonce,
             key_fingerprint=key.fingerprint(), prf=PRF_VERSION, policy_sha256=policy.policy.sha256(),
             policy=policy.policy.canonical(),
             privacy=_privacy(policy, plans),
-            extract=ExtractInfo(file=out.name, format=fmt_out, sha256=digest, bytes=size, columns=schema.names),
+            extract=extract_info,
             columns=column_entries(plans, policy.report_rate), cautions=list(CAUTIONS))
         tmp_manifest = staged.add(manifest_path)
         write_text_atomic_into(tmp_manifest, manifest.to_json())
@@ -784,8 +969,9 @@ def privatize(input_path: Path | str, policy: LoadedPolicy, key: SecretKey, out:
         diag = {
             "PRIVATE": "steward-only diagnostics: data-dependent counts. Do not give this file to partners.",
             "extract": str(out), "manifest": str(manifest_path), "nonce": nonce, "rows": released,
-            "input_rows": rows,
-            "seconds": round(seconds, 3), "batch_rows": batch_rows, "input": str(input_path),
+            "input_rows": rows, "engine": engine,
+            "seconds": round(seconds, 3), "batch_rows": batch_rows,
+            "input": str(input_path) if not frame_input else "a dask DataFrame",
             "columns": {p.rc.name: p.diag.as_dict() for p in plans if p.rc.mechanism is not None},
         }
         if sampler is not None:

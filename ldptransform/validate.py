@@ -67,6 +67,7 @@ class ValidationReport:
 
 def _check_secrets(manifest: Manifest, text: str, key: SecretKey | None, rep: ValidationReport) -> None:
     allowed = {manifest.extract.sha256, manifest.policy_sha256, manifest.nonce, manifest.key_fingerprint}
+    allowed |= {p.sha256 for p in manifest.extract.parts or []}
     stray = [h for h in _HEX.findall(text) if h not in allowed]
     problems = []
     if stray:
@@ -200,11 +201,14 @@ def validate(extract: Path | str, manifest_path: Path | str | None = None, *, ra
     if not extract.exists():
         rep.add("extract present", False, f"{extract} does not exist")
         return rep
-    digest, size = sha256_file(extract)
-    rep.add("extract hash", digest == manifest.extract.sha256 and size == manifest.extract.bytes,
-            f"sha256 {digest[:16]}... and {size} bytes match the manifest" if digest == manifest.extract.sha256
-            else f"sha256 of the file ({digest[:16]}...) differs from the manifest ({manifest.extract.sha256[:16]}...): "
-                 "the extract was changed or is not this manifest's")
+    if manifest.extract.format == "parquet-dataset":
+        _check_dataset_hash(extract, manifest, rep)
+    else:
+        digest, size = sha256_file(extract)
+        rep.add("extract hash", digest == manifest.extract.sha256 and size == manifest.extract.bytes,
+                f"sha256 {digest[:16]}... and {size} bytes match the manifest" if digest == manifest.extract.sha256
+                else f"sha256 of the file ({digest[:16]}...) differs from the manifest "
+                     f"({manifest.extract.sha256[:16]}...): the extract was changed or is not this manifest's")
     if extract.name != manifest.extract.file:
         rep.add("file name", None, f"the manifest describes {manifest.extract.file!r}; this file is named {extract.name!r}")
     _check_privacy(manifest, rep)
@@ -362,17 +366,48 @@ def _scan(extract: Path, mpath: Path, manifest: Manifest) -> tuple[dict[str, int
     return bad, fits
 
 
+def _check_dataset_hash(folder: Path, manifest: Manifest, rep: ValidationReport) -> None:
+    """A dataset extract: every part listed, no other Parquet file, each part's SHA-256 and size,
+    and the digest over the parts (dataset.dataset_digest) as the manifest records them."""
+    from .dataset import dataset_digest
+
+    parts = manifest.extract.parts or []
+    if not folder.is_dir():
+        rep.add("extract hash", False, f"the manifest describes a dataset folder, but {folder} is not a folder")
+        return
+    listed = {p.file for p in parts}
+    extra = sorted(p.name for p in folder.iterdir() if p.name not in listed and not p.name.startswith(("_", ".")))
+    problems = []
+    for p in parts:
+        f = folder / p.file
+        if not f.is_file():
+            problems.append(f"{p.file} is missing")
+            continue
+        digest, size = sha256_file(f)
+        if digest != p.sha256 or size != p.bytes:
+            problems.append(f"{p.file} differs from the manifest (sha256 {digest[:16]}...)")
+    if extra:
+        problems.append(f"files not in the manifest: {', '.join(extra[:3])}{', ...' if len(extra) > 3 else ''}")
+    total = dataset_digest([p.model_dump() for p in parts])
+    if total != manifest.extract.sha256:
+        problems.append("the digest over the listed parts differs from the manifest's sha256")
+    rep.add("extract hash", not problems,
+            f"all {len(parts)} parts match the manifest (sha256 and bytes), and so does the digest over them"
+            if not problems else "; ".join(problems[:4]) + ": the extract was changed or is not this manifest's")
+
+
 def _reproduce(raw: Path, extract: Path, manifest: Manifest, key: SecretKey, rep: ValidationReport) -> None:
     lp = parse_policy(manifest.policy, "embedded in the manifest")
     with tempfile.TemporaryDirectory(prefix="ldpt-validate-") as tmp:
         out = Path(tmp) / manifest.extract.file
         res = privatize(raw, lp, key, out, manifest_path=Path(tmp) / "m.json",
-                        diagnostics_path=Path(tmp) / "d.json", nonce=manifest.nonce)
+                        diagnostics_path=Path(tmp) / "d.json", nonce=manifest.nonce,
+                        fragment_rows=manifest.extract.part_rows)
         digest = res.manifest.extract.sha256
         specs_same = [c.mechanism for c in res.manifest.columns] == [c.mechanism for c in manifest.columns]
         if digest == manifest.extract.sha256 and specs_same:
             rep.add("reproduced", True, "re-deriving the extract from the raw data, the key and the manifest's nonce "
-                    "gives a bit-identical file")
+                    "gives bit-identical " + ("parts" if manifest.extract.parts else "file"))
             return
         try:
             same_values = _same_values(out, extract)

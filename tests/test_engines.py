@@ -1,0 +1,287 @@
+"""Parquet datasets and the distributed engine: the same release, bit for bit.
+
+A dask ``LocalCluster`` of 2 worker processes (started once for the module, reached through
+its loopback address as `--scheduler` would reach it) writes the parts of a release in
+parallel; every test compares with the local engine on the same key, nonce and input order.
+Input data: the invented staff survey of the demo scenario, split into Parquet files with
+row groups of several sizes.  Keys and nonces are fixed.
+"""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+from conftest import DEMO_CSV, FIXED_KEY_BYTES, survey_policy, write_fixed_key, write_policy
+from ldptransform import estimate, privatize, validate
+from ldptransform.errors import DataError, InputFileError, LdptError, UsageError
+from ldptransform.keys import SecretKey
+from ldptransform.ledger import Ledger
+from ldptransform.policy import parse_policy
+
+distributed = pytest.importorskip("distributed")
+
+KEY = SecretKey(FIXED_KEY_BYTES)
+NONCE = "00112233445566778899aabbccddeeff"
+
+
+@pytest.fixture(scope="module")
+def cluster():
+    from distributed import LocalCluster
+
+    import logging
+
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None,
+                      silence_logs=logging.ERROR) as c:
+        yield c.scheduler_address
+
+
+@pytest.fixture(scope="module")
+def survey() -> pd.DataFrame:
+    return pd.read_csv(DEMO_CSV, dtype={"staff_id": str, "site": str, "role": str, "would_recommend": str,
+                                        "survey_wave": str})
+
+
+@pytest.fixture(scope="module")
+def dataset(tmp_path_factory: pytest.TempPathFactory, survey: pd.DataFrame) -> Path:
+    """The survey as a dataset of three files (row groups of 1000, 700 and 2500 rows; read in the
+    order of their paths: a.parquet, b-2026/b.parquet, c.parquet), plus a _SUCCESS marker and a
+    hidden file that must be skipped."""
+    d = tmp_path_factory.mktemp("data") / "survey"
+    (d / "b-2026").mkdir(parents=True)
+    t = pa.Table.from_pandas(survey, preserve_index=False)
+    pq.write_table(t.slice(0, 3000), d / "a.parquet", row_group_size=1000)
+    pq.write_table(t.slice(3000, 4000), d / "b-2026" / "b.parquet", row_group_size=700)
+    pq.write_table(t.slice(7000), d / "c.parquet", row_group_size=2500)
+    (d / "_SUCCESS").write_text("")
+    (d / ".c.parquet.crc").write_bytes(b"\0\1")
+    pq.write_table(t, d.parent / "whole.parquet", row_group_size=4096)
+    return d
+
+
+def memo_policy() -> dict:
+    p = survey_policy()
+    p["subject_key"] = "staff_id"
+    p["columns"]["site"]["memoize"] = True
+    p["columns"]["pay"]["memoize"] = True
+    p["columns"]["weekly_hours"]["mechanism"] = "discrete-laplace"  # a variable number of draws per row
+    p["columns"]["weekly_hours"]["grid"] = 70
+    return p
+
+
+def sample_policy() -> dict:
+    p = survey_policy()
+    p["budget"] = {"epsilon_per_row": 3.0, "strategy": "sample"}
+    for c in p["columns"].values():
+        c.pop("epsilon", None)
+    return p
+
+
+def parts_of(folder: Path) -> dict[str, bytes]:
+    return {p.name: p.read_bytes() for p in sorted(folder.iterdir())}
+
+
+# -- reading datasets -------------------------------------------------------------------------
+
+def test_a_dataset_reads_as_one_table_in_path_order(dataset: Path, tmp_path: Path) -> None:
+    """A folder of Parquet files releases exactly as the same rows in one file: same extract bytes."""
+    pol = parse_policy(survey_policy(), "survey.yaml")
+    a = privatize(dataset, pol, KEY, tmp_path / "from_dataset.parquet", nonce=NONCE)
+    b = privatize(dataset.parent / "whole.parquet", pol, KEY, tmp_path / "from_file.parquet", nonce=NONCE)
+    assert a.manifest.rows == 12000
+    assert a.manifest.extract.sha256 == b.manifest.extract.sha256
+
+
+@pytest.mark.parametrize("policy_fn", [survey_policy, memo_policy, sample_policy],
+                         ids=["survey", "memoized+discrete-laplace", "strategy-sample"])
+def test_dask_engine_writes_the_local_engines_parts_bit_for_bit(policy_fn, dataset: Path, tmp_path: Path,
+                                                                cluster: str) -> None:
+    pol = parse_policy(policy_fn(), "survey.yaml")
+    loc = privatize(dataset, pol, KEY, tmp_path / "local", nonce=NONCE, fragment_rows=2000)
+    dsk = privatize(dataset, pol, KEY, tmp_path / "dask", nonce=NONCE, fragment_rows=2000, engine="dask",
+                    scheduler=cluster)
+    # fragments: runs of whole row groups of at most 2000 rows: 2 + 6 (one of 700 rows each... ) + 2
+    rows = [p.rows for p in loc.manifest.extract.parts]
+    assert rows == [2000, 1000, 1400, 1400, 1200] + [2500, 2500]
+    assert parts_of(tmp_path / "local") == parts_of(tmp_path / "dask")
+    assert loc.manifest.extract.sha256 == dsk.manifest.extract.sha256
+    one = privatize(dataset, pol, KEY, tmp_path / "one.parquet", nonce=NONCE)
+    assert pq.read_table(tmp_path / "dask").equals(pq.read_table(tmp_path / "one.parquet"))
+    assert one.manifest.columns == dsk.manifest.columns
+    # the steward's diagnostics add up over the parts
+    d_loc = json.loads(loc.diagnostics_path.read_text())
+    d_dsk = json.loads(dsk.diagnostics_path.read_text())
+    d_one = json.loads(one.diagnostics_path.read_text())
+    assert d_loc["columns"] == d_dsk["columns"] == d_one["columns"]
+    assert d_dsk["engine"] == "dask"
+
+
+def test_csv_input_with_the_dask_engine(tmp_path: Path, cluster: str) -> None:
+    """CSV: read in order by the client (its counting pass), parts of --part-rows rows written
+    by the workers; the same parts as the local engine's."""
+    pol = parse_policy(survey_policy(), "survey.yaml")
+    loc = privatize(DEMO_CSV, pol, KEY, tmp_path / "local", nonce=NONCE, fragment_rows=5000)
+    dsk = privatize(DEMO_CSV, pol, KEY, tmp_path / "dask", nonce=NONCE, fragment_rows=5000, engine="dask",
+                    scheduler=cluster)
+    assert [p.rows for p in dsk.manifest.extract.parts] == [5000, 5000, 2000]
+    assert parts_of(tmp_path / "local") == parts_of(tmp_path / "dask")
+    one = privatize(DEMO_CSV, pol, KEY, tmp_path / "one.parquet", nonce=NONCE)
+    assert pq.read_table(tmp_path / "dask").equals(pq.read_table(tmp_path / "one.parquet"))
+
+
+def test_a_dask_dataframe_is_released_like_its_rows(dataset: Path, tmp_path: Path, cluster: str) -> None:
+    """The Python API takes a dask DataFrame: a counting pass numbers its rows; one part per
+    partition; values equal to the local engine's on the same rows."""
+    import dask.dataframe as dd
+
+    from ldptransform.engine_dask import privatize_frame
+
+    pol = parse_policy(survey_policy(), "survey.yaml")
+    frame = dd.read_parquet(str(dataset / "a.parquet")).repartition(npartitions=3)
+    res = privatize_frame(frame, pol, KEY, tmp_path / "frame", nonce=NONCE, scheduler=cluster)
+    assert [p.rows for p in res.manifest.extract.parts] == [int(n) for n in frame.map_partitions(len).compute()]
+    privatize(dataset / "a.parquet", pol, KEY, tmp_path / "a.parquet", nonce=NONCE)
+    assert pq.read_table(tmp_path / "frame").equals(pq.read_table(tmp_path / "a.parquet"))
+    with pytest.raises(UsageError, match="engine='dask'"):
+        privatize_frame(frame, pol, KEY, tmp_path / "x", nonce=NONCE, engine="local")
+
+
+def test_ledger_charges_are_the_same_with_either_engine(dataset: Path, tmp_path: Path, cluster: str) -> None:
+    pol = parse_policy(memo_policy(), "survey.yaml")
+    spends = []
+    for engine in ("local", "dask"):
+        led = tmp_path / f"{engine}.sqlite3"
+        kw = {"scheduler": cluster} if engine == "dask" else {}
+        r = privatize(dataset, pol, KEY, tmp_path / engine, nonce=NONCE, ledger_path=led, engine=engine, **kw)
+        assert r.ledger_release_id == 1
+        with Ledger.open(led, create=False) as lg:
+            h, e = lg.release_spend(1)
+            spends.append((h.tobytes(), e.tobytes()))
+    assert spends[0] == spends[1]
+
+
+# -- estimating and validating a dataset extract ----------------------------------------------------
+
+def _close(a, b, path="") -> None:
+    """Equal up to floating-point rounding of sums taken in another order (relative 1e-9)."""
+    if isinstance(a, dict):
+        assert a.keys() == b.keys(), path
+        for k in a:
+            _close(a[k], b[k], f"{path}.{k}")
+    elif isinstance(a, list):
+        assert len(a) == len(b), path
+        for i, (x, y) in enumerate(zip(a, b)):
+            _close(x, y, f"{path}[{i}]")
+    elif isinstance(a, float) and isinstance(b, float):
+        assert b == pytest.approx(a, rel=1e-9, abs=1e-12), path
+    else:
+        assert a == b, path
+
+
+def test_estimate_merges_the_parts_with_either_engine(dataset: Path, tmp_path: Path, cluster: str) -> None:
+    pol = parse_policy(survey_policy(), "survey.yaml")
+    privatize(dataset, pol, KEY, tmp_path / "ds", nonce=NONCE, fragment_rows=2000)
+    privatize(dataset, pol, KEY, tmp_path / "one.parquet", nonce=NONCE)
+    kw = dict(crosstabs=[("site", "role")], mean_by=[("pay", "site")])
+    local = estimate(tmp_path / "ds", **kw)
+    dsk = estimate(tmp_path / "ds", engine="dask", scheduler=cluster, **kw)
+    single = estimate(tmp_path / "one.parquet", **kw)
+    for d in (local, dsk, single):
+        d.pop("extract", None)
+        d.pop("extracts", None)
+    _close(single, local)
+    _close(single, dsk)
+    with pytest.raises(UsageError, match="reads a Parquet dataset extract"):
+        estimate(tmp_path / "one.parquet", engine="dask", scheduler=cluster)
+
+
+def test_validate_checks_every_part_and_reproduces_a_dataset(dataset: Path, tmp_path: Path) -> None:
+    pol = parse_policy(survey_policy(), "survey.yaml")
+    privatize(dataset, pol, KEY, tmp_path / "ds", nonce=NONCE, fragment_rows=2000)
+    rep = validate(tmp_path / "ds", raw=dataset, key=KEY)
+    status = {c.name: c.status for c in rep.checks}
+    assert rep.ok and status["extract hash"] == "pass" and status["reproduced"] == "pass", rep.as_dict()
+    part = tmp_path / "ds" / "part-00003.parquet"
+    part.write_bytes(part.read_bytes()[:-20] + bytes(20))
+    (tmp_path / "ds" / "part-00099.parquet").write_bytes(b"")
+    rep = validate(tmp_path / "ds")
+    check = {c.name: c for c in rep.checks}["extract hash"]
+    assert check.status == "fail" and "part-00003.parquet differs" in check.detail
+    assert "part-00099.parquet" in check.detail
+
+
+# -- bad inputs -----------------------------------------------------------------------------------
+
+def test_bad_datasets_and_engine_options_exit_2(dataset: Path, tmp_path: Path, ldpt, private_dir: Path) -> None:
+    key = write_fixed_key(tmp_path / "k.key")
+    pol = write_policy(tmp_path / "p.yaml", survey_policy())
+
+    def run(*args):
+        res = ldpt("privatize", *args, "--policy", pol, "--key", key)
+        assert res.returncode == 2 and "Traceback" not in res.stderr, res.stderr
+        return res.stderr
+
+    mixed = tmp_path / "mixed"
+    mixed.mkdir()
+    pq.write_table(pq.read_table(dataset / "a.parquet"), mixed / "1.parquet")
+    pq.write_table(pq.read_table(dataset / "a.parquet").drop(["pay"]), mixed / "2.parquet")
+    err = run(mixed, "--out", tmp_path / "o.parquet")
+    assert "2.parquet" in err and "missing column(s) ['pay']" in err
+    empty = tmp_path / "empty"
+    empty.mkdir()
+    assert "holds no Parquet files" in run(empty, "--out", tmp_path / "o.parquet")
+    assert "writes a Parquet dataset" in run(dataset, "--out", tmp_path / "o.parquet", "--engine", "dask")
+    err = run(dataset, "--out", tmp_path / "o", "--engine", "dask", "--scheduler", "tcp://10.1.2.3:8786")
+    assert "not encrypted" in err and "tls://" in err
+    assert "--scheduler applies only with --engine dask" in run(dataset, "--out", tmp_path / "o", "--scheduler",
+                                                                "tls://10.1.2.3:8786")
+    other = tmp_path / "notes"
+    other.mkdir()
+    (other / "readme.txt").write_text("keep me")
+    err = run(dataset, "--out", other, "--overwrite")
+    assert "not parts of a release" in err and (other / "readme.txt").read_text() == "keep me"
+    assert not (tmp_path / "o").exists() and not (tmp_path / "o.parquet").exists()
+
+
+def test_overwrite_replaces_a_dataset_folder(dataset: Path, tmp_path: Path) -> None:
+    pol = parse_policy(survey_policy(), "survey.yaml")
+    privatize(dataset, pol, KEY, tmp_path / "ds", nonce=NONCE, fragment_rows=1000)
+    assert len(list((tmp_path / "ds").iterdir())) > 7
+    with pytest.raises(LdptError, match="already exists"):
+        privatize(dataset, pol, KEY, tmp_path / "ds", nonce=NONCE)
+    r = privatize(dataset, pol, KEY, tmp_path / "ds", nonce=NONCE, overwrite=True)
+    assert sorted(p.name for p in (tmp_path / "ds").iterdir()) == [p.file for p in r.manifest.extract.parts]
+    assert [p.name for p in tmp_path.iterdir() if "partial" in p.name] == []
+
+
+def test_the_core_does_not_import_dask() -> None:
+    code = ("import sys, ldptransform, ldptransform.cli, ldptransform.release, ldptransform.estimate, "
+            "ldptransform.validate, ldptransform.dataset; "
+            "bad = [m for m in sys.modules if m.split('.')[0] in ('dask', 'distributed')]; "
+            "assert not bad, bad")
+    subprocess.run([sys.executable, "-c", code], check=True, timeout=120)
+
+
+def test_cli_dask_engine_on_a_local_cluster(dataset: Path, tmp_path: Path, ldpt, private_dir: Path) -> None:
+    """`ldpt privatize --engine dask` with no --scheduler starts its own local cluster; `ldpt
+    estimate --engine dask` decodes the parts; `ldpt validate` passes."""
+    key = write_fixed_key(tmp_path / "k.key")
+    pol = write_policy(tmp_path / "p.yaml", survey_policy())
+    res = ldpt("privatize", dataset, "--policy", pol, "--key", key, "--out", tmp_path / "ext", "--engine", "dask",
+               "--nonce", NONCE, "--part-rows", "3000")
+    assert res.returncode == 0, res.stderr
+    man = json.loads((tmp_path / "ext.manifest.json").read_text())
+    assert man["extract"]["format"] == "parquet-dataset" and man["extract"]["part_rows"] == 3000
+    res = ldpt("estimate", tmp_path / "ext", "--engine", "dask", "--format", "json")
+    assert res.returncode == 0, res.stderr
+    assert json.loads(res.stdout)["rows"] == 12000
+    res = ldpt("validate", tmp_path / "ext")
+    assert res.returncode == 0, res.stdout + res.stderr
