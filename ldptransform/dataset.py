@@ -150,18 +150,20 @@ class ParquetDataset:
             raise InputFileError(f"input {self.location}: file {path} cannot be read as Parquet "
                                  f"({str(err).splitlines()[0][:200]}). Check that it is complete.") from None
 
-    def read(self, frag: Fragment, columns: list[str], batch_rows: int) -> Iterator[pa.RecordBatch]:
+    def read(self, frag: Fragment, columns: list[str], batch_rows: int,
+             dictionary: list[str] | None = None) -> Iterator[pa.RecordBatch]:
         """The rows of one fragment, in order, in batches of at most ``batch_rows``."""
-        return read_fragment(self.fs, frag, columns, batch_rows)
+        return read_fragment(self.fs, frag, columns, batch_rows, dictionary)
 
 
-def read_fragment(fs: pafs.FileSystem, frag: Fragment, columns: list[str],
-                  batch_rows: int) -> Iterator[pa.RecordBatch]:
-    """Module-level (picklable with its arguments) so that workers can call it."""
+def read_fragment(fs: pafs.FileSystem, frag: Fragment, columns: list[str], batch_rows: int,
+                  dictionary: list[str] | None = None) -> Iterator[pa.RecordBatch]:
+    """Module-level (picklable with its arguments) so that workers can call it.  Text columns
+    named in ``dictionary`` are read dictionary-encoded."""
     done = 0
     try:
         with fs.open_input_file(frag.path) as f:
-            pf = pq.ParquetFile(f)
+            pf = pq.ParquetFile(f, read_dictionary=dictionary or None)
             for b in pf.iter_batches(batch_size=batch_rows, row_groups=list(frag.row_groups), columns=columns,
                                      use_threads=True):
                 done += b.num_rows

@@ -144,7 +144,7 @@ from .mechanisms.discrete_laplace import DiscreteLaplace
 from .mechanisms.distribution import Hierarchy, SquareWave, _integers
 from .mechanisms.hadamard import HadamardResponse, read_indices
 from .mechanisms.matrix import Matrix
-from .mechanisms.numeric import GridMechanism
+from .mechanisms.numeric import GridMechanism, sorted_position
 from .mechanisms.subset import SubsetSelection
 
 MIN_EXPECTED = 5.0          # smallest expected count of a pooled cell (Cochran 1954's rule of thumb)
@@ -637,7 +637,7 @@ class HullFit(FitStats):
             if len(alpha) == 1:
                 idx = np.zeros(len(vals), dtype=np.int64)
             else:
-                i = np.clip(np.searchsorted(alpha, vals), 1, len(alpha) - 1)
+                i = np.clip(sorted_position(alpha, vals), 1, len(alpha) - 1)
                 left = np.abs(vals - alpha[i - 1]) <= np.abs(vals - alpha[i])
                 idx = np.where(left, i - 1, i)
             near = np.abs(vals - alpha[idx])

@@ -120,25 +120,36 @@ class TableSource:
                                                  convert_options=conv))
 
     def batches(self, columns: list[str], batch_rows: int,
-                csv_types: dict[str, pa.DataType] | None = None) -> Iterator[pa.RecordBatch]:
+                csv_types: dict[str, pa.DataType] | None = None,
+                dictionary: list[str] | None = None) -> Iterator[pa.RecordBatch]:
         """Batches of exactly ``batch_rows`` rows (last may be shorter), only ``columns``.
 
         CSV columns are read as text unless ``csv_types`` names another type for them.
+        Parquet text columns named in ``dictionary`` are read dictionary-encoded (each distinct
+        value once per row group: cheap to map to codes); see ``dictionary_columns``.
         """
         if batch_rows < 1:
             raise UsageError("--batch-rows must be a positive number of rows")
-        return _rebatch(self._raw_batches(columns, batch_rows, csv_types or {}), batch_rows)
+        return _rebatch(self._raw_batches(columns, batch_rows, csv_types or {}, dictionary or []), batch_rows)
+
+    def dictionary_columns(self, names: list[str]) -> list[str]:
+        """Those of ``names`` that a Parquet input stores as text (the ones read_dictionary applies to)."""
+        if self.format != "parquet":
+            return []
+        return [n for n in names if n in self.schema.names and
+                (pa.types.is_string(self.schema.field(n).type) or pa.types.is_large_string(self.schema.field(n).type))]
 
     def _raw_batches(self, columns: list[str], batch_rows: int,
-                     csv_types: dict[str, pa.DataType]) -> Iterator[pa.RecordBatch]:
+                     csv_types: dict[str, pa.DataType], dictionary: list[str]) -> Iterator[pa.RecordBatch]:
         rows_done = 0
         if self.dataset is not None:  # its reader names the file and the row in its own errors
             for frag in self.dataset.fragments:
-                yield from self.dataset.read(frag, columns, batch_rows)
+                yield from self.dataset.read(frag, columns, batch_rows, dictionary)
             return
         try:
             if self.format == "parquet":
-                for b in self._pf.iter_batches(batch_size=batch_rows, columns=columns, use_threads=True):
+                pf = pq.ParquetFile(self.path, read_dictionary=dictionary) if dictionary else self._pf
+                for b in pf.iter_batches(batch_size=batch_rows, columns=columns, use_threads=True):
                     rows_done += b.num_rows
                     yield b
             else:

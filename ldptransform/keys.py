@@ -155,6 +155,18 @@ def check_nonce(nonce: str, where: str = "--nonce") -> str:
     return raw.hex()
 
 
+_ZEROS: list[memoryview] = [memoryview(bytes(0))]
+
+
+def _zeros(nbytes: int) -> memoryview:
+    """A read-only zero buffer of ``nbytes`` (one shared buffer, grown to the largest size asked)."""
+    z = _ZEROS[0]
+    if len(z) < nbytes:
+        z = memoryview(bytes(nbytes))
+        _ZEROS[0] = z
+    return z[:nbytes]
+
+
 class KeyedStream:
     """Pseudorandom 64-bit words for one (key, nonce, column, purpose) stream.
 
@@ -180,9 +192,12 @@ class KeyedStream:
         first = row_start * blocks
         iv = first.to_bytes(16, "big")
         enc = Cipher(algorithms.AES(self._cipher_key), modes.CTR(iv)).encryptor()
-        stream = enc.update(bytes(16 * blocks * n_rows))
-        w = np.frombuffer(stream, dtype="<u8").reshape(n_rows, 2 * blocks)
-        return w[:, :per_row]
+        nbytes = 16 * blocks * n_rows
+        # encrypt a shared zero buffer straight into the result (update_into needs room for one
+        # block more): no zero-filled input and no copy of the output for each call
+        out = np.empty(nbytes // 8 + 2, dtype="<u8")
+        enc.update_into(_zeros(nbytes), out.view(np.uint8))
+        return out[: nbytes // 8].reshape(n_rows, 2 * blocks)[:, :per_row]
 
     def words_at(self, rows: np.ndarray, draws: np.ndarray) -> np.ndarray:
         """One uint64 word for each (global row index, draw index) pair, for samplers that

@@ -139,18 +139,36 @@ def _as_string_array(values: pa.Array) -> pa.Array:
     return pc.cast(values, pa.string())
 
 
+def _label_codes(strings: pa.Array, labels: list[str]) -> tuple[np.ndarray, np.ndarray]:
+    """(codes, missing) of text values: trimmed, then looked up among the labels (-1: unknown)."""
+    if pa.types.is_string(strings.type) or pa.types.is_large_string(strings.type):
+        strings = pc.utf8_trim_whitespace(strings)
+    missing = np.asarray(pc.is_null(strings).to_numpy(zero_copy_only=False))
+    codes_arr = pc.index_in(strings, value_set=pa.array(labels, pa.string()))
+    codes = np.asarray(pc.fill_null(codes_arr, -1).to_numpy(zero_copy_only=False)).astype(np.int64)
+    return codes, missing
+
+
 def encode_categorical(values: pa.Array, plan: ColumnPlan, row0: int) -> np.ndarray:
     """Policy labels -> integer codes; missing/unknown handled as the policy says."""
     rc = plan.rc
     name = rc.name
-    strings = _as_string_array(values)
-    if pa.types.is_string(strings.type) or pa.types.is_large_string(strings.type):
-        strings = pc.utf8_trim_whitespace(strings)
-    missing = np.asarray(pc.is_null(strings).to_numpy(zero_copy_only=False))
     if rc.type == "binned":
         raise AssertionError("binned columns use encode_binned")
-    codes_arr = pc.index_in(strings, value_set=pa.array(rc.labels, pa.string()))
-    codes = np.asarray(pc.fill_null(codes_arr, -1).to_numpy(zero_copy_only=False)).astype(np.int64)
+    if isinstance(values, pa.ChunkedArray):
+        values = values.combine_chunks()
+    if pa.types.is_dictionary(values.type):
+        # look up each distinct value once, then index by the row's dictionary index (same codes)
+        d_codes, d_missing = _label_codes(_as_string_array(values.dictionary), rc.labels)
+        idx = pc.fill_null(values.indices, 0).to_numpy(zero_copy_only=False).astype(np.int64)
+        row_null = np.asarray(values.is_null().to_numpy(zero_copy_only=False))
+        if len(d_codes):
+            codes, missing = d_codes[idx], d_missing[idx] | row_null
+        else:  # an empty dictionary: every row is missing
+            codes, missing = np.full(len(values), -1, dtype=np.int64), row_null
+    else:
+        codes, missing = _label_codes(_as_string_array(values), rc.labels)
+    codes = codes.copy()
     unknown = (codes < 0) & ~missing
     if missing.any():
         plan.diag.missing += int(missing.sum())
@@ -648,6 +666,7 @@ class PartJob:
     schema: pa.Schema
     sampler: ColumnSampler | None
     subject_key: str | None
+    dictionary: list[str] = field(default_factory=list)  # Parquet text columns read dictionary-encoded
 
 
 @dataclass
@@ -690,7 +709,7 @@ def write_part(job: PartJob, batches: Any, row0: int, keep: np.ndarray | None, p
 
 def fragment_part(job: PartJob, fs: Any, frag: Any, keep: np.ndarray | None, folder: str) -> PartResult:
     """One Parquet fragment of the input -> its output part (what a dask worker runs)."""
-    batches = _rebatch(read_fragment(fs, frag, job.read_cols, job.batch_rows), job.batch_rows)
+    batches = _rebatch(read_fragment(fs, frag, job.read_cols, job.batch_rows, job.dictionary), job.batch_rows)
     return write_part(job, batches, frag.row0, keep, Path(folder) / frag.part_name)
 
 
@@ -745,7 +764,8 @@ def run_parts_local(job: PartJob, src: Any, keep: np.ndarray | None, folder: Pat
     ds = src.parquet_dataset(fragment_rows) if hasattr(src, "parquet_dataset") else None
     if ds is not None:
         for frag in ds.fragments:
-            batches = _rebatch(read_fragment(ds.fs, frag, job.read_cols, job.batch_rows), job.batch_rows)
+            batches = _rebatch(read_fragment(ds.fs, frag, job.read_cols, job.batch_rows, job.dictionary),
+                               job.batch_rows)
             results.append(write_part(job, batches, frag.row0, _keep_slice(keep, frag.row0, frag.rows),
                                       folder / frag.part_name, on_batch=tick))
     else:  # CSV (or a frame): parts of fragment_rows rows, cut while reading
@@ -887,6 +907,8 @@ def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey
     subject_key = policy.policy.subject_key if any(p.memo is not None for p in plans) else None
     if subject_key is not None:
         read_cols.append(subject_key)
+    dict_cols = src.dictionary_columns([p.rc.name for p in plans if p.rc.type == "categorical"]) \
+        if hasattr(src, "dictionary_columns") else []
 
     charges: LedgerCharges | None = None
     if ledger_path is not None:
@@ -918,7 +940,7 @@ def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey
     with StagedFiles() as staged:
         tmp_extract = staged.add(out)
         if dataset_out:
-            job = PartJob(read_cols, batch_rows, plans, schema, sampler, subject_key)
+            job = PartJob(read_cols, batch_rows, plans, schema, sampler, subject_key, dict_cols)
             os.mkdir(tmp_extract, 0o755)
             if engine == "dask":
                 from .engine_dask import run_parts
@@ -942,7 +964,7 @@ def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey
         else:
             writer = BatchWriter(tmp_extract, fmt_out, schema)
             try:
-                for batch in src.batches(read_cols, batch_rows):
+                for batch in src.batches(read_cols, batch_rows, dictionary=dict_cols):
                     out_batch = privatize_batch(batch, rows, plans, schema, sampler, subject_key)
                     if keep_rows is not None:  # --allow-partial: drop the rows of subjects past the budget
                         out_batch = out_batch.filter(pa.array(keep_rows[rows:rows + batch.num_rows]))

@@ -630,3 +630,59 @@ def test_choose_numeric_matches_direct_computation():
                 assert m.worst_variance() <= m.variance(xs).max() * (1 + 1e-3)
             # hybrid equals two-point while alpha = 0 (eps <= 0.61), and wins outright above
             assert chosen.name == ("two-point" if eps <= 0.61 else "hybrid"), (eps, why)
+
+
+def test_guide_table_search_gives_the_binary_searchs_outputs():
+    """draw_index with a guide table (one look-up, then steps) returns exactly what the binary
+    search returns, for every table the mechanisms build and for a clumped one (many tiny
+    masses in one slice, where the steps are many), over 200,000 keyed words each."""
+    from ldptransform.mechanisms import Matrix, Piecewise, SquareWave
+    from ldptransform.mechanisms.matrix import grr_matrix
+    from ldptransform.mechanisms.numeric import SAMPLING_BITS, draw_index, guide_table, sampling_table
+
+    stream = KeyedStream(SecretKey(bytes(range(32))), "0" * 32, "guide-test")
+    w = stream.words(0, 200_000, 2)
+    cases = []
+    for eps in (0.1, 1.0, 8.0):
+        m = Piecewise(eps, (0, 100))
+        cases.append((m._sampling_table, m.outputs.shape[0]))
+    sw = SquareWave(1.0, (0, 10))
+    cases.append((sw._table, sw.n_cells))
+    mx = Matrix(1.0, [f"c{i}" for i in range(40)], grr_matrix(1.0, 40).tolist())
+    cases.append((mx._table, mx.k))
+    S = 1 << SAMPLING_BITS
+    F = np.full((3, 600), 1.0)  # 599 masses of one unit and one of the rest: all in the first slice
+    F[:, -1] = S - 599
+    cases.append((sampling_table(F), 600))
+    for table, M in cases:
+        guide = guide_table(table, M)
+        assert guide is not None
+        R = table.size // M
+        i = (w[:, 0] % np.uint64(R)).astype(np.int64)
+        words = w[:, 1].copy()
+        words[:1000] = np.arange(1000, dtype=np.uint64) << np.uint64(64 - SAMPLING_BITS)  # u = 0..999
+        np.testing.assert_array_equal(draw_index(table, i, words, M, guide), draw_index(table, i, words, M))
+
+
+def test_sorted_position_equals_searchsorted():
+    """The guided search used to check written values against a mechanism's output alphabet
+    gives np.searchsorted's index for every value: on and between alphabet values, on slice
+    edges, outside the range, NaN and infinities, for the alphabets of piecewise at several eps
+    and for an uneven alphabet."""
+    from ldptransform.mechanisms import Piecewise
+    from ldptransform.mechanisms.numeric import sorted_position
+
+    u = KeyedStream(SecretKey(bytes(range(32))), "0" * 32, "sorted-position").words(0, 50_000, 1)[:, 0]
+    unit = (u >> np.uint64(11)).astype(float) / float(1 << 53)
+    alphabets = [Piecewise(eps, (0, 100)).output_values for eps in (0.2, 1.0, 6.0)]
+    alphabets.append(np.cumsum(np.concatenate([[0.0], np.repeat([1e-9, 1.0, 1e-6], 100)])))
+    for alpha in alphabets:
+        lo, hi = alpha[0], alpha[-1]
+        span = hi - lo
+        B = 4 * len(alpha)
+        vals = np.concatenate([
+            lo - 0.1 * span + unit * 1.2 * span,              # spread over the range and beyond
+            alpha, np.nextafter(alpha, -np.inf), np.nextafter(alpha, np.inf),
+            lo + np.arange(B + 1) * (span / B),               # the guide's slice edges
+            [np.nan, np.inf, -np.inf, lo, hi]])
+        np.testing.assert_array_equal(sorted_position(alpha, vals), np.searchsorted(alpha, vals))

@@ -52,7 +52,7 @@ from ..errors import PolicyError
 from ..keys import to_below, to_unit
 from .base import Mechanism, check_epsilon, register
 from .categorical import GRR, HASH_PRIME, OLH
-from .numeric import SAMPLING_BITS, check_bounds, draw_index, integer_masses, sampling_table
+from .numeric import SAMPLING_BITS, check_bounds, draw_index, guide_table, integer_masses, sampling_table
 
 DEFAULT_SW_GRID = 256
 MAX_SW_GRID = 4096          # (N+1) * 2^SAMPLING_BITS must stay below 2^63
@@ -228,6 +228,10 @@ class SquareWave(Mechanism):
     def _table(self) -> np.ndarray:
         return sampling_table(self._integer_channel)
 
+    @cached_property
+    def _guide(self) -> np.ndarray | None:
+        return guide_table(self._table, self.n_cells)
+
     @property
     def inputs(self) -> np.ndarray:
         """The input grid in column units, shape (N+1,)."""
@@ -251,7 +255,7 @@ class SquareWave(Mechanism):
         s = np.clip((np.asarray(x, dtype=float) - self.lo) * (N / (self.hi - self.lo)), 0.0, float(N))
         i0 = np.minimum(np.floor(s), N - 1).astype(np.int64)
         i = i0 + (to_unit(words[:, 0]) < s - i0)
-        return draw_index(self._table, i, words[:, 1], self.n_cells)
+        return draw_index(self._table, i, words[:, 1], self.n_cells, self._guide)
 
     def randomize(self, x: np.ndarray, words: np.ndarray) -> list[pa.Array]:
         return [pa.array(self.randomize_index(x, words).astype(np.int32))]

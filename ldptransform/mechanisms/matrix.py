@@ -43,7 +43,7 @@ import pyarrow.compute as pc
 from ..errors import PolicyError
 from .base import register
 from .categorical import FrequencyOracle, _as_strings
-from .numeric import SAMPLING_BITS, draw_index, integer_masses, sampling_table
+from .numeric import SAMPLING_BITS, draw_index, guide_table, integer_masses, sampling_table
 
 # A k x k matrix is written into the policy and the manifest; 1024 categories is already a
 # million entries.  (The shared sampler itself allows up to 8192 rows.)
@@ -201,6 +201,10 @@ class Matrix(FrequencyOracle):
     def _table(self) -> np.ndarray:
         return sampling_table(self._masses)
 
+    @cached_property
+    def _guide(self) -> np.ndarray | None:
+        return guide_table(self._table, self.k)
+
     def channel(self) -> np.ndarray:
         """Exact P(published y | true x) as realized by the sampler, shape (k, k)."""
         return self._masses / _UNIT
@@ -267,7 +271,7 @@ class Matrix(FrequencyOracle):
     def randomize_codes(self, x: np.ndarray, words: np.ndarray) -> np.ndarray:
         """Published code for each true code x (0..k-1), drawn with PRF word 1 of each row."""
         i = np.asarray(x, dtype=np.int64)
-        return draw_index(self._table, i, words[:, 1], self.k)
+        return draw_index(self._table, i, words[:, 1], self.k, self._guide)
 
     def randomize(self, x: np.ndarray, words: np.ndarray) -> list[pa.Array]:
         return [self._labels_dictionary(self.randomize_codes(x, words))]

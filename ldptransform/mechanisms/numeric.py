@@ -96,12 +96,47 @@ def sampling_table(F: np.ndarray) -> np.ndarray:
     return cum.ravel()
 
 
-def draw_index(table: np.ndarray, i: np.ndarray, words: np.ndarray, M: int) -> np.ndarray:
+GUIDE_BITS = 11            # slices of [0, 2^SAMPLING_BITS) per input row in a guide table
+GUIDE_MAX_ENTRIES = 1 << 22  # at most 16 MiB of int32 per table; larger channels search without a guide
+
+
+def guide_table(table: np.ndarray, M: int) -> np.ndarray | None:
+    """For each input row i of a ``sampling_table`` and each of 2^GUIDE_BITS equal slices of
+    [0, 2^SAMPLING_BITS): the number of row i's cumulative masses <= the slice's start, i.e. the
+    smallest output any u in the slice can draw.  ``draw_index`` starts there and steps forward,
+    which replaces a binary search over the whole table by one look-up and a step or two (the
+    same output: a guide table for inverse-CDF sampling).  None for tables too small to gain
+    or too large to index this way."""
+    R = table.size // M
+    if table.size <= 64 or R * (1 << GUIDE_BITS) > GUIDE_MAX_ENTRIES:
+        return None
+    width = 1 << (SAMPLING_BITS - GUIDE_BITS)
+    starts = ((np.arange(R, dtype=np.int64)[:, None] << SAMPLING_BITS)
+              + np.arange(1 << GUIDE_BITS, dtype=np.int64)[None, :] * width)
+    counts = np.searchsorted(table, starts.ravel(), side="right").reshape(R, 1 << GUIDE_BITS)
+    return (counts - np.arange(R, dtype=np.int64)[:, None] * M).astype(np.int32)
+
+
+def draw_index(table: np.ndarray, i: np.ndarray, words: np.ndarray, M: int,
+               guide: np.ndarray | None = None) -> np.ndarray:
     """Output index for input row ``i`` of a channel with ``M`` outputs, by exact integer
     comparison of the top SAMPLING_BITS bits of each PRF word with the cumulative masses:
-    output j iff cum[i, j-1] <= u < cum[i, j], u uniform on [0, 2^SAMPLING_BITS)."""
+    output j iff cum[i, j-1] <= u < cum[i, j], u uniform on [0, 2^SAMPLING_BITS).  With
+    ``guide`` (``guide_table`` of the same table) the search starts at the guide's entry and
+    steps forward; without, it is a binary search.  Both give the same index."""
     u = (words >> np.uint64(64 - SAMPLING_BITS)).astype(np.int64)
     keys = (i << SAMPLING_BITS) + u
+    if guide is not None and keys.size > 64:
+        # the guide entry is at most M - 1 and row i's last cumulative mass (i + 1) * 2^BITS is
+        # above every key of row i, so the steps never leave the row: no bounds checks needed
+        base = i * M
+        pos = base + guide.reshape(-1)[(i << GUIDE_BITS) | (u >> (SAMPLING_BITS - GUIDE_BITS))]
+        idx = np.flatnonzero(table[pos] <= keys)
+        while idx.size:  # cumulative masses within the slice that are still <= u: step past them
+            pos[idx] += 1
+            idx = idx[table[pos[idx]] <= keys[idx]]
+        pos -= base
+        return pos
     if table.size > 64 and keys.size > 64:
         # Same search on sorted keys (then put back in row order): the table is walked in
         # order instead of at random, several times faster for large grids; same result.
@@ -112,6 +147,39 @@ def draw_index(table: np.ndarray, i: np.ndarray, words: np.ndarray, M: int) -> n
         pos = np.searchsorted(table, keys, side="right")
     pos -= i * M
     return np.clip(pos, 0, M - 1)
+
+
+def sorted_position(alpha: np.ndarray, vals: np.ndarray, per_item: int = 4) -> np.ndarray:
+    """``np.searchsorted(alpha, vals)`` (side left) for a sorted float alphabet, computed with a
+    guide over equal slices of [alpha[0], alpha[-1]] and a few vectorized steps: one look-up per
+    value instead of a binary search with random memory access.  Exactly the same result for
+    every value, NaN and infinities included (they take the binary search)."""
+    n = len(alpha)
+    vals = np.asarray(vals, dtype=float)
+    if n < 16 or vals.size < 1024 or not (alpha[-1] > alpha[0]):
+        return np.searchsorted(alpha, vals)
+    lo, hi = float(alpha[0]), float(alpha[-1])
+    B = per_item * n
+    scale = B / (hi - lo)
+    guide = np.searchsorted(alpha, lo + np.arange(B + 1) / scale)
+    t = (vals - lo) * scale
+    inside = (t >= 0) & (t < B)  # False for NaN and values outside: binary search below
+    out = np.empty(vals.shape, dtype=np.int64)
+    out[~inside] = np.searchsorted(alpha, vals[~inside])
+    k = np.flatnonzero(inside)
+    v = vals[k]
+    pos = guide[t[k].astype(np.int64)]
+    # the slice's start may round either way: step back while alpha[pos - 1] >= v, then forward
+    back = np.flatnonzero((pos > 0) & (alpha[np.maximum(pos - 1, 0)] >= v))
+    while back.size:
+        pos[back] -= 1
+        back = back[(pos[back] > 0) & (alpha[np.maximum(pos[back] - 1, 0)] >= v[back])]
+    fwd = np.flatnonzero((pos < n) & (alpha[np.minimum(pos, n - 1)] < v))
+    while fwd.size:
+        pos[fwd] += 1
+        fwd = fwd[(pos[fwd] < n) & (alpha[np.minimum(pos[fwd], n - 1)] < v[fwd])]
+    out[k] = pos
+    return out
 
 
 def normalize(x: np.ndarray, lo: float, hi: float) -> np.ndarray:
@@ -197,6 +265,10 @@ class GridMechanism(Mechanism):
         """Row i's integer cumulative masses offset by i * 2^SAMPLING_BITS, flattened (int64)."""
         return sampling_table(self._integer_channel)
 
+    @cached_property
+    def _guide(self) -> np.ndarray | None:
+        return guide_table(self._sampling_table, self.outputs.shape[0])
+
     # randomization ---------------------------------------------------------------
     @property
     def words_per_row(self) -> int:
@@ -209,7 +281,7 @@ class GridMechanism(Mechanism):
         """Index into ``outputs`` for each input value x (column units, within bounds)."""
         _, i0, frac = grid_position(x, self.lo, self.hi, self.grid)
         i = i0 + (to_unit(words[:, 0]) < frac)
-        return draw_index(self._sampling_table, i, words[:, 1], self.outputs.shape[0])
+        return draw_index(self._sampling_table, i, words[:, 1], self.outputs.shape[0], self._guide)
 
     def randomize(self, x: np.ndarray, words: np.ndarray) -> list[pa.Array]:
         return [pa.array(self.output_values[self.randomize_index(x, words)])]
@@ -223,7 +295,7 @@ class GridMechanism(Mechanism):
         vals = pc.cast(arr, pa.float64()).to_numpy(zero_copy_only=False)
         ok = np.isfinite(vals)
         alpha = self.output_values
-        idx = np.clip(np.searchsorted(alpha, vals), 1, len(alpha) - 1)
+        idx = np.clip(sorted_position(alpha, vals), 1, len(alpha) - 1)
         near = np.minimum(np.abs(vals - alpha[idx - 1]), np.abs(vals - alpha[idx]))
         tol = 1e-9 * (self.hi - self.lo)
         return int((~ok | ~(np.nan_to_num(near, nan=np.inf) <= tol)).sum())
