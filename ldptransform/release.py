@@ -934,6 +934,12 @@ def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey
                 f"every subject of this release is past the lifetime budget (budget.lifetime_epsilon = {cap:g} in "
                 f"ledger {ledger_path}); nothing was written, as there is nothing left to release.")
     keep_rows = None if charges is None or charges.within.all() else charges.row_within
+    if keep_rows is not None and dataset_out:
+        raise UsageError(
+            f"--allow-partial would hold back {int((~charges.within).sum())} subject(s) (steward-only figure), "
+            "and a dataset extract would show how many rows each part lost: every part covers a known range "
+            "of input rows. Write a single-file extract instead (--out FILE.parquet), or release without "
+            "--allow-partial once everyone is within the budget; nothing was written.")
 
     rows = 0
     released = 0

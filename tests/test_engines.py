@@ -285,3 +285,19 @@ def test_cli_dask_engine_on_a_local_cluster(dataset: Path, tmp_path: Path, ldpt,
     assert json.loads(res.stdout)["rows"] == 12000
     res = ldpt("validate", tmp_path / "ext")
     assert res.returncode == 0, res.stdout + res.stderr
+
+
+def test_allow_partial_with_held_back_rows_refuses_a_dataset_extract(dataset: Path, tmp_path: Path) -> None:
+    """Per-part row counts of known input ranges would show where rows were held back: refused,
+    nothing written; the same release to one file goes ahead."""
+    pol_d = memo_policy()
+    pol_d["budget"]["lifetime_epsilon"] = 7.5  # one release costs 7 per row; a repeated staff_id costs more
+    pol = parse_policy(pol_d, "survey.yaml")
+    led = tmp_path / "ledger.sqlite3"
+    privatize(dataset / "a.parquet", pol, KEY, tmp_path / "n1.parquet", nonce=NONCE, ledger_path=led)
+    night2 = "0" * 31 + "2"  # the people of a.parquet are now past the budget, the others are not
+    with pytest.raises(UsageError, match="would show how many rows each part lost"):
+        privatize(dataset, pol, KEY, tmp_path / "ds", nonce=night2, ledger_path=led, allow_partial=True)
+    assert not (tmp_path / "ds").exists() and not (tmp_path / "ds.manifest.json").exists()
+    r = privatize(dataset, pol, KEY, tmp_path / "n2.parquet", nonce=night2, ledger_path=led, allow_partial=True)
+    assert r.held_back_subjects > 0 and r.manifest.rows < 12000
