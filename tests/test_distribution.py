@@ -705,9 +705,10 @@ def _square_wave_coverage(n: int, releases: int) -> tuple[float, float, float]:
 
 @pytest.mark.slow
 def test_square_wave_bootstrap_coverage_at_20000_rows():
-    """100 releases of 20000 pay rows, square wave (grid 256, eps 1), 200 bootstrap redraws,
-    bias-aware intervals: in the band (measured: median 0.96, range 0.98).  About 70 s."""
-    cq, cr, half = _square_wave_coverage(20_000, 100)
+    """60 releases of 20000 pay rows, square wave (grid 256, eps 1), 200 bootstrap redraws,
+    bias-aware intervals: in the band (measured: median 0.95, range 0.967; over 100 releases
+    0.96 and 0.98: cut to 60 to keep the suite under 10 minutes).  About 45 s."""
+    cq, cr, half = _square_wave_coverage(20_000, 60)
     assert 0.90 <= cq <= 0.99, cq
     assert 0.90 <= cr <= 0.99, cr
     assert half < 0.85, half

@@ -98,6 +98,11 @@ def test_a_dataset_reads_as_one_table_in_path_order(dataset: Path, tmp_path: Pat
     b = privatize(dataset.parent / "whole.parquet", pol, KEY, tmp_path / "from_file.parquet", nonce=NONCE)
     assert a.manifest.rows == 12000
     assert a.manifest.extract.sha256 == b.manifest.extract.sha256
+    # the same dataset named by a URI (the path object stores take: pyarrow's filesystem layer)
+    c = privatize(f"file://{dataset}", pol, KEY, tmp_path / "from_uri.parquet", nonce=NONCE)
+    assert c.manifest.extract.sha256 == a.manifest.extract.sha256
+    with pytest.raises(InputFileError, match="does not exist"):
+        privatize(f"file://{dataset}-missing", pol, KEY, tmp_path / "x.parquet", nonce=NONCE)
 
 
 @pytest.mark.parametrize("policy_fn", [survey_policy, memo_policy, sample_policy],
