@@ -811,7 +811,13 @@ def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey
     written; over the cap the release is refused, or with ``allow_partial`` only the rows of
     subjects within it are released.  The release is recorded in the ledger after the extract
     and manifest are staged and before they are renamed into place: a refused record leaves
-    nothing; a crash between the ledger commit and the rename leaves an over-count (safe side)."""
+    nothing; a crash between the ledger commit and the rename leaves an over-count (safe side).
+
+    ``input_path`` may be a file, a Parquet dataset (folder or URI; dataset.py) or, through
+    ``engine_dask.privatize_frame``, a dask DataFrame.  An ``out`` without a file extension
+    writes a Parquet dataset of parts of at most ``fragment_rows`` rows; ``engine="dask"``
+    writes those parts on dask workers (``scheduler``: a running cluster's address; None: a
+    local cluster), byte for byte as the local engine does."""
     from .dataset import DEFAULT_FRAGMENT_ROWS, is_uri
 
     t0 = time.perf_counter()
