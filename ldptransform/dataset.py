@@ -130,6 +130,8 @@ class ParquetDataset:
             rows = 0
             for g in range(md.num_row_groups):
                 n = md.row_group(g).num_rows
+                if n == 0:  # an empty row group (an empty file's): no part of its own
+                    continue
                 if groups and rows + n > fragment_rows:
                     self.fragments.append(Fragment(len(self.fragments), path, tuple(groups), row0, rows))
                     row0 += rows
