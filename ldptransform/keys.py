@@ -104,6 +104,12 @@ def new_key_file(path: Path) -> SecretKey:
     return key
 
 
+def shared_access(st: os.stat_result) -> str | None:
+    """For a file that must stay private to its owner (key, ledger): None if no other user may
+    read or write it, else how it is open ("mode 0644"), for the caller's message."""
+    return f"mode {stat.S_IMODE(st.st_mode):04o}" if st.st_mode & 0o077 else None
+
+
 def load_key(path: Path) -> SecretKey:
     """Read a key file; refuse a missing, malformed or group/other-readable one."""
     path = Path(path)
@@ -116,9 +122,10 @@ def load_key(path: Path) -> SecretKey:
         raise KeyFileError(f"cannot read key file {path}: {err.strerror}.") from None
     if not stat.S_ISREG(st.st_mode):
         raise KeyFileError(f"key file {path} is not a regular file. Point --key at the file made by `ldpt key new`.")
-    if st.st_mode & 0o077:
+    open_to = shared_access(st)
+    if open_to:
         raise KeyFileError(
-            f"key file {path} can be read or written by other users (mode {stat.S_IMODE(st.st_mode):04o}). "
+            f"key file {path} can be read or written by other users ({open_to}). "
             f"A secret key must be private to the steward: run `chmod 600 {path}` and consider whether "
             "the key has been exposed (if so, make a new one with `ldpt key new`).")
     try:

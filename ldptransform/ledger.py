@@ -51,14 +51,14 @@ import zlib
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any, Iterable, Mapping
+from typing import Any, Mapping
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
 from .errors import LdptError
-from .keys import SecretKey, SubjectPRF, check_nonce
+from .keys import SecretKey, SubjectPRF, check_nonce, shared_access
 
 SCHEMA_VERSION = 2  # 2: subjects and values hashed with the AES-based keyed PRF (1: HMAC-SHA256)
 APPLICATION_ID = 0x4C445450  # "LDTP": marks a SQLite file as an ldptransform ledger
@@ -427,9 +427,10 @@ class Ledger:
             st = path.stat()
         if not stat.S_ISREG(st.st_mode):
             raise LedgerError(f"ledger {path} is not a regular file. Point --ledger at a ledger file.")
-        if st.st_mode & 0o077:
+        open_to = shared_access(st)
+        if open_to:
             raise LedgerError(
-                f"ledger {path} can be read or written by other users (mode {stat.S_IMODE(st.st_mode):04o}). "
+                f"ledger {path} can be read or written by other users ({open_to}). "
                 f"The ledger is steward-only data (per-subject spend depends on the data): run "
                 f"`chmod 600 {path}`.")
         try:

@@ -14,7 +14,6 @@ import subprocess
 import sys
 from pathlib import Path
 
-import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
@@ -22,7 +21,7 @@ import pytest
 
 from conftest import DEMO_CSV, FIXED_KEY_BYTES, survey_policy, write_fixed_key, write_policy
 from ldptransform import estimate, privatize, validate
-from ldptransform.errors import DataError, InputFileError, LdptError, UsageError
+from ldptransform.errors import InputFileError, LdptError, UsageError
 from ldptransform.keys import SecretKey
 from ldptransform.ledger import Ledger
 from ldptransform.policy import parse_policy
@@ -113,7 +112,7 @@ def test_dask_engine_writes_the_local_engines_parts_bit_for_bit(policy_fn, datas
     loc = privatize(dataset, pol, KEY, tmp_path / "local", nonce=NONCE, fragment_rows=2000)
     dsk = privatize(dataset, pol, KEY, tmp_path / "dask", nonce=NONCE, fragment_rows=2000, engine="dask",
                     scheduler=cluster)
-    # fragments: runs of whole row groups of at most 2000 rows: 2 + 6 (one of 700 rows each... ) + 2
+    # fragments: runs of whole row groups of at most 2000 rows (a.parquet: 1000-row groups; b: 700; c: 2500)
     rows = [p.rows for p in loc.manifest.extract.parts]
     assert rows == [2000, 1000, 1400, 1400, 1200] + [2500, 2500]
     assert parts_of(tmp_path / "local") == parts_of(tmp_path / "dask")
@@ -133,12 +132,12 @@ def test_csv_input_with_the_dask_engine(tmp_path: Path, cluster: str) -> None:
     """CSV: read in order by the client (its counting pass), parts of --part-rows rows written
     by the workers; the same parts as the local engine's."""
     pol = parse_policy(survey_policy(), "survey.yaml")
-    loc = privatize(DEMO_CSV, pol, KEY, tmp_path / "local", nonce=NONCE, fragment_rows=5000)
+    privatize(DEMO_CSV, pol, KEY, tmp_path / "local", nonce=NONCE, fragment_rows=5000)
     dsk = privatize(DEMO_CSV, pol, KEY, tmp_path / "dask", nonce=NONCE, fragment_rows=5000, engine="dask",
                     scheduler=cluster)
     assert [p.rows for p in dsk.manifest.extract.parts] == [5000, 5000, 2000]
     assert parts_of(tmp_path / "local") == parts_of(tmp_path / "dask")
-    one = privatize(DEMO_CSV, pol, KEY, tmp_path / "one.parquet", nonce=NONCE)
+    privatize(DEMO_CSV, pol, KEY, tmp_path / "one.parquet", nonce=NONCE)
     assert pq.read_table(tmp_path / "dask").equals(pq.read_table(tmp_path / "one.parquet"))
 
 
