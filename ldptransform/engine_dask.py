@@ -90,7 +90,7 @@ def _open_client(scheduler: str | None, needs_keys: bool = True) -> tuple[Any, A
 
     if scheduler is None:
         cluster = LocalCluster(n_workers=DEFAULT_WORKERS, threads_per_worker=1, processes=True,
-                               dashboard_address=None, silence_logs=logging.ERROR)
+                               dashboard_address=None, silence_logs=logging.CRITICAL)
         return Client(cluster), cluster
     if needs_keys:
         check_scheduler_address(scheduler)

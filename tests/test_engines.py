@@ -289,6 +289,20 @@ def test_cli_dask_engine_on_a_local_cluster(dataset: Path, tmp_path: Path, ldpt,
     assert json.loads(res.stdout)["rows"] == 12000
     res = ldpt("validate", tmp_path / "ext")
     assert res.returncode == 0, res.stdout + res.stderr
+    # a bad value found by a worker: the same one-paragraph error as locally (global row number),
+    # exit 2, no traceback (not even a worker's log), nothing written
+    bad = tmp_path / "bad"
+    bad.mkdir()
+    t = pq.read_table(dataset / "c.parquet").to_pandas()
+    t.loc[100, "role"] = "Astronaut"
+    pq.write_table(pq.read_table(dataset / "a.parquet"), bad / "a.parquet")
+    pq.write_table(pa.Table.from_pandas(t, preserve_index=False), bad / "b.parquet")
+    res = ldpt("privatize", bad, "--policy", pol, "--key", key, "--out", tmp_path / "bad_out", "--engine", "dask")
+    assert res.returncode == 2, res.stderr
+    assert "Traceback" not in res.stderr and "ERROR" not in res.stderr, res.stderr
+    assert "'role'" in res.stderr and "data row 3101" in res.stderr
+    assert not (tmp_path / "bad_out").exists() and not (tmp_path / "bad_out.manifest.json").exists()
+    assert [p.name for p in tmp_path.iterdir() if "partial" in p.name] == []
 
 
 def test_allow_partial_with_held_back_rows_refuses_a_dataset_extract(dataset: Path, tmp_path: Path) -> None:
