@@ -132,7 +132,7 @@ def privatize(
                                   "'ldptransform[dask]'). Both write the same bytes."),
     scheduler: Optional[str] = typer.Option(None, "--scheduler", help="With --engine dask: address of a running "
                                             "dask scheduler (tls://HOST:PORT, or tcp:// on this machine) "
-                                            "[default: a local cluster, one worker per core]."),
+                                            "[default: a local cluster, one worker per core, at most 8]."),
     part_rows: int = typer.Option(1 << 20, "--part-rows", min=1, help="Dataset output: the most rows per "
                                   "part (Parquet input: whole row groups; never changes the rows' values)."),
 ) -> None:
