@@ -291,15 +291,20 @@ class _Snapshot:
     totals: np.ndarray
     states: dict[str, np.ndarray]
     index: _Index = field(init=False, repr=False)
+    _padded: dict[str, np.ndarray] = field(init=False, repr=False, default_factory=dict)
 
     def __post_init__(self) -> None:
         self.index = _Index(self.digests)
 
     def state(self, column: str) -> np.ndarray:
-        """A column's last-value digests padded with zero digests to the registry's length."""
-        st = self.states.get(column, np.zeros(0, dtype=DIGEST))
-        if len(st) < len(self.digests):
-            st = np.concatenate([st, np.zeros(len(self.digests) - len(st), dtype=DIGEST)])
+        """A column's last-value digests padded with zero digests to the registry's length
+        (padded once per snapshot: the pre-pass asks for it in every batch)."""
+        st = self._padded.get(column)
+        if st is None:
+            st = self.states.get(column, np.zeros(0, dtype=DIGEST))
+            if len(st) < len(self.digests):
+                st = np.concatenate([st, np.zeros(len(self.digests) - len(st), dtype=DIGEST)])
+            self._padded[column] = st
         return st
 
     def arrays(self) -> dict[str, bytes]:
@@ -543,14 +548,20 @@ class Ledger:
         idx = snap.index.find(h)
         return np.where(idx >= 0, snap.totals[np.maximum(idx, 0)] if len(snap.totals) else 0.0, 0.0)
 
-    def last_values(self, column: str, subject_hashes: Any) -> np.ndarray:
-        """Keyed hash of each subject's last value of a memoized column (all-zero digest if none)."""
+    def positions(self, subject_hashes: Any) -> np.ndarray:
+        """Each subject's place in the registry (-1 for subjects never charged), to look up
+        several memoized columns of the same subjects with one search (``last_values``)."""
+        return self._read().index.find(as_digests(subject_hashes))
+
+    def last_values(self, column: str, subject_hashes: Any, positions: np.ndarray | None = None) -> np.ndarray:
+        """Keyed hash of each subject's last value of a memoized column (all-zero digest if none).
+        ``positions``: from ``positions`` for the same subjects (saves the search)."""
         h = as_digests(subject_hashes)
         snap = self._read()
         out = np.zeros(len(h), dtype=DIGEST)
         if column not in snap.states:
             return out
-        idx = snap.index.find(h)
+        idx = snap.index.find(h) if positions is None else np.asarray(positions)
         hit = idx >= 0
         out[hit] = snap.state(column)[idx[hit]]
         return out

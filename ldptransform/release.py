@@ -610,6 +610,7 @@ def ledger_prepass(src: TableSource, plans: list[ColumnPlan], policy: LoadedPoli
         eps = np.full(n, float(base))
         reported = sampler.reported(row0, n) if sample else None
         subjects = subject_bytes(col, subject, row0) if memo_plans else None
+        where = ledger.positions(sh) if ledger is not None and memo_plans and not sample else None
         for p in memo_plans:
             values = batch.column(p.rc.name)
             if p.rc.type == "categorical":
@@ -626,7 +627,8 @@ def ledger_prepass(src: TableSource, plans: list[ColumnPlan], policy: LoadedPoli
                 rows, shr, vhr = rows[rep], sh[rep], vh[rep]
             else:
                 shr, vhr = sh, vh
-                last = ledger.last_values(p.rc.name, sh) if ledger is not None else np.zeros(n, dtype=sh.dtype)
+                last = (ledger.last_values(p.rc.name, sh, where) if ledger is not None
+                        else np.zeros(n, dtype=sh.dtype))
                 eps += np.where(vh != last, p.rc.mechanism.epsilon, 0.0)
             memo[p.rc.name].append((rows, shr, vhr))
         hashes.append(sh)

@@ -165,3 +165,20 @@ def realized_channel(randomize_index, xs: "np.ndarray", M: int) -> "np.ndarray":
     first = lo.reshape(R, M)
     nxt = np.concatenate([first[:, 1:], np.full((R, 1), 1 << 53)], axis=1)
     return (nxt - first) / float(1 << 53)
+
+
+def assert_user_error(res: subprocess.CompletedProcess, names: list[str], forbidden: list[str] = ()) -> str:
+    """Exit 2, one paragraph on stderr naming every item of ``names``, no traceback, and none
+    of ``forbidden`` (raw values, key material) anywhere in the output."""
+    err = res.stderr
+    assert res.returncode == 2, f"exit {res.returncode}, stderr:\n{err}"
+    assert "Traceback" not in err and "Traceback" not in res.stdout
+    text = err.strip()
+    assert text, "no message on stderr"
+    assert "\n\n" not in text, f"more than one paragraph:\n{err}"
+    assert text.startswith("Error:"), err
+    for name in names:
+        assert name in text, f"the message does not name {name!r}:\n{err}"
+    for value in forbidden:
+        assert value not in err and value not in res.stdout, f"the output echoes {value!r}:\n{err}"
+    return text

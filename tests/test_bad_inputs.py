@@ -9,7 +9,6 @@ from __future__ import annotations
 import csv
 import os
 import shutil
-import subprocess
 from pathlib import Path
 from typing import Any, Callable
 
@@ -17,29 +16,12 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 import pytest
 
-from conftest import DEMO_CSV, listing, partials, sha256, survey_policy, write_policy
+from conftest import DEMO_CSV, assert_user_error, listing, partials, sha256, survey_policy, write_policy
 
 Mutation = Callable[[dict[str, Any]], None]
 
 
 # -- the common assertions -------------------------------------------------------------------
-
-def assert_user_error(res: subprocess.CompletedProcess, names: list[str], forbidden: list[str] = ()) -> str:
-    """Exit 2, one paragraph on stderr naming every item of ``names``, no traceback, and none
-    of ``forbidden`` (raw values, key material) anywhere in the output."""
-    err = res.stderr
-    assert res.returncode == 2, f"exit {res.returncode}, stderr:\n{err}"
-    assert "Traceback" not in err and "Traceback" not in res.stdout
-    text = err.strip()
-    assert text, "no message on stderr"
-    assert "\n\n" not in text, f"more than one paragraph:\n{err}"
-    assert text.startswith("Error:"), err
-    for name in names:
-        assert name in text, f"the message does not name {name!r}:\n{err}"
-    for value in forbidden:
-        assert value not in err and value not in res.stdout, f"the output echoes {value!r}:\n{err}"
-    return text
-
 
 class Release:
     """A privatize run's paths, with the checks that nothing was written."""

@@ -9,7 +9,6 @@ data only; all release noise comes from the tool's keyed PRF).  Keys and nonces 
 
 from __future__ import annotations
 
-import copy
 import json
 import sqlite3
 from pathlib import Path
@@ -56,6 +55,15 @@ def policy(cap: float | None = None) -> dict[str, Any]:
     }
     if cap is not None:
         p["budget"]["lifetime_epsilon"] = cap
+    return p
+
+
+def policy_without_subject(cap: float | None = None) -> dict[str, Any]:
+    """The test policy without subject_key and without memoized columns."""
+    p = policy(cap)
+    del p["subject_key"]
+    for c in p["columns"].values():
+        c.pop("memoize", None)
     return p
 
 
@@ -206,10 +214,7 @@ def test_bad_ledger_use_is_refused_before_writing(tmp_path: Path) -> None:
     df = people(20)
     raw = tmp_path / "in.csv"
     df.to_csv(raw, index=False)
-    no_subject = policy()
-    del no_subject["subject_key"]
-    for c in no_subject["columns"].values():
-        c.pop("memoize", None)
+    no_subject = policy_without_subject()
     no_subject["columns"]["person"] = {"type": "drop"}
     before = listing(tmp_path)
     with pytest.raises(UsageError, match="subject_key"):
@@ -218,10 +223,7 @@ def test_bad_ledger_use_is_refused_before_writing(tmp_path: Path) -> None:
     with pytest.raises(UsageError, match="lifetime"):
         privatize(raw, parse_policy(policy(), "p.yaml"), KEY, tmp_path / "o.parquet", nonce=NIGHT1,
                   ledger_path=tmp_path / "l.sqlite3", allow_partial=True)
-    bad = policy(cap=5.0)
-    del bad["subject_key"]
-    for c in bad["columns"].values():
-        c.pop("memoize", None)
+    bad = policy_without_subject(cap=5.0)
     with pytest.raises(LdptError, match="lifetime_epsilon"):
         parse_policy(bad, "p.yaml")
     df.loc[3, "person"] = None  # a missing identifier: refused in the pre-pass, no ledger file made
@@ -248,10 +250,7 @@ def test_cli_ledger_options(tmp_path: Path, ldpt, private_dir: Path) -> None:
     df = people(50)
     raw = tmp_path / "in.csv"
     df.to_csv(raw, index=False)
-    no_subject = policy()
-    del no_subject["subject_key"]
-    for c in no_subject["columns"].values():
-        c.pop("memoize", None)
+    no_subject = policy_without_subject()
     no_subject["columns"]["person"] = {"type": "drop"}
     pol = write_policy(tmp_path / "nosub.yaml", no_subject)
     before = listing(tmp_path)

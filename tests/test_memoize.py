@@ -15,7 +15,6 @@ standard errors; chi-square p-value above 1e-6).
 
 from __future__ import annotations
 
-import hashlib
 import json
 import subprocess
 from pathlib import Path
@@ -27,7 +26,7 @@ import pytest
 from cryptography.hazmat.primitives.ciphers import Cipher, algorithms, modes
 from scipy import stats
 
-from conftest import listing, partials, write_fixed_key, write_policy
+from conftest import assert_user_error, listing, partials, write_fixed_key, write_policy
 from ldptransform.keys import SecretKey, SubjectPRF
 from ldptransform.policy import parse_policy
 from ldptransform.release import privatize
@@ -338,12 +337,7 @@ def test_bad_memo_policies_are_refused(case: str, tmp_path: Path, private_dir: P
     before = listing(work)
     res: subprocess.CompletedProcess = ldpt("privatize", raw, "--policy", pol, "--key", key,
                                             "--out", work / "extract.parquet")
-    err = res.stderr.strip()
-    assert res.returncode == 2, f"exit {res.returncode}:\n{res.stderr}"
-    assert "Traceback" not in res.stderr + res.stdout
-    assert err.startswith("Error:") and "\n\n" not in err, err
-    for name in names:
-        assert name in err, f"the message does not name {name!r}:\n{err}"
+    assert_user_error(res, names)
     assert listing(work) == before and partials(work) == [] and listing(private_dir) == []
 
 
