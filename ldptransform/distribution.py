@@ -62,7 +62,7 @@ def frequency_covariance(p_star: float, q_star: float, n: int, support: np.ndarr
     support exactly one value, such as GRR: then it is diag(support)).
 
     It is the sample covariance of the per-row estimates u_i = (1[v in S(y_i)] - q*)/(p* - q*)
-    divided by n (REFERENCE.md section 0.3: Var of a set estimate is the variance of
+    divided by n (docs/formulas.md section 0.3: Var of a set estimate is the variance of
     |S(y) & A| over rows).  Unlike the per-value variance formula it includes the correlation
     between values, which for local hashing with an affine hash is far from zero for
     neighbouring codes; for rows drawn from a population it is the right covariance, for the
@@ -384,7 +384,7 @@ def binned_distribution(edges: np.ndarray, freq_estimates: np.ndarray, prefix_se
         SE of each prefix sum of the estimates: of f_0, f_0 + f_1, ..., f_0 + ... + f_{K-1}
         (a leading 0 for the empty prefix may be included).  For a set A of bins this is
         sqrt(sum_i Var |S(y_i) & A|) / (n (p* - q*)), estimated from the per-row counts
-        |S(y_i) & A| (REFERENCE.md section 0.3); per-value variances summed would ignore the
+        |S(y_i) & A| (docs/formulas.md section 0.3); per-value variances summed would ignore the
         correlation between values.
     cov : ndarray of shape (K, K), optional
         Covariance of the estimates (``frequency_covariance``); if given, every interval uses

@@ -11,7 +11,7 @@ addition, and memory does not grow with the extract.
   (around the middle of the bounds, for numerical accuracy).
 * cross-tab of columns A and B: the average of u_a(y_A) * u_b(y_B) is unbiased for the
   joint share, because the two columns are randomized independently given the row
-  (REFERENCE.md section 12); conditional shares and grouped means are ratios of two such
+  (docs/formulas.md section 12); conditional shares and grouped means are ratios of two such
   averages, with delta-method standard errors.
 * distribution mechanisms (and binned columns): additive histograms, decoded into a
   distribution with CDF, quantiles and range shares (``distribution.py``).
@@ -168,7 +168,7 @@ class CategoricalStats:
         return _moments(total, sq, self.n)
 
     def covariance(self) -> np.ndarray:
-        """Covariance matrix of the frequency estimates (needs ``joint``; REFERENCE.md 0.3)."""
+        """Covariance matrix of the frequency estimates (needs ``joint``; docs/formulas.md 0.3)."""
         return self.mechanism.decode_covariance(self.support, self.n, self.cosupport)
 
     def frequencies(self, z: float, method: str = "norm-sub", rows: int | None = None) -> list[dict[str, Any]]:

@@ -13,7 +13,7 @@ values):
 * frequencies: the root mean square over the column's values of each share's SE.  Per
   report, n * Var = (noise variance of the mechanism, summed over values) + (1 - sum f^2),
   averaged over the k values; the second part is largest for equal shares, which is the case
-  predicted (REFERENCE.md sections 0.3 and 0.4).
+  predicted (docs/formulas.md sections 0.3 and 0.4).
 * means: the SE of the mean, worst case over data (data split evenly between the two
   bounds, which maximizes the spread of the reports for every mean mechanism of the tool:
   each one's second moment grows with |value - middle|).
@@ -25,7 +25,7 @@ values):
   distribution, not a worst case; an approximation: say so when quoting it.
 
 The lower bounds are in the same units: the smallest worst-case SE any eps-LDP mechanism is
-known to reach (frequencies: REFERENCE.md section 4 via bounds.frequency_lower_bound, plus
+known to reach (frequencies: docs/formulas.md section 4 via bounds.frequency_lower_bound, plus
 the same spread term; means: the two-point bound, which two-point attains exactly).
 """
 

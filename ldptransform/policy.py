@@ -223,7 +223,7 @@ def sample_size(epsilon_per_row: float, d: int) -> int:
 
     m = max(1, min(d, floor(eps / 2.5))): the rule of N. Wang, X. Xiao, Y. Yang, J. Zhao,
     S. C. Hui, H. Shin, J. Shin, G. Yu, "Collecting and Analyzing Multidimensional Data with
-    Local Differential Privacy", ICDE 2019 (restated in REFERENCE.md section 5.4; tag [M]).
+    Local Differential Privacy", ICDE 2019 (restated in docs/formulas.md section 5.4; tag [M]).
     """
     return max(1, min(d, math.floor(epsilon_per_row / SAMPLE_EPSILON_STEP)))
 

@@ -440,7 +440,7 @@ def randomize_rows(p: ColumnPlan, x: np.ndarray, row0: int,
     n, wpr = len(x), m.words_per_row
     # a report may be wider than its words (a k-character subset string from 1 + m words):
     # budget a slice by whichever is larger, words in or bytes out (counted in 8-byte words)
-    out_words = -(-int(getattr(m, "output_bytes_per_row", 8)) // 8)
+    out_words = -(-m.output_bytes_per_row // 8)
     step = max(1, MAX_WORDS_PER_CALL // max(wpr, out_words, 1))
     parts: list[list[pa.Array]] = []
     for s in range(0, n, step):
@@ -451,7 +451,7 @@ def randomize_rows(p: ColumnPlan, x: np.ndarray, row0: int,
             words = p.memo.words(p.memo.seeds(data, offs[s:e + 1], codes[s:e]), wpr)
         else:
             words = p.stream.words(row0 + s, e - s, wpr)
-        if getattr(m, "variable_draws", False):
+        if m.variable_draws:
             ds, base = p.draw_stream, row0 + s
             assert ds is not None
             parts.append(m.randomize_with(x[s:e], words, lambda r, j, ds=ds, base=base: ds.words_at(base + r, j)))
@@ -473,7 +473,7 @@ def column_entries(plans: list[ColumnPlan], report_rate: float = 1.0) -> list[Co
             continue
         m = rc.mechanism
         assert m is not None
-        outs = [OutputColumn(name=f.name, dtype=str(f.type), meaning=_meaning(m.name, f.name, rc.name))
+        outs = [OutputColumn(name=f.name, dtype=str(f.type), meaning=m.output_meaning(f.name))
                 for f in p.fields]
         cfg = rc.config
         out.append(ColumnEntry(
@@ -482,40 +482,6 @@ def column_entries(plans: list[ColumnPlan], report_rate: float = 1.0) -> list[Co
             bins=[float(b) for b in cfg.bins] if rc.type == "binned" else None,
             outputs=outs, report_rate=report_rate, note=memo_note(rc) if rc.memoize else None))
     return out
-
-
-def _meaning(mech: str, out_name: str, col: str) -> str:
-    if mech == "grr":
-        return "reported category (randomized response over the mechanism's categories)"
-    if mech in ("oue", "sue"):
-        return "report bits: character j is the randomized bit of category j of the mechanism's categories"
-    if mech == "olh":
-        if out_name.endswith("__hash"):
-            return "public hash seed a*P+b of this row (P = 2^31-1)"
-        return "reported hash bucket (randomized response over the hash_range buckets)"
-    if mech == "subset":
-        return ("reported subset: character j is 1 if category j of the mechanism's categories is in the row's "
-                "randomized subset (exactly subset_size ones per row)")
-    if mech == "hadamard":
-        return ("reported output index y in 0..K-1, K the smallest power of two above the number of categories; "
-                "category j is supported when row j+1 of the K x K Hadamard matrix is +1 at y")
-    if mech == "matrix":
-        return "reported category (drawn from the row of the policy's transition matrix for the true category)"
-    if mech == "discrete-laplace":
-        return ("randomized value on the grid lower bound + j * step (j any integer: values may fall outside the "
-                "bounds); on average equal to the true value (per-row unbiased estimate, column units)")
-    if mech == "square-wave":
-        return ("index j of the reported output cell of the square-wave channel (cells are numbered from 0 by "
-                "position, from below the lower bound to above the upper; the mechanism spec rebuilds them); "
-                "not an estimate of the row's value: decode the column's distribution with `ldpt estimate`")
-    if mech == "hierarchy":
-        if out_name.endswith("__level"):
-            return "tree level (1 = coarsest) this row reports; drawn from the keyed PRF, independent of the data"
-        if out_name.endswith("__hash"):
-            return "public hash seed a*P+b of this row (P = 2^31-1) on levels reported by olh; 0 on grr levels"
-        return ("reported node of that level: the node index (grr levels) or the reported hash bucket (olh "
-                "levels); see the mechanism spec's levels")
-    return "randomized value; on average equal to the true value (per-row unbiased estimate, column units)"
 
 
 def memo_composition_text(policy: LoadedPolicy) -> str:
@@ -900,7 +866,7 @@ def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey
     for p in plans:
         if p.rc.mechanism is not None:
             p.stream = KeyedStream(key, nonce, "column", p.rc.name)
-            if getattr(p.rc.mechanism, "variable_draws", False):
+            if p.rc.mechanism.variable_draws:
                 p.draw_stream = KeyedStream(key, nonce, "column-draws", p.rc.name)
             if p.rc.memoize:
                 p.memo, p.memo_offset = memo_streams(key, p.rc)

@@ -1,7 +1,7 @@
 """Discrete Laplace on a grid (mechanisms/discrete_laplace.py) and KeyedStream.words_at.
 
 Papers: A. Ghosh, T. Roughgarden, M. Sundararajan, "Universally Utility-Maximizing Privacy
-Mechanisms", STOC 2009 (the two-sided geometric noise; REFERENCE.md section 10.2);
+Mechanisms", STOC 2009 (the two-sided geometric noise; docs/formulas.md section 10.2);
 C. L. Canonne, G. Kamath, T. Steinke, "The Discrete Gaussian for Differential Privacy",
 NeurIPS 2020 (exact samplers; section 10.3); I. Mironov, "On Significance of the Least
 Significant Bits for Differential Privacy", CCS 2012 (why the sampler is exact; section 10.1).
@@ -108,7 +108,7 @@ def test_words_at_differs_across_rows_draws_and_streams():
 # -- exact integer building blocks --------------------------------------------------------
 
 def test_uniform_below_rejects_the_biased_top_words():
-    """Exact uniform integers (Canonne, Kamath, Steinke, NeurIPS 2020, REFERENCE.md 10.3 [S]):
+    """Exact uniform integers (Canonne, Kamath, Steinke, NeurIPS 2020, docs/formulas.md 10.3 [S]):
     for m = 3, 2^64 mod 3 = 1, so the word 2^64 - 1 must be rejected (plain modulo would map it
     to 0) and the next word 2^64 - 2 accepted, giving (2^64 - 2) mod 3 = 2.  A power of two
     (m = 2) accepts every word."""
@@ -127,7 +127,7 @@ def test_uniform_below_rejects_the_biased_top_words():
 @pytest.mark.parametrize("num,den", [(0, 1), (1, 3), (7, 10), (1, 1)])
 def test_bernoulli_exp_frequency(num, den):
     """Bernoulli(exp(-gamma)) by the von Neumann-style loop of Canonne, Kamath, Steinke
-    (NeurIPS 2020; REFERENCE.md 10.3 [S]): frequency within 5 SE of exp(-num/den) over
+    (NeurIPS 2020; docs/formulas.md 10.3 [S]): frequency within 5 SE of exp(-num/den) over
     100,000 rows under the fixed key (gamma = 0 must give exactly 1)."""
     n = 100_000
     src = _RowDraws(n, drawer(stream("bern", f"{num}/{den}")))
@@ -174,8 +174,8 @@ def noise_samples() -> dict[tuple[float, int], np.ndarray]:
 @pytest.mark.parametrize("eps,G", CASES)
 def test_noise_matches_exact_pmf_chi_square(noise_samples, eps, G):
     """Sampled Z against the exact two-sided geometric pmf (1-a)/(1+a) a^|z|, a = exp(-eps/G)
-    (Ghosh, Roughgarden, Sundararajan, STOC 2009; REFERENCE.md 10.2 [M]), drawn by the exact
-    sampler of Canonne, Kamath, Steinke (NeurIPS 2020; REFERENCE.md 10.3 [M+D]): 200,000 draws
+    (Ghosh, Roughgarden, Sundararajan, STOC 2009; docs/formulas.md 10.2 [M]), drawn by the exact
+    sampler of Canonne, Kamath, Steinke (NeurIPS 2020; docs/formulas.md 10.3 [M+D]): 200,000 draws
     under the fixed key, chi-square with pooled tails, p-value above 0.001.  Cases include a
     non-integer eps (0.7 = 7/10, so eps/G = 7/40 and 7/2560) and s > 1 with t > 1 (3/2)."""
     m = DiscreteLaplace(eps, [0.0, 1.0], G)
@@ -187,14 +187,14 @@ def test_noise_matches_exact_pmf_chi_square(noise_samples, eps, G):
 @pytest.mark.parametrize("eps,G", [(0.7, 4), (3.0, 2)])
 def test_chi_square_has_power_against_a_wrong_scale(noise_samples, eps, G):
     """Control for the test above (so it can fail): the same samples are rejected (p < 1e-6)
-    against the pmf of a 10% larger eps (Ghosh et al. STOC 2009 pmf, REFERENCE.md 10.2 [M])."""
+    against the pmf of a 10% larger eps (Ghosh et al. STOC 2009 pmf, docs/formulas.md 10.2 [M])."""
     wrong = DiscreteLaplace(round(eps * 1.1, 10), [0.0, 1.0], G)
     p, _ = chi_square_pvalue(wrong, noise_samples[(eps, G)])
     assert p < 1e-6
 
 
 def test_noise_variance_formula_and_pmf():
-    """Var(Z) = 2a/(1-a)^2 (REFERENCE.md 10.2 [D]: 4.337 for a = e^(-2/3), i.e. eps/G = 2/3),
+    """Var(Z) = 2a/(1-a)^2 (docs/formulas.md 10.2 [D]: 4.337 for a = e^(-2/3), i.e. eps/G = 2/3),
     and it equals the second moment of the exact pmf summed directly; the pmf sums to 1."""
     m = DiscreteLaplace(2.0, [0.0, 3.0], 3)
     assert m.noise_variance() == pytest.approx(4.337, abs=5e-4)
@@ -210,8 +210,8 @@ def test_noise_variance_formula_and_pmf():
                                           (1.5, DEFAULT_GRID, (0.0, 1000.0))])
 def test_reports_unbiased_and_variance_matches(eps, G, bounds):
     """Per-row unbiasedness (rounding is unbiased and Z has mean 0; Ghosh et al. STOC 2009,
-    REFERENCE.md 10.2 [M]) and the exact report variance step^2 (frac(1-frac) + 2a/(1-a)^2)
-    (REFERENCE.md 10.2 [D]): for several values (the bounds, a grid point, off-grid values)
+    docs/formulas.md 10.2 [M]) and the exact report variance step^2 (frac(1-frac) + 2a/(1-a)^2)
+    (docs/formulas.md 10.2 [D]): for several values (the bounds, a grid point, off-grid values)
     the mean of 60,000 reports is within 5 SE of the value, and the sample variance within 10%
     of variance(x).  With eps 3 and G 2 the rounding term is a third of the variance at the
     midpoint, so leaving it out would fail."""
@@ -234,7 +234,7 @@ def test_reports_unbiased_and_variance_matches(eps, G, bounds):
 def test_rounding_stage_uses_word_zero_like_grid_mechanisms():
     """The first stage is GridMechanism.randomize_index's unbiased random rounding (one word,
     to_unit(word) < frac; the rounding step of Duchi, Jordan, Wainwright, "Minimax Optimal
-    Procedures for Locally Private Estimation", JASA 2018, REFERENCE.md 5.1 [M+D], on a finer
+    Procedures for Locally Private Estimation", JASA 2018, docs/formulas.md 5.1 [M+D], on a finer
     grid): a grid point never moves, and a value 0.25 of a step above grid point 3 goes to 4
     exactly when to_unit(word 0) < 0.25; the top bound maps to index G."""
     m = DiscreteLaplace(1.0, [0.0, 8.0], 8)
@@ -250,7 +250,7 @@ def test_same_key_and_nonce_reproduce_across_batchings():
     """Same key and nonce give identical output whether the rows go in one batch or in several
     with the right row offsets; a row's report does not depend on the other rows' values; a
     different nonce gives a different output (exact sampler of Canonne, Kamath, Steinke,
-    NeurIPS 2020, REFERENCE.md 10.3 [M+D], driven row by row by the keyed PRF)."""
+    NeurIPS 2020, docs/formulas.md 10.3 [M+D], driven row by row by the keyed PRF)."""
     m = DiscreteLaplace(0.7, [0.0, 100.0], 64)
     x = np.random.default_rng(11).uniform(0, 100, 5000)
     whole = release(m, x, row0=0)
@@ -266,7 +266,7 @@ def test_same_key_and_nonce_reproduce_across_batchings():
 
 def test_randomize_without_draws_is_a_clear_type_error():
     """The fixed-words entry point cannot run a rejection sampler (Canonne, Kamath, Steinke 2020,
-    REFERENCE.md 10.3 [M+D]): randomize says to use randomize_with."""
+    docs/formulas.md 10.3 [M+D]): randomize says to use randomize_with."""
     m = DiscreteLaplace(1.0, [0, 1])
     assert m.variable_draws is True
     with pytest.raises(TypeError, match="randomize_with"):
@@ -278,7 +278,7 @@ def test_randomize_without_draws_is_a_clear_type_error():
 @pytest.mark.parametrize("eps,G", [(0.7, 4), (0.7, 256), (3.0, 2), (1.25, 7)])
 def test_realized_ldp_is_exactly_eps(eps, G):
     """Exact channel P(y | i) = pmf(y - i) (Ghosh, Roughgarden, Sundararajan, STOC 2009,
-    REFERENCE.md 10.2 [M]; eps from its decimal text, Mironov CCS 2012 / REFERENCE.md 10.1 [D]
+    docs/formulas.md 10.2 [M]; eps from its decimal text, Mironov CCS 2012 / docs/formulas.md 10.1 [D]
     advice): the log-ratio between the extreme inputs 0 and G reaches eps for outputs outside
     [0, G] and never exceeds it; all other input pairs stay below; max_log_ratio() is exactly
     eps, and G * s / t equals the decimal rational."""
@@ -297,7 +297,7 @@ def test_realized_ldp_is_exactly_eps(eps, G):
 
 
 def test_epsilon_is_its_decimal_rational():
-    """eps 0.7 is 7/10, not the binary double (Mironov, CCS 2012, REFERENCE.md 10.1 [D] advice:
+    """eps 0.7 is 7/10, not the binary double (Mironov, CCS 2012, docs/formulas.md 10.1 [D] advice:
     exact rational arithmetic): for G = 256, eps/G = 7/2560; a numpy float works the same;
     integer eps is accepted."""
     m = DiscreteLaplace(0.7, [0, 1])
@@ -312,7 +312,7 @@ def test_epsilon_is_its_decimal_rational():
 
 def test_count_invalid():
     """The report alphabet is the lattice lo + k * step, k any integer (two-sided geometric noise,
-    Ghosh et al. STOC 2009, REFERENCE.md 10.2 [M]): real reports (also beyond the bounds) are all
+    Ghosh et al. STOC 2009, docs/formulas.md 10.2 [M]): real reports (also beyond the bounds) are all
     valid; off-lattice, NaN, infinite, null and non-numeric values are counted."""
     m = DiscreteLaplace(0.5, [10.0, 20.0], 10)
     x = np.random.default_rng(3).uniform(10, 20, 3000)
@@ -328,7 +328,7 @@ def test_count_invalid():
 
 def test_spec_round_trip():
     """to_spec/from_spec round-trip exactly through JSON and through the registry's build
-    (the manifest's path); the spec holds exactly mechanism, epsilon, bounds, grid (REFERENCE.md
+    (the manifest's path); the spec holds exactly mechanism, epsilon, bounds, grid (docs/formulas.md
     10.2 [M] parameters: eps and the grid's sensitivity G)."""
     m = DiscreteLaplace(0.7, [-3, 12.5], 100)
     spec = m.to_spec()
@@ -357,7 +357,7 @@ def test_spec_round_trip():
 def test_bad_parameters_raise_policy_error(kwargs, field):
     """Construction errors are PolicyError naming the mechanism and the field (house rule);
     an eps whose decimal text is too long for exact rational sampling (Canonne, Kamath, Steinke
-    2020, REFERENCE.md 10.3 [M+D]) is refused rather than approximated."""
+    2020, docs/formulas.md 10.3 [M+D]) is refused rather than approximated."""
     args = {"epsilon": 1.0, "bounds": [0, 1], "grid": 16, **kwargs}
     with pytest.raises(PolicyError) as err:
         DiscreteLaplace(args["epsilon"], args["bounds"], args["grid"])

@@ -139,7 +139,7 @@ def test_hierarchy_picks_the_lower_variance_oracle_per_level():
 def test_square_wave_b_matches_the_published_formula(eps, b):
     """Z. Li, T. Wang, M. Lopuhaä-Zwakenberg, N. Li, B. Škorić, "Estimating Numerical
     Distributions under Local Differential Privacy", SIGMOD 2020: b = (eps E - E + 1) /
-    (2E(E - 1 - eps)) [M+D], values from REFERENCE.md 7.1 [D] (6 decimals).  [D]: b maximizes
+    (2E(E - 1 - eps)) [M+D], values from docs/formulas.md 7.1 [D] (6 decimals).  [D]: b maximizes
     ln(1+2b) + 2b p ln p + q ln q (p = E/(2bE+1), q = 1/(2bE+1))."""
     got = dist_module.square_wave_b(eps)
     assert got == pytest.approx(b, abs=1e-6)
@@ -319,7 +319,7 @@ def test_hierarchy_outputs_and_alphabet():
 
 def test_hierarchy_level_estimates_are_unbiased_within_5_se():
     """Each level's node shares, from that level's rows only, against (a) the true node
-    shares of those same rows, with the exact per-node SE of the oracle (REFERENCE.md 0.3),
+    shares of those same rows, with the exact per-node SE of the oracle (docs/formulas.md 0.3),
     and (b) the true shares of all rows, with the SE from frequency_covariance (which also
     counts the sampling of rows into levels).  Fixed key: deterministic."""
     m = Hierarchy(1.0, PAY, 4, 64)

@@ -15,7 +15,7 @@ Sources of the closed forms:
   (p = E/(E+1), q = 1/2).
 * Subset selection: M. Ye and A. Barg, "Optimal Schemes for Discrete Distribution Estimation
   under Locally Differential Privacy", IEEE Trans. Inf. Theory 2018.  The closed form in
-  mechanisms/bounds.py is the tool's own restatement (REFERENCE.md section 4, tagged [D]); here
+  mechanisms/bounds.py is the tool's own restatement (docs/formulas.md section 4, tagged [D]); here
   it is checked against the variance computed directly from the enumerated channel, not
   against the paper's printed expression (not read), and its optimal size against the
   paper's "about k/(E+1)".
@@ -144,7 +144,7 @@ def _subset_by_enumeration(eps: float, k: int, m: int, f: np.ndarray) -> tuple[f
 def test_subset_family_against_its_enumerated_channel(eps, k):
     """For every m: the library's p*, q* and total variance (bounds.subset_total_variance and
     SubsetSelection.total_variance) equal those computed from the channel itself; the i.i.d.
-    risk at the uniform distribution is (k-1)^2 (mE+k-m)^2 / (k m (k-m) (E-1)^2) (REFERENCE.md
+    risk at the uniform distribution is (k-1)^2 (mE+k-m)^2 / (k m (k-m) (E-1)^2) (docs/formulas.md
     section 4; believed, not confirmed, to be Ye and Barg's expression) and exceeds the fixed-data
     total by 1 - 1/k; and the bound is the minimum of the enumerated totals over m."""
     E = math.exp(eps)
@@ -180,6 +180,6 @@ def test_best_subset_size_is_near_k_over_e_plus_one():
 @pytest.mark.parametrize("eps,k,m,total", [(0.5, 8, 3, 95.111), (0.5, 256, 97, 3979.480), (1.0, 32, 9, 109.733),
                                            (2.0, 32, 4, 20.792), (4.0, 256, 5, 18.348)])
 def test_bound_against_reference_sheet_values(eps, k, m, total):
-    """The sample values of REFERENCE.md section 4 (computed there separately, 3 decimals)."""
+    """The sample values of docs/formulas.md section 4 (computed there separately, 3 decimals)."""
     assert bounds.best_subset_size(eps, k) == m
     assert bounds.frequency_lower_bound(eps, k) == pytest.approx(total, abs=6e-4)

@@ -2,12 +2,12 @@
 variances, published/derived check values, fast decoding and the alphabet checks.
 
 Papers: J. Acharya, Z. Sun, H. Zhang, "Hadamard Response: Estimating Distributions Privately,
-Efficiently, and with Little Communication", AISTATS 2019 (REFERENCE.md section 3.1);
+Efficiently, and with Little Communication", AISTATS 2019 (docs/formulas.md section 3.1);
 M. Ye, A. Barg, "Optimal Schemes for Discrete Distribution Estimation under Locally
 Differential Privacy", IEEE Trans. Inf. Theory 2018, and S. Wang et al., "Mutual Information
-Optimally Local Private Discrete Distribution Estimation", arXiv 2016 (REFERENCE.md sections
+Optimally Local Private Discrete Distribution Estimation", arXiv 2016 (docs/formulas.md sections
 3.2 and 4); the framework of T. Wang, J. Blocki, N. Li, S. Jha, USENIX Security 2017
-(REFERENCE.md section 0.3).
+(docs/formulas.md section 0.3).
 
 All release randomness comes from the keyed PRF under the fixed test key (conftest), so every
 Monte Carlo check is deterministic; numpy's generator only makes synthetic inputs.
@@ -124,11 +124,11 @@ def test_subset_size_is_validated(bad):
 
 @pytest.mark.parametrize("m", all_cases())
 def test_channel_meets_eps_tightly_and_gives_p_q(m):
-    """Exact channel (Acharya et al. AISTATS 2019, REFERENCE.md 3.1 [M+D]; Ye and Barg IEEE
-    Trans. Inf. Theory 2018, REFERENCE.md 3.2 [M+D]): rows sum to 1, the largest ratio over
+    """Exact channel (Acharya et al. AISTATS 2019, docs/formulas.md 3.1 [M+D]; Ye and Barg IEEE
+    Trans. Inf. Theory 2018, docs/formulas.md 3.2 [M+D]): rows sum to 1, the largest ratio over
     inputs of an output's probabilities is exactly e^eps, max_log_ratio() is eps, the support
     probabilities are p* (own value) and q* (other values), and channel x estimator = identity
-    (exact unbiasedness, REFERENCE.md 0.3)."""
+    (exact unbiasedness, docs/formulas.md 0.3)."""
     Q = m.channel()
     E = math.exp(m.epsilon)
     np.testing.assert_allclose(Q.sum(axis=1), 1.0, rtol=0, atol=1e-12)
@@ -144,7 +144,7 @@ def test_channel_meets_eps_tightly_and_gives_p_q(m):
 
 
 def test_hadamard_channel_structure():
-    """REFERENCE.md 3.1 [M+D]: |C_x| = K/2, two sets share K/4 outputs, Q(y|x) = 2E/(K(E+1))
+    """docs/formulas.md 3.1 [M+D]: |C_x| = K/2, two sets share K/4 outputs, Q(y|x) = 2E/(K(E+1))
     on C_x and 2/(K(E+1)) off it."""
     m = had(1.3, 11)
     K, E = m.K, math.exp(1.3)
@@ -195,7 +195,7 @@ def test_hadamard_sampler_realizes_the_channel(eps, k):
     coin and every input: each output of the wanted half is hit by exactly 2 of the K values
     of u (flipping the lowest set bit of x+1 pairs the halves), none outside.  With the coin's
     realized probability (bisection) the realized channel equals channel() (Acharya et al.,
-    AISTATS 2019, REFERENCE.md 3.1 [M+D])."""
+    AISTATS 2019, docs/formulas.md 3.1 [M+D])."""
     m = had(eps, k)
     K = m.K
     xs = np.repeat(np.arange(k), K)
@@ -227,7 +227,7 @@ def test_subset_sampler_realizes_the_channel(k, msize):
     subset containing x (coin: x in S) or not containing x (coin: x not in S) is produced by
     exactly the same number of sequences, so the realized law given the coin is uniform; with
     the coin's realized probability (bisection) the realized channel equals channel()
-    (Ye and Barg, IEEE Trans. Inf. Theory 2018, REFERENCE.md 3.2 [M+D]).  Cases cover the
+    (Ye and Barg, IEEE Trans. Inf. Theory 2018, docs/formulas.md 3.2 [M+D]).  Cases cover the
     direct shuffle (2m <= k) and the complement shuffle (2m > k)."""
     m = sub(1.0, k, msize)
     N, D = k - 1, m.words_per_row - 1
@@ -292,7 +292,7 @@ def test_output_distribution_matches_channel(m):
     """Goodness of fit of PRF-driven reports (fixed key, 20,000 per input value) to the exact
     channel, Pearson chi-square pooled over inputs, threshold p >= 1e-4; the same reports
     against the channel at eps + 0.25 must give p < 1e-4 (the check has teeth).  Papers:
-    Acharya et al. AISTATS 2019 / Ye and Barg IEEE Trans. Inf. Theory 2018 (REFERENCE.md
+    Acharya et al. AISTATS 2019 / Ye and Barg IEEE Trans. Inf. Theory 2018 (docs/formulas.md
     3.1, 3.2 [M+D])."""
     wrong = build({**m.to_spec(), "epsilon": m.epsilon + 0.25})
     n = 20_000
@@ -357,7 +357,7 @@ def _make(name, eps, k, msize):
 @pytest.mark.parametrize("case", MC_CASES, ids=lambda c: "-".join(map(str, c)))
 def test_monte_carlo_unbiased_and_exact_variance(case):
     """Fixed-key Monte Carlo, n = 20,000: every frequency estimate within 5 SE of the truth and
-    the per-row n*Var within 10% of the exact formula of REFERENCE.md 0.3 [M+D] (Wang et al.
+    the per-row n*Var within 10% of the exact formula of docs/formulas.md 0.3 [M+D] (Wang et al.
     USENIX Security 2017), for hadamard (Acharya et al. AISTATS 2019) and subset (Ye and Barg
     IEEE Trans. Inf. Theory 2018)."""
     check_mc(_make(*case), 20_000, "mc/" + "-".join(map(str, case)), seed=31)
@@ -378,8 +378,8 @@ def test_monte_carlo_large(case):
 
 @pytest.mark.parametrize("eps,hr", [(0.5, 16.6708), (1.0, 4.6827), (2.0, 1.7241), (4.0, 1.0760)])
 def test_hadamard_variance_formula_and_table(eps, hr):
-    """Acharya et al. AISTATS 2019: exact n*Var = ((E+1)/(E-1))^2 - f_v (REFERENCE.md 3.1,
-    [D]); the f = 0 value is the HR column of the REFERENCE.md section 13 table [D],
+    """Acharya et al. AISTATS 2019: exact n*Var = ((E+1)/(E-1))^2 - f_v (docs/formulas.md 3.1,
+    [D]); the f = 0 value is the HR column of the docs/formulas.md section 13 table [D],
     independent of k."""
     E = math.exp(eps)
     for k in (2, 7, 300):
@@ -391,7 +391,7 @@ def test_hadamard_variance_formula_and_table(eps, hr):
 
 
 def test_subset_variance_matches_closed_forms():
-    """Ye and Barg IEEE Trans. Inf. Theory 2018 (REFERENCE.md 3.2 [D]): p*, q* closed forms,
+    """Ye and Barg IEEE Trans. Inf. Theory 2018 (docs/formulas.md 3.2 [D]): p*, q* closed forms,
     n*Var* = [(m-1)E + k-m][mE + k-m-1] / (m(k-m)(E-1)^2) plus the exact f-term
     f [(k-m)(k-m-1) - m(m-1)E] / (m(k-m)(E-1)); m = 1 is GRR; and total_variance() from p*, q*
     equals the section 4 closed form (k-1)[(mE+k-m)^2 - (mE^2+k-m)] / (m(k-m)(E-1)^2) [D]."""
@@ -415,7 +415,7 @@ def test_subset_variance_matches_closed_forms():
                     assert m.approx_variance() == pytest.approx((E + k - 2) / (E - 1) ** 2, rel=1e-12)
 
 
-# REFERENCE.md section 13 [D]: SS (best m) column, per-item n*Var at f = 0, m minimizing it
+# docs/formulas.md section 13 [D]: SS (best m) column, per-item n*Var at f = 0, m minimizing it
 TABLE13 = [
     (0.5, 2, 1, 3.9177), (0.5, 8, 3, 11.7591), (0.5, 32, 12, 14.6442), (0.5, 256, 97, 15.5410),
     (1.0, 2, 1, 0.9207), (1.0, 8, 2, 2.5681), (1.0, 32, 8, 3.3964), (1.0, 256, 69, 3.6462),
@@ -426,7 +426,7 @@ TABLE13 = [
 
 @pytest.mark.parametrize("eps,k,msize,value", TABLE13)
 def test_subset_per_item_table(eps, k, msize, value):
-    """REFERENCE.md section 13 table, SS column [D] (Ye and Barg IEEE Trans. Inf. Theory 2018):
+    """docs/formulas.md section 13 table, SS column [D] (Ye and Barg IEEE Trans. Inf. Theory 2018):
     with the table's m, n*Var at f = 0 matches to the printed 4 decimals, and that m minimizes
     the per-item f = 0 variance over 1..k-1 (which can differ from best_subset_size, chosen on
     the total variance)."""
@@ -441,7 +441,7 @@ TABLE4 = [(0.5, 8, 3, 95.111, 126.366), (0.5, 256, 97, 3979.480, 4012.723), (1.0
 
 @pytest.mark.parametrize("eps,k,mstar,l2,l2_oue", TABLE4)
 def test_subset_total_variance_table(eps, k, mstar, l2, l2_oue):
-    """REFERENCE.md section 4 table [D] (symmetric subset family, Ye and Barg IEEE Trans. Inf.
+    """docs/formulas.md section 4 table [D] (symmetric subset family, Ye and Barg IEEE Trans. Inf.
     Theory 2018): best_subset_size = m*, total_variance() = n*L2* to the printed 3 decimals, the
     default m is m*, no m does better, and OUE's total is k*4E/(E-1)^2 + 1."""
     assert SubsetSelection.best_subset_size(eps, k) == mstar
@@ -453,7 +453,7 @@ def test_subset_total_variance_table(eps, k, mstar, l2, l2_oue):
 
 
 def test_total_and_per_item_optimal_sizes_differ():
-    """REFERENCE.md section 4 note [D]: the m minimizing total L2 can differ by one from the m
+    """docs/formulas.md section 4 note [D]: the m minimizing total L2 can differ by one from the m
     minimizing the per-item f = 0 variance: eps 1, k 32: 9 vs 8; eps 4, k 256: 5 vs 4."""
     for eps, k, total_m, item_m in [(1.0, 32, 9, 8), (4.0, 256, 5, 4)]:
         assert SubsetSelection.best_subset_size(eps, k) == total_m
@@ -469,7 +469,7 @@ def test_total_and_per_item_optimal_sizes_differ():
 def test_parity_and_fwht_against_brute_force():
     """Helpers of the hadamard decoder: parity of popcount (both code paths) and the fast
     Walsh-Hadamard transform against the explicit Sylvester matrix H[i][j] = (-1)^popcount(i&j)
-    (Acharya et al. AISTATS 2019, REFERENCE.md 3.1 [M+D])."""
+    (Acharya et al. AISTATS 2019, docs/formulas.md 3.1 [M+D])."""
     rng = np.random.default_rng(3)
     a = rng.integers(0, 1 << 31, size=5000)
     want = np.array([bin(int(v)).count("1") % 2 == 1 for v in a])
@@ -488,7 +488,7 @@ def test_parity_and_fwht_against_brute_force():
 def test_fwht_support_counts_equal_parity_counts(k):
     """Support counts from the histogram's Walsh-Hadamard transform equal the brute-force
     parity counts sum_i 1[popcount((v+1) & y_i) even] (Acharya et al. AISTATS 2019,
-    REFERENCE.md 3.1 [M+D]); malformed rows support nothing in both."""
+    docs/formulas.md 3.1 [M+D]); malformed rows support nothing in both."""
     m = had(1.0, k)
     rng = np.random.default_rng(k)
     y = rng.integers(0, m.K, size=20_000).astype(object)
@@ -505,7 +505,7 @@ def test_fwht_support_counts_equal_parity_counts(k):
 def test_decoding_a_million_hadamard_reports_is_fast(capsys):
     """Decode 1,000,000 hadamard reports at k = 4096 (K = 8192): histogram + one fast
     Walsh-Hadamard transform + decode_sums, well under a second (asserted < 1 s; the measured
-    time is printed).  The estimates are also within 5 SE of the truth (REFERENCE.md 0.3, 3.1
+    time is printed).  The estimates are also within 5 SE of the truth (docs/formulas.md 0.3, 3.1
     [M+D]; Acharya et al. AISTATS 2019)."""
     m = had(1.0, 4096)
     n = 1_000_000

@@ -2,7 +2,7 @@
 
 The joint estimators rest on one fact: two columns of a row are randomized
 independently given the row, so the product of their per-row unbiased estimates is
-unbiased for the joint indicator (REFERENCE.md section 12, [D]; the product form of
+unbiased for the joint indicator (docs/formulas.md section 12, [D]; the product form of
 the Kronecker estimator discussed by Vinterbo, "A Simple Algorithm for Estimating
 Distribution Parameters from n-Dimensional Randomized Binary Responses", ISC 2018).
 """

@@ -1,4 +1,4 @@
-"""The keyed PRF and key files (DESIGN.md section 4)."""
+"""The keyed PRF and key files (docs/architecture.md, "Randomness and secrets")."""
 
 from __future__ import annotations
 

@@ -2,10 +2,10 @@
 
 Paper: J. M. Gouweleeuw, P. Kooiman, L. C. R. J. Willenborg, P.-P. de Wolf, "Post
 Randomisation for Statistical Disclosure Control: Theory and Implementation", Journal of
-Official Statistics 14(4), 1998 (REFERENCE.md section 11: unbiased moment estimator [M+D],
+Official Statistics 14(4), 1998 (docs/formulas.md section 11: unbiased moment estimator [M+D],
 LDP correspondence of a transition matrix [D]).  GRR: T. Wang, J. Blocki, N. Li, S. Jha,
 "Locally Differentially Private Protocols for Frequency Estimation", USENIX Security 2017
-(REFERENCE.md sections 0.3 and 2.1, [M+D]).
+(docs/formulas.md sections 0.3 and 2.1, [M+D]).
 
 All release randomness is the keyed PRF under the fixed test key and nonce, so every Monte
 Carlo check is deterministic; numpy's seeded generator only makes input data.  Tolerances:
@@ -54,7 +54,7 @@ def refusal(eps, cats, matrix) -> str:
 # -- validation --------------------------------------------------------------------------
 
 def test_matrix_beyond_eps_is_refused_with_the_eps_it_gives():
-    """REFERENCE.md section 11 [D] (Gouweleeuw et al., JOS 1998; LDP iff column ratio <= e^eps):
+    """docs/formulas.md section 11 [D] (Gouweleeuw et al., JOS 1998; LDP iff column ratio <= e^eps):
     the message states the eps the realized matrix gives (ln 5.5) and the column attaining it."""
     msg = refusal(1.5, CATS4, ASYM)
     got = float(re.search(r"gives eps = ([0-9.]+)", msg).group(1))
@@ -79,14 +79,14 @@ def test_matrix_beyond_eps_is_refused_with_the_eps_it_gives():
     ("0.5 0.5", "list of rows"),
 ], ids=["zero", "row-sum", "singular", "ill-conditioned", "shape-rows", "shape-cols", "nan", "string", "scalar"])
 def test_bad_matrices_are_refused(matrix, needle):
-    """Gouweleeuw et al., JOS 1998 (REFERENCE.md section 11 [D]): a zero entry breaks LDP, rows of
+    """Gouweleeuw et al., JOS 1998 (docs/formulas.md section 11 [D]): a zero entry breaks LDP, rows of
     a Markov matrix sum to 1, and decoding needs an invertible, well-conditioned matrix."""
     msg = refusal(10.0, CATS4, matrix)
     assert needle in msg, msg
 
 
 def test_row_sum_message_names_the_row_and_its_sum():
-    """Gouweleeuw et al., JOS 1998 (REFERENCE.md section 11, rows of P sum to 1)."""
+    """Gouweleeuw et al., JOS 1998 (docs/formulas.md section 11, rows of P sum to 1)."""
     bad = [list(r) for r in ASYM]
     bad[2] = [0.10, 0.25, 0.45, 0.30]
     msg = refusal(10.0, CATS4, bad)
@@ -98,7 +98,7 @@ def test_row_sum_message_names_the_row_and_its_sum():
 
 
 def test_zero_entry_names_row_and_column():
-    """REFERENCE.md section 11 [D]: zero entries are forbidden (ratio infinite)."""
+    """docs/formulas.md section 11 [D]: zero entries are forbidden (ratio infinite)."""
     bad = [list(r) for r in ASYM]
     bad[3] = [0.0, 0.2, 0.25, 0.55]
     assert "row 3 ('west'), column 0 ('north')" in refusal(10.0, CATS4, bad)
@@ -107,7 +107,7 @@ def test_zero_entry_names_row_and_column():
 # -- GRR as a matrix ---------------------------------------------------------------------
 
 def test_grr_matrix_decodes_exactly_as_grr():
-    """REFERENCE.md section 11 [D]: GRR is the transition matrix with p* on the diagonal and q*
+    """docs/formulas.md section 11 [D]: GRR is the transition matrix with p* on the diagonal and q*
     off it, and (P^T)^{-1} T* reproduces the GRR estimator of section 2.1 (Wang, Blocki, Li,
     Jha, USENIX Security 2017) -- on the same reports, with the same variances."""
     eps, k, n = 1.2, 6, 20000
@@ -146,7 +146,7 @@ def test_sampler_realizes_the_exact_channel():
 
 
 def test_realized_channel_stays_within_eps_for_grr_matrices():
-    """REFERENCE.md section 11 [D]: GRR's column ratio is exactly e^eps, so its realized matrix
+    """docs/formulas.md section 11 [D]: GRR's column ratio is exactly e^eps, so its realized matrix
     must not exceed the column's eps beyond float round-off."""
     for k in (2, 3, 7, 40):
         for eps in (0.05, 0.7, 3.0, 9.0):
@@ -159,7 +159,7 @@ def test_realized_channel_stays_within_eps_for_grr_matrices():
 # -- Monte Carlo: unbiasedness and exact variance ---------------------------------------------
 
 def test_asymmetric_matrix_unbiased_and_variance_matches():
-    """Gouweleeuw et al., JOS 1998 (REFERENCE.md section 11, T^ = (P^T)^{-1} T*, [M+D]): over R
+    """Gouweleeuw et al., JOS 1998 (docs/formulas.md section 11, T^ = (P^T)^{-1} T*, [M+D]): over R
     releases of the same data, the mean of the decoded frequencies is within 5 SE of the truth
     and their empirical variance within 10% of variance() (exact, derived for a fixed data set)."""
     m = Matrix(1.75, CATS4, ASYM)
@@ -178,7 +178,7 @@ def test_asymmetric_matrix_unbiased_and_variance_matches():
 
 
 def test_variance_matches_exact_enumeration_and_decoder_statistics():
-    """REFERENCE.md section 11 (Cov(T^) = (P^T)^{-1} V P^{-1}, [M+D]): variance() equals the central
+    """docs/formulas.md section 11 (Cov(T^) = (P^T)^{-1} V P^{-1}, [M+D]): variance() equals the central
     second moment of u(Y) = W[Y] enumerated over the channel, its diagonal, and the decoder's sums
     and covariance equal the row estimates' sample moments."""
     m = Matrix(1.75, CATS4, ASYM)
@@ -232,7 +232,7 @@ def test_output_labels_invalid_reports_and_pure_protocol_hooks():
 
 def test_spec_round_trip_rebuilds_the_same_channel():
     """Gouweleeuw et al., JOS 1998: the manifest records eps, categories and the supplied matrix
-    exactly, and rebuilding gives the identical realized channel (REFERENCE.md section 11)."""
+    exactly, and rebuilding gives the identical realized channel (docs/formulas.md section 11)."""
     odd = [[0.1 / 3, 0.7 - 0.1 / 3, 0.3], [0.2, 0.3, 0.5], [0.25, 0.125, 0.625]]
     odd[0][2] = 1.0 - odd[0][0] - odd[0][1]
     m = Matrix(3.0, ["a", "b", "c"], np.array(odd))

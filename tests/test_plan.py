@@ -38,7 +38,7 @@ def _words(m, n, r, label):
                          ids=lambda m: m.name)
 def test_predicted_frequency_se_matches_monte_carlo(m):
     """The planner's frequency SE (root mean square over values, equal shares, rows drawn
-    afresh: REFERENCE.md sections 0.3 [M+D] and 0.4 [D]) agrees with the spread of the
+    afresh: docs/formulas.md sections 0.3 [M+D] and 0.4 [D]) agrees with the spread of the
     estimates over 400 simulated releases within 10%.  With 400 releases and k >= 5 values
     the measured RMS has a relative SE of about 1.6%, so 10% is over 6 SE."""
     n, R, k = 2000, 400, m.k
@@ -88,7 +88,7 @@ def test_two_point_attains_the_mean_bound():
 
 @pytest.mark.parametrize("eps,k", [(0.5, 8), (1.0, 32), (2.0, 32), (4.0, 256), (0.5, 256)])
 def test_frequency_bound_matches_reference_table(eps, k):
-    """REFERENCE.md section 4 table [D] (n * minimal total L2 over m) and the rule that no
+    """docs/formulas.md section 4 table [D] (n * minimal total L2 over m) and the rule that no
     frequency oracle of the tool goes below the bound."""
     table = {(0.5, 8): (3, 95.111), (1.0, 32): (9, 109.733), (2.0, 32): (4, 20.792), (4.0, 256): (5, 18.348),
              (0.5, 256): (97, 3979.480)}

@@ -5,10 +5,10 @@ the data, each at eps_row/m; the other cells are empty.  Sources:
 
 * the m rule and the procedure: N. Wang, X. Xiao, Y. Yang, J. Zhao, S. C. Hui, H. Shin,
   J. Shin, G. Yu, "Collecting and Analyzing Multidimensional Data with Local Differential
-  Privacy", ICDE 2019: m = max(1, min(d, floor(eps/2.5))) (REFERENCE.md section 5.4, tag [M]);
+  Privacy", ICDE 2019: m = max(1, min(d, floor(eps/2.5))) (docs/formulas.md section 5.4, tag [M]);
 * the rate in d: J. C. Duchi, M. I. Jordan, M. J. Wainwright, "Minimax Optimal Procedures
   for Locally Private Estimation", JASA 2018: for a d-dimensional mean with bounded
-  coordinates the per-coordinate MSE under eps-LDP scales like d/(n eps^2) (REFERENCE.md
+  coordinates the per-coordinate MSE under eps-LDP scales like d/(n eps^2) (docs/formulas.md
   section 6, tag [M]).
 
 Estimates come from the public ``estimate()``; its decoder leaves a row's empty cell out of
@@ -57,7 +57,7 @@ def nonce(i: int) -> str:
     (100.0, 8, 8), (0.1, 1, 1), (0.5, 16, 1), (25.0, 16, 10),
 ])
 def test_sample_size_rule(eps: float, d: int, m: int) -> None:
-    """m = max(1, min(d, floor(eps/2.5))) (Wang et al., ICDE 2019; REFERENCE.md 5.4 [M])."""
+    """m = max(1, min(d, floor(eps/2.5))) (Wang et al., ICDE 2019; docs/formulas.md 5.4 [M])."""
     assert sample_size(eps, d) == m
     policy = {"budget": {"epsilon_per_row": eps, "strategy": "sample"},
               "columns": {f"c{j}": {"type": "numeric", "bounds": [0, 1]} for j in range(d)}}

@@ -94,6 +94,26 @@ class Mechanism(ABC):
     def randomize(self, x: np.ndarray, words: np.ndarray) -> list[pa.Array]:
         """Randomize encoded inputs ``x`` with ``words`` of shape (n, words_per_row)."""
 
+    #: True for exact rejection samplers that draw a variable number of extra words per row
+    #: (they implement ``randomize_with``); the release then hands them a draw function too.
+    variable_draws: ClassVar[bool] = False
+
+    def randomize_with(self, x: np.ndarray, words: np.ndarray, draw: Any) -> list[pa.Array]:
+        """Randomize with a fixed block of words plus ``draw(rows, j)``: word j of each given row
+        from a stream of the mechanism's own.  Mechanisms with a fixed number of words per row
+        ignore ``draw``."""
+        return self.randomize(x, words)
+
+    @property
+    def output_bytes_per_row(self) -> int:
+        """Bytes one row's report takes in memory (wide reports budget their slices by this)."""
+        return 8
+
+    @abstractmethod
+    def output_meaning(self, field_name: str) -> str:
+        """What the extract column ``field_name`` (one of ``output_fields``) holds, in plain
+        words for the manifest."""
+
     @abstractmethod
     def count_invalid(self, arrays: list[pa.Array]) -> int:
         """Number of rows whose outputs fall outside this mechanism's output alphabet."""

@@ -8,7 +8,7 @@ vector times the number of reports, for a fixed data set.  For the pure protocol
 not depend on the data (the exact variance is linear in f and sum f = 1).
 
 The bound used is the smallest total error of the symmetric subset family, minimized over
-the integer subset size m (REFERENCE.md section 4, a closed form derived for that family
+the integer subset size m (docs/formulas.md section 4, a closed form derived for that family
 and checked numerically [D]):
 
     n * L2*(eps, k) = min over m in 1..k-1 of
@@ -21,7 +21,7 @@ lower bound of the L2 loss; M. Ye and A. Barg ("Optimal Schemes for Discrete Dis
 Estimation under Locally Differential Privacy", IEEE Trans. Inf. Theory 2018) show the
 subset family is asymptotically optimal for all k and eps.  Only the papers' abstracts were
 seen; that the closed form above *is* the theorem's bound is the tool's inference, not a
-confirmed fact (REFERENCE.md section 14, item 7).  It is the best bound the tool knows; a
+confirmed fact (docs/formulas.md section 14, item 7).  It is the best bound the tool knows; a
 proven bound for all estimators, if different, could only be lower.
 
 Per value: no mechanism can make every value's variance smaller than the bound's average,
@@ -45,7 +45,7 @@ import numpy as np
 
 
 def subset_total_variance(epsilon: float, k: int, m: np.ndarray | int) -> np.ndarray:
-    """n * sum_v Var(f_v) of the symmetric subset family with subset size m (REFERENCE.md
+    """n * sum_v Var(f_v) of the symmetric subset family with subset size m (docs/formulas.md
     section 4 [D]); vectorized over m."""
     E = math.exp(epsilon)
     m = np.asarray(m, dtype=float)

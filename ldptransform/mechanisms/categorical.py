@@ -91,7 +91,7 @@ class FrequencyOracle(Mechanism):
         return (s - n * q) / d, (s * (1 - q) ** 2 + (n - s) * q ** 2) / d ** 2
 
     def decode_covariance(self, summary: np.ndarray, n: int, cosupport: np.ndarray | None) -> np.ndarray:
-        """Covariance matrix of the frequency estimates (REFERENCE.md section 0.3); ``cosupport``
+        """Covariance matrix of the frequency estimates (docs/formulas.md section 0.3); ``cosupport``
         counts the reports supporting both v and w (None: reports support one value each)."""
         from ..distribution import frequency_covariance
 
@@ -108,7 +108,7 @@ class FrequencyOracle(Mechanism):
         """Exact n*Var of each frequency estimate for a fixed data set with frequencies ``freq``.
 
         n*Var(f_v) = [q*(1-q*) + f_v (p*-q*)(1-p*-q*)] / (p*-q*)^2  (Wang et al. 2017, restated
-        in REFERENCE.md section 0.3; exact because the per-row reports are independent).
+        in docs/formulas.md section 0.3; exact because the per-row reports are independent).
         """
         p, q = self.p_star, self.q_star
         f = np.asarray(freq, dtype=float)
@@ -151,6 +151,9 @@ class GRR(FrequencyOracle):
 
     def output_fields(self, column: str) -> list[pa.Field]:
         return [pa.field(column, pa.dictionary(pa.int32(), pa.string()))]
+
+    def output_meaning(self, field_name: str) -> str:
+        return "reported category (randomized response over the mechanism's categories)"
 
     def randomize_codes(self, x: np.ndarray, words: np.ndarray) -> np.ndarray:
         keep = to_unit(words[:, 0]) < self.p_star
@@ -196,6 +199,9 @@ class _UnaryEncoding(FrequencyOracle):
 
     def output_fields(self, column: str) -> list[pa.Field]:
         return [pa.field(column, pa.string())]
+
+    def output_meaning(self, field_name: str) -> str:
+        return "report bits: character j is the randomized bit of category j of the mechanism's categories"
 
     def randomize_bits(self, x: np.ndarray, words: np.ndarray) -> np.ndarray:
         # bit j = to_unit(word j) < (p* if j == x else q*), compared as integers (keys.unit_below)
@@ -339,6 +345,11 @@ class OLH(FrequencyOracle):
 
     def output_fields(self, column: str) -> list[pa.Field]:
         return [pa.field(column + "__hash", pa.int64()), pa.field(column, pa.int32())]
+
+    def output_meaning(self, field_name: str) -> str:
+        if field_name.endswith("__hash"):
+            return "public hash seed a*P+b of this row (P = 2^31-1)"
+        return "reported hash bucket (randomized response over the hash_range buckets)"
 
     def hash_values(self, seeds: np.ndarray, v: np.ndarray) -> np.ndarray:
         """H_seed(v) for broadcastable uint64 ``seeds`` and ``v``."""

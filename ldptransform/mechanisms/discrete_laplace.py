@@ -10,16 +10,16 @@ The report is y = i + Z, where Z is two-sided geometric noise
 
 the discrete analogue of Laplace noise (A. Ghosh, T. Roughgarden, M. Sundararajan,
 "Universally Utility-Maximizing Privacy Mechanisms", STOC 2009 / SIAM J. Comput. 2012;
-REFERENCE.md section 10.2).  Any two grid inputs are at most G apart, so for every
+docs/formulas.md section 10.2).  Any two grid inputs are at most G apart, so for every
 output y, P(y | i) / P(y | i') = a^(|y-i'| - |y-i|) <= a^-G = e^eps: the channel is
 exactly eps-LDP, and random rounding (a mixture of two such channels) keeps it so.  The
 written value lo + y * (hi - lo) / G (float64, column units) is the per-row unbiased
 estimate of the value; it may fall outside [lo, hi], which is what keeps it unbiased.
-Var(Z) = 2a / (1 - a)^2 (REFERENCE.md section 10.2, [D]); a report's variance adds the
+Var(Z) = 2a / (1 - a)^2 (docs/formulas.md section 10.2, [D]); a report's variance adds the
 rounding variance frac * (1 - frac) (both in grid steps, times the step squared).
 
 Exact sampling, integer arithmetic only (C. L. Canonne, G. Kamath, T. Steinke, "The
-Discrete Gaussian for Differential Privacy", NeurIPS 2020; REFERENCE.md section 10.3).
+Discrete Gaussian for Differential Privacy", NeurIPS 2020; docs/formulas.md section 10.3).
 No floating-point logarithm or exponential is used to sample (I. Mironov, "On
 Significance of the Least Significant Bits for Differential Privacy", CCS 2012):
 
@@ -260,7 +260,7 @@ class DiscreteLaplace(Mechanism):
         return self.pmf(np.asarray(y) - np.asarray(i))
 
     def noise_variance(self) -> float:
-        """Var(Z) = 2a / (1-a)^2 in grid steps (REFERENCE.md section 10.2, [D])."""
+        """Var(Z) = 2a / (1-a)^2 in grid steps (docs/formulas.md section 10.2, [D])."""
         x = self.noise_rate
         return 2.0 * math.exp(-x) / math.expm1(-x) ** 2
 
@@ -276,6 +276,10 @@ class DiscreteLaplace(Mechanism):
 
     def output_fields(self, column: str) -> list[pa.Field]:
         return [pa.field(column, pa.float64())]
+
+    def output_meaning(self, field_name: str) -> str:
+        return ("randomized value on the grid lower bound + j * step (j any integer: values may fall outside the "
+                "bounds); on average equal to the true value (per-row unbiased estimate, column units)")
 
     def grid_index(self, x: np.ndarray, word0: np.ndarray) -> np.ndarray:
         """Unbiased random rounding of x (column units) to a grid index 0..G, one word per row

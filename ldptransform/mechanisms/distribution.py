@@ -11,7 +11,7 @@ whose per-column sufficient statistics are integer count vectors (``new_stats``,
   normalized to v in [0, 1] and rounded at random to the grid v_i = i/N (to v_i or v_{i+1},
   keeping E[v_i] = v), then reported on [-b, 1+b] with density p = e^eps/(2b e^eps + 1) within
   b of v_i and q = p/e^eps elsewhere, b = (eps e^eps - e^eps + 1)/(2 e^eps (e^eps - 1 - eps))
-  (REFERENCE.md section 7.1).  The output is discretized exactly: the cell edges are every
+  (docs/formulas.md section 7.1).  The output is discretized exactly: the cell edges are every
   v_i - b and v_i + b, so each grid input's density is constant on every cell, a cell's
   probability is density x width, and eps holds cell by cell.  The channel is sampled as
   integer masses by exact comparison (``numeric.integer_masses``/``draw_index``, the same
@@ -25,7 +25,7 @@ whose per-column sufficient statistics are integer count vectors (``new_stats``,
   oracle at the full eps: GRR or OLH, whichever has the lower total variance for that level's
   B^l nodes (``choose_categorical``'s criterion).  OUE is left out: the words a row consumes
   are fixed across levels, and OUE needs one per node (256 per row at 256 leaves) for a
-  variance at most about 1% below OLH's (REFERENCE.md section 13).  Decoding: per level
+  variance at most about 1% below OLH's (docs/formulas.md section 13).  Decoding: per level
   unbiased node shares from that level's rows, then constrained inference (M. Hay, V. Rastogi,
   G. Miklau, D. Suciu, "Boosting the Accuracy of Differentially Private Histograms Through
   Consistency", PVLDB 3(1), 2010, as restated by Cormode et al.): weighted averaging bottom
@@ -66,7 +66,7 @@ BOOTSTRAP_LABEL = b"ldptransform/ems-bootstrap/v1"
 
 
 def square_wave_b(epsilon: float) -> float:
-    """Half-width b of the square wave's high-density window (REFERENCE.md 7.1), written
+    """Half-width b of the square wave's high-density window (docs/formulas.md 7.1), written
     with expm1 so that it stays accurate for small eps."""
     em1 = math.expm1(epsilon)
     E = em1 + 1.0
@@ -250,6 +250,11 @@ class SquareWave(Mechanism):
     def output_fields(self, column: str) -> list[pa.Field]:
         return [pa.field(column, pa.int32())]
 
+    def output_meaning(self, field_name: str) -> str:
+        return ("index j of the reported output cell of the square-wave channel (cells are numbered from 0 by "
+                "position, from below the lower bound to above the upper; the mechanism spec rebuilds them); "
+                "not an estimate of the row's value: decode the column's distribution with `ldpt estimate`")
+
     def randomize_index(self, x: np.ndarray, words: np.ndarray) -> np.ndarray:
         N = self.grid
         s = np.clip((np.asarray(x, dtype=float) - self.lo) * (N / (self.hi - self.lo)), 0.0, float(N))
@@ -420,6 +425,14 @@ class Hierarchy(Mechanism):
         if self._has_olh:
             fields.append(pa.field(column + "__hash", pa.int64()))
         return fields
+
+    def output_meaning(self, field_name: str) -> str:
+        if field_name.endswith("__level"):
+            return "tree level (1 = coarsest) this row reports; drawn from the keyed PRF, independent of the data"
+        if field_name.endswith("__hash"):
+            return "public hash seed a*P+b of this row (P = 2^31-1) on levels reported by olh; 0 on grr levels"
+        return ("reported node of that level: the node index (grr levels) or the reported hash bucket (olh "
+                "levels); see the mechanism spec's levels")
 
     def leaf_of(self, x: np.ndarray) -> np.ndarray:
         """Leaf bucket of each value: [lo + j w, lo + (j+1) w), the last one closed."""

@@ -2,7 +2,7 @@
 
 Source: J. Acharya, Z. Sun, H. Zhang, "Hadamard Response: Estimating Distributions Privately,
 Efficiently, and with Little Communication", AISTATS 2019 (arXiv:1802.04705).  Only the basic
-(high-privacy) construction is implemented, as restated in REFERENCE.md section 3.1:
+(high-privacy) construction is implemented, as restated in docs/formulas.md section 3.1:
 
 * K = the smallest power of two with K >= k + 1; the Sylvester Hadamard matrix of order K has
   entries H[i][j] = (-1)^popcount(i AND j).
@@ -14,7 +14,7 @@ Efficiently, and with Little Communication", AISTATS 2019 (arXiv:1802.04705).  O
   (E = e^eps), so every ratio is E, 1 or 1/E.
 * A report y supports the values v with y in C_v: p* = E/(E+1), q* = 1/2 (two different sets
   share half of each other), and the exact n*Var of a frequency estimate is
-  ((E+1)/(E-1))^2 - f_v (REFERENCE.md sections 0.3 and 3.1).
+  ((E+1)/(E-1))^2 - f_v (docs/formulas.md sections 0.3 and 3.1).
 
 Decoding keeps the histogram of the K possible reports (``summarize``); the support counts of
 all k values are one fast Walsh-Hadamard transform of it (O(K log K), no K x K matrix).
@@ -123,7 +123,7 @@ class HadamardResponse(FrequencyOracle):
     at large eps, where it tends to 1 - f_v while other oracles' variance keeps falling
     towards 0.  The paper's blocked generalization for larger eps (several smaller Hadamard
     blocks, sets smaller than half of the outputs) is not implemented: its parameters were not
-    confirmed (REFERENCE.md section 3.1, tagged [M]).
+    confirmed (docs/formulas.md section 3.1, tagged [M]).
     """
 
     name: ClassVar[str] = "hadamard"
@@ -154,6 +154,10 @@ class HadamardResponse(FrequencyOracle):
 
     def output_fields(self, column: str) -> list[pa.Field]:
         return [pa.field(column, pa.int32())]
+
+    def output_meaning(self, field_name: str) -> str:
+        return ("reported output index y in 0..K-1, K the smallest power of two above the number of categories; "
+                "category j is supported when row j+1 of the K x K Hadamard matrix is +1 at y")
 
     def randomize_index(self, x: np.ndarray, words: np.ndarray) -> np.ndarray:
         """Reported output indices (int64) for codes ``x`` and words of shape (n, 2)."""

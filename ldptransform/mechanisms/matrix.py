@@ -6,7 +6,7 @@ Official Statistics 14(4), 1998.  Each row's true category x is replaced by cate
 probability P[x, y] (rows of P = true category, columns = published category, both in the
 order of the mechanism's categories; each row sums to 1), independently across rows.
 
-Local differential privacy (REFERENCE.md section 11 [D]): the channel is eps-LDP iff in every
+Local differential privacy (docs/formulas.md section 11 [D]): the channel is eps-LDP iff in every
 published column l the largest entry is at most e^eps times the smallest, so the eps a matrix
 gives is max over l of ln(max_x P[x, l] / min_x P[x, l]).  A zero entry makes that ratio
 unbounded, so every entry must be strictly positive (many classical post-randomization
@@ -24,7 +24,7 @@ a few units of 2^-50 per entry).
 Decoding solves the linear system: with W = P^{-1}, the per-row estimate u(y) = W[y] (row y
 of W) is unbiased, because E[u(Y) | x] = sum_y P[x, y] W[y] = (P W)[x] = e_x.  Summed over
 rows this is the moment estimator T^ = (P^T)^{-1} T* of the paper (T* = histogram of the
-published categories).  Unlike the "pure" protocols (REFERENCE.md section 0.3), the variance
+published categories).  Unlike the "pure" protocols (docs/formulas.md section 0.3), the variance
 of the estimates depends on the whole true distribution, not on f_v alone, and the total
 variance is data-dependent; ``total_variance`` returns its worst case over data sets.
 """
@@ -61,7 +61,7 @@ _UNIT = float(1 << SAMPLING_BITS)
 def grr_matrix(epsilon: float, k: int) -> np.ndarray:
     """The transition matrix of generalized randomized response over k categories: e^eps/(e^eps+k-1)
     on the diagonal, 1/(e^eps+k-1) off it (Wang, Blocki, Li, Jha, USENIX Security 2017; its
-    column ratio is exactly e^eps, REFERENCE.md section 11 [D])."""
+    column ratio is exactly e^eps, docs/formulas.md section 11 [D])."""
     e = math.exp(float(epsilon))
     k = int(k)
     P = np.full((k, k), 1.0 / (e + k - 1))
@@ -267,6 +267,9 @@ class Matrix(FrequencyOracle):
 
     def output_fields(self, column: str) -> list[pa.Field]:
         return [pa.field(column, pa.dictionary(pa.int32(), pa.string()))]
+
+    def output_meaning(self, field_name: str) -> str:
+        return "reported category (drawn from the row of the policy's transition matrix for the true category)"
 
     def randomize_codes(self, x: np.ndarray, words: np.ndarray) -> np.ndarray:
         """Published code for each true code x (0..k-1), drawn with PRF word 1 of each row."""

@@ -24,7 +24,7 @@ the real-valued channel by at most a few units, i.e. a mean error below 1e-11).
   high and low density with ratio e^eps).
 * hybrid: the same paper; with probability alpha run piecewise, else two-point, with
   alpha = 1 - e^(-eps/2) for eps > 0.61 and alpha = 0 otherwise (the paper's rule, the
-  threshold value 0.61 as REFERENCE.md section 5.3 restates it).
+  threshold value 0.61 as docs/formulas.md section 5.3 restates it).
 
 The value written to the extract is lo + (o_j + 1)(hi - lo)/2: the per-row unbiased
 estimate of x in the column's own units.
@@ -276,6 +276,9 @@ class GridMechanism(Mechanism):
 
     def output_fields(self, column: str) -> list[pa.Field]:
         return [pa.field(column, pa.float64())]
+
+    def output_meaning(self, field_name: str) -> str:
+        return "randomized value; on average equal to the true value (per-row unbiased estimate, column units)"
 
     def randomize_index(self, x: np.ndarray, words: np.ndarray) -> np.ndarray:
         """Index into ``outputs`` for each input value x (column units, within bounds)."""

@@ -3,11 +3,11 @@
 Sources: M. Ye, A. Barg, "Optimal Schemes for Discrete Distribution Estimation under Locally
 Differential Privacy", IEEE Transactions on Information Theory 64(8), 2018; S. Wang, L. Huang,
 P. Wang, Y. Nie, H. Xu, W. Yang, X.-Y. Li, C. Qiao, "Mutual Information Optimally Local Private
-Discrete Distribution Estimation", arXiv:1607.08025, 2016.  Restated in REFERENCE.md
+Discrete Distribution Estimation", arXiv:1607.08025, 2016.  Restated in docs/formulas.md
 sections 3.2 and 4.
 
 The report is a subset S of the k values with |S| = m and P(S | x) proportional to e^eps if
-x is in S and to 1 otherwise.  In the terms of REFERENCE.md section 0.3 (support = S):
+x is in S and to 1 otherwise.  In the terms of docs/formulas.md section 0.3 (support = S):
 p* = mE/(mE + k - m), q* = m[(m-1)E + k - m] / ((k-1)(mE + k - m)), E = e^eps.
 """
 
@@ -31,7 +31,7 @@ MAX_CHANNEL_SUBSETS = 50_000
 
 
 def _total_variance_curve(epsilon: float, k: int) -> np.ndarray:
-    """n * sum_v Var(f_v) for m = 1..k-1 (REFERENCE.md section 4, [D]):
+    """n * sum_v Var(f_v) for m = 1..k-1 (docs/formulas.md section 4, [D]):
     (k-1)[(mE+k-m)^2 - (mE^2+k-m)] / (m(k-m)(E-1)^2), evaluated with t = e^-eps after
     dividing through by E^2 (no overflow at any finite eps, no cancellation: the bracket is
     m(m-1)E^2 + 2m(k-m)E + (k-m)(k-m-1), a sum of non-negative terms)."""
@@ -49,7 +49,7 @@ class SubsetSelection(FrequencyOracle):
     reported subset S), exactly m of them '1'.  Parameter ``subset_size`` (m, 1..k-1; default:
     the m that minimizes the exact total variance n * sum_v Var(f_v), ``best_subset_size``).
 
-    Sampling (REFERENCE.md section 3.2): word 0 decides, by exact integer comparison, whether x
+    Sampling (docs/formulas.md section 3.2): word 0 decides, by exact integer comparison, whether x
     is in S (probability p* = mE/(mE + k - m)); the other members are a uniform subset of the
     k - 1 other values (m - 1 of them if x is in S, else m), drawn by a partial Fisher-Yates
     shuffle vectorized over rows, one word per step reduced with ``keys.to_below`` (off uniform
@@ -80,7 +80,7 @@ class SubsetSelection(FrequencyOracle):
 
     @staticmethod
     def best_subset_size(epsilon: float, k: int) -> int:
-        """The m in 1..k-1 with the lowest exact total variance n * sum_v Var(f_v) (REFERENCE.md
+        """The m in 1..k-1 with the lowest exact total variance n * sum_v Var(f_v) (docs/formulas.md
         section 4), searched exhaustively; within 1e-12 relative of the minimum the smaller m
         wins (a float tie-break, so the choice is reproducible)."""
         if k < 2:
@@ -127,6 +127,10 @@ class SubsetSelection(FrequencyOracle):
 
     def output_fields(self, column: str) -> list[pa.Field]:
         return [pa.field(column, pa.string())]
+
+    def output_meaning(self, field_name: str) -> str:
+        return ("reported subset: character j is 1 if category j of the mechanism's categories is in the row's "
+                "randomized subset (exactly subset_size ones per row)")
 
     def _bits_chunk(self, x: np.ndarray, w: np.ndarray) -> np.ndarray:
         c, k, m, D = len(x), self.k, self.m, self._draws

@@ -1,10 +1,10 @@
 """Checks of the mechanisms against published formulas and worked values.
 
-Each test names the paper it checks and the status tag, in /work/shared/REFERENCE.md
+Each test names the paper it checks and the status tag, in docs/formulas.md
 (the project's reference sheet), of the formula or number it uses:
 [S] seen in a source, [D] derived and checked numerically, [M] recalled from memory
 (combinations such as [M+D] mean "recalled, then re-derived and simulated").  Table
-values come from REFERENCE.md section 13 (all [D]) and are given there to 4 decimals,
+values come from docs/formulas.md section 13 (all [D]) and are given there to 4 decimals,
 so they are compared with an absolute tolerance of 5e-5.
 
 Randomness comes only from the keyed PRF under a fixed test key, so every statistical
@@ -25,7 +25,7 @@ from ldptransform.mechanisms import GRR, OLH, OUE, SUE, Hybrid, Piecewise, TwoPo
 
 KEY = SecretKey(bytes(range(32)))
 NONCE = "0f0e0d0c0b0a09080706050403020100"
-TABLE_TOL = 5e-5  # REFERENCE.md section 13 prints 4 decimals
+TABLE_TOL = 5e-5  # docs/formulas.md section 13 prints 4 decimals
 EPS_TABLE = (0.5, 1.0, 2.0, 4.0)
 
 
@@ -41,7 +41,7 @@ def cats(k: int) -> list[str]:
 # GRR, SUE, OUE, OLH (Wang, Blocki, Li, Jha, USENIX Security 2017)
 # --------------------------------------------------------------------------------------
 
-GRR_TABLE = {  # n * Var at f = 0, REFERENCE.md section 13 [D]
+GRR_TABLE = {  # n * Var at f = 0, docs/formulas.md section 13 [D]
     (0.5, 2): 3.9177, (0.5, 8): 18.1749, (0.5, 32): 75.2038, (0.5, 256): 607.4735,
     (1.0, 2): 0.9207, (1.0, 8): 2.9529, (1.0, 32): 11.0816, (1.0, 256): 86.9497,
     (2.0, 2): 0.1810, (2.0, 8): 0.3280, (2.0, 32): 0.9159, (2.0, 256): 6.4034,
@@ -58,7 +58,7 @@ def test_grr_variance_matches_the_published_formulas(eps, k):
     """T. Wang, J. Blocki, N. Li, S. Jha, "Locally Differentially Private Protocols for
     Frequency Estimation", 26th USENIX Security Symposium, 2017.  Generalized randomized
     response keeps the value with probability E/(E+k-1), E = e^eps [M+D]; approximate
-    n*Var (E+k-2)/(E-1)^2 [M+D]; exact n*Var adds f (k-2)/(E-1) [D] (REFERENCE.md 2.1);
+    n*Var (E+k-2)/(E-1)^2 [M+D]; exact n*Var adds f (k-2)/(E-1) [D] (docs/formulas.md 2.1);
     table values [D] (section 13)."""
     m = GRR(eps, cats(k))
     E = math.exp(eps)
@@ -78,7 +78,7 @@ def test_oue_and_sue_variances_match_the_published_formulas(eps):
     Frequency Estimation", USENIX Security 2017.  OUE: p = 1/2, q = 1/(E+1), approximate
     n*Var 4E/(E-1)^2 [M+D], exact adds + f [D].  SUE: p = e^(eps/2)/(e^(eps/2)+1),
     q = 1 - p, n*Var e^(eps/2)/(e^(eps/2)-1)^2 with no f term [M+D]/[D].  OUE <= SUE with
-    ratio 4a/(a+1)^2, a = e^(eps/2) [D].  Table values [D] (REFERENCE.md section 13)."""
+    ratio 4a/(a+1)^2, a = e^(eps/2) [D].  Table values [D] (docs/formulas.md section 13)."""
     E, a = math.exp(eps), math.exp(eps / 2)
     for k in (2, 5, 8):
         oue, sue = OUE(eps, cats(k)), SUE(eps, cats(k))
@@ -98,7 +98,7 @@ def test_olh_variance_with_its_integer_hash_range(eps):
     Frequency Estimation", USENIX Security 2017.  OLH with g buckets: p* = E/(E+g-1),
     q* = 1/g, approximate n*Var (E-1+g)^2/((E-1)^2 (g-1)) [D]; the optimum over real g is
     E + 1, and an implementation must use an integer g and compute with it [M+D]
-    (REFERENCE.md 2.4, section 14 item 5).  Our q* uses the exact collision probability of
+    (docs/formulas.md 2.4, section 14 item 5).  Our q* uses the exact collision probability of
     the hash family, which differs from 1/g by O(1/(2^31 - 1)), hence rel 1e-6 below.
     Table (integer g) values [D]; the table rounds e^eps and our g minimizes the variance
     over floor/ceil, which agree for eps = 0.5, 1, 2 (g = 3, 4, 8)."""
@@ -125,7 +125,7 @@ def test_grr_versus_oue_switch_point(eps, threshold):
     """T. Wang, J. Blocki, N. Li, S. Jha, "Locally Differentially Private Protocols for
     Frequency Estimation", USENIX Security 2017: GRR has the lower approximate variance
     iff k < 3e^eps + 2 [M+D]; the thresholds 6.946, 10.155, 24.167, 165.794 are [D]
-    (REFERENCE.md 2.5 and section 13)."""
+    (docs/formulas.md 2.5 and section 13)."""
     assert 3 * math.exp(eps) + 2 == pytest.approx(threshold, abs=5e-4)
     below, above = math.floor(threshold), math.ceil(threshold)
     assert GRR(eps, cats(below)).approx_variance() < OUE(eps, cats(below)).approx_variance()
@@ -135,7 +135,7 @@ def test_grr_versus_oue_switch_point(eps, threshold):
 def test_grr_output_counts_fit_the_published_channel():
     """T. Wang, J. Blocki, N. Li, S. Jha, "Locally Differentially Private Protocols for
     Frequency Estimation", USENIX Security 2017: GRR reports the true value w.p.
-    E/(E+k-1) and each other value w.p. 1/(E+k-1) [M+D] (REFERENCE.md 2.1).  Pearson
+    E/(E+k-1) and each other value w.p. 1/(E+k-1) [M+D] (docs/formulas.md 2.1).  Pearson
     chi-square (scipy.stats.chisquare) of 20000 reports per input value against that
     row, computed here from the formula, not from the code.  Threshold: p >= 1e-3 for
     every input (fixed key: deterministic).  The same counts against the row for
@@ -168,7 +168,7 @@ def test_binary_randomized_response_is_grr_with_two_values(eps):
     Truth probability p = e^eps/(1+e^eps) [M+D]; the paper's estimator
     (lambda_hat - (1-p))/(2p-1) [S+D] equals the mean of our per-row estimates for every
     set of reports; fixed-data n*Var p(1-p)/(2p-1)^2 = e^eps/(e^eps-1)^2, no f term [D]
-    (REFERENCE.md section 1)."""
+    (docs/formulas.md section 1)."""
     m = GRR(eps, ["yes", "no"])
     E = math.exp(eps)
     p = E / (1 + E)
@@ -189,7 +189,7 @@ def test_two_coin_scheme_is_grr_at_ln3():
     "The Algorithmic Foundations of Differential Privacy", Foundations and Trends in
     Theoretical Computer Science, 2014): answer truthfully unless two fair coins both land
     heads, then lie.  Truth probability 3/4, worst-case ratio 3, eps = ln 3, fixed-data
-    n*Var 0.75 [D] (REFERENCE.md section 1, check values).  p_star is compared to 3/4 up
+    n*Var 0.75 [D] (docs/formulas.md section 1, check values).  p_star is compared to 3/4 up
     to one rounding (exp(ln 3) is not exactly 3 in floating point)."""
     # enumerate the four equally likely outcomes of two fair coins (1 = heads)
     truth = sum((Fraction(1, 4) for c1 in (0, 1) for c2 in (0, 1) if not (c1 and c2)), Fraction(0))
@@ -207,7 +207,7 @@ def test_randomized_response_variance_with_sampling_monte_carlo():
     """S. L. Warner, "Randomized Response: A Survey Technique for Eliminating Evasive
     Answer Bias", JASA 60(309), 1965: with simple random sampling with replacement,
     n Var(pi_hat) = pi(1-pi) + p(1-p)/(2p-1)^2 [S+D]; at p = 3/4 (two-coin scheme, eps =
-    ln 3) and pi = 0.3 this is 0.21 + 0.75 = 0.96 [D] (REFERENCE.md sections 0.4 and 1).
+    ln 3) and pi = 0.3 this is 0.21 + 0.75 = 0.96 [D] (docs/formulas.md sections 0.4 and 1).
 
     Monte Carlo: a population of 1000 people, 300 of them 'yes'; 4000 independent surveys
     of n = 100 respondents each, drawn with replacement (numpy, fixed seed), every answer
@@ -254,7 +254,7 @@ def test_two_point_mechanism_matches_the_published_formulas(eps):
     """J. C. Duchi, M. I. Jordan, M. J. Wainwright, "Minimax Optimal Procedures for Locally
     Private Estimation", Journal of the American Statistical Association 113(521), 2018.
     Output +-C, C = (E+1)/(E-1), P(+C | t) = 1/2 + t(E-1)/(2(E+1)) [M+D]; exact
-    Var = C^2 - t^2 [D]; table values at t = 0 and t = 1 [D] (REFERENCE.md 5.1, 13)."""
+    Var = C^2 - t^2 [D]; table values at t = 0 and t = 1 [D] (docs/formulas.md 5.1, 13)."""
     E = math.exp(eps)
     C = (E + 1) / (E - 1)
     m = TwoPoint(eps, (-1.0, 1.0))
@@ -319,7 +319,7 @@ def test_piecewise_is_an_exact_discretization_of_the_published_density(eps, grid
     and Analyzing Multidimensional Data with Local Differential Privacy", ICDE 2019.
     Density (e^eps - a)/(2a+2) on [l(t), r(t)] and that over e^eps elsewhere in [-C, C],
     a = e^(eps/2), C = (a+1)/(a-1), l(t) = (C+1)/2 t - (C-1)/2, r = l + C - 1 [M+D]
-    (REFERENCE.md 5.2).  Our cells lie between consecutive window ends of the grid inputs,
+    (docs/formulas.md 5.2).  Our cells lie between consecutive window ends of the grid inputs,
     so for every grid input t_i and every window end y the channel mass of the cells below
     y equals the continuous CDF at y, to the channel's 2^-50 resolution (tolerance 1e-12)."""
     m = Piecewise(eps, (-1.0, 1.0), grid)
@@ -337,7 +337,7 @@ def test_piecewise_variance_matches_the_published_formula(eps):
     """N. Wang, X. Xiao, Y. Yang, J. Zhao, S. C. Hui, H. Shin, J. Shin, G. Yu, "Collecting
     and Analyzing Multidimensional Data with Local Differential Privacy", ICDE 2019:
     Var = t^2/(a-1) + (a+3)/(3(a-1)^2), a = e^(eps/2); worst case 4a/(3(a-1)^2) at |t| = 1
-    [D] (REFERENCE.md 5.2; table values at t = 0, 1 [D], section 13).  Our discretization
+    [D] (docs/formulas.md 5.2; table values at t = 0, 1 [D], section 13).  Our discretization
     reports the cell midpoint (the conditional mean of the continuous output within the
     cell), so at grid points its variance is the continuous one minus the within-cell
     variance: never above it, and within 1% at grid 256.  Between grid points the random
@@ -390,7 +390,7 @@ def test_hybrid_variance_is_constant_and_matches_the_formula(eps, table_value):
     and Analyzing Multidimensional Data with Local Differential Privacy", ICDE 2019.
     Hybrid: piecewise w.p. alpha = 1 - e^(-eps/2), else two-point (for eps > 0.61) [M];
     with that alpha the variance is constant,
-    (a+3)/(3a(a-1)) + (E+1)^2/(a(E-1)^2) [D]; table values [D] (REFERENCE.md 5.3, 13).
+    (a+3)/(3a(a-1)) + (E+1)^2/(a(E-1)^2) [D]; table values [D] (docs/formulas.md 5.3, 13).
     Within 1% at grid 256 (discretization of the piecewise part)."""
     a, E = math.exp(eps / 2), math.exp(eps)
     m = Hybrid(eps, (-1.0, 1.0), 256)
@@ -410,7 +410,7 @@ def test_hybrid_below_the_threshold_is_the_two_point_mechanism():
     """N. Wang et al., "Collecting and Analyzing Multidimensional Data with Local
     Differential Privacy", ICDE 2019: alpha = 0 for eps <= eps* ~ 0.61 [M]; the computed
     crossover of the constant hybrid variance with the two-point worst case is
-    eps* = 0.6094 [D] (REFERENCE.md 5.3, section 14 item 8).  At eps = 0.5 the hybrid is
+    eps* = 0.6094 [D] (docs/formulas.md 5.3, section 14 item 8).  At eps = 0.5 the hybrid is
     the two-point mechanism (worst case 16.6708 [D]); the alpha = 1 - e^(-eps/2) formula
     would give 16.8988 there [D], reproduced from our piecewise and two-point variances."""
     def hm(e):
@@ -444,7 +444,7 @@ def test_piecewise_beats_two_point_worst_case_above_1_29():
     M. J. Wainwright, "Minimax Optimal Procedures for Locally Private Estimation", JASA
     2018: the piecewise worst case 4a/(3(a-1)^2) is below the two-point worst case
     ((E+1)/(E-1))^2 iff eps > 1.29 [M]; the computed crossover is 1.2898 [D]
-    (REFERENCE.md 5.2, section 14 item 8).  Checked on the formulas (to 5e-5) and on the
+    (docs/formulas.md 5.2, section 14 item 8).  Checked on the formulas (to 5e-5) and on the
     mechanisms' exact worst-case variances at grid 256 (to 0.01)."""
     def pm_worst(e):
         a = math.exp(e / 2)
