@@ -8,12 +8,13 @@ please report it with the traceback, which never shows local variables).
 from __future__ import annotations
 
 import json
+import math
 import sys
 import traceback
 from contextlib import contextmanager
 from enum import Enum
 from pathlib import Path
-from typing import Iterator, Optional
+from typing import TYPE_CHECKING, Iterator, Optional
 
 import typer
 from rich.console import Console
@@ -22,6 +23,11 @@ from rich.table import Table
 
 from . import __version__
 from .errors import LdptError
+
+if TYPE_CHECKING:  # pragma: no cover
+    import pandas as pd
+
+    from .results import EstimateResult
 
 app = typer.Typer(no_args_is_help=True, add_completion=False, pretty_exceptions_enable=False,
                   help="Release row-level extracts under local differential privacy, and decode them.")
@@ -192,113 +198,97 @@ def _print(*args: object) -> None:
     out_console.print(*args)
 
 
-def _estimate_table(result: dict) -> None:
-    cm = next((c.get("consistent_method", "") for c in result["columns"].values() if "consistent_method" in c),
-              "norm-sub").split(" ")[0]
-    _print(escape(f"{result['rows']} rows" + (f" from {len(result['extracts'])} merged extracts"
-                                               if result.get("extracts") else "") +
-                  f"; {result['confidence']:.0%} intervals (normal approximation)."))
+def _estimate_table(result: "EstimateResult") -> None:
+    """Render an ``EstimateResult`` as tables (the default output of ``ldpt estimate``)."""
+    cm = next((c.consistent_method for c in result.columns.values() if c.consistent_method), "norm-sub").split(" ")[0]
+    _print(escape(f"{result.rows} rows" + (f" from {len(result.extracts)} merged extracts"
+                                           if len(result.extracts) > 1 else "") +
+                  f"; {result.confidence:.0%} intervals (normal approximation)."))
     _print(escape(f"Frequencies: 'share' is the consistent estimate ({cm}: post-processed to a valid "
                   "distribution, slightly biased); 'unbiased' is the raw unbiased estimate, which may fall "
                   "outside [0, 1], with its SE and interval."))
-    for name, col in result["columns"].items():
-        title = escape(f"{name}: {col['type']}, {col['mechanism']}, eps {col['epsilon']:g}" +
-                       (f", {col['rows_reported']} rows reported" if "rows_reported" in col else ""))
-        if "frequencies" in col:
+    for name, col in result.columns.items():
+        title = escape(f"{name}: {col.type}, {col.mechanism}, eps {col.epsilon:g}" +
+                       (f", {col.rows_reported} rows reported" if col.rows_reported is not None else ""))
+        if col.family == "frequency":
             t = Table(title=title, title_justify="left")
             for h in ("value", "share", "unbiased", "se", "ci_low", "ci_high"):
                 t.add_column(h, justify="left" if h == "value" else "right")
-            for f in col["frequencies"]:
-                t.add_row(escape(f["value"]), *(_num(f[k], ".4f") for k in ("consistent", "estimate", "se", "ci_low",
-                                                                            "ci_high")))
+            for f in col.frequencies:
+                t.add_row(escape(f.value), *(_num(v, ".4f") for v in (f.consistent, f.estimate, f.se, f.ci_low,
+                                                                      f.ci_high)))
             _print(t)
-        if "mean" in col:
+        if col.mean is not None:
             t = Table(title=title, title_justify="left")
             for h in ("statistic", "estimate", "se", "ci_low", "ci_high"):
                 t.add_column(h, justify="left" if h == "statistic" else "right")
-            m = col["mean"]
-            t.add_row("mean", _num(m.get("estimate"), ".6g"), _num(m.get("se"), ".4g"), _num(m.get("ci_low"), ".6g"),
-                      _num(m.get("ci_high"), ".6g"))
+            m = col.mean
+            t.add_row("mean", _num(m.estimate, ".6g"), _num(m.se, ".4g"), _num(m.ci_low, ".6g"), _num(m.ci_high, ".6g"))
             _print(t)
-        if "distribution" in col:
-            d = col["distribution"]
-            t = Table(title=escape(f"{name}: quantiles and ranges ({d.get('method', '')})"), title_justify="left")
+        if col.distribution is not None:
+            d = col.distribution
+            t = Table(title=escape(f"{name}: quantiles and ranges ({d.method})"), title_justify="left")
             for h in ("statistic", "estimate", "ci_low", "ci_high"):
                 t.add_column(h, justify="left" if h == "statistic" else "right")
-            for q in d.get("quantiles", []):
-                t.add_row(f"quantile {q['q']:g}", _num(q.get("estimate"), ".6g"), _num(q.get("ci_low"), ".6g"),
-                          _num(q.get("ci_high"), ".6g"))
-            for r in d.get("ranges", []):
-                t.add_row(escape(f"share in [{r['low']:g}, {r['high']:g})"), _num(r.get("estimate"), ".4f"),
-                          _num(r.get("ci_low"), ".4f"), _num(r.get("ci_high"), ".4f"))
+            for q in d.quantiles:
+                t.add_row(f"quantile {q.q:g}", _num(q.estimate, ".6g"), _num(q.ci_low, ".6g"), _num(q.ci_high, ".6g"))
+            for r in d.ranges:
+                t.add_row(escape(f"share in [{r.low:g}, {r.high:g})"), _num(r.estimate, ".4f"), _num(r.ci_low, ".4f"),
+                          _num(r.ci_high, ".4f"))
             _print(t)
-    for x in result.get("crosstabs", []):
-        t = Table(title=escape(f"cross-tab {x['rows']} x {x['columns']} ({x['rows_used']} rows): joint share "
-                               f"(consistent {x['consistent_method']}), unbiased with CI, and share of "
-                               f"{x['columns']} within {x['rows']}"), title_justify="left")
-        for h in (x["rows"], x["columns"], "joint", "unbiased", "interval", "within row", "interval "):
-            t.add_column(escape(h), justify="left" if h in (x["rows"], x["columns"]) else "right")
-        for c, r in zip(x["cells"], x["row_shares"]):
-            t.add_row(escape(c["row"]), escape(c["column"]), _num(c["consistent"], ".3f"), _num(c["estimate"], ".3f"),
-                      "-" if c["estimate"] is None else f"{c['ci_low']:.3f}..{c['ci_high']:.3f}",
-                      _num(r["estimate"], ".3f"),
-                      "-" if r["estimate"] is None else f"{r['ci_low']:.3f}..{r['ci_high']:.3f}")
+    for x in result.crosstabs:
+        t = Table(title=escape(f"cross-tab {x.rows} x {x.columns} ({x.rows_used} rows): joint share "
+                               f"(consistent {x.consistent_method}), unbiased with CI, and share of "
+                               f"{x.columns} within {x.rows}"), title_justify="left")
+        for h in (x.rows, x.columns, "joint", "unbiased", "interval", "within row", "interval "):
+            t.add_column(escape(h), justify="left" if h in (x.rows, x.columns) else "right")
+        for c in x.cells:
+            j, w = c.joint, c.within
+            t.add_row(escape(c.row), escape(c.column), _num(c.consistent, ".3f"), _num(j.estimate, ".3f"),
+                      "-" if j.estimate is None else f"{j.ci_low:.3f}..{j.ci_high:.3f}", _num(w.estimate, ".3f"),
+                      "-" if w.estimate is None else f"{w.ci_low:.3f}..{w.ci_high:.3f}")
         _print(t)
-    for g in result.get("grouped_means", []):
-        t = Table(title=escape(f"mean of {g['column']} by {g['by']} ({g['rows_used']} rows; delta-method SE)"),
+    for g in result.grouped_means:
+        t = Table(title=escape(f"mean of {g.column} by {g.by} ({g.rows_used} rows; delta-method SE)"),
                   title_justify="left")
-        for h in (g["by"], "mean", "se", "ci_low", "ci_high", "group share"):
-            t.add_column(escape(h), justify="left" if h == g["by"] else "right")
-        for row in g["groups"]:
-            m = row["mean"]
-            t.add_row(escape(row["group"]), _num(m["estimate"], ".6g"), _num(m["se"], ".4g"), _num(m["ci_low"], ".6g"),
-                      _num(m["ci_high"], ".6g"), _num(row.get("share"), ".4f"))
+        for h in (g.by, "mean", "se", "ci_low", "ci_high", "group share"):
+            t.add_column(escape(h), justify="left" if h == g.by else "right")
+        for row in g.groups:
+            m = row.mean
+            t.add_row(escape(row.group), _num(m.estimate, ".6g"), _num(m.se, ".4g"), _num(m.ci_low, ".6g"),
+                      _num(m.ci_high, ".6g"), _num(row.share, ".4f"))
         _print(t)
-    if result.get("public_columns"):
-        out_console.print(f"not estimated (public, released in the clear): {', '.join(result['public_columns'])}",
+    if result.public_columns:
+        out_console.print(f"not estimated (public, released in the clear): {', '.join(result.public_columns)}",
                           markup=False)
 
 
-def _estimate_csv(result: dict) -> str:
+def _csv_cell(v: object) -> str:
+    """A CSV cell: empty for a missing value, the shortest exact text (repr) for a float."""
+    if v is None or (isinstance(v, float) and math.isnan(v)):
+        return ""
+    if isinstance(v, float):
+        return repr(float(v))
+    return str(v)
+
+
+def _frame_csv(frame: "pd.DataFrame") -> str:
+    """A long result frame (``to_frame()``) as CSV text, floats written exactly."""
     import csv
     import io
 
+    import numpy as np
+
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
-    w.writerow(["column", "type", "mechanism", "epsilon", "statistic", "value", "estimate", "se", "ci_low",
-                "ci_high", "consistent"])
-
-    def r(v: object) -> str:
-        return "" if v is None else repr(v) if isinstance(v, float) else str(v)
-
-    for name, col in result["columns"].items():
-        head = [name, col["type"], col["mechanism"], col["epsilon"]]
-        for f in col.get("frequencies", []):
-            w.writerow(head + ["frequency", f["value"], r(f["estimate"]), r(f["se"]), r(f["ci_low"]),
-                               r(f["ci_high"]), r(f["consistent"])])
-        if "mean" in col:
-            m = col["mean"]
-            w.writerow(head + ["mean", "", r(m.get("estimate")), r(m.get("se")), r(m.get("ci_low")),
-                               r(m.get("ci_high")), ""])
-        for q in col.get("distribution", {}).get("quantiles", []):
-            w.writerow(head + ["quantile", r(q["q"]), r(q.get("estimate")), r(q.get("se")), r(q.get("ci_low")),
-                               r(q.get("ci_high")), ""])
-        for g in col.get("distribution", {}).get("ranges", []):
-            w.writerow(head + ["range share", f"{g['low']:g}..{g['high']:g}", r(g.get("estimate")), r(g.get("se")),
-                               r(g.get("ci_low")), r(g.get("ci_high")), ""])
-    for x in result.get("crosstabs", []):
-        for c, s in zip(x["cells"], x["row_shares"]):
-            w.writerow([f"{x['rows']}:{x['columns']}", "crosstab", "", "", "joint share", f"{c['row']}|{c['column']}",
-                        r(c["estimate"]), r(c["se"]), r(c["ci_low"]), r(c["ci_high"]), r(c["consistent"])])
-            w.writerow([f"{x['rows']}:{x['columns']}", "crosstab", "", "", "share within row",
-                        f"{s['row']}|{s['column']}", r(s["estimate"]), r(s["se"]), r(s["ci_low"]), r(s["ci_high"]),
-                        ""])
-    for g in result.get("grouped_means", []):
-        for row in g["groups"]:
-            m = row["mean"]
-            w.writerow([f"{g['column']}:{g['by']}", "grouped mean", "", "", "mean", row["group"], r(m["estimate"]),
-                        r(m["se"]), r(m["ci_low"]), r(m["ci_high"]), ""])
+    w.writerow(list(frame.columns))
+    for row in frame.itertuples(index=False, name=None):
+        w.writerow([_csv_cell(float(v) if isinstance(v, np.floating) else v) for v in row])
     return buf.getvalue()
+
+
+def _estimate_csv(result: "EstimateResult") -> str:
+    return _frame_csv(result.to_frame())
 
 
 @app.command()
@@ -344,7 +334,7 @@ def estimate(
                      ranges=[parse_range(x) for x in range_ or []], consistency=consistency,
                      engine=engine.value, scheduler=scheduler)
         if format == TableJsonCsv.json:
-            text = json.dumps(result, indent=2) + "\n"
+            text = json.dumps(result.to_dict(), indent=2) + "\n"
         elif format == TableJsonCsv.csv:
             text = _estimate_csv(result)
         else:
@@ -556,7 +546,7 @@ def demo(dir: Path = typer.Option(Path("demo_out"), "--dir", help="Folder for th
     from .demo import run_demo
 
     with _user_errors():
-        code = run_demo(dir, out_console, err_console, nonce=nonce)
+        code = run_demo(dir, out_console, err_console, nonce=nonce, show_estimates=_estimate_table)
     raise typer.Exit(code=code)
 
 

@@ -8,8 +8,10 @@ estimates from the extract as a partner would, and validates the release as the 
 from __future__ import annotations
 
 import shutil
+from collections.abc import Callable
 from importlib import resources
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -61,7 +63,10 @@ def bundled_policy(name: str = "staff_survey.yaml") -> Path:
         return Path(p)
 
 
-def run_demo(folder: Path, out: Console, err: Console, nonce: str | None = None) -> int:
+def run_demo(folder: Path, out: Console, err: Console, nonce: str | None = None,
+             show_estimates: Callable[[Any], None] | None = None) -> int:
+    """Run the demo in ``folder``; ``show_estimates`` renders the partner's ``EstimateResult``
+    (the command line passes its table renderer; default: the long frame as text)."""
     from .estimate import estimate
     from .keys import load_key, new_key_file
     from .policy import load_policy
@@ -88,12 +93,13 @@ def run_demo(folder: Path, out: Console, err: Console, nonce: str | None = None)
     out.print(f"   steward-only: key {key_path}, diagnostics {res.diagnostics_path}", markup=False)
     out.print("2. the partner's estimates from the extract alone:", markup=False)
     result = estimate(extract)
-    from .cli import _estimate_table
-
-    _estimate_table(result)
+    if show_estimates is not None:
+        show_estimates(result)
+    else:
+        out.print(result.to_frame().drop(columns=["estimand"]).to_string(index=False), markup=False)
     import json
 
-    (partner / "estimates.json").write_text(json.dumps(result, indent=2) + "\n")
+    (partner / "estimates.json").write_text(json.dumps(result.to_dict(), indent=2) + "\n")
     out.print("3. the steward's validation, with the raw data and the key:", markup=False)
     rep = validate(extract, raw=raw, key=key)
     for c in rep.checks:

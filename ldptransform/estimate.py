@@ -43,6 +43,8 @@ from . import mechanisms as mech
 from .errors import DataError, ManifestError, UsageError
 from .io import TableSource
 from .manifest import ColumnEntry, Manifest, default_manifest_path, load_manifest
+from .results import (ColumnResult, CrossTabCell, CrossTabResult, DistributionResult, EstimateResult, FrequencyResult,
+                      GroupedMeanResult, GroupMean, MeanResult, QuantileResult, RangeResult)
 
 DECODE_BATCH_ROWS = 65536
 CONSISTENCY_METHODS = ("norm-sub", "norm-mul", "norm")
@@ -124,10 +126,15 @@ def _moments(total: np.ndarray | float, sq: np.ndarray | float, n: int) -> tuple
     return mean, np.sqrt(var_rows / n)
 
 
-def _interval(est: float | None, se: float | None, z: float) -> dict[str, Any]:
+def _interval(est: float | None, se: float | None, z: float) -> tuple[Any, Any, Any, Any]:
+    """(estimate, se, ci_low, ci_high) of a normal-approximation interval (all None without an SE)."""
     if est is None or se is None:
-        return {"estimate": None, "se": None, "ci_low": None, "ci_high": None}
-    return {"estimate": float(est), "se": float(se), "ci_low": float(est - z * se), "ci_high": float(est + z * se)}
+        return None, None, None, None
+    return float(est), float(se), float(est - z * se), float(est + z * se)
+
+
+def _mean(est: float | None, se: float | None, z: float, estimand: str = "") -> MeanResult:
+    return MeanResult(*_interval(est, se, z), estimand=estimand)
 
 
 # -- one-column statistics ---------------------------------------------------------------------
@@ -171,23 +178,21 @@ class CategoricalStats:
         """Covariance matrix of the frequency estimates (needs ``joint``; docs/formulas.md 0.3)."""
         return self.mechanism.decode_covariance(self.support, self.n, self.cosupport)
 
-    def frequencies(self, z: float, method: str = "norm-sub", rows: int | None = None) -> list[dict[str, Any]]:
+    def frequencies(self, z: float, method: str = "norm-sub", rows: int | None = None,
+                    estimands: list[str] | None = None) -> tuple[FrequencyResult, ...]:
         """Per value: unbiased share, SE, interval, estimated count (share x all ``rows`` of the
         table, which under budget.strategy sample is more than the rows that reported), and the
         consistent share."""
         m = self.mechanism
         rows = self.n if rows is None else rows
+        what = estimands or [""] * len(m.categories)
         est, se = self.estimates()
         if est is None:
-            return [{"value": label, "estimate": None, "se": None, "ci_low": None, "ci_high": None,
-                     "count_estimate": 0.0, "consistent": None} for label in m.categories]
+            return tuple(FrequencyResult(label, None, None, None, None, 0.0, None, what[i])
+                         for i, label in enumerate(m.categories))
         cons = consistent(est, method)
-        out = []
-        for i, label in enumerate(m.categories):
-            row = {"value": label, **_interval(est[i], se[i], z), "count_estimate": float(est[i] * rows),
-                   "consistent": float(cons[i])}
-            out.append(row)
-        return out
+        return tuple(FrequencyResult(label, *_interval(est[i], se[i], z), float(est[i] * rows), float(cons[i]),
+                                     what[i]) for i, label in enumerate(m.categories))
 
 
 @dataclass
@@ -212,11 +217,11 @@ class NumericStats:
         self.s1 += other.s1
         self.s2 += other.s2
 
-    def mean(self, z: float) -> dict[str, Any]:
+    def mean(self, z: float, estimand: str = "") -> MeanResult:
         est, se = _moments(self.s1, self.s2, self.n)
         if est is None:
-            return _interval(None, None, z)
-        return _interval(float(est) + self.shift, float(se), z)
+            return _mean(None, None, z, estimand)
+        return _mean(float(est) + self.shift, float(se), z, estimand)
 
 
 @dataclass
@@ -300,10 +305,10 @@ class CrossStats:
         for name in ("S", "SS", "T", "SA", "SAA"):
             setattr(self, name, getattr(self, name) + getattr(o, name))
 
-    def report(self, z: float, method: str) -> dict[str, Any]:
+    def report(self, z: float, method: str, rows: str = "", columns: str = "") -> CrossTabResult:
         n = self.n
         if n < 2:
-            return {"rows_used": n, "cells": [], "row_shares": []}
+            return CrossTabResult(rows, columns, n, (), method)
         joint, joint_se = _moments(self.S, self.SS, n)
         marg, marg_se = _moments(self.SA, self.SAA, n)
         cons = consistent(joint.ravel(), method).reshape(joint.shape)
@@ -313,16 +318,16 @@ class CrossStats:
         with np.errstate(divide="ignore", invalid="ignore"):
             R = joint / marg[:, None]
             var_R = (var_j - 2 * R * cov + R ** 2 * var_m) / marg[:, None] ** 2
-        cells, shares = [], []
+        cells = []
         for i, la in enumerate(self.a.categories):
             for j, lb in enumerate(self.b.categories):
-                cells.append({"row": la, "column": lb, **_interval(joint[i, j], joint_se[i, j], z),
-                              "consistent": float(cons[i, j])})
                 ok = marg[i] > 0 and np.isfinite(var_R[i, j])
-                shares.append({"row": la, "column": lb,
-                               **(_interval(R[i, j], math.sqrt(max(var_R[i, j], 0.0)), z) if ok
-                                  else _interval(None, None, z))})
-        return {"rows_used": n, "cells": cells, "row_shares": shares}
+                jt = _mean(joint[i, j], joint_se[i, j], z, f"share of rows with {_is(rows, la)} and "
+                           f"{_is(columns, lb)} among all rows")
+                within = _mean(*((R[i, j], math.sqrt(max(var_R[i, j], 0.0))) if ok else (None, None)), z,
+                               f"share of rows with {_is(columns, lb)} among rows with {_is(rows, la)}")
+                cells.append(CrossTabCell(la, lb, jt, float(cons[i, j]), within))
+        return CrossTabResult(rows, columns, n, tuple(cells), method)
 
 
 @dataclass
@@ -360,27 +365,33 @@ class GroupMeanStats:
         for name in ("A", "AA", "C", "SA", "SAA"):
             setattr(self, name, getattr(self, name) + getattr(o, name))
 
-    def report(self, z: float) -> list[dict[str, Any]]:
+    def report(self, z: float, what: str = "", by: str = "") -> tuple[GroupMean, ...]:
+        """Per group: the mean of the numeric column among its rows (``what`` describes the
+        column's values, ``by`` names the grouping column)."""
         n = self.n
-        out = []
+        cats = self.group.categories
+
+        def estimand(g: str) -> str:
+            return f"{what} among rows with {_is(by, g)}"
+
         if n < 2:
-            return [{"group": g, "mean": _interval(None, None, z), "share": None} for g in self.group.categories]
+            return tuple(GroupMean(g, _mean(None, None, z, estimand(g)), None) for g in cats)
         num, num_se = _moments(self.A, self.AA, n)
         den, den_se = _moments(self.SA, self.SAA, n)
         cov = (self.C - self.A * self.SA / n) / (n - 1) / n
-        for i, g in enumerate(self.group.categories):
+        out = []
+        for i, g in enumerate(cats):
             if den[i] <= 0:
-                out.append({"group": g, "mean": _interval(None, None, z), "share": float(den[i]),
-                            "note": "the estimated share of this group is not positive: no mean"})
+                out.append(GroupMean(g, _mean(None, None, z, estimand(g)), float(den[i]),
+                                     "the estimated share of this group is not positive: no mean"))
                 continue
             R = num[i] / den[i]
             var = (num_se[i] ** 2 - 2 * R * cov[i] + R ** 2 * den_se[i] ** 2) / den[i] ** 2
-            row = {"group": g, "mean": _interval(self.shift + R, math.sqrt(max(var, 0.0)), z),
-                   "share": float(den[i])}
-            if den[i] - z * den_se[i] <= 0:
-                row["note"] = "the group's share is not clearly above 0: the ratio and its SE are unreliable"
-            out.append(row)
-        return out
+            note = ("the group's share is not clearly above 0: the ratio and its SE are unreliable"
+                    if den[i] - z * den_se[i] <= 0 else None)
+            out.append(GroupMean(g, _mean(self.shift + R, math.sqrt(max(var, 0.0)), z, estimand(g)), float(den[i]),
+                                 note))
+        return tuple(out)
 
 
 # -- reading ---------------------------------------------------------------------------------
@@ -646,93 +657,137 @@ def z_value(confidence: float) -> float:
     return NormalDist().inv_cdf(0.5 + confidence / 2)
 
 
-def _interval_dict(iv: Any) -> dict[str, Any]:
-    """distribution.Interval -> the estimate/se/ci_low/ci_high/method keys used everywhere."""
-    d = iv.as_dict() if hasattr(iv, "as_dict") else dict(iv)
-    return {"estimate": d.get("estimate"), "se": d.get("se"), "ci_low": d.get("lo", d.get("ci_low")),
-            "ci_high": d.get("hi", d.get("ci_high")), "method": d.get("method")}
+def _interval_fields(iv: Any) -> tuple[Any, Any, Any, Any, Any]:
+    """distribution.Interval -> (estimate, se, ci_low, ci_high, method)."""
+    return iv.estimate, iv.se, iv.lo, iv.hi, iv.method
 
 
-def _distribution_report(dist: Any, an: Analyses, col: str, confidence: float) -> dict[str, Any]:
-    out: dict[str, Any] = {"method": getattr(dist, "method", "")}
-    qs = []
-    for q in an.quantiles:
-        qs.append({"q": q, **_interval_dict(dist.quantile_ci(q, confidence))})
-    out["quantiles"] = qs
-    rngs = []
-    for c, lo, hi in an.ranges:
-        if c == col:
-            rngs.append({"low": lo, "high": hi, **_interval_dict(dist.range_ci(lo, hi, confidence))})
-    if rngs:
-        out["ranges"] = rngs
+# -- what each statistic estimates (from the manifest and its embedded policy) ----------------
+
+def _is(column: str, label: str) -> str:
+    from .policy import MISSING_LABEL, OTHER_LABEL
+
+    if label == MISSING_LABEL:
+        return f"{column} missing"
+    if label == OTHER_LABEL:
+        return f"{column} not one of its listed categories"
+    return f"{column} = {label}"
+
+
+def _policy_column(manifest: Manifest, name: str) -> dict[str, Any]:
+    cols = (manifest.policy or {}).get("columns") or {}
+    c = cols.get(name) if isinstance(cols, dict) else None
+    return c if isinstance(c, dict) else {}
+
+
+def describe_values(manifest: Manifest, entry: ColumnEntry) -> str:
+    """The values a numeric column's statistics are about, as the release encoded them: clipped
+    to the bounds (unless the policy refused values outside them), missing values filled."""
+    bounds = (entry.mechanism or {}).get("bounds")
+    if bounds is None and entry.bins:
+        bounds = (entry.bins[0], entry.bins[-1])
+    cfg = _policy_column(manifest, entry.name)
+    text = entry.name
+    if bounds is not None:
+        lo, hi = bounds
+        text = (f"{entry.name} clipped to [{lo:g}, {hi:g}]" if cfg.get("out_of_bounds", "clip") == "clip"
+                else f"{entry.name} (every value within [{lo:g}, {hi:g}])")
+    fill = cfg.get("missing")
+    if isinstance(fill, dict) and "fill" in fill:
+        text += f", missing values counted as {fill['fill']:g}"
+    return text
+
+
+def _frequency_estimands(manifest: Manifest, entry: ColumnEntry, labels: list[str]) -> list[str]:
+    if entry.type == "binned":
+        what = describe_values(manifest, entry)
+        return [f"share of rows with {what} in bin {lab} among all rows" for lab in labels]
+    return [f"share of rows with {_is(entry.name, lab)} among all rows" for lab in labels]
+
+
+def _distribution_result(dist: Any, an: Analyses, col: str, confidence: float, what: str) -> DistributionResult:
+    buckets = f"read off its histogram over {len(dist.mass)} buckets, linear within each"
+    qs = tuple(QuantileResult(q, *_interval_fields(dist.quantile_ci(q, confidence)),
+                              estimand=f"{q:g}-quantile of {what} ({buckets})") for q in an.quantiles)
+    rngs = tuple(RangeResult(lo, hi, *_interval_fields(dist.range_ci(lo, hi, confidence)),
+                             estimand=f"share of rows with {col} in [{lo:g}, {hi:g}) among all rows ({what}; {buckets})")
+                 for c, lo, hi in an.ranges if c == col)
     hist = dist.histogram()
-    out["histogram"] = hist
-    out["cdf"] = {"x": hist["edges"], "F": [float(v) for v in np.atleast_1d(dist.cdf(np.asarray(hist["edges"])))]}
-    return out
+    cdf = [float(v) for v in np.atleast_1d(dist.cdf(np.asarray(hist["edges"])))]
+    return DistributionResult(getattr(dist, "method", ""), qs, rngs, tuple(hist["edges"]), tuple(hist["mass"]),
+                              tuple(cdf), source=dist)
+
+
+def _column_result(entry: ColumnEntry, st: Any, manifest: Manifest, rows: int, confidence: float, z: float,
+                   an: Analyses) -> ColumnResult:
+    spec = entry.mechanism or {}
+    head: dict[str, Any] = {"name": entry.name, "type": entry.type, "mechanism": spec.get("mechanism"),
+                            "epsilon": spec.get("epsilon"), "rows_reported": st.n if st.n != rows else None}
+    bounds = spec.get("bounds")
+    bounds = None if bounds is None else tuple(bounds)
+    if isinstance(st, CategoricalStats):
+        labels = list(st.mechanism.categories)
+        freqs = st.frequencies(z, an.consistency, rows, _frequency_estimands(manifest, entry, labels))
+        dist = None
+        if entry.type == "binned" and entry.bins is not None and st.n > 1:
+            from .distribution import binned_distribution
+
+            cov = st.covariance()
+            prefix_se = np.sqrt(np.maximum(np.diag(np.cumsum(np.cumsum(cov, axis=0), axis=1)), 0.0))
+            d = binned_distribution(np.asarray(entry.bins, float), st.estimates()[0], prefix_se, cov=cov, n=st.n)
+            dist = _distribution_result(d, an, entry.name, confidence, describe_values(manifest, entry))
+        return ColumnResult(**head, family="frequency", frequencies=freqs,
+                            consistent_method=f"{an.consistency} (post-processed to a valid distribution; biased, "
+                                              "for display)", distribution=dist)
+    what = describe_values(manifest, entry)
+    if isinstance(st, DistributionStats):
+        mean = dist = None
+        if st.n > 1:
+            d = st.distribution()
+            mean = MeanResult(float(d.mean()), note="mean of the estimated distribution (no SE: use a mean mechanism "
+                                                    "such as hybrid when the mean matters)",
+                              estimand=f"mean of {what}, from the estimated distribution")
+            dist = _distribution_result(d, an, entry.name, confidence, what)
+        return ColumnResult(**head, family="distribution", bounds=bounds, mean=mean, distribution=dist)
+    return ColumnResult(**head, family="mean", bounds=bounds, mean=st.mean(z, f"mean of {what} among all rows"))
+
+
+SE_METHOD = ("sample standard deviation of the per-row unbiased estimates / sqrt(rows); normal-approximation "
+             "intervals; ratios (shares within a group, grouped means) by the delta method")
 
 
 def report(manifest: Manifest, stats: dict[str, Any], rows: int, confidence: float,
-           analyses: Analyses | None = None, acc: Accumulated | None = None) -> dict[str, Any]:
+           analyses: Analyses | None = None, acc: Accumulated | None = None) -> EstimateResult:
+    """The typed result of accumulated statistics (``EstimateResult``; ``to_dict()`` is the JSON
+    shape of ``ldpt estimate --format json``)."""
     an = analyses or Analyses()
     z = z_value(confidence)
-    out: dict[str, Any] = {"rows": rows, "confidence": confidence, "columns": {}}
-    for entry in manifest.columns:
-        st = stats.get(entry.name)
-        if st is None:
-            continue
-        spec = entry.mechanism or {}
-        base: dict[str, Any] = {"type": entry.type, "mechanism": spec.get("mechanism"), "epsilon": spec.get("epsilon")}
-        if st.n != rows:
-            base["rows_reported"] = st.n
-        if isinstance(st, CategoricalStats):
-            base["frequencies"] = st.frequencies(z, an.consistency, rows)
-            base["consistent_method"] = f"{an.consistency} (post-processed to a valid distribution; biased, for display)"
-            if entry.type == "binned" and entry.bins is not None and st.n > 1:
-                from .distribution import binned_distribution
-
-                cov = st.covariance()
-                prefix_se = np.sqrt(np.maximum(np.diag(np.cumsum(np.cumsum(cov, axis=0), axis=1)), 0.0))
-                dist = binned_distribution(np.asarray(entry.bins, float), st.estimates()[0], prefix_se, cov=cov,
-                                           n=st.n)
-                base["distribution"] = _distribution_report(dist, an, entry.name, confidence)
-        elif isinstance(st, DistributionStats):
-            base["bounds"] = spec.get("bounds")
-            if st.n > 1:
-                dist = st.distribution()
-                base["mean"] = {"estimate": float(dist.mean()), "se": None, "ci_low": None, "ci_high": None,
-                                "note": "mean of the estimated distribution (no SE: use a mean mechanism such as "
-                                        "hybrid when the mean matters)"}
-                base["distribution"] = _distribution_report(dist, an, entry.name, confidence)
-        else:
-            base["bounds"] = spec.get("bounds")
-            base["mean"] = st.mean(z)
-        out["columns"][entry.name] = base
+    entries = {e.name: e for e in manifest.columns}
+    columns = {e.name: _column_result(e, stats[e.name], manifest, rows, confidence, z, an)
+               for e in manifest.columns if stats.get(e.name) is not None}
+    crosstabs: tuple[CrossTabResult, ...] = ()
+    grouped: tuple[GroupedMeanResult, ...] = ()
+    extracts: tuple[str, ...] = ()
     if acc is not None:
-        if acc.crosstabs:
-            out["crosstabs"] = [{"rows": a, "columns": b, **st.report(z, an.consistency),
-                                 "consistent_method": an.consistency} for (a, b), st in acc.crosstabs.items()]
-        if acc.mean_by:
-            out["grouped_means"] = [{"column": y, "by": g, "rows_used": st.n, "groups": st.report(z)}
-                                    for (y, g), st in acc.mean_by.items()]
-        if len(acc.extracts) > 1:
-            out["extracts"] = acc.extracts
-    out["se_method"] = ("sample standard deviation of the per-row unbiased estimates / sqrt(rows); "
-                        "normal-approximation intervals; ratios (shares within a group, grouped means) by the "
-                        "delta method")
-    public = [c.name for c in manifest.columns if c.type == "public"]
-    if public:
-        out["public_columns"] = public
-    return out
+        crosstabs = tuple(st.report(z, an.consistency, a, b) for (a, b), st in acc.crosstabs.items())
+        grouped = tuple(GroupedMeanResult(y, g, st.n, st.report(z, f"mean of {describe_values(manifest, entries[y])}",
+                                                                g))
+                        for (y, g), st in acc.mean_by.items())
+        extracts = tuple(acc.extracts)
+    public = tuple(c.name for c in manifest.columns if c.type == "public")
+    return EstimateResult(rows, confidence, columns, SE_METHOD, crosstabs, grouped, extracts, public)
 
 
 def estimate(extract: Path | str | list[Path | str], manifest_path: Path | str | list | None = None, *,
              confidence: float = 0.95, batch_rows: int = DECODE_BATCH_ROWS,
              crosstabs: list[tuple[str, str]] | None = None, mean_by: list[tuple[str, str]] | None = None,
              quantiles: list[float] | None = None, ranges: list[tuple[str, float, float]] | None = None,
-             consistency: str = "norm-sub", engine: str = "local", scheduler: str | None = None) -> dict[str, Any]:
+             consistency: str = "norm-sub", engine: str = "local", scheduler: str | None = None) -> EstimateResult:
     """Unbiased frequencies and means (and the requested joint analyses, quantiles and
-    ranges) with SE and CI.  ``extract`` may be a list: extracts with identical mechanism
-    specs are merged by adding their sufficient statistics."""
+    ranges) with SE and CI, as an ``EstimateResult`` (``to_dict()``: the JSON shape of
+    ``ldpt estimate --format json``; ``to_frame()``: one row per statistic).  ``extract`` may
+    be a list: extracts with identical mechanism specs are merged by adding their sufficient
+    statistics."""
     z_value(confidence)
     extracts = list(extract) if isinstance(extract, (list, tuple)) else [extract]
     if isinstance(manifest_path, (list, tuple)):

@@ -195,9 +195,9 @@ def test_estimate_merges_the_parts_with_either_engine(dataset: Path, tmp_path: P
     privatize(dataset, pol, KEY, tmp_path / "ds", nonce=NONCE, fragment_rows=2000)
     privatize(dataset, pol, KEY, tmp_path / "one.parquet", nonce=NONCE)
     kw = dict(crosstabs=[("site", "role")], mean_by=[("pay", "site")])
-    local = estimate(tmp_path / "ds", **kw)
-    dsk = estimate(tmp_path / "ds", engine="dask", scheduler=cluster, **kw)
-    single = estimate(tmp_path / "one.parquet", **kw)
+    local = estimate(tmp_path / "ds", **kw).to_dict()
+    dsk = estimate(tmp_path / "ds", engine="dask", scheduler=cluster, **kw).to_dict()
+    single = estimate(tmp_path / "one.parquet", **kw).to_dict()
     for d in (local, dsk, single):
         d.pop("extract", None)
         d.pop("extracts", None)

@@ -157,8 +157,8 @@ def test_merged_extracts_equal_their_concatenation(tmp_path):
         privatize(raw, lp, KEY, out, nonce=f"{77 + i:032x}")
         outs.append(out)
     kw = dict(crosstabs=[("area", "band")], mean_by=[("pay", "area")])
-    merged = estimate(outs, **kw)
-    whole = estimate(_concat_release(tmp_path, outs), **kw)
+    merged = estimate(outs, **kw).to_dict()
+    whole = estimate(_concat_release(tmp_path, outs), **kw).to_dict()
     assert merged["rows"] == whole["rows"] == 4000
     merged.pop("extracts")
     assert _close(merged, whole)
