@@ -15,7 +15,14 @@ from pathlib import Path
 from typing import Annotated, Any, Literal, Union
 
 import yaml
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    ValidationError,
+    field_validator,
+    model_validator,
+)
 from pydantic_core import InitErrorDetails, PydanticCustomError
 
 from . import mechanisms as mech
@@ -391,112 +398,127 @@ def _where(name: str, fieldname: str) -> str:
     return f"column {name!r}, field '{fieldname}'"
 
 
-CATEGORICAL_PARAMS = {"hash_range": "olh", "subset_size": "subset", "matrix": "matrix"}
+def _set_fields(col: Any, *families: str) -> list[str]:
+    """The fields of ``col`` (in the column model's order) that some mechanism of these families takes
+    as a policy parameter and that the policy sets."""
+    return [f for f in type(col).model_fields if getattr(col, f, None) is not None and mech.field_owners(f, *families)]
+
+
+def _owners_text(field: str, *families: str) -> str:
+    return " or ".join(mech.field_owners(field, *families))
+
+
+def _build(name: str, cls: type[mech.Mechanism], epsilon: Any, domain: Any, params: dict[str, Any]) -> mech.Mechanism:
+    """The column's mechanism from its class and policy fields; the mechanism's own errors name the column
+    (and the field, for a missing or refused one)."""
+    try:
+        return cls.from_policy(epsilon, domain, params)
+    except mech.MechanismParamError as err:
+        raise PolicyError(f"{_where(name, err.field)}: {err}") from None
+    except PolicyError as err:
+        raise PolicyError(f"column {name!r}: {err}") from None
+
+
+def _resolve_categories(name: str, col: Any) -> ResolvedColumn:
+    """A categorical column, or a numeric one released as bins: a frequency oracle over its values."""
+    if isinstance(col, CategoricalColumn):
+        labels = [category_label(c) for c in col.categories]
+        kind = "categorical"
+    else:
+        labels = col.bin_labels()
+        kind = "binned"
+    domain = list(labels)
+    rc = ResolvedColumn(name, kind, col, labels=labels)
+    if getattr(col, "missing", None) == "as-category":
+        rc.missing_code = len(domain)
+        domain.append(MISSING_LABEL)
+    if getattr(col, "unknown", None) == "as-category":
+        rc.other_code = len(domain)
+        domain.append(OTHER_LABEL)
+    if len(domain) < 2:
+        raise PolicyError(f"{_where(name, 'categories')}: a column needs at least 2 possible values "
+                          "(declare more categories, or use type: public / drop)")
+    name_ = col.mechanism or "auto"
+    cls = mech.registry().get(name_)
+    frequency = mech.names_of("frequency")
+    if kind == "binned" and cls is not None and cls.family == "frequency" and not cls.accepts_binned:
+        usable = [n for n in frequency if mech.registry()[n].accepts_binned]
+        raise PolicyError(f"{_where(name, 'mechanism')}: mechanism {name_} is not available for a numeric column "
+                          f"released as bins ({cls.binned_refusal}); use one of {', '.join(usable)}, or leave "
+                          "mechanism out to pick the lowest-variance one")
+    takes = cls.policy_fields() if cls is not None else ()
+    params: dict[str, Any] = {}
+    for fieldname in _set_fields(col, "frequency"):
+        if fieldname not in takes:
+            owner = _owners_text(fieldname, "frequency")
+            raise PolicyError(f"{_where(name, fieldname)}: {fieldname} applies to mechanism {owner} only; set "
+                              f"mechanism: {owner} to use it, or remove {fieldname}")
+        params[fieldname] = getattr(col, fieldname)
+    if name_ == "auto":
+        rc.mechanism, rc.chosen_because = mech.choose_categorical(col.epsilon, domain)
+    elif cls is not None and cls.family == "frequency":
+        rc.mechanism = _build(name, cls, col.epsilon, domain, params)
+    elif cls is not None:
+        raise PolicyError(f"{_where(name, 'mechanism')}: {name_!r} randomizes numbers, but this column is "
+                          f"released as categories{' (bins)' if kind == 'binned' else ''}; use one of "
+                          f"{', '.join(frequency)} or leave mechanism out")
+    else:
+        raise PolicyError(f"{_where(name, 'mechanism')}: unknown mechanism {name_!r}; for this column use one "
+                          f"of {', '.join(frequency)}, or leave it out to pick the lowest-variance one")
+    return rc
+
+
+def _resolve_number(name: str, col: NumericColumn) -> ResolvedColumn:
+    """A numeric column released as a number: a mean or distribution mechanism on its bounds."""
+    rc = ResolvedColumn(name, "numeric", col)
+    name_ = col.mechanism or "auto"
+    numeric = mech.names_of("mean", "distribution")
+    for fieldname in _set_fields(col, "frequency"):
+        raise PolicyError(f"{_where(name, fieldname)}: {fieldname} applies to mechanism "
+                          f"{_owners_text(fieldname, 'frequency')} on bins only")
+    if name_ == "auto" and "quantiles" in (col.needs or ()):
+        name_ = mech.DEFAULT_DISTRIBUTION
+        rc.chosen_because = mech.DEFAULT_DISTRIBUTION_REASON
+    cls = mech.registry().get(name_)
+    takes = cls.policy_fields() if cls is not None else mech.AUTO_NUMERIC_FIELDS if name_ == "auto" else ()
+    params: dict[str, Any] = {}
+    refused: list[str] = []
+    for fieldname in _set_fields(col, "mean", "distribution"):
+        if fieldname in takes:
+            params[fieldname] = getattr(col, fieldname)
+        elif fieldname not in mech.AUTO_NUMERIC_FIELDS:
+            raise PolicyError(f"{_where(name, fieldname)}: {fieldname} applies to mechanism "
+                              f"{_owners_text(fieldname, 'mean', 'distribution')} only")
+        elif cls is not None and cls.family != "frequency":
+            refused.append(fieldname)   # a field of the automatic choice that this mechanism has no use for
+    if name_ == "auto":
+        rc.mechanism, rc.chosen_because = mech.choose_numeric(col.epsilon, col.domain, **params)
+    elif cls is not None and cls.family != "frequency":
+        if refused:
+            raise PolicyError(f"{_where(name, refused[0])}: {cls.refuse_field(refused[0])}")
+        rc.mechanism = _build(name, cls, col.epsilon, col.domain, params)
+    elif cls is not None:
+        raise PolicyError(f"{_where(name, 'mechanism')}: {name_!r} randomizes categories, but this column is "
+                          f"numeric; use one of {', '.join(numeric)}, or add bins: [edges] to release it "
+                          "as categories")
+    else:
+        raise PolicyError(f"{_where(name, 'mechanism')}: unknown mechanism {name_!r}; for a numeric column use one "
+                          f"of {', '.join(numeric)}, or leave it out to pick the lowest-variance one")
+    return rc
 
 
 def resolve_column(name: str, col: Any) -> ResolvedColumn:
+    """The concrete mechanism of one policy column.  Which policy fields a mechanism takes, and
+    why it refuses one, is asked of the mechanism class (``Params``, ``field_refusals``,
+    ``accepts_binned``); nothing here names a mechanism."""
     if isinstance(col, DropColumn):
         return ResolvedColumn(name, "drop", col)
     if isinstance(col, PublicColumn):
         return ResolvedColumn(name, "public", col)
     if isinstance(col, CategoricalColumn) or (isinstance(col, NumericColumn) and col.bins is not None):
-        if isinstance(col, CategoricalColumn):
-            labels = [category_label(c) for c in col.categories]
-            kind = "categorical"
-        else:
-            labels = col.bin_labels()
-            kind = "binned"
-        domain = list(labels)
-        rc = ResolvedColumn(name, kind, col, labels=labels)
-        if getattr(col, "missing", None) == "as-category":
-            rc.missing_code = len(domain)
-            domain.append(MISSING_LABEL)
-        if getattr(col, "unknown", None) == "as-category":
-            rc.other_code = len(domain)
-            domain.append(OTHER_LABEL)
-        if len(domain) < 2:
-            raise PolicyError(f"{_where(name, 'categories')}: a column needs at least 2 possible values "
-                              "(declare more categories, or use type: public / drop)")
-        name_ = col.mechanism or "auto"
-        if name_ == "matrix" and kind == "binned":
-            raise PolicyError(f"{_where(name, 'mechanism')}: mechanism matrix is not available for a numeric column "
-                              "released as bins (its transition matrix is given only on a categorical column); use "
-                              f"one of {', '.join(m for m in mech.CATEGORICAL if m != 'matrix')}, or leave mechanism "
-                              "out to pick the lowest-variance one")
-        params: dict[str, Any] = {}
-        for fieldname, owner in CATEGORICAL_PARAMS.items():
-            value = getattr(col, fieldname, None)
-            if value is None:
-                continue
-            if name_ != owner:
-                raise PolicyError(f"{_where(name, fieldname)}: {fieldname} applies to mechanism {owner} only; set "
-                                  f"mechanism: {owner} to use it, or remove {fieldname}")
-            params[fieldname] = value
-        if name_ == "matrix" and "matrix" not in params:
-            raise PolicyError(f"{_where(name, 'matrix')}: mechanism matrix needs the transition matrix: give matrix: "
-                              f"[[...], ...] with one row and one column per value ({len(domain)}: "
-                              f"{', '.join(domain)})")
-        if name_ == "auto":
-            rc.mechanism, rc.chosen_because = mech.choose_categorical(col.epsilon, domain)
-        elif name_ in mech.CATEGORICAL:
-            try:
-                rc.mechanism = mech.make(name_, "categorical", col.epsilon, domain, **params)
-            except PolicyError as err:
-                raise PolicyError(f"column {name!r}: {err}") from None
-        elif name_ in mech.NUMERIC + mech.DISTRIBUTION:
-            raise PolicyError(f"{_where(name, 'mechanism')}: {name_!r} randomizes numbers, but this column is "
-                              f"released as categories{' (bins)' if kind == 'binned' else ''}; use one of "
-                              f"{', '.join(mech.CATEGORICAL)} or leave mechanism out")
-        else:
-            raise PolicyError(f"{_where(name, 'mechanism')}: unknown mechanism {name_!r}; for this column use one "
-                              f"of {', '.join(mech.CATEGORICAL)}, or leave it out to pick the lowest-variance one")
-        return rc
+        return _resolve_categories(name, col)
     assert isinstance(col, NumericColumn)
-    rc = ResolvedColumn(name, "numeric", col)
-    name_ = col.mechanism or "auto"
-    grid = col.grid or mech.DEFAULT_GRID
-    numeric_names = ", ".join(mech.NUMERIC + mech.DISTRIBUTION)
-    for fieldname in ("hash_range", "subset_size"):
-        if getattr(col, fieldname) is not None:
-            raise PolicyError(f"{_where(name, fieldname)}: {fieldname} applies to mechanism "
-                              f"{CATEGORICAL_PARAMS[fieldname]} on bins only")
-    if name_ == "auto" and "quantiles" in (col.needs or ()):
-        name_ = mech.DEFAULT_DISTRIBUTION
-        rc.chosen_because = mech.DEFAULT_DISTRIBUTION_REASON
-    for fieldname in ("branching", "leaves"):
-        if getattr(col, fieldname) is not None and name_ != "hierarchy":
-            raise PolicyError(f"{_where(name, fieldname)}: {fieldname} applies to mechanism hierarchy only")
-    if name_ == "auto":
-        rc.mechanism, rc.chosen_because = mech.choose_numeric(col.epsilon, col.domain, grid)
-    elif name_ in mech.NUMERIC:
-        params = {"grid": grid} if name_ != "two-point" else {}
-        if name_ == "two-point" and col.grid is not None:
-            raise PolicyError(f"{_where(name, 'grid')}: two-point has no input grid (it reports one of two values); "
-                              "remove grid")
-        try:
-            rc.mechanism = mech.make(name_, "numeric", col.epsilon, col.domain, **params)
-        except PolicyError as err:
-            raise PolicyError(f"column {name!r}: {err}") from None
-    elif name_ in mech.DISTRIBUTION:
-        if name_ == "hierarchy":
-            if col.grid is not None:
-                raise PolicyError(f"{_where(name, 'grid')}: grid does not apply to mechanism hierarchy (its buckets "
-                                  "are set by leaves)")
-            params = {k: v for k, v in (("branching", col.branching), ("leaves", col.leaves)) if v is not None}
-        else:
-            params = {"grid": grid}
-        try:
-            rc.mechanism = mech.make(name_, "numeric", col.epsilon, col.domain, **params)
-        except PolicyError as err:
-            raise PolicyError(f"column {name!r}: {err}") from None
-    elif name_ in mech.CATEGORICAL:
-        raise PolicyError(f"{_where(name, 'mechanism')}: {name_!r} randomizes categories, but this column is "
-                          f"numeric; use one of {numeric_names}, or add bins: [edges] to release it "
-                          "as categories")
-    else:
-        raise PolicyError(f"{_where(name, 'mechanism')}: unknown mechanism {name_!r}; for a numeric column use one "
-                          f"of {numeric_names}, or leave it out to pick the lowest-variance one")
-    return rc
+    return _resolve_number(name, col)
 
 
 @dataclass
@@ -539,9 +561,10 @@ def resolve(policy: Policy, source: str = "<policy>") -> LoadedPolicy:
                 _memoize(rc, source)
             cols.append(rc)
         except PolicyError as err:
-            if (policy.budget.strategy == "sample" and isinstance(col, NumericColumn)
-                    and col.mechanism == "discrete-laplace" and "field 'epsilon'" in str(err)):
-                raise PolicyError(_sampled_exact_eps_message(policy, name, source)) from None
+            cls = mech.registry().get(getattr(col, "mechanism", None) or "")
+            if (policy.budget.strategy == "sample" and isinstance(col, NumericColumn) and cls is not None
+                    and cls.exact_decimal_epsilon and "field 'epsilon'" in str(err)):
+                raise PolicyError(_sampled_exact_eps_message(policy, name, source, cls.name)) from None
             raise PolicyError(f"policy {source}: {err}") from None
     return LoadedPolicy(policy, source, cols)
 
@@ -551,20 +574,19 @@ DEFAULT_MEMO_GRID = 32
 
 def _memoize(rc: ResolvedColumn, source: str) -> None:
     assert rc.mechanism is not None
-    if getattr(rc.mechanism, "variable_draws", False):
-        raise PolicyError(f"{_where(rc.name, 'memoize')}: mechanism {rc.mechanism.name} draws a variable number of "
-                          "random words per row, which memoized randomness does not support; remove memoize, or "
-                          "choose another mechanism for this column (for example hybrid or piecewise)")
+    if not rc.mechanism.supports_memoize:
+        raise PolicyError(f"{_where(rc.name, 'memoize')}: {rc.mechanism.memoize_refusal}")
     rc.memoize = True
     if rc.type == "numeric":
         rc.memo_grid = rc.config.memo_grid or DEFAULT_MEMO_GRID
 
 
-def _sampled_exact_eps_message(policy: Policy, name: str, source: str) -> str:
-    """discrete-laplace takes its eps as the exact fraction its decimal text denotes; under
-    strategy sample that eps is the float epsilon_per_row / m, which the policy does not write."""
+def _sampled_exact_eps_message(policy: Policy, name: str, source: str, mechanism: str) -> str:
+    """A mechanism with ``exact_decimal_epsilon`` takes its eps as the exact fraction its decimal
+    text denotes; under strategy sample that eps is the float epsilon_per_row / m, which the policy
+    does not write."""
     m = policy.reported_columns
-    return (f"policy {source}: column {name!r}, mechanism discrete-laplace: its exact sampler needs an epsilon whose "
+    return (f"policy {source}: column {name!r}, mechanism {mechanism}: its exact sampler needs an epsilon whose "
             "decimal form is a short fraction, but under budget.strategy sample the column's epsilon is "
             f"budget.epsilon_per_row / m = {policy.budget.epsilon_per_row:g} / {m} = {policy.sampled_epsilon!r} "
             "(m = budget.sample_columns, or the default rule), which it cannot use exactly. Choose "

@@ -1,12 +1,28 @@
-"""Local randomizers.  ``build(spec)`` makes one from its manifest spec; ``choose``
-picks the lowest-variance one for a domain and eps when the policy names none."""
+"""Local randomizers.  ``build(spec)`` makes one from its manifest spec; ``choose_*``
+picks the lowest-variance one for a domain and eps when the policy names none.
+
+The contract every mechanism fills is the ``Mechanism`` base class (base.py), with three family
+bases: ``FrequencyOracle`` (categorical.py), ``MeanMechanism`` and ``DistributionMechanism``
+(base.py).  Nothing outside this package names a mechanism: policy, planner, validator and
+decoder ask the class.  Registration of a new mechanism: its module (a family subclass with
+``@register``), its import below, and its name in the listing of its family (CATEGORICAL,
+NUMERIC or DISTRIBUTION: the order in which help texts and error messages list them).
+"""
 
 from __future__ import annotations
 
 from typing import Any
 
 from . import bounds as _bounds
-from .base import Mechanism, build, registry
+from .base import (
+    FAMILIES,
+    DistributionMechanism,
+    MeanMechanism,
+    Mechanism,
+    MechanismParamError,
+    build,
+    registry,
+)
 from .categorical import GRR, OLH, OUE, SUE, FrequencyOracle
 from .discrete_laplace import DiscreteLaplace
 from .distribution import Hierarchy, SquareWave
@@ -15,11 +31,29 @@ from .matrix import Matrix
 from .numeric import DEFAULT_GRID, GridMechanism, Hybrid, Piecewise, TwoPoint
 from .subset import SubsetSelection
 
+# The listing of every registered mechanism by family (frequency, mean, distribution), in the
+# order help texts and error messages show them.
 CATEGORICAL = ("grr", "oue", "olh", "sue", "hadamard", "subset", "matrix")
 NUMERIC = ("hybrid", "piecewise", "two-point", "discrete-laplace")
 DISTRIBUTION = ("square-wave", "hierarchy")
+LISTED = CATEGORICAL + NUMERIC + DISTRIBUTION
+# The policy fields `mechanism: auto` takes on a numeric column (choose_numeric's parameters).
+AUTO_NUMERIC_FIELDS = ("grid",)
 
-__all__ = ["Mechanism", "FrequencyOracle", "GridMechanism", "GRR", "SUE", "OUE", "OLH",
+
+def names_of(*families: str) -> tuple[str, ...]:
+    """The registered mechanisms of these families (see FAMILIES), in listing order."""
+    reg = registry()
+    return tuple(n for n in LISTED if reg[n].family in families)
+
+
+def field_owners(field: str, *families: str) -> tuple[str, ...]:
+    """The mechanisms (of these families, or of any) whose policy parameters include ``field``."""
+    reg = registry()
+    return tuple(n for n in (names_of(*families) if families else LISTED) if field in reg[n].policy_fields())
+
+__all__ = ["Mechanism", "FrequencyOracle", "MeanMechanism", "DistributionMechanism", "MechanismParamError",
+           "FAMILIES", "LISTED", "AUTO_NUMERIC_FIELDS", "names_of", "field_owners", "GridMechanism", "GRR", "SUE", "OUE", "OLH",
            "TwoPoint", "Piecewise", "Hybrid", "DiscreteLaplace", "HadamardResponse", "SubsetSelection", "Matrix", "SquareWave", "Hierarchy", "build", "registry",
            "choose_categorical", "choose_numeric", "categorical_candidates", "AUTO_CATEGORICAL", "default_distribution", "make", "DEFAULT_DISTRIBUTION", "CATEGORICAL", "NUMERIC", "DISTRIBUTION"]
 

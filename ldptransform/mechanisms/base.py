@@ -1,4 +1,4 @@
-"""The small interface every randomizer offers.
+"""The contract every randomizer fills: the ``Mechanism`` base class.
 
 A mechanism is built from its spec (a plain dict that round-trips exactly through the
 manifest) and never sees a key: it is handed fixed-size blocks of pseudorandom 64-bit
@@ -7,28 +7,58 @@ exact threshold comparisons.  Each mechanism also knows its exact channel
 P(output | input), a per-row unbiased estimator and its exact variance, so that the
 decoder, the validator and the tests never special-case a mechanism.
 
-Two families:
+Everything the rest of the tool needs to know about a mechanism is asked through this
+class (template-method style: the public methods here validate and assemble, subclasses
+fill small hooks), never decided by the mechanism's name or by probing its attributes:
 
-* ``FrequencyOracle`` (categorical input codes 0..k-1): each report *supports* a set of
-  values; P(v in S(y) | x = v) = p*, P(v in S(y) | x != v) = q* (Wang, Blocki, Li, Jha,
-  "Locally Differentially Private Protocols for Frequency Estimation", USENIX Security
-  2017).  Per-row unbiased indicator estimate: (1[v in S(y)] - q*) / (p* - q*).
-* ``GridMechanism`` (bounded numeric input): the input is normalized to t in [-1, 1],
-  rounded at random to a fixed grid (unbiasedly), and sent through a finite channel
-  whose outputs are real numbers with E[output | grid point] = grid point exactly.  The
-  written value (in the column's own units) is itself the per-row unbiased estimate.
+* construction: ``from_spec`` / ``to_spec`` (the manifest), ``from_policy`` (a policy
+  column: its fields are validated with the mechanism's own pydantic model ``Params``,
+  which names the policy fields the mechanism accepts);
+* randomization: ``words_per_row``, ``randomize`` / ``randomize_with`` (``variable_draws``),
+  ``output_fields``, ``output_meaning``, ``output_bytes_per_row``, ``count_invalid``;
+* analysis: ``max_log_ratio``, ``family`` (which decoder reads it), ``fit_test`` /
+  ``no_fit_reason`` (goodness of fit, mechanisms/fit.py);
+* policy and planning: ``accepts_binned`` / ``binned_refusal``, ``supports_memoize`` /
+  ``memoize_refusal``, ``exact_decimal_epsilon``, ``fixed_epsilon``, ``mean_row_variance``,
+  ``frequency_row_variance``, ``efficiency``.
+
+Three family bases fill most hooks:
+
+* ``FrequencyOracle`` (categorical.py; categorical input codes 0..k-1): each report
+  *supports* a set of values; P(v in S(y) | x = v) = p*, P(v in S(y) | x != v) = q* (Wang,
+  Blocki, Li, Jha, "Locally Differentially Private Protocols for Frequency Estimation",
+  USENIX Security 2017).  Per-row unbiased indicator estimate: (1[v in S(y)] - q*) / (p* - q*).
+* ``MeanMechanism`` (bounded numeric input, decoded as a mean): ``GridMechanism`` (numeric.py:
+  the input is normalized to t in [-1, 1], rounded at random to a fixed grid (unbiasedly),
+  and sent through a finite channel whose outputs are real numbers with
+  E[output | grid point] = grid point exactly) and ``DiscreteLaplace``.  The written value
+  (in the column's own units) is itself the per-row unbiased estimate.
+* ``DistributionMechanism`` (bounded numeric input, decoded as a distribution: CDF,
+  quantiles, range shares): ``SquareWave`` and ``Hierarchy`` (distribution.py), with additive
+  count statistics (``new_stats``, ``add_stats``) and ``decode``.
+
+A new mechanism is one module (a subclass of a family base, decorated with ``@register``)
+plus its import and listing in mechanisms/__init__.py.
 """
 
 from __future__ import annotations
 
 import math
 from abc import ABC, abstractmethod
-from typing import Any, ClassVar
+from typing import TYPE_CHECKING, Any, ClassVar, Mapping, Sequence
 
 import numpy as np
 import pyarrow as pa
+from pydantic import BaseModel, ConfigDict, ValidationError
 
 from ..errors import PolicyError
+
+if TYPE_CHECKING:
+    from .fit import FitStats
+
+#: The decoder families: frequency oracles (categorical reports), mean mechanisms (each report
+#: an unbiased estimate of the row's value) and distribution mechanisms (decoded as a whole).
+FAMILIES = ("frequency", "mean", "distribution")
 
 _REGISTRY: dict[str, type["Mechanism"]] = {}
 
@@ -52,6 +82,21 @@ def build(spec: dict[str, Any]) -> "Mechanism":
     return _REGISTRY[name].from_spec(spec)
 
 
+class NoParams(BaseModel):
+    """The policy parameters of a mechanism that takes none beyond eps and its domain."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class MechanismParamError(PolicyError):
+    """A policy field of a mechanism is missing or refused; ``field`` names it, so that the policy
+    can prefix the column and the field to the message."""
+
+    def __init__(self, field: str, message: str) -> None:
+        super().__init__(message)
+        self.field = field
+
+
 def check_epsilon(eps: Any, where: str) -> float:
     if isinstance(eps, bool) or not isinstance(eps, (int, float)) or not math.isfinite(eps) or eps <= 0:
         raise PolicyError(f"{where}: epsilon must be a positive finite number, got {eps!r}")
@@ -59,10 +104,20 @@ def check_epsilon(eps: Any, where: str) -> float:
 
 
 class Mechanism(ABC):
-    """Common interface.  Subclasses set ``name`` and ``kind`` and implement the rest."""
+    """Common interface.  Subclasses set ``name``, ``kind`` and ``family`` (the family bases do the
+    last two) and implement the rest."""
 
     name: ClassVar[str]
     kind: ClassVar[str]  # "categorical", "numeric" (means) or "distribution" (mechanisms/distribution.py)
+    #: which decoder reads the reports: "frequency", "mean" or "distribution" (see FAMILIES)
+    family: ClassVar[str]
+    #: The policy fields this mechanism accepts besides epsilon and its domain (categories or
+    #: bounds), as a pydantic model with ``extra="forbid"``; a field left out (None) takes the
+    #: constructor's default.  ``from_policy`` validates with it.
+    Params: ClassVar[type[BaseModel]] = NoParams
+    #: Policy fields this mechanism refuses with a reason of its own (field -> message), when
+    #: the field belongs to other mechanisms or to the automatic choice (two-point: no grid).
+    field_refusals: ClassVar[dict[str, str]] = {}
     epsilon: float
 
     # -- construction and spec ------------------------------------------------------
@@ -79,6 +134,58 @@ class Mechanism(ABC):
     def _check_family(cls, spec: dict[str, Any]) -> None:
         if spec.get("mechanism") != cls.name:
             raise PolicyError(f"spec of mechanism {spec.get('mechanism')!r} given to {cls.name!r}")
+
+    # -- construction from a policy column -------------------------------------------
+    @classmethod
+    def policy_fields(cls) -> tuple[str, ...]:
+        """Names of the policy fields this mechanism accepts (those of ``Params``)."""
+        return tuple(cls.Params.model_fields)
+
+    @classmethod
+    def from_policy(cls, epsilon: float, domain: Sequence[Any], params: Mapping[str, Any]) -> "Mechanism":
+        """Build from a policy column: ``domain`` is the list of categories (frequency oracles) or
+        the bounds (numeric mechanisms); ``params`` the column's values of ``policy_fields``
+        (None or absent: the default).  Raises ``MechanismParamError`` for a missing or refused
+        field and ``PolicyError`` for a value the mechanism cannot use."""
+        given = {k: v for k, v in params.items() if v is not None}
+        try:
+            p = cls.Params.model_validate(given)
+        except ValidationError as err:
+            raise cls._params_error(err, domain) from None
+        return cls._from_params(epsilon, domain, p)
+
+    @classmethod
+    def _from_params(cls, epsilon: float, domain: Sequence[Any], params: BaseModel) -> "Mechanism":
+        """Hook: the constructor call for validated parameters (default: keyword arguments)."""
+        return cls(epsilon, domain, **params.model_dump(exclude_none=True))  # type: ignore[call-arg]
+
+    @classmethod
+    def refuse_field(cls, field: str) -> str:
+        """Why this mechanism does not take the policy field ``field``."""
+        return cls.field_refusals.get(field, f"{field} does not apply to mechanism {cls.name}; remove {field}")
+
+    @classmethod
+    def missing_field_message(cls, field: str, domain: Sequence[Any]) -> str:
+        """Hook: the message for a required policy field the column does not give."""
+        return f"mechanism {cls.name} needs the field {field}"
+
+    @classmethod
+    def _params_error(cls, err: ValidationError, domain: Sequence[Any]) -> PolicyError:
+        e = err.errors()[0]
+        field = str(e["loc"][0]) if e.get("loc") else "?"
+        if e["type"] == "extra_forbidden":
+            return MechanismParamError(field, cls.refuse_field(field))
+        if e["type"] == "missing":
+            return MechanismParamError(field, cls.missing_field_message(field, domain))
+        return PolicyError(f"mechanism {cls.name}, field '{field}': {e['msg']} (got {e.get('input')!r})")
+
+    #: False for a mechanism that cannot be declared on a numeric column released as bins;
+    #: ``binned_refusal`` then says why (only frequency oracles take bins at all).
+    accepts_binned: ClassVar[bool] = True
+    binned_refusal: ClassVar[str] = ""
+    #: True for a mechanism that takes its eps as the exact fraction of its decimal text (it
+    #: refuses an eps such as epsilon_per_row / m without a short decimal form).
+    exact_decimal_epsilon: ClassVar[bool] = False
 
     # -- randomization -------------------------------------------------------------
     @property
@@ -125,3 +232,114 @@ class Mechanism(ABC):
 
     def describe(self) -> str:
         return self.name
+
+    # -- memoized randomness ---------------------------------------------------------
+    @property
+    def supports_memoize(self) -> bool:
+        """Memoized randomness replays a fixed block of words per (person, value): a mechanism
+        with a variable number of draws per row cannot take it."""
+        return not self.variable_draws
+
+    @property
+    def memoize_refusal(self) -> str:
+        """Why memoize is refused ('' when it is supported)."""
+        if self.supports_memoize:
+            return ""
+        return (f"mechanism {self.name} draws a variable number of random words per row, which memoized randomness "
+                "does not support; remove memoize, or choose another mechanism for this column")
+
+    # -- goodness of fit (mechanisms/fit.py) -----------------------------------------
+    def fit_test(self) -> "FitStats | None":
+        """A fresh goodness-of-fit accumulator for this mechanism's reports, or None when no
+        test is available (``no_fit_reason`` says why)."""
+        return None
+
+    def no_fit_reason(self) -> str:
+        """Why ``fit_test`` gives no test ('' when it gives one)."""
+        if self.fit_test() is not None:
+            return ""
+        return (f"no goodness-of-fit test for mechanism {self.name!r}: this module knows neither a "
+                "data-independent feature of its reports nor how to map its reports onto a finite channel")
+
+    # -- planning (plan.py) ----------------------------------------------------------
+    def fixed_epsilon(self) -> float | None:
+        """The eps this mechanism's noise gives whatever eps is declared (a mechanism whose noise is
+        fixed by its own parameters, such as a supplied transition matrix), or None when the noise
+        follows the declared eps."""
+        return None
+
+    #: how plan's notes name what fixes the noise of a mechanism with a ``fixed_epsilon``
+    fixed_noise_label: ClassVar[str] = "the mechanism"
+
+    def mean_row_variance(self) -> float | None:
+        """n * Var of the mean as ``ldpt estimate`` reports it, worst case over data (column units
+        squared); None for a mechanism whose mean has no predicted SE."""
+        return None
+
+    def frequency_row_variance(self) -> float | None:
+        """n * (mean over values of Var of a share) as ``ldpt estimate`` reports it, worst case over
+        data; None for a mechanism that does not estimate frequencies."""
+        return None
+
+    def efficiency(self) -> float | None:
+        """The lower bound (mechanisms/bounds.py) over this mechanism's own variance (1 = as good as
+        possible); None where no bound applies."""
+        return None
+
+
+class MeanMechanism(Mechanism):
+    """Bounded numeric input on [lo, hi], decoded as a mean: each written value is a per-row
+    unbiased estimate of the row's value (column units).  Subclasses give the exact variance of
+    one report (``variance``) and its worst case over the bounds (``worst_variance``)."""
+
+    kind: ClassVar[str] = "numeric"
+    family: ClassVar[str] = "mean"
+    lo: float
+    hi: float
+
+    @abstractmethod
+    def variance(self, x: np.ndarray | float) -> Any:
+        """Exact Var of one report (column units) for true value(s) x."""
+
+    @abstractmethod
+    def worst_variance(self) -> float:
+        """Largest Var of one report over [lo, hi] (column units)."""
+
+    def mean_row_variance(self) -> float:
+        """Worst case over data of n * Var of the mean as ``ldpt estimate`` reports it (the spread of
+        the per-row estimates, which also counts the spread of the true values): data split evenly
+        between the two bounds, the report variance at the worse bound plus the spread (hi-lo)^2/4."""
+        half = (self.hi - self.lo) / 2.0
+        return float(max(self.variance(self.lo), self.variance(self.hi))) + half * half
+
+    def efficiency(self) -> float:
+        """Lower bound on the worst-case variance of any unbiased eps-LDP mean estimate over this
+        mechanism's worst-case variance of one report (mechanisms/bounds.py)."""
+        from .bounds import mean_lower_bound
+
+        return mean_lower_bound(self.epsilon, (self.lo, self.hi)) / self.worst_variance()
+
+
+class DistributionMechanism(Mechanism):
+    """Bounded numeric input on [lo, hi], decoded as a whole distribution (CDF, quantiles, range
+    shares): reports summarize into additive integer count vectors (``new_stats``, ``add_stats``,
+    additive across batches and files) that ``decode`` turns into a
+    ``ldptransform.distribution.Distribution``.  Its mean is read off the decoded distribution
+    (no per-row estimate, no predicted SE)."""
+
+    kind: ClassVar[str] = "distribution"
+    family: ClassVar[str] = "distribution"
+    lo: float
+    hi: float
+
+    @abstractmethod
+    def new_stats(self) -> np.ndarray:
+        """Zeroed sufficient statistics (int64)."""
+
+    @abstractmethod
+    def add_stats(self, stats: np.ndarray, arrays: list[pa.Array]) -> None:
+        """Add the reports in ``arrays`` to ``stats`` in place."""
+
+    @abstractmethod
+    def decode(self, stats: np.ndarray, n: int) -> Any:
+        """The decoded ``Distribution`` of n reports with statistics ``stats``."""

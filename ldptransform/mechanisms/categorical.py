@@ -12,23 +12,40 @@ from __future__ import annotations
 
 import math
 from functools import cached_property
-from typing import Any, ClassVar
+from typing import Annotated, Any, ClassVar
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
+from pydantic import BaseModel, ConfigDict, Field
 
 from ..errors import PolicyError
 from ..keys import to_below, to_unit, unit_below
 from .base import Mechanism, check_epsilon, register
+from .bounds import frequency_lower_bound
+from .fit import (
+    SUPPORT_CHUNK,
+    FitResult,
+    FitStats,
+    HullFit,
+    _impossible_result,
+    _norm_two_sided,
+    _pearson_result,
+    _result,
+    _too_few,
+)
 
 MAX_CATEGORIES = 1 << 20
+BUCKET_GROUPS = 4096        # olh fit test: reported buckets are counted in at most this many groups
 
 
 class FrequencyOracle(Mechanism):
-    """Shared logic of the 'pure' protocols (support sets with constant p*, q*)."""
+    """Shared logic of the 'pure' protocols (support sets with constant p*, q*).  The family base
+    of the categorical mechanisms: the decoder reads them through ``summarize`` /
+    ``decode_sums`` / ``decode_covariance``."""
 
     kind: ClassVar[str] = "categorical"
+    family: ClassVar[str] = "frequency"
 
     def __init__(self, epsilon: float, categories: list[str]) -> None:
         self.epsilon = check_epsilon(epsilon, f"mechanism {self.name}")
@@ -125,6 +142,19 @@ class FrequencyOracle(Mechanism):
         p, q = self.p_star, self.q_star
         return q * (1 - q) / (p - q) ** 2
 
+    # planning ----------------------------------------------------------------------
+    def frequency_row_variance(self) -> float:
+        """n * (mean over values of Var of a share) as ``ldpt estimate`` reports it, worst case over
+        data: (noise summed over values + the spread 1 - sum f^2, largest for equal shares) / k
+        (docs/formulas.md sections 0.3 and 0.4)."""
+        k = self.k
+        return (self.total_variance() + 1.0 - 1.0 / k) / k
+
+    def efficiency(self) -> float:
+        """Lower bound on the total variance of any eps-LDP frequency estimator over this one's
+        (mechanisms/bounds.py)."""
+        return frequency_lower_bound(self.epsilon, self.k) / self.total_variance()
+
     def _labels_dictionary(self, codes: np.ndarray) -> pa.Array:
         return pa.DictionaryArray.from_arrays(pa.array(codes.astype(np.int32)), pa.array(self.categories))
 
@@ -188,6 +218,18 @@ class GRR(FrequencyOracle):
     def max_log_ratio(self) -> float:
         return math.log(self.p_star / self.q_star)
 
+    def fit_test(self) -> HullFit:
+        """The reported labels against the hull of the k x k channel (no data-independent feature
+        exists: the support size is always 1)."""
+        cats = pa.array(self.categories)
+
+        def index(arrays: list[pa.Array]) -> tuple[np.ndarray, np.ndarray]:
+            codes = pc.index_in(_as_strings(arrays[0]), value_set=cats)
+            bad = np.asarray(pc.is_null(codes).to_numpy(zero_copy_only=False))
+            return np.asarray(pc.fill_null(codes, 0).to_numpy(zero_copy_only=False)).astype(np.int64), bad
+
+        return HullFit(self, self.channel(), index, "reported categories")
+
 
 class _UnaryEncoding(FrequencyOracle):
     """One-hot encode, then flip each bit independently: 1 stays 1 w.p. p, 0 becomes 1 w.p. q.
@@ -241,6 +283,10 @@ class _UnaryEncoding(FrequencyOracle):
         # Two inputs differ in two bit positions; the worst output has 1 at x and 0 at x'.
         return math.log(p / q) + math.log((1 - q) / (1 - p))
 
+    def fit_test(self) -> "OnesCountFit":
+        """The number of ones per report has a data-independent distribution."""
+        return OnesCountFit(self)
+
 
 @register
 class SUE(_UnaryEncoding):
@@ -276,6 +322,14 @@ class OUE(_UnaryEncoding):
 HASH_PRIME = (1 << 31) - 1  # Mersenne prime 2^31 - 1
 
 
+class OLHParams(BaseModel):
+    """Policy fields of ``olh``: the hash range."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+    hash_range: Annotated[int, Field(strict=True)] | None = Field(
+        None, description="number of hash buckets g (default near e^eps+1)")
+
+
 @register
 class OLH(FrequencyOracle):
     """Optimized local hashing.
@@ -291,6 +345,7 @@ class OLH(FrequencyOracle):
     """
 
     name: ClassVar[str] = "olh"
+    Params: ClassVar[type[BaseModel]] = OLHParams
 
     def __init__(self, epsilon: float, categories: list[str], hash_range: int | None = None) -> None:
         super().__init__(epsilon, categories)
@@ -409,6 +464,10 @@ class OLH(FrequencyOracle):
         p = self.p_star
         return math.log(p / ((1 - p) / (self.g - 1)))
 
+    def fit_test(self) -> "SupportSizeFit":
+        """The support size's mean and the reported buckets' distribution are data-independent."""
+        return SupportSizeFit(self)
+
 
 def _as_strings(arr: pa.Array) -> pa.Array:
     if isinstance(arr, pa.ChunkedArray):
@@ -456,3 +515,149 @@ def strings_to_bits(arr: pa.Array, k: int) -> tuple[np.ndarray, np.ndarray]:
     ones = raw == 49
     bad = ~(ones | (raw == 48)).all(axis=1)
     return ones, bad
+
+
+# -- goodness of fit (mechanisms/fit.py) ---------------------------------------------------------
+
+class OnesCountFit(FitStats):
+    """``oue``/``sue``: histogram of the number of ones per report (length k+1)."""
+
+    TESTS = 2
+
+    def __init__(self, mechanism: "_UnaryEncoding") -> None:
+        super().__init__(mechanism)
+        self.stats["hist"] = np.zeros(mechanism.k + 1, dtype=np.int64)
+
+    def _add(self, arrays: list[pa.Array]) -> None:
+        k = self.mechanism.k
+        arr = arrays[0]
+        n = len(arr)
+        step = max(1, SUPPORT_CHUNK // max(k, 1))
+        for s in range(0, n, step):                     # chunks of rows bound the (rows, k) matrix
+            bits, bad = strings_to_bits(arr.slice(s, step), k)
+            ones = bits[~bad].sum(axis=1)
+            self.stats["hist"] += np.bincount(ones, minlength=k + 1)
+            self.stats["impossible"] += int(bad.sum())
+        self.stats["rows"] += n
+
+    def pmf(self) -> np.ndarray:
+        """Exact P(T = t), t = 0..k: Bernoulli(p*) + Binomial(k-1, q*) (independent bits)."""
+        from scipy.stats import binom
+
+        m = self.mechanism
+        b = binom.pmf(np.arange(m.k), m.k - 1, m.q_star)
+        out = np.zeros(m.k + 1)
+        out[:-1] += (1 - m.p_star) * b
+        out[1:] += m.p_star * b
+        return out
+
+    def results(self, alpha: float) -> list[FitResult]:
+        m = self.mechanism
+        n, bad = self.rows, self.impossible
+        p, q, k = m.p_star, m.q_star, m.k
+        mean_name = (f"the mean number of ones per report equals p* + (k-1) q* = {p + (k - 1) * q:.6g}, as "
+                     f"{m.name} at eps {m.epsilon:g} with k = {k} implies for every input")
+        hist_name = ("the number of ones per report follows Bernoulli(p*) + Binomial(k-1, q*), as "
+                     f"{m.name} at eps {m.epsilon:g} with k = {k} implies for every input")
+        ref_mean = "standard normal, two-sided (exact null variance)"
+        ref_hist = "chi-square, df = pooled cells - 1 (simple null)"
+        if bad:
+            return [_impossible_result(mean_name, "ones-mean", None, ref_mean, alpha, n, bad),
+                    _impossible_result(hist_name, "ones-histogram", None, ref_hist, alpha, n, bad)]
+        good = n - bad
+        if good < 2:
+            return [_too_few(mean_name, "ones-mean", ref_mean, alpha, n, "fewer than 2 reports"),
+                    _too_few(hist_name, "ones-histogram", ref_hist, alpha, n, "fewer than 2 reports")]
+        h = self.stats["hist"].astype(float)
+        t = np.arange(k + 1)
+        mu, var = p + (k - 1) * q, p * (1 - p) + (k - 1) * q * (1 - q)
+        mean = float((h * t).sum() / good)
+        z = (mean - mu) / math.sqrt(var / good)
+        out = [_result(mean_name, "ones-mean", z, None, ref_mean, _norm_two_sided(z), alpha, n, 0,
+                       f"mean {mean:.5g} ones per report over {good} reports, expected {mu:.5g} (SE "
+                       f"{math.sqrt(var / good):.2g}): z = {z:.2f}", observed=mean, expected=mu)]
+        out.append(_pearson_result(hist_name, "ones-histogram", ref_hist, h, self.pmf(), alpha, n, good,
+                                   "cells of the ones count"))
+        return out
+
+
+def _bucket_groups(m: OLH) -> tuple[np.ndarray, np.ndarray]:
+    """Group boundaries (bucket indices, length G+1) of at most BUCKET_GROUPS adjacent buckets and
+    the exact probability of each group under the declared mechanism, for every input:
+    P(y in group) = p* S/P + (cnt - S/P)(1-p*)/(g-1), S = hash inputs z in the group's buckets."""
+    g, P = m.g, HASH_PRIME
+    G = min(g, BUCKET_GROUPS)
+    jb = (np.arange(G + 1, dtype=np.int64) * g) // G
+    zstart = -((-jb * P) // g)                       # ceil(j P / g): first z of bucket j
+    S = np.diff(zstart).astype(float)
+    cnt = np.diff(jb).astype(float)
+    p = m.p_star
+    other = (1 - p) / (g - 1)
+    return jb, p * S / P + (cnt - S / P) * other
+
+
+class SupportSizeFit(FitStats):
+    """``olh``: histogram of the support size |S(y)| over 0..k, and of the reported bucket
+    (grouped).  Also usable level by level inside ``HierarchyFit``."""
+
+    TESTS = 2
+
+    def __init__(self, mechanism: OLH) -> None:
+        super().__init__(mechanism)
+        self.stats["sizes"] = np.zeros(mechanism.k + 1, dtype=np.int64)
+        self._jb, self._gprob = _bucket_groups(mechanism)
+        self.stats["buckets"] = np.zeros(len(self._gprob), dtype=np.int64)
+
+    def _add(self, arrays: list[pa.Array]) -> None:
+        seeds, y, bad = self.mechanism._decode_inputs(arrays)
+        self.add_decoded(seeds, y, bad)
+
+    def add_decoded(self, seeds: np.ndarray, y: np.ndarray, bad: np.ndarray) -> None:
+        """Rows already parsed: uint64 hash seeds, reported buckets, impossible-row mask."""
+        m = self.mechanism
+        self.stats["rows"] += len(y)
+        self.stats["impossible"] += int(bad.sum())
+        seeds, y = seeds[~bad], np.asarray(y[~bad], dtype=np.int64)
+        v = np.arange(m.k, dtype=np.uint64)
+        step = max(1, SUPPORT_CHUNK // max(m.k, 1))
+        for s in range(0, len(y), step):                # chunks bound the (rows, k) hash matrix
+            size = (m.hash_values(seeds[s: s + step, None], v[None, :]) == y[s: s + step, None]).sum(axis=1)
+            self.stats["sizes"] += np.bincount(size, minlength=m.k + 1)
+        grp = np.searchsorted(self._jb, y, side="right") - 1
+        self.stats["buckets"] += np.bincount(grp, minlength=len(self._gprob))
+
+    def results(self, alpha: float) -> list[FitResult]:
+        m = self.mechanism
+        n, bad = self.rows, self.impossible
+        p, q, k = m.p_star, m.q_star, m.k
+        mu = p + (k - 1) * q
+        mean_name = (f"the mean number of categories a report supports equals p* + (k-1) q* = {mu:.6g}, as "
+                     f"{m.name} at eps {m.epsilon:g} with k = {k} and hash range {m.g} implies for every input")
+        bucket_name = (f"the reported buckets follow the data-independent distribution of {m.name} with hash "
+                       f"range {m.g} at eps {m.epsilon:g}")
+        ref_mean = "standard normal, two-sided (variance estimated from the reports; asymptotic)"
+        ref_b = "chi-square, df = pooled cells - 1 (simple null)"
+        if bad:
+            return [_impossible_result(mean_name, "support-mean", None, ref_mean, alpha, n, bad),
+                    _impossible_result(bucket_name, "bucket-histogram", None, ref_b, alpha, n, bad)]
+        h = self.stats["sizes"].astype(float)
+        good = int(h.sum())
+        if good < 2:
+            return [_too_few(mean_name, "support-mean", ref_mean, alpha, n, "fewer than 2 reports"),
+                    _too_few(bucket_name, "bucket-histogram", ref_b, alpha, n, "fewer than 2 reports")]
+        t = np.arange(k + 1, dtype=float)
+        mean = float((h * t).sum() / good)
+        var = float((h * (t - mean) ** 2).sum() / (good - 1))
+        if var > 0:
+            se = math.sqrt(var / good)
+            z = (mean - mu) / se
+            pval = _norm_two_sided(z)
+        else:
+            se, z = 0.0, (0.0 if abs(mean - mu) < 1e-12 else math.copysign(math.inf, mean - mu))
+            pval = 1.0 if z == 0 else 0.0
+        out = [_result(mean_name, "support-mean", z, None, ref_mean, pval, alpha, n, 0,
+                       f"mean support size {mean:.5g} over {good} reports, expected {mu:.5g} (SE {se:.2g}): "
+                       f"z = {z:.2f}", observed=mean, expected=mu)]
+        out.append(_pearson_result(bucket_name, "bucket-histogram", ref_b, self.stats["buckets"], self._gprob,
+                                   alpha, n, good, "groups of reported buckets"))
+        return out

@@ -58,15 +58,18 @@ from typing import Any, Callable, ClassVar
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
+from pydantic import BaseModel
 
 from ..errors import PolicyError
 from ..keys import to_unit
-from .base import Mechanism, register
-from .numeric import DEFAULT_GRID, grid_position
+from .base import MeanMechanism, register
+from .fit import HullFit
+from .numeric import DEFAULT_GRID, GridMechanismParams, grid_position
 
 Draw = Callable[[np.ndarray, np.ndarray], np.ndarray]
 
 MAX_GRID = 4096
+DL_TAIL = 1e-9              # fit test: lattice cells kept until each tail holds below this
 # s and t (eps / G = s / t in lowest terms) must stay below this so that every product the
 # sampler forms fits 64-bit integers: den * K < 2^64 for K < 2^16 in the Bernoulli loop.
 RATIONAL_LIMIT = 1 << 48
@@ -179,13 +182,14 @@ def _fail(field: str, problem: str, fix: str) -> PolicyError:
 
 
 @register
-class DiscreteLaplace(Mechanism):
+class DiscreteLaplace(MeanMechanism):
     """Random rounding to a grid of G steps, then two-sided geometric noise with
     P(Z = z) proportional to exp(-|z| eps / G); exactly eps-LDP; unbiased per row."""
 
     name: ClassVar[str] = "discrete-laplace"
-    kind: ClassVar[str] = "numeric"
     variable_draws: ClassVar[bool] = True
+    Params: ClassVar[type[BaseModel]] = GridMechanismParams
+    exact_decimal_epsilon: ClassVar[bool] = True
 
     def __init__(self, epsilon: float, bounds: Any, grid: int = DEFAULT_GRID) -> None:
         if (isinstance(epsilon, bool) or not isinstance(epsilon, (int, float))
@@ -344,6 +348,47 @@ class DiscreteLaplace(Mechanism):
     def worst_variance(self) -> float:
         """Largest Var of one report over [lo, hi] (column units): at a grid midpoint."""
         return (0.25 + self.noise_variance()) * self.step ** 2
+
+    @property
+    def memoize_refusal(self) -> str:
+        return (f"mechanism {self.name} draws a variable number of random words per row, which memoized randomness "
+                "does not support; remove memoize, or choose another mechanism for this column (for example hybrid "
+                "or piecewise)")
+
+    def fit_test(self) -> HullFit:
+        """The report's lattice index j (value = lo + j * step) from input grid
+        index i in 0..G, P(j | i) = pmf(j - i).  The alphabet is all integers, so it is cut to
+        cells j = -T..G+T plus one cell for each tail (j < -T, j > G+T) with its exact mass
+        a^(T+1+d) / (1+a) at distance d beyond the cut (geometric series of the pmf); T grows
+        until a tail holds below DL_TAIL, at most 4 G.  The cut is data-independent, so the
+        hull test's conservative reference still holds; a coarser cut only costs power."""
+        m = self
+        G, a = m.grid, m.a
+        x = m.noise_rate
+        T = int(min(4 * G, math.ceil(math.log(DL_TAIL) / -x) if x > 0 else 4 * G))
+        j = np.arange(-T, G + T + 1)
+        i = np.arange(G + 1)
+        core = m.report_pmf(j[None, :], i[:, None])
+        # P(Z >= t) = a^t / (1 + a) for t >= 1 (sum of (1-a)/(1+a) a^z over z >= t)
+        left = np.exp(-(T + 1 + i) * x) / (1 + a)            # j <= -T-1: Z <= -(T+1+i)
+        right = np.exp(-(G + T + 1 - i) * x) / (1 + a)       # j >= G+T+1: Z >= G+T+1-i
+        Q = np.concatenate([left[:, None], core, right[:, None]], axis=1)
+        tol = 1e-9 * (m.hi - m.lo)
+
+        def index(arrays: list[pa.Array]) -> tuple[np.ndarray, np.ndarray]:
+            arr = arrays[0]
+            if not (pa.types.is_floating(arr.type) or pa.types.is_integer(arr.type)):
+                return np.zeros(len(arr), dtype=np.int64), np.ones(len(arr), dtype=bool)
+            vals = np.asarray(pc.fill_null(pc.cast(arr, pa.float64()), np.nan).to_numpy(zero_copy_only=False))
+            fin = np.isfinite(vals)
+            v = np.where(fin, vals, m.lo)
+            jj = np.rint((v - m.lo) / m.step)
+            ok = fin & (np.abs(jj) < 2.0 ** 53)
+            ok &= np.abs(v - (m.lo + jj * m.step)) <= tol + 8 * np.finfo(float).eps * np.abs(v)
+            cell = np.clip(jj, -T - 1, G + T + 1).astype(np.int64) + T + 1
+            return np.where(ok, cell, 0), ~ok
+
+        return HullFit(m, Q, index, f"written values (lattice cells {-T}..{G + T} of step {m.step:.6g}, tails pooled)")
 
     def describe(self) -> str:
         return (f"discrete-laplace (eps {self.epsilon:g} = {self.epsilon_exact} exactly; grid of {self.grid} "

@@ -40,19 +40,30 @@ from __future__ import annotations
 import hashlib
 import json
 import math
+from dataclasses import replace
 from functools import cached_property
 from typing import Any, ClassVar
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
+from pydantic import BaseModel, ConfigDict, Field
 
 from ..distribution import Distribution, frequency_covariance
 from ..errors import PolicyError
 from ..keys import to_below, to_unit
-from .base import Mechanism, check_epsilon, register
-from .categorical import GRR, HASH_PRIME, OLH
-from .numeric import SAMPLING_BITS, check_bounds, draw_index, guide_table, integer_masses, sampling_table
+from .base import DistributionMechanism, check_epsilon, register
+from .categorical import GRR, HASH_PRIME, OLH, SupportSizeFit
+from .fit import FitResult, FitStats, HullFit, _impossible_result
+from .numeric import (
+    SAMPLING_BITS,
+    GridMechanismParams,
+    check_bounds,
+    draw_index,
+    guide_table,
+    integer_masses,
+    sampling_table,
+)
 
 DEFAULT_SW_GRID = 256
 MAX_SW_GRID = 4096          # (N+1) * 2^SAMPLING_BITS must stay below 2^63
@@ -182,11 +193,11 @@ def ems(chan: _SquareWaveChannel, counts: np.ndarray, tol: float = EMS_TOL,
 
 
 @register
-class SquareWave(Mechanism):
+class SquareWave(DistributionMechanism):
     """Square wave (Li et al., SIGMOD 2020), exactly discretized; decoded by EMS."""
 
     name: ClassVar[str] = "square-wave"
-    kind: ClassVar[str] = "distribution"
+    Params: ClassVar[type[BaseModel]] = GridMechanismParams
 
     def __init__(self, epsilon: float, bounds: Any, grid: int = DEFAULT_SW_GRID) -> None:
         self.epsilon = check_epsilon(epsilon, f"mechanism {self.name}")
@@ -279,6 +290,14 @@ class SquareWave(Mechanism):
         with np.errstate(divide="ignore"):
             return float(np.max(np.log(Q.max(axis=0)) - np.log(Q.min(axis=0))))
 
+    def fit_test(self) -> HullFit:
+        """The written cell indices against the hull of the exact channel."""
+        def index(arrays: list[pa.Array]) -> tuple[np.ndarray, np.ndarray]:
+            v, bad = self._indices(arrays)
+            return np.where(bad, 0, v), bad
+
+        return HullFit(self, self.channel(), index, "reported cells (in order along the output range)")
+
     # decoding ---------------------------------------------------------------------------------
     def new_stats(self) -> np.ndarray:
         """Counts of reports per output cell, shape (M,), int64."""
@@ -346,6 +365,15 @@ def _integers(a: pa.Array, fill: int) -> tuple[np.ndarray, np.ndarray]:
     return np.full(n, fill, dtype=np.int64), np.ones(n, dtype=bool)
 
 
+class HierarchyParams(BaseModel):
+    """Policy fields of ``hierarchy``: the tree's branching factor and number of leaves."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+    branching: int | None = Field(None, description="branching factor of the tree (default 4)")
+    leaves: int | None = Field(None, description="number of equal leaf buckets of the bounds, a power of branching "
+                                                 "(default 64)")
+
+
 def _level_oracle(epsilon: float, k: int, name: str | None = None, hash_range: int | None = None):
     cats = [str(v) for v in range(k)]
     if name is None:
@@ -357,11 +385,13 @@ def _level_oracle(epsilon: float, k: int, name: str | None = None, hash_range: i
 
 
 @register
-class Hierarchy(Mechanism):
+class Hierarchy(DistributionMechanism):
     """Hierarchical intervals (Cormode, Kulkarni, Srivastava, PVLDB 2019) with consistency."""
 
     name: ClassVar[str] = "hierarchy"
-    kind: ClassVar[str] = "distribution"
+    Params: ClassVar[type[BaseModel]] = HierarchyParams
+    field_refusals: ClassVar[dict[str, str]] = {
+        "grid": "grid does not apply to mechanism hierarchy (its buckets are set by leaves)"}
 
     def __init__(self, epsilon: float, bounds: Any, branching: int = DEFAULT_BRANCHING,
                  leaves: int = DEFAULT_LEAVES, levels: list[dict[str, Any]] | None = None) -> None:
@@ -496,6 +526,10 @@ class Hierarchy(Mechanism):
         level written out, so its worst ratio is the worst level's."""
         return max(o.max_log_ratio() for o in self.oracles)
 
+    def fit_test(self) -> "HierarchyFit":
+        """Each level's rows tested as that level's oracle."""
+        return HierarchyFit(self)
+
     # decoding ---------------------------------------------------------------------------------
     @cached_property
     def _offsets(self) -> tuple[list[tuple[int, int, int, int]], int]:
@@ -616,3 +650,53 @@ class Hierarchy(Mechanism):
             L = self.consistent(basis, np.zeros(self.nodes[l]), prec)   # (D, k_l): d leaves / d y_l
             cov += L @ C @ L.T
         return Distribution(edges, leaves, method=how, n=n, cov=cov)
+
+
+# -- goodness of fit (mechanisms/fit.py) ---------------------------------------------------------
+
+class HierarchyFit(FitStats):
+    """``hierarchy``: each level's rows are tested as that level's oracle (grr: hull; olh:
+    support size and buckets).  The level itself is drawn from the PRF alone."""
+
+    @property
+    def n_tests(self) -> int:
+        return sum(p.n_tests for p in self.parts)
+
+    def __init__(self, mechanism: "Hierarchy") -> None:
+        super().__init__(mechanism)
+        self.parts: list[FitStats] = []
+        for o in mechanism.oracles:
+            self.parts.append(HullFit(o, o.channel(), lambda a: (np.zeros(0), np.zeros(0, bool)),
+                                      "reported nodes") if o.name == "grr" else SupportSizeFit(o))
+
+    def _add(self, arrays: list[pa.Array]) -> None:
+        m = self.mechanism
+        level, report, seed, bad = m._parse(arrays)
+        self.stats["rows"] += len(level)
+        self.stats["impossible"] += int(bad.sum())
+        for l, part in enumerate(self.parts):
+            at = (level == l + 1) & ~bad
+            if isinstance(part, HullFit):
+                part.add_indices(report[at], np.zeros(int(at.sum()), dtype=bool))
+            else:
+                part.add_decoded(seed[at].astype(np.uint64), report[at], np.zeros(int(at.sum()), dtype=bool))
+
+    def _merge_parts(self, other: "FitStats") -> None:
+        assert isinstance(other, HierarchyFit)
+        for a, b in zip(self.parts, other.parts):
+            for k, v in b.stats.items():
+                a.stats[k] = a.stats[k] + v
+
+    def results(self, alpha: float) -> list[FitResult]:
+        m = self.mechanism
+        n, bad = self.rows, self.impossible
+        out = []
+        for l, part in enumerate(self.parts):
+            for r in part.results(alpha):
+                r = replace(r, test=f"level {l + 1} of {m.height} ({part.mechanism.k} nodes): " + r.test)
+                r = r.with_extra(level=l + 1)
+                if bad:
+                    imp = _impossible_result(r.test, r.kind, r.df, r.reference, alpha, n, bad)
+                    r = replace(imp, extra={**r.extra, **imp.extra})
+                out.append(r)
+        return out

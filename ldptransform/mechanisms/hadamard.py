@@ -32,6 +32,7 @@ import pyarrow.compute as pc
 from ..keys import unit_below
 from .base import register
 from .categorical import FrequencyOracle
+from .fit import FitResult, SupportBoundsFit, _result
 
 # Rows x values handled at once when a decoding function builds an (n, k) matrix: the
 # temporaries are int32 / uint8 arrays of this many elements (16 MB at most each).
@@ -229,3 +230,33 @@ class HadamardResponse(FrequencyOracle):
         # Q(y|x) is 2p/K or 2(1-p)/K with p/(1-p) = e^eps exactly: every ratio is e^eps, 1 or
         # e^-eps, and e^eps occurs (two different sets differ in K/2 outputs).
         return float(self.epsilon)
+
+    def fit_test(self) -> "HadamardFit":
+        """The count of reports at output 0 (exactly binomial whatever the data) and the support
+        bounds of every frequency oracle."""
+        return HadamardFit(self)
+
+
+# -- goodness of fit (mechanisms/fit.py) ---------------------------------------------------------
+
+class HadamardFit(SupportBoundsFit):
+    """``hadamard``: output 0 lies in every value's set C_x (row x+1 of the Hadamard matrix is +1
+    in column 0), so P(y = 0) = 2 p* / K for every input: the count of zeros is exactly
+    Binomial(n, 2 p*/K) whatever the data, a two-sided exact test of eps.  q* = 1/2 at every
+    eps, so the support floor sees nothing; the ceiling still applies."""
+
+    TESTS = 2
+
+    def _tests(self, alpha: float, good: int) -> list[FitResult]:
+        from scipy.stats import binomtest
+
+        m = self.mechanism
+        zeros = int(self.stats["summary"][0])
+        r = 2 * m.p_star / m.K
+        t = binomtest(zeros, good, r)
+        name = (f"the share of reports at output 0 equals 2 p* / K = {r:.5g}, as {m.name} at eps {m.epsilon:g} "
+                f"with K = {m.K} implies for every input")
+        out = [_result(name, "zero-output", zeros, None, "exact binomial, two-sided", t.pvalue, alpha, self.rows, 0,
+                       f"{zeros} of {good} reports at output 0, expected {good * r:.1f}",
+                       observed=zeros / good, expected=r)]
+        return out + super()._tests(alpha, good)

@@ -39,11 +39,19 @@ from typing import Any, ClassVar
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
+from pydantic import BaseModel, ConfigDict, Field
 
 from ..errors import PolicyError
 from .base import register
 from .categorical import FrequencyOracle, _as_strings
-from .numeric import SAMPLING_BITS, draw_index, guide_table, integer_masses, sampling_table
+from .fit import HullFit
+from .numeric import (
+    SAMPLING_BITS,
+    draw_index,
+    guide_table,
+    integer_masses,
+    sampling_table,
+)
 
 # A k x k matrix is written into the policy and the manifest; 1024 categories is already a
 # million entries.  (The shared sampler itself allows up to 8192 rows.)
@@ -56,6 +64,16 @@ EPS_ROUNDOFF = 1e-12
 # integer_masses needs e^eps to be finite; any matrix beyond this is refused anyway.
 _MAX_TARGET_EPS = 700.0
 _UNIT = float(1 << SAMPLING_BITS)
+MATRIX_HULL_MAX_K = 1024    # the fit test works on the k x k channel (the mechanism's own cap)
+
+
+class MatrixParams(BaseModel):
+    """Policy fields of ``matrix``: the transition matrix (required)."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+    matrix: Any = Field(description="transition probabilities, one row per true category and one column per "
+                                    "published category, in the order of categories; rows sum to 1, every "
+                                    "entry > 0")
 
 
 def grr_matrix(epsilon: float, k: int) -> np.ndarray:
@@ -77,6 +95,16 @@ class Matrix(FrequencyOracle):
     Two PRF words per row; word 1 drives the draw, word 0 is reserved (unused)."""
 
     name: ClassVar[str] = "matrix"
+    Params: ClassVar[type[BaseModel]] = MatrixParams
+    accepts_binned: ClassVar[bool] = False
+    binned_refusal: ClassVar[str] = "its transition matrix is given only on a categorical column"
+    fixed_noise_label: ClassVar[str] = "the matrix"
+
+    @classmethod
+    def missing_field_message(cls, field: str, domain: Any) -> str:
+        domain = [str(d) for d in domain]
+        return (f"mechanism matrix needs the transition matrix: give matrix: [[...], ...] with one row and one column "
+                f"per value ({len(domain)}: {', '.join(domain)})")
 
     def __init__(self, epsilon: float, categories: list[str], matrix: Any) -> None:
         super().__init__(epsilon, categories)
@@ -349,3 +377,20 @@ class Matrix(FrequencyOracle):
 
     def describe(self) -> str:
         return f"matrix (eps actually {self._actual_epsilon:.6g})"
+
+    # -- planning and goodness of fit -------------------------------------------------
+    def fixed_epsilon(self) -> float:
+        """The steward's matrix fixes the noise: the declared eps only caps it."""
+        return float(self._actual_epsilon)
+
+    def fit_test(self) -> HullFit | None:
+        """The published categories against the realized k x k channel (k <= 1024).  The outputs
+        have no order, so adjacent pooling merges categories in the declared order."""
+        if self.k > MATRIX_HULL_MAX_K:
+            return None
+
+        def index(arrays: list[pa.Array]) -> tuple[np.ndarray, np.ndarray]:
+            codes = self.reported_codes(arrays)
+            return np.where(codes < 0, 0, codes), codes < 0
+
+        return HullFit(self, self.channel(), index, "reported categories")

@@ -34,15 +34,17 @@ from __future__ import annotations
 
 import math
 from functools import cached_property
-from typing import Any, ClassVar
+from typing import Annotated, Any, ClassVar
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
+from pydantic import BaseModel, ConfigDict, Field
 
 from ..errors import PolicyError
 from ..keys import to_unit
-from .base import Mechanism, check_epsilon, register
+from .base import MeanMechanism, NoParams, check_epsilon, register
+from .fit import HullFit
 
 DEFAULT_GRID = 256
 HYBRID_THRESHOLD = 0.61
@@ -198,10 +200,18 @@ def grid_position(x: np.ndarray, lo: float, hi: float, grid: int) -> tuple[np.nd
     return t, i0, s - i0
 
 
-class GridMechanism(Mechanism):
+class GridMechanismParams(BaseModel):
+    """Policy fields of a grid mechanism: the input grid (default 256 steps)."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+    grid: Annotated[int, Field(strict=True)] | None = Field(
+        None, description="input grid size: number of equal steps between the bounds (default 256)")
+
+
+class GridMechanism(MeanMechanism):
     """Shared implementation; subclasses provide the grid size and the channel."""
 
-    kind: ClassVar[str] = "numeric"
+    Params: ClassVar[type[BaseModel]] = GridMechanismParams
 
     def __init__(self, epsilon: float, bounds: Any, grid: int = DEFAULT_GRID) -> None:
         self.epsilon = check_epsilon(epsilon, f"mechanism {self.name}")
@@ -332,6 +342,37 @@ class GridMechanism(Mechanism):
         vals = Sa + slope * (tstar - ta) - tstar ** 2
         return float(np.max(vals)) * ((self.hi - self.lo) / 2.0) ** 2
 
+    def mean_row_variance(self) -> float:
+        """Worst case over data of n * Var of the mean as ``ldpt estimate`` reports it: data split
+        evenly between the bounds, where the second moment of a report (largest at the ends of
+        the grid) is largest; column units squared."""
+        half = (self.hi - self.lo) / 2.0
+        return float(np.max(self.second_moments())) * half * half
+
+    def fit_test(self) -> HullFit:
+        """The written values, mapped onto the output alphabet, against the hull of the channel
+        (random rounding to the grid is part of the channel)."""
+        m = self
+        alpha = m.output_values
+        tol = 1e-9 * (m.hi - m.lo)       # as GridMechanism.count_invalid
+
+        def index(arrays: list[pa.Array]) -> tuple[np.ndarray, np.ndarray]:
+            arr = arrays[0]
+            if not (pa.types.is_floating(arr.type) or pa.types.is_integer(arr.type)):
+                return np.zeros(len(arr), dtype=np.int64), np.ones(len(arr), dtype=bool)
+            vals = np.asarray(pc.fill_null(pc.cast(arr, pa.float64()), np.nan).to_numpy(zero_copy_only=False))
+            if len(alpha) == 1:
+                idx = np.zeros(len(vals), dtype=np.int64)
+            else:
+                i = np.clip(sorted_position(alpha, vals), 1, len(alpha) - 1)
+                left = np.abs(vals - alpha[i - 1]) <= np.abs(vals - alpha[i])
+                idx = np.where(left, i - 1, i)
+            near = np.abs(vals - alpha[idx])
+            bad = ~(np.nan_to_num(near, nan=np.inf) <= tol)
+            return idx.astype(np.int64), bad
+
+        return HullFit(m, m.channel(), index, "written values (output alphabet, in increasing order)")
+
 
 def _two_point_channel(eps: float, t: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     e = math.exp(eps)
@@ -368,6 +409,9 @@ class TwoPoint(GridMechanism):
     """Bounded two-point mechanism (Duchi, Jordan, Wainwright 2018): report +-C."""
 
     name: ClassVar[str] = "two-point"
+    Params: ClassVar[type[BaseModel]] = NoParams
+    field_refusals: ClassVar[dict[str, str]] = {
+        "grid": "two-point has no input grid (it reports one of two values); remove grid"}
 
     def __init__(self, epsilon: float, bounds: Any, grid: int = 1) -> None:
         super().__init__(epsilon, bounds, 1)

@@ -15,19 +15,29 @@ from __future__ import annotations
 
 import itertools
 import math
-from typing import Any, ClassVar
+from typing import Annotated, Any, ClassVar
 
 import numpy as np
 import pyarrow as pa
+from pydantic import BaseModel, ConfigDict, Field
 
 from ..errors import PolicyError
 from ..keys import to_below, unit_below
 from .base import register
 from .categorical import FrequencyOracle, _as_strings, bits_to_strings, strings_to_bits
+from .fit import SupportBoundsFit
 
 # Rows x values handled at once (int32 permutation / bool bit matrices of this many entries).
 _CHUNK_ELEMENTS = 1 << 22
 MAX_CHANNEL_SUBSETS = 50_000
+
+
+class SubsetParams(BaseModel):
+    """Policy fields of ``subset``: the subset size."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+    subset_size: Annotated[int, Field(strict=True)] | None = Field(
+        None, description="size m of the reported subsets (default: the m with the lowest total variance)")
 
 
 def _total_variance_curve(epsilon: float, k: int) -> np.ndarray:
@@ -60,6 +70,7 @@ class SubsetSelection(FrequencyOracle):
     """
 
     name: ClassVar[str] = "subset"
+    Params: ClassVar[type[BaseModel]] = SubsetParams
 
     def __init__(self, epsilon: float, categories: list[str], subset_size: int | None = None) -> None:
         super().__init__(epsilon, categories)
@@ -238,3 +249,9 @@ class SubsetSelection(FrequencyOracle):
     def max_log_ratio(self) -> float:
         # P(S|x)/P(S|x') is E (x in S, x' not), 1 or 1/E; E occurs since 1 <= m <= k-1.
         return float(self.epsilon)
+
+    def fit_test(self) -> SupportBoundsFit:
+        """Every report holds exactly m values, and the support counts obey the binomial floor and
+        ceiling (a subset release's data-dependent distribution over C(k, m) outputs is too large
+        for the hull test)."""
+        return SupportBoundsFit(self)
