@@ -228,6 +228,23 @@ class Distribution:
     def histogram(self) -> dict[str, Any]:
         return {"edges": self.edges.tolist(), "mass": self.mass.tolist()}
 
+    def bucket_counts(self, values: np.ndarray) -> np.ndarray:
+        """What ``mass`` estimates, counted from known values (for calibration against raw data):
+        per bucket, the number of values in it ([e_j, e_j+1), the last bucket closed), or, when
+        the buckets stand for grid points (``centers`` other than the midpoints), each value's
+        weight split linearly between its two neighbouring grid points (the expectation of the
+        unbiased rounding to the grid).  Divide by the row count for shares."""
+        x = np.asarray(values, dtype=float)
+        K = len(self.mass)
+        mids = (self.edges[:-1] + self.edges[1:]) / 2
+        if K < 2 or np.allclose(self.centers, mids, rtol=0, atol=1e-12 * (self.hi - self.lo)):
+            j = np.clip(np.searchsorted(self.edges, x, side="right") - 1, 0, K - 1)
+            return np.bincount(j, minlength=K).astype(float)
+        c = self.centers
+        j = np.clip(np.searchsorted(c, x, side="right") - 1, 0, K - 2)
+        w = np.clip((x - c[j]) / (c[j + 1] - c[j]), 0.0, 1.0)
+        return np.bincount(j, weights=1.0 - w, minlength=K) + np.bincount(j + 1, weights=w, minlength=K)
+
     # -- standard errors ----------------------------------------------------------------
     def cdf_se(self, x: float) -> float | None:
         """SE of cdf(x): exact from ``cov``; from ``cdf_se`` at the edges, linearly

@@ -10,7 +10,7 @@ import json
 import math
 import re
 import tempfile
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from statistics import NormalDist
 from typing import Any
@@ -21,10 +21,12 @@ import pyarrow.compute as pc
 
 from . import mechanisms as mech
 from .errors import LdptError
-from .estimate import CategoricalStats, NumericStats, accumulate, report, z_value
+from .estimate import Analyses, accumulate, report, z_value
 from .io import TableSource, sha256_file
+from .distribution import Distribution
 from .keys import SecretKey
 from .manifest import Manifest, default_manifest_path, load_manifest
+from .results import CalibrationEntry, CalibrationResult, Check, EstimateResult, RangeResult, ValidationReport
 from .policy import EPS_TOLERANCE, parse_policy
 from .release import ColumnPlan, encode_binned, encode_categorical, encode_numeric, plan_columns, privatize
 
@@ -33,39 +35,22 @@ FAMILY_ALPHA = 0.001  # calibration: chance of a false failure over all cells, f
 _HEX = re.compile(r"\b[0-9a-fA-F]{32,}\b")
 
 
-@dataclass
-class Check:
-    name: str
-    status: str  # pass | warn | fail
-    detail: str
+class _Checks:
+    """The checks of one validation as they are made; ``report()`` freezes them."""
 
-    def as_dict(self) -> dict[str, str]:
-        return {"check": self.name, "status": self.status, "detail": self.detail}
-
-
-@dataclass
-class ValidationReport:
-    extract: str
-    manifest: str
-    checks: list[Check] = field(default_factory=list)
-    calibration: dict[str, Any] | None = None
-
-    @property
-    def ok(self) -> bool:
-        return all(c.status != "fail" for c in self.checks)
+    def __init__(self, extract: str, manifest: str) -> None:
+        self.extract, self.manifest = extract, manifest
+        self.checks: list[Check] = []
+        self.calibration: CalibrationResult | None = None
 
     def add(self, name: str, ok: bool | None, detail: str) -> None:
-        self.checks.append(Check(name, "pass" if ok else ("warn" if ok is None else "fail"), detail))
+        self.checks.append(Check(name, None if ok is None else bool(ok), detail))
 
-    def as_dict(self) -> dict[str, Any]:
-        d: dict[str, Any] = {"extract": self.extract, "manifest": self.manifest, "ok": self.ok,
-                             "checks": [c.as_dict() for c in self.checks]}
-        if self.calibration is not None:
-            d["calibration"] = self.calibration
-        return d
+    def report(self) -> ValidationReport:
+        return ValidationReport(self.extract, self.manifest, tuple(self.checks), self.calibration)
 
 
-def _check_secrets(manifest: Manifest, text: str, key: SecretKey | None, rep: ValidationReport) -> None:
+def _check_secrets(manifest: Manifest, text: str, key: SecretKey | None, rep: _Checks) -> None:
     allowed = {manifest.extract.sha256, manifest.policy_sha256, manifest.nonce, manifest.key_fingerprint}
     allowed |= {p.sha256 for p in manifest.extract.parts or []}
     stray = [h for h in _HEX.findall(text) if h not in allowed]
@@ -97,7 +82,7 @@ def _check_secrets(manifest: Manifest, text: str, key: SecretKey | None, rep: Va
             "the manifest holds only the key fingerprint" if not problems else "the manifest contains " + "; ".join(problems))
 
 
-def _check_privacy(manifest: Manifest, rep: ValidationReport) -> None:
+def _check_privacy(manifest: Manifest, rep: _Checks) -> None:
     issues = []
     total = 0.0
     for c in manifest.columns:
@@ -164,31 +149,46 @@ def _check_privacy(manifest: Manifest, rep: ValidationReport) -> None:
                 "(they may identify people, alone or linked to other data)")
 
 
-def _true_stats(raw: Path, manifest: Manifest) -> dict[str, Any]:
-    """True frequencies and means of the raw data as the policy encodes them."""
+@dataclass(frozen=True)
+class _Truth:
+    """The raw data's true statistics, encoded as the release encoded them."""
+
+    rows: int
+    shares: dict[str, np.ndarray]   # categorical and binned columns: share of rows per code
+    means: dict[str, float]         # numeric columns: mean of the clipped, filled values
+    masses: dict[str, np.ndarray]   # columns with a distribution: bucket shares of its histogram
+
+
+def _true_stats(raw: Path, manifest: Manifest, dists: dict[str, Distribution] | None = None) -> _Truth:
+    """True frequencies and means of the raw data as the policy encodes them (missing values
+    filled, values clipped to the bounds, categories coded), and for every column in ``dists``
+    the bucket shares its decoded histogram estimates (``Distribution.bucket_counts`` of the
+    encoded values).  One streaming pass."""
+    dists = dists or {}
     lp = parse_policy(manifest.policy, "embedded in the manifest")
     src = TableSource(raw, csv_null_values=lp.policy.input.csv_null_values, csv_delimiter=lp.policy.input.csv_delimiter)
     plans = [p for p in plan_columns(lp, src.column_names, str(raw)) if p.rc.mechanism is not None]
-    counts = {p.rc.name: np.zeros(getattr(p.rc.mechanism, "k", 0), dtype=np.int64) for p in plans}
-    sums = {p.rc.name: 0.0 for p in plans}
+    counts = {p.rc.name: np.zeros(p.rc.mechanism.k, dtype=np.int64) for p in plans if p.rc.type != "numeric"}
+    sums = {p.rc.name: 0.0 for p in plans if p.rc.type == "numeric"}
+    masses = {name: np.zeros(len(d.mass)) for name, d in dists.items()}
     n = 0
     for batch in src.batches([p.rc.name for p in plans], 65536):
         for p in plans:
-            v = batch.column(p.rc.name)
+            name, v = p.rc.name, batch.column(p.rc.name)
             if p.rc.type == "categorical":
-                counts[p.rc.name] += np.bincount(encode_categorical(v, p, n), minlength=p.rc.mechanism.k)
-            elif p.rc.type == "binned":
-                counts[p.rc.name] += np.bincount(encode_binned(v, p, n), minlength=p.rc.mechanism.k)
+                counts[name] += np.bincount(encode_categorical(v, p, n), minlength=counts[name].size)
+                continue
+            x = encode_numeric(v, p, n)
+            if p.rc.type == "binned":
+                counts[name] += np.bincount(encode_binned(v, p, n), minlength=counts[name].size)
             else:
-                sums[p.rc.name] += float(encode_numeric(v, p, n).sum())
+                sums[name] += float(x.sum())
+            if name in dists:
+                masses[name] += dists[name].bucket_counts(x)
         n += batch.num_rows
-    out: dict[str, Any] = {"rows": n}
-    for p in plans:
-        if p.rc.type == "numeric":
-            out[p.rc.name] = sums[p.rc.name] / max(n, 1)
-        else:
-            out[p.rc.name] = counts[p.rc.name] / max(n, 1)
-    return out
+    d = max(n, 1)
+    return _Truth(n, {k: c / d for k, c in counts.items()}, {k: v / d for k, v in sums.items()},
+                  {k: m / d for k, m in masses.items()})
 
 
 def validate(extract: Path | str, manifest_path: Path | str | None = None, *, raw: Path | str | None = None,
@@ -197,10 +197,10 @@ def validate(extract: Path | str, manifest_path: Path | str | None = None, *, ra
     mpath = Path(manifest_path) if manifest_path else default_manifest_path(extract)
     manifest = load_manifest(mpath)
     text = mpath.read_text(encoding="utf-8")
-    rep = ValidationReport(str(extract), str(mpath))
+    rep = _Checks(str(extract), str(mpath))
     if not extract.exists():
         rep.add("extract present", False, f"{extract} does not exist")
-        return rep
+        return rep.report()
     if manifest.extract.format == "parquet-dataset":
         _check_dataset_hash(extract, manifest, rep)
     else:
@@ -247,10 +247,10 @@ def validate(extract: Path | str, manifest_path: Path | str | None = None, *, ra
         _reproduce(Path(raw), extract, manifest, key, rep)
         if stats is not None:
             rep.calibration = _calibrate(Path(raw), manifest, stats, rows, confidence, rep)
-    return rep
+    return rep.report()
 
 
-def _check_quality(manifest: Manifest, rows: int, rep: ValidationReport) -> None:
+def _check_quality(manifest: Manifest, rows: int, rep: _Checks) -> None:
     """Predicted SE of each statistic the policy needs at this extract's row count, against the
     policy's quality targets (see plan.py for what is predicted and how)."""
     from .plan import column_statistics
@@ -297,7 +297,7 @@ def _check_quality(manifest: Manifest, rows: int, rep: ValidationReport) -> None
 FIT_ALPHA = 0.001  # family-wise false-alarm rate of the fit check, over all its tests (Bonferroni)
 
 
-def _check_fit(manifest: Manifest, fits: dict[str, Any], rep: ValidationReport) -> None:
+def _check_fit(manifest: Manifest, fits: dict[str, Any], rep: _Checks) -> None:
     """Goodness of fit of the reports to the declared mechanisms (gof.py): every test of every
     column at level FIT_ALPHA / (number of tests), so that a correct release fails this check
     with probability at most FIT_ALPHA."""
@@ -366,7 +366,7 @@ def _scan(extract: Path, mpath: Path, manifest: Manifest) -> tuple[dict[str, int
     return bad, fits
 
 
-def _check_dataset_hash(folder: Path, manifest: Manifest, rep: ValidationReport) -> None:
+def _check_dataset_hash(folder: Path, manifest: Manifest, rep: _Checks) -> None:
     """A dataset extract: every part listed, no other Parquet file, each part's SHA-256 and size,
     and the digest over the parts (dataset.dataset_digest) as the manifest records them."""
     from .dataset import dataset_digest
@@ -396,7 +396,7 @@ def _check_dataset_hash(folder: Path, manifest: Manifest, rep: ValidationReport)
             if not problems else "; ".join(problems[:4]) + ": the extract was changed or is not this manifest's")
 
 
-def _reproduce(raw: Path, extract: Path, manifest: Manifest, key: SecretKey, rep: ValidationReport) -> None:
+def _reproduce(raw: Path, extract: Path, manifest: Manifest, key: SecretKey, rep: _Checks) -> None:
     lp = parse_policy(manifest.policy, "embedded in the manifest")
     with tempfile.TemporaryDirectory(prefix="ldpt-validate-") as tmp:
         out = Path(tmp) / manifest.extract.file
@@ -435,33 +435,92 @@ def _same_values(a_path: Path, b_path: Path, batch_rows: int = 65536) -> bool:
     return True
 
 
+CALIBRATION_QUANTILES = [0.25, 0.5, 0.75]  # quantiles checked for every column with a distribution
+CALIBRATION_RANGE_PARTS = 4  # range shares checked: the bounds cut into this many equal parts
+
+
+def _calibration_ranges(dist: Distribution, confidence: float) -> list[tuple[float, float, Any]]:
+    """The bounds of a distribution cut into CALIBRATION_RANGE_PARTS equal ranges, each with its
+    share and interval: (low, high, distribution.Interval)."""
+    edges = np.linspace(dist.lo, dist.hi, CALIBRATION_RANGE_PARTS + 1)
+    return [(float(a), float(b), dist.range_ci(float(a), float(b), confidence)) for a, b in zip(edges[:-1], edges[1:])]
+
+
+def _entry(column: str, statistic: str, value: str | None, truth: float, est: Any, z: float,
+           estimand: str) -> CalibrationEntry:
+    """One statistic against its truth.  score = z x (distance of the truth from the estimate) /
+    (the interval's half-width on the truth's side): |estimate - truth| / SE for a normal
+    interval, and the same scale for intervals that are not symmetric (quantiles, bootstrap)."""
+    e, lo, hi = est.estimate, est.ci_low, est.ci_high
+    truth = float(truth)
+    if not all(v is not None and math.isfinite(v) for v in (e, lo, hi)):
+        return CalibrationEntry(column, statistic, value, truth, e, est.se, lo, hi, None, None, estimand)
+    inside = bool(lo <= truth <= hi)
+    half = (hi - e) if truth >= e else (e - lo)
+    score = z * abs(truth - e) / half if half > 0 else None
+    return CalibrationEntry(column, statistic, value, truth, e, est.se, lo, hi, inside, score, estimand)
+
+
+def _calibration_entries(est: EstimateResult, truth: _Truth, z: float, confidence: float) -> list[CalibrationEntry]:
+    out: list[CalibrationEntry] = []
+    for name, col in est.columns.items():
+        for f, t in zip(col.frequencies, truth.shares.get(name, ())):
+            out.append(_entry(name, "frequency", f.value, t, f, z, f.estimand))
+        if col.mean is not None and name in truth.means:
+            out.append(_entry(name, "mean", None, truth.means[name], col.mean, z, col.mean.estimand))
+        d = col.distribution
+        if d is not None and d.source is not None and name in truth.masses:
+            src = d.source
+            true_dist = Distribution(src.edges, truth.masses[name], method="raw data", n=truth.rows,
+                                     centers=src.centers)
+            for q in d.quantiles:
+                out.append(_entry(name, "quantile", repr(q.q), true_dist.quantile(q.q), q, z, q.estimand))
+            for lo, hi, iv in _calibration_ranges(src, confidence):
+                r = RangeResult(lo, hi, iv.estimate, iv.se, iv.lo, iv.hi, iv.method)
+                out.append(_entry(name, "range share", f"{lo:g}..{hi:g}", true_dist.range_share(lo, hi), r, z,
+                                  f"share of rows with {name} in [{lo:g}, {hi:g}) among all rows"))
+    return out
+
+
 def _calibrate(raw: Path, manifest: Manifest, stats: dict[str, Any], rows: int, confidence: float,
-               rep: ValidationReport) -> dict[str, Any]:
-    truth = _true_stats(raw, manifest)
-    est = report(manifest, stats, rows, confidence)
-    zs: list[tuple[str, float]] = []
-    inside = 0
-    for name, col in est["columns"].items():
-        if "frequencies" in col:
-            for f, t in zip(col["frequencies"], truth[name]):
-                if f["se"] > 0:
-                    zs.append((f"{name}={f['value']}", float((f["estimate"] - t) / f["se"])))
-                inside += int(f["ci_low"] <= float(t) <= f["ci_high"])
-        else:
-            m = col["mean"]
-            if m["se"]:
-                zs.append((f"{name} mean", (m["estimate"] - truth[name]) / m["se"]))
-            inside += int(m["ci_low"] <= truth[name] <= m["ci_high"])
-    total = sum(len(c.get("frequencies", [None])) for c in est["columns"].values())
-    worst = max(zs, key=lambda t: abs(t[1])) if zs else ("-", 0.0)
-    crit = NormalDist().inv_cdf(1 - FAMILY_ALPHA / (2 * max(len(zs), 1)))
-    ok: bool | None = abs(worst[1]) <= crit
+               rep: _Checks) -> CalibrationResult:
+    """Every statistic the columns give (frequencies, means, quantiles, range shares) against
+    the truth from the raw data, encoded as the release encoded it.  A correct release fails
+    with probability about FAMILY_ALPHA: each score is held to the Bonferroni limit over all
+    judged statistics.  Quantiles and range shares are checked against the raw column's
+    histogram over the release's buckets (linear within each): what the release estimates."""
+    an = Analyses(quantiles=list(CALIBRATION_QUANTILES))
+    est = report(manifest, stats, rows, confidence, an)
+    dists = {n: c.distribution.source for n, c in est.columns.items()
+             if c.distribution is not None and c.distribution.source is not None}
+    truth = _true_stats(raw, manifest, dists)
+    z = z_value(confidence)
+    entries = _calibration_entries(est, truth, z, confidence)
+    judged = [e for e in entries if e.score is not None]
+    with_interval = [e for e in entries if e.inside is not None]
+    inside = sum(bool(e.inside) for e in with_interval)
+    total = len(with_interval)
+    worst = max(judged, key=lambda e: e.score) if judged else None
+    worst_at = "-" if worst is None else f"{worst.column}" + (
+        f"={worst.value}" if worst.statistic == "frequency" else f" {worst.statistic}" +
+        (f" {worst.value}" if worst.value is not None else ""))
+    max_z = 0.0 if worst is None else float(worst.score)
+    crit = NormalDist().inv_cdf(1 - FAMILY_ALPHA / (2 * max(len(judged), 1)))
+    ok: bool | None = max_z <= crit
     share = inside / total if total else float("nan")
     small = rows < MIN_CALIBRATION_ROWS
     if small:
         ok = None  # the normal approximation is not trustworthy on so few rows: report, do not judge
-    rep.add("calibration", ok, (f"only {rows} rows, too few to judge calibration (needs {MIN_CALIBRATION_ROWS}); " if small else "") +
-            f"{inside} of {total} true values ({share:.1%}) lie inside their {confidence:.0%} intervals; largest |z| "
-            f"{abs(worst[1]):.2f} ({worst[0]}), limit {crit:.2f} (family-wise {FAMILY_ALPHA:g})")
-    return {"statistics": total, "inside": inside, "share_inside": share, "confidence": confidence,
-            "max_abs_z": abs(worst[1]), "max_abs_z_at": worst[0], "z_limit": crit}
+    plural = {"frequency": "frequencies", "mean": "means", "quantile": "quantiles", "range share": "range shares"}
+    tally = {k: sum(e.statistic == k for e in with_interval) for k in plural}
+    covered = ", ".join(f"{v} {plural[k] if v != 1 else k}" for k, v in tally.items() if v)
+    unjudged = [e for e in entries if e.inside is None]
+    tail = (f"; not judged ({len(unjudged)}, no interval): " + ", ".join(
+        f"{e.column} {e.statistic}" for e in unjudged[:6]) + (", ..." if len(unjudged) > 6 else "")) if unjudged else ""
+    rep.add("calibration", ok, (f"only {rows} rows, too few to judge calibration (needs {MIN_CALIBRATION_ROWS}); "
+                                if small else "") +
+            f"{inside} of {total} true values ({share:.1%}) lie inside their {confidence:.0%} intervals ({covered}; "
+            "quantiles and range shares against the raw column's histogram over the release's buckets); largest "
+            f"|z| {max_z:.2f} ({worst_at}), limit {crit:.2f} (family-wise {FAMILY_ALPHA:g}, Bonferroni over "
+            f"{len(judged)} statistics)" + tail)
+    return CalibrationResult(total, inside, share, confidence, max_z, worst_at, crit, tuple(entries))

@@ -158,7 +158,8 @@ def test_open_dataset_calibration(tmp_path):
     rep = validate(out, raw=raw, key=KEY)
     assert rep.ok, [c.as_dict() for c in rep.checks if c.status == "fail"]
     cal = rep.calibration
-    assert cal is not None and cal["statistics"] == 5 + 4 + 6 + 6 + 3 + 4
+    # frequencies 5 + 4 + 6 + 6, means 3, and the binned column: 4 frequencies, 3 quantiles, 4 range shares
+    assert cal is not None and cal["statistics"] == 5 + 4 + 6 + 6 + 3 + 4 + 3 + 4
     assert cal["max_abs_z"] < cal["z_limit"]
     assert 0.85 <= cal["share_inside"] <= 1.0
     # and by hand against pandas, for the means

@@ -1,0 +1,157 @@
+"""Steward-side validation (raw data and key): every example policy and one release per
+mechanism pass every check, the calibration included, and the calibration covers every
+statistic a column gives (frequencies, means, quantiles, range shares).
+
+Fixed key and nonces: every outcome here is deterministic.  A correct release fails the
+calibration with probability about validate.FAMILY_ALPHA (0.001) over all its statistics, so a
+failure here is a defect, not bad luck.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import pytest
+from typer.testing import CliRunner
+
+from ldptransform import load_policy, parse_policy, privatize, validate
+from ldptransform.cli import app
+from ldptransform.keys import SecretKey, load_key
+from ldptransform.results import CalibrationResult, Check, ValidationReport
+
+from conftest import FIXED_KEY_BYTES, write_fixed_key
+
+ROOT = Path(__file__).resolve().parent.parent
+POLICIES = sorted((ROOT / "policies").glob("*.y*ml")) + sorted((ROOT / "policies").glob("*.json"))
+DEMO_CSV = ROOT / "demo_data" / "staff_survey.csv"
+KEY = SecretKey(FIXED_KEY_BYTES)
+NONCE = "5" * 32
+ROWS = 6000
+SITES = ["North", "South", "East", "West", "Harbour"]
+
+
+def _assert_passes(rep: ValidationReport) -> CalibrationResult:
+    assert isinstance(rep, ValidationReport) and all(isinstance(c, Check) for c in rep.checks)
+    assert rep.ok, [c.to_dict() for c in rep.checks if c.ok is not True]
+    status = {c.name: c.status for c in rep.checks}
+    assert status["reproduced"] == "pass" and status["key matches"] == "pass", status
+    assert status["calibration"] == "pass", rep.check("calibration")
+    cal = rep.calibration
+    assert cal is not None and cal.max_abs_z <= cal.z_limit and cal.statistics >= 1
+    judged = [e for e in cal.entries if e.score is not None]
+    assert max(e.score for e in judged) == pytest.approx(cal.max_abs_z)
+    assert cal.inside == sum(bool(e.inside) for e in cal.entries)
+    # the JSON shape is unchanged: the same seven figures
+    assert set(cal.to_dict()) == {"statistics", "inside", "share_inside", "confidence", "max_abs_z",
+                                  "max_abs_z_at", "z_limit"}
+    return cal
+
+
+@pytest.mark.parametrize("path", POLICIES, ids=lambda p: p.name)
+def test_every_example_policy_passes_steward_validation(path: Path, tmp_path: Path) -> None:
+    lp = load_policy(path)
+    out = tmp_path / "extract.parquet"
+    privatize(DEMO_CSV, lp, KEY, out, nonce=NONCE)
+    cal = _assert_passes(validate(out, raw=DEMO_CSV, key=KEY))
+    kinds = {e.statistic for e in cal.entries if e.inside is not None}
+    assert "frequency" in kinds
+    if path.name == "staff_survey_planned.yaml":  # square-wave pay and binned tenure: their quantiles and ranges
+        cols = {(e.column, e.statistic) for e in cal.entries if e.inside is not None}
+        assert {("pay", "quantile"), ("pay", "range share"), ("tenure_years", "quantile"),
+                ("tenure_years", "range share"), ("weekly_hours", "mean")} <= cols
+
+
+def _data(n: int, seed: int = 11) -> pd.DataFrame:
+    rng = np.random.default_rng(seed)  # synthetic input data only
+    site = rng.choice(SITES, size=n, p=[0.35, 0.25, 0.2, 0.15, 0.05])
+    pay = np.round(np.clip(rng.lognormal(np.log(52000), 0.35, n), 20000, 150000), -2)
+    hours = np.round(np.clip(rng.normal(38, 7, n), 0, 70), 1)
+    return pd.DataFrame({"site": site, "pay": pay, "hours": hours})
+
+
+CAT = {"type": "categorical", "categories": SITES, "epsilon": 1.5}
+PAY = {"type": "numeric", "bounds": [20000, 150000], "epsilon": 1.5}
+MECHANISMS: dict[str, tuple[str, dict[str, Any]]] = {
+    "grr": ("site", {**CAT, "mechanism": "grr"}),
+    "oue": ("site", {**CAT, "mechanism": "oue"}),
+    "sue": ("site", {**CAT, "mechanism": "sue"}),
+    "olh": ("site", {**CAT, "mechanism": "olh"}),
+    "hadamard": ("site", {**CAT, "mechanism": "hadamard"}),
+    "subset": ("site", {**CAT, "mechanism": "subset", "subset_size": 2}),
+    "matrix": ("site", {**CAT, "epsilon": 2.0, "mechanism": "matrix",
+                        "matrix": [[0.6 if i == j else 0.1 for j in range(5)] for i in range(5)]}),
+    "two-point": ("pay", {**PAY, "mechanism": "two-point"}),
+    "piecewise": ("pay", {**PAY, "mechanism": "piecewise"}),
+    "hybrid": ("pay", {**PAY, "mechanism": "hybrid"}),
+    "discrete-laplace": ("hours", {"type": "numeric", "bounds": [0, 70], "epsilon": 1.5,
+                                   "mechanism": "discrete-laplace", "grid": 70}),
+    "square-wave": ("pay", {**PAY, "mechanism": "square-wave"}),
+    "hierarchy": ("pay", {**PAY, "mechanism": "hierarchy"}),
+    "bins": ("hours", {"type": "numeric", "bins": [0, 30, 36, 40, 45, 70], "epsilon": 1.5}),
+}
+EXPECTED = {"frequency": {"frequency"}, "mean": {"mean"}, "distribution": {"quantile", "range share"},
+            "binned": {"frequency", "quantile", "range share"}}
+FAMILY = {**{m: "frequency" for m in ("grr", "oue", "sue", "olh", "hadamard", "subset", "matrix")},
+          **{m: "mean" for m in ("two-point", "piecewise", "hybrid", "discrete-laplace")},
+          "square-wave": "distribution", "hierarchy": "distribution", "bins": "binned"}
+
+
+@pytest.fixture(scope="module")
+def raw(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    path = tmp_path_factory.mktemp("raw") / "raw.parquet"
+    _data(ROWS).to_parquet(path, index=False)
+    return path
+
+
+@pytest.mark.parametrize("mechanism", list(MECHANISMS))
+def test_one_release_per_mechanism_passes_steward_validation(mechanism: str, raw: Path, tmp_path: Path) -> None:
+    column, pol = MECHANISMS[mechanism]
+    lp = parse_policy({"budget": {"epsilon_per_row": pol["epsilon"]}, "unlisted": "drop", "columns": {column: pol}},
+                      f"{mechanism} policy")
+    out = tmp_path / "extract.parquet"
+    privatize(raw, lp, KEY, out, nonce=NONCE)
+    cal = _assert_passes(validate(out, raw=raw, key=KEY))
+    judged = {e.statistic for e in cal.entries if e.score is not None}
+    assert judged == EXPECTED[FAMILY[mechanism]], judged
+    n_freq = sum(e.statistic == "frequency" for e in cal.entries)
+    assert n_freq in (0, len(pol.get("categories", pol.get("bins", [0])[1:])))
+    for e in cal.entries:
+        assert e.estimand and math.isfinite(e.truth)
+
+
+def test_the_calibration_fails_on_a_release_of_other_data(raw: Path, tmp_path: Path) -> None:
+    """Calibrated against raw data that is not the release's, the truths move far outside the
+    intervals: the check can fail (reproduction fails as well)."""
+    column, pol = MECHANISMS["hierarchy"]
+    lp = parse_policy({"budget": {"epsilon_per_row": 1.5}, "unlisted": "drop", "columns": {column: pol}}, "p")
+    out = tmp_path / "extract.parquet"
+    privatize(raw, lp, KEY, out, nonce=NONCE)
+    other = _data(ROWS, seed=12)
+    other["pay"] = np.clip(other["pay"] * 1.3, 20000, 150000)
+    other_path = tmp_path / "other.parquet"
+    other.to_parquet(other_path, index=False)
+    rep = validate(out, raw=other_path, key=KEY)
+    assert rep.check("calibration").ok is False and rep.check("reproduced").ok is False and not rep.ok
+
+
+def test_steward_validation_through_the_cli(tmp_path: Path) -> None:
+    """The release that ended in a traceback (square-wave and binned columns), through the CLI:
+    exit 0, the table says so, and --format json gives the calibration figures."""
+    key = write_fixed_key(tmp_path / "k.key")
+    lp = load_policy(ROOT / "policies" / "staff_survey_planned.yaml")
+    out = tmp_path / "x.parquet"
+    privatize(DEMO_CSV, lp, load_key(key), out, nonce=NONCE)
+    runner = CliRunner()
+    res = runner.invoke(app, ["validate", str(out), "--raw", str(DEMO_CSV), "--key", str(key), "--format", "json"])
+    assert res.exit_code == 0, res.output
+    data = json.loads(res.stdout)
+    assert data["ok"] is True and data["calibration"]["max_abs_z"] <= data["calibration"]["z_limit"]
+    checks = {c["check"]: c for c in data["checks"]}
+    assert checks["calibration"]["status"] == "pass" and "quantiles" in checks["calibration"]["detail"]
+    table = runner.invoke(app, ["validate", str(out), "--raw", str(DEMO_CSV), "--key", str(key)])
+    assert table.exit_code == 0 and "all checks passed" in table.stdout
