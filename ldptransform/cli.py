@@ -51,12 +51,18 @@ class TableJsonCsv(str, Enum):
     csv = "csv"
 
 
+# the library names its options as Python parameters; these commands name them by their flags
+_PRIVATIZE_FLAGS = {"batch_rows": "--batch-rows", "fragment_rows": "--part-rows", "engine": "--engine",
+                    "scheduler": "--scheduler", "nonce": "--nonce", "out": "--out", "ledger_path": "--ledger",
+                    "allow_partial": "--allow-partial"}
+
+
 @contextmanager
-def _user_errors() -> Iterator[None]:
+def _user_errors(flags: dict[str, str] | None = None) -> Iterator[None]:
     try:
         yield
     except LdptError as err:
-        err_console.print(f"[bold red]Error:[/] {escape(str(err))}", markup=True, highlight=False)
+        err_console.print(f"[bold red]Error:[/] {escape(err.message_for(flags))}", markup=True, highlight=False)
         raise typer.Exit(code=err.exit_code) from None
     except PermissionError as err:
         err_console.print(f"[bold red]Error:[/] permission denied on {escape(str(err.filename))}: check that you "
@@ -151,7 +157,7 @@ def privatize(
     from .release import privatize as run
 
     source: str | Path = input if "://" in input else Path(input)
-    with _user_errors():
+    with _user_errors(_PRIVATIZE_FLAGS):
         lp = load_policy(policy)
         k = load_key(key)
         show = (not quiet) and sys.stderr.isatty()

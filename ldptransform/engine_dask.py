@@ -30,8 +30,9 @@ import logging
 import os
 import socket
 from collections import deque
+from collections.abc import Callable
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 import numpy as np
 import pyarrow as pa
@@ -39,7 +40,14 @@ import pyarrow as pa
 from .dataset import PART_NAME
 from .errors import UsageError
 from .io import StagedFiles, _rebatch
-from .release import PartJob, PartResult, RowCutter, _keep_slice, fragment_part, write_part
+from .release.parts import (
+    PartJob,
+    PartResult,
+    RowCutter,
+    _keep_slice,
+    fragment_part,
+    write_part,
+)
 
 DEFAULT_WORKERS = max(1, min(os.cpu_count() or 1, 8))
 
@@ -296,4 +304,4 @@ def privatize_frame(frame: Any, policy: Any, key: Any, out: Path | str, **kwargs
     return privatize(frame, policy, key, out, **kwargs)
 
 
-__all__ = ["run_parts", "map_fragments", "privatize_frame", "FrameSource", "check_scheduler_address", "DEFAULT_WORKERS"]
+__all__ = ["DEFAULT_WORKERS", "FrameSource", "check_scheduler_address", "map_fragments", "privatize_frame", "run_parts"]

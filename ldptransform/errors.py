@@ -8,6 +8,8 @@ counts and row numbers, never raw values from the data, and never key material.
 
 from __future__ import annotations
 
+import re
+from collections.abc import Mapping
 from typing import ClassVar
 
 
@@ -15,6 +17,11 @@ class LdptError(Exception):
     """Base class for user-fixable errors (exit code 2)."""
 
     exit_code: ClassVar[int] = 2
+
+    def message_for(self, flags: Mapping[str, str] | None = None) -> str:
+        """The message as a front end shows it: ``flags`` maps Python option names to its own
+        (only ``OptionError`` names options; every other error reads the same everywhere)."""
+        return str(self)
 
 
 class PolicyError(LdptError):
@@ -47,3 +54,30 @@ class UsageError(LdptError):
 
 class OutputError(LdptError):
     """An output file could not be written or moved into place."""
+
+
+class OptionError(UsageError):
+    """A Python option out of range or at odds with another, named as the caller wrote it.
+
+    ``text`` names options as ``{name}`` (or ``{name=value}`` for an option with a value):
+    ``str(err)`` is ``call: text`` with Python names (``privatize(batch_rows=0): batch_rows must
+    be ...``, ``engine='dask'``); ``message_for(flags)`` is the text in a command line's names
+    (``--batch-rows must be ...``, ``--engine dask``), for the option names ``flags`` maps."""
+
+    def __init__(self, call: str, text: str) -> None:
+        self.call, self.text = call, text
+        super().__init__(f"{call}: {self._render(None)}")
+
+    def _render(self, flags: Mapping[str, str] | None) -> str:
+        def one(m: re.Match[str]) -> str:
+            name, value = m.group(1), m.group(2)
+            if flags is None or name not in flags:
+                return name if value is None else f"{name}={value}"
+            return flags[name] if value is None else f"{flags[name]} {value.strip(chr(39))}"
+        return re.sub(r"\{(\w+)(?:=([^}]*))?\}", one, self.text)
+
+    def __reduce__(self) -> tuple[type, tuple[str, str]]:  # picklable (errors may cross processes)
+        return (type(self), (self.call, self.text))
+
+    def message_for(self, flags: Mapping[str, str] | None = None) -> str:
+        return self._render(flags) if flags else str(self)

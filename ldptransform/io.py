@@ -224,6 +224,21 @@ def _rebatch(source: Iterator[pa.RecordBatch], rows: int) -> Iterator[pa.RecordB
 
 # -- writing ------------------------------------------------------------------------------
 
+def private_dir() -> Path:
+    """The steward's private folder (mode 0700) for diagnostics and the ledger.
+
+    $LDPT_PRIVATE_DIR if set, else $XDG_STATE_HOME/ldptransform, else ~/.local/state/ldptransform.
+    """
+    env = os.environ.get("LDPT_PRIVATE_DIR")
+    if env:
+        d = Path(env)
+    else:
+        base = os.environ.get("XDG_STATE_HOME") or str(Path.home() / ".local" / "state")
+        d = Path(base) / "ldptransform"
+    d.mkdir(parents=True, exist_ok=True, mode=0o700)
+    return d
+
+
 def _pid_alive(pid: int) -> bool:
     try:
         os.kill(pid, 0)
@@ -317,7 +332,7 @@ class StagedFiles:
         self._items.append((tmp, dest))
         return tmp
 
-    def __enter__(self) -> "StagedFiles":
+    def __enter__(self) -> StagedFiles:
         def _raise(signum: int, frame: Any) -> None:
             again = self.stop_signal is not None
             self.stop_signal = signum

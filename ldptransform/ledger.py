@@ -48,16 +48,18 @@ import os
 import sqlite3
 import stat
 import zlib
+from collections.abc import Mapping
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any, Mapping
+from typing import Any
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
 from .errors import LdptError
+from .io import private_dir
 from .keys import SecretKey, SubjectPRF, check_nonce, shared_access
 
 SCHEMA_VERSION = 2  # 2: subjects and values hashed with the AES-based keyed PRF (1: HMAC-SHA256)
@@ -374,7 +376,7 @@ def _check_sha(v: str, what: str) -> str:
 
 
 def _utc_now() -> str:
-    return datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+    return datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
 
 
 @dataclass
@@ -413,7 +415,7 @@ class Ledger:
     # opening ---------------------------------------------------------------------------
 
     @classmethod
-    def open(cls, path: Path | str, *, create: bool = True) -> "Ledger":
+    def open(cls, path: Path | str, *, create: bool = True) -> Ledger:
         path = Path(path)
         try:
             st = path.stat()
@@ -497,7 +499,7 @@ class Ledger:
     def close(self) -> None:
         self._conn.close()
 
-    def __enter__(self) -> "Ledger":
+    def __enter__(self) -> Ledger:
         return self
 
     def __exit__(self, *exc: object) -> None:
@@ -723,7 +725,7 @@ class Ledger:
             ids_sorted, eps_sorted = ids[order], eps[order]
             row = {"id": rid, "time": meta.time or _utc_now(), "policy_sha256": policy_sha,
                    "extract_sha256": extract_sha, "nonce": nonce, "columns": columns_json,
-                   "subjects_charged": int(len(uniq)),
+                   "subjects_charged": len(uniq),
                    "lifetime_epsilon": None if lifetime_epsilon is None else float(lifetime_epsilon),
                    "state_sha256": _state_digest(arrays)}
             row_hash = _row_hash(row, head, _spend_digest(ids_sorted, eps_sorted))
@@ -864,7 +866,7 @@ class Ledger:
         out: dict[str, Any] = {
             "ledger": str(self.path), "schema_version": SCHEMA_VERSION, "releases": len(rel), "head": head,
             "eps_per_row_summed_over_releases": eps_sum, "release_list": releases,
-            "subjects": int(len(totals)), "steward_only": SPEND_NOTE,
+            "subjects": len(totals), "steward_only": SPEND_NOTE,
         }
         if len(totals):
             qs = [0.0, 0.5, 0.9, 0.99, 1.0]
@@ -878,7 +880,55 @@ class Ledger:
         return out
 
 
-def default_ledger_path() -> Path:
-    from .release import private_dir
 
+# -- the charges of a release (the release's pre-pass adds them up) ------------------------
+
+@dataclass
+class LedgerCharges:
+    """What a release charges, from its pre-pass (all steward-only, data-dependent)."""
+
+    subjects: np.ndarray          # distinct subject hashes (S32), sorted
+    eps: np.ndarray               # eps each distinct subject is charged
+    within: np.ndarray            # per distinct subject: stays within lifetime_epsilon
+    row_within: np.ndarray        # per input row: its subject stays within (rows to release)
+    memo: dict[str, tuple[np.ndarray, np.ndarray, np.ndarray]]  # column -> (row index, subject hash, value hash)
+    over_count: int = 0
+    max_overshoot: float = 0.0
+
+    def memo_updates(self) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+        """Memo state of the released rows only (held-back subjects keep their old state)."""
+        out = {}
+        for col, (rows, sh, vh) in self.memo.items():
+            keep = self.row_within[rows]
+            out[col] = (sh[keep], vh[keep])
+        return out
+
+
+def _concat_memo(parts: list[tuple[np.ndarray, np.ndarray, np.ndarray]]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    return tuple(np.concatenate([pt[i] for pt in parts]) if parts else np.zeros(0, dtype=dt)  # type: ignore[return-value]
+                 for i, dt in enumerate((np.int64, "S32", "S32")))
+
+
+def charges_of(hashes: list[np.ndarray], eps: list[np.ndarray],
+               memo: Mapping[str, list[tuple[np.ndarray, np.ndarray, np.ndarray]]], ledger: Any | None,
+               cap: float | None) -> LedgerCharges:
+    """A release's charges from its rows' subject hashes and eps (in batches, input order): one
+    charge per distinct subject (the sum of its rows), checked against ``cap`` with what the
+    ``ledger`` (None: none yet) says each subject has spent; ``memo``: per memoized column, the
+    (row index, subject hash, value hash) batches of the rows whose state the release sets."""
+    all_h = np.concatenate(hashes) if hashes else np.zeros(0, dtype="S32")
+    all_e = np.concatenate(eps) if eps else np.zeros(0)
+    uniq, inv = np.unique(all_h, return_inverse=True)
+    inv = inv.reshape(-1)
+    eps_u = np.bincount(inv, weights=all_e, minlength=len(uniq))
+    if cap is not None:
+        spent = ledger.spent(uniq) if ledger is not None else np.zeros(len(uniq))
+        over, overshoot, within = Ledger._plan(spent, eps_u, cap)
+    else:
+        within, over, overshoot = np.ones(len(uniq), dtype=bool), 0, 0.0
+    return LedgerCharges(uniq, eps_u, within, within[inv], {c: _concat_memo(parts) for c, parts in memo.items()},
+                         over, max(overshoot, 0.0))
+
+
+def default_ledger_path() -> Path:
     return private_dir() / DEFAULT_NAME

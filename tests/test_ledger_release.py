@@ -414,7 +414,7 @@ def test_a_stop_signal_after_the_ledger_commit_still_publishes(tmp_path: Path,
     import os
     import signal
 
-    import ldptransform.release as rel
+    import ldptransform.release.run as rel
 
     orig = rel._record
 

@@ -26,13 +26,13 @@ import pandas as pd
 import pytest
 import yaml
 
-import ldptransform.release as release_mod
+import ldptransform.release.kernel as release_mod
 from conftest import assert_user_error, listing, partials, write_fixed_key
 from ldptransform import mechanisms as mech
 from ldptransform.estimate import estimate
 from ldptransform.keys import KeyedStream, SecretKey
 from ldptransform.policy import load_policy
-from ldptransform.release import privatize
+from ldptransform.release import DEFAULT_BATCH_ROWS, privatize
 from ldptransform.validate import validate
 
 KEY = SecretKey(bytes(range(60, 92)))   # fixed key: the statistical checks cannot flake
@@ -422,7 +422,7 @@ def test_slicing_does_not_change_the_extract(fmt: str, tmp_path: Path, data: pd.
     raw = write_raw(df, tmp_path / "raw.parquet")
     lp = load_policy(write_policy(tmp_path / "policy.yaml", SLICED))
 
-    def run(tag: str, batch_rows: int = release_mod.DEFAULT_BATCH_ROWS) -> str:  # the extract's sha256
+    def run(tag: str, batch_rows: int = DEFAULT_BATCH_ROWS) -> str:  # the extract's sha256
         res = privatize(raw, lp, KEY, tmp_path / f"{tag}.{fmt}", nonce=NONCE, batch_rows=batch_rows)
         return res.manifest.extract.sha256
 

@@ -1,0 +1,162 @@
+"""The release's side of the privacy ledger: the pre-pass that works out what this release
+charges each subject (before anything is written), the refusal of a release over the
+lifetime budget, and the record of the staged release in the ledger."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, replace
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from ..errors import UsageError
+from ..keys import SecretKey
+from ..ledger import (
+    BudgetExhaustedError,
+    Ledger,
+    LedgerCharges,
+    ReleaseMeta,
+    charges_of,
+    memo_value_hashes,
+    subject_hashes,
+)
+from ..manifest import Manifest
+from ..policy import LoadedPolicy
+from .columns import ColumnDiagnostics, ColumnPlan
+from .encode import encode
+from .kernel import ColumnSampler
+from .memo import memo_context, memo_round, subject_bytes, subject_text
+from .options import ReleaseOptions
+
+
+@dataclass
+class _PrePass:
+    """The state of the pre-pass over the subject column and the memoized columns."""
+
+    subject: str
+    memo_plans: list[ColumnPlan]
+    contexts: dict[str, bytes]
+    key: SecretKey
+    base: float
+    sampler: ColumnSampler | None
+    ledger: Any | None
+
+    def batch(self, batch: Any, row0: int) -> tuple[np.ndarray, np.ndarray, dict[str, tuple]]:
+        """(subject hashes, eps per row, memoized column -> (rows, subject hashes, value hashes))."""
+        n = batch.num_rows
+        col = batch.column(self.subject)
+        sh = subject_hashes(self.key, subject_text(col, self.subject, row0))
+        eps = np.full(n, float(self.base))
+        reported = self.sampler.reported(row0, n) if self.sampler is not None else None
+        subjects = subject_bytes(col, self.subject, row0) if self.memo_plans else None
+        where = (self.ledger.positions(sh) if self.ledger is not None and self.memo_plans and reported is None
+                 else None)
+        memo = {}
+        for p in self.memo_plans:
+            vh = memo_value_hashes(self.key, p.rc.name, self.contexts[p.rc.name], sh,
+                                   self._codes(p, batch.column(p.rc.name), row0, subjects))
+            rows = np.arange(row0, row0 + n, dtype=np.int64)
+            if reported is not None:  # sample: the state is the last value a row *reported*
+                rep = reported[:, p.sample_index]
+                memo[p.rc.name] = (rows[rep], sh[rep], vh[rep])
+                continue
+            last = (self.ledger.last_values(p.rc.name, sh, where) if self.ledger is not None
+                    else np.zeros(n, dtype=sh.dtype))
+            eps += np.where(vh != last, p.rc.mechanism.epsilon, 0.0)
+            memo[p.rc.name] = (rows, sh, vh)
+        return sh, eps, memo
+
+    @staticmethod
+    def _codes(p: ColumnPlan, values: Any, row0: int, subjects: Any) -> np.ndarray:
+        if p.rc.type == "numeric":
+            assert subjects is not None
+            return memo_round(p, encode(values, p, row0), subjects)[1]
+        return encode(values, p, row0)
+
+
+def ledger_prepass(src: Any, plans: list[ColumnPlan], policy: LoadedPolicy, key: SecretKey,
+                   batch_rows: int, sampler: ColumnSampler | None, ledger: Any | None,
+                   cap: float | None) -> LedgerCharges:
+    """Read only the subject column and the memoized columns, in batches, and work out each
+    subject's charge for this release.  Under split a row costs the eps of its non-memoized
+    privatized columns, plus each memoized column's eps when the (subject, value) hash differs from
+    the ledger's last recorded one for that column (first release: charged).  Under sample a row
+    costs epsilon_per_row_used, memoized or not (simple and conservative).  Rows of one subject add
+    up.  ``ledger`` None: no ledger yet (nothing spent, no last values).  Nothing is written."""
+    subject = policy.policy.subject_key
+    assert subject is not None
+    memo_plans = [replace(p, diag=ColumnDiagnostics()) for p in plans if p.memo is not None]  # no double counts
+    priv = [p for p in plans if p.rc.mechanism is not None]
+    base = policy.epsilon_total if sampler is not None else sum(p.rc.mechanism.epsilon for p in priv
+                                                                if p.memo is None)
+    pre = _PrePass(subject, memo_plans, {p.rc.name: memo_context(p.rc) for p in memo_plans}, key, base, sampler,
+                   ledger)
+    hashes, charges, memo = [], [], []
+    row0 = 0
+    for batch in src.batches([subject] + [p.rc.name for p in memo_plans], batch_rows):
+        sh, eps, m = pre.batch(batch, row0)
+        hashes.append(sh)
+        charges.append(eps)
+        memo.append(m)
+        row0 += batch.num_rows
+    return charges_of(hashes, charges, {p.rc.name: [m[p.rc.name] for m in memo] for p in memo_plans}, ledger, cap)
+
+
+def precharge(src: Any, plans: list[ColumnPlan], policy: LoadedPolicy, key: SecretKey, sampler: ColumnSampler | None,
+              opts: ReleaseOptions) -> LedgerCharges | None:
+    """With a ledger: the charges of this release, refused over the lifetime budget (unless
+    ``allow_partial``); None without a ledger.  The ledger is only read (nothing is created)."""
+    if opts.ledger_path is None:
+        return None
+    led = Ledger.open(opts.ledger_path, create=False) if opts.ledger_path.exists() else None  # creates nothing
+    try:
+        if led is not None:
+            led.check_key(key.fingerprint())
+        charges = ledger_prepass(src, plans, policy, key, opts.batch_rows, sampler, led, opts.lifetime_epsilon)
+    finally:
+        if led is not None:
+            led.close()
+    _refuse_over_budget(charges, opts)
+    return charges
+
+
+def _refuse_over_budget(charges: LedgerCharges, opts: ReleaseOptions) -> None:
+    cap = opts.lifetime_epsilon
+    if charges.over_count and not opts.allow_partial:
+        raise BudgetExhaustedError(
+            f"this release would take {charges.over_count} subject(s) past the lifetime budget "
+            f"(budget.lifetime_epsilon = {cap:g} in ledger {opts.ledger_path}), by up to "
+            f"{charges.max_overshoot:.6g}; nothing was written. Run with --allow-partial to release only the "
+            "subjects still within the budget, lower the release's eps, or (after review) raise the lifetime "
+            "budget.")
+    if not charges.within.any():
+        raise BudgetExhaustedError(
+            f"every subject of this release is past the lifetime budget (budget.lifetime_epsilon = {cap:g} in "
+            f"ledger {opts.ledger_path}); nothing was written, as there is nothing left to release.")
+
+
+def rows_to_keep(charges: LedgerCharges | None, opts: ReleaseOptions) -> np.ndarray | None:
+    """--allow-partial: the input rows to release (None: all of them)."""
+    if charges is None or charges.within.all():
+        return None
+    if opts.dataset_out:
+        raise UsageError(
+            f"--allow-partial would hold back {int((~charges.within).sum())} subject(s) (steward-only figure), "
+            "and a dataset extract would show how many rows each part lost: every part covers a known range "
+            "of input rows. Write a single-file extract instead (--out FILE.parquet), or release without "
+            "--allow-partial once everyone is within the budget; nothing was written.")
+    return charges.row_within
+
+
+def record_release(ledger_path: Path, charges: LedgerCharges, plans: list[ColumnPlan], manifest: Manifest,
+                   cap: float | None) -> int:
+    """Record the staged release in the ledger (one transaction; the cap re-checked under its lock)."""
+    meta = ReleaseMeta(policy_sha256=manifest.policy_sha256, extract_sha256=manifest.extract.sha256,
+                       nonce=manifest.nonce,
+                       columns={p.rc.name: {"eps": float(p.rc.mechanism.epsilon), "memoized": bool(p.rc.memoize)}
+                                for p in plans if p.rc.mechanism is not None})
+    with Ledger.open(ledger_path, create=True) as led:
+        return led.record_release(meta, charges.subjects[charges.within], charges.eps[charges.within],
+                                  charges.memo_updates(), lifetime_epsilon=cap,
+                                  key_fingerprint=manifest.key_fingerprint)

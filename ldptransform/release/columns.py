@@ -1,0 +1,144 @@
+"""Column setup: which input columns a release reads and how each is released (``ColumnPlan``),
+the extract's schema, the keyed streams of each column, and the manifest's column entries."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import pyarrow as pa
+
+from ..errors import DataError, PolicyError
+from ..keys import SecretKey
+from ..manifest import ColumnEntry, OutputColumn
+from ..policy import LoadedPolicy, ResolvedColumn
+from ..random.bits import KeyedStream, SubjectPRF
+from .kernel import ColumnSampler
+from .memo import memo_note, memo_streams
+
+# -- per-column statistics kept for the steward only ------------------------------------
+
+@dataclass
+class ColumnDiagnostics:
+    missing: int = 0
+    filled: int = 0
+    unknown_as_other: int = 0
+    missing_as_category: int = 0
+    clipped_low: int = 0
+    clipped_high: int = 0
+
+    def as_dict(self) -> dict[str, int]:
+        return {k: v for k, v in self.__dict__.items()}
+
+
+@dataclass
+class ColumnPlan:
+    rc: ResolvedColumn
+    fields: list[pa.Field]
+    stream: KeyedStream | None = None
+    draw_stream: KeyedStream | None = None  # mechanisms with a variable number of draws per row (rejection samplers)
+    diag: ColumnDiagnostics = field(default_factory=ColumnDiagnostics)
+    sample_index: int | None = None  # strategy sample: this column's position among the d privatized columns
+    reported: int = 0                # strategy sample: cells reported so far (private diagnostics only)
+    memo: SubjectPRF | None = None         # memoize: words keyed by (subject, value code), not (nonce, row)
+    memo_offset: SubjectPRF | None = None  # memoize on a numeric column: per-subject offset of the coarse rounding
+
+
+
+# -- planning -----------------------------------------------------------------------------
+
+def plan_columns(policy: LoadedPolicy, input_columns: list[str], source: str) -> list[ColumnPlan]:
+    by_name = policy.by_name
+    subject = policy.policy.subject_key
+    if subject is not None and subject not in input_columns:
+        raise DataError(f"policy {policy.source}, field 'subject_key': column {subject!r} is not a column of input "
+                        f"{source} (its columns: {', '.join(map(repr, input_columns))}). Name the input column that "
+                        "identifies a person, or remove subject_key and memoize from the policy.")
+    absent = [n for n in by_name if n not in input_columns]
+    if absent:
+        raise DataError(f"the policy names column(s) {', '.join(map(repr, absent))} that input {source} does not have "
+                        f"(its columns: {', '.join(map(repr, input_columns))}). Fix the names in the policy or "
+                        "remove those entries.")
+    unlisted = [n for n in input_columns if n not in by_name and n != subject]  # the subject: never released
+    if unlisted and policy.policy.unlisted == "error":
+        raise DataError(f"input {source} has column(s) {', '.join(map(repr, unlisted))} that the policy does not "
+                        "name. Add each one to the policy (type: drop to leave it out), or set unlisted: drop.")
+    plans: list[ColumnPlan] = []
+    for name in input_columns:
+        rc = by_name.get(name)
+        if rc is None or rc.type == "drop" or name == subject:
+            continue
+        if rc.type == "public":
+            plans.append(ColumnPlan(rc, []))  # fields filled from the input schema
+        else:
+            assert rc.mechanism is not None
+            plans.append(ColumnPlan(rc, rc.mechanism.output_fields(name)))
+    if not plans:
+        raise PolicyError(f"policy {policy.source}: every column is dropped; there is nothing to release.")
+    return plans
+
+
+def output_schema(plans: list[ColumnPlan], input_schema: pa.Schema, fmt_in: str) -> pa.Schema:
+    fields: list[pa.Field] = []
+    for p in plans:
+        if p.rc.type == "public":
+            t = pa.string() if fmt_in == "csv" else input_schema.field(p.rc.name).type
+            p.fields = [pa.field(p.rc.name, t)]
+        fields.extend(p.fields)
+    names = [f.name for f in fields]
+    clash = sorted({n for n in names if names.count(n) > 1})
+    if clash:
+        raise DataError(f"output column name(s) {', '.join(map(repr, clash))} would be written twice (an input "
+                        "column has the same name as a column another mechanism adds, such as NAME__hash). "
+                        "Rename the input column.")
+    return pa.schema(fields)
+
+def attach_randomness(plans: list[ColumnPlan], policy: LoadedPolicy, key: SecretKey,
+                      nonce: str) -> ColumnSampler | None:
+    """Give every privatized column its keyed streams (row words; a rejection sampler's draws;
+    a memoized column's per-subject words); under strategy sample, the column sampler."""
+    for p in plans:
+        if p.rc.mechanism is not None:
+            p.stream = KeyedStream(key, nonce, "column", p.rc.name)
+            if p.rc.mechanism.variable_draws:
+                p.draw_stream = KeyedStream(key, nonce, "column-draws", p.rc.name)
+            if p.rc.memoize:
+                p.memo, p.memo_offset = memo_streams(key, p.rc)
+    if policy.strategy != "sample":
+        return None
+    order = policy.policy.privatized_columns  # policy order: the choice never depends on the input's layout
+    sampler = ColumnSampler(KeyedStream(key, nonce, "sampling"), len(order), policy.policy.reported_columns)
+    for p in plans:
+        if p.rc.mechanism is not None:
+            p.sample_index = order.index(p.rc.name)
+    return sampler
+
+
+def read_columns(plans: list[ColumnPlan], policy: LoadedPolicy) -> tuple[list[str], str | None]:
+    """The input columns a release reads, and the subject column (only with memoized columns)."""
+    read_cols = [p.rc.name for p in plans]
+    subject_key = policy.policy.subject_key if any(p.memo is not None for p in plans) else None
+    if subject_key is not None:
+        read_cols.append(subject_key)
+    return read_cols, subject_key
+
+
+def column_entries(plans: list[ColumnPlan], report_rate: float = 1.0) -> list[ColumnEntry]:
+    out = []
+    for p in plans:
+        rc = p.rc
+        if rc.type == "public":
+            out.append(ColumnEntry(name=rc.name, type="public", outputs=[OutputColumn(
+                name=rc.name, dtype=str(p.fields[0].type), meaning="copied from the input as is: NOT privatized")],
+                note="released in the clear; local differential privacy does not protect this column"))
+            continue
+        m = rc.mechanism
+        assert m is not None
+        outs = [OutputColumn(name=f.name, dtype=str(f.type), meaning=m.output_meaning(f.name))
+                for f in p.fields]
+        cfg = rc.config
+        out.append(ColumnEntry(
+            name=rc.name, type=rc.type, mechanism=m.to_spec(), chosen_because=rc.chosen_because,
+            labels=list(rc.labels) if rc.labels else None,
+            bins=[float(b) for b in cfg.bins] if rc.type == "binned" else None,
+            outputs=outs, report_rate=report_rate, note=memo_note(rc) if rc.memoize else None))
+    return out

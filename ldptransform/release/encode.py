@@ -1,0 +1,159 @@
+"""Encoding: raw input cells -> the integer codes or numbers a column's mechanism randomizes,
+with missing, unknown and out-of-bounds values handled as the policy says (counted in the
+column's steward-only diagnostics; a refused value is a ``DataError`` naming the rows)."""
+
+from __future__ import annotations
+
+from typing import TYPE_CHECKING
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from ..errors import DataError
+from ..policy import NumericColumn
+
+if TYPE_CHECKING:
+    from .columns import ColumnPlan
+
+_NUMBER = r"^\s*[-+]?((\d+(\.\d*)?)|(\.\d+))([eE][-+]?\d+)?\s*$"
+
+
+def _rows_text(mask: np.ndarray, row0: int) -> str:
+    idx = np.flatnonzero(mask)
+    first = int(idx[0]) + row0 + 1
+    return f"{idx.size} value(s) in this batch, the first at data row {first}"
+
+
+def _as_string_array(values: pa.Array) -> pa.Array:
+    if isinstance(values, pa.ChunkedArray):
+        values = values.combine_chunks()
+    if pa.types.is_dictionary(values.type):
+        values = values.dictionary_decode()
+    if pa.types.is_string(values.type) or pa.types.is_large_string(values.type):
+        return values
+    return pc.cast(values, pa.string())
+
+
+def _label_codes(strings: pa.Array, labels: list[str]) -> tuple[np.ndarray, np.ndarray]:
+    """(codes, missing) of text values: trimmed, then looked up among the labels (-1: unknown)."""
+    if pa.types.is_string(strings.type) or pa.types.is_large_string(strings.type):
+        strings = pc.utf8_trim_whitespace(strings)
+    missing = np.asarray(pc.is_null(strings).to_numpy(zero_copy_only=False))
+    codes_arr = pc.index_in(strings, value_set=pa.array(labels, pa.string()))
+    codes = np.asarray(pc.fill_null(codes_arr, -1).to_numpy(zero_copy_only=False)).astype(np.int64)
+    return codes, missing
+
+
+def encode_categorical(values: pa.Array, plan: ColumnPlan, row0: int) -> np.ndarray:
+    """Policy labels -> integer codes; missing/unknown handled as the policy says."""
+    rc = plan.rc
+    name = rc.name
+    if rc.type == "binned":
+        raise AssertionError("binned columns use encode_binned")
+    if isinstance(values, pa.ChunkedArray):
+        values = values.combine_chunks()
+    if pa.types.is_dictionary(values.type):
+        # look up each distinct value once, then index by the row's dictionary index (same codes)
+        d_codes, d_missing = _label_codes(_as_string_array(values.dictionary), rc.labels)
+        idx = pc.fill_null(values.indices, 0).to_numpy(zero_copy_only=False).astype(np.int64)
+        row_null = np.asarray(values.is_null().to_numpy(zero_copy_only=False))
+        if len(d_codes):
+            codes, missing = d_codes[idx], d_missing[idx] | row_null
+        else:  # an empty dictionary: every row is missing
+            codes, missing = np.full(len(values), -1, dtype=np.int64), row_null
+    else:
+        codes, missing = _label_codes(_as_string_array(values), rc.labels)
+    codes = codes.copy()
+    unknown = (codes < 0) & ~missing
+    if missing.any():
+        plan.diag.missing += int(missing.sum())
+        if rc.missing_code is None:
+            raise DataError(f"column {name!r} has missing values ({_rows_text(missing, row0)}) and the policy says "
+                            f"missing: error. Fill them in the input, or set missing: as-category for {name!r} to "
+                            "randomize 'missing' like any other answer.")
+        codes[missing] = rc.missing_code
+        plan.diag.missing_as_category += int(missing.sum())
+    if unknown.any():
+        if rc.other_code is None:
+            raise DataError(f"column {name!r} has values that are not among its declared categories "
+                            f"({_rows_text(unknown, row0)}). Add them to the policy's categories, or set "
+                            f"unknown: as-category to release them as {'<other>'!r}.")
+        codes[unknown] = rc.other_code
+        plan.diag.unknown_as_other += int(unknown.sum())
+    return codes
+
+
+def _to_float(values: pa.Array, name: str, row0: int) -> tuple[np.ndarray, np.ndarray]:
+    """Column -> (float64 values, missing mask).  Text that is not a number is an error."""
+    if isinstance(values, pa.ChunkedArray):
+        values = values.combine_chunks()
+    if pa.types.is_dictionary(values.type):
+        values = values.dictionary_decode()
+    t = values.type
+    if pa.types.is_string(t) or pa.types.is_large_string(t):
+        missing = np.asarray(pc.is_null(values).to_numpy(zero_copy_only=False))
+        ok = pc.fill_null(pc.match_substring_regex(values, _NUMBER), True)
+        ok_np = np.asarray(ok.to_numpy(zero_copy_only=False))
+        if not ok_np.all():
+            raise DataError(f"column {name!r} is numeric in the policy but holds text that is not a number "
+                            f"({_rows_text(~ok_np, row0)}). Clean the column (plain numbers such as 1234.5, no "
+                            "thousands separators or units), or mark such cells empty to treat them as missing.")
+        x = pc.cast(pc.utf8_trim_whitespace(values), pa.float64())
+    elif pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t) or pa.types.is_boolean(t):
+        x = pc.cast(values, pa.float64())
+        missing = np.asarray(pc.is_null(x).to_numpy(zero_copy_only=False))
+    else:
+        raise DataError(f"column {name!r} is numeric in the policy but the input stores it as {t}. Convert it to "
+                        "numbers, or change the column's type in the policy.")
+    arr = np.array(pc.fill_null(x, np.nan).to_numpy(zero_copy_only=False), dtype=np.float64)
+    missing = missing | np.isnan(arr)
+    inf = np.isinf(arr)
+    if inf.any():
+        raise DataError(f"column {name!r} holds infinite values ({_rows_text(inf, row0)}). Replace them with "
+                        "numbers within the bounds, or leave the cells empty to treat them as missing.")
+    return arr, missing
+
+
+def encode_numeric(values: pa.Array, plan: ColumnPlan, row0: int) -> np.ndarray:
+    rc = plan.rc
+    col: NumericColumn = rc.config
+    name = rc.name
+    x, missing = _to_float(values, name, row0)
+    if missing.any():
+        plan.diag.missing += int(missing.sum())
+        if col.missing == "error":
+            raise DataError(f"column {name!r} has missing values ({_rows_text(missing, row0)}) and the policy says "
+                            f"missing: error. Fill them in the input, or set missing: {{fill: VALUE}} for {name!r} "
+                            "(a value within the bounds).")
+        x[missing] = col.missing.fill
+        plan.diag.filled += int(missing.sum())
+    lo, hi = col.domain
+    low, high = x < lo, x > hi
+    if low.any() or high.any():
+        if col.out_of_bounds == "error":
+            bad = low | high
+            raise DataError(f"column {name!r} has values outside its bounds [{lo:g}, {hi:g}] "
+                            f"({_rows_text(bad, row0)}) and the policy says out_of_bounds: error. Widen the bounds "
+                            "or set out_of_bounds: clip.")
+        plan.diag.clipped_low += int(low.sum())
+        plan.diag.clipped_high += int(high.sum())
+        x = np.clip(x, lo, hi)
+    return x
+
+
+def encode_binned(values: pa.Array, plan: ColumnPlan, row0: int) -> np.ndarray:
+    col: NumericColumn = plan.rc.config
+    x = encode_numeric(values, plan, row0)
+    edges = np.asarray(col.bins, dtype=float)
+    codes = np.searchsorted(edges, x, side="right") - 1
+    return np.clip(codes, 0, len(edges) - 2).astype(np.int64)
+
+
+def encode(values: pa.Array, plan: ColumnPlan, row0: int) -> np.ndarray:
+    """A privatized column's values as its mechanism takes them (codes, bin indices or numbers)."""
+    if plan.rc.type == "categorical":
+        return encode_categorical(values, plan, row0)
+    if plan.rc.type == "binned":
+        return encode_binned(values, plan, row0)
+    return encode_numeric(values, plan, row0)

@@ -1,0 +1,141 @@
+"""The pure batch kernel: (raw batch, global row offset, column plans) -> privatized batch.
+
+Row ``r`` of column ``c`` always draws the PRF words for (key, nonce, c, r) (a memoized
+column: for (subject, value)), so the extract does not depend on the batch size.
+
+Under ``budget.strategy: sample`` row ``r`` also draws one word per privatized column from
+the stream (key, nonce, "sampling"); the m columns with the smallest words are reported
+and the other cells are left empty (null).  The choice depends only on the key, the nonce,
+the row index and the policy (never on the data); every column still draws its own words
+for every row, so nothing else changes with the choice or the batch size.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import TYPE_CHECKING
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from ..random.bits import BitSource, KeyedStream
+from ..random.variates import choose_m_of_d
+from .encode import encode
+from .memo import memo_round, subject_bytes
+
+if TYPE_CHECKING:
+    from .columns import ColumnPlan
+
+MAX_WORDS_PER_CALL = 1 << 22  # 32 MiB of PRF words per randomize call, whatever the report width
+
+Subjects = tuple[np.ndarray, np.ndarray]  # a batch's subject column: (UTF-8 bytes, n + 1 offsets)
+
+
+@dataclass
+class ColumnSampler:
+    """strategy sample: which m of its d privatized columns each row reports.
+
+    One PRF word per (row, column) from ``stream``; a row reports the m columns with the
+    smallest words (``variates.choose_m_of_d``: a uniform m-subset).  Columns are numbered in
+    policy order, so the choice does not depend on the input.
+    """
+
+    stream: KeyedStream
+    d: int
+    m: int
+
+    def reported(self, row0: int, n: int) -> np.ndarray:
+        """Boolean matrix (n, d): True where row row0+i reports privatized column j."""
+        return choose_m_of_d(self.stream.words(row0, n, self.d), self.m)
+
+
+def blank_unreported(arr: pa.Array, reported: np.ndarray) -> pa.Array:
+    """``arr`` with the cells of unreported rows null.  Built from the reported values only
+    (filter, then take with null indices), so no buffer of the result holds anything of an
+    unreported cell's randomized value, whatever the array type: at most a copy of a value
+    that another row reports."""
+    if isinstance(arr, pa.ChunkedArray):
+        arr = arr.combine_chunks()
+    kept = arr.filter(pa.array(reported))
+    idx = np.maximum(np.cumsum(reported, dtype=np.int64) - 1, 0)
+    return pc.take(kept, pa.array(idx, mask=~reported))
+
+
+def privatize_batch(batch: pa.RecordBatch, row0: int, plans: list[ColumnPlan], schema: pa.Schema,
+                    sampler: ColumnSampler | None = None, subject_key: str | None = None) -> pa.RecordBatch:
+    """The pure batch kernel: raw batch rows [row0, row0+n) -> privatized batch."""
+    n = batch.num_rows
+    arrays: list[pa.Array] = []
+    reported = sampler.reported(row0, n) if sampler is not None else None
+    subjects = subject_bytes(batch.column(subject_key), subject_key, row0) if subject_key is not None else None
+    for p in plans:
+        values = batch.column(p.rc.name)
+        if p.rc.type == "public":
+            arrays.append(values if values.type == p.fields[0].type else pc.cast(values, p.fields[0].type))
+            continue
+        out = privatize_column(p, values, row0, subjects)
+        if reported is None:
+            arrays.extend(out)
+        else:
+            assert p.sample_index is not None
+            rep = reported[:, p.sample_index]
+            p.reported += int(rep.sum())
+            arrays.extend(blank_unreported(a, rep) for a in out)
+    return pa.RecordBatch.from_arrays(arrays, schema=schema)
+
+
+def privatize_column(p: ColumnPlan, values: pa.Array, row0: int, subjects: Subjects | None) -> list[pa.Array]:
+    """One privatized column of a batch: encode, (memoized: round to the memo grid), randomize."""
+    x = encode(values, p, row0)
+    assert p.rc.mechanism is not None and p.stream is not None
+    if p.memo is None:
+        return randomize_rows(p, x, row0)
+    assert subjects is not None, "memoized column without subject_key"
+    if p.rc.type == "numeric":
+        x, codes = memo_round(p, x, subjects)
+    else:
+        codes = x
+    return randomize_rows(p, x, row0, subjects, codes)
+
+
+def _bits(p: ColumnPlan, row0: int, subjects: Subjects | None, codes: np.ndarray | None) -> BitSource:
+    """Where the column's words come from for this batch: the row-addressed stream, or for a
+    memoized column the stream keyed by (subject, value code)."""
+    if p.memo is None:
+        assert p.stream is not None
+        return p.stream.rows(row0)
+    assert subjects is not None and codes is not None
+    return p.memo.rows(subjects[0], subjects[1], codes)
+
+
+def randomize_rows(p: ColumnPlan, x: np.ndarray, row0: int, subjects: Subjects | None = None,
+                   codes: np.ndarray | None = None) -> list[pa.Array]:
+    """Randomize encoded values ``x`` of global rows row0.. in slices of at most
+    MAX_WORDS_PER_CALL words (wide reports such as subsets of a large domain), so memory does
+    not grow with the report width.  Words are addressed by global row, so slicing cannot
+    change any output.  Mechanisms that draw a variable number of words per row (exact
+    rejection samplers) also get ``draw(rows, j)``: word j of each given row, from a stream of
+    their own.  A memoized column takes its words from ``p.memo`` keyed by (subject, value code)
+    instead (``subjects`` = (bytes, offsets) of the batch's subject column, ``codes`` the value codes)."""
+    m = p.rc.mechanism
+    assert m is not None
+    n, wpr = len(x), m.words_per_row
+    # a report may be wider than its words (a k-character subset string from 1 + m words):
+    # budget a slice by whichever is larger, words in or bytes out (counted in 8-byte words)
+    out_words = -(-m.output_bytes_per_row // 8)
+    step = max(1, MAX_WORDS_PER_CALL // max(wpr, out_words, 1))
+    bits = _bits(p, row0, subjects, codes)
+    parts: list[list[pa.Array]] = []
+    for s in range(0, n, step):
+        e = min(n, s + step)
+        words = bits.take(s, e, wpr)
+        if m.variable_draws:
+            ds, base = p.draw_stream, row0 + s
+            assert ds is not None
+            parts.append(m.randomize_with(x[s:e], words, lambda r, j, ds=ds, base=base: ds.words_at(base + r, j)))
+        else:
+            parts.append(m.randomize(x[s:e], words))
+    if len(parts) == 1:
+        return parts[0]
+    return [pa.concat_arrays([pt[i] for pt in parts]) for i in range(len(parts[0]))]

@@ -1,0 +1,121 @@
+"""Publishing a release: the destinations checked before anything is written, the manifest
+(last to be written, first to be read) and the steward's private diagnostics staged beside the
+extract, and the final move of everything into place (atomic renames, after the ledger record)."""
+
+from __future__ import annotations
+
+import os
+import secrets
+from pathlib import Path
+from typing import Any
+
+from .. import __version__
+from ..errors import OutputError
+from ..io import StagedFiles, check_dataset_destination, check_destination, private_dir
+from ..keys import SecretKey
+from ..ledger import LedgerCharges
+from ..manifest import CAUTIONS, Manifest, Privacy, now_utc
+from ..policy import LoadedPolicy
+from ..random.bits import PRF_VERSION
+from .columns import ColumnPlan, column_entries
+from .memo import memo_composition_text
+from .options import ReleaseOptions
+from .parts import Written
+
+
+def check_destinations(opts: ReleaseOptions) -> Path:
+    """Refuse existing outputs (without ``overwrite``); returns the diagnostics file's path
+    (by default a fresh name in the private folder: re-running a release with the same nonce
+    and file name must not collide)."""
+    if opts.dataset_out:
+        check_dataset_destination(opts.out, opts.overwrite)
+    else:
+        check_destination(opts.out, "output", opts.overwrite)
+    check_destination(opts.manifest_path, "manifest", opts.overwrite)
+    path = opts.diagnostics_path
+    if path is None:
+        path = private_dir() / f"{opts.out.stem}.{opts.nonce[:12]}.{secrets.token_hex(4)}.PRIVATE-diagnostics.json"
+    check_destination(path, "diagnostics file", opts.overwrite)
+    return path
+
+
+def privacy_entry(policy: LoadedPolicy, plans: list[ColumnPlan]) -> Privacy:
+    d, m = len(policy.policy.privatized_columns), policy.policy.reported_columns
+    memo_text = memo_composition_text(policy)
+    common = dict(model="local differential privacy: every row is randomized on its own, column by column",
+                  epsilon_per_row_budget=policy.policy.budget.epsilon_per_row,
+                  public_columns=[p.rc.name for p in plans if p.rc.type == "public"],
+                  strategy=policy.strategy, privatized_columns=d, reported_columns=m)
+    if policy.strategy == "sample":
+        return Privacy(**common, epsilon_per_row_used=policy.epsilon_total,
+                       composition=f"sequential over the columns a row reports: each row reports {m} of its {d} "
+                                   f"privatized columns, each randomized at eps {policy.policy.sampled_epsilon:g} "
+                                   f"(epsilon_per_row / {m}), so a row's epsilon is {m} x that; which columns a row "
+                                   "reports is chosen by the keyed PRF independently of the data (the other cells "
+                                   "are empty); releases about the same people add up" + memo_text)
+    used = sum(p.rc.mechanism.epsilon for p in plans if p.rc.mechanism is not None)
+    return Privacy(**common, epsilon_per_row_used=used,
+                   composition="sequential: a row's epsilon is the sum over its privatized columns; releases about "
+                               "the same people add up" + memo_text)
+
+
+def build_manifest(policy: LoadedPolicy, key: SecretKey, plans: list[ColumnPlan], written: Written,
+                   opts: ReleaseOptions) -> Manifest:
+    return Manifest(
+        tool_version=__version__, created_utc=now_utc(), rows=written.rows, nonce=opts.nonce,
+        key_fingerprint=key.fingerprint(), prf=PRF_VERSION, policy_sha256=policy.policy.sha256(),
+        policy=policy.policy.canonical(), privacy=privacy_entry(policy, plans), extract=written.info,
+        columns=column_entries(plans, policy.report_rate), cautions=list(CAUTIONS))
+
+
+def diagnostics(plans: list[ColumnPlan], written: Written, opts: ReleaseOptions, manifest_path: Path,
+                charges: LedgerCharges | None, sampled: bool, seconds: float) -> dict[str, Any]:
+    """The steward-only diagnostics: data-dependent counts, never for partners."""
+    diag: dict[str, Any] = {
+        "PRIVATE": "steward-only diagnostics: data-dependent counts. Do not give this file to partners.",
+        "extract": str(opts.out), "manifest": str(manifest_path), "nonce": opts.nonce, "rows": written.rows,
+        "input_rows": written.input_rows, "engine": opts.engine,
+        "seconds": round(seconds, 3), "batch_rows": opts.batch_rows, "input": opts.input_text,
+        "columns": {p.rc.name: p.diag.as_dict() for p in plans if p.rc.mechanism is not None},
+    }
+    if sampled:
+        diag["reported_cells"] = {p.rc.name: p.reported for p in plans if p.rc.mechanism is not None}
+    if charges is not None:
+        diag["ledger"] = {
+            "path": str(opts.ledger_path), "lifetime_epsilon": opts.lifetime_epsilon,
+            "subjects_charged": int(charges.within.sum()),
+            "held_back_subjects": int((~charges.within).sum()), "held_back_rows": written.input_rows - written.rows,
+            "eps_charged_max": float(charges.eps[charges.within].max()) if charges.within.any() else 0.0,
+        }
+    return diag
+
+
+def stage_text(staged: StagedFiles, dest: Path, text: str, mode: int = 0o644) -> None:
+    """Stage a small text file (the manifest, the diagnostics) to be moved into place with the extract."""
+    write_text_atomic_into(staged.add(dest), text, mode)
+
+
+def move_into_place(staged: StagedFiles, opts: ReleaseOptions, release_id: int | None) -> None:
+    """Rename every staged file into place.  Once the ledger counts the release (``release_id``),
+    a stop signal no longer cancels it, and a failed move says the release is counted."""
+    try:
+        if opts.overwrite and opts.manifest_path.exists():
+            opts.manifest_path.unlink()  # never leave an old manifest beside a new extract
+        staged.commit(check=release_id is None)
+    except OSError as err:
+        if release_id is None:
+            raise
+        raise OutputError(
+            f"the release was recorded in ledger {opts.ledger_path} as release {release_id}, but its files could "
+            f"not be moved into place ({err.strerror or err}: {err.filename or opts.out}); nothing was published. "
+            "The ledger counts this release for every subject in it (an over-count, the safe side: nobody's spend "
+            "is understated). Fix the output folder and run the release again; tell your privacy officer if "
+            "the extra count matters.") from None
+
+
+def write_text_atomic_into(tmp: Path, text: str, mode: int = 0o644) -> None:
+    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, mode)
+    with os.fdopen(fd, "w", encoding="utf-8") as f:
+        f.write(text)
+        f.flush()
+        os.fsync(f.fileno())

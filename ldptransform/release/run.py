@@ -1,0 +1,116 @@
+"""The release, top to bottom: check the options, open the input, set up the columns, charge
+the ledger (pre-pass), privatize into staged files, write the manifest (last) and the
+steward's diagnostics, record the release in the ledger, move everything into place."""
+
+from __future__ import annotations
+
+import json
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from ..io import StagedFiles
+from ..keys import SecretKey
+from ..ledger import LedgerCharges
+from ..manifest import Manifest
+from ..policy import LoadedPolicy
+from .charges import precharge, record_release, rows_to_keep
+from .columns import (
+    ColumnPlan,
+    attach_randomness,
+    output_schema,
+    plan_columns,
+    read_columns,
+)
+from .options import DEFAULT_BATCH_ROWS, ReleaseOptions
+from .parts import PartJob, write_extract
+from .publish import (
+    build_manifest,
+    check_destinations,
+    diagnostics,
+    move_into_place,
+    stage_text,
+)
+from .source import (
+    check_csv_markers,
+    check_not_the_input,
+    dictionary_columns,
+    open_source,
+    source_location,
+)
+
+
+@dataclass
+class ReleaseResult:
+    manifest: Manifest
+    extract_path: Path
+    manifest_path: Path
+    diagnostics_path: Path
+    seconds: float
+    ledger_path: Path | None = None
+    ledger_release_id: int | None = None
+    held_back_subjects: int = 0  # --allow-partial: data-dependent, steward's stderr and diagnostics only
+    held_back_rows: int = 0
+
+
+def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey, out: Path | str, *,
+              manifest_path: Path | str | None = None, diagnostics_path: Path | str | None = None,
+              batch_rows: int = DEFAULT_BATCH_ROWS, overwrite: bool = False, nonce: str | None = None,
+              on_progress: Callable[[int], None] | None = None, ledger_path: Path | str | None = None,
+              allow_partial: bool = False, engine: str = "local", scheduler: str | None = None,
+              fragment_rows: int | None = None) -> ReleaseResult:
+    """Privatize ``input_path`` under ``policy`` into ``out`` (+ manifest, + private diagnostics).
+
+    With a ledger (``ledger_path``, or the default path when the policy sets
+    budget.lifetime_epsilon) a pre-pass works out each subject's charge before anything is
+    written; over the cap the release is refused, or with ``allow_partial`` only the rows of
+    subjects within it are released.  The release is recorded in the ledger after the extract
+    and manifest are staged and before they are renamed into place: a refused record leaves
+    nothing; a crash between the ledger commit and the rename leaves an over-count (safe side).
+
+    ``input_path`` may be a file, a Parquet dataset (folder or URI; dataset.py) or, through
+    ``engine_dask.privatize_frame``, a dask DataFrame.  An ``out`` without a file extension
+    writes a Parquet dataset of parts of at most ``fragment_rows`` rows; ``engine="dask"``
+    writes those parts on dask workers (``scheduler``: a running cluster's address; None: a
+    local cluster), byte for byte as the local engine does."""
+    t0 = time.perf_counter()
+    opts = ReleaseOptions.of(input_path, policy, out, manifest_path=manifest_path, diagnostics_path=diagnostics_path,
+                             batch_rows=batch_rows, overwrite=overwrite, nonce=nonce, ledger_path=ledger_path,
+                             allow_partial=allow_partial, engine=engine, scheduler=scheduler,
+                             fragment_rows=fragment_rows)
+    src = open_source(opts, policy)
+    check_not_the_input(opts)
+    diag_path = check_destinations(opts)
+    plans = plan_columns(policy, src.column_names, source_location(src, opts))
+    check_csv_markers(policy, src, plans)
+    schema = output_schema(plans, src.schema, src.format)
+    sampler = attach_randomness(plans, policy, key, opts.nonce)
+    read_cols, subject_key = read_columns(plans, policy)
+    job = PartJob(read_cols, opts.batch_rows, plans, schema, sampler, subject_key, dictionary_columns(src, plans))
+    charges = precharge(src, plans, policy, key, sampler, opts)
+    keep = rows_to_keep(charges, opts)
+    with StagedFiles() as staged:
+        written = write_extract(job, src, keep, opts, staged, on_progress)
+        manifest = build_manifest(policy, key, plans, written, opts)
+        stage_text(staged, opts.manifest_path, manifest.to_json())
+        diag = diagnostics(plans, written, opts, opts.manifest_path, charges, sampler is not None,
+                           time.perf_counter() - t0)
+        stage_text(staged, diag_path, json.dumps(diag, indent=2) + "\n", mode=0o600)
+        release_id = _record(staged, charges, plans, manifest, opts)
+        move_into_place(staged, opts, release_id)
+    held = (0, 0) if charges is None else (int((~charges.within).sum()), written.input_rows - written.rows)
+    return ReleaseResult(manifest, opts.out, opts.manifest_path, diag_path, time.perf_counter() - t0,
+                         opts.ledger_path if charges is not None else None, release_id, *held)
+
+
+def _record(staged: StagedFiles, charges: LedgerCharges | None, plans: list[ColumnPlan], manifest: Manifest,
+            opts: ReleaseOptions) -> int | None:
+    """Record the staged release in the ledger (None without one); a stop asked for before
+    the ledger commit leaves nothing at all."""
+    if charges is None:
+        return None
+    staged.check()
+    assert opts.ledger_path is not None
+    return record_release(opts.ledger_path, charges, plans, manifest, opts.lifetime_epsilon)
