@@ -52,8 +52,17 @@ class _DictView(Mapping):
         return len(self.to_dict())
 
 
-def _f(v: Any) -> float | None:
-    return None if v is None else float(v)
+class _Subscript:
+    """``obj["key"]`` and ``obj.get("key")`` read ``to_dict()`` (for code written against dicts)."""
+
+    def to_dict(self) -> dict[str, Any]:  # pragma: no cover - every subclass defines it
+        raise NotImplementedError
+
+    def __getitem__(self, key: str) -> Any:
+        return self.to_dict()[key]
+
+    def get(self, key: str, default: Any = None) -> Any:
+        return self.to_dict().get(key, default)
 
 
 def _interval(est: float | None, se: float | None, lo: float | None, hi: float | None) -> dict[str, Any]:
@@ -80,7 +89,7 @@ def _frame(rows: list[dict[str, Any]], columns: tuple[str, ...] = FRAME_COLUMNS)
 # -- estimate -------------------------------------------------------------------------------
 
 @dataclass(frozen=True)
-class FrequencyResult:
+class FrequencyResult(_Subscript):
     """One value of a categorical (or binned) column: its share of all rows."""
 
     value: str
@@ -98,7 +107,7 @@ class FrequencyResult:
 
 
 @dataclass(frozen=True)
-class MeanResult:
+class MeanResult(_Subscript):
     """A mean with its SE and normal-approximation interval (all None when not estimable)."""
 
     estimate: float | None
@@ -116,7 +125,7 @@ class MeanResult:
 
 
 @dataclass(frozen=True)
-class QuantileResult:
+class QuantileResult(_Subscript):
     q: float
     estimate: float | None
     se: float | None
@@ -130,7 +139,7 @@ class QuantileResult:
 
 
 @dataclass(frozen=True)
-class RangeResult:
+class RangeResult(_Subscript):
     """Share of rows with low <= value < high."""
 
     low: float
@@ -148,7 +157,7 @@ class RangeResult:
 
 
 @dataclass(frozen=True)
-class DistributionResult:
+class DistributionResult(_Subscript):
     """A decoded distribution: histogram, CDF at the edges, quantiles and range shares.
     ``source`` is the ``distribution.Distribution`` behind it (for further questions: cdf,
     quantile_ci, range_ci at other points or levels)."""
@@ -171,7 +180,7 @@ class DistributionResult:
 
 
 @dataclass(frozen=True)
-class ColumnResult:
+class ColumnResult(_Subscript):
     """Everything estimated for one privatized column.  ``family`` says which statistics it
     has: "frequency" (``frequencies``, and ``distribution`` for a binned numeric column),
     "mean" (``mean``) or "distribution" (``distribution`` and its ``mean``)."""
@@ -231,7 +240,7 @@ class CrossTabCell:
 
 
 @dataclass(frozen=True)
-class CrossTabResult:
+class CrossTabResult(_Subscript):
     rows: str
     columns: str
     rows_used: int
@@ -259,7 +268,7 @@ class CrossTabResult:
 
 
 @dataclass(frozen=True)
-class GroupMean:
+class GroupMean(_Subscript):
     group: str
     mean: MeanResult
     share: float | None
@@ -275,7 +284,7 @@ class GroupMean:
 
 
 @dataclass(frozen=True)
-class GroupedMeanResult:
+class GroupedMeanResult(_Subscript):
     column: str
     by: str
     rows_used: int
