@@ -27,9 +27,22 @@ if TYPE_CHECKING:  # pragma: no cover
     from .distribution import Distribution
 
 __all__ = [
-    "FRAME_COLUMNS", "Check", "CalibrationEntry", "CalibrationResult", "ColumnResult", "CrossTabCell",
-    "CrossTabResult", "DistributionResult", "EstimateResult", "FrequencyResult", "GroupMean", "GroupedMeanResult",
-    "MeanResult", "QuantileResult", "RangeResult", "ValidationReport",
+    "FRAME_COLUMNS",
+    "CalibrationEntry",
+    "CalibrationResult",
+    "Check",
+    "ColumnResult",
+    "CrossTabCell",
+    "CrossTabResult",
+    "DistributionResult",
+    "EstimateResult",
+    "FrequencyResult",
+    "GroupMean",
+    "GroupedMeanResult",
+    "MeanResult",
+    "QuantileResult",
+    "RangeResult",
+    "ValidationReport",
 ]
 
 FRAME_COLUMNS = ("column", "type", "mechanism", "epsilon", "statistic", "value", "estimate", "se", "ci_low",
@@ -76,7 +89,7 @@ def _row(column: str, type_: str, mechanism: str | None, epsilon: float | None, 
             "consistent": consistent, "estimand": estimand}
 
 
-def _frame(rows: list[dict[str, Any]], columns: tuple[str, ...] = FRAME_COLUMNS) -> "pd.DataFrame":
+def _frame(rows: list[dict[str, Any]], columns: tuple[str, ...] = FRAME_COLUMNS) -> pd.DataFrame:
     import pandas as pd
 
     frame = pd.DataFrame(rows, columns=list(columns))
@@ -168,7 +181,7 @@ class DistributionResult(_Subscript):
     edges: tuple[float, ...]
     mass: tuple[float, ...]
     cdf: tuple[float, ...]
-    source: "Distribution | None" = field(default=None, compare=False, repr=False)
+    source: Distribution | None = field(default=None, compare=False, repr=False)
 
     def to_dict(self) -> dict[str, Any]:
         d: dict[str, Any] = {"method": self.method, "quantiles": [q.to_dict() for q in self.quantiles]}
@@ -223,7 +236,7 @@ class ColumnResult(_Subscript):
                      for r in self.distribution.ranges]
         return rows
 
-    def to_frame(self) -> "pd.DataFrame":
+    def to_frame(self) -> pd.DataFrame:
         return _frame(self.frame_rows())
 
 
@@ -327,7 +340,7 @@ class EstimateResult(_DictView):
             d["public_columns"] = list(self.public_columns)
         return d
 
-    def to_frame(self) -> "pd.DataFrame":
+    def to_frame(self) -> pd.DataFrame:
         """One row per statistic (columns ``FRAME_COLUMNS``): frequencies, means, quantiles,
         range shares, cross-tab cells, grouped means; ``estimand`` says what each estimates."""
         rows = [r for c in self.columns.values() for r in c.frame_rows()]
@@ -399,7 +412,7 @@ class CalibrationResult(_DictView):
                 "confidence": self.confidence, "max_abs_z": self.max_abs_z, "max_abs_z_at": self.max_abs_z_at,
                 "z_limit": self.z_limit}
 
-    def to_frame(self) -> "pd.DataFrame":
+    def to_frame(self) -> pd.DataFrame:
         import pandas as pd
 
         cols = ("column", "statistic", "value", "truth", "estimate", "se", "ci_low", "ci_high", "inside", "score",
@@ -435,7 +448,7 @@ class ValidationReport(_DictView):
 
     as_dict = to_dict
 
-    def to_frame(self) -> "pd.DataFrame":
+    def to_frame(self) -> pd.DataFrame:
         """One row per check: check, status, ok, detail."""
         import pandas as pd
 

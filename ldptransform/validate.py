@@ -20,15 +20,28 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from . import mechanisms as mech
+from .distribution import Distribution
 from .errors import LdptError
 from .estimate import Analyses, accumulate, report, z_value
 from .io import TableSource, sha256_file
-from .distribution import Distribution
 from .keys import SecretKey
 from .manifest import Manifest, default_manifest_path, load_manifest
-from .results import CalibrationEntry, CalibrationResult, Check, EstimateResult, RangeResult, ValidationReport
 from .policy import EPS_TOLERANCE, parse_policy
-from .release import ColumnPlan, encode_binned, encode_categorical, encode_numeric, plan_columns, privatize
+from .release import (
+    encode_binned,
+    encode_categorical,
+    encode_numeric,
+    plan_columns,
+    privatize,
+)
+from .results import (
+    CalibrationEntry,
+    CalibrationResult,
+    Check,
+    EstimateResult,
+    RangeResult,
+    ValidationReport,
+)
 
 MIN_CALIBRATION_ROWS = 200  # common practice for a normal approximation of these means; no source
 FAMILY_ALPHA = 0.001  # calibration: chance of a false failure over all cells, for a correct release

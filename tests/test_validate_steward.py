@@ -17,14 +17,13 @@ from typing import Any
 import numpy as np
 import pandas as pd
 import pytest
+from conftest import FIXED_KEY_BYTES, write_fixed_key
 from typer.testing import CliRunner
 
 from ldptransform import load_policy, parse_policy, privatize, validate
 from ldptransform.cli import app
 from ldptransform.keys import SecretKey, load_key
 from ldptransform.results import CalibrationResult, Check, ValidationReport
-
-from conftest import FIXED_KEY_BYTES, write_fixed_key
 
 ROOT = Path(__file__).resolve().parent.parent
 POLICIES = sorted((ROOT / "policies").glob("*.y*ml")) + sorted((ROOT / "policies").glob("*.json"))
