@@ -1,0 +1,150 @@
+"""Typed results: estimate() and validate() return frozen dataclasses whose to_dict() is the
+JSON shape and whose to_frame() is one row per statistic, each saying what it estimates."""
+
+from __future__ import annotations
+
+import dataclasses
+import io
+import json
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from conftest import FIXED_KEY_BYTES, write_fixed_key
+from typer.testing import CliRunner
+
+from ldptransform import estimate, parse_policy, privatize, validate
+from ldptransform.cli import app
+from ldptransform.keys import SecretKey
+from ldptransform.results import (FRAME_COLUMNS, ColumnResult, CrossTabResult, DistributionResult, EstimateResult,
+                                  FrequencyResult, GroupedMeanResult, MeanResult, ValidationReport)
+
+KEY = SecretKey(FIXED_KEY_BYTES)
+ROWS = 3000
+POLICY = {
+    "budget": {"epsilon_per_row": 8.0}, "unlisted": "drop",
+    "columns": {
+        "site": {"type": "categorical", "categories": ["a", "b", "c"], "missing": "as-category", "epsilon": 2.0},
+        "pay": {"type": "numeric", "bounds": [0, 100], "missing": {"fill": 50}, "epsilon": 2.0},
+        "years": {"type": "numeric", "bins": [0, 2, 5, 10, 40], "epsilon": 2.0},
+        "hours": {"type": "numeric", "bounds": [0, 60], "epsilon": 2.0, "mechanism": "hierarchy"},
+    },
+}
+
+
+@pytest.fixture(scope="module")
+def release(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
+    d = tmp_path_factory.mktemp("results")
+    rng = np.random.default_rng(3)  # synthetic input data only
+    df = pd.DataFrame({"site": rng.choice(["a", "b", "c", None], ROWS, p=[0.5, 0.3, 0.15, 0.05]),
+                       "pay": np.where(rng.random(ROWS) < 0.05, np.nan, rng.normal(60, 30, ROWS)),
+                       "years": rng.gamma(2.0, 4.0, ROWS), "hours": rng.uniform(10, 50, ROWS)})
+    raw = d / "raw.parquet"
+    df.to_parquet(raw, index=False)
+    out = d / "x.parquet"
+    privatize(raw, parse_policy(POLICY, "results policy"), KEY, out, nonce="7" * 32)
+    return {"raw": raw, "out": out, "dir": d}
+
+
+def _estimate(release: dict[str, Path]) -> EstimateResult:
+    return estimate(release["out"], crosstabs=[("site", "years")], mean_by=[("pay", "site")],
+                    quantiles=[0.25, 0.5], ranges=[("hours", 20.0, 30.0)])
+
+
+def test_estimate_is_typed_and_frozen(release: dict[str, Path]) -> None:
+    res = _estimate(release)
+    assert isinstance(res, EstimateResult)
+    site, pay, years, hours = (res.columns[n] for n in ("site", "pay", "years", "hours"))
+    assert all(isinstance(c, ColumnResult) for c in (site, pay, years, hours))
+    assert (site.family, pay.family, years.family, hours.family) == ("frequency", "mean", "frequency", "distribution")
+    assert [f.value for f in site.frequencies] == ["a", "b", "c", "<missing>"]
+    assert all(isinstance(f, FrequencyResult) for f in site.frequencies)
+    assert isinstance(pay.mean, MeanResult) and pay.mean.se > 0 and pay.distribution is None
+    assert isinstance(years.distribution, DistributionResult) and len(years.distribution.quantiles) == 2
+    assert hours.mean is not None and hours.mean.se is None and [r.low for r in hours.distribution.ranges] == [20.0]
+    assert isinstance(res.crosstabs[0], CrossTabResult) and isinstance(res.grouped_means[0], GroupedMeanResult)
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        res.rows = 1  # type: ignore[misc]
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        pay.mean.estimate = 0.0  # type: ignore[misc]
+
+
+def test_to_dict_is_the_json_shape(release: dict[str, Path]) -> None:
+    res = _estimate(release)
+    d = res.to_dict()
+    assert json.loads(json.dumps(d)) == d
+    assert list(d) == ["rows", "confidence", "columns", "crosstabs", "grouped_means", "se_method"]
+    assert list(d["columns"]["site"]) == ["type", "mechanism", "epsilon", "frequencies", "consistent_method"]
+    assert list(d["columns"]["pay"]) == ["type", "mechanism", "epsilon", "bounds", "mean"]
+    assert list(d["columns"]["years"]) == ["type", "mechanism", "epsilon", "frequencies", "consistent_method",
+                                           "distribution"]
+    assert list(d["columns"]["hours"]) == ["type", "mechanism", "epsilon", "bounds", "mean", "distribution"]
+    assert list(d["columns"]["hours"]["distribution"]) == ["method", "quantiles", "ranges", "histogram", "cdf"]
+    assert set(d["columns"]["site"]["frequencies"][0]) == {"value", "estimate", "se", "ci_low", "ci_high",
+                                                          "count_estimate", "consistent"}
+    assert set(d["crosstabs"][0]) == {"rows", "columns", "rows_used", "cells", "row_shares", "consistent_method"}
+    assert set(d["grouped_means"][0]["groups"][0]) >= {"group", "mean", "share"}
+    # the typed fields and the dict agree, and the dict view reads like the dict
+    assert d["columns"]["pay"]["mean"]["estimate"] == res.columns["pay"].mean.estimate
+    assert res["columns"] == d["columns"] and res.columns["pay"]["mean"] == d["columns"]["pay"]["mean"]
+    assert _estimate(release) == res
+
+
+def test_to_frame_has_one_row_per_statistic_with_its_estimand(release: dict[str, Path]) -> None:
+    res = _estimate(release)
+    f = res.to_frame()
+    assert tuple(f.columns) == FRAME_COLUMNS
+    counts = f.groupby(["column", "statistic"]).size().to_dict()
+    assert counts == {("site", "frequency"): 4, ("pay", "mean"): 1, ("years", "frequency"): 4,
+                      ("years", "quantile"): 2, ("hours", "mean"): 1, ("hours", "quantile"): 2,
+                      ("hours", "range share"): 1, ("site:years", "joint share"): 16,
+                      ("site:years", "share within row"): 16, ("pay:site", "mean"): 4}
+    est = dict(zip(zip(f["column"], f["statistic"], f["value"].fillna("")), f["estimand"]))
+    assert est[("site", "frequency", "a")] == "share of rows with site = a among all rows"
+    assert est[("site", "frequency", "<missing>")] == "share of rows with site missing among all rows"
+    assert est[("pay", "mean", "")] == "mean of pay clipped to [0, 100], missing values counted as 50 among all rows"
+    assert est[("pay:site", "mean", "b")].endswith("among rows with site = b")
+    assert est[("site:years", "share within row", "a|[2, 5)")] == \
+        "share of rows with years = [2, 5) among rows with site = a"
+    assert "from the estimated distribution" in est[("hours", "mean", "")]
+    assert est[("hours", "range share", "20..30")].startswith("share of rows with hours in [20, 30) among all rows")
+    row = f[(f["column"] == "pay") & (f["statistic"] == "mean")].iloc[0]
+    m = res.columns["pay"].mean
+    assert (row["estimate"], row["se"], row["ci_low"], row["ci_high"]) == (m.estimate, m.se, m.ci_low, m.ci_high)
+    assert f["estimate"].dtype == np.float64 and f["se"].dtype == np.float64
+
+
+def test_cli_csv_is_the_frame(release: dict[str, Path]) -> None:
+    res = _estimate(release)
+    r = CliRunner().invoke(app, ["estimate", str(release["out"]), "--format", "csv", "--crosstab", "site:years",
+                                 "--mean-by", "pay:site", "--quantiles", "0.25,0.5", "--range", "hours:20..30"])
+    assert r.exit_code == 0, r.output
+    got = pd.read_csv(io.StringIO(r.stdout), keep_default_na=False)
+    want = res.to_frame()
+    assert list(got.columns) == list(want.columns) and len(got) == len(want)
+    for c in ("estimate", "se", "ci_low", "ci_high", "consistent"):
+        g = pd.to_numeric(got[c].replace("", np.nan))
+        assert np.array_equal(g.to_numpy(float), want[c].to_numpy(float), equal_nan=True), c  # exact: repr floats
+    assert list(got["estimand"]) == list(want["estimand"])
+    js = CliRunner().invoke(app, ["estimate", str(release["out"]), "--format", "json"])
+    assert json.loads(js.stdout) == estimate(release["out"]).to_dict()
+
+
+def test_validation_report_is_typed(release: dict[str, Path], tmp_path: Path) -> None:
+    rep = validate(release["out"], raw=release["raw"], key=KEY)
+    assert isinstance(rep, ValidationReport) and rep.ok
+    d = rep.to_dict()
+    assert list(d) == ["extract", "manifest", "ok", "checks", "calibration"]
+    assert d["checks"] == [{"check": c.name, "status": c.status, "detail": c.detail} for c in rep.checks]
+    assert rep.check("calibration").ok is True and rep.check("no such check") is None
+    frame = rep.to_frame()
+    assert list(frame.columns) == ["check", "status", "ok", "detail"] and len(frame) == len(rep.checks)
+    cal = rep.calibration.to_frame()
+    # 4 + 4 frequencies, 1 mean; years: 3 quantiles and 4 ranges; hours: the same, and its mean (no interval)
+    assert cal.groupby("statistic").size().to_dict() == {"frequency": 8, "mean": 2, "quantile": 6, "range share": 8}
+    assert cal["score"].isna().sum() == 1 and rep.calibration.statistics == 23
+    key = write_fixed_key(tmp_path / "k.key")
+    r = CliRunner().invoke(app, ["validate", str(release["out"]), "--raw", str(release["raw"]), "--key", str(key),
+                                 "--format", "json"])
+    assert r.exit_code == 0 and json.loads(r.stdout)["calibration"] == rep.calibration.to_dict()
