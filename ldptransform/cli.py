@@ -533,7 +533,7 @@ def plan(
 
     with _user_errors():
         lp = load_policy(policy)
-        result = make_plan(lp, rows)
+        result = make_plan(lp, rows).to_dict()
         if suggest:
             result["suggestion"] = make_suggestion(lp, rows)
     if format == TableJson.json:

@@ -254,15 +254,15 @@ def numeric_values(arrays: list[pa.Array]) -> np.ndarray:
 
 
 def is_distribution(m: mech.Mechanism) -> bool:
-    return hasattr(m, "decode") and hasattr(m, "new_stats")
+    return m.family == "distribution"
 
 
 def stats_for(entry: ColumnEntry) -> CategoricalStats | NumericStats | DistributionStats | None:
     if entry.mechanism is None:
         return None
     m = mech.build(entry.mechanism)
-    if isinstance(m, mech.FrequencyOracle):
-        return CategoricalStats(m, joint=entry.type == "binned")
+    if m.family == "frequency":
+        return CategoricalStats(m, joint=entry.type == "binned")  # type: ignore[arg-type]
     if is_distribution(m):
         return DistributionStats(m)
     return NumericStats(m)
@@ -476,7 +476,7 @@ def _check_analyses(manifest: Manifest, an: Analyses) -> None:
         if c is None or c.mechanism is None:
             known = ", ".join(n for n, e in by.items() if e.mechanism is not None)
             raise UsageError(f"{option}: {name!r} is not a privatized column of this extract (privatized: {known}).")
-        family = "categorical" if isinstance(mech.build(c.mechanism), mech.FrequencyOracle) else "numeric"
+        family = "categorical" if mech.build(c.mechanism).family == "frequency" else "numeric"
         if family not in kinds:
             raise UsageError(f"{option}: column {name!r} is {c.type} ({c.mechanism['mechanism']}); this analysis "
                              f"needs a {' or '.join(kinds)} column.")

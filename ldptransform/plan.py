@@ -32,15 +32,27 @@ the same spread term; means: the two-point bound, which two-point attains exactl
 from __future__ import annotations
 
 import math
-from typing import Any
+from collections.abc import Iterator, Mapping
+from dataclasses import dataclass, field, fields
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from . import mechanisms as mech
 from .errors import UsageError
 from .mechanisms import bounds
-from .policy import (CategoricalColumn, LoadedPolicy, NumericColumn, Quality, ResolvedColumn, resolve_column,
-                     sample_size)
+from .policy import (
+    CategoricalColumn,
+    LoadedPolicy,
+    NumericColumn,
+    Quality,
+    ResolvedColumn,
+    resolve_column,
+    sample_size,
+)
+
+if TYPE_CHECKING:  # pragma: no cover
+    import pandas as pd
 
 SIM_ROWS = 20000
 SIM_RELEASES = 24
@@ -50,9 +62,12 @@ MAX_COLUMN_EPS = 50.0
 # -- per-row variances (worst case over data) -----------------------------------------------
 
 def frequency_row_variance(m: mech.Mechanism) -> float:
-    """n * (mean over values of Var of a share) as ``ldpt estimate`` reports it, worst case."""
-    k = m.k
-    return (m.total_variance() + 1.0 - 1.0 / k) / k
+    """n * (mean over values of Var of a share) as ``ldpt estimate`` reports it, worst case
+    (the mechanism's ``frequency_row_variance``)."""
+    v = m.frequency_row_variance()
+    if v is None:
+        raise ValueError(f"mechanism {m.name} does not estimate frequencies")
+    return v
 
 
 def frequency_row_variance_bound(epsilon: float, k: int) -> float:
@@ -60,11 +75,12 @@ def frequency_row_variance_bound(epsilon: float, k: int) -> float:
 
 
 def mean_row_variance(m: mech.Mechanism) -> float:
-    """n * Var of the mean as ``ldpt estimate`` reports it, worst case over data (column units)."""
-    half = (m.hi - m.lo) / 2.0
-    if hasattr(m, "second_moments"):
-        return float(np.max(m.second_moments())) * half * half
-    return float(max(m.variance(m.lo), m.variance(m.hi))) + half * half
+    """n * Var of the mean as ``ldpt estimate`` reports it, worst case over data (column units;
+    the mechanism's ``mean_row_variance``)."""
+    v = m.mean_row_variance()
+    if v is None:
+        raise ValueError(f"mechanism {m.name} gives no predicted SE for a mean")
+    return v
 
 
 def memo_rounding_variance(rc: ResolvedColumn) -> float:
@@ -138,6 +154,125 @@ def simulated_median_se(m: mech.Mechanism, rc: ResolvedColumn, rows: float) -> f
     return float(math.sqrt(bias * bias + np.var(meds_a, ddof=1) * n / rows))
 
 
+# -- typed results ----------------------------------------------------------------------------
+
+class _DictView(Mapping):
+    """Read-only mapping access to ``to_dict()`` (for code written against the dict results)."""
+
+    def to_dict(self) -> dict[str, Any]:  # pragma: no cover - every subclass defines it
+        raise NotImplementedError
+
+    def __getitem__(self, key: str) -> Any:
+        return self.to_dict()[key]
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self.to_dict())
+
+    def __len__(self) -> int:
+        return len(self.to_dict())
+
+
+@dataclass(frozen=True)
+class PlanStatistic(_DictView):
+    """The prediction for one statistic of one column.  Every field the statistic has is set;
+    ``keys`` lists them in the JSON order of ``to_dict()`` (a field not in ``keys`` is absent,
+    which is not the same as a field present with the value None)."""
+
+    statistic: str
+    se: float | None = None
+    relative_se: float | None = None
+    efficiency: float | None = None
+    se_meaning: str | None = None
+    note: str | None = None
+    target_se: float | None = None
+    target_relative_se: float | None = None
+    best_possible_se: float | None = None
+    meets_target: bool | None = None
+    rows_needed: int | None = None
+    rows_needed_best_possible: int | None = None
+    impossible_at_rows: bool | None = None
+    keys_: tuple[str, ...] = ()
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any]) -> "PlanStatistic":
+        known = {f.name for f in fields(cls)} - {"keys_"}
+        unknown = set(d) - known
+        if unknown:
+            raise ValueError(f"unknown plan statistic fields: {', '.join(sorted(unknown))}")
+        return cls(**dict(d), keys_=tuple(d))
+
+    def to_dict(self) -> dict[str, Any]:
+        return {k: getattr(self, k) for k in self.keys_}
+
+
+@dataclass(frozen=True)
+class PlanColumn(_DictView):
+    """One column of a plan: a privatized column with its statistics, or a public column (a note)."""
+
+    name: str
+    type: str
+    mechanism: str | None = None
+    epsilon: float | None = None
+    chosen_because: str | None = None
+    rows_reporting: float | None = None
+    statistics: tuple[PlanStatistic, ...] | None = None
+    note: str | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        if self.statistics is None:
+            return {"name": self.name, "type": self.type, "note": self.note}
+        return {"name": self.name, "type": self.type, "mechanism": self.mechanism, "epsilon": self.epsilon,
+                "chosen_because": self.chosen_because, "rows_reporting": self.rows_reporting,
+                "statistics": [st.to_dict() for st in self.statistics]}
+
+
+PLAN_FRAME_COLUMNS = ("column", "type", "mechanism", "epsilon", "rows_reporting", "statistic", "se", "relative_se",
+                      "target_se", "target_relative_se", "best_possible_se", "meets_target", "rows_needed",
+                      "rows_needed_best_possible", "impossible_at_rows", "efficiency", "se_meaning", "note")
+
+
+@dataclass(frozen=True)
+class PlanResult(_DictView):
+    """What ``plan`` predicts for a policy at ``rows`` table rows."""
+
+    rows: int
+    strategy: str
+    epsilon_per_row: float
+    epsilon_per_row_budget: float
+    report_rate: float
+    columns: tuple[PlanColumn, ...] = field(default_factory=tuple)
+    targets_missed: tuple[str, ...] = ()
+    impossible: tuple[str, ...] = ()
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"rows": self.rows, "strategy": self.strategy, "epsilon_per_row": self.epsilon_per_row,
+                "epsilon_per_row_budget": self.epsilon_per_row_budget, "report_rate": self.report_rate,
+                "columns": [c.to_dict() for c in self.columns], "targets_missed": list(self.targets_missed),
+                "impossible": list(self.impossible)}
+
+    def to_frame(self) -> "pd.DataFrame":
+        """Long table: one row per (column, statistic); a public column is one row with its note."""
+        import pandas as pd
+
+        out = []
+        for c in self.columns:
+            base = {"column": c.name, "type": c.type, "mechanism": c.mechanism, "epsilon": c.epsilon,
+                    "rows_reporting": c.rows_reporting}
+            if c.statistics is None:
+                out.append({**base, "note": c.note})
+                continue
+            for st in c.statistics:
+                d = st.to_dict()
+                out.append({**base, **{k: d.get(k) for k in PLAN_FRAME_COLUMNS[5:]}})
+        frame = pd.DataFrame(out, columns=list(PLAN_FRAME_COLUMNS))
+        for k in ("epsilon", "rows_reporting", "se", "relative_se", "target_se", "target_relative_se",
+                  "best_possible_se", "efficiency"):
+            frame[k] = pd.to_numeric(frame[k], errors="coerce").astype("float64")
+        for k in ("rows_needed", "rows_needed_best_possible"):
+            frame[k] = pd.array(frame[k].tolist(), dtype="Int64")
+        return frame
+
+
 # -- the plan ---------------------------------------------------------------------------------
 
 def needs_of(rc: ResolvedColumn) -> list[str]:
@@ -166,9 +301,14 @@ def _stat(name: str, se: float | None, target: float | None, bound_se: float | N
 
 
 def column_statistics(rc: ResolvedColumn, rows: int, rate: float, default: Quality | None,
-                      simulate: bool = True) -> list[dict[str, Any]]:
+                      simulate: bool = True) -> list[PlanStatistic]:
     """Predicted statistics of one resolved (privatized) column at ``rows`` table rows, of
     which a share ``rate`` report it."""
+    return [PlanStatistic.from_dict(d) for d in _column_statistics(rc, rows, rate, default, simulate)]
+
+
+def _column_statistics(rc: ResolvedColumn, rows: int, rate: float, default: Quality | None,
+                       simulate: bool) -> list[dict[str, Any]]:
     m = rc.mechanism
     assert m is not None
     n = rows * rate
@@ -179,12 +319,12 @@ def column_statistics(rc: ResolvedColumn, rows: int, rate: float, default: Quali
             target = (q.max_se if q is not None and q.max_se is not None
                       else default.max_se if default is not None else None)
             v = frequency_row_variance(m)
-            vb = frequency_row_variance_bound(m.epsilon, m.k)
+            vb = frequency_row_variance_bound(m.epsilon, m.k)  # type: ignore[attr-defined]
             out.append(_stat("frequencies", math.sqrt(v / n) if n > 0 else None, target,
                              math.sqrt(vb / n) if n > 0 else None, v, vb, rows, rate,
-                             efficiency=bounds.frequency_lower_bound(m.epsilon, m.k) / m.total_variance(),
+                             efficiency=m.efficiency(),
                              se_meaning="root mean square over values of each share's SE (equal shares: worst case)"))
-        elif need == "mean" and not hasattr(m, "variance"):
+        elif need == "mean" and m.mean_row_variance() is None:
             # a distribution mechanism (needs mean and quantiles): estimate reads the mean off the
             # decoded distribution and gives no SE for it, so there is nothing to predict
             out.append({"statistic": "mean", "se": None, "target_se": None, "best_possible_se": None,
@@ -234,7 +374,7 @@ def column_statistics(rc: ResolvedColumn, rows: int, rate: float, default: Quali
     return out
 
 
-def plan(policy: LoadedPolicy, rows: int, *, simulate: bool = True) -> dict[str, Any]:
+def plan(policy: LoadedPolicy, rows: int, *, simulate: bool = True) -> PlanResult:
     if rows < 1:
         raise UsageError(f"--rows must be a positive number of table rows, got {rows}")
     rate = policy.report_rate
@@ -243,20 +383,15 @@ def plan(policy: LoadedPolicy, rows: int, *, simulate: bool = True) -> dict[str,
     for rc in policy.columns:
         if rc.mechanism is None:
             if rc.type == "public":
-                cols.append({"name": rc.name, "type": "public", "note": "released in the clear: NOT protected"})
+                cols.append(PlanColumn(rc.name, "public", note="released in the clear: NOT protected"))
             continue
-        cols.append({"name": rc.name, "type": rc.type, "mechanism": rc.mechanism.name,
-                     "epsilon": rc.mechanism.epsilon, "chosen_because": rc.chosen_because,
-                     "rows_reporting": rows * rate,
-                     "statistics": column_statistics(rc, rows, rate, default, simulate)})
-    missed = [(c["name"], s["statistic"]) for c in cols for s in c.get("statistics", [])
-              if s.get("meets_target") is False]
-    impossible = [(c["name"], s["statistic"]) for c in cols for s in c.get("statistics", [])
-                  if s.get("impossible_at_rows")]
-    return {"rows": rows, "strategy": policy.strategy, "epsilon_per_row": policy.epsilon_total,
-            "epsilon_per_row_budget": policy.policy.budget.epsilon_per_row, "report_rate": rate,
-            "columns": cols, "targets_missed": [f"{a}: {b}" for a, b in missed],
-            "impossible": [f"{a}: {b}" for a, b in impossible]}
+        cols.append(PlanColumn(rc.name, rc.type, rc.mechanism.name, rc.mechanism.epsilon, rc.chosen_because,
+                               rows * rate, tuple(column_statistics(rc, rows, rate, default, simulate))))
+    stats = [(c.name, st) for c in cols for st in c.statistics or ()]
+    missed = tuple(f"{name}: {st.statistic}" for name, st in stats if st.get("meets_target") is False)
+    impossible = tuple(f"{name}: {st.statistic}" for name, st in stats if st.get("impossible_at_rows"))
+    return PlanResult(rows, policy.strategy, policy.epsilon_total, policy.policy.budget.epsilon_per_row, rate,
+                      tuple(cols), missed, impossible)
 
 
 # -- suggest ------------------------------------------------------------------------------------
@@ -319,21 +454,20 @@ def suggest(policy: LoadedPolicy, rows: int) -> dict[str, Any]:
             split[rc.name] = {"epsilon": rc.mechanism.epsilon, "note": "no target: eps kept as in the policy"}
             total += rc.mechanism.epsilon
             continue
-        if rc.mechanism.name == "matrix":
-            # the steward's matrix fixes the noise: eps only caps it, so the smallest eps the
-            # column can declare is the one the matrix actually gives, and more eps cannot help
-            actual = float(rc.mechanism.actual_epsilon)
-            need = math.ceil(actual * 100 - 1e-9) / 100        # in the planner's 0.01 steps, rounded up
-            if _meets(rc, rc.mechanism.epsilon, rows, 1.0, default):
-                split[rc.name] = {"epsilon": need, "mechanism": "matrix",
-                                  "note": f"the matrix gives eps {actual:.4g}; its precision does not depend on "
-                                          "the declared eps"}
+        fixed = rc.mechanism.fixed_epsilon()
+        if fixed is not None:
+            # the mechanism's own parameters fix the noise (a supplied transition matrix): eps only
+            # caps it, so the smallest eps the column can declare is the one the noise actually
+            # gives, and more eps cannot help
+            need = math.ceil(fixed * 100 - 1e-9) / 100        # in the planner's 0.01 steps, rounded up
+            meets = _meets(rc, rc.mechanism.epsilon, rows, 1.0, default)
+            note = rc.mechanism.fixed_noise_note(meets, rows)
+            if meets:
+                split[rc.name] = {"epsilon": need, "mechanism": rc.mechanism.name, "note": note}
                 total += need
             else:
                 unmet.append(rc.name)
-                split[rc.name] = {"epsilon": None, "note": f"the matrix fixes the noise (it gives eps {actual:.4g}); "
-                                                           f"it misses the target at {rows} rows at any declared eps: "
-                                                           "more rows or a less noisy matrix are needed"}
+                split[rc.name] = {"epsilon": None, "note": note}
             continue
         eps = min_epsilon(rc, rows, 1.0, default)
         if eps is None:
@@ -365,8 +499,9 @@ def suggest(policy: LoadedPolicy, rows: int) -> dict[str, Any]:
             need = []
             ok = True
             for rc in cols:
-                if rc.mechanism.name == "matrix":   # fixed noise: needs its own eps, meets or not
-                    eps = (math.ceil(float(rc.mechanism.actual_epsilon) * 100 - 1e-9) / 100
+                fixed = rc.mechanism.fixed_epsilon()
+                if fixed is not None:   # fixed noise: needs its own eps, meets or not
+                    eps = (math.ceil(fixed * 100 - 1e-9) / 100
                            if _meets(rc, rc.mechanism.epsilon, rows, rate, default) else None)
                 else:
                     eps = min_epsilon(rc, rows, rate, default)
@@ -394,6 +529,6 @@ def suggest(policy: LoadedPolicy, rows: int) -> dict[str, Any]:
     return out
 
 
-__all__ = ["plan", "suggest", "min_epsilon", "frequency_row_variance", "mean_row_variance", "memo_rounding_variance",
+__all__ = ["plan", "suggest", "PlanResult", "PlanColumn", "PlanStatistic", "column_statistics", "min_epsilon", "frequency_row_variance", "mean_row_variance", "memo_rounding_variance",
            "frequency_row_variance_bound", "mean_row_variance_bound", "simulated_median_se", "sample_size",
            "CategoricalColumn", "NumericColumn"]

@@ -180,6 +180,25 @@ def test_n_tests_matches_results():
         assert f.n_tests == len(f.results(0.05)), name
 
 
+def test_results_are_typed_and_keep_the_dict_shape():
+    m = make("oue", 1.0)
+    f = gof.fit_stats_for(m).add(release(m, data("oue", 3000), "typed-oue"))
+    tests = f.results(0.01)
+    assert all(isinstance(r, gof.FitResult) for r in tests)
+    d = tests[0].to_dict()
+    assert list(d) == ["test", "kind", "statistic", "df", "reference", "p_value", "alpha", "passed", "rows",
+                       "impossible", "detail", "observed", "expected"]
+    assert tests[0]["p_value"] == tests[0].p_value and tests[0].get("tested", True) is True and tests[0].tested
+    verdict = f.result(0.01)
+    assert [t["kind"] for t in verdict.to_dict()["tests"]] == ["ones-mean", "ones-histogram"]
+    assert verdict.p_value == min(1.0, 2 * min(r.p_value for r in tests))
+    # hierarchy: every level's tests carry the level
+    h = make("hierarchy", 1.0)
+    levels = [r.extra["level"] for r in gof.fit_stats_for(h).add(release(h, data("hierarchy", 3000), "typed-h"))
+              .results(0.01)]
+    assert levels == sorted(levels) and set(levels) == {1, 2, 3}
+
+
 def test_pearson_matches_scipy():
     """pearson_test on cells already above the pooling threshold is scipy.stats.chisquare."""
     probs = np.array([0.1, 0.2, 0.3, 0.4])

@@ -14,10 +14,10 @@ from __future__ import annotations
 import json
 import math
 
-from conftest import realized_channel
 import numpy as np
 import pyarrow as pa
 import pytest
+from conftest import realized_channel
 from scipy import stats
 
 from ldptransform.errors import PolicyError
@@ -25,14 +25,14 @@ from ldptransform.keys import KeyedStream, SecretKey
 from ldptransform.mechanisms import (
     CATEGORICAL,
     DISTRIBUTION,
-    NUMERIC,
     GRR,
-    HadamardResponse,
-    SubsetSelection,
+    NUMERIC,
     OLH,
     OUE,
+    HadamardResponse,
     Hybrid,
     Piecewise,
+    SubsetSelection,
     TwoPoint,
     build,
     choose_categorical,
@@ -127,6 +127,101 @@ def test_registry_has_exactly_the_documented_mechanisms():
     # test_discrete_laplace.py)
     own_files = {"hadamard", "subset", "matrix", "discrete-laplace"}
     assert tested == names - set(DISTRIBUTION) - own_files, "every registered mechanism must be exercised"
+
+
+FAMILY_OF_KIND = {"categorical": "frequency", "numeric": "mean", "distribution": "distribution"}
+
+
+def test_every_mechanism_fills_the_contract():
+    """Family, kind and listing agree; each class names its policy fields in a strict pydantic
+    model and refuses the others; the family bases are the ones the decoder reads."""
+    from pydantic import BaseModel
+
+    from ldptransform.mechanisms import (
+        FAMILIES,
+        LISTED,
+        DistributionMechanism,
+        FrequencyOracle,
+        MeanMechanism,
+        names_of,
+    )
+
+    base_of = {"frequency": FrequencyOracle, "mean": MeanMechanism, "distribution": DistributionMechanism}
+    assert set(LISTED) == set(registry()) and len(LISTED) == len(set(LISTED))
+    assert names_of("frequency") == CATEGORICAL and names_of("mean") == NUMERIC
+    assert names_of("distribution") == DISTRIBUTION
+    for name, cls in registry().items():
+        assert cls.family in FAMILIES and FAMILY_OF_KIND[cls.kind] == cls.family, name
+        assert issubclass(cls, base_of[cls.family]), name
+        assert issubclass(cls.Params, BaseModel) and cls.Params.model_config.get("extra") == "forbid", name
+        assert set(cls.policy_fields()) <= {"hash_range", "subset_size", "matrix", "grid", "branching", "leaves"}, name
+    assert registry()["olh"].policy_fields() == ("hash_range",)
+    assert registry()["two-point"].policy_fields() == ()
+    assert "grid" in registry()["two-point"].field_refusals
+
+
+@pytest.mark.parametrize("name", sorted(set(CATEGORICAL) - {"matrix"}) + sorted(set(NUMERIC) | set(DISTRIBUTION)))
+def test_from_policy_with_defaults_equals_the_spec_built_mechanism(name):
+    cls = registry()[name]
+    domain = ["a", "b", "c", "d"] if cls.family == "frequency" else (0.0, 10.0)
+    m = cls.from_policy(1.0, domain, {f: None for f in cls.policy_fields()})
+    key = "categories" if cls.family == "frequency" else "bounds"
+    assert m.to_spec() == build({"mechanism": name, "epsilon": 1.0, key: list(domain)}).to_spec()
+
+
+def test_from_policy_names_the_missing_or_refused_field():
+    from ldptransform.mechanisms import MechanismParamError
+
+    with pytest.raises(MechanismParamError, match="needs the transition matrix") as err:
+        registry()["matrix"].from_policy(1.0, ["a", "b"], {})
+    assert err.value.field == "matrix"
+    with pytest.raises(MechanismParamError, match="two-point has no input grid") as err:
+        registry()["two-point"].from_policy(1.0, (0, 1), {"grid": 8})
+    assert err.value.field == "grid"
+    assert registry()["subset"].from_policy(1.0, ["a", "b", "c", "d"], {"subset_size": 2}).m == 2
+
+
+def test_planner_and_memoize_hooks():
+    from ldptransform.mechanisms import DiscreteLaplace, Matrix
+    from ldptransform.mechanisms.matrix import grr_matrix
+
+    mat = Matrix(2.0, ["a", "b", "c"], grr_matrix(1.0, 3).tolist())
+    assert mat.fixed_epsilon() == pytest.approx(1.0, abs=1e-9) and not mat.accepts_binned
+    assert GRR(1.0, ["a", "b"]).fixed_epsilon() is None
+    dl = DiscreteLaplace(1.0, (0, 10), 16)
+    assert not dl.supports_memoize and "variable number" in dl.memoize_refusal and dl.exact_decimal_epsilon
+    assert Hybrid(1.0, (0, 10)).supports_memoize and Hybrid(1.0, (0, 10)).memoize_refusal == ""
+    sw = registry()["square-wave"](1.0, (0, 10), 16)
+    assert sw.mean_row_variance() is None and sw.frequency_row_variance() is None and sw.fit_test() is not None
+    assert GRR(1.0, ["a", "b"]).mean_row_variance() is None
+    assert dl.mean_row_variance() == pytest.approx(max(dl.variance(0.0), dl.variance(10.0)) + 25.0)
+    tp = TwoPoint(1.0, (0, 10))
+    assert tp.mean_row_variance() == pytest.approx(float(np.max(tp.second_moments())) * 25.0)
+
+
+def test_no_module_outside_mechanisms_names_or_probes_a_mechanism():
+    """Decisions about a mechanism are asked of its class: no mechanism name as a string literal,
+    no isinstance against a mechanism class, no hasattr/getattr on a mechanism outside mechanisms/."""
+    import re
+    from pathlib import Path
+
+    import ldptransform
+
+    names = "|".join(re.escape(n) for n in registry())
+    literal = re.compile(rf"""["']({names})["']""")
+    probe = re.compile(r"isinstance\([^)]*(mech\.|FrequencyOracle|GridMechanism|MeanMechanism|Distribution"
+                       r"Mechanism|SquareWave|Hierarchy|Matrix|GRR|OLH|DiscreteLaplace)"
+                       r"|(hasattr|getattr)\((m|mechanism|\w+\.mechanism)\b")
+    root = Path(ldptransform.__file__).parent
+    found = []
+    for path in sorted(root.rglob("*.py")):
+        if "mechanisms" in path.relative_to(root).parts:
+            continue
+        for i, line in enumerate(path.read_text(encoding="utf-8").splitlines(), 1):
+            code = line.split("#", 1)[0]
+            if literal.search(code) or probe.search(code):
+                found.append(f"{path.relative_to(root)}:{i}: {line.strip()}")
+    assert not found, "\n".join(found)
 
 
 @pytest.mark.parametrize("m", all_mechanisms())
@@ -638,7 +733,12 @@ def test_guide_table_search_gives_the_binary_searchs_outputs():
     masses in one slice, where the steps are many), over 200,000 keyed words each."""
     from ldptransform.mechanisms import Matrix, Piecewise, SquareWave
     from ldptransform.mechanisms.matrix import grr_matrix
-    from ldptransform.mechanisms.numeric import SAMPLING_BITS, draw_index, guide_table, sampling_table
+    from ldptransform.mechanisms.numeric import (
+        SAMPLING_BITS,
+        draw_index,
+        guide_table,
+        sampling_table,
+    )
 
     stream = KeyedStream(SecretKey(bytes(range(32))), "0" * 32, "guide-test")
     w = stream.words(0, 200_000, 2)

@@ -13,16 +13,31 @@ import numpy as np
 import pandas as pd
 import pytest
 import yaml
-
 from conftest import FIXED_KEY_BYTES, write_fixed_key
+
 from ldptransform import estimate, load_key, parse_policy, privatize
 from ldptransform.estimate import CategoricalStats, NumericStats
 from ldptransform.keys import KeyedStream, SecretKey
-from ldptransform.mechanisms import OUE, GRR, DiscreteLaplace, HadamardResponse, Hybrid, Matrix, SubsetSelection, TwoPoint
+from ldptransform.mechanisms import (
+    GRR,
+    OUE,
+    DiscreteLaplace,
+    HadamardResponse,
+    Hybrid,
+    Matrix,
+    SubsetSelection,
+    TwoPoint,
+    bounds,
+)
 from ldptransform.mechanisms.matrix import grr_matrix
-from ldptransform.mechanisms import bounds
-from ldptransform.plan import (frequency_row_variance, frequency_row_variance_bound, mean_row_variance,
-                               mean_row_variance_bound, plan, suggest)
+from ldptransform.plan import (
+    frequency_row_variance,
+    frequency_row_variance_bound,
+    mean_row_variance,
+    mean_row_variance_bound,
+    plan,
+    suggest,
+)
 
 KEY = SecretKey(FIXED_KEY_BYTES)
 
@@ -71,7 +86,7 @@ def test_predicted_mean_se_matches_monte_carlo(m):
             st.add(m.randomize_with(x, _words(m, n, r, m.name), lambda rows, j: ds.words_at(rows, j)))
         else:
             st.add(m.randomize(x, _words(m, n, r, m.name)))
-        means[r] = st.mean(1.96)["estimate"]
+        means[r] = st.mean(1.96).estimate
     measured = float(np.std(means, ddof=1))
     predicted = math.sqrt(mean_row_variance(m) / n)
     assert abs(measured / predicted - 1) < 0.10, (measured, predicted)
@@ -130,6 +145,28 @@ def test_plan_reports_targets_rows_needed_and_impossible():
     assert "team: frequencies" in small["impossible"]
     team = [c for c in small["columns"] if c["name"] == "team"][0]["statistics"][0]
     assert team["best_possible_se"] > 0.02 and team["rows_needed_best_possible"] > 300
+
+
+def test_plan_is_typed_with_a_stable_dict_and_a_long_frame():
+    from ldptransform.plan import PlanResult, PlanStatistic
+
+    lp = parse_policy(POLICY, "test")
+    res = plan(lp, 20000, simulate=False)
+    assert isinstance(res, PlanResult)
+    d = res.to_dict()
+    assert list(d) == ["rows", "strategy", "epsilon_per_row", "epsilon_per_row_budget", "report_rate", "columns",
+                       "targets_missed", "impossible"]
+    assert json.loads(json.dumps(d)) == d  # plain JSON values
+    hours = next(c for c in res.columns if c.name == "hours")
+    st = hours.statistics[0]
+    assert isinstance(st, PlanStatistic) and st.statistic == "mean" and st.se == d["columns"][2]["statistics"][0]["se"]
+    assert list(st.to_dict())[:4] == ["statistic", "se", "relative_se", "efficiency"]
+    assert res["columns"][2]["statistics"][0] == st.to_dict()  # read access by key, as the dict was read
+    frame = res.to_frame()
+    assert list(frame["column"]) == ["site", "team", "hours", "wave"]
+    assert list(frame["statistic"][:3]) == ["frequencies", "frequencies", "mean"]
+    assert frame.loc[2, "se"] == pytest.approx(st.se) and frame.loc[2, "rows_needed"] == st.rows_needed
+    assert frame.loc[3, "note"].startswith("released in the clear")
 
 
 def test_suggested_split_meets_the_targets_when_privatized(tmp_path):
@@ -281,8 +318,8 @@ def test_memoized_mean_adds_the_grid_rounding_and_stays_an_upper_bound():
     (where the rounding variance is step^2/4), rounded with offsets from the keyed stream and
     randomized by two-point: the measured SD is within 10% of sqrt((Var_mech(x) + step^2/4) / n),
     which is itself within the plan's worst case."""
-    from ldptransform.plan import memo_rounding_variance
     from ldptransform.keys import to_unit
+    from ldptransform.plan import memo_rounding_variance
 
     pol = parse_policy({"budget": {"epsilon_per_row": 1.0}, "subject_key": "id",
                         "columns": {"id": {"type": "drop"},
@@ -303,7 +340,7 @@ def test_memoized_mean_adds_the_grid_rounding_and_stays_an_upper_bound():
         rounded = np.floor(x / step + u) * step
         st = NumericStats(m)
         st.add(m.randomize(rounded, _words(m, n, r, "memo")))
-        means[r] = st.mean(1.96)["estimate"]
+        means[r] = st.mean(1.96).estimate
     # two-point's report variance at value v: ((hi-lo)/2)^2 c^2 - (v - mid)^2, c = (e+1)/(e-1)
     c = (math.e + 1) / (math.e - 1)
     v_mech = np.mean([2500 * c * c - (v - 50) ** 2 for v in (40.0, 50.0)])

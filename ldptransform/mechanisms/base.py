@@ -268,8 +268,14 @@ class Mechanism(ABC):
         follows the declared eps."""
         return None
 
-    #: how plan's notes name what fixes the noise of a mechanism with a ``fixed_epsilon``
-    fixed_noise_label: ClassVar[str] = "the mechanism"
+    def fixed_noise_note(self, meets: bool, rows: int) -> str:
+        """plan --suggest's note for a mechanism with a ``fixed_epsilon``: whether its fixed noise
+        meets the column's targets at ``rows`` rows."""
+        actual = self.fixed_epsilon()
+        if meets:
+            return f"the mechanism gives eps {actual:.4g}; its precision does not depend on the declared eps"
+        return (f"the mechanism's parameters fix the noise (it gives eps {actual:.4g}); it misses the target at "
+                f"{rows} rows at any declared eps: more rows or less noisy parameters are needed")
 
     def mean_row_variance(self) -> float | None:
         """n * Var of the mean as ``ldpt estimate`` reports it, worst case over data (column units

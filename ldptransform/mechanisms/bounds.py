@@ -81,9 +81,6 @@ def mean_lower_bound(epsilon: float, bounds: tuple[float, float]) -> float:
 
 def efficiency(mechanism) -> float | None:
     """bound / the mechanism's own variance (1 = as good as possible), for frequency oracles
-    (total variance) and mean mechanisms (worst-case variance); None for others."""
-    if hasattr(mechanism, "total_variance") and hasattr(mechanism, "k"):
-        return frequency_lower_bound(mechanism.epsilon, mechanism.k) / mechanism.total_variance()
-    if hasattr(mechanism, "worst_variance") and hasattr(mechanism, "lo"):
-        return mean_lower_bound(mechanism.epsilon, (mechanism.lo, mechanism.hi)) / mechanism.worst_variance()
-    return None
+    (total variance) and mean mechanisms (worst-case variance); None for others
+    (``Mechanism.efficiency``)."""
+    return mechanism.efficiency()

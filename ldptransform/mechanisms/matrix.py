@@ -98,7 +98,6 @@ class Matrix(FrequencyOracle):
     Params: ClassVar[type[BaseModel]] = MatrixParams
     accepts_binned: ClassVar[bool] = False
     binned_refusal: ClassVar[str] = "its transition matrix is given only on a categorical column"
-    fixed_noise_label: ClassVar[str] = "the matrix"
 
     @classmethod
     def missing_field_message(cls, field: str, domain: Any) -> str:
@@ -382,6 +381,13 @@ class Matrix(FrequencyOracle):
     def fixed_epsilon(self) -> float:
         """The steward's matrix fixes the noise: the declared eps only caps it."""
         return float(self._actual_epsilon)
+
+    def fixed_noise_note(self, meets: bool, rows: int) -> str:
+        actual = self.fixed_epsilon()
+        if meets:
+            return f"the matrix gives eps {actual:.4g}; its precision does not depend on the declared eps"
+        return (f"the matrix fixes the noise (it gives eps {actual:.4g}); it misses the target at {rows} rows at any "
+                "declared eps: more rows or a less noisy matrix are needed")
 
     def fit_test(self) -> HullFit | None:
         """The published categories against the realized k x k channel (k <= 1024).  The outputs
