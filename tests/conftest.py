@@ -1,6 +1,7 @@
-"""Shared fixtures: the command line run in a subprocess, a private folder per test, a
-secret key, and the test scenario (the invented staff survey of the Alderbank Water
-Cooperative, a fictional organisation).
+"""Shared fixtures: the command line (in this process through typer's CliRunner, or in a
+real subprocess for the few tests that need one), a private folder per test, a secret key,
+keyed PRF words for mechanism tests, and the test scenario (the invented staff survey of
+the Alderbank Water Cooperative, a fictional organisation).
 
 Every test gets its own steward-private folder through $LDPT_PRIVATE_DIR, so that no
 test writes diagnostics into the real ~/.local/state.
@@ -13,6 +14,7 @@ import hashlib
 import os
 import subprocess
 import sys
+import traceback
 from pathlib import Path
 from typing import Any, Callable
 
@@ -88,15 +90,61 @@ def cli_env(private: Path) -> dict[str, str]:
 
 LdptRunner = Callable[..., subprocess.CompletedProcess]
 
+# What ldptransform.cli.main() prints before the traceback of an internal error (exit 3).
+INTERNAL_ERROR = "ldpt: internal error (a bug). Please report it with this traceback:\n"
+
+
+def run_cli(*args: Any, private: Path, cwd: Path | None = None) -> subprocess.CompletedProcess:
+    """``ldpt ARGS...`` in this process through typer's CliRunner, as a CompletedProcess.
+
+    Exit code, stdout and stderr are the ones ``ldpt`` gives as a program: an exception that
+    escapes the command (a bug) becomes exit 3 with main()'s message and the traceback on
+    stderr, as ldptransform.cli.main() does, so "exit 2, no traceback" keeps its meaning.
+    Stdin is empty, stdout and stderr are not terminals (as in the subprocess runs)."""
+    from typer.testing import CliRunner
+
+    from ldptransform.cli import app
+
+    argv = [str(a) for a in args]
+    env = {"LDPT_PRIVATE_DIR": str(private), "NO_COLOR": "1", "FORCE_COLOR": None}
+    here = os.getcwd()
+    if cwd is not None:
+        os.chdir(cwd)
+    try:
+        res = CliRunner().invoke(app, argv, env=env, prog_name="ldpt", catch_exceptions=True)
+    finally:
+        os.chdir(here)
+    code, err = res.exit_code, res.stderr
+    if res.exception is not None and not isinstance(res.exception, SystemExit):
+        code = 3
+        err += INTERNAL_ERROR + "".join(traceback.format_exception(res.exception))
+    return subprocess.CompletedProcess(["ldpt", *argv], code, res.stdout, err)
+
+
+def run_process(*args: Any, private: Path, cwd: Path | None = None, timeout: float = 180) -> subprocess.CompletedProcess:
+    """``python -m ldptransform ARGS...`` in a real subprocess (text, stdin closed)."""
+    return subprocess.run([sys.executable, "-m", "ldptransform", *map(str, args)], cwd=cwd,
+                          env=cli_env(private), capture_output=True, text=True, timeout=timeout,
+                          stdin=subprocess.DEVNULL)
+
 
 @pytest.fixture
 def ldpt(private_dir: Path) -> LdptRunner:
+    """Run ``ldpt ARGS...`` in this process (CliRunner); returns a CompletedProcess (text).
+    Tests that need a real process (signals, a terminal, the dask cluster) use ``ldpt_process``."""
+
+    def run(*args: Any, cwd: Path | None = None) -> subprocess.CompletedProcess:
+        return run_cli(*args, private=private_dir, cwd=cwd)
+
+    return run
+
+
+@pytest.fixture
+def ldpt_process(private_dir: Path) -> LdptRunner:
     """Run ``python -m ldptransform ARGS...`` in a subprocess; returns the CompletedProcess (text)."""
 
     def run(*args: Any, cwd: Path | None = None, timeout: float = 180) -> subprocess.CompletedProcess:
-        return subprocess.run([sys.executable, "-m", "ldptransform", *map(str, args)], cwd=cwd,
-                              env=cli_env(private_dir), capture_output=True, text=True, timeout=timeout,
-                              stdin=subprocess.DEVNULL)
+        return run_process(*args, private=private_dir, cwd=cwd, timeout=timeout)
 
     return run
 
@@ -115,6 +163,20 @@ def write_fixed_key(path: Path) -> Path:
     with os.fdopen(fd, "w", encoding="ascii") as f:
         f.write(f"{KEY_HEADER}\n{FIXED_KEY_BYTES.hex()}\n")
     return path
+
+
+def keyed_words(label: str, n: int, per_row: int, start: int = 0, *, key: Any = FIXED_KEY_BYTES,
+                nonce: str = FIXED_NONCE, stream: str = "test") -> "np.ndarray":
+    """PRF words for a mechanism test: rows ``start .. start + n - 1`` of the row-addressed
+    keyed stream (key, nonce, stream, label), ``per_row`` 64-bit words each, an (n, per_row)
+    uint64 array.  ``key`` is a SecretKey or its 32 bytes.  Test files bind their own key,
+    nonce and stream name once (functools.partial), so each file keeps its own fixed words."""
+    from ldptransform.keys import SecretKey
+    from ldptransform.random import KeyedStream
+
+    if isinstance(key, (bytes, bytearray)):
+        key = SecretKey(bytes(key))
+    return KeyedStream(key, nonce, stream, label).words(start, n, per_row)
 
 
 @pytest.fixture(scope="session")

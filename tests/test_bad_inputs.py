@@ -174,11 +174,12 @@ def test_policy_json_syntax_error(release: Release, ldpt) -> None:
     release.assert_nothing_written(before)
 
 
-def test_policy_file_missing(release: Release, ldpt) -> None:
+def test_policy_file_missing(release: Release, ldpt_process) -> None:
+    """In a real process (the others run in this one): the program's own exit code 2."""
     release.policy = release.dir / "no_such_policy.yaml"
     before = listing(release.dir)
-    assert_user_error(ldpt(*release.args()), ["no_such_policy.yaml"])
-    assert_user_error(ldpt("policy", "check", release.policy), ["no_such_policy.yaml"])
+    assert_user_error(ldpt_process(*release.args()), ["no_such_policy.yaml"])
+    assert_user_error(ldpt_process("policy", "check", release.policy), ["no_such_policy.yaml"])
     release.assert_nothing_written(before)
 
 

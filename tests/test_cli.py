@@ -1,7 +1,11 @@
-"""The command line end to end, in subprocesses: keys, privatize (formats, overwrite,
-manifest path), estimate (json/csv/table, --out), validate (good and tampered releases),
-policy schema/check, the demo, quiet/non-terminal output, bit-for-bit reproduction, and
+"""The command line end to end: keys, privatize (formats, overwrite, manifest path),
+estimate (json/csv/table, --out), validate (good and tampered releases), policy
+schema/check, the demo, quiet/non-terminal output, bit-for-bit reproduction, and
 interruption (SIGTERM, SIGINT, SIGKILL) leaving nothing at the destination.
+
+Most tests run `ldpt` in this process through typer's CliRunner (the ``ldpt`` fixture);
+the ones that need a real process use ``ldpt_process`` or start their own: output to a
+real pipe and a terminal, signals and SIGKILL.
 """
 
 from __future__ import annotations
@@ -30,8 +34,8 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 import pytest
 
-from conftest import (FIXED_NONCE, write_fixed_key, DEMO_CSV, DEMO_POLICY, ROLES, SITES, cli_env, listing, partials, sha256, survey_policy,
-                      write_policy)
+from conftest import (FIXED_NONCE, write_fixed_key, DEMO_CSV, DEMO_POLICY, ROLES, SITES, cli_env, listing, partials,
+                      run_cli, sha256, survey_policy, write_policy)
 
 MISSING, OTHER = "<missing>", "<other>"
 TENURE_EDGES = [0, 2, 5, 10, 20, 45]
@@ -184,10 +188,11 @@ def test_privatize_overwrite_replaces_extract_and_manifest(survey: dict[str, Pat
     ok(ldpt("validate", out))
 
 
-def test_non_terminal_run_prints_only_the_summary_line(survey: dict[str, Path], ldpt) -> None:
+def test_non_terminal_run_prints_only_the_summary_line(survey: dict[str, Path], ldpt_process) -> None:
+    """A real process writing to pipes (not terminals): only the summary line, no escapes."""
     for i, extra in enumerate(([], ["--quiet"], ["-q"])):
         out = survey["dir"] / f"extract{i}.csv"
-        res = ok(privatize(ldpt, survey, out, "--batch-rows", "500", *extra))
+        res = ok(privatize(ldpt_process, survey, out, "--batch-rows", "500", *extra))
         assert res.stdout == ""
         lines = res.stderr.splitlines()
         assert len(lines) == 1, res.stderr
@@ -251,11 +256,8 @@ def _one_release(tmp_path_factory: pytest.TempPathFactory, key_file: Path) -> Pa
     """One CSV release of the survey, made once per module (tests get copies)."""
     folder = tmp_path_factory.mktemp("one-release")
     policy = write_policy(folder / "survey_policy.yaml", survey_policy())
-    res = subprocess.run([sys.executable, "-m", "ldptransform", "privatize", str(DEMO_CSV), "--policy", str(policy),
-                          "--key", str(key_file), "--out", str(folder / "extract.csv"), "--nonce", FIXED_NONCE],
-                         env=cli_env(tmp_path_factory.mktemp("one-release-private")), capture_output=True, text=True,
-                         stdin=subprocess.DEVNULL, timeout=180)
-    ok(res)
+    ok(run_cli("privatize", DEMO_CSV, "--policy", policy, "--key", key_file, "--out", folder / "extract.csv",
+               "--nonce", FIXED_NONCE, private=tmp_path_factory.mktemp("one-release-private")))
     return folder
 
 
