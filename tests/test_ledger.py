@@ -467,7 +467,7 @@ def test_two_processes_over_the_cap_together_exactly_one_refused(tmp_path: Path,
 
 
 def test_a_lock_held_too_long_is_a_clear_error(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    import ldptransform.ledger as ledger_mod
+    import ldptransform.ledger.store as ledger_mod
 
     path = tmp_path / "ledger.sqlite3"
     Ledger.open(path).close()

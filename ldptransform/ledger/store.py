@@ -15,7 +15,7 @@ The registry only grows (a release appends its new subjects); totals and the mem
 the columns a release updates are rewritten.
 
 Nothing raw goes in: a subject is stored only as a 32-byte keyed digest (the AES-based PRF
-of ``keys.SubjectPRF``, evaluated for a whole batch at once) under keys derived from the
+of ``random.bits.SubjectPRF``, evaluated for a whole batch at once) under keys derived from the
 release key with labels of their own ("ledger", "subject-hash/v2"), and a last value only as
 a keyed digest of (subject digest, value code) under per-column keys ("ledger",
 "value-hash/v2", column, ...).  Without the
@@ -55,24 +55,20 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-import pyarrow as pa
-import pyarrow.compute as pc
 
-from .errors import LdptError
-from .io import private_dir
-from .keys import SecretKey, SubjectPRF, check_nonce, shared_access
+from ..io import private_dir
+from ..keys import check_nonce, shared_access
+from .charges import CAP_TOLERANCE, ChargePlan, aggregate, cap_plan, check_cap
+from .errors import BudgetExhaustedError, LedgerError
+from .hashes import DIGEST, as_digests
 
 SCHEMA_VERSION = 2  # 2: subjects and values hashed with the AES-based keyed PRF (1: HMAC-SHA256)
 APPLICATION_ID = 0x4C445450  # "LDTP": marks a SQLite file as an ldptransform ledger
 DEFAULT_NAME = "ledger.sqlite3"
 BUSY_TIMEOUT_S = 30.0
 GENESIS = "0" * 64
-CAP_TOLERANCE = 1e-9  # relative slack on the cap for floating-point sums (0.1 + 0.2 > 0.3)
 _ROW_LABEL = b"ldptransform/ledger/release-row/v2\n"
 _SPEND_LABEL = b"ldptransform/ledger/subject-spend/v2\n"
-_SUBJECT_LABELS = ("ledger", "subject-hash/v2")
-_VALUE_LABELS = ("ledger", "value-hash/v2")
-DIGEST = np.dtype("S32")
 SPEND_NOTE = ("data-dependent (who appears in which release): steward-only, never publish or send to "
               "partners")
 
@@ -103,108 +99,6 @@ _SCHEMA = [
         data BLOB NOT NULL,
         PRIMARY KEY (name, part))""",
 ]
-
-
-class LedgerError(LdptError):
-    """The ledger file is missing, not a ledger, unsafe, or the call does not fit it."""
-
-
-class BudgetExhaustedError(LedgerError):
-    """Recording a release would take some subjects over their lifetime eps."""
-
-
-# -- hashing of subjects and values --------------------------------------------------------
-
-def _encode_values(values: Any, what: str) -> tuple[np.ndarray, np.ndarray]:
-    """Values as their UTF-8 text form (42 and "42" are the same subject), returned as
-    (concatenated bytes, n + 1 int64 offsets) straight from the Arrow buffers: no per-value
-    Python objects."""
-    if isinstance(values, (pa.ChunkedArray, pa.Array)):
-        arr = values
-    else:
-        arr = pa.array(np.asarray(values).tolist() if isinstance(values, np.ndarray) and values.dtype.kind in "SV"
-                       else values)
-    if isinstance(arr, pa.ChunkedArray):
-        arr = arr.combine_chunks()
-    nulls = arr.null_count
-    if nulls:
-        raise LedgerError(f"{what}: {nulls} value(s) are missing. Every row charged to the ledger needs a "
-                          "subject identifier: fill or drop those rows before the release.")
-    if pa.types.is_floating(arr.type):
-        raise LedgerError(f"{what}: identifiers are floating-point numbers (type {arr.type}); their text form "
-                          "is ambiguous. Read the identifier column as text or whole numbers.")
-    if not (pa.types.is_binary(arr.type) or pa.types.is_large_binary(arr.type)):
-        try:
-            arr = pc.cast(arr, pa.large_string()) if not pa.types.is_large_string(arr.type) else arr
-        except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
-            raise LedgerError(f"{what}: values of type {arr.type} cannot be used as identifiers; use text or "
-                              "whole numbers.") from None
-    binary = pc.cast(arr, pa.large_binary())
-    if isinstance(binary, pa.ChunkedArray):
-        binary = binary.combine_chunks()
-    n = len(binary)
-    bufs = binary.buffers()
-    offs = np.frombuffer(bufs[1], dtype=np.int64)[binary.offset: binary.offset + n + 1] if n else np.zeros(1, np.int64)
-    data = np.frombuffer(bufs[2], dtype=np.uint8) if n and bufs[2] is not None else np.zeros(0, dtype=np.uint8)
-    return data, offs
-
-
-def _keyed_digests(prf: SubjectPRF, data: np.ndarray, offs: np.ndarray,
-                   codes: np.ndarray | None = None) -> np.ndarray:
-    """32-byte keyed digests of n byte strings (and int64 codes), dtype S32, all rows at once:
-    the 128-bit seed of ``SubjectPRF`` (an encrypted CBC-MAC over a length-prefixed, hence
-    prefix-free, encoding: a PRF) expanded to four 64-bit words.  Collisions are governed by
-    the 128-bit seed (about n^2 / 2^129: negligible for any table)."""
-    n = len(offs) - 1
-    if n <= 0:
-        return np.zeros(0, dtype=DIGEST)
-    codes = np.zeros(n, dtype=np.int64) if codes is None else np.asarray(codes, dtype=np.int64)
-    words = prf.words(prf.seeds(data, offs, codes), 4)
-    return np.ascontiguousarray(words, dtype="<u8").view(DIGEST).reshape(-1)
-
-
-def subject_hashes(key: SecretKey, subject_values: Any) -> np.ndarray:
-    """Keyed hashes of subject identifiers: an array of dtype S32 (32-byte digests).
-
-    Use ``arr.tobytes()`` (or ``as_digests``) rather than indexing single elements: numpy
-    drops trailing zero bytes when it hands out one S32 element.
-    """
-    return _keyed_digests(SubjectPRF(key, *_SUBJECT_LABELS), *_encode_values(subject_values, "subject identifiers"))
-
-
-def value_hashes(key: SecretKey, column: str, values: Any) -> np.ndarray:
-    """Keyed hashes of a column's values (per-column sub-key), dtype S32."""
-    return _keyed_digests(SubjectPRF(key, *_VALUE_LABELS, column),
-                          *_encode_values(values, f"values of column {column!r}"))
-
-
-def memo_value_hashes(key: SecretKey, column: str, context: bytes, subject_h: np.ndarray,
-                      codes: np.ndarray) -> np.ndarray:
-    """Keyed hashes of (subject, value code) for a memoized column, dtype S32, under per-column
-    keys that also bind ``context`` (the column's memo context: mechanism spec and grid); the
-    message is the subject's keyed hash with the code.  The subject is in the message so that
-    two subjects with the same value do not share a hash (no equality classes, hence no
-    frequency analysis, in the ledger); a changed mechanism or grid gives another hash, so the
-    next release is charged, as its randomness is fresh."""
-    h = as_digests(subject_h)
-    data = np.frombuffer(h.tobytes(), dtype=np.uint8)
-    offs = np.arange(0, 32 * len(h) + 1, 32, dtype=np.int64)
-    return _keyed_digests(SubjectPRF(key, *_VALUE_LABELS, column, b"memo-context", context), data, offs, codes)
-
-
-def as_digests(h: Any, what: str = "subject hashes") -> np.ndarray:
-    """Accept S32 / V32 arrays, (n, 32) uint8 arrays or a list of 32-byte strings; return contiguous S32."""
-    if isinstance(h, (list, tuple)):
-        if any(not isinstance(x, (bytes, bytearray)) or len(x) != 32 for x in h):
-            raise LedgerError(f"{what} must be 32-byte digests from ledger.subject_hashes.")
-        return np.frombuffer(b"".join(h), dtype=DIGEST) if h else np.zeros(0, dtype=DIGEST)
-    a = np.asarray(h)
-    if a.dtype.kind in "SV" and a.dtype.itemsize == 32 and a.ndim == 1:
-        return np.ascontiguousarray(a).view(DIGEST)
-    if a.dtype == np.uint8 and a.ndim == 2 and a.shape[1] == 32:
-        return np.ascontiguousarray(a).view(DIGEST).reshape(-1)
-    raise LedgerError(f"{what} must be 32-byte digests from ledger.subject_hashes (got an array of dtype "
-                      f"{a.dtype} and shape {a.shape}).")
 
 
 PART_BYTES = 1 << 25  # largest blob part stored (32 MiB): far below SQLite's default 1e9-byte limit
@@ -392,14 +286,70 @@ class VerifyResult:
                 "detail": self.detail, "head": self.head}
 
 
-@dataclass
-class ChargePlan:
-    over_count: int
-    max_overshoot: float
-    within_mask: np.ndarray = field(repr=False)
+def _release_row(meta: ReleaseMeta | Mapping[str, Any], lifetime_epsilon: float | None
+                 ) -> tuple[dict[str, Any], dict[str, dict[str, Any]]]:
+    """A release's row (all but id, subjects_charged and state digest), checked; and its columns."""
+    if not isinstance(meta, ReleaseMeta):
+        try:
+            meta = ReleaseMeta(**dict(meta))
+        except TypeError as err:
+            raise LedgerError(f"release meta: {err}. Give policy_sha256, extract_sha256, nonce, columns "
+                              "(and optionally time).") from None
+    cols = meta.normalized_columns()
+    row = {"policy_sha256": _check_sha(meta.policy_sha256, "policy_sha256"),
+           "extract_sha256": _check_sha(meta.extract_sha256, "extract_sha256"),
+           "nonce": check_nonce(meta.nonce, "release meta: nonce"),
+           "columns": json.dumps(cols, sort_keys=True, separators=(",", ":")),
+           "lifetime_epsilon": None if lifetime_epsilon is None else float(lifetime_epsilon), "time": meta.time}
+    return row, cols
 
-    def __iter__(self):  # unpacks as (over_count, max_overshoot, within_mask)
-        return iter((self.over_count, self.max_overshoot, self.within_mask))
+
+def _memo_positions(cols: dict[str, dict[str, Any]], memo_updates: Mapping[str, tuple[Any, Any]] | None,
+                    uniq: np.ndarray) -> list[tuple[str, np.ndarray, np.ndarray]]:
+    """Memo updates checked, as (column, position among the charged subjects, value hash);
+    a subject given twice: its last value wins."""
+    memo: list[tuple[str, np.ndarray, np.ndarray]] = []
+    for col, (sh, vh) in (memo_updates or {}).items():
+        if col not in cols or not cols[col]["memoized"]:
+            raise LedgerError(f"memo update for column {col!r}, which the release meta does not mark as "
+                              "memoized. Mark it {'memoized': true} in columns, or drop the update.")
+        sh, vh = as_digests(sh), as_digests(vh, f"value hashes of column {col!r}")
+        if len(sh) != len(vh):
+            raise LedgerError(f"memo update for column {col!r}: {len(sh)} subject hashes but {len(vh)} value "
+                              "hashes; give one value hash per subject.")
+        memo.append((col, sh, vh))
+    uniq_index = _Index(uniq)
+    out = []
+    for col, sh, vh in memo:
+        pos = uniq_index.find(sh)
+        if (pos < 0).any():
+            raise LedgerError(f"memo update for column {col!r}: {int((pos < 0).sum())} subject(s) are not among "
+                              "the release's charged subjects; a memoized value is only recorded for a subject "
+                              "this release charges.")
+        rev = np.unique(pos[::-1], return_index=True)[1]  # a repeated subject: its last value wins
+        keep = len(pos) - 1 - rev
+        out.append((col, pos[keep], vh[keep]))
+    return out
+
+
+def _next_state(snap: _Snapshot, idx: np.ndarray, uniq: np.ndarray, eps: np.ndarray,
+                memo_pos: list[tuple[str, np.ndarray, np.ndarray]]) -> tuple[_Snapshot, np.ndarray, np.ndarray]:
+    """The state after a release: new subjects appended to the registry in digest order, totals
+    and memo state updated.  Returns (new state, registry index of each charged subject, added digests)."""
+    known = idx >= 0
+    n_old, n_new = len(snap.digests), int((~known).sum())
+    ids = idx.copy()
+    ids[~known] = n_old + np.arange(n_new)
+    added = uniq[~known]
+    totals = np.concatenate([snap.totals, np.zeros(n_new)])
+    totals[ids] += eps
+    states = dict(snap.states)
+    for col, pos, vh in memo_pos:
+        st = snap.state(col)
+        st = np.concatenate([st, np.zeros(n_new, dtype=DIGEST)]) if n_new else st.copy()
+        st[ids[pos]] = vh
+        states[col] = st
+    return _Snapshot("", np.concatenate([snap.digests, added]), totals, states), ids, added
 
 
 # -- the ledger ---------------------------------------------------------------------------
@@ -582,40 +532,16 @@ class Ledger:
         finally:
             c.execute("COMMIT")
 
-    @staticmethod
-    def _aggregate(h: np.ndarray, per_subject_eps: Any) -> tuple[np.ndarray, np.ndarray]:
-        """One entry per distinct subject; a subject with several rows is charged their sum."""
-        eps = np.broadcast_to(np.asarray(per_subject_eps, dtype=np.float64), h.shape)
-        if not np.all(np.isfinite(eps)) or np.any(eps < 0):
-            raise LedgerError("per-subject eps must be finite and >= 0 (the eps each subject's rows use in this "
-                              "release).")
-        uniq, inv = np.unique(h, return_inverse=True)
-        return uniq, np.bincount(inv.reshape(-1), weights=eps, minlength=len(uniq))
-
-    @staticmethod
-    def _plan(spent: np.ndarray, add: np.ndarray, cap: float) -> ChargePlan:
-        total = spent + add
-        within = total <= cap * (1 + CAP_TOLERANCE)
-        over = int((~within).sum())
-        overshoot = float((total - cap).max()) if over else 0.0
-        return ChargePlan(over, max(overshoot, 0.0), within)
-
-    @staticmethod
-    def _check_cap(cap: float | None) -> None:
-        if cap is not None and (isinstance(cap, bool) or not math.isfinite(cap) or cap <= 0):
-            raise LedgerError("lifetime_epsilon must be a finite number > 0 (the eps a subject may spend over all "
-                              "releases).")
-
     def charge_plan(self, subject_hashes: Any, per_subject_eps: Any, lifetime_epsilon: float) -> ChargePlan:
         """What charging this release would do: (over_count, max_overshoot, within_mask).
 
         ``within_mask[i]`` is True if subject i (as given, repeats included) stays within
         ``lifetime_epsilon`` after this release; repeats of a subject are charged together.
         A plan is advisory: ``record_release`` checks again under the write lock."""
-        self._check_cap(lifetime_epsilon)
+        check_cap(lifetime_epsilon)
         h = as_digests(subject_hashes)
-        uniq, add = self._aggregate(h, per_subject_eps)
-        plan = self._plan(self.spent(uniq), add, lifetime_epsilon)
+        uniq, add = aggregate(h, per_subject_eps)
+        plan = cap_plan(self.spent(uniq), add, lifetime_epsilon)
         pos = np.searchsorted(uniq, h)
         return ChargePlan(plan.over_count, plan.max_overshoot, plan.within_mask[pos])
 
@@ -643,103 +569,22 @@ class Ledger:
         With ``lifetime_epsilon`` the cap is checked under the write lock, and the whole
         release is refused (``BudgetExhaustedError``, nothing written) if any subject would
         go over it."""
-        if not isinstance(meta, ReleaseMeta):
-            try:
-                meta = ReleaseMeta(**dict(meta))
-            except TypeError as err:
-                raise LedgerError(f"release meta: {err}. Give policy_sha256, extract_sha256, nonce, columns "
-                                  "(and optionally time).") from None
-        cols = meta.normalized_columns()
-        policy_sha = _check_sha(meta.policy_sha256, "policy_sha256")
-        extract_sha = _check_sha(meta.extract_sha256, "extract_sha256")
-        nonce = check_nonce(meta.nonce, "release meta: nonce")
-        self._check_cap(lifetime_epsilon)
-        uniq, eps = self._aggregate(as_digests(subject_hashes), per_subject_eps)
-        memo: list[tuple[str, np.ndarray, np.ndarray]] = []
-        for col, (sh, vh) in (memo_updates or {}).items():
-            if col not in cols or not cols[col]["memoized"]:
-                raise LedgerError(f"memo update for column {col!r}, which the release meta does not mark as "
-                                  "memoized. Mark it {'memoized': true} in columns, or drop the update.")
-            sh, vh = as_digests(sh), as_digests(vh, f"value hashes of column {col!r}")
-            if len(sh) != len(vh):
-                raise LedgerError(f"memo update for column {col!r}: {len(sh)} subject hashes but {len(vh)} value "
-                                  "hashes; give one value hash per subject.")
-            memo.append((col, sh, vh))
-        uniq_index = _Index(uniq)
-        memo_pos = []
-        for col, sh, vh in memo:
-            pos = uniq_index.find(sh)
-            if (pos < 0).any():
-                raise LedgerError(f"memo update for column {col!r}: {int((pos < 0).sum())} subject(s) are not among "
-                                  "the release's charged subjects; a memoized value is only recorded for a subject "
-                                  "this release charges.")
-            rev = np.unique(pos[::-1], return_index=True)[1]  # a repeated subject: its last value wins
-            keep = len(pos) - 1 - rev
-            memo_pos.append((col, pos[keep], vh[keep]))
-        columns_json = json.dumps(cols, sort_keys=True, separators=(",", ":"))
+        row, cols = _release_row(meta, lifetime_epsilon)
+        check_cap(lifetime_epsilon)
+        uniq, eps = aggregate(as_digests(subject_hashes), per_subject_eps)
+        memo_pos = _memo_positions(cols, memo_updates, uniq)
         c = self._conn
-        try:
-            c.execute("BEGIN IMMEDIATE")  # the write lock: waits up to BUSY_TIMEOUT_S for another job
-        except sqlite3.OperationalError as err:
-            raise LedgerError(f"ledger {self.path}: could not take the write lock ({err}) within "
-                              f"{BUSY_TIMEOUT_S:g} s; another job is recording. Nothing was recorded: run the "
-                              "release again when it has finished.") from None
+        self._begin_write()
         try:
             snap = self._load()  # under the lock: nobody can record between this read and the commit
             idx = snap.index.find(uniq)
-            known = idx >= 0
-            if lifetime_epsilon is not None:
-                spent = np.zeros(len(uniq))
-                spent[known] = snap.totals[idx[known]]
-                plan = self._plan(spent, eps, lifetime_epsilon)
-                if plan.over_count:
-                    raise BudgetExhaustedError(
-                        f"ledger {self.path}: recording this release would take {plan.over_count} subject(s) over "
-                        f"the lifetime eps {lifetime_epsilon:g} (by up to {plan.max_overshoot:.6g}); nothing was "
-                        "recorded. Leave those subjects out of the release (Ledger.charge_plan gives a mask), "
-                        "lower the release's eps, or raise the lifetime budget in the policy if that is "
-                        "justified.")
-            meta_now = dict(c.execute("SELECT name, value FROM meta"))
-            if key_fingerprint is not None:
-                self._bind_key(meta_now.get("key_fingerprint"), key_fingerprint)
-                if "key_fingerprint" not in meta_now:
-                    c.execute("INSERT INTO meta VALUES ('key_fingerprint', ?)", (key_fingerprint,))
-            head, count = meta_now["head"], meta_now["release_count"]
-            rid = int(count) + 1
-            # the new state: new subjects appended to the registry in digest order
-            n_old, n_new = len(snap.digests), int((~known).sum())
-            ids = idx.copy()
-            ids[~known] = n_old + np.arange(n_new)
-            added = uniq[~known]
-            totals = np.concatenate([snap.totals, np.zeros(n_new)])
-            totals[ids] += eps
-            states = dict(snap.states)
-            for col, pos, vh in memo_pos:
-                st = snap.state(col)
-                st = np.concatenate([st, np.zeros(n_new, dtype=DIGEST)]) if n_new else st.copy()
-                st[ids[pos]] = vh
-                states[col] = st
-            new = _Snapshot("", np.concatenate([snap.digests, added]), totals, states)
+            self._check_cap_locked(snap, idx, eps, lifetime_epsilon)
+            head, rid = self._head_for(key_fingerprint)
+            new, ids, added = _next_state(snap, idx, uniq, eps, memo_pos)
             arrays = new.arrays()
-            order = np.argsort(ids, kind="stable")
-            ids_sorted, eps_sorted = ids[order], eps[order]
-            row = {"id": rid, "time": meta.time or _utc_now(), "policy_sha256": policy_sha,
-                   "extract_sha256": extract_sha, "nonce": nonce, "columns": columns_json,
-                   "subjects_charged": len(uniq),
-                   "lifetime_epsilon": None if lifetime_epsilon is None else float(lifetime_epsilon),
+            row = {**row, "id": rid, "time": row["time"] or _utc_now(), "subjects_charged": len(uniq),
                    "state_sha256": _state_digest(arrays)}
-            row_hash = _row_hash(row, head, _spend_digest(ids_sorted, eps_sorted))
-            c.execute("INSERT INTO releases VALUES (:id, :time, :policy_sha256, :extract_sha256, :nonce, :columns, "
-                      ":subjects_charged, :lifetime_epsilon, :state_sha256, :prev_hash, :row_hash)",
-                      {**row, "prev_hash": head, "row_hash": row_hash})
-            c.execute("INSERT INTO release_spend VALUES (?, ?, ?)", (rid, *_encode_spend(ids_sorted, eps_sorted)))
-            if n_new:
-                self._append(_REGISTRY, added.tobytes())
-            self._put(_TOTALS, arrays[_TOTALS])
-            for col, _, _ in memo_pos:
-                self._put(_STATE_PREFIX + col, arrays[_STATE_PREFIX + col])
-            c.executemany("UPDATE meta SET value = ? WHERE name = ?",
-                          [(row_hash, "head"), (str(rid), "release_count")])
+            row_hash = self._write_release(row, head, arrays, ids, eps, added, [col for col, _, _ in memo_pos])
             c.execute("COMMIT")
         except BaseException:
             self._snap = None
@@ -749,6 +594,60 @@ class Ledger:
         new.head = row_hash
         self._snap = new
         return rid
+
+    def _begin_write(self) -> None:
+        try:
+            self._conn.execute("BEGIN IMMEDIATE")  # the write lock: waits up to BUSY_TIMEOUT_S for another job
+        except sqlite3.OperationalError as err:
+            raise LedgerError(f"ledger {self.path}: could not take the write lock ({err}) within "
+                              f"{BUSY_TIMEOUT_S:g} s; another job is recording. Nothing was recorded: run the "
+                              "release again when it has finished.") from None
+
+    def _check_cap_locked(self, snap: _Snapshot, idx: np.ndarray, eps: np.ndarray, cap: float | None) -> None:
+        """Refuse the whole release if any subject would go over the lifetime eps (under the lock)."""
+        if cap is None:
+            return
+        known = idx >= 0
+        spent = np.zeros(len(idx))
+        spent[known] = snap.totals[idx[known]]
+        plan = cap_plan(spent, eps, cap)
+        if plan.over_count:
+            raise BudgetExhaustedError(
+                f"ledger {self.path}: recording this release would take {plan.over_count} subject(s) over "
+                f"the lifetime eps {cap:g} (by up to {plan.max_overshoot:.6g}); nothing was "
+                "recorded. Leave those subjects out of the release (Ledger.charge_plan gives a mask), "
+                "lower the release's eps, or raise the lifetime budget in the policy if that is "
+                "justified.")
+
+    def _head_for(self, key_fingerprint: str | None) -> tuple[str, int]:
+        """The chain's head and the new release's id; binds the ledger to the key on first use."""
+        c = self._conn
+        meta_now = dict(c.execute("SELECT name, value FROM meta"))
+        if key_fingerprint is not None:
+            self._bind_key(meta_now.get("key_fingerprint"), key_fingerprint)
+            if "key_fingerprint" not in meta_now:
+                c.execute("INSERT INTO meta VALUES ('key_fingerprint', ?)", (key_fingerprint,))
+        return meta_now["head"], int(meta_now["release_count"]) + 1
+
+    def _write_release(self, row: dict[str, Any], head: str, arrays: dict[str, bytes], ids: np.ndarray,
+                       eps: np.ndarray,
+                       added: np.ndarray, memo_cols: list[str]) -> str:
+        """Insert the release row and its spend, store the new state, move the head; returns the row hash."""
+        c = self._conn
+        order = np.argsort(ids, kind="stable")
+        ids_sorted, eps_sorted = ids[order], eps[order]
+        row_hash = _row_hash(row, head, _spend_digest(ids_sorted, eps_sorted))
+        c.execute("INSERT INTO releases VALUES (:id, :time, :policy_sha256, :extract_sha256, :nonce, :columns, "
+                  ":subjects_charged, :lifetime_epsilon, :state_sha256, :prev_hash, :row_hash)",
+                  {**row, "prev_hash": head, "row_hash": row_hash})
+        c.execute("INSERT INTO release_spend VALUES (?, ?, ?)", (row["id"], *_encode_spend(ids_sorted, eps_sorted)))
+        if len(added):
+            self._append(_REGISTRY, added.tobytes())
+        self._put(_TOTALS, arrays[_TOTALS])
+        for col in memo_cols:
+            self._put(_STATE_PREFIX + col, arrays[_STATE_PREFIX + col])
+        c.executemany("UPDATE meta SET value = ? WHERE name = ?", [(row_hash, "head"), (str(row["id"]), "release_count")])
+        return row_hash
 
     def _put(self, name: str, data: bytes) -> None:
         """Replace a stored array (in parts of at most PART_BYTES)."""
@@ -783,39 +682,11 @@ class Ledger:
             prev = GENESIS
             for n, values in enumerate(rows, start=1):
                 r = dict(zip(names, values))
-                rid = r["id"]
-                if rid != n:
-                    return VerifyResult(False, len(rows), n, f"release {n} is missing (the next stored id is {rid}):"
-                                        " a release was deleted or inserted", prev)
-                if r["prev_hash"] != prev:
-                    return VerifyResult(False, len(rows), rid, f"release {rid} does not link to release {rid - 1} "
-                                        "(prev_hash differs): a release before it was changed, deleted or inserted",
-                                        prev)
-                spend = c.execute("SELECT subject_ids, eps FROM release_spend WHERE release_id = ?",
-                                  (rid,)).fetchone()
-                try:
-                    if spend is None:
-                        raise ValueError("missing")
-                    ids, e = _decode_spend(*spend)
-                    ok = len(ids) == len(e) and (len(ids) == 0 or (ids[0] >= 0 and ids[-1] < n_reg
-                                                                    and np.all(np.diff(ids) > 0)))
-                except (ValueError, TypeError, zlib.error):
-                    ok = False
-                if not ok:
-                    return VerifyResult(False, len(rows), rid, f"release {rid}: its spend is missing or damaged",
-                                        prev)
-                if len(ids) != r["subjects_charged"]:
-                    return VerifyResult(False, len(rows), rid, f"release {rid}: {len(ids)} subjects in its spend, "
-                                        f"but the release says {r['subjects_charged']}", prev)
-                try:
-                    expected = _row_hash(r, r["prev_hash"], _spend_digest(ids, e))
-                except (TypeError, ValueError):
-                    expected = None
-                if expected != r["row_hash"]:
-                    return VerifyResult(False, len(rows), rid, f"release {rid}: its row or its spend was changed "
-                                        "after it was recorded (row_hash differs)", prev)
+                broken, spend = self._check_link(r, n, prev, n_reg)
+                if broken is not None:
+                    return VerifyResult(False, len(rows), broken[0], broken[1], prev)
                 prev = r["row_hash"]
-                acc[ids] += e
+                acc[spend[0]] += spend[1]
             if meta.get("head") != prev or meta.get("release_count") != str(len(rows)):
                 return VerifyResult(False, len(rows), len(rows) + 1,
                                     f"the ledger's head records {meta.get('release_count')} release(s) but "
@@ -835,6 +706,39 @@ class Ledger:
             return VerifyResult(True, len(rows), None, f"chain intact over {len(rows)} release(s)", prev)
         finally:
             c.execute("COMMIT")
+
+    def _check_link(self, r: dict[str, Any], n: int, prev: str, n_reg: int
+                    ) -> tuple[tuple[int, str] | None, tuple[np.ndarray, np.ndarray]]:
+        """Release ``n`` of the chain: ((its id, what is broken) or None, its spend (registry indices, eps))."""
+        rid = r["id"]
+        none = (np.zeros(0, dtype=np.int64), np.zeros(0))
+        if rid != n:
+            return (n, f"release {n} is missing (the next stored id is {rid}): a release was deleted or inserted"), none
+        if r["prev_hash"] != prev:
+            why = (f"release {rid} does not link to release {rid - 1} (prev_hash differs): a release before it was "
+                   "changed, deleted or inserted")
+            return (rid, why), none
+        spend = self._conn.execute("SELECT subject_ids, eps FROM release_spend WHERE release_id = ?",
+                                   (rid,)).fetchone()
+        try:
+            if spend is None:
+                raise ValueError("missing")
+            ids, e = _decode_spend(*spend)
+            ok = len(ids) == len(e) and (len(ids) == 0 or (ids[0] >= 0 and ids[-1] < n_reg
+                                                            and np.all(np.diff(ids) > 0)))
+        except (ValueError, TypeError, zlib.error):
+            ok = False
+        if not ok:
+            return (rid, f"release {rid}: its spend is missing or damaged"), none
+        if len(ids) != r["subjects_charged"]:
+            return (rid, f"release {rid}: {len(ids)} subjects in its spend, but the release says {r['subjects_charged']}"), none
+        try:
+            expected = _row_hash(r, r["prev_hash"], _spend_digest(ids, e))
+        except (TypeError, ValueError):
+            expected = None
+        if expected != r["row_hash"]:
+            return (rid, f"release {rid}: its row or its spend was changed after it was recorded (row_hash differs)"), none
+        return None, (ids, e)
 
     def spend_totals(self) -> np.ndarray:
         """Total eps of every subject in the ledger (registry order; no identifiers)."""
@@ -880,54 +784,6 @@ class Ledger:
         return out
 
 
-
-# -- the charges of a release (the release's pre-pass adds them up) ------------------------
-
-@dataclass
-class LedgerCharges:
-    """What a release charges, from its pre-pass (all steward-only, data-dependent)."""
-
-    subjects: np.ndarray          # distinct subject hashes (S32), sorted
-    eps: np.ndarray               # eps each distinct subject is charged
-    within: np.ndarray            # per distinct subject: stays within lifetime_epsilon
-    row_within: np.ndarray        # per input row: its subject stays within (rows to release)
-    memo: dict[str, tuple[np.ndarray, np.ndarray, np.ndarray]]  # column -> (row index, subject hash, value hash)
-    over_count: int = 0
-    max_overshoot: float = 0.0
-
-    def memo_updates(self) -> dict[str, tuple[np.ndarray, np.ndarray]]:
-        """Memo state of the released rows only (held-back subjects keep their old state)."""
-        out = {}
-        for col, (rows, sh, vh) in self.memo.items():
-            keep = self.row_within[rows]
-            out[col] = (sh[keep], vh[keep])
-        return out
-
-
-def _concat_memo(parts: list[tuple[np.ndarray, np.ndarray, np.ndarray]]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    return tuple(np.concatenate([pt[i] for pt in parts]) if parts else np.zeros(0, dtype=dt)  # type: ignore[return-value]
-                 for i, dt in enumerate((np.int64, "S32", "S32")))
-
-
-def charges_of(hashes: list[np.ndarray], eps: list[np.ndarray],
-               memo: Mapping[str, list[tuple[np.ndarray, np.ndarray, np.ndarray]]], ledger: Any | None,
-               cap: float | None) -> LedgerCharges:
-    """A release's charges from its rows' subject hashes and eps (in batches, input order): one
-    charge per distinct subject (the sum of its rows), checked against ``cap`` with what the
-    ``ledger`` (None: none yet) says each subject has spent; ``memo``: per memoized column, the
-    (row index, subject hash, value hash) batches of the rows whose state the release sets."""
-    all_h = np.concatenate(hashes) if hashes else np.zeros(0, dtype="S32")
-    all_e = np.concatenate(eps) if eps else np.zeros(0)
-    uniq, inv = np.unique(all_h, return_inverse=True)
-    inv = inv.reshape(-1)
-    eps_u = np.bincount(inv, weights=all_e, minlength=len(uniq))
-    if cap is not None:
-        spent = ledger.spent(uniq) if ledger is not None else np.zeros(len(uniq))
-        over, overshoot, within = Ledger._plan(spent, eps_u, cap)
-    else:
-        within, over, overshoot = np.ones(len(uniq), dtype=bool), 0, 0.0
-    return LedgerCharges(uniq, eps_u, within, within[inv], {c: _concat_memo(parts) for c, parts in memo.items()},
-                         over, max(overshoot, 0.0))
 
 
 def default_ledger_path() -> Path:

@@ -1,0 +1,41 @@
+"""The privacy ledger (steward only): how much eps each subject has spent over all releases.
+
+    store.py    the SQLite store: schema, columnar state, hash chain, record, verify, show
+    charges.py  the charges of a release (per subject, against the lifetime budget)
+    hashes.py   keyed digests of subjects and values (nothing raw goes in)
+    errors.py   LedgerError, BudgetExhaustedError
+"""
+
+from .charges import (
+                    CAP_TOLERANCE,
+                    ChargePlan,
+                    LedgerCharges,
+                    aggregate,
+                    cap_plan,
+                    charges_of,
+                    check_cap,
+)
+from .errors import BudgetExhaustedError, LedgerError
+from .hashes import DIGEST, as_digests, memo_value_hashes, subject_hashes, value_hashes
+from .store import (
+                    APPLICATION_ID,
+                    BUSY_TIMEOUT_S,
+                    DEFAULT_NAME,
+                    GENESIS,
+                    PART_BYTES,
+                    SCHEMA_VERSION,
+                    SPEND_NOTE,
+                    Ledger,
+                    ReleaseMeta,
+                    VerifyResult,
+                    _decode_spend,
+                    _encode_spend,
+                    _Index,
+                    default_ledger_path,
+)
+
+__all__ = ["APPLICATION_ID", "BUSY_TIMEOUT_S", "CAP_TOLERANCE", "DEFAULT_NAME", "DIGEST", "GENESIS", "PART_BYTES",
+           "SCHEMA_VERSION", "SPEND_NOTE", "BudgetExhaustedError", "ChargePlan", "Ledger", "LedgerCharges",
+           "LedgerError", "ReleaseMeta", "VerifyResult", "_Index", "_decode_spend", "_encode_spend", "aggregate",
+           "as_digests", "cap_plan", "charges_of", "check_cap", "default_ledger_path", "memo_value_hashes",
+           "subject_hashes", "value_hashes"]
