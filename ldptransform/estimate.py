@@ -33,6 +33,7 @@ import math
 from dataclasses import dataclass, field
 from pathlib import Path
 from statistics import NormalDist
+from collections.abc import Sequence
 from typing import Any, Iterator
 
 import numpy as np
@@ -190,6 +191,7 @@ class CategoricalStats:
         if est is None:
             return tuple(FrequencyResult(label, None, None, None, None, 0.0, None, what[i])
                          for i, label in enumerate(m.categories))
+        assert se is not None
         cons = consistent(est, method)
         return tuple(FrequencyResult(label, *_interval(est[i], se[i], z), float(est[i] * rows), float(cons[i]),
                                      what[i]) for i, label in enumerate(m.categories))
@@ -277,11 +279,11 @@ class CrossStats:
     a: mech.FrequencyOracle
     b: mech.FrequencyOracle
     n: int = 0
-    S: np.ndarray = field(default=None)    # sum u_a u_b          (ka, kb)
-    SS: np.ndarray = field(default=None)   # sum (u_a u_b)^2      (ka, kb)
-    T: np.ndarray = field(default=None)    # sum u_a^2 u_b        (ka, kb)  cov(joint, marginal a)
-    SA: np.ndarray = field(default=None)   # sum u_a              (ka,)
-    SAA: np.ndarray = field(default=None)  # sum u_a^2            (ka,)
+    S: np.ndarray = field(default=None)  # type: ignore[arg-type]  # sum u_a u_b          (ka, kb)
+    SS: np.ndarray = field(default=None)  # type: ignore[arg-type]  # sum (u_a u_b)^2      (ka, kb)
+    T: np.ndarray = field(default=None)  # type: ignore[arg-type]  # sum u_a^2 u_b        (ka, kb)  cov(joint, marginal a)
+    SA: np.ndarray = field(default=None)  # type: ignore[arg-type]  # sum u_a              (ka,)
+    SAA: np.ndarray = field(default=None)  # type: ignore[arg-type]  # sum u_a^2            (ka,)
 
     def __post_init__(self) -> None:
         ka, kb = self.a.k, self.b.k
@@ -324,7 +326,8 @@ class CrossStats:
                 ok = marg[i] > 0 and np.isfinite(var_R[i, j])
                 jt = _mean(joint[i, j], joint_se[i, j], z, f"share of rows with {_is(rows, la)} and "
                            f"{_is(columns, lb)} among all rows")
-                within = _mean(*((R[i, j], math.sqrt(max(var_R[i, j], 0.0))) if ok else (None, None)), z,
+                r_est, r_se = (R[i, j], math.sqrt(max(var_R[i, j], 0.0))) if ok else (None, None)
+                within = _mean(r_est, r_se, z,
                                f"share of rows with {_is(columns, lb)} among rows with {_is(rows, la)}")
                 cells.append(CrossTabCell(la, lb, jt, float(cons[i, j]), within))
         return CrossTabResult(rows, columns, n, tuple(cells), method)
@@ -338,11 +341,11 @@ class GroupMeanStats:
     group: mech.FrequencyOracle
     shift: float
     n: int = 0
-    A: np.ndarray = field(default=None)    # sum (y-s) u_a
-    AA: np.ndarray = field(default=None)   # sum (y-s)^2 u_a^2
-    C: np.ndarray = field(default=None)    # sum (y-s) u_a^2
-    SA: np.ndarray = field(default=None)   # sum u_a
-    SAA: np.ndarray = field(default=None)  # sum u_a^2
+    A: np.ndarray = field(default=None)  # type: ignore[arg-type]  # sum (y-s) u_a
+    AA: np.ndarray = field(default=None)  # type: ignore[arg-type]  # sum (y-s)^2 u_a^2
+    C: np.ndarray = field(default=None)  # type: ignore[arg-type]  # sum (y-s) u_a^2
+    SA: np.ndarray = field(default=None)  # type: ignore[arg-type]  # sum u_a
+    SAA: np.ndarray = field(default=None)  # type: ignore[arg-type]  # sum u_a^2
 
     def __post_init__(self) -> None:
         for name in ("A", "AA", "C", "SA", "SAA"):
@@ -494,14 +497,14 @@ def _check_analyses(manifest: Manifest, an: Analyses) -> None:
         if a == b:
             raise UsageError("--crosstab needs two different columns")
     for y, g in an.mean_by:
-        c = need(y, "--mean-by", ("numeric",))
-        if is_distribution(mech.build(c.mechanism)):
-            raise UsageError(f"--mean-by: column {y!r} uses {c.mechanism['mechanism']}, which estimates distributions; "
+        spec = need(y, "--mean-by", ("numeric",)).mechanism or {}
+        if is_distribution(mech.build(spec)):
+            raise UsageError(f"--mean-by: column {y!r} uses {spec['mechanism']}, which estimates distributions; "
                              "its mean comes from the distribution (see its 'distribution' entry), not per row.")
         need(g, "--mean-by", ("categorical",))
     for col, _, _ in an.ranges:
-        c = by.get(col)
-        if c is None or c.mechanism is None or not (c.type == "binned" or is_distribution(mech.build(c.mechanism))):
+        e = by.get(col)
+        if e is None or e.mechanism is None or not (e.type == "binned" or is_distribution(mech.build(e.mechanism))):
             raise UsageError(f"--range: column {col!r} has no distribution in this extract (ranges need a numeric "
                              "column released with bins: or a distribution mechanism such as square-wave or "
                              "hierarchy).")
@@ -521,7 +524,7 @@ class Accumulated:
 
 def _empty_stats(manifest: Manifest, an: Analyses) -> Accumulated:
     entries = {c.name: c for c in manifest.columns if c.mechanism is not None}
-    cols = {name: stats_for(e) for name, e in entries.items()}
+    cols: dict[str, Any] = {name: stats_for(e) for name, e in entries.items()}
     xt = {(a, b): CrossStats(cols[a].mechanism, cols[b].mechanism) for a, b in an.crosstabs}
     mb = {(y, g): GroupMeanStats(cols[g].mechanism, cols[y].shift) for y, g in an.mean_by}
     return Accumulated(manifest, 0, cols, xt, mb, [])
@@ -533,14 +536,14 @@ def _add_batches(acc: Accumulated, batches: Iterator[tuple[pa.RecordBatch, dict[
     entries = {c.name: c for c in acc.manifest.columns if c.mechanism is not None}
     for batch, arrays in batches:
         masks = {name: reported_mask(a) for name, a in arrays.items()}
-        for name, a in arrays.items():
+        for name, arrs in arrays.items():
             st = acc.columns[name]
-            mine = _take(a, masks[name])
+            mine = _take(arrs, masks[name])
             if check_alphabet:
                 bad = st.mechanism.count_invalid(mine)
                 if bad:
                     raise DataError(f"{where}: column {name!r} has {bad} value(s) outside the output alphabet of "
-                                    f"its mechanism ({entries[name].mechanism['mechanism']}) near data row "
+                                    f"its mechanism ({(entries[name].mechanism or {}).get('mechanism')}) near data row "
                                     f"{row0 + acc.rows + 1}. The extract was altered or does not belong to its "
                                     "manifest; run `ldpt validate` for details.")
             st.add(mine)
@@ -710,7 +713,8 @@ def _distribution_result(dist: Any, an: Analyses, col: str, confidence: float, w
     qs = tuple(QuantileResult(q, *_interval_fields(dist.quantile_ci(q, confidence)),
                               estimand=f"{q:g}-quantile of {what} ({buckets})") for q in an.quantiles)
     rngs = tuple(RangeResult(lo, hi, *_interval_fields(dist.range_ci(lo, hi, confidence)),
-                             estimand=f"share of rows with {col} in [{lo:g}, {hi:g}) among all rows ({what}; {buckets})")
+                             estimand=f"share of rows with {col} in [{lo:g}, {hi:g}) among all rows "
+                                      f"({what}; {buckets})")
                  for c, lo, hi in an.ranges if c == col)
     hist = dist.histogram()
     cdf = [float(v) for v in np.atleast_1d(dist.cdf(np.asarray(hist["edges"])))]
@@ -734,7 +738,9 @@ def _column_result(entry: ColumnEntry, st: Any, manifest: Manifest, rows: int, c
 
             cov = st.covariance()
             prefix_se = np.sqrt(np.maximum(np.diag(np.cumsum(np.cumsum(cov, axis=0), axis=1)), 0.0))
-            d = binned_distribution(np.asarray(entry.bins, float), st.estimates()[0], prefix_se, cov=cov, n=st.n)
+            shares = st.estimates()[0]
+            assert shares is not None  # st.n > 1
+            d = binned_distribution(np.asarray(entry.bins, float), shares, prefix_se, cov=cov, n=st.n)
             dist = _distribution_result(d, an, entry.name, confidence, describe_values(manifest, entry))
         return ColumnResult(**head, family="frequency", frequencies=freqs,
                             consistent_method=f"{an.consistency} (post-processed to a valid distribution; biased, "
@@ -778,7 +784,7 @@ def report(manifest: Manifest, stats: dict[str, Any], rows: int, confidence: flo
     return EstimateResult(rows, confidence, columns, SE_METHOD, crosstabs, grouped, extracts, public)
 
 
-def estimate(extract: Path | str | list[Path | str], manifest_path: Path | str | list | None = None, *,
+def estimate(extract: Path | str | Sequence[Path | str], manifest_path: Path | str | Sequence | None = None, *,
              confidence: float = 0.95, batch_rows: int = DECODE_BATCH_ROWS,
              crosstabs: list[tuple[str, str]] | None = None, mean_by: list[tuple[str, str]] | None = None,
              quantiles: list[float] | None = None, ranges: list[tuple[str, float, float]] | None = None,
@@ -789,7 +795,8 @@ def estimate(extract: Path | str | list[Path | str], manifest_path: Path | str |
     be a list: extracts with identical mechanism specs are merged by adding their sufficient
     statistics."""
     z_value(confidence)
-    extracts = list(extract) if isinstance(extract, (list, tuple)) else [extract]
+    extracts: list[Any] = list(extract) if isinstance(extract, (list, tuple)) else [extract]
+    manifests: list[Any] | None
     if isinstance(manifest_path, (list, tuple)):
         manifests = list(manifest_path)
     else:

@@ -91,55 +91,59 @@ def _check_secrets(manifest: Manifest, text: str, key: SecretKey | None, rep: _C
                     f"{key.fingerprint()}, the manifest records {manifest.key_fingerprint}: not the release's key")
         else:
             rep.add("key matches", True, f"key fingerprint {manifest.key_fingerprint} matches the manifest")
-    rep.add("no key material", not problems,
-            "the manifest holds only the key fingerprint" if not problems else "the manifest contains " + "; ".join(problems))
+    rep.add("no key material", not problems, "the manifest holds only the key fingerprint" if not problems else
+            "the manifest contains " + "; ".join(problems))
 
 
-def _check_privacy(manifest: Manifest, rep: _Checks) -> None:
-    issues = []
+def _channel_issues(manifest: Manifest, issues: list[str]) -> float:
+    """Each column's channel against its stated eps; returns the sum of the column epsilons."""
     total = 0.0
     for c in manifest.columns:
         if c.mechanism is None:
             continue
         try:
-            m = mech.build(c.mechanism)
+            built = mech.build(c.mechanism)
         except LdptError as err:
             issues.append(f"column {c.name!r}: mechanism spec cannot be rebuilt ({err})")
             continue
         eps = float(c.mechanism.get("epsilon", float("nan")))
         total += eps
-        worst = m.max_log_ratio()
+        worst = built.max_log_ratio()
         if not worst <= eps + 1e-9:
             issues.append(f"column {c.name!r}: its channel allows a likelihood ratio of e^{worst:.6g}, above its "
                           f"stated eps {eps:g}")
+    return total
+
+
+def _row_loss(manifest: Manifest, total: float, issues: list[str]) -> tuple[float, list[str], str, str, str]:
+    """A row's privacy loss under the manifest's strategy: (loss, columns whose report_rate does
+    not match, and the wording of the budget check)."""
     budget = manifest.privacy.epsilon_per_row_budget
     priv = manifest.privacy
     privatized = [c for c in manifest.columns if c.mechanism is not None]
-    if priv.strategy == "sample":
-        # each row reports m of its d columns (chosen independently of the data): its loss is
-        # m x the largest column eps (sequential composition over the reported columns)
-        d, m = priv.privatized_columns, priv.reported_columns
-        if d != len(privatized) or m is None or not 1 <= m <= d:
-            issues.append(f"strategy sample: the manifest says each row reports {m} of {d} columns, but it "
-                          f"describes {len(privatized)} privatized columns")
-            m = d = len(privatized)
-        total = m * max((float(c.mechanism.get("epsilon", float("nan"))) for c in privatized), default=0.0)
-        rates = [c.name for c in privatized if abs(c.report_rate - m / max(d, 1)) > 1e-12]
-        adds = used = "the reported columns use"
-        summary = (f"each row reports {m} of {d} columns (chosen independently of the data) at eps up to "
-                   f"{total / max(m, 1):g} each: {total:g} of {budget:g} per row (sequential composition over the "
-                   "reported columns)")
-    else:
+    if priv.strategy != "sample":
         rates = [c.name for c in manifest.columns if c.report_rate != 1.0]
-        adds, used = "the column epsilons add up to", "the columns add up to"
-        summary = f"the columns use {total:g} of {budget:g} per row (sequential composition)"
-    if rates:
-        issues.append(f"column(s) {', '.join(map(repr, rates))}: report_rate does not match the strategy")
-    if total > budget + EPS_TOLERANCE:
-        issues.append(f"{adds} {total:g}, above the stated budget {budget:g} per row")
-    if abs(total - manifest.privacy.epsilon_per_row_used) > 1e-9:
-        issues.append(f"privacy.epsilon_per_row_used says {manifest.privacy.epsilon_per_row_used:g} but {used} "
-                      f"{total:g}")
+        return (total, rates, "the column epsilons add up to", "the columns add up to",
+                f"the columns use {total:g} of {budget:g} per row (sequential composition)")
+    # each row reports m of its d columns (chosen independently of the data): its loss is
+    # m x the largest column eps (sequential composition over the reported columns)
+    d, m_or_none = priv.privatized_columns, priv.reported_columns
+    if d != len(privatized) or m_or_none is None or not 1 <= m_or_none <= d:
+        issues.append(f"strategy sample: the manifest says each row reports {m_or_none} of {d} columns, but it "
+                      f"describes {len(privatized)} privatized columns")
+        m_or_none = d = len(privatized)
+    m = m_or_none
+    total = m * max((float((c.mechanism or {}).get("epsilon", float("nan"))) for c in privatized), default=0.0)
+    rates = [c.name for c in privatized if abs(c.report_rate - m / max(d, 1)) > 1e-12]
+    summary = (f"each row reports {m} of {d} columns (chosen independently of the data) at eps up to "
+               f"{total / max(m, 1):g} each: {total:g} of {budget:g} per row (sequential composition over the "
+               "reported columns)")
+    return total, rates, "the reported columns use", "the reported columns use", summary
+
+
+def _policy_issues(manifest: Manifest, issues: list[str]) -> None:
+    """The embedded policy against the manifest: hash, strategy, each column's eps."""
+    priv = manifest.privacy
     try:
         lp = parse_policy(manifest.policy, "embedded in the manifest")
         if lp.policy.sha256() != manifest.policy_sha256:
@@ -154,6 +158,20 @@ def _check_privacy(manifest: Manifest, rep: _Checks) -> None:
                 issues.append(f"column {c.name!r}: mechanism eps differs from the policy's")
     except LdptError as err:
         issues.append(f"the embedded policy is invalid ({err})")
+
+
+def _check_privacy(manifest: Manifest, rep: _Checks) -> None:
+    issues: list[str] = []
+    budget = manifest.privacy.epsilon_per_row_budget
+    total, rates, adds, used, summary = _row_loss(manifest, _channel_issues(manifest, issues), issues)
+    if rates:
+        issues.append(f"column(s) {', '.join(map(repr, rates))}: report_rate does not match the strategy")
+    if total > budget + EPS_TOLERANCE:
+        issues.append(f"{adds} {total:g}, above the stated budget {budget:g} per row")
+    if abs(total - manifest.privacy.epsilon_per_row_used) > 1e-9:
+        issues.append(f"privacy.epsilon_per_row_used says {manifest.privacy.epsilon_per_row_used:g} but {used} "
+                      f"{total:g}")
+    _policy_issues(manifest, issues)
     rep.add("privacy budget", not issues,
             f"every channel meets its eps exactly; {summary}" if not issues else "; ".join(issues))
     public = manifest.privacy.public_columns
@@ -172,6 +190,12 @@ class _Truth:
     masses: dict[str, np.ndarray]   # columns with a distribution: bucket shares of its histogram
 
 
+def _codes(plan: Any) -> int:
+    """Number of codes of a categorical or binned column (its frequency oracle's k)."""
+    oracle: Any = plan.rc.mechanism
+    return int(oracle.k)
+
+
 def _true_stats(raw: Path, manifest: Manifest, dists: dict[str, Distribution] | None = None) -> _Truth:
     """True frequencies and means of the raw data as the policy encodes them (missing values
     filled, values clipped to the bounds, categories coded), and for every column in ``dists``
@@ -181,7 +205,7 @@ def _true_stats(raw: Path, manifest: Manifest, dists: dict[str, Distribution] | 
     lp = parse_policy(manifest.policy, "embedded in the manifest")
     src = TableSource(raw, csv_null_values=lp.policy.input.csv_null_values, csv_delimiter=lp.policy.input.csv_delimiter)
     plans = [p for p in plan_columns(lp, src.column_names, str(raw)) if p.rc.mechanism is not None]
-    counts = {p.rc.name: np.zeros(p.rc.mechanism.k, dtype=np.int64) for p in plans if p.rc.type != "numeric"}
+    counts = {p.rc.name: np.zeros(_codes(p), dtype=np.int64) for p in plans if p.rc.type != "numeric"}
     sums = {p.rc.name: 0.0 for p in plans if p.rc.type == "numeric"}
     masses = {name: np.zeros(len(d.mass)) for name, d in dists.items()}
     n = 0
@@ -223,7 +247,8 @@ def validate(extract: Path | str, manifest_path: Path | str | None = None, *, ra
                 else f"sha256 of the file ({digest[:16]}...) differs from the manifest "
                      f"({manifest.extract.sha256[:16]}...): the extract was changed or is not this manifest's")
     if extract.name != manifest.extract.file:
-        rep.add("file name", None, f"the manifest describes {manifest.extract.file!r}; this file is named {extract.name!r}")
+        rep.add("file name", None,
+                f"the manifest describes {manifest.extract.file!r}; this file is named {extract.name!r}")
     _check_privacy(manifest, rep)
     _check_secrets(manifest, text, key, rep)
 
@@ -272,7 +297,7 @@ def _check_quality(manifest: Manifest, rows: int, rep: _Checks) -> None:
     lp = parse_policy(manifest.policy, "embedded in the manifest")
     default = lp.policy.quality
     configs = lp.by_name
-    rate = manifest.privacy.reported_columns / manifest.privacy.privatized_columns \
+    rate = (manifest.privacy.reported_columns or 0) / manifest.privacy.privatized_columns \
         if manifest.privacy.strategy == "sample" and manifest.privacy.privatized_columns else 1.0
     missed, met, lines = [], 0, []
     for c in manifest.columns:
@@ -324,7 +349,8 @@ def _check_fit(manifest: Manifest, fits: dict[str, Any], rep: _Checks) -> None:
         rep.add("fit", None, "no column has a goodness-of-fit test" + (": " + "; ".join(untested) if untested else ""))
         return
     level = FIT_ALPHA / total
-    failed, passed = [], []
+    failed: list[str] = []
+    passed: list[str] = []
     for name, f in tested.items():
         for r in f.results(level):
             if r.get("tested") is False:
@@ -366,8 +392,9 @@ def _scan(extract: Path, mpath: Path, manifest: Manifest) -> tuple[dict[str, int
                 per_row += present
                 arrays = [a.filter(pa.array(present)) for a in arrays]
             k += built[name].count_invalid(arrays)
-            if fits[name] is not None:
-                fits[name].add(arrays)
+            fit = fits[name]
+            if fit is not None:
+                fit.add(arrays)
             if k:
                 bad[name] = bad.get(name, 0) + k
         if priv.strategy == "sample":
@@ -513,11 +540,11 @@ def _calibrate(raw: Path, manifest: Manifest, stats: dict[str, Any], rows: int, 
     with_interval = [e for e in entries if e.inside is not None]
     inside = sum(bool(e.inside) for e in with_interval)
     total = len(with_interval)
-    worst = max(judged, key=lambda e: e.score) if judged else None
+    worst = max(judged, key=lambda e: e.score or 0.0) if judged else None
     worst_at = "-" if worst is None else f"{worst.column}" + (
         f"={worst.value}" if worst.statistic == "frequency" else f" {worst.statistic}" +
         (f" {worst.value}" if worst.value is not None else ""))
-    max_z = 0.0 if worst is None else float(worst.score)
+    max_z = 0.0 if worst is None else float(worst.score or 0.0)
     crit = NormalDist().inv_cdf(1 - FAMILY_ALPHA / (2 * max(len(judged), 1)))
     ok: bool | None = max_z <= crit
     share = inside / total if total else float("nan")
