@@ -20,7 +20,7 @@ import pyarrow.compute as pc
 from pydantic import BaseModel, ConfigDict, Field
 
 from ..errors import PolicyError
-from ..keys import to_below, to_unit, unit_below
+from ..random.variates import to_below, to_unit, unit_below
 from .base import Mechanism, check_epsilon, register
 from .bounds import frequency_lower_bound
 from .fit import (

@@ -61,7 +61,7 @@ import pyarrow.compute as pc
 from pydantic import BaseModel
 
 from ..errors import PolicyError
-from ..keys import to_unit
+from ..random.variates import to_unit
 from .base import MeanMechanism, register
 from .fit import HullFit
 from .numeric import DEFAULT_GRID, GridMechanismParams, grid_position

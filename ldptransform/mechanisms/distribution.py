@@ -51,7 +51,7 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from ..distribution import Distribution, frequency_covariance
 from ..errors import PolicyError
-from ..keys import to_below, to_unit
+from ..random.variates import to_below, to_unit
 from .base import DistributionMechanism, check_epsilon, register
 from .categorical import GRR, HASH_PRIME, OLH, SupportSizeFit
 from .fit import FitResult, FitStats, HullFit, _impossible_result

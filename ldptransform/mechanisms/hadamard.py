@@ -29,7 +29,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from ..keys import unit_below
+from ..random.variates import unit_below
 from .base import register
 from .categorical import FrequencyOracle
 from .fit import FitResult, SupportBoundsFit, _result

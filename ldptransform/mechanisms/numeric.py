@@ -42,7 +42,7 @@ import pyarrow.compute as pc
 from pydantic import BaseModel, ConfigDict, Field
 
 from ..errors import PolicyError
-from ..keys import to_unit
+from ..random.variates import to_unit
 from .base import MeanMechanism, NoParams, check_epsilon, register
 from .fit import HullFit
 

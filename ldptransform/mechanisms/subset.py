@@ -22,7 +22,7 @@ import pyarrow as pa
 from pydantic import BaseModel, ConfigDict, Field
 
 from ..errors import PolicyError
-from ..keys import to_below, unit_below
+from ..random.variates import to_below, unit_below
 from .base import register
 from .categorical import FrequencyOracle, _as_strings, bits_to_strings, strings_to_bits
 from .fit import SupportBoundsFit
