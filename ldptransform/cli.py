@@ -27,7 +27,7 @@ from .errors import LdptError
 if TYPE_CHECKING:  # pragma: no cover
     import pandas as pd
 
-    from .results import EstimateResult
+    from .results import ColumnResult, CrossTabResult, EstimateResult, GroupedMeanResult, MeanResult
 
 app = typer.Typer(no_args_is_help=True, add_completion=False, pretty_exceptions_enable=False,
                   help="Release row-level extracts under local differential privacy, and decode them.")
@@ -123,7 +123,8 @@ def privatize(
     key: Path = typer.Option(..., "--key", help="Secret key file made by `ldpt key new`."),
     out: Path = typer.Option(..., "--out", help="Extract to write: a .csv or .parquet file, or a folder path "
                              "(no extension) for a Parquet dataset of parts."),
-    manifest: Optional[Path] = typer.Option(None, "--manifest", help="Manifest path [default: OUT with .manifest.json]."),
+    manifest: Optional[Path] = typer.Option(None, "--manifest",
+                                            help="Manifest path [default: OUT with .manifest.json]."),
     diagnostics: Optional[Path] = typer.Option(
         None, "--diagnostics", help="Steward-only diagnostics file [default: in the private folder, "
         "$LDPT_PRIVATE_DIR or ~/.local/state/ldptransform]."),
@@ -204,6 +205,65 @@ def _print(*args: object) -> None:
     out_console.print(*args)
 
 
+def _column_tables(name: str, col: "ColumnResult") -> None:
+    title = escape(f"{name}: {col.type}, {col.mechanism}, eps {col.epsilon:g}" +
+                   (f", {col.rows_reported} rows reported" if col.rows_reported is not None else ""))
+    if col.family == "frequency":
+        t = Table(title=title, title_justify="left")
+        for h in ("value", "share", "unbiased", "se", "ci_low", "ci_high"):
+            t.add_column(h, justify="left" if h == "value" else "right")
+        for f in col.frequencies:
+            t.add_row(escape(f.value), *(_num(v, ".4f") for v in (f.consistent, f.estimate, f.se, f.ci_low,
+                                                                  f.ci_high)))
+        _print(t)
+    if col.mean is not None:
+        t = Table(title=title, title_justify="left")
+        for h in ("statistic", "estimate", "se", "ci_low", "ci_high"):
+            t.add_column(h, justify="left" if h == "statistic" else "right")
+        m = col.mean
+        t.add_row("mean", _num(m.estimate, ".6g"), _num(m.se, ".4g"), _num(m.ci_low, ".6g"), _num(m.ci_high, ".6g"))
+        _print(t)
+    if col.distribution is not None:
+        d = col.distribution
+        t = Table(title=escape(f"{name}: quantiles and ranges ({d.method})"), title_justify="left")
+        for h in ("statistic", "estimate", "ci_low", "ci_high"):
+            t.add_column(h, justify="left" if h == "statistic" else "right")
+        for q in d.quantiles:
+            t.add_row(f"quantile {q.q:g}", _num(q.estimate, ".6g"), _num(q.ci_low, ".6g"), _num(q.ci_high, ".6g"))
+        for r in d.ranges:
+            t.add_row(escape(f"share in [{r.low:g}, {r.high:g})"), _num(r.estimate, ".4f"), _num(r.ci_low, ".4f"),
+                      _num(r.ci_high, ".4f"))
+        _print(t)
+
+
+def _span(m: "MeanResult") -> str:
+    return "-" if m.estimate is None else f"{m.ci_low:.3f}..{m.ci_high:.3f}"
+
+
+def _crosstab_table(x: "CrossTabResult") -> None:
+    t = Table(title=escape(f"cross-tab {x.rows} x {x.columns} ({x.rows_used} rows): joint share "
+                           f"(consistent {x.consistent_method}), unbiased with CI, and share of "
+                           f"{x.columns} within {x.rows}"), title_justify="left")
+    for h in (x.rows, x.columns, "joint", "unbiased", "interval", "within row", "interval "):
+        t.add_column(escape(h), justify="left" if h in (x.rows, x.columns) else "right")
+    for c in x.cells:
+        t.add_row(escape(c.row), escape(c.column), _num(c.consistent, ".3f"), _num(c.joint.estimate, ".3f"),
+                  _span(c.joint), _num(c.within.estimate, ".3f"), _span(c.within))
+    _print(t)
+
+
+def _grouped_mean_table(g: "GroupedMeanResult") -> None:
+    t = Table(title=escape(f"mean of {g.column} by {g.by} ({g.rows_used} rows; delta-method SE)"),
+              title_justify="left")
+    for h in (g.by, "mean", "se", "ci_low", "ci_high", "group share"):
+        t.add_column(escape(h), justify="left" if h == g.by else "right")
+    for row in g.groups:
+        m = row.mean
+        t.add_row(escape(row.group), _num(m.estimate, ".6g"), _num(m.se, ".4g"), _num(m.ci_low, ".6g"),
+                  _num(m.ci_high, ".6g"), _num(row.share, ".4f"))
+    _print(t)
+
+
 def _estimate_table(result: "EstimateResult") -> None:
     """Render an ``EstimateResult`` as tables (the default output of ``ldpt estimate``)."""
     cm = next((c.consistent_method for c in result.columns.values() if c.consistent_method), "norm-sub").split(" ")[0]
@@ -214,56 +274,11 @@ def _estimate_table(result: "EstimateResult") -> None:
                   "distribution, slightly biased); 'unbiased' is the raw unbiased estimate, which may fall "
                   "outside [0, 1], with its SE and interval."))
     for name, col in result.columns.items():
-        title = escape(f"{name}: {col.type}, {col.mechanism}, eps {col.epsilon:g}" +
-                       (f", {col.rows_reported} rows reported" if col.rows_reported is not None else ""))
-        if col.family == "frequency":
-            t = Table(title=title, title_justify="left")
-            for h in ("value", "share", "unbiased", "se", "ci_low", "ci_high"):
-                t.add_column(h, justify="left" if h == "value" else "right")
-            for f in col.frequencies:
-                t.add_row(escape(f.value), *(_num(v, ".4f") for v in (f.consistent, f.estimate, f.se, f.ci_low,
-                                                                      f.ci_high)))
-            _print(t)
-        if col.mean is not None:
-            t = Table(title=title, title_justify="left")
-            for h in ("statistic", "estimate", "se", "ci_low", "ci_high"):
-                t.add_column(h, justify="left" if h == "statistic" else "right")
-            m = col.mean
-            t.add_row("mean", _num(m.estimate, ".6g"), _num(m.se, ".4g"), _num(m.ci_low, ".6g"), _num(m.ci_high, ".6g"))
-            _print(t)
-        if col.distribution is not None:
-            d = col.distribution
-            t = Table(title=escape(f"{name}: quantiles and ranges ({d.method})"), title_justify="left")
-            for h in ("statistic", "estimate", "ci_low", "ci_high"):
-                t.add_column(h, justify="left" if h == "statistic" else "right")
-            for q in d.quantiles:
-                t.add_row(f"quantile {q.q:g}", _num(q.estimate, ".6g"), _num(q.ci_low, ".6g"), _num(q.ci_high, ".6g"))
-            for r in d.ranges:
-                t.add_row(escape(f"share in [{r.low:g}, {r.high:g})"), _num(r.estimate, ".4f"), _num(r.ci_low, ".4f"),
-                          _num(r.ci_high, ".4f"))
-            _print(t)
+        _column_tables(name, col)
     for x in result.crosstabs:
-        t = Table(title=escape(f"cross-tab {x.rows} x {x.columns} ({x.rows_used} rows): joint share "
-                               f"(consistent {x.consistent_method}), unbiased with CI, and share of "
-                               f"{x.columns} within {x.rows}"), title_justify="left")
-        for h in (x.rows, x.columns, "joint", "unbiased", "interval", "within row", "interval "):
-            t.add_column(escape(h), justify="left" if h in (x.rows, x.columns) else "right")
-        for c in x.cells:
-            j, w = c.joint, c.within
-            t.add_row(escape(c.row), escape(c.column), _num(c.consistent, ".3f"), _num(j.estimate, ".3f"),
-                      "-" if j.estimate is None else f"{j.ci_low:.3f}..{j.ci_high:.3f}", _num(w.estimate, ".3f"),
-                      "-" if w.estimate is None else f"{w.ci_low:.3f}..{w.ci_high:.3f}")
-        _print(t)
+        _crosstab_table(x)
     for g in result.grouped_means:
-        t = Table(title=escape(f"mean of {g.column} by {g.by} ({g.rows_used} rows; delta-method SE)"),
-                  title_justify="left")
-        for h in (g.by, "mean", "se", "ci_low", "ci_high", "group share"):
-            t.add_column(escape(h), justify="left" if h == g.by else "right")
-        for row in g.groups:
-            m = row.mean
-            t.add_row(escape(row.group), _num(m.estimate, ".6g"), _num(m.se, ".4g"), _num(m.ci_low, ".6g"),
-                      _num(m.ci_high, ".6g"), _num(row.share, ".4f"))
-        _print(t)
+        _grouped_mean_table(g)
     if result.public_columns:
         out_console.print(f"not estimated (public, released in the clear): {', '.join(result.public_columns)}",
                           markup=False)
@@ -393,7 +408,7 @@ def validate(
         k = load_key(key) if key is not None else None
         rep = run(extract, manifest, raw=raw, key=k, confidence=confidence)
     if format == TableJson.json:
-        sys.stdout.write(json.dumps(rep.as_dict(), indent=2) + "\n")
+        sys.stdout.write(json.dumps(rep.to_dict(), indent=2) + "\n")
     else:
         t = Table(title=escape(f"validation of {rep.extract} (manifest {rep.manifest})"), title_justify="left")
         t.add_column("check")
@@ -463,6 +478,27 @@ def _fmt_se(v: object) -> str:
     return "-" if v is None else f"{v:.4g}"
 
 
+def _plan_row(c: dict, s: dict) -> tuple[str, ...]:
+    """One statistic of a planned column as the cells of the plan table."""
+    meets = s.get("meets_target")
+    if s.get("impossible_at_rows"):
+        meets_txt = "no (impossible)"
+    else:
+        meets_txt = "-" if meets is None else ("yes" if meets else "no")
+    target = s.get("target_se")
+    if s.get("target_relative_se") is not None:
+        target = (f"{_fmt_se(target)}; " if target is not None else "") + f"{s['target_relative_se']:.3g} of width"
+    else:
+        target = _fmt_se(target)
+    se = _fmt_se(s.get("se"))
+    if s.get("relative_se") is not None:
+        se += f" ({s['relative_se']:.3g} of width)"
+    eff = s.get("efficiency")
+    return (escape(c["name"]), c["mechanism"], f"{c['epsilon']:g}", s["statistic"], se,
+            _fmt_se(s.get("best_possible_se")), target, meets_txt,
+            "-" if s.get("rows_needed") is None else str(s["rows_needed"]), "-" if eff is None else f"{eff:.3f}")
+
+
 def _plan_table(result: dict) -> None:
     t = Table(title=f"Predicted precision at {result['rows']} rows (worst case over data; SE as `ldpt estimate` "
                     "reports it)", title_justify="left")
@@ -473,26 +509,8 @@ def _plan_table(result: dict) -> None:
         if "statistics" not in c:
             t.add_row(escape(c["name"]), "-", "-", "-", "-", "-", "-", "-", "-", escape(c.get("note", "")))
             continue
-        for s in c["statistics"]:
-            meets = s.get("meets_target")
-            if s.get("impossible_at_rows"):
-                meets_txt = "no (impossible)"
-            else:
-                meets_txt = "-" if meets is None else ("yes" if meets else "no")
-            target = s.get("target_se")
-            if s.get("target_relative_se") is not None:
-                target = (f"{_fmt_se(target)}; " if target is not None else "") + \
-                         f"{s['target_relative_se']:.3g} of width"
-            else:
-                target = _fmt_se(target)
-            se = _fmt_se(s.get("se"))
-            if s.get("relative_se") is not None:
-                se += f" ({s['relative_se']:.3g} of width)"
-            eff = s.get("efficiency")
-            t.add_row(escape(c["name"]), c["mechanism"], f"{c['epsilon']:g}", s["statistic"], se,
-                      _fmt_se(s.get("best_possible_se")), target, meets_txt,
-                      "-" if s.get("rows_needed") is None else str(s["rows_needed"]),
-                      "-" if eff is None else f"{eff:.3f}")
+        for st in c["statistics"]:
+            t.add_row(*_plan_row(c, st))
     # ten columns do not fit 80 characters: print the table at least 150 wide rather than fold
     # every cell into ellipses (a narrow terminal wraps the lines instead)
     Console(highlight=False, width=max(out_console.width, 150)).print(t)
