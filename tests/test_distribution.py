@@ -16,7 +16,7 @@ import json
 import math
 from statistics import NormalDist
 
-from conftest import realized_channel
+from conftest import keyed_words, realized_channel
 import numpy as np
 import pyarrow as pa
 import pyarrow.csv as pacsv
@@ -51,7 +51,7 @@ PAY = (20000.0, 200000.0)
 
 
 def prf_words(label: str, n: int, per_row: int, nonce: str = NONCE, start: int = 0) -> np.ndarray:
-    return KeyedStream(KEY, nonce, "test-distribution", label).words(start, n, per_row)
+    return keyed_words(label, n, per_row, start, key=KEY, nonce=nonce, stream="test-distribution")
 
 
 def pay_data(n: int, seed: int) -> np.ndarray:

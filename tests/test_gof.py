@@ -23,6 +23,7 @@ import pyarrow as pa
 import pytest
 from scipy import stats
 
+from conftest import keyed_words
 from ldptransform import gof
 from ldptransform.keys import KeyedStream, SecretKey
 from ldptransform.mechanisms import (
@@ -52,7 +53,7 @@ BOUNDS = (0.0, 100.0)
 
 
 def words(label: str, n: int, per_row: int, start: int = 0) -> np.ndarray:
-    return KeyedStream(KEY, NONCE, "test-gof", label).words(start, n, per_row)
+    return keyed_words(label, n, per_row, start, key=KEY, nonce=NONCE, stream="test-gof")
 
 
 def cat_data(n: int, seed: int = 5) -> np.ndarray:

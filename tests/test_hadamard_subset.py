@@ -24,11 +24,10 @@ import tracemalloc
 import numpy as np
 import pyarrow as pa
 import pytest
-from conftest import FIXED_KEY_BYTES, FIXED_NONCE
+from conftest import FIXED_KEY_BYTES, FIXED_NONCE, keyed_words
 from scipy import stats
 
 from ldptransform.errors import PolicyError
-from ldptransform.keys import KeyedStream, SecretKey
 from ldptransform.mechanisms.base import build, registry
 from ldptransform.mechanisms.categorical import OUE
 from ldptransform.mechanisms import hadamard as hadamard_module
@@ -41,7 +40,7 @@ TOP = (1 << 64) - 1
 
 
 def words(name: str, n: int, per_row: int, start: int = 0) -> np.ndarray:
-    return KeyedStream(SecretKey(FIXED_KEY_BYTES), FIXED_NONCE, "test", name).words(start, n, per_row)
+    return keyed_words(name, n, per_row, start, key=FIXED_KEY_BYTES, nonce=FIXED_NONCE, stream="test")
 
 
 def cats(k: int) -> list[str]:

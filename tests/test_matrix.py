@@ -21,11 +21,10 @@ import re
 import numpy as np
 import pyarrow as pa
 import pytest
-from conftest import FIXED_KEY_BYTES, FIXED_NONCE, realized_channel
+from conftest import FIXED_KEY_BYTES, FIXED_NONCE, keyed_words, realized_channel
 
 from ldptransform.errors import PolicyError
 from ldptransform.estimate import CategoricalStats
-from ldptransform.keys import KeyedStream, SecretKey
 from ldptransform.mechanisms.base import build
 from ldptransform.mechanisms.categorical import GRR
 from ldptransform.mechanisms.matrix import Matrix, grr_matrix
@@ -40,7 +39,7 @@ ASYM_EPS = math.log(5.5)
 
 
 def words(name: str, n: int, m: Matrix) -> np.ndarray:
-    return KeyedStream(SecretKey(FIXED_KEY_BYTES), FIXED_NONCE, "test", name).words(0, n, m.words_per_row)
+    return keyed_words(name, n, m.words_per_row, key=FIXED_KEY_BYTES, nonce=FIXED_NONCE, stream="test")
 
 
 def refusal(eps, cats, matrix) -> str:

@@ -17,7 +17,7 @@ import math
 import numpy as np
 import pyarrow as pa
 import pytest
-from conftest import realized_channel
+from conftest import keyed_words, realized_channel
 from scipy import stats
 
 from ldptransform.errors import PolicyError
@@ -77,7 +77,7 @@ def make_num(name: str, eps: float, bounds, grid):
 
 
 def prf_words(label: str, start: int, n: int, per_row: int) -> np.ndarray:
-    return KeyedStream(KEY, NONCE, "test", label).words(start, n, per_row)
+    return keyed_words(label, n, per_row, start, key=KEY, nonce=NONCE, stream="test")
 
 
 def cat_data(k: int, n: int, seed: int) -> np.ndarray:

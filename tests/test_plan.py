@@ -13,7 +13,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import yaml
-from conftest import FIXED_KEY_BYTES, write_fixed_key
+from conftest import FIXED_KEY_BYTES, keyed_words, write_fixed_key
 
 from ldptransform import estimate, load_key, parse_policy, privatize
 from ldptransform.estimate import CategoricalStats, NumericStats
@@ -43,7 +43,7 @@ KEY = SecretKey(FIXED_KEY_BYTES)
 
 
 def _words(m, n, r, label):
-    return KeyedStream(KEY, f"{r:032x}", "plan-test", label).words(0, n, m.words_per_row)
+    return keyed_words(label, n, m.words_per_row, key=KEY, nonce=f"{r:032x}", stream="plan-test")
 
 
 @pytest.mark.parametrize("m", [GRR(1.0, list("abcde")), OUE(0.7, [f"v{i}" for i in range(8)]),

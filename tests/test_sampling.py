@@ -33,6 +33,7 @@ import pyarrow.parquet as pq
 import pytest
 from scipy.stats import binom
 
+from conftest import keyed_words
 from ldptransform import mechanisms as mech
 from ldptransform.errors import PolicyError
 from ldptransform.estimate import estimate
@@ -227,7 +228,7 @@ def test_unreported_cells_keep_nothing_underneath(released: dict) -> None:
     for name in lp.policy.privatized_columns:
         m = lp.by_name[name].mechanism
         x = rng.uniform(-1, 1, n) if m.kind == "numeric" else rng.integers(0, m.k, n)
-        words = KeyedStream(KEY, NONCE, "test", name).words(0, n, m.words_per_row)
+        words = keyed_words(name, n, m.words_per_row, key=KEY, nonce=NONCE, stream="test")
         for full in m.randomize(x, words):
             out = blank_unreported(full, rep)
             assert out.type == full.type and len(out) == n

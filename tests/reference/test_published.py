@@ -20,7 +20,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from ldptransform.keys import KeyedStream, SecretKey
+from conftest import keyed_words
+from ldptransform.keys import SecretKey
 from ldptransform.mechanisms import GRR, OLH, OUE, SUE, Hybrid, Piecewise, TwoPoint
 
 KEY = SecretKey(bytes(range(32)))
@@ -30,7 +31,7 @@ EPS_TABLE = (0.5, 1.0, 2.0, 4.0)
 
 
 def words(label: str, n: int, per_row: int, start: int = 0) -> np.ndarray:
-    return KeyedStream(KEY, NONCE, "reference", label).words(start, n, per_row)
+    return keyed_words(label, n, per_row, start, key=KEY, nonce=NONCE, stream="reference")
 
 
 def cats(k: int) -> list[str]:
