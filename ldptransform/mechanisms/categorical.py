@@ -522,6 +522,7 @@ def strings_to_bits(arr: pa.Array, k: int) -> tuple[np.ndarray, np.ndarray]:
 class OnesCountFit(FitStats):
     """``oue``/``sue``: histogram of the number of ones per report (length k+1)."""
 
+    mechanism: _UnaryEncoding
     TESTS = 2
 
     def __init__(self, mechanism: "_UnaryEncoding") -> None:
@@ -581,7 +582,7 @@ class OnesCountFit(FitStats):
         return out
 
 
-def _bucket_groups(m: OLH) -> tuple[np.ndarray, np.ndarray]:
+def _bucket_groups(m: "OLH") -> tuple[np.ndarray, np.ndarray]:
     """Group boundaries (bucket indices, length G+1) of at most BUCKET_GROUPS adjacent buckets and
     the exact probability of each group under the declared mechanism, for every input:
     P(y in group) = p* S/P + (cnt - S/P)(1-p*)/(g-1), S = hash inputs z in the group's buckets."""
@@ -599,6 +600,8 @@ def _bucket_groups(m: OLH) -> tuple[np.ndarray, np.ndarray]:
 class SupportSizeFit(FitStats):
     """``olh``: histogram of the support size |S(y)| over 0..k, and of the reported bucket
     (grouped).  Also usable level by level inside ``HierarchyFit``."""
+
+    mechanism: OLH
 
     TESTS = 2
 

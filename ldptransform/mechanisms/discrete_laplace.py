@@ -124,7 +124,8 @@ def uniform_below(src: _RowDraws, rows: np.ndarray, m: np.ndarray | int) -> np.n
     return out
 
 
-def bernoulli_exp(src: _RowDraws, rows: np.ndarray, num: np.ndarray | int, den: np.ndarray | int) -> np.ndarray:
+def bernoulli_exp(src: _RowDraws, rows: np.ndarray, num: np.ndarray | int | np.integer,
+                  den: np.ndarray | int | np.integer) -> np.ndarray:
     """Exact Bernoulli(exp(-num/den)) per row, 0 <= num <= den (Canonne, Kamath, Steinke,
     NeurIPS 2020): K = 1; while Bernoulli(gamma/K) succeeds, K += 1; result is K odd.
     Bernoulli(gamma/K) is [uniform integer below den*K] < num, exactly."""
@@ -261,7 +262,7 @@ class DiscreteLaplace(MeanMechanism):
 
     def report_pmf(self, y: np.ndarray, i: np.ndarray) -> np.ndarray:
         """Exact channel from grid index i (0..G) to report y (integer grid units): pmf(y - i)."""
-        return self.pmf(np.asarray(y) - np.asarray(i))
+        return np.asarray(self.pmf(np.asarray(y) - np.asarray(i)))
 
     def noise_variance(self) -> float:
         """Var(Z) = 2a / (1-a)^2 in grid steps (docs/formulas.md section 10.2, [D])."""

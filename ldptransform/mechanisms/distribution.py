@@ -658,13 +658,15 @@ class HierarchyFit(FitStats):
     """``hierarchy``: each level's rows are tested as that level's oracle (grr: hull; olh:
     support size and buckets).  The level itself is drawn from the PRF alone."""
 
+    mechanism: Hierarchy
+
     @property
     def n_tests(self) -> int:
         return sum(p.n_tests for p in self.parts)
 
     def __init__(self, mechanism: "Hierarchy") -> None:
         super().__init__(mechanism)
-        self.parts: list[FitStats] = []
+        self.parts: list[HullFit | SupportSizeFit] = []
         for o in mechanism.oracles:
             self.parts.append(HullFit(o, o.channel(), lambda a: (np.zeros(0), np.zeros(0, bool)),
                                       "reported nodes") if o.name == "grr" else SupportSizeFit(o))
@@ -693,7 +695,7 @@ class HierarchyFit(FitStats):
         out = []
         for l, part in enumerate(self.parts):
             for r in part.results(alpha):
-                r = replace(r, test=f"level {l + 1} of {m.height} ({part.mechanism.k} nodes): " + r.test)
+                r = replace(r, test=f"level {l + 1} of {m.height} ({m.nodes[l]} nodes): " + r.test)
                 r = r.with_extra(level=l + 1)
                 if bad:
                     imp = _impossible_result(r.test, r.kind, r.df, r.reference, alpha, n, bad)

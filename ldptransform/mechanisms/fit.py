@@ -601,6 +601,8 @@ class SupportBoundsFit(FitStats):
     (``_support_bound_tests``).  A subset release's data-dependent distribution over C(k, m)
     outputs is too large for the hull test."""
 
+    mechanism: Any   # a FrequencyOracle (categorical.py imports this module)
+
     def __init__(self, mechanism: Any) -> None:
         super().__init__(mechanism)
         self.stats["summary"] = np.zeros(mechanism.summary_size, dtype=np.int64)

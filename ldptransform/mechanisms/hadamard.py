@@ -245,6 +245,8 @@ class HadamardFit(SupportBoundsFit):
     Binomial(n, 2 p*/K) whatever the data, a two-sided exact test of eps.  q* = 1/2 at every
     eps, so the support floor sees nothing; the ceiling still applies."""
 
+    mechanism: HadamardResponse
+
     TESTS = 2
 
     def _tests(self, alpha: float, good: int) -> list[FitResult]:
