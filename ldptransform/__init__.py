@@ -10,14 +10,23 @@ Public Python API::
     report = validate("extract.parquet")           # report.ok, report.checks
 """
 
-__version__ = "0.1.0"
+from ._version import __version__
+from .errors import LdptError
+from .estimate import estimate
+from .keys import SecretKey, load_key, new_key_file
+from .policy import load_policy, parse_policy
+from .release import privatize
+from .validate import validate
 
-from .errors import LdptError  # noqa: E402
-from .estimate import estimate  # noqa: E402
-from .keys import SecretKey, load_key, new_key_file  # noqa: E402
-from .policy import load_policy, parse_policy  # noqa: E402
-from .release import privatize  # noqa: E402
-from .validate import validate  # noqa: E402
-
-__all__ = ["__version__", "LdptError", "SecretKey", "load_key", "new_key_file", "load_policy", "parse_policy",
-           "privatize", "estimate", "validate"]
+__all__ = [
+           "LdptError",
+           "SecretKey",
+           "__version__",
+           "estimate",
+           "load_key",
+           "load_policy",
+           "new_key_file",
+           "parse_policy",
+           "privatize",
+           "validate",
+]

@@ -16,7 +16,7 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
-from . import __version__
+from ._version import __version__
 from .errors import ManifestError
 
 FORMAT = "ldptransform-manifest"

@@ -9,7 +9,7 @@ import secrets
 from pathlib import Path
 from typing import Any
 
-from .. import __version__
+from .._version import __version__
 from ..errors import OutputError
 from ..io import StagedFiles, check_dataset_destination, check_destination, private_dir
 from ..keys import SecretKey
