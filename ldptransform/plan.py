@@ -34,7 +34,7 @@ from __future__ import annotations
 import math
 from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field, fields
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, cast
 
 import numpy as np
 
@@ -137,15 +137,15 @@ def simulated_median_se(m: mech.Mechanism, rc: ResolvedColumn, rows: float) -> f
         if rc.type == "binned":
             edges = np.asarray(cfg.bins, dtype=float)
             codes = np.clip(np.searchsorted(edges, x, side="right") - 1, 0, len(edges) - 2)
-            st = CategoricalStats(m, joint=True)
-            st.add(m.randomize(codes, words))
-            cov = st.covariance()
+            cst = CategoricalStats(cast(mech.FrequencyOracle, m), joint=True)
+            cst.add(m.randomize(codes, words))
+            cov = cst.covariance()
             prefix_se = np.sqrt(np.maximum(np.diag(np.cumsum(np.cumsum(cov, axis=0), axis=1)), 0.0))
-            dist = binned_distribution(edges, st.estimates()[0], prefix_se, cov=cov, n=st.n)
+            dist = binned_distribution(edges, np.asarray(cst.estimates()[0]), prefix_se, cov=cov, n=cst.n)
         else:
-            st = DistributionStats(m)
-            st.add(m.randomize(x, words))
-            dist = st.distribution()
+            dst = DistributionStats(m)
+            dst.add(m.randomize(x, words))
+            dist = dst.distribution()
         meds.append(dist.quantile(0.5))
     meds_a = np.asarray(meds, dtype=float)
     bias = float(meds_a.mean() - true_median)
@@ -332,9 +332,10 @@ def _column_statistics(rc: ResolvedColumn, rows: int, rate: float, default: Qual
                         "note": f"{m.name} decodes a distribution; the mean is read off it without an SE. Name "
                                 "a mean mechanism (or leave needs at [mean]) for a predicted and reported SE"})
         elif need == "mean":
-            width = m.hi - m.lo
+            mm = cast(mech.MeanMechanism, m)   # a mean mechanism: mean_row_variance() is not None
+            width = mm.hi - mm.lo
             v = mean_row_variance(m) + memo_rounding_variance(rc)
-            vb = mean_row_variance_bound(m.epsilon, m.lo, m.hi)
+            vb = mean_row_variance_bound(mm.epsilon, mm.lo, mm.hi)
             target = q.max_se if q is not None else None
             rel = (q.max_relative_se if q is not None and q.max_relative_se is not None
                    else default.max_relative_se if default is not None else None)
@@ -441,6 +442,11 @@ def min_epsilon(rc: ResolvedColumn, rows: int, rate: float, default: Quality | N
     return round(hi * step, 10)
 
 
+def _mechanism(rc: ResolvedColumn) -> mech.Mechanism:
+    assert rc.mechanism is not None, f"column {rc.name} is not privatized"
+    return rc.mechanism
+
+
 def suggest(policy: LoadedPolicy, rows: int) -> dict[str, Any]:
     """The smallest per-column eps meeting every target (split), and the smallest
     epsilon_per_row meeting them under strategy sample, for each m."""
@@ -451,20 +457,20 @@ def suggest(policy: LoadedPolicy, rows: int) -> dict[str, Any]:
     unmet = []
     for rc in cols:
         if not _has_target(rc, default):
-            split[rc.name] = {"epsilon": rc.mechanism.epsilon, "note": "no target: eps kept as in the policy"}
-            total += rc.mechanism.epsilon
+            split[rc.name] = {"epsilon": _mechanism(rc).epsilon, "note": "no target: eps kept as in the policy"}
+            total += _mechanism(rc).epsilon
             continue
-        fixed = rc.mechanism.fixed_epsilon()
+        fixed = _mechanism(rc).fixed_epsilon()
         if fixed is not None:
             # the mechanism's own parameters fix the noise (a supplied transition matrix): eps only
             # caps it, so the smallest eps the column can declare is the one the noise actually
             # gives, and more eps cannot help
-            need = math.ceil(fixed * 100 - 1e-9) / 100        # in the planner's 0.01 steps, rounded up
-            meets = _meets(rc, rc.mechanism.epsilon, rows, 1.0, default)
-            note = rc.mechanism.fixed_noise_note(meets, rows)
+            eps_fixed = math.ceil(fixed * 100 - 1e-9) / 100   # in the planner's 0.01 steps, rounded up
+            meets = _meets(rc, _mechanism(rc).epsilon, rows, 1.0, default)
+            note = _mechanism(rc).fixed_noise_note(meets, rows)
             if meets:
-                split[rc.name] = {"epsilon": need, "mechanism": rc.mechanism.name, "note": note}
-                total += need
+                split[rc.name] = {"epsilon": eps_fixed, "mechanism": _mechanism(rc).name, "note": note}
+                total += eps_fixed
             else:
                 unmet.append(rc.name)
                 split[rc.name] = {"epsilon": None, "note": note}
@@ -475,8 +481,7 @@ def suggest(policy: LoadedPolicy, rows: int) -> dict[str, Any]:
             split[rc.name] = {"epsilon": None, "note": f"no eps up to {MAX_COLUMN_EPS:g} meets the target at "
                                                        f"{rows} rows"}
         else:
-            m = _with_eps(rc, eps).mechanism
-            split[rc.name] = {"epsilon": eps, "mechanism": m.name}
+            split[rc.name] = {"epsilon": eps, "mechanism": _mechanism(_with_eps(rc, eps)).name}
             total += eps
     budget = policy.policy.budget.epsilon_per_row
     out: dict[str, Any] = {"rows": rows, "split": {"columns": split, "epsilon_per_row": None if unmet else
@@ -491,18 +496,18 @@ def suggest(policy: LoadedPolicy, rows: int) -> dict[str, Any]:
         out["split"]["verdict"] = f"meets every target with epsilon_per_row {total:g} (budget {budget:g})"
     # strategy sample: each row reports m of d columns at eps_row / m; targets need eps_row / m per column
     d = len(cols)
-    best = None
-    samples = []
+    best: dict[str, Any] | None = None
+    samples: list[dict[str, Any]] = []
     if d > 1 and all(_has_target(rc, default) for rc in cols):
         for m_cols in range(1, d + 1):
             rate = m_cols / d
-            need = []
+            need: list[float] = []
             ok = True
             for rc in cols:
-                fixed = rc.mechanism.fixed_epsilon()
+                fixed = _mechanism(rc).fixed_epsilon()
                 if fixed is not None:   # fixed noise: needs its own eps, meets or not
                     eps = (math.ceil(fixed * 100 - 1e-9) / 100
-                           if _meets(rc, rc.mechanism.epsilon, rows, rate, default) else None)
+                           if _meets(rc, _mechanism(rc).epsilon, rows, rate, default) else None)
                 else:
                     eps = min_epsilon(rc, rows, rate, default)
                 if eps is None:

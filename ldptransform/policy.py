@@ -290,12 +290,13 @@ class Policy(_Strict):
 
     @model_validator(mode="after")
     def _budget(self) -> "Policy":
-        problems = []
+        problems: list[tuple[tuple[str, ...], Any, str]] = []
         names = self.privatized_columns
+        eps_of = {n: c.epsilon for n, c in self.columns.items() if isinstance(c, (CategoricalColumn, NumericColumn))}
         strategy, eps_row = self.budget.strategy, self.budget.epsilon_per_row
         if strategy == "split":
             for n in names:
-                if self.columns[n].epsilon is None:
+                if eps_of[n] is None:
                     problems.append((("columns", n, "epsilon"), self.columns[n].model_dump(exclude_none=True),
                                      "is required under budget.strategy split (the default): give this column its "
                                      "own epsilon (the column epsilons may add up to at most budget.epsilon_per_row), "
@@ -305,7 +306,7 @@ class Policy(_Strict):
                                  "applies only to budget.strategy: sample; remove it, or set strategy: sample"))
         else:
             for n in names:
-                eps = self.columns[n].epsilon
+                eps = eps_of[n]
                 if eps is not None:
                     problems.append((("columns", n, "epsilon"), eps,
                                      "must be left out under budget.strategy sample: each row reports m of its d "
@@ -331,7 +332,7 @@ class Policy(_Strict):
                                  loc=loc, input=value) for loc, value, msg in problems])
         if strategy == "sample":
             return self
-        total = sum(c.epsilon for c in self.columns.values() if isinstance(c, (CategoricalColumn, NumericColumn)))
+        total = sum(e or 0.0 for e in eps_of.values())   # every one is set under split (checked above)
         if total > self.budget.epsilon_per_row + EPS_TOLERANCE:
             parts = ", ".join(f"{n} {c.epsilon:g}" for n, c in self.columns.items()
                               if isinstance(c, (CategoricalColumn, NumericColumn)))
@@ -342,7 +343,7 @@ class Policy(_Strict):
 
     @model_validator(mode="after")
     def _subject(self) -> "Policy":
-        problems = []
+        problems: list[tuple[tuple[str, ...], Any, str]] = []
         sk = self.subject_key
         for n, c in self.columns.items():
             if getattr(c, "memoize", None) and sk is None:
@@ -492,7 +493,7 @@ def _resolve_number(name: str, col: NumericColumn) -> ResolvedColumn:
         elif cls is not None and cls.family != "frequency":
             refused.append(fieldname)   # a field of the automatic choice that this mechanism has no use for
     if name_ == "auto":
-        rc.mechanism, rc.chosen_because = mech.choose_numeric(col.epsilon, col.domain, **params)
+        rc.mechanism, rc.chosen_because = mech.choose_numeric(col.epsilon, col.domain, **params)  # type: ignore[arg-type]
     elif cls is not None and cls.family != "frequency":
         if refused:
             raise PolicyError(f"{_where(name, refused[0])}: {cls.refuse_field(refused[0])}")
