@@ -79,7 +79,7 @@ class KeyedStream:
         # encrypt a shared zero buffer straight into the result (update_into needs room for one
         # block more): no zero-filled input and no copy of the output for each call
         out = np.empty(nbytes // 8 + 2, dtype="<u8")
-        enc.update_into(_zeros(nbytes), out.view(np.uint8))
+        enc.update_into(_zeros(nbytes), out.view(np.uint8).data)
         return out[: nbytes // 8].reshape(n_rows, 2 * blocks)[:, :per_row]
 
     def words_at(self, rows: np.ndarray, draws: np.ndarray) -> np.ndarray:

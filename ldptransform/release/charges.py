@@ -63,7 +63,7 @@ class _PrePass:
                 continue
             last = (self.ledger.last_values(p.rc.name, sh, where) if self.ledger is not None
                     else np.zeros(n, dtype=sh.dtype))
-            eps += np.where(vh != last, p.rc.mechanism.epsilon, 0.0)
+            eps += np.where(vh != last, _eps(p), 0.0)
             memo[p.rc.name] = (rows, sh, vh)
         return sh, eps, memo
 
@@ -73,6 +73,11 @@ class _PrePass:
             assert subjects is not None
             return memo_round(p, encode(values, p, row0), subjects)[1]
         return encode(values, p, row0)
+
+
+def _eps(p: ColumnPlan) -> float:
+    assert p.rc.mechanism is not None
+    return p.rc.mechanism.epsilon
 
 
 def ledger_prepass(src: Any, plans: list[ColumnPlan], policy: LoadedPolicy, key: SecretKey,
@@ -88,8 +93,7 @@ def ledger_prepass(src: Any, plans: list[ColumnPlan], policy: LoadedPolicy, key:
     assert subject is not None
     memo_plans = [replace(p, diag=ColumnDiagnostics()) for p in plans if p.memo is not None]  # no double counts
     priv = [p for p in plans if p.rc.mechanism is not None]
-    base = policy.epsilon_total if sampler is not None else sum(p.rc.mechanism.epsilon for p in priv
-                                                                if p.memo is None)
+    base = policy.epsilon_total if sampler is not None else sum(_eps(p) for p in priv if p.memo is None)
     pre = _PrePass(subject, memo_plans, {p.rc.name: memo_context(p.rc) for p in memo_plans}, key, base, sampler,
                    ledger)
     hashes, charges, memo = [], [], []

@@ -42,10 +42,11 @@ def check_destinations(opts: ReleaseOptions) -> Path:
 def privacy_entry(policy: LoadedPolicy, plans: list[ColumnPlan]) -> Privacy:
     d, m = len(policy.policy.privatized_columns), policy.policy.reported_columns
     memo_text = memo_composition_text(policy)
-    common = dict(model="local differential privacy: every row is randomized on its own, column by column",
-                  epsilon_per_row_budget=policy.policy.budget.epsilon_per_row,
-                  public_columns=[p.rc.name for p in plans if p.rc.type == "public"],
-                  strategy=policy.strategy, privatized_columns=d, reported_columns=m)
+    common: dict[str, Any] = {
+        "model": "local differential privacy: every row is randomized on its own, column by column",
+        "epsilon_per_row_budget": policy.policy.budget.epsilon_per_row,
+        "public_columns": [p.rc.name for p in plans if p.rc.type == "public"],
+        "strategy": policy.strategy, "privatized_columns": d, "reported_columns": m}
     if policy.strategy == "sample":
         return Privacy(**common, epsilon_per_row_used=policy.epsilon_total,
                        composition=f"sequential over the columns a row reports: each row reports {m} of its {d} "
