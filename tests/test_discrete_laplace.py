@@ -57,7 +57,7 @@ def release(m: DiscreteLaplace, x: np.ndarray, row0: int, nonce: str = FIXED_NON
 
 def test_words_at_matches_direct_aes_of_one_block():
     """words_at(r, j) is the first 8 bytes (little-endian) of AES-256-ECB, under the stream's
-    HMAC-SHA256 sub-key, of the big-endian block (2^63 + j) * 2^64 + r (keys.py docstring;
+    HMAC-SHA256 sub-key, of the big-endian block (2^63 + j) * 2^64 + r (random/bits.py docstring;
     AES per the cryptography package, independent of the implementation's numpy packing)."""
     s = KeyedStream(KEY, FIXED_NONCE, "column", "pay", "draws")
     r, j = 987654321, 42

@@ -10,7 +10,7 @@ from typing import Any
 
 import numpy as np
 
-from ..errors import UsageError
+from ..errors import OptionError
 from ..keys import SecretKey
 from ..ledger import (
     BudgetExhaustedError,
@@ -145,11 +145,12 @@ def rows_to_keep(charges: LedgerCharges | None, opts: ReleaseOptions) -> np.ndar
     if charges is None or charges.within.all():
         return None
     if opts.dataset_out:
-        raise UsageError(
-            f"--allow-partial would hold back {int((~charges.within).sum())} subject(s) (steward-only figure), "
+        raise OptionError(
+            f"privatize(allow_partial=True, out={str(opts.out)!r})",
+            f"{{allow_partial}} would hold back {int((~charges.within).sum())} subject(s) (steward-only figure), "
             "and a dataset extract would show how many rows each part lost: every part covers a known range "
-            "of input rows. Write a single-file extract instead (--out FILE.parquet), or release without "
-            "--allow-partial once everyone is within the budget; nothing was written.")
+            "of input rows. Write a single-file extract instead ({out='FILE.parquet'}), or release without "
+            "{allow_partial} once everyone is within the budget; nothing was written.")
     return charges.row_within
 
 
