@@ -43,6 +43,19 @@ Scalar = Union[Annotated[str, Field(strict=True)], Annotated[int, Field(strict=T
                Annotated[float, Field(strict=True)], Annotated[bool, Field(strict=True)]]
 
 
+def _mechanisms_doc(*families: str) -> str:
+    """The mechanisms of these families as a policy description lists them."""
+    names = mech.names_of(*families)
+    return ", ".join(names[:-1]) + " or " + names[-1] if len(names) > 1 else ", ".join(names)
+
+
+def _field_doc(field: str, *families: str, only: bool = False) -> str:
+    """A policy field's description from the mechanisms that take it (their ``Params``)."""
+    owners = mech.field_owners(field, *families)
+    desc = mech.registry()[owners[0]].Params.model_fields[field].description
+    return f"{'/'.join(owners)}{' only' if only else ''}: {desc}."
+
+
 class _Strict(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
 
@@ -86,17 +99,14 @@ class CategoricalColumn(_Strict):
     type: Literal["categorical"]
     categories: list[Scalar] = Field(description="The declared domain, in order.")
     epsilon: Epsilon | None = Field(None, description=_EPS_FIELD)
-    mechanism: str | None = Field(None, description="grr, oue, sue, olh, hadamard, subset or matrix; absent or "
-                                                    "'auto': the lowest variance for what partners need.")
+    mechanism: str | None = Field(None, description=_mechanisms_doc("frequency") + "; absent or 'auto': the "
+                                                    "lowest variance for what partners need.")
     missing: Literal["error", "as-category"] = "error"
     unknown: Literal["error", "as-category"] = "error"
-    hash_range: StrictInt | None = Field(None, description="olh only: number of hash buckets g (default near e^eps+1).")
-    subset_size: StrictInt | None = Field(None, description="subset only: size m of the reported subsets "
-                                                            "(default: the m with the lowest total variance).")
+    hash_range: StrictInt | None = Field(None, description=_field_doc("hash_range", "frequency", only=True))
+    subset_size: StrictInt | None = Field(None, description=_field_doc("subset_size", "frequency", only=True))
     matrix: list[list[Annotated[float, Field(strict=True, allow_inf_nan=False)]]] | None = Field(
-        None, description="matrix only: transition probabilities, one row per true category and one column per "
-                          "published category, in the order of categories (then <missing>, <other> if added); "
-                          "rows sum to 1, every entry > 0.")
+        None, description=_field_doc("matrix", "frequency", only=True))
     needs: list[FREQUENCY_NEEDS] | None = Field(
         None, min_length=1, description="What partners will estimate: [frequencies] (the default).")
     quality: Quality | None = Field(None, description="Targets checked by `ldpt plan` and `ldpt validate`.")
@@ -130,24 +140,23 @@ class NumericColumn(_Strict):
     bins: list[Annotated[float, Field(strict=True, allow_inf_nan=False)]] | None = Field(
         None, description="Bin edges; the column is released as a categorical column of bins.")
     epsilon: Epsilon | None = Field(None, description=_EPS_FIELD)
-    mechanism: str | None = Field(None, description="hybrid, piecewise, two-point, discrete-laplace (means); "
-                                                    "square-wave, hierarchy (distributions: quantiles, range "
-                                                    "shares); with bins, a categorical one.")
+    mechanism: str | None = Field(None, description=", ".join(mech.names_of("mean")) + " (means); "
+                                  + ", ".join(mech.names_of("distribution")) + " (distributions: quantiles, range "
+                                  "shares); with bins, a categorical one.")
     missing: Literal["error"] | Fill = "error"
     out_of_bounds: Literal["clip", "error"] = "clip"
-    grid: StrictInt | None = Field(None, ge=1, le=4096, description="piecewise/hybrid/square-wave/"
-                                                                     "discrete-laplace: input grid size (default 256).")
-    hash_range: StrictInt | None = Field(None, description="olh on bins only.")
-    subset_size: StrictInt | None = Field(None, description="subset on bins only.")
+    grid: StrictInt | None = Field(None, ge=1, le=4096, description=_field_doc("grid", "mean", "distribution"))
+    hash_range: StrictInt | None = Field(None, description="/".join(mech.field_owners("hash_range", "frequency"))
+                                         + " on bins only.")
+    subset_size: StrictInt | None = Field(None, description="/".join(mech.field_owners("subset_size", "frequency"))
+                                          + " on bins only.")
     needs: list[Literal["mean", "quantiles", "frequencies"]] | None = Field(
         None, min_length=1, description="What partners will estimate: mean and/or quantiles (default [mean]); "
                                         "with bins, frequencies (the default) and/or quantiles. With quantiles and "
                                         "no mechanism, the tool's distribution default is used.")
     quality: Quality | None = Field(None, description="Targets checked by `ldpt plan` and `ldpt validate`.")
-    branching: int | None = Field(None, ge=2, le=16, description="hierarchy: branching factor of the tree "
-                                                                 "(default 4).")
-    leaves: int | None = Field(None, ge=2, le=1024, description="hierarchy: number of equal leaf buckets of the "
-                                                                "bounds, a power of branching (default 64).")
+    branching: int | None = Field(None, ge=2, le=16, description=_field_doc("branching", "distribution"))
+    leaves: int | None = Field(None, ge=2, le=1024, description=_field_doc("leaves", "distribution"))
     memoize: Annotated[bool, Field(strict=True)] | None = Field(
         None, description="true: memoized randomness (permanent randomized response): a person (budget's "
                           "subject_key) with the same value gets the same report in every release; needs "

@@ -219,7 +219,10 @@ def test_no_module_outside_mechanisms_names_or_probes_a_mechanism():
             continue
         for i, line in enumerate(path.read_text(encoding="utf-8").splitlines(), 1):
             code = line.split("#", 1)[0]
-            if literal.search(code) or probe.search(code):
+            # a policy field that shares its name with its mechanism ("matrix") may be named as a field
+            names_hit = [mt for mt in literal.finditer(code)
+                         if not code[: mt.start()].endswith(("_field_doc(", "field_owners("))]
+            if names_hit or probe.search(code):
                 found.append(f"{path.relative_to(root)}:{i}: {line.strip()}")
     assert not found, "\n".join(found)
 

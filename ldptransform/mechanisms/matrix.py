@@ -72,8 +72,8 @@ class MatrixParams(BaseModel):
 
     model_config = ConfigDict(extra="forbid", frozen=True)
     matrix: Any = Field(description="transition probabilities, one row per true category and one column per "
-                                    "published category, in the order of categories; rows sum to 1, every "
-                                    "entry > 0")
+                                    "published category, in the order of categories (then <missing>, <other> if "
+                                    "added); rows sum to 1, every entry > 0")
 
 
 def grr_matrix(epsilon: float, k: int) -> np.ndarray:

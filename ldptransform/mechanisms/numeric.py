@@ -205,7 +205,7 @@ class GridMechanismParams(BaseModel):
 
     model_config = ConfigDict(extra="forbid", frozen=True)
     grid: Annotated[int, Field(strict=True)] | None = Field(
-        None, description="input grid size: number of equal steps between the bounds (default 256)")
+        None, description="input grid size (default 256)")
 
 
 class GridMechanism(MeanMechanism):
