@@ -388,6 +388,11 @@ def validate(
     key: Optional[Path] = typer.Option(None, "--key", help="Secret key (steward only), with --raw."),
     format: TableJson = typer.Option(TableJson.table, "--format", help="Output format."),
     confidence: float = typer.Option(0.95, "--confidence", help="Interval level used for calibration."),
+    quantiles: Optional[str] = typer.Option(None, "--quantiles", help="With --raw: quantiles the calibration "
+                                            "checks, e.g. 0.1,0.5,0.9 [default: 0.25,0.5,0.75]."),
+    range_: Optional[list[str]] = typer.Option(None, "--range", help="With --raw: a range share the calibration "
+                                               "checks, COLUMN:LOW..HIGH (repeatable) [default: each distribution "
+                                               "column's bounds cut in four]."),
 ) -> None:
     """Check a release; exit 0 if every check passes, 1 if one fails.
 
@@ -396,6 +401,7 @@ def validate(
 
     Example: ldpt validate extract.parquet --raw survey.csv --key release.key
     """
+    from .estimate import parse_quantiles, parse_range
     from .keys import load_key
     from .validate import validate as run
 
@@ -406,7 +412,9 @@ def validate(
             raise UsageError("--raw and --key go together: re-deriving a release needs both the raw input and the "
                              "secret key (steward only).")
         k = load_key(key) if key is not None else None
-        rep = run(extract, manifest, raw=raw, key=k, confidence=confidence)
+        rep = run(extract, manifest, raw=raw, key=k, confidence=confidence,
+                  quantiles=parse_quantiles(quantiles) if quantiles else None,
+                  ranges=[parse_range(x) for x in range_ or []] or None)
     if format == TableJson.json:
         sys.stdout.write(json.dumps(rep.to_dict(), indent=2) + "\n")
     else:

@@ -21,7 +21,7 @@ import pyarrow.compute as pc
 
 from . import mechanisms as mech
 from .distribution import Distribution
-from .errors import LdptError
+from .errors import LdptError, UsageError
 from .estimate import Analyses, accumulate, report, z_value
 from .io import TableSource, sha256_file
 from .keys import SecretKey
@@ -229,26 +229,24 @@ def _true_stats(raw: Path, manifest: Manifest, dists: dict[str, Distribution] | 
 
 
 def validate(extract: Path | str, manifest_path: Path | str | None = None, *, raw: Path | str | None = None,
-             key: SecretKey | None = None, confidence: float = 0.95) -> ValidationReport:
+             key: SecretKey | None = None, confidence: float = 0.95, quantiles: list[float] | None = None,
+             ranges: list[tuple[str, float, float]] | None = None) -> ValidationReport:
+    """Check a release (``ValidationReport``: ``ok``, ``checks``, and with ``raw`` and ``key``
+    the calibration).  The calibration checks every statistic the columns give: frequencies,
+    means, the ``quantiles`` (default CALIBRATION_QUANTILES) and, per column with a
+    distribution, the ``ranges`` asked for it (COLUMN, LOW, HIGH), else its bounds cut into
+    CALIBRATION_RANGE_PARTS equal ranges."""
+    _check_calibration_options(raw, quantiles, ranges)
     extract = Path(extract)
     mpath = Path(manifest_path) if manifest_path else default_manifest_path(extract)
     manifest = load_manifest(mpath)
+    _check_ranges(manifest, ranges or [])
     text = mpath.read_text(encoding="utf-8")
     rep = _Checks(str(extract), str(mpath))
     if not extract.exists():
         rep.add("extract present", False, f"{extract} does not exist")
         return rep.report()
-    if manifest.extract.format == "parquet-dataset":
-        _check_dataset_hash(extract, manifest, rep)
-    else:
-        digest, size = sha256_file(extract)
-        rep.add("extract hash", digest == manifest.extract.sha256 and size == manifest.extract.bytes,
-                f"sha256 {digest[:16]}... and {size} bytes match the manifest" if digest == manifest.extract.sha256
-                else f"sha256 of the file ({digest[:16]}...) differs from the manifest "
-                     f"({manifest.extract.sha256[:16]}...): the extract was changed or is not this manifest's")
-    if extract.name != manifest.extract.file:
-        rep.add("file name", None,
-                f"the manifest describes {manifest.extract.file!r}; this file is named {extract.name!r}")
+    _check_hash(extract, manifest, rep)
     _check_privacy(manifest, rep)
     _check_secrets(manifest, text, key, rep)
 
@@ -284,8 +282,45 @@ def validate(extract: Path | str, manifest_path: Path | str | None = None, *, ra
             raise LdptError("--raw needs --key as well: re-deriving the extract takes the release's secret key.")
         _reproduce(Path(raw), extract, manifest, key, rep)
         if stats is not None:
-            rep.calibration = _calibrate(Path(raw), manifest, stats, rows, confidence, rep)
+            rep.calibration = _calibrate(Path(raw), manifest, stats, rows, confidence, rep, quantiles, ranges)
     return rep.report()
+
+
+def _check_calibration_options(raw: Path | str | None, quantiles: list[float] | None,
+                               ranges: list[tuple[str, float, float]] | None) -> None:
+    if (quantiles or ranges) and raw is None:
+        raise UsageError("quantiles and ranges choose what the calibration checks, which needs the raw data and the "
+                         "key (--raw and --key); give them too, or leave --quantiles and --range out.")
+    if quantiles and not all(0 < q < 1 for q in quantiles):
+        raise UsageError(f"--quantiles: every value must lie strictly between 0 and 1, got {quantiles}")
+
+
+def _check_hash(extract: Path, manifest: Manifest, rep: _Checks) -> None:
+    """The extract's bytes (or every part of a dataset) against the manifest, and its file name."""
+    if manifest.extract.format == "parquet-dataset":
+        _check_dataset_hash(extract, manifest, rep)
+    else:
+        digest, size = sha256_file(extract)
+        rep.add("extract hash", digest == manifest.extract.sha256 and size == manifest.extract.bytes,
+                f"sha256 {digest[:16]}... and {size} bytes match the manifest" if digest == manifest.extract.sha256
+                else f"sha256 of the file ({digest[:16]}...) differs from the manifest "
+                     f"({manifest.extract.sha256[:16]}...): the extract was changed or is not this manifest's")
+    if extract.name != manifest.extract.file:
+        rep.add("file name", None,
+                f"the manifest describes {manifest.extract.file!r}; this file is named {extract.name!r}")
+
+
+def _check_ranges(manifest: Manifest, ranges: list[tuple[str, float, float]]) -> None:
+    """Ranges asked for the calibration must belong to columns that give a distribution."""
+    by = {c.name: c for c in manifest.columns if c.mechanism is not None}
+    for col, lo, hi in ranges:
+        c = by.get(col)
+        if c is None or not (c.type == "binned" or mech.build(c.mechanism or {}).family == "distribution"):
+            raise UsageError(f"--range: column {col!r} has no distribution in this extract (ranges need a numeric "
+                             "column released with bins: or a distribution mechanism such as square-wave or "
+                             "hierarchy).")
+        if not lo < hi:
+            raise UsageError(f"--range {col}:{lo:g}..{hi:g}: give LOW below HIGH")
 
 
 def _check_quality(manifest: Manifest, rows: int, rep: _Checks) -> None:
@@ -479,11 +514,15 @@ CALIBRATION_QUANTILES = [0.25, 0.5, 0.75]  # quantiles checked for every column 
 CALIBRATION_RANGE_PARTS = 4  # range shares checked: the bounds cut into this many equal parts
 
 
-def _calibration_ranges(dist: Distribution, confidence: float) -> list[tuple[float, float, Any]]:
-    """The bounds of a distribution cut into CALIBRATION_RANGE_PARTS equal ranges, each with its
-    share and interval: (low, high, distribution.Interval)."""
-    edges = np.linspace(dist.lo, dist.hi, CALIBRATION_RANGE_PARTS + 1)
-    return [(float(a), float(b), dist.range_ci(float(a), float(b), confidence)) for a, b in zip(edges[:-1], edges[1:])]
+def _calibration_ranges(dist: Distribution, confidence: float,
+                        asked: list[tuple[float, float]]) -> list[tuple[float, float, Any]]:
+    """The ranges ``asked`` for a column, or else the bounds of its distribution cut into
+    CALIBRATION_RANGE_PARTS equal ranges, each with its share and interval: (low, high,
+    distribution.Interval)."""
+    if not asked:
+        edges = np.linspace(dist.lo, dist.hi, CALIBRATION_RANGE_PARTS + 1)
+        asked = [(float(a), float(b)) for a, b in zip(edges[:-1], edges[1:])]
+    return [(a, b, dist.range_ci(a, b, confidence)) for a, b in asked]
 
 
 def _entry(column: str, statistic: str, value: str | None, truth: float, est: Any, z: float,
@@ -501,7 +540,8 @@ def _entry(column: str, statistic: str, value: str | None, truth: float, est: An
     return CalibrationEntry(column, statistic, value, truth, e, est.se, lo, hi, inside, score, estimand)
 
 
-def _calibration_entries(est: EstimateResult, truth: _Truth, z: float, confidence: float) -> list[CalibrationEntry]:
+def _calibration_entries(est: EstimateResult, truth: _Truth, z: float, confidence: float,
+                         ranges: list[tuple[str, float, float]]) -> list[CalibrationEntry]:
     out: list[CalibrationEntry] = []
     for name, col in est.columns.items():
         for f, t in zip(col.frequencies, truth.shares.get(name, ())):
@@ -515,7 +555,7 @@ def _calibration_entries(est: EstimateResult, truth: _Truth, z: float, confidenc
                                      centers=src.centers)
             for q in d.quantiles:
                 out.append(_entry(name, "quantile", repr(q.q), true_dist.quantile(q.q), q, z, q.estimand))
-            for lo, hi, iv in _calibration_ranges(src, confidence):
+            for lo, hi, iv in _calibration_ranges(src, confidence, [(a, b) for c, a, b in ranges if c == name]):
                 r = RangeResult(lo, hi, iv.estimate, iv.se, iv.lo, iv.hi, iv.method)
                 out.append(_entry(name, "range share", f"{lo:g}..{hi:g}", true_dist.range_share(lo, hi), r, z,
                                   f"share of rows with {name} in [{lo:g}, {hi:g}) among all rows"))
@@ -523,19 +563,20 @@ def _calibration_entries(est: EstimateResult, truth: _Truth, z: float, confidenc
 
 
 def _calibrate(raw: Path, manifest: Manifest, stats: dict[str, Any], rows: int, confidence: float,
-               rep: _Checks) -> CalibrationResult:
+               rep: _Checks, quantiles: list[float] | None = None,
+               ranges: list[tuple[str, float, float]] | None = None) -> CalibrationResult:
     """Every statistic the columns give (frequencies, means, quantiles, range shares) against
     the truth from the raw data, encoded as the release encoded it.  A correct release fails
     with probability about FAMILY_ALPHA: each score is held to the Bonferroni limit over all
     judged statistics.  Quantiles and range shares are checked against the raw column's
     histogram over the release's buckets (linear within each): what the release estimates."""
-    an = Analyses(quantiles=list(CALIBRATION_QUANTILES))
+    an = Analyses(quantiles=list(quantiles or CALIBRATION_QUANTILES))
     est = report(manifest, stats, rows, confidence, an)
     dists = {n: c.distribution.source for n, c in est.columns.items()
              if c.distribution is not None and c.distribution.source is not None}
     truth = _true_stats(raw, manifest, dists)
     z = z_value(confidence)
-    entries = _calibration_entries(est, truth, z, confidence)
+    entries = _calibration_entries(est, truth, z, confidence, list(ranges or []))
     judged = [e for e in entries if e.score is not None]
     with_interval = [e for e in entries if e.inside is not None]
     inside = sum(bool(e.inside) for e in with_interval)

@@ -22,7 +22,7 @@ from typer.testing import CliRunner
 
 from ldptransform import load_policy, parse_policy, privatize, validate
 from ldptransform.cli import app
-from ldptransform.keys import SecretKey, load_key
+from ldptransform.keys import SecretKey
 from ldptransform.results import CalibrationResult, Check, ValidationReport
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -138,19 +138,48 @@ def test_the_calibration_fails_on_a_release_of_other_data(raw: Path, tmp_path: P
     assert rep.check("calibration").ok is False and rep.check("reproduced").ok is False and not rep.ok
 
 
+def _planned_release(tmp_path: Path) -> tuple[Path, Path]:
+    """A release of the first 6000 demo rows under staff_survey_planned.yaml (square-wave pay,
+    binned tenure, hadamard, subset, matrix, discrete-laplace): (raw, extract)."""
+    raw = tmp_path / "raw.csv"
+    pd.read_csv(DEMO_CSV).head(6000).to_csv(raw, index=False)  # its quality targets need 5200
+    out = tmp_path / "x.parquet"
+    privatize(raw, load_policy(ROOT / "policies" / "staff_survey_planned.yaml"), KEY, out, nonce=NONCE)
+    return raw, out
+
+
 def test_steward_validation_through_the_cli(tmp_path: Path) -> None:
     """The release that ended in a traceback (square-wave and binned columns), through the CLI:
     exit 0, the table says so, and --format json gives the calibration figures."""
     key = write_fixed_key(tmp_path / "k.key")
-    lp = load_policy(ROOT / "policies" / "staff_survey_planned.yaml")
-    out = tmp_path / "x.parquet"
-    privatize(DEMO_CSV, lp, load_key(key), out, nonce=NONCE)
+    raw, out = _planned_release(tmp_path)
     runner = CliRunner()
-    res = runner.invoke(app, ["validate", str(out), "--raw", str(DEMO_CSV), "--key", str(key), "--format", "json"])
+    res = runner.invoke(app, ["validate", str(out), "--raw", str(raw), "--key", str(key), "--format", "json"])
     assert res.exit_code == 0, res.output
     data = json.loads(res.stdout)
     assert data["ok"] is True and data["calibration"]["max_abs_z"] <= data["calibration"]["z_limit"]
     checks = {c["check"]: c for c in data["checks"]}
     assert checks["calibration"]["status"] == "pass" and "quantiles" in checks["calibration"]["detail"]
-    table = runner.invoke(app, ["validate", str(out), "--raw", str(DEMO_CSV), "--key", str(key)])
+    table = runner.invoke(app, ["validate", str(out), "--raw", str(raw), "--key", str(key)])
     assert table.exit_code == 0 and "all checks passed" in table.stdout
+
+
+def test_the_calibration_checks_the_quantiles_and_ranges_asked_for(tmp_path: Path) -> None:
+    raw, out = _planned_release(tmp_path)
+    rep = validate(out, raw=raw, key=KEY, quantiles=[0.1, 0.9], ranges=[("pay", 30000.0, 45000.0)])
+    cal = _assert_passes(rep)
+    got = {(e.column, e.statistic, e.value) for e in cal.entries if e.statistic in ("quantile", "range share")}
+    # pay: the range asked for; tenure_years (binned): its default four ranges
+    assert got == {("pay", "quantile", "0.1"), ("pay", "quantile", "0.9"), ("pay", "range share", "30000..45000"),
+                   ("tenure_years", "quantile", "0.1"), ("tenure_years", "quantile", "0.9"),
+                   *(("tenure_years", "range share", v) for v in ("0..11.25", "11.25..22.5", "22.5..33.75",
+                                                                  "33.75..45"))}
+    key = write_fixed_key(tmp_path / "k.key")
+    runner = CliRunner()
+    base = ["validate", str(out), "--raw", str(raw), "--key", str(key)]
+    res = runner.invoke(app, [*base, "--quantiles", "0.1,0.9", "--range", "pay:30000..45000", "--format", "json"])
+    assert res.exit_code == 0 and json.loads(res.stdout)["calibration"] == cal.to_dict()
+    bad = runner.invoke(app, [*base, "--range", "site:1..2"])
+    assert bad.exit_code == 2 and "'site' has no distribution" in bad.output and "Traceback" not in bad.output
+    no_raw = runner.invoke(app, ["validate", str(out), "--quantiles", "0.5"])
+    assert no_raw.exit_code == 2 and "--raw" in no_raw.output
