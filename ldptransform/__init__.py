@@ -6,7 +6,7 @@ Public Python API::
     policy = load_policy("policy.yaml")
     key = load_key("release.key")
     result = privatize("survey.csv", policy, key, "extract.parquet")
-    figures = estimate("extract.parquet")          # dict, same shape as `ldpt estimate --format json`
+    figures = estimate("extract.parquet")          # EstimateResult: .to_dict() as `--format json`, .to_frame()
     report = validate("extract.parquet")           # report.ok, report.checks
 """
 
