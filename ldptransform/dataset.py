@@ -88,6 +88,22 @@ class ParquetDataset:
         self.location = str(location)
         self.fragment_rows = int(fragment_rows)
         self.fs, self.root = resolve(location)
+        files = self._list_files()
+        self.files: list[str] = [p for _, p, _ in files]
+        self.size_bytes = sum(s or 0 for _, _, s in files)
+        self.schema: pa.Schema | None = None
+        self.fragments: list[Fragment] = []
+        row0 = 0
+        for rel, path, _ in files:
+            md = self._metadata(path)
+            self._check_schema(md.schema.to_arrow_schema(), rel, files[0][0])
+            row0 = self._add_fragments(md, path, row0, fragment_rows)
+        assert self.schema is not None
+        self.num_rows = row0
+
+    def _list_files(self) -> list[tuple[str, str, int | None]]:
+        """(path relative to the root, full path, size) of every Parquet file, in name order."""
+        location = self.location
         try:
             info = self.fs.get_file_info(self.root)
             if info.type == pafs.FileType.NotFound:
@@ -112,37 +128,35 @@ class ParquetDataset:
         if not files:
             raise InputFileError(f"input {location} holds no Parquet files (*.parquet or *.pq; names starting "
                                  "with _ or . are skipped). Point at the dataset's folder.")
-        self.files: list[str] = [p for _, p, _ in files]
-        self.size_bytes = sum(s or 0 for _, _, s in files)
-        self.schema: pa.Schema | None = None
-        self.fragments: list[Fragment] = []
-        row0 = 0
-        for rel, path, _ in files:
-            md = self._metadata(path)
-            schema = md.schema.to_arrow_schema()
-            if self.schema is None:
-                self.schema = schema
-            elif not schema.equals(self.schema):
-                raise DataError(f"input {location}: file {rel} does not have the same columns and types as {files[0][0]} "
-                                f"({_schema_difference(self.schema, schema)}). Every file of a dataset needs the same "
-                                "schema: rewrite that file, or move it out of the folder.")
-            groups: list[int] = []
-            rows = 0
-            for g in range(md.num_row_groups):
-                n = md.row_group(g).num_rows
-                if n == 0:  # an empty row group (an empty file's): no part of its own
-                    continue
-                if groups and rows + n > fragment_rows:
-                    self.fragments.append(Fragment(len(self.fragments), path, tuple(groups), row0, rows))
-                    row0 += rows
-                    groups, rows = [], 0
-                groups.append(g)
-                rows += n
-            if groups:
+        return files
+
+    def _check_schema(self, schema: pa.Schema, rel: str, first: str) -> None:
+        if self.schema is None:
+            self.schema = schema
+        elif not schema.equals(self.schema):
+            raise DataError(f"input {self.location}: file {rel} does not have the same columns and types as {first} "
+                            f"({_schema_difference(self.schema, schema)}). Every file of a dataset needs the same "
+                            "schema: rewrite that file, or move it out of the folder.")
+
+    def _add_fragments(self, md: Any, path: str, row0: int, fragment_rows: int) -> int:
+        """Cut one file's row groups into fragments of at most ``fragment_rows`` rows (whole row
+        groups; a larger group is a fragment of its own); returns the next fragment's first row."""
+        groups: list[int] = []
+        rows = 0
+        for g in range(md.num_row_groups):
+            n = md.row_group(g).num_rows
+            if n == 0:  # an empty row group (an empty file's): no part of its own
+                continue
+            if groups and rows + n > fragment_rows:
                 self.fragments.append(Fragment(len(self.fragments), path, tuple(groups), row0, rows))
                 row0 += rows
-        assert self.schema is not None
-        self.num_rows = row0
+                groups, rows = [], 0
+            groups.append(g)
+            rows += n
+        if groups:
+            self.fragments.append(Fragment(len(self.fragments), path, tuple(groups), row0, rows))
+            row0 += rows
+        return row0
 
     def _metadata(self, path: str) -> Any:
         try:
@@ -200,9 +214,19 @@ def dataset_digest(parts: list[dict[str, Any]]) -> str:
     (and in parallel) without concatenating the files."""
     h = hashlib.sha256(_DIGEST_LABEL)
     for p in parts:
-        h.update(f"{p['file']} {p['sha256']} {p['bytes']}\n".encode("utf-8"))
+        h.update(f"{p['file']} {p['sha256']} {p['bytes']}\n".encode())
     return h.hexdigest()
 
 
-__all__ = ["ParquetDataset", "Fragment", "read_fragment", "dataset_digest", "is_dataset", "is_uri", "resolve",
-           "DEFAULT_FRAGMENT_ROWS", "PART_NAME", "DATASET_FORMAT"]
+__all__ = [
+    "DATASET_FORMAT",
+    "DEFAULT_FRAGMENT_ROWS",
+    "PART_NAME",
+    "Fragment",
+    "ParquetDataset",
+    "dataset_digest",
+    "is_dataset",
+    "is_uri",
+    "read_fragment",
+    "resolve",
+]
