@@ -17,11 +17,13 @@ install: $(STAMP)
 demo: $(STAMP)
 	$(VENV)/bin/ldpt demo --dir demo_out
 
+# Every test, the long statistical studies (marker `slow`) included: what CI runs.
 test: $(STAMP)
-	$(PY) -m pytest -q -n 2
+	$(PY) -m pytest -q -n 2 --dist worksteal
 
+# The quick loop: everything but the tests marked `slow`.
 test-fast: $(STAMP)
-	$(PY) -m pytest -q -m "not slow"
+	$(PY) -m pytest -q -n 2 --dist worksteal -m "not slow"
 
 bench: $(STAMP)
 	$(PY) benchmarks/bench_privatize.py

@@ -274,6 +274,7 @@ def test_the_core_does_not_import_dask() -> None:
     subprocess.run([sys.executable, "-c", code], check=True, timeout=120)
 
 
+@pytest.mark.slow
 def test_cli_dask_engine_on_a_local_cluster(dataset: Path, tmp_path: Path, ldpt_process, private_dir: Path) -> None:
     """`ldpt privatize --engine dask` with no --scheduler starts its own local cluster; `ldpt
     estimate --engine dask` decodes the parts; `ldpt validate` passes.  In real processes: the
