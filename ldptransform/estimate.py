@@ -5,6 +5,10 @@ their squares (and, for joint analyses, products across two columns): that is al
 decoder keeps.  Sufficient statistics add, so batches, files and workers merge by
 addition, and memory does not grow with the extract.
 
+Each column's statistics are kept by its mechanism's decoder (``Mechanism.decoder``,
+mechanisms/decoders.py); this module streams the extract into them and adds the two-column
+statistics:
+
 * categorical / binned: per row and value v, u_v = (1[v in S(y)] - q*)/(p* - q*); the
   sums of u and u^2 follow from the support counts alone.
 * numeric: the written value is the per-row unbiased estimate; keep n, sum, sum of squares
@@ -42,13 +46,17 @@ import pyarrow.compute as pc
 
 from . import mechanisms as mech
 from .errors import DataError, ManifestError, UsageError
+from .mechanisms import decoders
+from .mechanisms.decoders import CONSISTENCY_METHODS, consistent, norm_additive, norm_mul, norm_sub  # noqa: F401
+from .mechanisms.decoders import mean_result as _mean
+from .mechanisms.decoders import moments as _moments
+from .mechanisms.decoders import numeric_values
 from .io import TableSource
 from .manifest import ColumnEntry, Manifest, default_manifest_path, load_manifest
-from .results import (ColumnResult, CrossTabCell, CrossTabResult, DistributionResult, EstimateResult, FrequencyResult,
+from .results import (ColumnResult, CrossTabCell, CrossTabResult, DistributionResult, EstimateResult,
                       GroupedMeanResult, GroupMean, MeanResult, QuantileResult, RangeResult)
 
 DECODE_BATCH_ROWS = 65536
-CONSISTENCY_METHODS = ("norm-sub", "norm-mul", "norm")
 
 
 def csv_type(dtype: str) -> pa.DataType:
@@ -56,49 +64,6 @@ def csv_type(dtype: str) -> pa.DataType:
         return pa.string()
     return {"int64": pa.int64(), "int32": pa.int32(), "double": pa.float64(), "float": pa.float32()}.get(dtype,
                                                                                                           pa.string())
-
-
-# -- consistency (post-processing to a valid distribution) ---------------------------------
-
-def norm_sub(est: np.ndarray) -> np.ndarray:
-    """Norm-Sub: subtract one delta from every value and clip at 0 so the result sums to 1
-    (the Euclidean projection onto the probability simplex).  Wang, Lopuhaä-Zwakenberg,
-    Li, Škorić, Li, "Locally Differentially Private Frequency Estimation with Consistency",
-    NDSS 2020."""
-    v = np.asarray(est, dtype=float)
-    u = np.sort(v)[::-1]
-    css = np.cumsum(u) - 1.0
-    j = np.arange(1, v.size + 1)
-    cond = u - css / j > 0
-    if not cond.any():
-        return np.full_like(v, 1.0 / v.size)
-    r = j[cond][-1]
-    delta = css[r - 1] / r
-    return np.maximum(v - delta, 0.0)
-
-
-def norm_mul(est: np.ndarray) -> np.ndarray:
-    """Norm-Mul: clip negatives to 0, then rescale to sum to 1 (same NDSS 2020 paper)."""
-    v = np.maximum(np.asarray(est, dtype=float), 0.0)
-    s = v.sum()
-    return v / s if s > 0 else np.full_like(v, 1.0 / v.size)
-
-
-def norm_additive(est: np.ndarray) -> np.ndarray:
-    """Norm: add the same delta to every value so that they sum to 1 (unbiased, may stay
-    negative; same NDSS 2020 paper)."""
-    v = np.asarray(est, dtype=float)
-    return v + (1.0 - v.sum()) / v.size
-
-
-def consistent(est: np.ndarray, method: str) -> np.ndarray:
-    if method == "norm-sub":
-        return norm_sub(est)
-    if method == "norm-mul":
-        return norm_mul(est)
-    if method == "norm":
-        return norm_additive(est)
-    raise UsageError(f"--consistency must be one of {', '.join(CONSISTENCY_METHODS)}, got {method!r}")
 
 
 # -- per-row estimates ------------------------------------------------------------------------
@@ -118,156 +83,24 @@ def _take(arrays: list[pa.Array], mask: np.ndarray | None) -> list[pa.Array]:
     return [a.filter(m) for a in arrays]
 
 
-def _moments(total: np.ndarray | float, sq: np.ndarray | float, n: int) -> tuple[Any, Any]:
-    """(mean, SE of the mean) from sum and sum of squares of n per-row values."""
-    if n == 0:
-        return None, None
-    mean = np.asarray(total, dtype=float) / n
-    var_rows = np.maximum(np.asarray(sq, dtype=float) - np.asarray(total, dtype=float) ** 2 / n, 0.0) / max(n - 1, 1)
-    return mean, np.sqrt(var_rows / n)
+# -- one-column statistics: the mechanism's own decoder (mechanisms/decoders.py) ----------------
 
-
-def _interval(est: float | None, se: float | None, z: float) -> tuple[Any, Any, Any, Any]:
-    """(estimate, se, ci_low, ci_high) of a normal-approximation interval (all None without an SE)."""
-    if est is None or se is None:
-        return None, None, None, None
-    return float(est), float(se), float(est - z * se), float(est + z * se)
-
-
-def _mean(est: float | None, se: float | None, z: float, estimand: str = "") -> MeanResult:
-    return MeanResult(*_interval(est, se, z), estimand=estimand)
-
-
-# -- one-column statistics ---------------------------------------------------------------------
-
-@dataclass
-class CategoricalStats:
-    mechanism: mech.FrequencyOracle
-    n: int = 0                                      # rows that reported this column
-    support: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
-    joint: bool = False                             # also keep co-support counts (binned columns: range SEs)
-    cosupport: np.ndarray = field(default_factory=lambda: np.zeros((0, 0), dtype=np.int64))
-
-    def __post_init__(self) -> None:
-        if self.support.size == 0:
-            self.support = np.zeros(self.mechanism.summary_size, dtype=np.int64)
-        if self.joint and self.cosupport.size == 0:
-            self.cosupport = np.zeros((self.mechanism.k, self.mechanism.k), dtype=np.int64)
-
-    def add(self, arrays: list[pa.Array]) -> None:
-        self.n += len(arrays[0])
-        self.support += self.mechanism.summarize(arrays)
-        if self.joint:
-            si = self.mechanism.support(arrays).astype(np.int64)
-            self.cosupport += si.T @ si       # reports supporting both v and w
-
-    def merge(self, other: "CategoricalStats") -> None:
-        self.n += other.n
-        self.support += other.support
-        if self.joint:
-            self.cosupport += other.cosupport
-
-    def sums(self) -> tuple[np.ndarray, np.ndarray]:
-        """(sum of u_v, sum of u_v^2) over the reporting rows, per value v."""
-        return self.mechanism.decode_sums(self.support, self.n)
-
-    def estimates(self) -> tuple[np.ndarray | None, np.ndarray | None]:
-        total, sq = self.sums()
-        return _moments(total, sq, self.n)
-
-    def covariance(self) -> np.ndarray:
-        """Covariance matrix of the frequency estimates (needs ``joint``; docs/formulas.md 0.3)."""
-        return self.mechanism.decode_covariance(self.support, self.n, self.cosupport)
-
-    def frequencies(self, z: float, method: str = "norm-sub", rows: int | None = None,
-                    estimands: list[str] | None = None) -> tuple[FrequencyResult, ...]:
-        """Per value: unbiased share, SE, interval, estimated count (share x all ``rows`` of the
-        table, which under budget.strategy sample is more than the rows that reported), and the
-        consistent share."""
-        m = self.mechanism
-        rows = self.n if rows is None else rows
-        what = estimands or [""] * len(m.categories)
-        est, se = self.estimates()
-        if est is None:
-            return tuple(FrequencyResult(label, None, None, None, None, 0.0, None, what[i])
-                         for i, label in enumerate(m.categories))
-        assert se is not None
-        cons = consistent(est, method)
-        return tuple(FrequencyResult(label, *_interval(est[i], se[i], z), float(est[i] * rows), float(cons[i]),
-                                     what[i]) for i, label in enumerate(m.categories))
-
-
-@dataclass
-class NumericStats:
-    mechanism: mech.Mechanism
-    n: int = 0
-    s1: float = 0.0
-    s2: float = 0.0
-
-    @property
-    def shift(self) -> float:
-        return (self.mechanism.lo + self.mechanism.hi) / 2.0  # type: ignore[attr-defined]
-
-    def add(self, arrays: list[pa.Array]) -> None:
-        vals = numeric_values(arrays) - self.shift
-        self.n += vals.size
-        self.s1 += float(vals.sum())
-        self.s2 += float(np.dot(vals, vals))
-
-    def merge(self, other: "NumericStats") -> None:
-        self.n += other.n
-        self.s1 += other.s1
-        self.s2 += other.s2
-
-    def mean(self, z: float, estimand: str = "") -> MeanResult:
-        est, se = _moments(self.s1, self.s2, self.n)
-        if est is None:
-            return _mean(None, None, z, estimand)
-        return _mean(float(est) + self.shift, float(se), z, estimand)
-
-
-@dataclass
-class DistributionStats:
-    """Histogram-like additive statistics of a distribution mechanism (square wave, hierarchy)."""
-
-    mechanism: Any
-    n: int = 0
-    stats: Any = None
-
-    def __post_init__(self) -> None:
-        if self.stats is None:
-            self.stats = self.mechanism.new_stats()
-
-    def add(self, arrays: list[pa.Array]) -> None:
-        self.n += len(arrays[0])
-        self.mechanism.add_stats(self.stats, arrays)
-
-    def merge(self, other: "DistributionStats") -> None:
-        self.n += other.n
-        self.stats += other.stats
-
-    def distribution(self) -> Any:
-        return self.mechanism.decode(self.stats, self.n)
-
-
-def numeric_values(arrays: list[pa.Array]) -> np.ndarray:
-    arr = arrays[0]
-    return np.asarray(pc.cast(arr, pa.float64()).to_numpy(zero_copy_only=False), dtype=float)
+# the decoders' former names, for the modules and tests that import them from here
+CategoricalStats = decoders.FrequencyDecoder
+NumericStats = decoders.MeanDecoder
+DistributionStats = decoders.DistributionDecoder
 
 
 def is_distribution(m: mech.Mechanism) -> bool:
     return m.family == "distribution"
 
 
-def stats_for(entry: ColumnEntry) -> CategoricalStats | NumericStats | DistributionStats | None:
+def stats_for(entry: ColumnEntry) -> decoders.Decoder | None:
+    """A fresh decoder for a privatized column (None for a public one); a binned column's also
+    keeps the co-support counts that the SEs of its ranges and quantiles need."""
     if entry.mechanism is None:
         return None
-    m = mech.build(entry.mechanism)
-    if m.family == "frequency":
-        return CategoricalStats(m, joint=entry.type == "binned")  # type: ignore[arg-type]
-    if is_distribution(m):
-        return DistributionStats(m)
-    return NumericStats(m)
+    return mech.build(entry.mechanism).decoder(joint=entry.type == "binned")
 
 
 # -- two-column statistics ------------------------------------------------------------------
@@ -722,14 +555,14 @@ def _distribution_result(dist: Any, an: Analyses, col: str, confidence: float, w
                               tuple(cdf), source=dist)
 
 
-def _column_result(entry: ColumnEntry, st: Any, manifest: Manifest, rows: int, confidence: float, z: float,
+def _column_result(entry: ColumnEntry, st: decoders.Decoder, manifest: Manifest, rows: int, confidence: float, z: float,
                    an: Analyses) -> ColumnResult:
     spec = entry.mechanism or {}
     head: dict[str, Any] = {"name": entry.name, "type": entry.type, "mechanism": spec.get("mechanism"),
                             "epsilon": spec.get("epsilon"), "rows_reported": st.n if st.n != rows else None}
     bounds = spec.get("bounds")
     bounds = None if bounds is None else tuple(bounds)
-    if isinstance(st, CategoricalStats):
+    if isinstance(st, decoders.FrequencyDecoder):
         labels = list(st.mechanism.categories)
         freqs = st.frequencies(z, an.consistency, rows, _frequency_estimands(manifest, entry, labels))
         dist = None
@@ -746,7 +579,7 @@ def _column_result(entry: ColumnEntry, st: Any, manifest: Manifest, rows: int, c
                             consistent_method=f"{an.consistency} (post-processed to a valid distribution; biased, "
                                               "for display)", distribution=dist)
     what = describe_values(manifest, entry)
-    if isinstance(st, DistributionStats):
+    if isinstance(st, decoders.DistributionDecoder):
         mean = dist = None
         if st.n > 1:
             d = st.distribution()
@@ -755,6 +588,7 @@ def _column_result(entry: ColumnEntry, st: Any, manifest: Manifest, rows: int, c
                               estimand=f"mean of {what}, from the estimated distribution")
             dist = _distribution_result(d, an, entry.name, confidence, what)
         return ColumnResult(**head, family="distribution", bounds=bounds, mean=mean, distribution=dist)
+    assert isinstance(st, decoders.MeanDecoder)
     return ColumnResult(**head, family="mean", bounds=bounds, mean=st.mean(z, f"mean of {what} among all rows"))
 
 

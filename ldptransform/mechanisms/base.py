@@ -16,8 +16,9 @@ fill small hooks), never decided by the mechanism's name or by probing its attri
   which names the policy fields the mechanism accepts);
 * randomization: ``words_per_row``, ``randomize`` / ``randomize_with`` (``variable_draws``),
   ``output_fields``, ``output_meaning``, ``output_bytes_per_row``, ``count_invalid``;
-* analysis: ``max_log_ratio``, ``family`` (which decoder reads it), ``fit_test`` /
-  ``no_fit_reason`` (goodness of fit, mechanisms/fit.py);
+* analysis: ``max_log_ratio``, ``family``, ``decoder`` (a fresh decoder of the family:
+  ``add`` a batch of reports, ``merge`` another, read the result; mechanisms/decoders.py),
+  ``fit_test`` / ``no_fit_reason`` (goodness of fit, mechanisms/fit.py);
 * policy and planning: ``accepts_binned`` / ``binned_refusal``, ``supports_memoize`` /
   ``memoize_refusal``, ``exact_decimal_epsilon``, ``fixed_epsilon``, ``mean_row_variance``,
   ``frequency_row_variance``, ``efficiency``.
@@ -37,6 +38,9 @@ Three family bases fill most hooks:
   quantiles, range shares): ``SquareWave`` and ``Hierarchy`` (distribution.py), with additive
   count statistics (``new_stats``, ``add_stats``) and ``decode``.
 
+Each family base implements ``decoder`` once (``FrequencyDecoder``, ``MeanDecoder``,
+``DistributionDecoder`` of mechanisms/decoders.py), so the estimator never chooses a class.
+
 A new mechanism is one module (a subclass of a family base, decorated with ``@register``)
 plus its import and listing in mechanisms/__init__.py.
 """
@@ -52,6 +56,7 @@ import pyarrow as pa
 from pydantic import BaseModel, ConfigDict, ValidationError
 
 from ..errors import PolicyError
+from .decoders import Decoder, DistributionDecoder, MeanDecoder
 
 if TYPE_CHECKING:
     from .fit import FitStats
@@ -233,6 +238,16 @@ class Mechanism(ABC):
     def describe(self) -> str:
         return self.name
 
+    # -- decoding (mechanisms/decoders.py) ---------------------------------------------
+    @abstractmethod
+    def decoder(self, *, joint: bool = False) -> Decoder:
+        """A fresh decoder of this mechanism's reports: ``add(arrays)`` a batch (rows that did not
+        report removed), ``merge(other)`` a decoder of the same mechanism, then read the family's
+        result (``frequencies`` / ``estimates`` / ``covariance``, ``mean``, ``distribution``).
+        ``joint``: also keep what the covariance of the frequency estimates needs (co-support
+        counts; frequency oracles only, the other families keep all they need anyway).
+        Implemented once by each family base."""
+
     # -- memoized randomness ---------------------------------------------------------
     @property
     def supports_memoize(self) -> bool:
@@ -311,6 +326,10 @@ class MeanMechanism(Mechanism):
     def worst_variance(self) -> float:
         """Largest Var of one report over [lo, hi] (column units)."""
 
+    def decoder(self, *, joint: bool = False) -> MeanDecoder:
+        """n, sum and sum of squares of the written values (each a row's unbiased estimate)."""
+        return MeanDecoder(self)
+
     def mean_row_variance(self) -> float:
         """Worst case over data of n * Var of the mean as ``ldpt estimate`` reports it (the spread of
         the per-row estimates, which also counts the spread of the true values): data split evenly
@@ -349,3 +368,7 @@ class DistributionMechanism(Mechanism):
     @abstractmethod
     def decode(self, stats: np.ndarray, n: int) -> Any:
         """The decoded ``Distribution`` of n reports with statistics ``stats``."""
+
+    def decoder(self, *, joint: bool = False) -> DistributionDecoder:
+        """The additive count statistics (``new_stats``), decoded by ``decode``."""
+        return DistributionDecoder(self)

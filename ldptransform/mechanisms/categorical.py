@@ -22,6 +22,7 @@ from pydantic import BaseModel, ConfigDict, Field
 from ..errors import PolicyError
 from ..random.variates import to_below, to_unit, unit_below
 from .base import Mechanism, check_epsilon, register
+from .decoders import FrequencyDecoder
 from .bounds import frequency_lower_bound
 from .fit import (
     SUPPORT_CHUNK,
@@ -41,8 +42,8 @@ BUCKET_GROUPS = 4096        # olh fit test: reported buckets are counted in at m
 
 class FrequencyOracle(Mechanism):
     """Shared logic of the 'pure' protocols (support sets with constant p*, q*).  The family base
-    of the categorical mechanisms: the decoder reads them through ``summarize`` /
-    ``decode_sums`` / ``decode_covariance``."""
+    of the categorical mechanisms: its decoder (``decoder``, a ``FrequencyDecoder``) reads them
+    through ``summarize`` / ``decode_sums`` / ``decode_covariance``."""
 
     kind: ClassVar[str] = "categorical"
     family: ClassVar[str] = "frequency"
@@ -77,6 +78,11 @@ class FrequencyOracle(Mechanism):
         return cls(spec["epsilon"], spec["categories"])
 
     # decoding ----------------------------------------------------------------------
+    def decoder(self, *, joint: bool = False) -> FrequencyDecoder:
+        """The reports' additive summary (``summarize``); with ``joint``, also the co-support
+        counts that ``decode_covariance`` needs (binned columns: range and quantile SEs)."""
+        return FrequencyDecoder(self, joint=joint)
+
     def support(self, arrays: list[pa.Array]) -> np.ndarray:
         """Boolean matrix of shape (n, k): entry (i, v) is 1[v in S(y_i)]."""
         raise NotImplementedError
