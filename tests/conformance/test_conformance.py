@@ -36,7 +36,6 @@ deterministic; numpy's generator (fixed seeds) only makes input data.
 
 from __future__ import annotations
 
-import importlib
 import json
 import math
 import pickle
@@ -197,18 +196,6 @@ def as_lists(arrays: list[pa.Array]) -> list[list[Any]]:
     return out
 
 
-def new_decoder(m: Mechanism) -> Any:
-    """A fresh decoder of the mechanism's reports: its own ``decoder()`` hook where the contract
-    has it, else the estimate module's statistics class of its family."""
-    hook = getattr(m, "decoder", None)
-    if callable(hook):
-        return hook()
-    estimate = importlib.import_module("ldptransform.estimate")
-    cls = {"frequency": estimate.CategoricalStats, "mean": estimate.NumericStats,
-           "distribution": estimate.DistributionStats}[m.family]
-    return cls(m)
-
-
 def decoded(m: Mechanism, dec: Any) -> dict[str, np.ndarray]:
     """The decoder's result as arrays: estimates and SEs (frequency oracles, means), or the
     decoded bucket masses (distribution mechanisms)."""
@@ -223,7 +210,9 @@ def decoded(m: Mechanism, dec: Any) -> dict[str, np.ndarray]:
 
 
 def decode(m: Mechanism, arrays: list[pa.Array]) -> Any:
-    dec = new_decoder(m)
+    """The mechanism's own decoder (``Mechanism.decoder``) filled with ``arrays``."""
+    dec = m.decoder()
+    assert dec.family == m.family and dec.n == 0
     dec.add(arrays)
     return dec
 
@@ -469,7 +458,8 @@ def test_pickle_round_trip(name: str) -> None:
 @pytest.mark.parametrize("name", NAMES)
 def test_decoder_merge_equals_concatenation(name: str) -> None:
     """Decoders of two halves merged give the decoder of the whole: the same row count and the
-    same results within 1e-12 (relative; exactly equal for integer statistics)."""
+    same results within 1e-12 relative (estimates and SEs, decoded masses and their covariance;
+    for frequency oracles also the covariance of the joint decoder)."""
     m = example(name)
     x = skewed_input(m, 4000, seed=8)
     arrays = release(m, x, f"merge/{name}")
@@ -483,6 +473,12 @@ def test_decoder_merge_equals_concatenation(name: str) -> None:
     assert set(a) == set(b)
     for key in a:
         np.testing.assert_allclose(a[key], b[key], rtol=1e-12, atol=1e-15, err_msg=key)
+    if m.family == "frequency":          # the joint decoder (co-support counts) merges the same way
+        halves: list[Any] = [m.decoder(joint=True).add([a.slice(offset, length) for a in arrays])
+                             for offset, length in ((0, cut), (cut, None))]
+        full: Any = m.decoder(joint=True).add(arrays)
+        np.testing.assert_allclose(halves[0].merge(halves[1]).covariance(), full.covariance(),
+                                   rtol=1e-12, atol=1e-15)
 
 
 # -- 9. the fit test's false-alarm rate -----------------------------------------------------------
