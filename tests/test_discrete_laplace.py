@@ -28,8 +28,9 @@ from conftest import FIXED_KEY_BYTES, FIXED_NONCE
 from ldptransform.errors import PolicyError
 from ldptransform.keys import KeyedStream, SecretKey
 from ldptransform.mechanisms.base import build
-from ldptransform.mechanisms.discrete_laplace import (DiscreteLaplace, _RowDraws, bernoulli_exp,
-                                                      uniform_below)
+from ldptransform.mechanisms.discrete_laplace import DiscreteLaplace
+from ldptransform.random.variates import RowDraws as _RowDraws
+from ldptransform.random.variates import bernoulli_exp, uniform_below
 from ldptransform.mechanisms.numeric import DEFAULT_GRID
 
 KEY = SecretKey(FIXED_KEY_BYTES)

@@ -736,7 +736,7 @@ def test_guide_table_search_gives_the_binary_searchs_outputs():
     masses in one slice, where the steps are many), over 200,000 keyed words each."""
     from ldptransform.mechanisms import Matrix, Piecewise, SquareWave
     from ldptransform.mechanisms.matrix import grr_matrix
-    from ldptransform.mechanisms.numeric import (
+    from ldptransform.random.variates import (
         SAMPLING_BITS,
         draw_index,
         guide_table,

@@ -2,8 +2,8 @@
 
 A mechanism is built from its spec (a plain dict that round-trips exactly through the
 manifest) and never sees a key: it is handed fixed-size blocks of pseudorandom 64-bit
-words by the release layer (``keys.KeyedStream``) and turns them into outputs with
-exact threshold comparisons.  Each mechanism also knows its exact channel
+words by the release layer (a ``random.bits.BitSource``) and turns them into outputs with
+exact threshold comparisons (``random.variates``).  Each mechanism also knows its exact channel
 P(output | input), a per-row unbiased estimator and its exact variance, so that the
 decoder, the validator and the tests never special-case a mechanism.
 

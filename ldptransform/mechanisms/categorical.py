@@ -252,7 +252,7 @@ class _UnaryEncoding(FrequencyOracle):
         return "report bits: character j is the randomized bit of category j of the mechanism's categories"
 
     def randomize_bits(self, x: np.ndarray, words: np.ndarray) -> np.ndarray:
-        # bit j = to_unit(word j) < (p* if j == x else q*), compared as integers (keys.unit_below)
+        # bit j = to_unit(word j) < (p* if j == x else q*), compared as integers (random.variates.unit_below)
         rows = np.arange(x.shape[0])
         bits = unit_below(words, self.q_star)
         bits[rows, x] = unit_below(words[rows, x], self.p_star)

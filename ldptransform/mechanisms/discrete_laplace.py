@@ -38,11 +38,13 @@ Significance of the Least Significant Bits for Differential Privacy", CCS 2012):
   successes of Bernoulli(exp(-1)) before the first failure; Y = floor((U + t V) / s);
   B uniform bit; if B = 1 and Y = 0 restart; Z = (1 - 2B) Y }.
 
-These loops need an unbounded number of words per row, so the mechanism is driven by
+The samplers themselves are variates (``random.variates``: ``RowDraws``, ``uniform_below``,
+``bernoulli_exp``, ``discrete_laplace``); this module chooses s, t and the grid.  The loops
+need an unbounded number of words per row, so the mechanism is driven by
 ``randomize_with(x, words, draw)``: ``words`` is the usual fixed block (words_per_row = 2;
 word 0 drives the rounding stage, word 1 is reserved and unused), and
 ``draw(local_rows, draw_indices)`` returns one word per (row, draw index) pair (the
-release passes ``lambda r, j: stream.words_at(row0 + r, j)``, see ``keys.KeyedStream``).
+release passes ``lambda r, j: stream.words_at(row0 + r, j)``, see ``random.bits.KeyedStream``).
 Every row keeps its own draw counter starting at 0 and walks the sequential algorithm
 above, so its result depends only on its own words, never on the other rows of the
 batch or on batch boundaries.  The loops are vectorized: each round processes all rows
@@ -53,7 +55,7 @@ from __future__ import annotations
 
 import math
 from fractions import Fraction
-from typing import Any, Callable, ClassVar
+from typing import Any, ClassVar
 
 import numpy as np
 import pyarrow as pa
@@ -61,119 +63,16 @@ import pyarrow.compute as pc
 from pydantic import BaseModel
 
 from ..errors import PolicyError
-from ..random.variates import to_unit
+from ..random.variates import Draw, RowDraws, discrete_laplace, to_unit
 from .base import MeanMechanism, register
 from .fit import HullFit
 from .numeric import DEFAULT_GRID, GridMechanismParams, grid_position
-
-Draw = Callable[[np.ndarray, np.ndarray], np.ndarray]
 
 MAX_GRID = 4096
 DL_TAIL = 1e-9              # fit test: lattice cells kept until each tail holds below this
 # s and t (eps / G = s / t in lowest terms) must stay below this so that every product the
 # sampler forms fits 64-bit integers: den * K < 2^64 for K < 2^16 in the Bernoulli loop.
 RATIONAL_LIMIT = 1 << 48
-# Safety nets against a broken ``draw`` (constant words would loop for ever).  With PRF
-# words neither is reachable: K >= 2^16 has probability below 1/(2^16 - 1)!, and a row
-# needs more than 2^20 words with probability far below 2^-1000.
-_K_LIMIT = 1 << 16
-_DRAW_LIMIT = 1 << 20
-_U64_MAX = np.uint64(0xFFFFFFFFFFFFFFFF)
-
-
-# -- exact integer sampler --------------------------------------------------------------
-
-class _RowDraws:
-    """Per-row draw counters over one batch of ``n`` rows: ``next(rows)`` gives each listed
-    row (no repeats) its next word from ``draw`` and advances that row's counter."""
-
-    __slots__ = ("counter", "draw")
-
-    def __init__(self, n: int, draw: Draw) -> None:
-        self.counter = np.zeros(n, dtype=np.int64)
-        self.draw = draw
-
-    def next(self, rows: np.ndarray) -> np.ndarray:
-        j = self.counter[rows]
-        if j.size and int(j.max()) >= _DRAW_LIMIT:
-            raise RuntimeError("discrete-laplace sampler: a row used more than 2^20 random words; the draw "
-                               "function does not return pseudorandom words (a bug, not a data problem)")
-        w = np.asarray(self.draw(rows, j))
-        if w.shape != rows.shape or w.dtype != np.uint64:
-            raise RuntimeError(f"discrete-laplace sampler: draw returned {w.dtype} of shape {w.shape}, "
-                               f"expected uint64 of shape {rows.shape}")
-        self.counter[rows] = j + 1
-        return w
-
-
-def uniform_below(src: _RowDraws, rows: np.ndarray, m: np.ndarray | int) -> np.ndarray:
-    """Exactly uniform integers in [0, m) (uint64), one per row of ``rows``, by rejection:
-    a word w is accepted iff w < floor(2^64/m) * m (i.e. w <= 2^64 - 1 - (2^64 mod m)),
-    then reduced mod m; rejected rows draw again.  ``m`` >= 1, scalar or per row."""
-    m = np.broadcast_to(np.asarray(m, dtype=np.uint64), rows.shape)
-    rem = (_U64_MAX % m + np.uint64(1)) % m  # 2^64 mod m, without overflow
-    limit = _U64_MAX - rem
-    out = np.empty(rows.shape, dtype=np.uint64)
-    pending = np.arange(rows.size)
-    while pending.size:
-        w = src.next(rows[pending])
-        ok = w <= limit[pending]
-        took = pending[ok]
-        out[took] = w[ok] % m[took]
-        pending = pending[~ok]
-    return out
-
-
-def bernoulli_exp(src: _RowDraws, rows: np.ndarray, num: np.ndarray | int | np.integer,
-                  den: np.ndarray | int | np.integer) -> np.ndarray:
-    """Exact Bernoulli(exp(-num/den)) per row, 0 <= num <= den (Canonne, Kamath, Steinke,
-    NeurIPS 2020): K = 1; while Bernoulli(gamma/K) succeeds, K += 1; result is K odd.
-    Bernoulli(gamma/K) is [uniform integer below den*K] < num, exactly."""
-    num = np.broadcast_to(np.asarray(num, dtype=np.uint64), rows.shape)
-    den = np.broadcast_to(np.asarray(den, dtype=np.uint64), rows.shape)
-    K = np.ones(rows.shape, dtype=np.uint64)
-    result = np.empty(rows.shape, dtype=bool)
-    active = np.arange(rows.size)
-    while active.size:
-        if int(K[active].max()) >= _K_LIMIT:
-            raise RuntimeError("discrete-laplace sampler: Bernoulli loop ran past 2^16 steps; the draw "
-                               "function does not return pseudorandom words (a bug, not a data problem)")
-        u = uniform_below(src, rows[active], den[active] * K[active])
-        hit = u < num[active]
-        done = active[~hit]
-        result[done] = (K[done] & np.uint64(1)) == np.uint64(1)
-        active = active[hit]
-        K[active] += np.uint64(1)
-    return result
-
-
-def discrete_laplace(src: _RowDraws, n: int, s: int, t: int) -> np.ndarray:
-    """Exact two-sided geometric noise, P(Z = z) proportional to exp(-|z| s/t), for rows
-    0..n-1 of ``src`` (int64), by the rejection sampler of Canonne, Kamath, Steinke
-    (NeurIPS 2020).  Every row follows the sequential algorithm with its own words."""
-    Z = np.zeros(n, dtype=np.int64)
-    pending = np.arange(n, dtype=np.int64)
-    ones = np.uint64(1)
-    while pending.size:
-        U = uniform_below(src, pending, t)
-        D = bernoulli_exp(src, pending, U, t)
-        keep, U = pending[D], U[D].astype(np.int64)
-        V = np.zeros(keep.size, dtype=np.int64)
-        active = np.arange(keep.size)
-        while active.size:  # V = successes of Bernoulli(exp(-1)) before the first failure
-            A = bernoulli_exp(src, keep[active], ones, ones)
-            active = active[A]
-            V[active] += 1
-        if V.size and int(V.max()) > (np.iinfo(np.int64).max - t) // t:
-            raise RuntimeError("discrete-laplace sampler: geometric count out of range; the draw function "
-                               "does not return pseudorandom words (a bug, not a data problem)")
-        Y = (U + t * V) // s
-        B = uniform_below(src, keep, 2) == ones
-        reject = B & (Y == 0)
-        acc = ~reject
-        Z[keep[acc]] = np.where(B[acc], -Y[acc], Y[acc])
-        pending = np.sort(np.concatenate([pending[~D], keep[reject]]))
-    return Z
 
 
 # -- the mechanism ----------------------------------------------------------------------
@@ -294,7 +193,7 @@ class DiscreteLaplace(MeanMechanism):
 
     def sample_noise(self, n: int, draw: Draw) -> np.ndarray:
         """Z for rows 0..n-1 (int64), each row drawing words draw(row, 0), draw(row, 1), ..."""
-        return discrete_laplace(_RowDraws(n, draw), n, self.s, self.t)
+        return discrete_laplace(RowDraws(n, draw), n, self.s, self.t)
 
     def randomize(self, x: np.ndarray, words: np.ndarray) -> list[pa.Array]:
         raise TypeError("mechanism discrete-laplace needs an unbounded number of random words per row "

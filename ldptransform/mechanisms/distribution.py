@@ -14,8 +14,8 @@ whose per-column sufficient statistics are integer count vectors (``new_stats``,
   (docs/formulas.md section 7.1).  The output is discretized exactly: the cell edges are every
   v_i - b and v_i + b, so each grid input's density is constant on every cell, a cell's
   probability is density x width, and eps holds cell by cell.  The channel is sampled as
-  integer masses by exact comparison (``numeric.integer_masses``/``draw_index``, the same
-  sampler as the grid mechanisms).  The extract holds the index of the reported cell.
+  integer masses by exact comparison (``random.variates.integer_masses``/``draw_index``, the
+  same sampler as the grid mechanisms).  The extract holds the index of the reported cell.
   Decoding: EMS (expectation maximization with smoothing, as in the paper) over the N+1 grid
   points, with the binomial kernel (1, 2, 1)/4 after every EM step.
 * ``hierarchy``: G. Cormode, T. Kulkarni, D. Srivastava, "Answering Range Queries Under Local
@@ -51,19 +51,11 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from ..distribution import Distribution, frequency_covariance
 from ..errors import PolicyError
-from ..random.variates import to_below, to_unit
+from ..random.variates import SAMPLING_BITS, draw_index, guide_table, integer_masses, sampling_table, to_below, to_unit
 from .base import DistributionMechanism, check_epsilon, register
 from .categorical import GRR, HASH_PRIME, OLH, SupportSizeFit
 from .fit import FitResult, FitStats, HullFit, _impossible_result
-from .numeric import (
-    SAMPLING_BITS,
-    GridMechanismParams,
-    check_bounds,
-    draw_index,
-    guide_table,
-    integer_masses,
-    sampling_table,
-)
+from .numeric import GridMechanismParams, check_bounds
 
 DEFAULT_SW_GRID = 256
 MAX_SW_GRID = 4096          # (N+1) * 2^SAMPLING_BITS must stay below 2^63

@@ -109,7 +109,7 @@ class HadamardResponse(FrequencyOracle):
     uniform element of C_x, else a uniform element of its complement.  p* = e^eps/(e^eps+1),
     q* = 1/2.  Output: one int32 column, the reported index y in 0..K-1.
 
-    Sampling: word 0 picks the half (integer threshold comparison, ``keys.unit_below``);
+    Sampling: word 0 picks the half (integer threshold comparison, ``random.variates.unit_below``);
     the top log2(K) bits of word 1 give u uniform on [K] exactly; if u lies in the wrong half,
     the lowest set bit of x + 1 is flipped in u.  That flip changes the parity of
     popcount((x+1) AND u) and is a bijection between the two halves, so the report is exactly

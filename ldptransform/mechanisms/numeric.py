@@ -42,16 +42,15 @@ import pyarrow.compute as pc
 from pydantic import BaseModel, ConfigDict, Field
 
 from ..errors import PolicyError
-from ..random.variates import to_unit
+from ..random.variates import SAMPLING_BITS, draw_index, guide_table, integer_masses, sampling_table, to_unit
 from .base import MeanMechanism, NoParams, check_epsilon, register
 from .fit import HullFit
 
 DEFAULT_GRID = 256
 HYBRID_THRESHOLD = 0.61
-# The channel is stored and sampled as integer masses in units of 2^-SAMPLING_BITS; the
-# second-stage uniform is the top SAMPLING_BITS bits of a PRF word.  50 bits keep the
-# flattened threshold table (N+1) * 2^50 below 2^63 for every allowed grid (N <= 4096).
-SAMPLING_BITS = 50
+# The channel is sampled by the integer-mass sampler of random/variates.py (masses in units of
+# 2^-SAMPLING_BITS, 50 bits): its threshold table (N+1) * 2^50 stays below 2^63 for every
+# allowed grid (N <= 4096).
 
 
 def check_bounds(bounds: Any, where: str) -> tuple[float, float]:
@@ -64,91 +63,6 @@ def check_bounds(bounds: Any, where: str) -> tuple[float, float]:
     if lo >= hi:
         raise PolicyError(f"{where}: bounds low ({lo:g}) must be below high ({hi:g})")
     return lo, hi
-
-
-def integer_masses(Q: np.ndarray, epsilon: float) -> np.ndarray:
-    """A finite channel ``Q`` (inputs x outputs, rows summing to 1) as whole-number masses in
-    units of 2^-SAMPLING_BITS, held exactly in float64: what ``draw_index`` realizes.
-
-    Each mass is within one unit of the float channel (cumulative rounding of the remainders
-    keeps every row's total); then, per output, masses are raised to ceil(max / e^eps) so no
-    input gets more than e^eps times the mass of another, and each row's few units of surplus
-    come off its largest cell.  Without this a cell of tiny probability could be realized as 0
-    for one input and > 0 for another (an unbounded privacy loss)."""
-    S = float(1 << SAMPLING_BITS)
-    X = np.asarray(Q, dtype=float) * S
-    F = np.floor(X)
-    X -= F
-    np.cumsum(X, axis=1, out=X)
-    np.round(X, out=X)
-    F[:, 0] += X[:, 0]
-    F[:, 1:] += np.diff(X, axis=1)
-    del X
-    need = np.ceil(F.max(axis=0) / math.exp(epsilon))
-    np.maximum(F, need[None, :], out=F)
-    F[np.arange(F.shape[0]), F.argmax(axis=1)] += S - F.sum(axis=1)
-    return F
-
-
-def sampling_table(F: np.ndarray) -> np.ndarray:
-    """Row i's integer cumulative masses (``integer_masses``) offset by i * 2^SAMPLING_BITS,
-    flattened (int64; needs rows * 2^SAMPLING_BITS < 2^63, i.e. at most 8192 rows)."""
-    cum = np.cumsum(F, axis=1).astype(np.int64)  # exact: sums <= 2^50
-    cum += np.arange(cum.shape[0], dtype=np.int64)[:, None] << SAMPLING_BITS
-    return cum.ravel()
-
-
-GUIDE_BITS = 11            # slices of [0, 2^SAMPLING_BITS) per input row in a guide table
-GUIDE_MAX_ENTRIES = 1 << 22  # at most 16 MiB of int32 per table; larger channels search without a guide
-
-
-def guide_table(table: np.ndarray, M: int) -> np.ndarray | None:
-    """For each input row i of a ``sampling_table`` and each of 2^GUIDE_BITS equal slices of
-    [0, 2^SAMPLING_BITS): the number of row i's cumulative masses <= the slice's start, i.e. the
-    smallest output any u in the slice can draw.  ``draw_index`` starts there and steps forward,
-    which replaces a binary search over the whole table by one look-up and a step or two (the
-    same output: a guide table for inverse-CDF sampling).  None for tables too small to gain
-    or too large to index this way."""
-    R = table.size // M
-    if table.size <= 64 or R * (1 << GUIDE_BITS) > GUIDE_MAX_ENTRIES:
-        return None
-    width = 1 << (SAMPLING_BITS - GUIDE_BITS)
-    starts = ((np.arange(R, dtype=np.int64)[:, None] << SAMPLING_BITS)
-              + np.arange(1 << GUIDE_BITS, dtype=np.int64)[None, :] * width)
-    counts = np.searchsorted(table, starts.ravel(), side="right").reshape(R, 1 << GUIDE_BITS)
-    return (counts - np.arange(R, dtype=np.int64)[:, None] * M).astype(np.int32)
-
-
-def draw_index(table: np.ndarray, i: np.ndarray, words: np.ndarray, M: int,
-               guide: np.ndarray | None = None) -> np.ndarray:
-    """Output index for input row ``i`` of a channel with ``M`` outputs, by exact integer
-    comparison of the top SAMPLING_BITS bits of each PRF word with the cumulative masses:
-    output j iff cum[i, j-1] <= u < cum[i, j], u uniform on [0, 2^SAMPLING_BITS).  With
-    ``guide`` (``guide_table`` of the same table) the search starts at the guide's entry and
-    steps forward; without, it is a binary search.  Both give the same index."""
-    u = (words >> np.uint64(64 - SAMPLING_BITS)).astype(np.int64)
-    keys = (i << SAMPLING_BITS) + u
-    if guide is not None and keys.size > 64:
-        # the guide entry is at most M - 1 and row i's last cumulative mass (i + 1) * 2^BITS is
-        # above every key of row i, so the steps never leave the row: no bounds checks needed
-        base = i * M
-        pos = base + guide.reshape(-1)[(i << GUIDE_BITS) | (u >> (SAMPLING_BITS - GUIDE_BITS))]
-        idx = np.flatnonzero(table[pos] <= keys)
-        while idx.size:  # cumulative masses within the slice that are still <= u: step past them
-            pos[idx] += 1
-            idx = idx[table[pos[idx]] <= keys[idx]]
-        pos -= base
-        return pos
-    if table.size > 64 and keys.size > 64:
-        # Same search on sorted keys (then put back in row order): the table is walked in
-        # order instead of at random, several times faster for large grids; same result.
-        order = np.argsort(keys)
-        pos = np.empty_like(keys)
-        pos[order] = np.searchsorted(table, keys[order], side="right")
-    else:
-        pos = np.searchsorted(table, keys, side="right")
-    pos -= i * M
-    return np.clip(pos, 0, M - 1)
 
 
 def sorted_position(alpha: np.ndarray, vals: np.ndarray, per_item: int = 4) -> np.ndarray:

@@ -62,8 +62,8 @@ class SubsetSelection(FrequencyOracle):
     Sampling (docs/formulas.md section 3.2): word 0 decides, by exact integer comparison, whether x
     is in S (probability p* = mE/(mE + k - m)); the other members are a uniform subset of the
     k - 1 other values (m - 1 of them if x is in S, else m), drawn by a partial Fisher-Yates
-    shuffle vectorized over rows, one word per step reduced with ``keys.to_below`` (off uniform
-    by less than bound/2^64 per step).  When 2m > k the shuffle picks the complement instead
+    shuffle vectorized over rows, one word per step reduced with ``variates.to_below`` (off
+    uniform by less than bound/2^64 per step).  When 2m > k the shuffle picks the complement instead
     (the k - m or k - 1 - m other values left out), so a row takes 1 + min(m, k - m) words.
     Given whether x is in S, every subset of that kind is then equally likely, so
     P(S | x) = E/Z for x in S and 1/Z otherwise, Z = C(k-1, m-1) E + C(k-1, m).

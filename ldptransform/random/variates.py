@@ -2,20 +2,30 @@
 
 Everything here is a pure function of the words it is given, so a release's outputs depend
 only on which words a row draws (never on batching), and every function is exact or states
-its (negligible) deviation:
+its (negligible) deviation.  All of it is vectorized over rows.
 
 - ``to_unit``: uniforms on the 2^-53 grid in [0, 1); ``unit_below``: the comparison
   ``to_unit(w) < t`` as one integer comparison; ``to_below``: integers in [0, bound).
 - ``choose_m_of_d``: a uniform m-subset of d positions per row, from one word per position
   (the column choice of ``budget.strategy: sample``).
-
-The mechanisms' own samplers (the integer-mass guide-table sampler of the grid mechanisms,
-the exact Bernoulli and discrete-Laplace rejection samplers) are built on these.
+- The integer-mass sampler of a finite channel (inputs x outputs): ``integer_masses`` holds
+  the channel as whole-number masses in units of 2^-SAMPLING_BITS, ``sampling_table`` their
+  cumulative sums, ``guide_table`` a guide over equal slices of [0, 2^SAMPLING_BITS), and
+  ``draw_index`` draws an output per row by exact integer comparison of the top
+  SAMPLING_BITS bits of one word with the cumulative masses (inverse-CDF sampling, the
+  guide replacing most of the binary search).
+- Exact rejection samplers over a variable number of words per row (``RowDraws``: each
+  row's own draw counter over a ``draw(rows, j)`` function): ``uniform_below`` (exactly
+  uniform integers below m), ``bernoulli_exp`` (Bernoulli(exp(-num/den))) and
+  ``discrete_laplace`` (two-sided geometric noise), integer arithmetic only, after C. L.
+  Canonne, G. Kamath, T. Steinke, "The Discrete Gaussian for Differential Privacy", NeurIPS
+  2020 (docs/formulas.md section 10.3).
 """
 
 from __future__ import annotations
 
 import math
+from typing import Callable
 
 import numpy as np
 
@@ -61,3 +71,202 @@ def choose_m_of_d(words: np.ndarray, m: int) -> np.ndarray:
     mask = np.zeros(words.shape, dtype=bool)
     mask[np.arange(n)[:, None], chosen] = True
     return mask
+
+
+# -- the integer-mass sampler of a finite channel ------------------------------------------------
+
+# The channel is stored and sampled as integer masses in units of 2^-SAMPLING_BITS; the
+# uniform is the top SAMPLING_BITS bits of a word.  50 bits keep a flattened threshold table
+# of R rows, R * 2^50, below 2^63 for R <= 8192.
+SAMPLING_BITS = 50
+
+
+def integer_masses(Q: np.ndarray, epsilon: float) -> np.ndarray:
+    """A finite channel ``Q`` (inputs x outputs, rows summing to 1) as whole-number masses in
+    units of 2^-SAMPLING_BITS, held exactly in float64: what ``draw_index`` realizes.
+
+    Each mass is within one unit of the float channel (cumulative rounding of the remainders
+    keeps every row's total); then, per output, masses are raised to ceil(max / e^eps) so no
+    input gets more than e^eps times the mass of another, and each row's few units of surplus
+    come off its largest cell.  Without this a cell of tiny probability could be realized as 0
+    for one input and > 0 for another (an unbounded privacy loss)."""
+    S = float(1 << SAMPLING_BITS)
+    X = np.asarray(Q, dtype=float) * S
+    F = np.floor(X)
+    X -= F
+    np.cumsum(X, axis=1, out=X)
+    np.round(X, out=X)
+    F[:, 0] += X[:, 0]
+    F[:, 1:] += np.diff(X, axis=1)
+    del X
+    need = np.ceil(F.max(axis=0) / math.exp(epsilon))
+    np.maximum(F, need[None, :], out=F)
+    F[np.arange(F.shape[0]), F.argmax(axis=1)] += S - F.sum(axis=1)
+    return F
+
+
+def sampling_table(F: np.ndarray) -> np.ndarray:
+    """Row i's integer cumulative masses (``integer_masses``) offset by i * 2^SAMPLING_BITS,
+    flattened (int64; needs rows * 2^SAMPLING_BITS < 2^63, i.e. at most 8192 rows)."""
+    cum = np.cumsum(F, axis=1).astype(np.int64)  # exact: sums <= 2^50
+    cum += np.arange(cum.shape[0], dtype=np.int64)[:, None] << SAMPLING_BITS
+    return cum.ravel()
+
+
+GUIDE_BITS = 11            # slices of [0, 2^SAMPLING_BITS) per input row in a guide table
+GUIDE_MAX_ENTRIES = 1 << 22  # at most 16 MiB of int32 per table; larger channels search without a guide
+
+
+def guide_table(table: np.ndarray, M: int) -> np.ndarray | None:
+    """For each input row i of a ``sampling_table`` and each of 2^GUIDE_BITS equal slices of
+    [0, 2^SAMPLING_BITS): the number of row i's cumulative masses <= the slice's start, i.e. the
+    smallest output any u in the slice can draw.  ``draw_index`` starts there and steps forward,
+    which replaces a binary search over the whole table by one look-up and a step or two (the
+    same output: a guide table for inverse-CDF sampling).  None for tables too small to gain
+    or too large to index this way."""
+    R = table.size // M
+    if table.size <= 64 or R * (1 << GUIDE_BITS) > GUIDE_MAX_ENTRIES:
+        return None
+    width = 1 << (SAMPLING_BITS - GUIDE_BITS)
+    starts = ((np.arange(R, dtype=np.int64)[:, None] << SAMPLING_BITS)
+              + np.arange(1 << GUIDE_BITS, dtype=np.int64)[None, :] * width)
+    counts = np.searchsorted(table, starts.ravel(), side="right").reshape(R, 1 << GUIDE_BITS)
+    return (counts - np.arange(R, dtype=np.int64)[:, None] * M).astype(np.int32)
+
+
+def draw_index(table: np.ndarray, i: np.ndarray, words: np.ndarray, M: int,
+               guide: np.ndarray | None = None) -> np.ndarray:
+    """Output index for input row ``i`` of a channel with ``M`` outputs, by exact integer
+    comparison of the top SAMPLING_BITS bits of each PRF word with the cumulative masses:
+    output j iff cum[i, j-1] <= u < cum[i, j], u uniform on [0, 2^SAMPLING_BITS).  With
+    ``guide`` (``guide_table`` of the same table) the search starts at the guide's entry and
+    steps forward; without, it is a binary search.  Both give the same index."""
+    u = (words >> np.uint64(64 - SAMPLING_BITS)).astype(np.int64)
+    keys = (i << SAMPLING_BITS) + u
+    if guide is not None and keys.size > 64:
+        # the guide entry is at most M - 1 and row i's last cumulative mass (i + 1) * 2^BITS is
+        # above every key of row i, so the steps never leave the row: no bounds checks needed
+        base = i * M
+        pos = base + guide.reshape(-1)[(i << GUIDE_BITS) | (u >> (SAMPLING_BITS - GUIDE_BITS))]
+        idx = np.flatnonzero(table[pos] <= keys)
+        while idx.size:  # cumulative masses within the slice that are still <= u: step past them
+            pos[idx] += 1
+            idx = idx[table[pos[idx]] <= keys[idx]]
+        pos -= base
+        return pos
+    if table.size > 64 and keys.size > 64:
+        # Same search on sorted keys (then put back in row order): the table is walked in
+        # order instead of at random, several times faster for large grids; same result.
+        order = np.argsort(keys)
+        pos = np.empty_like(keys)
+        pos[order] = np.searchsorted(table, keys[order], side="right")
+    else:
+        pos = np.searchsorted(table, keys, side="right")
+    pos -= i * M
+    return np.clip(pos, 0, M - 1)
+
+
+# -- exact rejection samplers (a variable number of words per row) ------------------------------
+
+#: ``draw(rows, j)``: word j of each listed row (uint64, shape of ``rows``)
+Draw = Callable[[np.ndarray, np.ndarray], np.ndarray]
+
+# Safety nets against a broken ``draw`` (constant words would loop for ever).  With PRF
+# words neither is reachable: K >= 2^16 has probability below 1/(2^16 - 1)!, and a row
+# needs more than 2^20 words with probability far below 2^-1000.
+_K_LIMIT = 1 << 16
+_DRAW_LIMIT = 1 << 20
+_U64_MAX = np.uint64(0xFFFFFFFFFFFFFFFF)
+
+
+class RowDraws:
+    """Per-row draw counters over one batch of ``n`` rows: ``next(rows)`` gives each listed
+    row (no repeats) its next word from ``draw`` and advances that row's counter."""
+
+    __slots__ = ("counter", "draw")
+
+    def __init__(self, n: int, draw: Draw) -> None:
+        self.counter = np.zeros(n, dtype=np.int64)
+        self.draw = draw
+
+    def next(self, rows: np.ndarray) -> np.ndarray:
+        j = self.counter[rows]
+        if j.size and int(j.max()) >= _DRAW_LIMIT:
+            raise RuntimeError("exact sampler: a row used more than 2^20 random words; the draw "
+                               "function does not return pseudorandom words (a bug, not a data problem)")
+        w = np.asarray(self.draw(rows, j))
+        if w.shape != rows.shape or w.dtype != np.uint64:
+            raise RuntimeError(f"exact sampler: draw returned {w.dtype} of shape {w.shape}, "
+                               f"expected uint64 of shape {rows.shape}")
+        self.counter[rows] = j + 1
+        return w
+
+
+def uniform_below(src: RowDraws, rows: np.ndarray, m: np.ndarray | int) -> np.ndarray:
+    """Exactly uniform integers in [0, m) (uint64), one per row of ``rows``, by rejection:
+    a word w is accepted iff w < floor(2^64/m) * m (i.e. w <= 2^64 - 1 - (2^64 mod m)),
+    then reduced mod m; rejected rows draw again.  ``m`` >= 1, scalar or per row."""
+    m = np.broadcast_to(np.asarray(m, dtype=np.uint64), rows.shape)
+    rem = (_U64_MAX % m + np.uint64(1)) % m  # 2^64 mod m, without overflow
+    limit = _U64_MAX - rem
+    out = np.empty(rows.shape, dtype=np.uint64)
+    pending = np.arange(rows.size)
+    while pending.size:
+        w = src.next(rows[pending])
+        ok = w <= limit[pending]
+        took = pending[ok]
+        out[took] = w[ok] % m[took]
+        pending = pending[~ok]
+    return out
+
+
+def bernoulli_exp(src: RowDraws, rows: np.ndarray, num: np.ndarray | int | np.integer,
+                  den: np.ndarray | int | np.integer) -> np.ndarray:
+    """Exact Bernoulli(exp(-num/den)) per row, 0 <= num <= den (Canonne, Kamath, Steinke,
+    NeurIPS 2020): K = 1; while Bernoulli(gamma/K) succeeds, K += 1; result is K odd.
+    Bernoulli(gamma/K) is [uniform integer below den*K] < num, exactly."""
+    num = np.broadcast_to(np.asarray(num, dtype=np.uint64), rows.shape)
+    den = np.broadcast_to(np.asarray(den, dtype=np.uint64), rows.shape)
+    K = np.ones(rows.shape, dtype=np.uint64)
+    result = np.empty(rows.shape, dtype=bool)
+    active = np.arange(rows.size)
+    while active.size:
+        if int(K[active].max()) >= _K_LIMIT:
+            raise RuntimeError("exact sampler: Bernoulli loop ran past 2^16 steps; the draw "
+                               "function does not return pseudorandom words (a bug, not a data problem)")
+        u = uniform_below(src, rows[active], den[active] * K[active])
+        hit = u < num[active]
+        done = active[~hit]
+        result[done] = (K[done] & np.uint64(1)) == np.uint64(1)
+        active = active[hit]
+        K[active] += np.uint64(1)
+    return result
+
+
+def discrete_laplace(src: RowDraws, n: int, s: int, t: int) -> np.ndarray:
+    """Exact two-sided geometric noise, P(Z = z) proportional to exp(-|z| s/t), for rows
+    0..n-1 of ``src`` (int64), by the rejection sampler of Canonne, Kamath, Steinke
+    (NeurIPS 2020).  Every row follows the sequential algorithm with its own words."""
+    Z = np.zeros(n, dtype=np.int64)
+    pending = np.arange(n, dtype=np.int64)
+    ones = np.uint64(1)
+    while pending.size:
+        U = uniform_below(src, pending, t)
+        D = bernoulli_exp(src, pending, U, t)
+        keep, U = pending[D], U[D].astype(np.int64)
+        V = np.zeros(keep.size, dtype=np.int64)
+        active = np.arange(keep.size)
+        while active.size:  # V = successes of Bernoulli(exp(-1)) before the first failure
+            A = bernoulli_exp(src, keep[active], ones, ones)
+            active = active[A]
+            V[active] += 1
+        if V.size and int(V.max()) > (np.iinfo(np.int64).max - t) // t:
+            raise RuntimeError("exact sampler: geometric count out of range; the draw function "
+                               "does not return pseudorandom words (a bug, not a data problem)")
+        Y = (U + t * V) // s
+        B = uniform_below(src, keep, 2) == ones
+        reject = B & (Y == 0)
+        acc = ~reject
+        Z[keep[acc]] = np.where(B[acc], -Y[acc], Y[acc])
+        pending = np.sort(np.concatenate([pending[~D], keep[reject]]))
+    return Z
