@@ -16,8 +16,8 @@ fixed in advance: a matrix computed from the confidential data itself (for insta
 data, and the LDP statement no longer holds as it stands.
 
 Sampling is exact: P is held as whole-number masses in units of 2^-50
-(``numeric.integer_masses``) and sampled by integer comparison with the top 50 bits of one
-PRF word (``numeric.draw_index``).  That realized matrix is ``channel()``; the privacy check
+(``random.variates.integer_masses``) and sampled by integer comparison with the top 50 bits of one
+PRF word (``random.variates.draw_index``).  That realized matrix is ``channel()``; the privacy check
 (``max_log_ratio``) and the decoder use it, not the floats of the policy file (they differ by
 a few units of 2^-50 per entry).
 
@@ -42,16 +42,11 @@ import pyarrow.compute as pc
 from pydantic import BaseModel, ConfigDict, Field
 
 from ..errors import PolicyError
+from ..random.variates import SAMPLING_BITS, draw_index, guide_table, integer_masses, sampling_table
 from .base import register
 from .categorical import FrequencyOracle, _as_strings
 from .fit import HullFit
-from .numeric import (
-    SAMPLING_BITS,
-    draw_index,
-    guide_table,
-    integer_masses,
-    sampling_table,
-)
+
 
 # A k x k matrix is written into the policy and the manifest; 1024 categories is already a
 # million entries.  (The shared sampler itself allows up to 8192 rows.)
@@ -140,44 +135,46 @@ class Matrix(FrequencyOracle):
             raise PolicyError(f"{head}: the transition matrix has {len(matrix)} rows but the column has {k} "
                               "categories (including any category added for missing or unknown values); "
                               + self._shape_hint())
-        rows: list[list[float]] = []
-        for i, row in enumerate(matrix):
-            if isinstance(row, (str, bytes)) or not isinstance(row, (list, tuple)) or len(row) != k:
-                got = f"{len(row)} entries" if isinstance(row, (list, tuple)) else f"a {type(row).__name__}"
-                raise PolicyError(f"{head}: row {self._label(i)} has {got}, but the matrix must be {k} x {k}; "
-                                  + self._shape_hint())
-            out = []
-            for j, v in enumerate(row):
-                if isinstance(v, bool) or not isinstance(v, Real):
-                    raise PolicyError(f"{head}: entry row {self._label(i)}, column {self._label(j)} is "
-                                      f"{type(v).__name__}, not a number; write each probability as a number "
-                                      "such as 0.05")
-                fv = float(v)
-                if not math.isfinite(fv):
-                    raise PolicyError(f"{head}: entry row {self._label(i)}, column {self._label(j)} is not a "
-                                      "finite number; write each probability as a number strictly between 0 and 1")
-                if not fv > 0.0:
-                    raise PolicyError(
-                        f"{head}: entry row {self._label(i)}, column {self._label(j)} is {fv:g}; every entry "
-                        "must be strictly positive, because a zero (or negative) probability of publishing a "
-                        "category for one true category but not for another gives an unbounded likelihood "
-                        "ratio (no local differential privacy at any eps). Give that entry a positive "
-                        "probability and take it from the other entries of its row so the row still sums to 1")
-                if fv < 1.0 / _UNIT:
-                    raise PolicyError(
-                        f"{head}: entry row {self._label(i)}, column {self._label(j)} is {fv:.3g}, below the "
-                        f"sampler's resolution 2^-{SAMPLING_BITS} (about {1.0 / _UNIT:.2g}), so it cannot be "
-                        "realized as given; such an entry would in any case give an eps above 30. Raise it "
-                        "(taking the mass from the other entries of its row)")
-                out.append(fv)
-            s = math.fsum(out)
-            if abs(s - 1.0) > ROW_SUM_TOLERANCE:
-                raise PolicyError(
-                    f"{head}: row {self._label(i)} sums to {s:.12g}, not 1 (allowed difference "
-                    f"{ROW_SUM_TOLERANCE:g}); each row holds the probabilities of publishing each category for "
-                    "that true category, so it must sum to 1. Rescale the row (divide each entry by its sum)")
-            rows.append(out)
-        return rows
+        return [self._check_row(head, i, row) for i, row in enumerate(matrix)]
+
+    def _check_row(self, head: str, i: int, row: Any) -> list[float]:
+        k = self.k
+        if isinstance(row, (str, bytes)) or not isinstance(row, (list, tuple)) or len(row) != k:
+            got = f"{len(row)} entries" if isinstance(row, (list, tuple)) else f"a {type(row).__name__}"
+            raise PolicyError(f"{head}: row {self._label(i)} has {got}, but the matrix must be {k} x {k}; "
+                              + self._shape_hint())
+        out = [self._check_entry(head, i, j, v) for j, v in enumerate(row)]
+        s = math.fsum(out)
+        if abs(s - 1.0) > ROW_SUM_TOLERANCE:
+            raise PolicyError(
+                f"{head}: row {self._label(i)} sums to {s:.12g}, not 1 (allowed difference "
+                f"{ROW_SUM_TOLERANCE:g}); each row holds the probabilities of publishing each category for "
+                "that true category, so it must sum to 1. Rescale the row (divide each entry by its sum)")
+        return out
+
+    def _check_entry(self, head: str, i: int, j: int, v: Any) -> float:
+        if isinstance(v, bool) or not isinstance(v, Real):
+            raise PolicyError(f"{head}: entry row {self._label(i)}, column {self._label(j)} is "
+                              f"{type(v).__name__}, not a number; write each probability as a number "
+                              "such as 0.05")
+        fv = float(v)
+        if not math.isfinite(fv):
+            raise PolicyError(f"{head}: entry row {self._label(i)}, column {self._label(j)} is not a "
+                              "finite number; write each probability as a number strictly between 0 and 1")
+        if not fv > 0.0:
+            raise PolicyError(
+                f"{head}: entry row {self._label(i)}, column {self._label(j)} is {fv:g}; every entry "
+                "must be strictly positive, because a zero (or negative) probability of publishing a "
+                "category for one true category but not for another gives an unbounded likelihood "
+                "ratio (no local differential privacy at any eps). Give that entry a positive "
+                "probability and take it from the other entries of its row so the row still sums to 1")
+        if fv < 1.0 / _UNIT:
+            raise PolicyError(
+                f"{head}: entry row {self._label(i)}, column {self._label(j)} is {fv:.3g}, below the "
+                f"sampler's resolution 2^-{SAMPLING_BITS} (about {1.0 / _UNIT:.2g}), so it cannot be "
+                "realized as given; such an entry would in any case give an eps above 30. Raise it "
+                "(taking the mass from the other entries of its row)")
+        return fv
 
     @cached_property
     def _normalized(self) -> np.ndarray:
