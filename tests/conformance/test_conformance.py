@@ -11,12 +11,14 @@ values of its ``Params``.
 Checks (tolerances stated where they are defined):
 
 1. spec round trip (also through JSON); a spec of another mechanism or family is refused;
-2. the channel within eps: ``max_log_ratio() <= eps (1 + 1e-12)``; where ``channel()`` exists,
-   its rows sum to 1, its largest column ratio is at most e^eps and equals e^max_log_ratio();
+2. the channel within eps: ``max_log_ratio() <= eps (1 + 1e-12)``; the exact channel matrix
+   (``channel()``, or the example's for a mechanism without one) has rows summing to 1 and a
+   largest column ratio at most e^eps, equal to e^max_log_ratio();
 3. exact unbiasedness where it can be stated exactly (frequency oracles: channel @ per-row
    estimator = identity; mean mechanisms: E[written value | grid point] = the grid point);
-4. Monte Carlo through the mechanism's decoder: estimate within 5 SE of the truth, and the
-   decoder's variance of the per-row estimates within 10% of the exact formula;
+4. Monte Carlo through the mechanism's decoder (``Mechanism.decoder``): estimate within 5 SE
+   of the truth, and the decoder's variance of the per-row estimates within 10% of the exact
+   formula (distribution mechanisms, which have none: CDF at the quartiles within 5 SE);
 5. the output alphabet: ``count_invalid`` is 0 on real reports and counts corrupted rows;
 6. batch and slicing invariance (a hypothesis property: any first row, any split points);
 7. pickling (the dask engine ships mechanisms to workers): same spec, same outputs;
@@ -61,7 +63,7 @@ STREAM = "conformance"
 words_for = partial(keyed_words, stream=STREAM)
 K_CATEGORIES = 5
 BOUNDS = (0.0, 100.0)
-EPS_SLACK = 1e-12            # relative float slack on eps and e^eps (the brief of check 2)
+EPS_SLACK = 1e-12            # relative float slack on eps and e^eps (check 2)
 MC_ROWS = 30_000             # Monte Carlo rows per mechanism (check 4)
 MC_SE = 5.0                  # estimate within this many standard errors of the truth
 MC_VAR_REL = 0.10            # decoder's variance of per-row estimates within 10% of the exact value
