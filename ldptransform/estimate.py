@@ -38,7 +38,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from statistics import NormalDist
 from collections.abc import Sequence
-from typing import Any, Iterator
+from typing import Any
+from collections.abc import Iterator
 
 import numpy as np
 import pyarrow as pa
@@ -135,7 +136,7 @@ class CrossStats:
         self.SA += ua.sum(axis=0)
         self.SAA += ua2.sum(axis=0)
 
-    def merge(self, o: "CrossStats") -> None:
+    def merge(self, o: CrossStats) -> None:
         self.n += o.n
         for name in ("S", "SS", "T", "SA", "SAA"):
             setattr(self, name, getattr(self, name) + getattr(o, name))
@@ -196,7 +197,7 @@ class GroupMeanStats:
         self.SA += u.sum(axis=0)
         self.SAA += u2.sum(axis=0)
 
-    def merge(self, o: "GroupMeanStats") -> None:
+    def merge(self, o: GroupMeanStats) -> None:
         self.n += o.n
         for name in ("A", "AA", "C", "SA", "SAA"):
             setattr(self, name, getattr(self, name) + getattr(o, name))

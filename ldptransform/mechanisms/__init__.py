@@ -52,10 +52,13 @@ def field_owners(field: str, *families: str) -> tuple[str, ...]:
     reg = registry()
     return tuple(n for n in (names_of(*families) if families else LISTED) if field in reg[n].policy_fields())
 
+
 __all__ = ["Mechanism", "FrequencyOracle", "MeanMechanism", "DistributionMechanism", "MechanismParamError",
-           "FAMILIES", "LISTED", "AUTO_NUMERIC_FIELDS", "names_of", "field_owners", "GridMechanism", "GRR", "SUE", "OUE", "OLH",
-           "TwoPoint", "Piecewise", "Hybrid", "DiscreteLaplace", "HadamardResponse", "SubsetSelection", "Matrix", "SquareWave", "Hierarchy", "build", "registry",
-           "choose_categorical", "choose_numeric", "categorical_candidates", "AUTO_CATEGORICAL", "default_distribution", "make", "DEFAULT_DISTRIBUTION", "CATEGORICAL", "NUMERIC", "DISTRIBUTION"]
+           "FAMILIES", "LISTED", "AUTO_NUMERIC_FIELDS", "names_of", "field_owners", "GridMechanism", "GRR", "SUE",
+           "OUE", "OLH", "TwoPoint", "Piecewise", "Hybrid", "DiscreteLaplace", "HadamardResponse", "SubsetSelection",
+           "Matrix", "SquareWave", "Hierarchy", "build", "registry", "choose_categorical", "choose_numeric",
+           "categorical_candidates", "AUTO_CATEGORICAL", "default_distribution", "make", "DEFAULT_DISTRIBUTION",
+           "CATEGORICAL", "NUMERIC", "DISTRIBUTION"]
 
 
 # Candidates for `mechanism: auto` on a categorical column, in order of preference on a tie

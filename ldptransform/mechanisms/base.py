@@ -49,7 +49,8 @@ from __future__ import annotations
 
 import math
 from abc import ABC, abstractmethod
-from typing import TYPE_CHECKING, Any, ClassVar, Mapping, Sequence
+from typing import TYPE_CHECKING, Any, ClassVar
+from collections.abc import Mapping, Sequence
 
 import numpy as np
 import pyarrow as pa
@@ -65,21 +66,21 @@ if TYPE_CHECKING:
 #: an unbiased estimate of the row's value) and distribution mechanisms (decoded as a whole).
 FAMILIES = ("frequency", "mean", "distribution")
 
-_REGISTRY: dict[str, type["Mechanism"]] = {}
+_REGISTRY: dict[str, type[Mechanism]] = {}
 
 
-def register(cls: type["Mechanism"]) -> type["Mechanism"]:
+def register(cls: type[Mechanism]) -> type[Mechanism]:
     if cls.name in _REGISTRY:
         raise RuntimeError(f"mechanism name {cls.name!r} registered twice")
     _REGISTRY[cls.name] = cls
     return cls
 
 
-def registry() -> dict[str, type["Mechanism"]]:
+def registry() -> dict[str, type[Mechanism]]:
     return dict(_REGISTRY)
 
 
-def build(spec: dict[str, Any]) -> "Mechanism":
+def build(spec: dict[str, Any]) -> Mechanism:
     """Instantiate a mechanism from its spec (as written in the manifest)."""
     name = spec.get("mechanism")
     if name not in _REGISTRY:
@@ -132,7 +133,7 @@ class Mechanism(ABC):
 
     @classmethod
     @abstractmethod
-    def from_spec(cls, spec: dict[str, Any]) -> "Mechanism":
+    def from_spec(cls, spec: dict[str, Any]) -> Mechanism:
         """Inverse of ``to_spec``; rejects a spec of another mechanism."""
 
     @classmethod
@@ -147,7 +148,7 @@ class Mechanism(ABC):
         return tuple(cls.Params.model_fields)
 
     @classmethod
-    def from_policy(cls, epsilon: float, domain: Sequence[Any], params: Mapping[str, Any]) -> "Mechanism":
+    def from_policy(cls, epsilon: float, domain: Sequence[Any], params: Mapping[str, Any]) -> Mechanism:
         """Build from a policy column: ``domain`` is the list of categories (frequency oracles) or
         the bounds (numeric mechanisms); ``params`` the column's values of ``policy_fields``
         (None or absent: the default).  Raises ``MechanismParamError`` for a missing or refused
@@ -160,7 +161,7 @@ class Mechanism(ABC):
         return cls._from_params(epsilon, domain, p)
 
     @classmethod
-    def _from_params(cls, epsilon: float, domain: Sequence[Any], params: BaseModel) -> "Mechanism":
+    def _from_params(cls, epsilon: float, domain: Sequence[Any], params: BaseModel) -> Mechanism:
         """Hook: the constructor call for validated parameters (default: keyword arguments)."""
         return cls(epsilon, domain, **params.model_dump(exclude_none=True))  # type: ignore[call-arg]
 
@@ -264,7 +265,7 @@ class Mechanism(ABC):
                 "does not support; remove memoize, or choose another mechanism for this column")
 
     # -- goodness of fit (mechanisms/fit.py) -----------------------------------------
-    def fit_test(self) -> "FitStats | None":
+    def fit_test(self) -> FitStats | None:
         """A fresh goodness-of-fit accumulator for this mechanism's reports, or None when no
         test is available (``no_fit_reason`` says why)."""
         return None

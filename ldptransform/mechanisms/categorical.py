@@ -73,7 +73,7 @@ class FrequencyOracle(Mechanism):
         return {"mechanism": self.name, "epsilon": self.epsilon, "categories": list(self.categories)}
 
     @classmethod
-    def from_spec(cls, spec: dict[str, Any]) -> "FrequencyOracle":
+    def from_spec(cls, spec: dict[str, Any]) -> FrequencyOracle:
         cls._check_family(spec)
         return cls(spec["epsilon"], spec["categories"])
 
@@ -289,7 +289,7 @@ class _UnaryEncoding(FrequencyOracle):
         # Two inputs differ in two bit positions; the worst output has 1 at x and 0 at x'.
         return math.log(p / q) + math.log((1 - q) / (1 - p))
 
-    def fit_test(self) -> "OnesCountFit":
+    def fit_test(self) -> OnesCountFit:
         """The number of ones per report has a data-independent distribution."""
         return OnesCountFit(self)
 
@@ -377,7 +377,7 @@ class OLH(FrequencyOracle):
         return spec
 
     @classmethod
-    def from_spec(cls, spec: dict[str, Any]) -> "OLH":
+    def from_spec(cls, spec: dict[str, Any]) -> OLH:
         cls._check_family(spec)
         return cls(spec["epsilon"], spec["categories"], spec.get("hash_range"))
 
@@ -470,7 +470,7 @@ class OLH(FrequencyOracle):
         p = self.p_star
         return math.log(p / ((1 - p) / (self.g - 1)))
 
-    def fit_test(self) -> "SupportSizeFit":
+    def fit_test(self) -> SupportSizeFit:
         """The support size's mean and the reported buckets' distribution are data-independent."""
         return SupportSizeFit(self)
 
@@ -531,7 +531,7 @@ class OnesCountFit(FitStats):
     mechanism: _UnaryEncoding
     TESTS = 2
 
-    def __init__(self, mechanism: "_UnaryEncoding") -> None:
+    def __init__(self, mechanism: _UnaryEncoding) -> None:
         super().__init__(mechanism)
         self.stats["hist"] = np.zeros(mechanism.k + 1, dtype=np.int64)
 
@@ -588,7 +588,7 @@ class OnesCountFit(FitStats):
         return out
 
 
-def _bucket_groups(m: "OLH") -> tuple[np.ndarray, np.ndarray]:
+def _bucket_groups(m: OLH) -> tuple[np.ndarray, np.ndarray]:
     """Group boundaries (bucket indices, length G+1) of at most BUCKET_GROUPS adjacent buckets and
     the exact probability of each group under the declared mechanism, for every input:
     P(y in group) = p* S/P + (cnt - S/P)(1-p*)/(g-1), S = hash inputs z in the group's buckets."""

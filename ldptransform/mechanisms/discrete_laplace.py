@@ -128,7 +128,7 @@ class DiscreteLaplace(MeanMechanism):
         return {"mechanism": self.name, "epsilon": self.epsilon, "bounds": [self.lo, self.hi], "grid": self.grid}
 
     @classmethod
-    def from_spec(cls, spec: dict[str, Any]) -> "DiscreteLaplace":
+    def from_spec(cls, spec: dict[str, Any]) -> DiscreteLaplace:
         cls._check_family(spec)
         missing = [f for f in ("epsilon", "bounds") if f not in spec]
         if missing:

@@ -202,7 +202,7 @@ class SquareWave(DistributionMechanism):
         return {"mechanism": self.name, "epsilon": self.epsilon, "bounds": [self.lo, self.hi], "grid": self.grid}
 
     @classmethod
-    def from_spec(cls, spec: dict[str, Any]) -> "SquareWave":
+    def from_spec(cls, spec: dict[str, Any]) -> SquareWave:
         cls._check_family(spec)
         return cls(spec["epsilon"], spec["bounds"], spec.get("grid", DEFAULT_SW_GRID))
 
@@ -423,7 +423,7 @@ class Hierarchy(DistributionMechanism):
                 "branching": self.branching, "leaves": self.leaves, "levels": levels}
 
     @classmethod
-    def from_spec(cls, spec: dict[str, Any]) -> "Hierarchy":
+    def from_spec(cls, spec: dict[str, Any]) -> Hierarchy:
         cls._check_family(spec)
         return cls(spec["epsilon"], spec["bounds"], spec.get("branching", DEFAULT_BRANCHING),
                    spec.get("leaves", DEFAULT_LEAVES), spec.get("levels"))
@@ -518,7 +518,7 @@ class Hierarchy(DistributionMechanism):
         level written out, so its worst ratio is the worst level's."""
         return max(o.max_log_ratio() for o in self.oracles)
 
-    def fit_test(self) -> "HierarchyFit":
+    def fit_test(self) -> HierarchyFit:
         """Each level's rows tested as that level's oracle."""
         return HierarchyFit(self)
 
@@ -637,7 +637,7 @@ class Hierarchy(DistributionMechanism):
         ys = [e[:, None] for _, e, _ in lev]
         leaves = self.consistent(ys, np.ones(1), prec)[:, 0]
         cov = np.zeros((self.leaves, self.leaves))
-        for l, (nl, _, C) in enumerate(lev):
+        for l, (_, _, C) in enumerate(lev):
             basis = [np.eye(k) if j == l else np.zeros((k, self.nodes[l])) for j, k in enumerate(self.nodes)]
             L = self.consistent(basis, np.zeros(self.nodes[l]), prec)   # (D, k_l): d leaves / d y_l
             cov += L @ C @ L.T
@@ -656,7 +656,7 @@ class HierarchyFit(FitStats):
     def n_tests(self) -> int:
         return sum(p.n_tests for p in self.parts)
 
-    def __init__(self, mechanism: "Hierarchy") -> None:
+    def __init__(self, mechanism: Hierarchy) -> None:
         super().__init__(mechanism)
         self.parts: list[HullFit | SupportSizeFit] = []
         for o in mechanism.oracles:
@@ -675,7 +675,7 @@ class HierarchyFit(FitStats):
             else:
                 part.add_decoded(seed[at].astype(np.uint64), report[at], np.zeros(int(at.sum()), dtype=bool))
 
-    def _merge_parts(self, other: "FitStats") -> None:
+    def _merge_parts(self, other: FitStats) -> None:
         assert isinstance(other, HierarchyFit)
         for a, b in zip(self.parts, other.parts):
             for k, v in b.stats.items():

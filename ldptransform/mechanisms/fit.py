@@ -139,7 +139,8 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field, replace
-from typing import Any, Callable, Iterator, Mapping
+from typing import Any
+from collections.abc import Callable, Iterator, Mapping
 
 import numpy as np
 import pyarrow as pa
@@ -199,7 +200,7 @@ class FitResult(DictAccess):
     impossible: int
     detail: str
     extra: Mapping[str, Any] = field(default_factory=dict)
-    tests: tuple["FitResult", ...] | None = None
+    tests: tuple[FitResult, ...] | None = None
 
     @property
     def tested(self) -> bool:
@@ -216,7 +217,7 @@ class FitResult(DictAccess):
             d["tests"] = [t.to_dict() for t in self.tests]
         return d
 
-    def with_extra(self, **extra: Any) -> "FitResult":
+    def with_extra(self, **extra: Any) -> FitResult:
         return replace(self, extra={**self.extra, **extra})
 
     def __iter__(self) -> Iterator[str]:
@@ -349,7 +350,7 @@ class FitStats:
                                              "impossible": np.zeros((), dtype=np.int64)}
 
     # -- accumulation ------------------------------------------------------------------------
-    def add(self, arrays: list[pa.Array]) -> "FitStats":
+    def add(self, arrays: list[pa.Array]) -> FitStats:
         arrays = _reported(arrays)
         if len(arrays[0]) == 0:
             return self
@@ -359,7 +360,7 @@ class FitStats:
     def _add(self, arrays: list[pa.Array]) -> None:
         raise NotImplementedError
 
-    def merge(self, other: "FitStats") -> "FitStats":
+    def merge(self, other: FitStats) -> FitStats:
         if type(other) is not type(self) or other.mechanism.to_spec() != self.mechanism.to_spec():
             raise ValueError("goodness-of-fit statistics of different mechanisms cannot be merged")
         for k, v in other.stats.items():
@@ -367,7 +368,7 @@ class FitStats:
         self._merge_parts(other)
         return self
 
-    def _merge_parts(self, other: "FitStats") -> None:
+    def _merge_parts(self, other: FitStats) -> None:
         pass
 
     @property
@@ -596,8 +597,9 @@ def _support_bound_tests(m: Any, s: np.ndarray, n: int, alpha: float, rows: int)
 
 class SupportBoundsFit(FitStats):
     """Any frequency oracle with p*, q* and a decoder summary (``summarize``,
-    ``support_from_summary``); ``subset`` uses it as is: every report holds exactly m values (anything else is impossible: another
-    subset size or another k), and the support counts obey the binomial floor and ceiling
+    ``support_from_summary``); ``subset`` uses it as is: every report holds exactly m values
+    (anything else is impossible: another subset size or another k), and the support counts obey
+    the binomial floor and ceiling
     (``_support_bound_tests``).  A subset release's data-dependent distribution over C(k, m)
     outputs is too large for the hull test."""
 

@@ -231,7 +231,7 @@ class HadamardResponse(FrequencyOracle):
         # e^-eps, and e^eps occurs (two different sets differ in K/2 outputs).
         return float(self.epsilon)
 
-    def fit_test(self) -> "HadamardFit":
+    def fit_test(self) -> HadamardFit:
         """The count of reports at output 0 (exactly binomial whatever the data) and the support
         bounds of every frequency oracle."""
         return HadamardFit(self)

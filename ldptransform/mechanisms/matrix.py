@@ -263,7 +263,7 @@ class Matrix(FrequencyOracle):
         return spec
 
     @classmethod
-    def from_spec(cls, spec: dict[str, Any]) -> "Matrix":
+    def from_spec(cls, spec: dict[str, Any]) -> Matrix:
         cls._check_family(spec)
         if "matrix" not in spec:
             raise PolicyError("mechanism matrix, field 'matrix': the spec has no transition matrix; give matrix: "

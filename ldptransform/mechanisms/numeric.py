@@ -138,7 +138,7 @@ class GridMechanism(MeanMechanism):
         return {"mechanism": self.name, "epsilon": self.epsilon, "bounds": [self.lo, self.hi], "grid": self.grid}
 
     @classmethod
-    def from_spec(cls, spec: dict[str, Any]) -> "GridMechanism":
+    def from_spec(cls, spec: dict[str, Any]) -> GridMechanism:
         cls._check_family(spec)
         return cls(spec["epsilon"], spec["bounds"], spec.get("grid", DEFAULT_GRID))
 

@@ -107,7 +107,7 @@ class SubsetSelection(FrequencyOracle):
         return spec
 
     @classmethod
-    def from_spec(cls, spec: dict[str, Any]) -> "SubsetSelection":
+    def from_spec(cls, spec: dict[str, Any]) -> SubsetSelection:
         cls._check_family(spec)
         return cls(spec["epsilon"], spec["categories"], spec.get("subset_size"))
 

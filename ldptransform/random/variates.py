@@ -25,7 +25,7 @@ its (negligible) deviation.  All of it is vectorized over rows.
 from __future__ import annotations
 
 import math
-from typing import Callable
+from collections.abc import Callable
 
 import numpy as np
 
