@@ -174,25 +174,28 @@ def main(argv: list[str] | None = None) -> int:
     te = [e for e in TABLE_EPS if a.eps_min <= e <= a.eps_max]
     corner = "eps \\ k"
     print("    " + f"{corner:>7}" + "".join(f"{k:>16d}" for k in tk))
-    for e in te:
+    for eps in te:
         cells = []
         for k in tk:
-            p = by[(k, e)]
+            p = by[(k, eps)]
             cells.append(f"{p['auto']:>8} {p['auto_efficiency']:.4f}")
-        print("    " + f"{e:>7g}" + "".join(f"{c:>16}" for c in cells))
+        print("    " + f"{eps:>7g}" + "".join(f"{c:>16}" for c in cells))
     print()
     print(f"evaluated {len(points)} points in {elapsed:.2f} s")
 
     if a.json:
         out = {
             "target": TARGET, "passed": ok, "seconds": elapsed, "k_grid": ks, "eps_grid": es,
-            "worst_auto": {"efficiency": float(auto_eff[i]), "k": worst["k"], "eps": worst["eps"], "mechanism": worst["auto"]},
+            "worst_auto": {"efficiency": float(auto_eff[i]), "k": worst["k"], "eps": worst["eps"],
+                           "mechanism": worst["auto"]},
             "per_mechanism": {n: {"worst": float(eff[n].min()), "median": float(np.median(eff[n])),
-                                  "largest": float(eff[n].max()), "share_within_target": float(np.mean(eff[n] >= TARGET)),
+                                  "largest": float(eff[n].max()),
+                                  "share_within_target": float(np.mean(eff[n] >= TARGET)),
                                   "auto_share": float(np.mean(auto_names == n)) if n in candidates else None}
                               for n in MECHANISMS},
             "without_subset": {"worst": float(others.min()), "k": points[jo]["k"], "eps": points[jo]["eps"],
-                               "median": float(np.median(others)), "share_within_target": float(np.mean(others >= TARGET))},
+                               "median": float(np.median(others)),
+                               "share_within_target": float(np.mean(others >= TARGET))},
             "points": points,
         }
         Path(a.json).write_text(json.dumps(out, indent=1))

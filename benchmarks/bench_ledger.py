@@ -77,13 +77,14 @@ def main(argv: list[str] | None = None) -> int:
             pq.write_table(table(a.rows, a.changed, night), tmp / f"night{night}.parquet")
         ids = pq.read_table(tmp / "night1.parquet", columns=["person"]).column("person")
         ledger = tmp / "ledger.sqlite3"
-        rows = []
+        rows: list[tuple[str, float, int | None]] = []
         rows.append(("hash", timed(lambda: subject_hashes(KEY, ids)), None))
         plain = timed(lambda: privatize(tmp / "night1.parquet", pol, KEY, tmp / "plain.parquet", nonce=NONCES[0]))
         rows.append(("plain", plain, None))
         for night in (1, 2):
-            s = timed(lambda: privatize(tmp / f"night{night}.parquet", pol, KEY, tmp / f"out{night}.parquet",
-                                        nonce=NONCES[night], ledger_path=ledger))
+            s = timed(lambda night=night: privatize(tmp / f"night{night}.parquet", pol, KEY,
+                                                    tmp / f"out{night}.parquet", nonce=NONCES[night],
+                                                    ledger_path=ledger))
             rows.append((f"night {night}", s, ledger.stat().st_size))
         print(f"bench_ledger: {a.rows:,} people, {a.changed:.0%} of memoized values changed on night 2")
         for name, s, size in rows:

@@ -27,9 +27,9 @@ Default: timings and memory scaling.  Timings, on one synthetic file of N rows, 
 and prints privatize/copy of the fastest runs (target <= 2 for the "core" policy of grr, oue
 and piecewise columns, <= 3 for the "mixed" one), estimate/pandas (target <= 2) and dask/parts
 (informative: the workers share the machine's cores with nothing else to do but also pay
-for inter-process transfer; on 2 cores there is little to gain).  Memory scaling: privatize at --small-rows (default N/10) as well, and the
-ratio of peak memory at N rows to that at N/10 rows (target <= 1.3), each the largest
-over as many runs as there are timing rounds.  --memory-scaling runs only this part.
+for inter-process transfer; on 2 cores there is little to gain).  Memory scaling: privatize at
+--small-rows (default N/10) as well, and the ratio of peak memory at N rows to that at N/10 rows
+(target <= 1.3), each the largest over as many runs as there are timing rounds.  --memory-scaling runs only this part.
 """
 
 from __future__ import annotations
@@ -298,6 +298,19 @@ def main(argv: list[str] | None = None) -> int:
             tmp.cleanup()
 
 
+def _dask_installed() -> bool:
+    """Whether the dask step can run here (distributed importable); says so when it cannot."""
+    try:
+        import importlib.util
+
+        found = importlib.util.find_spec("distributed") is not None
+    except ImportError:
+        found = False
+    if not found:
+        print("  (dask not installed: no dask step; pip install 'ldptransform[dask]')")
+    return found
+
+
 def _run(args: argparse.Namespace, out_dir: Path, chunk_rows: int) -> int:
     fmt, n, batch = args.format, args.rows, args.batch_rows
     timings = not args.memory_scaling
@@ -305,16 +318,7 @@ def _run(args: argparse.Namespace, out_dir: Path, chunk_rows: int) -> int:
           f"{chunk_rows:,}, repeat {args.repeat}, python {sys.version.split()[0]}, {os.cpu_count()} CPU(s)")
     policy, key = out_dir / f"synthetic_policy_{args.policy}.yaml", out_dir / "synthetic.key"
     run_child("setup", policy=str(policy), key=str(key), policy_kind=args.policy)
-    dask_ok = False
-    if timings and not args.no_dask and fmt == "parquet":
-        try:
-            import importlib.util
-
-            dask_ok = importlib.util.find_spec("distributed") is not None
-        except ImportError:
-            dask_ok = False
-        if not dask_ok:
-            print("  (dask not installed: no dask step; pip install 'ldptransform[dask]')")
+    dask_ok = timings and not args.no_dask and fmt == "parquet" and _dask_installed()
     src = make_input(out_dir, n, fmt, chunk_rows)
     results: dict = {"rows": n, "format": fmt, "batch_rows": batch, "chunk_rows": chunk_rows,
                      "repeat": args.repeat}

@@ -26,6 +26,7 @@ from __future__ import annotations
 import argparse
 import sys
 import time
+from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
@@ -77,6 +78,32 @@ def run_bins(x: np.ndarray, eps: float, release: int, oracle: str, k: int) -> tu
     return answers(d)
 
 
+Route = tuple[str, Callable[[int], tuple[float, float, float]]]
+
+
+def _routes(x: np.ndarray, eps: float, bins: int) -> list[Route]:
+    """The compared routes at one eps: (name, release number -> the three errors' estimates)."""
+    return [
+        ("noise-then-median (Laplace)", lambda r: run_laplace(x, eps, r)),
+        (f"bins: grr, {bins} bins", lambda r: run_bins(x, eps, r, "grr", bins)),
+        (f"bins: oue, {bins} bins", lambda r: run_bins(x, eps, r, "oue", bins)),
+        ("square-wave (grid 256)", lambda r: run_mech(x, r, SquareWave(eps, BOUNDS))),
+        ("hierarchy (B=4, 64 leaves)", lambda r: run_mech(x, r, Hierarchy(eps, BOUNDS))),
+    ]
+
+
+def _variant_routes(x: np.ndarray, eps: float) -> list[Route]:
+    """Other grids, branchings and leaf counts of the two distribution mechanisms (--variants)."""
+    def square_wave(g: int) -> Route:
+        return (f"square-wave (grid {g})", lambda r: run_mech(x, r, SquareWave(eps, BOUNDS, g)))
+
+    def hierarchy(B: int, D: int) -> Route:
+        return (f"hierarchy (B={B}, {D} leaves)", lambda r: run_mech(x, r, Hierarchy(eps, BOUNDS, B, D)))
+
+    return ([square_wave(g) for g in (64, 128, 512, 1024)]
+            + [hierarchy(B, D) for B, D in ((2, 256), (4, 256), (4, 1024), (8, 64), (8, 512), (16, 256))])
+
+
 def run_mech(x: np.ndarray, release: int, m) -> tuple[float, float, float]:
     label = "-".join(str(v) for v in m.to_spec().values() if not isinstance(v, (list, dict)))
     arrays = m.randomize(x, words(label, release, x.size, m.words_per_row))
@@ -103,20 +130,10 @@ def main(argv: list[str] | None = None) -> int:
     worst_ratio = np.inf
     for eps in args.epsilon:
         default, why = default_distribution(eps, BOUNDS)
-        routes: list[tuple[str, object]] = [
-            ("noise-then-median (Laplace)", lambda r: run_laplace(x, eps, r)),
-            (f"bins: grr, {args.bins} bins", lambda r: run_bins(x, eps, r, "grr", args.bins)),
-            (f"bins: oue, {args.bins} bins", lambda r: run_bins(x, eps, r, "oue", args.bins)),
-            ("square-wave (grid 256)", lambda r: run_mech(x, r, SquareWave(eps, BOUNDS))),
-            ("hierarchy (B=4, 64 leaves)", lambda r: run_mech(x, r, Hierarchy(eps, BOUNDS))),
-        ]
+        routes = _routes(x, eps, args.bins)
         main_routes = [name for name, _ in routes]
         if args.variants:
-            for g in (64, 128, 512, 1024):
-                routes.append((f"square-wave (grid {g})", lambda r, g=g: run_mech(x, r, SquareWave(eps, BOUNDS, g))))
-            for B, D in ((2, 256), (4, 256), (4, 1024), (8, 64), (8, 512), (16, 256)):
-                routes.append((f"hierarchy (B={B}, {D} leaves)",
-                               lambda r, B=B, D=D: run_mech(x, r, Hierarchy(eps, BOUNDS, B, D))))
+            routes += _variant_routes(x, eps)
         results = {}
         for name, fn in routes:
             t0 = time.perf_counter()
@@ -128,7 +145,7 @@ def main(argv: list[str] | None = None) -> int:
         print(f"eps = {eps:g}; the tool's default for quantiles: {default.name} ({why})")
         print(f"  {'route':34s} {'median MAE':>11s} {'ratio':>7s} {'p90 MAE':>9s} {'ratio':>7s} "
               f"{'share MAE':>10s} {'ratio':>7s}")
-        for name, (err, secs) in results.items():
+        for name, (err, _secs) in results.items():
             r = err / base
             mark = "  <- default" if name == dname else ""
             print(f"  {name:34s} {err[0]:11.0f} {r[0]:7.2f} {err[1]:9.0f} {r[1]:7.2f} {err[2]:10.4f} {r[2]:7.2f}{mark}")

@@ -111,8 +111,9 @@ columns:
 
 
 def policy_text(kind: str = "mixed") -> str:
-    return (CORE_POLICY_YAML if kind == "core" else POLICY_YAML).format(regions=", ".join(REGIONS), products=", ".join(PRODUCTS),
-                              channels=", ".join(CHANNELS), age_bins=", ".join(map(str, AGE_BINS)))
+    template = CORE_POLICY_YAML if kind == "core" else POLICY_YAML
+    return template.format(regions=", ".join(REGIONS), products=", ".join(PRODUCTS),
+                           channels=", ".join(CHANNELS), age_bins=", ".join(map(str, AGE_BINS)))
 
 
 def write_policy(path: Path | str, kind: str = "mixed") -> Path:
