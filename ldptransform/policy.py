@@ -12,7 +12,7 @@ import json
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Annotated, Any, Literal, Union
+from typing import Annotated, Any, Literal
 
 import yaml
 from pydantic import (
@@ -39,8 +39,8 @@ _EPS_FIELD = ("Privacy parameter of this column (natural log): required under bu
               "absent under sample (every reported column then gets epsilon_per_row / m).")
 # A whole number written as one (not true/false, not 2.0, not "2"): YAML reads `yes` as true.
 StrictInt = Annotated[int, Field(strict=True)]
-Scalar = Union[Annotated[str, Field(strict=True)], Annotated[int, Field(strict=True)],
-               Annotated[float, Field(strict=True)], Annotated[bool, Field(strict=True)]]
+Scalar = (Annotated[str, Field(strict=True)] | Annotated[int, Field(strict=True)]
+          | Annotated[float, Field(strict=True)] | Annotated[bool, Field(strict=True)])
 
 
 def _mechanisms_doc(*families: str) -> str:
@@ -167,9 +167,19 @@ class NumericColumn(_Strict):
                                          "offset (default 32).")
 
     @model_validator(mode="after")
-    def _domain(self) -> "NumericColumn":
+    def _domain(self) -> NumericColumn:
         if self.bins is None and self.bounds is None:
             raise ValueError("give bounds: [low, high] (or bins: [edges]) for a numeric column")
+        self._check_bounds_and_bins()
+        self._check_needs()
+        self._check_memo_grid()
+        if isinstance(self.missing, Fill):
+            lo, hi = self.domain
+            if not lo <= self.missing.fill <= hi:
+                raise ValueError(f"missing fill value {self.missing.fill:g} lies outside the bounds [{lo:g}, {hi:g}]")
+        return self
+
+    def _check_bounds_and_bins(self) -> None:
         if self.bounds is not None:
             lo, hi = self.bounds
             if not (math.isfinite(lo) and math.isfinite(hi)):
@@ -184,6 +194,8 @@ class NumericColumn(_Strict):
                 raise ValueError("bins edges must be strictly increasing")
             if self.bounds is not None and (self.bounds[0] != b[0] or self.bounds[1] != b[-1]):
                 raise ValueError("with bins, bounds (if given) must equal the first and last edge")
+
+    def _check_needs(self) -> None:
         if self.needs is not None and len(set(self.needs)) != len(self.needs):
             raise ValueError("needs lists a value twice; list each of mean, quantiles, frequencies at most once")
         if self.needs is not None and self.bins is None and "frequencies" in self.needs:
@@ -193,16 +205,13 @@ class NumericColumn(_Strict):
             raise ValueError("needs: mean is not available for a column released as bins (a bin's values are not "
                              "known); remove bins to release the value with a mean mechanism, or ask for "
                              "frequencies / quantiles")
+
+    def _check_memo_grid(self) -> None:
         if self.memo_grid is not None and not self.memoize:
             raise ValueError("memo_grid applies only with memoize: true; add memoize: true or remove memo_grid")
         if self.memo_grid is not None and self.bins is not None:
             raise ValueError("memo_grid does not apply to a column released as bins (memoization uses the bin "
                              "itself); remove memo_grid")
-        if isinstance(self.missing, Fill):
-            lo, hi = self.domain
-            if not lo <= self.missing.fill <= hi:
-                raise ValueError(f"missing fill value {self.missing.fill:g} lies outside the bounds [{lo:g}, {hi:g}]")
-        return self
 
     @property
     def domain(self) -> tuple[float, float]:
@@ -226,7 +235,7 @@ class PublicColumn(_Strict):
     type: Literal["public"]
 
 
-ColumnPolicy = Annotated[Union[CategoricalColumn, NumericColumn, DropColumn, PublicColumn],
+ColumnPolicy = Annotated[CategoricalColumn | NumericColumn | DropColumn | PublicColumn,
                          Field(discriminator="type")]
 
 
@@ -242,6 +251,10 @@ def sample_size(epsilon_per_row: float, d: int) -> int:
     Local Differential Privacy", ICDE 2019 (restated in docs/formulas.md section 5.4; tag [M]).
     """
     return max(1, min(d, math.floor(epsilon_per_row / SAMPLE_EPSILON_STEP)))
+
+
+# a problem a policy-wide validator reports: (location of the field, its input, what is wrong and the fix)
+_Problem = tuple[tuple[str, ...], Any, str]
 
 
 class Budget(_Strict):
@@ -298,43 +311,10 @@ class Policy(_Strict):
         return self.budget.epsilon_per_row / self.reported_columns
 
     @model_validator(mode="after")
-    def _budget(self) -> "Policy":
-        problems: list[tuple[tuple[str, ...], Any, str]] = []
-        names = self.privatized_columns
+    def _budget(self) -> Policy:
         eps_of = {n: c.epsilon for n, c in self.columns.items() if isinstance(c, (CategoricalColumn, NumericColumn))}
-        strategy, eps_row = self.budget.strategy, self.budget.epsilon_per_row
-        if strategy == "split":
-            for n in names:
-                if eps_of[n] is None:
-                    problems.append((("columns", n, "epsilon"), self.columns[n].model_dump(exclude_none=True),
-                                     "is required under budget.strategy split (the default): give this column its "
-                                     "own epsilon (the column epsilons may add up to at most budget.epsilon_per_row), "
-                                     "or set budget.strategy: sample"))
-            if self.budget.sample_columns is not None:
-                problems.append((("budget", "sample_columns"), self.budget.sample_columns,
-                                 "applies only to budget.strategy: sample; remove it, or set strategy: sample"))
-        else:
-            for n in names:
-                eps = eps_of[n]
-                if eps is not None:
-                    problems.append((("columns", n, "epsilon"), eps,
-                                     "must be left out under budget.strategy sample: each row reports m of its d "
-                                     "privatized columns and every reported column gets epsilon_per_row / m; "
-                                     "remove this field"))
-            m, d = self.budget.sample_columns, len(names)
-            if d == 0:
-                problems.append((("budget", "strategy"), strategy, "sample needs at least one categorical or "
-                                 "numeric column to sample from; use strategy: split (the default)"))
-            elif m is not None and m > d:
-                problems.append((("budget", "sample_columns"), m,
-                                 f"is more than the {d} privatized (categorical and numeric) column(s) of this policy "
-                                 "(public and drop columns do not count); give at most "
-                                 f"{d}, or leave it out for the default rule"))
-            elif eps_row / self.reported_columns > MAX_COLUMN_EPSILON:
-                problems.append((("budget", "epsilon_per_row"), eps_row,
-                                 f"under strategy sample each reported column gets epsilon_per_row / m = "
-                                 f"{eps_row / self.reported_columns:g}, above the largest column epsilon "
-                                 f"({MAX_COLUMN_EPSILON:g}); lower the budget or raise budget.sample_columns"))
+        strategy = self.budget.strategy
+        problems = self._split_problems(eps_of) if strategy == "split" else self._sample_problems(eps_of)
         if problems:
             raise ValidationError.from_exception_data("Policy", [
                 InitErrorDetails(type=PydanticCustomError("policy_budget", msg),
@@ -350,9 +330,50 @@ class Policy(_Strict):
                              "epsilons or (after review) raise the budget")
         return self
 
+    def _split_problems(self, eps_of: dict[str, float | None]) -> list[_Problem]:
+        """strategy split: every privatized column has its own epsilon; no sample_columns."""
+        problems: list[_Problem] = []
+        for n in self.privatized_columns:
+            if eps_of[n] is None:
+                problems.append((("columns", n, "epsilon"), self.columns[n].model_dump(exclude_none=True),
+                                 "is required under budget.strategy split (the default): give this column its "
+                                 "own epsilon (the column epsilons may add up to at most budget.epsilon_per_row), "
+                                 "or set budget.strategy: sample"))
+        if self.budget.sample_columns is not None:
+            problems.append((("budget", "sample_columns"), self.budget.sample_columns,
+                             "applies only to budget.strategy: sample; remove it, or set strategy: sample"))
+        return problems
+
+    def _sample_problems(self, eps_of: dict[str, float | None]) -> list[_Problem]:
+        """strategy sample: no column epsilons; m within 1..d; each reported column's share within bounds."""
+        problems: list[_Problem] = []
+        names = self.privatized_columns
+        for n in names:
+            eps = eps_of[n]
+            if eps is not None:
+                problems.append((("columns", n, "epsilon"), eps,
+                                 "must be left out under budget.strategy sample: each row reports m of its d "
+                                 "privatized columns and every reported column gets epsilon_per_row / m; "
+                                 "remove this field"))
+        m, d, eps_row = self.budget.sample_columns, len(names), self.budget.epsilon_per_row
+        if d == 0:
+            problems.append((("budget", "strategy"), self.budget.strategy, "sample needs at least one categorical "
+                             "or numeric column to sample from; use strategy: split (the default)"))
+        elif m is not None and m > d:
+            problems.append((("budget", "sample_columns"), m,
+                             f"is more than the {d} privatized (categorical and numeric) column(s) of this policy "
+                             "(public and drop columns do not count); give at most "
+                             f"{d}, or leave it out for the default rule"))
+        elif eps_row / self.reported_columns > MAX_COLUMN_EPSILON:
+            problems.append((("budget", "epsilon_per_row"), eps_row,
+                             f"under strategy sample each reported column gets epsilon_per_row / m = "
+                             f"{eps_row / self.reported_columns:g}, above the largest column epsilon "
+                             f"({MAX_COLUMN_EPSILON:g}); lower the budget or raise budget.sample_columns"))
+        return problems
+
     @model_validator(mode="after")
-    def _subject(self) -> "Policy":
-        problems: list[tuple[tuple[str, ...], Any, str]] = []
+    def _subject(self) -> Policy:
+        problems: list[_Problem] = []
         sk = self.subject_key
         for n, c in self.columns.items():
             if getattr(c, "memoize", None) and sk is None:
@@ -386,10 +407,14 @@ class Policy(_Strict):
 
 # -- resolution: policy column -> concrete mechanism ------------------------------------
 
+# what a policy column becomes: a numeric column with bins is released as a categorical one ("binned")
+ColumnKind = Literal["categorical", "numeric", "binned", "public", "drop"]
+
+
 @dataclass
 class ResolvedColumn:
     name: str
-    type: str                      # categorical | numeric | binned | public | drop
+    type: ColumnKind
     config: Any
     mechanism: mech.Mechanism | None = None
     chosen_because: str | None = None
@@ -431,6 +456,7 @@ def _build(name: str, cls: type[mech.Mechanism], epsilon: Any, domain: Any, para
 
 def _resolve_categories(name: str, col: Any) -> ResolvedColumn:
     """A categorical column, or a numeric one released as bins: a frequency oracle over its values."""
+    kind: ColumnKind
     if isinstance(col, CategoricalColumn):
         labels = [category_label(c) for c in col.categories]
         kind = "categorical"

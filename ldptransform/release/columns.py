@@ -132,7 +132,7 @@ def column_entries(plans: list[ColumnPlan], report_rate: float = 1.0) -> list[Co
                 note="released in the clear; local differential privacy does not protect this column"))
             continue
         m = rc.mechanism
-        assert m is not None
+        assert m is not None and rc.type != "drop"  # plan_columns leaves dropped columns out
         outs = [OutputColumn(name=f.name, dtype=str(f.type), meaning=m.output_meaning(f.name))
                 for f in p.fields]
         cfg = rc.config
