@@ -143,7 +143,7 @@ def simulated_median_se(m: mech.Mechanism, rc: ResolvedColumn, rows: float) -> f
             prefix_se = np.sqrt(np.maximum(np.diag(np.cumsum(np.cumsum(cov, axis=0), axis=1)), 0.0))
             dist = binned_distribution(edges, np.asarray(cst.estimates()[0]), prefix_se, cov=cov, n=cst.n)
         else:
-            dst = DistributionStats(m)
+            dst = DistributionStats(cast(mech.DistributionMechanism, m))
             dst.add(m.randomize(x, words))
             dist = dst.distribution()
         meds.append(dist.quantile(0.5))
@@ -194,7 +194,7 @@ class PlanStatistic(_DictView):
     keys_: tuple[str, ...] = ()
 
     @classmethod
-    def from_dict(cls, d: Mapping[str, Any]) -> "PlanStatistic":
+    def from_dict(cls, d: Mapping[str, Any]) -> PlanStatistic:
         known = {f.name for f in fields(cls)} - {"keys_"}
         unknown = set(d) - known
         if unknown:
@@ -250,7 +250,7 @@ class PlanResult(_DictView):
                 "columns": [c.to_dict() for c in self.columns], "targets_missed": list(self.targets_missed),
                 "impossible": list(self.impossible)}
 
-    def to_frame(self) -> "pd.DataFrame":
+    def to_frame(self) -> pd.DataFrame:
         """Long table: one row per (column, statistic); a public column is one row with its note."""
         import pandas as pd
 
@@ -447,6 +447,88 @@ def _mechanism(rc: ResolvedColumn) -> mech.Mechanism:
     return rc.mechanism
 
 
+def _split_column(rc: ResolvedColumn, rows: int, default: Quality | None) -> tuple[dict[str, Any], float | None]:
+    """strategy split: the planner's entry for one column, and the eps it adds to the row's total
+    (None: no eps meets its targets)."""
+    m = _mechanism(rc)
+    if not _has_target(rc, default):
+        return {"epsilon": m.epsilon, "note": "no target: eps kept as in the policy"}, m.epsilon
+    fixed = m.fixed_epsilon()
+    if fixed is not None:
+        # the mechanism's own parameters fix the noise (a supplied transition matrix): eps only
+        # caps it, so the smallest eps the column can declare is the one the noise actually
+        # gives, and more eps cannot help
+        eps_fixed = math.ceil(fixed * 100 - 1e-9) / 100   # in the planner's 0.01 steps, rounded up
+        meets = _meets(rc, m.epsilon, rows, 1.0, default)
+        note = m.fixed_noise_note(meets, rows)
+        if meets:
+            return {"epsilon": eps_fixed, "mechanism": m.name, "note": note}, eps_fixed
+        return {"epsilon": None, "note": note}, None
+    eps = min_epsilon(rc, rows, 1.0, default)
+    if eps is None:
+        return {"epsilon": None, "note": f"no eps up to {MAX_COLUMN_EPS:g} meets the target at {rows} rows"}, None
+    return {"epsilon": eps, "mechanism": _mechanism(_with_eps(rc, eps)).name}, eps
+
+
+def _split_verdict(unmet: list[str], total: float, budget: float, rows: int) -> str:
+    if unmet:
+        return (f"cannot meet the targets of {', '.join(unmet)} at {rows} rows with any eps up "
+                f"to {MAX_COLUMN_EPS:g}; more rows are needed")
+    if total > budget * (1 + 1e-12):
+        return (f"meets every target with epsilon_per_row {total:g}, above the policy's budget "
+                f"{budget:g}: the targets cannot be met within the budget at {rows} rows")
+    return f"meets every target with epsilon_per_row {total:g} (budget {budget:g})"
+
+
+def _sampled_epsilon(rc: ResolvedColumn, rows: int, rate: float, default: Quality | None) -> float | None:
+    """strategy sample: the eps one column needs when a share ``rate`` of the rows report it."""
+    fixed = _mechanism(rc).fixed_epsilon()
+    if fixed is not None:   # fixed noise: needs its own eps, meets or not
+        return (math.ceil(fixed * 100 - 1e-9) / 100
+                if _meets(rc, _mechanism(rc).epsilon, rows, rate, default) else None)
+    return min_epsilon(rc, rows, rate, default)
+
+
+def _sampled_row_epsilon(cols: list[ResolvedColumn], rows: int, m_cols: int, default: Quality | None) -> float | None:
+    """strategy sample with m = ``m_cols``: the epsilon_per_row meeting every target (None: none does)."""
+    need: list[float] = []
+    for rc in cols:
+        eps = _sampled_epsilon(rc, rows, m_cols / len(cols), default)
+        if eps is None:
+            return None
+        need.append(eps)
+    return round(max(need) * m_cols, 10)
+
+
+def _sample_options(cols: list[ResolvedColumn], rows: int,
+                    default: Quality | None) -> tuple[list[dict[str, Any]], dict[str, Any] | None]:
+    """strategy sample: for each m, the epsilon_per_row meeting every target (None: none does), and the best m."""
+    best: dict[str, Any] | None = None
+    samples: list[dict[str, Any]] = []
+    for m_cols in range(1, len(cols) + 1):
+        eps_row = _sampled_row_epsilon(cols, rows, m_cols, default)
+        samples.append({"sample_columns": m_cols, "epsilon_per_row": eps_row})
+        if eps_row is not None and (best is None or eps_row < best["epsilon_per_row"]):
+            best = {"sample_columns": m_cols, "epsilon_per_row": eps_row}
+    return samples, best
+
+
+def _sample_part(cols: list[ResolvedColumn], rows: int, default: Quality | None, unmet: list[str],
+                 total: float) -> dict[str, Any]:
+    """The planner's strategy-sample comparison: each row reports m of d columns at eps_row / m."""
+    if not (len(cols) > 1 and all(_has_target(rc, default) for rc in cols)):
+        return {"verdict": "not compared: strategy sample needs at least two privatized columns, all with targets"}
+    samples, best = _sample_options(cols, rows, default)
+    out: dict[str, Any] = {"options": samples, "best": best}
+    if best is not None and (unmet or best["epsilon_per_row"] < total * (1 - 1e-9)):
+        out["verdict"] = (f"strategy sample with sample_columns {best['sample_columns']} would meet every "
+                          f"target with epsilon_per_row {best['epsilon_per_row']:g}"
+                          + ("" if unmet else f", less than split's {total:g}"))
+    else:
+        out["verdict"] = "strategy sample would not do better than split here"
+    return out
+
+
 def suggest(policy: LoadedPolicy, rows: int) -> dict[str, Any]:
     """The smallest per-column eps meeting every target (split), and the smallest
     epsilon_per_row meeting them under strategy sample, for each m."""
@@ -456,84 +538,20 @@ def suggest(policy: LoadedPolicy, rows: int) -> dict[str, Any]:
     total = 0.0
     unmet = []
     for rc in cols:
-        if not _has_target(rc, default):
-            split[rc.name] = {"epsilon": _mechanism(rc).epsilon, "note": "no target: eps kept as in the policy"}
-            total += _mechanism(rc).epsilon
-            continue
-        fixed = _mechanism(rc).fixed_epsilon()
-        if fixed is not None:
-            # the mechanism's own parameters fix the noise (a supplied transition matrix): eps only
-            # caps it, so the smallest eps the column can declare is the one the noise actually
-            # gives, and more eps cannot help
-            eps_fixed = math.ceil(fixed * 100 - 1e-9) / 100   # in the planner's 0.01 steps, rounded up
-            meets = _meets(rc, _mechanism(rc).epsilon, rows, 1.0, default)
-            note = _mechanism(rc).fixed_noise_note(meets, rows)
-            if meets:
-                split[rc.name] = {"epsilon": eps_fixed, "mechanism": _mechanism(rc).name, "note": note}
-                total += eps_fixed
-            else:
-                unmet.append(rc.name)
-                split[rc.name] = {"epsilon": None, "note": note}
-            continue
-        eps = min_epsilon(rc, rows, 1.0, default)
+        split[rc.name], eps = _split_column(rc, rows, default)
         if eps is None:
             unmet.append(rc.name)
-            split[rc.name] = {"epsilon": None, "note": f"no eps up to {MAX_COLUMN_EPS:g} meets the target at "
-                                                       f"{rows} rows"}
         else:
-            split[rc.name] = {"epsilon": eps, "mechanism": _mechanism(_with_eps(rc, eps)).name}
             total += eps
     budget = policy.policy.budget.epsilon_per_row
     out: dict[str, Any] = {"rows": rows, "split": {"columns": split, "epsilon_per_row": None if unmet else
                                                    round(total, 10)}}
-    if unmet:
-        out["split"]["verdict"] = (f"cannot meet the targets of {', '.join(unmet)} at {rows} rows with any eps up "
-                                   f"to {MAX_COLUMN_EPS:g}; more rows are needed")
-    elif total > budget * (1 + 1e-12):
-        out["split"]["verdict"] = (f"meets every target with epsilon_per_row {total:g}, above the policy's budget "
-                                   f"{budget:g}: the targets cannot be met within the budget at {rows} rows")
-    else:
-        out["split"]["verdict"] = f"meets every target with epsilon_per_row {total:g} (budget {budget:g})"
-    # strategy sample: each row reports m of d columns at eps_row / m; targets need eps_row / m per column
-    d = len(cols)
-    best: dict[str, Any] | None = None
-    samples: list[dict[str, Any]] = []
-    if d > 1 and all(_has_target(rc, default) for rc in cols):
-        for m_cols in range(1, d + 1):
-            rate = m_cols / d
-            need: list[float] = []
-            ok = True
-            for rc in cols:
-                fixed = _mechanism(rc).fixed_epsilon()
-                if fixed is not None:   # fixed noise: needs its own eps, meets or not
-                    eps = (math.ceil(fixed * 100 - 1e-9) / 100
-                           if _meets(rc, _mechanism(rc).epsilon, rows, rate, default) else None)
-                else:
-                    eps = min_epsilon(rc, rows, rate, default)
-                if eps is None:
-                    ok = False
-                    break
-                need.append(eps)
-            if not ok:
-                samples.append({"sample_columns": m_cols, "epsilon_per_row": None})
-                continue
-            eps_row = round(max(need) * m_cols, 10)
-            samples.append({"sample_columns": m_cols, "epsilon_per_row": eps_row})
-            if best is None or eps_row < best["epsilon_per_row"]:
-                best = {"sample_columns": m_cols, "epsilon_per_row": eps_row}
-        out["sample"] = {"options": samples, "best": best}
-        if best is not None and (unmet or best["epsilon_per_row"] < total * (1 - 1e-9)):
-            out["sample"]["verdict"] = (f"strategy sample with sample_columns {best['sample_columns']} would meet every "
-                                        f"target with epsilon_per_row {best['epsilon_per_row']:g}"
-                                        + ("" if unmet else f", less than split's {total:g}"))
-        else:
-            out["sample"]["verdict"] = "strategy sample would not do better than split here"
-    else:
-        out["sample"] = {"verdict": "not compared: strategy sample needs at least two privatized columns, all with "
-                                    "targets"}
+    out["split"]["verdict"] = _split_verdict(unmet, total, budget, rows)
+    out["sample"] = _sample_part(cols, rows, default, unmet, total)
     return out
 
 
-__all__ = ["plan", "suggest", "PlanResult", "PlanColumn", "PlanStatistic", "column_statistics", "min_epsilon", "frequency_row_variance", "mean_row_variance", "memo_rounding_variance",
+__all__ = ["plan", "suggest", "PlanResult", "PlanColumn", "PlanStatistic", "column_statistics", "min_epsilon",
+           "frequency_row_variance", "mean_row_variance", "memo_rounding_variance",
            "frequency_row_variance_bound", "mean_row_variance_bound", "simulated_median_se", "sample_size",
            "CategoricalColumn", "NumericColumn"]
