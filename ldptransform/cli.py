@@ -11,10 +11,11 @@ import json
 import math
 import sys
 import traceback
+from collections.abc import Iterator
 from contextlib import contextmanager
-from enum import Enum
+from enum import StrEnum
 from pathlib import Path
-from typing import TYPE_CHECKING, Iterator, Optional
+from typing import TYPE_CHECKING
 
 import typer
 from rich.console import Console
@@ -40,12 +41,12 @@ out_console = Console(highlight=False, soft_wrap=True)
 err_console = Console(stderr=True, highlight=False, soft_wrap=True)
 
 
-class TableJson(str, Enum):
+class TableJson(StrEnum):
     table = "table"
     json = "json"
 
 
-class TableJsonCsv(str, Enum):
+class TableJsonCsv(StrEnum):
     table = "table"
     json = "json"
     csv = "csv"
@@ -110,7 +111,7 @@ def key_new(path: Path = typer.Argument(..., help="Where to write the key file (
 
 # -- privatize ------------------------------------------------------------------------------
 
-class Engine(str, Enum):
+class Engine(StrEnum):
     local = "local"
     dask = "dask"
 
@@ -123,17 +124,17 @@ def privatize(
     key: Path = typer.Option(..., "--key", help="Secret key file made by `ldpt key new`."),
     out: Path = typer.Option(..., "--out", help="Extract to write: a .csv or .parquet file, or a folder path "
                              "(no extension) for a Parquet dataset of parts."),
-    manifest: Optional[Path] = typer.Option(None, "--manifest",
-                                            help="Manifest path [default: OUT with .manifest.json]."),
-    diagnostics: Optional[Path] = typer.Option(
+    manifest: Path | None = typer.Option(None, "--manifest",
+                                         help="Manifest path [default: OUT with .manifest.json]."),
+    diagnostics: Path | None = typer.Option(
         None, "--diagnostics", help="Steward-only diagnostics file [default: in the private folder, "
         "$LDPT_PRIVATE_DIR or ~/.local/state/ldptransform]."),
     batch_rows: int = typer.Option(65536, "--batch-rows", min=1, help="Rows per batch (memory; never the output)."),
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing extract and manifest."),
-    nonce: Optional[str] = typer.Option(None, "--nonce", help="Reuse a release nonce (from a manifest) to "
-                                        "reproduce that release bit for bit."),
+    nonce: str | None = typer.Option(None, "--nonce", help="Reuse a release nonce (from a manifest) to "
+                                     "reproduce that release bit for bit."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar; only the summary line."),
-    ledger: Optional[Path] = typer.Option(
+    ledger: Path | None = typer.Option(
         None, "--ledger", help="Privacy ledger to charge this release to (needs the policy's subject_key) "
         "[default: none, unless the policy sets budget.lifetime_epsilon: then ledger.sqlite3 in the private "
         "folder, $LDPT_PRIVATE_DIR]."),
@@ -143,9 +144,9 @@ def privatize(
     engine: Engine = typer.Option(Engine.local, "--engine", help="local: this process; dask: parts written "
                                   "in parallel by dask workers (needs OUT to be a folder; pip install "
                                   "'ldptransform[dask]'). Both write the same bytes."),
-    scheduler: Optional[str] = typer.Option(None, "--scheduler", help="With --engine dask: address of a running "
-                                            "dask scheduler (tls://HOST:PORT, or tcp:// on this machine) "
-                                            "[default: a local cluster, one worker per core, at most 8]."),
+    scheduler: str | None = typer.Option(None, "--scheduler", help="With --engine dask: address of a running "
+                                         "dask scheduler (tls://HOST:PORT, or tcp:// on this machine) "
+                                         "[default: a local cluster, one worker per core, at most 8]."),
     part_rows: int = typer.Option(1 << 20, "--part-rows", min=1, help="Dataset output: the most rows per "
                                   "part (Parquet input: whole row groups; never changes the rows' values)."),
 ) -> None:
@@ -205,7 +206,7 @@ def _print(*args: object) -> None:
     out_console.print(*args)
 
 
-def _column_tables(name: str, col: "ColumnResult") -> None:
+def _column_tables(name: str, col: ColumnResult) -> None:
     title = escape(f"{name}: {col.type}, {col.mechanism}, eps {col.epsilon:g}" +
                    (f", {col.rows_reported} rows reported" if col.rows_reported is not None else ""))
     if col.family == "frequency":
@@ -236,11 +237,11 @@ def _column_tables(name: str, col: "ColumnResult") -> None:
         _print(t)
 
 
-def _span(m: "MeanResult") -> str:
+def _span(m: MeanResult) -> str:
     return "-" if m.estimate is None else f"{m.ci_low:.3f}..{m.ci_high:.3f}"
 
 
-def _crosstab_table(x: "CrossTabResult") -> None:
+def _crosstab_table(x: CrossTabResult) -> None:
     t = Table(title=escape(f"cross-tab {x.rows} x {x.columns} ({x.rows_used} rows): joint share "
                            f"(consistent {x.consistent_method}), unbiased with CI, and share of "
                            f"{x.columns} within {x.rows}"), title_justify="left")
@@ -252,7 +253,7 @@ def _crosstab_table(x: "CrossTabResult") -> None:
     _print(t)
 
 
-def _grouped_mean_table(g: "GroupedMeanResult") -> None:
+def _grouped_mean_table(g: GroupedMeanResult) -> None:
     t = Table(title=escape(f"mean of {g.column} by {g.by} ({g.rows_used} rows; delta-method SE)"),
               title_justify="left")
     for h in (g.by, "mean", "se", "ci_low", "ci_high", "group share"):
@@ -264,7 +265,7 @@ def _grouped_mean_table(g: "GroupedMeanResult") -> None:
     _print(t)
 
 
-def _estimate_table(result: "EstimateResult") -> None:
+def _estimate_table(result: EstimateResult) -> None:
     """Render an ``EstimateResult`` as tables (the default output of ``ldpt estimate``)."""
     cm = next((c.consistent_method for c in result.columns.values() if c.consistent_method), "norm-sub").split(" ")[0]
     _print(escape(f"{result.rows} rows" + (f" from {len(result.extracts)} merged extracts"
@@ -293,7 +294,7 @@ def _csv_cell(v: object) -> str:
     return str(v)
 
 
-def _frame_csv(frame: "pd.DataFrame") -> str:
+def _frame_csv(frame: pd.DataFrame) -> str:
     """A long result frame (``to_frame()``) as CSV text, floats written exactly."""
     import csv
     import io
@@ -308,7 +309,7 @@ def _frame_csv(frame: "pd.DataFrame") -> str:
     return buf.getvalue()
 
 
-def _estimate_csv(result: "EstimateResult") -> str:
+def _estimate_csv(result: EstimateResult) -> str:
     return _frame_csv(result.to_frame())
 
 
@@ -317,26 +318,26 @@ def estimate(
     extracts: list[Path] = typer.Argument(..., help="Extract(s) (.csv or .parquet, or a dataset folder) written "
                                           "by `ldpt privatize`; "
                                           "several extracts with identical mechanism specs are merged."),
-    manifest: Optional[list[Path]] = typer.Option(None, "--manifest", help="Manifest(s), one per extract "
-                                                  "[default: beside each extract]."),
+    manifest: list[Path] | None = typer.Option(None, "--manifest", help="Manifest(s), one per extract "
+                                               "[default: beside each extract]."),
     format: TableJsonCsv = typer.Option(TableJsonCsv.table, "--format", help="Output format."),
     confidence: float = typer.Option(0.95, "--confidence", help="Confidence level of the intervals."),
-    crosstab: Optional[list[str]] = typer.Option(None, "--crosstab", help="Cross-tab of two categorical columns, "
-                                                 "A:B (repeatable)."),
-    mean_by: Optional[list[str]] = typer.Option(None, "--mean-by", help="Mean of a numeric column within each "
-                                                "category of another, NUM:CAT (repeatable)."),
-    quantiles: Optional[str] = typer.Option(None, "--quantiles", help="Quantiles of distribution columns, e.g. "
-                                            "0.1,0.5,0.9 [default: 0.5]."),
-    range_: Optional[list[str]] = typer.Option(None, "--range", help="Share of a distribution column in "
-                                               "[LOW, HIGH), COLUMN:LOW..HIGH (repeatable)."),
+    crosstab: list[str] | None = typer.Option(None, "--crosstab", help="Cross-tab of two categorical columns, "
+                                              "A:B (repeatable)."),
+    mean_by: list[str] | None = typer.Option(None, "--mean-by", help="Mean of a numeric column within each "
+                                             "category of another, NUM:CAT (repeatable)."),
+    quantiles: str | None = typer.Option(None, "--quantiles", help="Quantiles of distribution columns, e.g. "
+                                         "0.1,0.5,0.9 [default: 0.5]."),
+    range_: list[str] | None = typer.Option(None, "--range", help="Share of a distribution column in "
+                                            "[LOW, HIGH), COLUMN:LOW..HIGH (repeatable)."),
     consistency: str = typer.Option("norm-sub", "--consistency", help="Post-processing shown as 'share': "
                                     "norm-sub, norm-mul or norm."),
-    out: Optional[Path] = typer.Option(None, "--out", help="Write the result to this file instead of stdout."),
+    out: Path | None = typer.Option(None, "--out", help="Write the result to this file instead of stdout."),
     engine: Engine = typer.Option(Engine.local, "--engine", help="local: this process; dask: the parts of a "
                                   "Parquet dataset extract are decoded by dask workers and their sufficient "
                                   "statistics merged (same estimates)."),
-    scheduler: Optional[str] = typer.Option(None, "--scheduler", help="With --engine dask: address of a running "
-                                            "dask scheduler [default: a local cluster]."),
+    scheduler: str | None = typer.Option(None, "--scheduler", help="With --engine dask: address of a running "
+                                         "dask scheduler [default: a local cluster]."),
 ) -> None:
     """Unbiased frequencies, means, cross-tabs, grouped means and quantiles with SEs and intervals.
 
@@ -383,16 +384,16 @@ def estimate(
 @app.command()
 def validate(
     extract: Path = typer.Argument(..., help="Extract to check."),
-    manifest: Optional[Path] = typer.Option(None, "--manifest", help="Manifest [default: beside the extract]."),
-    raw: Optional[Path] = typer.Option(None, "--raw", help="Raw input (steward only): re-derive and calibrate."),
-    key: Optional[Path] = typer.Option(None, "--key", help="Secret key (steward only), with --raw."),
+    manifest: Path | None = typer.Option(None, "--manifest", help="Manifest [default: beside the extract]."),
+    raw: Path | None = typer.Option(None, "--raw", help="Raw input (steward only): re-derive and calibrate."),
+    key: Path | None = typer.Option(None, "--key", help="Secret key (steward only), with --raw."),
     format: TableJson = typer.Option(TableJson.table, "--format", help="Output format."),
     confidence: float = typer.Option(0.95, "--confidence", help="Interval level used for calibration."),
-    quantiles: Optional[str] = typer.Option(None, "--quantiles", help="With --raw: quantiles the calibration "
-                                            "checks, e.g. 0.1,0.5,0.9 [default: 0.25,0.5,0.75]."),
-    range_: Optional[list[str]] = typer.Option(None, "--range", help="With --raw: a range share the calibration "
-                                               "checks, COLUMN:LOW..HIGH (repeatable) [default: each distribution "
-                                               "column's bounds cut in four]."),
+    quantiles: str | None = typer.Option(None, "--quantiles", help="With --raw: quantiles the calibration "
+                                         "checks, e.g. 0.1,0.5,0.9 [default: 0.25,0.5,0.75]."),
+    range_: list[str] | None = typer.Option(None, "--range", help="With --raw: a range share the calibration "
+                                            "checks, COLUMN:LOW..HIGH (repeatable) [default: each distribution "
+                                            "column's bounds cut in four]."),
 ) -> None:
     """Check a release; exit 0 if every check passes, 1 if one fails.
 
@@ -572,8 +573,8 @@ def plan(
 
 @app.command()
 def demo(dir: Path = typer.Option(Path("demo_out"), "--dir", help="Folder for the demo's files."),
-         nonce: Optional[str] = typer.Option(None, "--nonce", help="Reuse a release nonce (to repeat a demo run "
-                                             "exactly with the same key).")) -> None:
+         nonce: str | None = typer.Option(None, "--nonce", help="Reuse a release nonce (to repeat a demo run "
+                                          "exactly with the same key).")) -> None:
     """Make the demo data (a fictional staff survey), privatize, estimate and validate it."""
     from .demo import run_demo
 
@@ -589,7 +590,7 @@ ledger_app = typer.Typer(no_args_is_help=True, help="The privacy ledger (steward
 app.add_typer(ledger_app, name="ledger")
 
 
-def _ledger_path(ledger: Optional[Path]) -> Path:
+def _ledger_path(ledger: Path | None) -> Path:
     from .ledger import default_ledger_path
 
     return ledger if ledger is not None else default_ledger_path()
@@ -599,7 +600,7 @@ _LEDGER_OPTION_HELP = "Ledger file [default: ledger.sqlite3 in the private folde
 
 
 @ledger_app.command("show")
-def ledger_show(ledger: Optional[Path] = typer.Option(None, "--ledger", help=_LEDGER_OPTION_HELP),
+def ledger_show(ledger: Path | None = typer.Option(None, "--ledger", help=_LEDGER_OPTION_HELP),
                 format: TableJson = typer.Option(TableJson.table, "--format", help="Output format.")) -> None:
     """Summarize the ledger: releases, eps recorded, per-subject spend (steward only: it depends on the data).
 
@@ -635,7 +636,7 @@ def ledger_show(ledger: Optional[Path] = typer.Option(None, "--ledger", help=_LE
 
 
 @ledger_app.command("verify")
-def ledger_verify(ledger: Optional[Path] = typer.Option(None, "--ledger", help=_LEDGER_OPTION_HELP)) -> None:
+def ledger_verify(ledger: Path | None = typer.Option(None, "--ledger", help=_LEDGER_OPTION_HELP)) -> None:
     """Recompute the ledger's hash chain; exit 0 if intact, 1 if broken (naming the first broken release).
 
     Example: ldpt ledger verify --ledger ~/private/ledger.sqlite3
