@@ -99,7 +99,7 @@ class ParquetDataset:
             self._check_schema(md.schema.to_arrow_schema(), rel, files[0][0])
             row0 = self._add_fragments(md, path, row0, fragment_rows)
         assert self.schema is not None
-        self.num_rows = row0
+        self.num_rows: int = row0
 
     def _list_files(self) -> list[tuple[str, str, int | None]]:
         """(path relative to the root, full path, size) of every Parquet file, in name order."""

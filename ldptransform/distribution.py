@@ -29,6 +29,7 @@ from statistics import NormalDist
 from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 __all__ = ["Distribution", "Interval", "binned_distribution", "frequency_covariance", "z_value"]
 
@@ -153,7 +154,7 @@ class Distribution:
         replicates' quantiles; "basic" is 2 x estimate minus their quantiles.
     """
 
-    def __init__(self, edges: np.ndarray, mass: np.ndarray, *, method: str, n: int | None,
+    def __init__(self, edges: ArrayLike, mass: ArrayLike, *, method: str, n: int | None,
                  cov: np.ndarray | None = None, cdf_se: np.ndarray | None = None,
                  centers: np.ndarray | None = None,
                  replicates: Callable[[], np.ndarray] | np.ndarray | None = None,
@@ -386,7 +387,7 @@ def _check_range(a: float, b: float) -> None:
         raise ValueError("a range [a, b) needs a <= b")
 
 
-def binned_distribution(edges: np.ndarray, freq_estimates: np.ndarray, prefix_se: np.ndarray, *,
+def binned_distribution(edges: ArrayLike, freq_estimates: ArrayLike, prefix_se: ArrayLike, *,
                         cov: np.ndarray | None = None, n: int | None = None,
                         method: str = "frequency-oracle estimates of the bins") -> Distribution:
     """Distribution of a numeric column released with ``bins:`` through a frequency oracle.

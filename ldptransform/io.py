@@ -21,7 +21,7 @@ import signal
 from collections.abc import Iterator
 from concurrent.futures import Future, ThreadPoolExecutor
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal
 
 import pyarrow as pa
 import pyarrow.csv as pacsv
@@ -29,13 +29,14 @@ import pyarrow.parquet as pq
 
 from .errors import DataError, InputFileError, OutputExistsError, UsageError
 
-FORMATS = {".csv": "csv", ".parquet": "parquet", ".pq": "parquet"}
+FileFormat = Literal["csv", "parquet"]
+FORMATS: dict[str, FileFormat] = {".csv": "csv", ".parquet": "parquet", ".pq": "parquet"}
 ROW_GROUP_ROWS = 131072
 CSV_BLOCK_BYTES = 1 << 20
 _PARTIAL = re.compile(r"^\.(?P<name>.+)\.ldpt-partial-(?P<pid>\d+)-[0-9a-f]{8}$")
 
 
-def file_format(path: Path, role: str) -> str:
+def file_format(path: Path, role: str) -> FileFormat:
     fmt = FORMATS.get(Path(path).suffix.lower())
     if fmt is None:
         raise UsageError(f"{role} {path}: the file name must end in .csv or .parquet (the format is chosen by "
@@ -59,6 +60,7 @@ class TableSource:
         self._delim = csv_delimiter
         self.dataset: ParquetDataset | None = None
         self.num_rows: int | None = None
+        self.schema: pa.Schema  # every file and dataset has one (a dataset's is its first file's)
         if is_uri(path) or self.path.is_dir():
             self.format = "parquet"
             self.dataset = ParquetDataset(path)
@@ -344,7 +346,7 @@ class StagedFiles:
                 self._old_handlers[sig] = signal.signal(sig, _raise)
         return self
 
-    def __exit__(self, exc_type: Any, exc: Any, tb: Any) -> bool:
+    def __exit__(self, exc_type: Any, exc: Any, tb: Any) -> Literal[False]:
         try:
             if not self._committed:
                 self.discard()

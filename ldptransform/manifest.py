@@ -10,16 +10,15 @@ from __future__ import annotations
 
 import json
 import math
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any, Literal
+from typing import Any, Final, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
-from ._version import __version__
 from .errors import ManifestError
 
-FORMAT = "ldptransform-manifest"
+FORMAT: Final = "ldptransform-manifest"
 FORMAT_VERSION = 1
 
 CAUTIONS = [
@@ -124,7 +123,7 @@ class Manifest(_Strict):
 
 
 def now_utc() -> str:
-    return datetime.now(timezone.utc).replace(microsecond=0).isoformat().replace("+00:00", "Z")
+    return datetime.now(UTC).replace(microsecond=0).isoformat().replace("+00:00", "Z")
 
 
 def default_manifest_path(extract: Path) -> Path:
@@ -157,7 +156,8 @@ def load_manifest(path: Path) -> Manifest:
         first = err.errors()[0]
         loc = ".".join(str(p) for p in first.get("loc", ()))
         raise ManifestError(f"manifest {path} is malformed: field '{loc}': {first.get('msg')} "
-                            f"({err.error_count()} problem(s) in all). Ask the data steward for an intact copy.") from None
+                            f"({err.error_count()} problem(s) in all). Ask the data steward for an intact "
+                            "copy.") from None
     _check_finite(data, path)
     return m
 

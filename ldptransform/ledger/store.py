@@ -376,7 +376,7 @@ class Ledger:
                                   "$LDPT_PRIVATE_DIR).") from None
             if not path.parent.is_dir():
                 raise LedgerError(f"cannot create ledger {path}: folder {path.parent} does not exist. Create it "
-                                  "first (private to the steward, like the key).")
+                                  "first (private to the steward, like the key).") from None
             try:
                 os.close(os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600))
             except FileExistsError:
@@ -646,7 +646,8 @@ class Ledger:
         self._put(_TOTALS, arrays[_TOTALS])
         for col in memo_cols:
             self._put(_STATE_PREFIX + col, arrays[_STATE_PREFIX + col])
-        c.executemany("UPDATE meta SET value = ? WHERE name = ?", [(row_hash, "head"), (str(row["id"]), "release_count")])
+        c.executemany("UPDATE meta SET value = ? WHERE name = ?",
+                      [(row_hash, "head"), (str(row["id"]), "release_count")])
         return row_hash
 
     def _put(self, name: str, data: bytes) -> None:
@@ -731,13 +732,15 @@ class Ledger:
         if not ok:
             return (rid, f"release {rid}: its spend is missing or damaged"), none
         if len(ids) != r["subjects_charged"]:
-            return (rid, f"release {rid}: {len(ids)} subjects in its spend, but the release says {r['subjects_charged']}"), none
+            return (rid, f"release {rid}: {len(ids)} subjects in its spend, but the release says "
+                         f"{r['subjects_charged']}"), none
         try:
             expected = _row_hash(r, r["prev_hash"], _spend_digest(ids, e))
         except (TypeError, ValueError):
             expected = None
         if expected != r["row_hash"]:
-            return (rid, f"release {rid}: its row or its spend was changed after it was recorded (row_hash differs)"), none
+            return (rid, f"release {rid}: its row or its spend was changed after it was recorded "
+                         "(row_hash differs)"), none
         return None, (ids, e)
 
     def spend_totals(self) -> np.ndarray:

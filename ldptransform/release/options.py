@@ -12,7 +12,7 @@ from pathlib import Path
 from typing import Any
 
 from ..errors import OptionError, UsageError
-from ..io import file_format, is_dataset_output
+from ..io import FileFormat, file_format, is_dataset_output
 from ..keys import check_nonce, new_nonce
 from ..manifest import default_manifest_path
 from ..policy import LoadedPolicy
@@ -39,7 +39,7 @@ class ReleaseOptions:
     engine: str
     scheduler: str | None
     dataset_out: bool             # ``out`` names a folder: a Parquet dataset of parts
-    fmt_out: str                  # "parquet" or "csv"
+    fmt_out: FileFormat
 
     @property
     def frame_input(self) -> bool:
