@@ -16,10 +16,17 @@ import subprocess
 import sys
 import traceback
 from pathlib import Path
-from typing import Any, Callable
+from collections.abc import Callable, Sequence
+from typing import TYPE_CHECKING, Any
 
 import pytest
 import yaml
+
+if TYPE_CHECKING:
+    import numpy as np
+
+    from ldptransform.mechanisms import Mechanism
+    from ldptransform.policy import ResolvedColumn
 
 REPO = Path(__file__).resolve().parent.parent
 DEMO_CSV = REPO / "demo_data" / "staff_survey.csv"
@@ -121,7 +128,8 @@ def run_cli(*args: Any, private: Path, cwd: Path | None = None) -> subprocess.Co
     return subprocess.CompletedProcess(["ldpt", *argv], code, res.stdout, err)
 
 
-def run_process(*args: Any, private: Path, cwd: Path | None = None, timeout: float = 180) -> subprocess.CompletedProcess:
+def run_process(*args: Any, private: Path, cwd: Path | None = None,
+                timeout: float = 180) -> subprocess.CompletedProcess:
     """``python -m ldptransform ARGS...`` in a real subprocess (text, stdin closed)."""
     return subprocess.run([sys.executable, "-m", "ldptransform", *map(str, args)], cwd=cwd,
                           env=cli_env(private), capture_output=True, text=True, timeout=timeout,
@@ -166,7 +174,7 @@ def write_fixed_key(path: Path) -> Path:
 
 
 def keyed_words(label: str, n: int, per_row: int, start: int = 0, *, key: Any = FIXED_KEY_BYTES,
-                nonce: str = FIXED_NONCE, stream: str = "test") -> "np.ndarray":
+                nonce: str = FIXED_NONCE, stream: str = "test") -> np.ndarray:
     """PRF words for a mechanism test: rows ``start .. start + n - 1`` of the row-addressed
     keyed stream (key, nonce, stream, label), ``per_row`` 64-bit words each, an (n, per_row)
     uint64 array.  ``key`` is a SecretKey or its 32 bytes.  Test files bind their own key,
@@ -177,6 +185,12 @@ def keyed_words(label: str, n: int, per_row: int, start: int = 0, *, key: Any = 
     if isinstance(key, (bytes, bytearray)):
         key = SecretKey(bytes(key))
     return KeyedStream(key, nonce, stream, label).words(start, n, per_row)
+
+
+def mechanism_of(rc: ResolvedColumn) -> Mechanism:
+    """The mechanism of a privatized column of a resolved policy (the test fails if it has none)."""
+    assert rc.mechanism is not None, f"column {rc.name} is not privatized"
+    return rc.mechanism
 
 
 @pytest.fixture(scope="session")
@@ -203,7 +217,7 @@ def survey(tmp_path: Path, key_file: Path) -> dict[str, Path]:
     return {"dir": work, "csv": csv, "policy": policy, "key": key_file}
 
 
-def realized_channel(randomize_index, xs: "np.ndarray", M: int) -> "np.ndarray":
+def realized_channel(randomize_index, xs: np.ndarray, M: int) -> np.ndarray:
     """P(output j | grid input i) as a sampler actually realizes it, found by bisection over
     the PRF word that drives its second stage: for every (grid input x_i, output j) the
     smallest 53-bit word prefix whose output index is >= j.  It assumes (as keys.to_unit
@@ -229,7 +243,7 @@ def realized_channel(randomize_index, xs: "np.ndarray", M: int) -> "np.ndarray":
     return (nxt - first) / float(1 << 53)
 
 
-def assert_user_error(res: subprocess.CompletedProcess, names: list[str], forbidden: list[str] = ()) -> str:
+def assert_user_error(res: subprocess.CompletedProcess, names: list[str], forbidden: Sequence[str] = ()) -> str:
     """Exit 2, one paragraph on stderr naming every item of ``names``, no traceback, and none
     of ``forbidden`` (raw values, key material) anywhere in the output."""
     err = res.stderr

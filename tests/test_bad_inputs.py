@@ -9,8 +9,9 @@ from __future__ import annotations
 import csv
 import os
 import shutil
+from collections.abc import Callable
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
@@ -41,7 +42,7 @@ class Release:
             self._hashes[p] = sha256(p)
 
     def args(self, input: Path | None = None, **override: Any) -> list[str]:
-        opts = {"--policy": self.policy, "--key": self.key, "--out": self.out}
+        opts: dict[str, Any] = {"--policy": self.policy, "--key": self.key, "--out": self.out}
         opts.update({f"--{k.replace('_', '-')}": v for k, v in override.items()})
         args = ["privatize", input or self.csv]
         for k, v in opts.items():

@@ -142,11 +142,11 @@ def test_privatize_formats(fmt_in: str, fmt_out: str, survey: dict[str, Path], l
     assert set(col["role"]) <= set(ROLES) and len(set(col["role"])) == len(ROLES)
     # site is left to `mechanism: auto`: whatever it picked, every report is one its channel can
     # produce over the declared sites plus <other>
-    from ldptransform.mechanisms import build
+    from ldptransform.mechanisms import FrequencyOracle, build
 
     site_spec = next(c for c in m["columns"] if c["name"] == "site")["mechanism"]
     site_mech = build(site_spec)
-    assert site_mech.categories == SITES + [OTHER]
+    assert isinstance(site_mech, FrequencyOracle) and site_mech.categories == SITES + [OTHER]
     assert site_mech.count_invalid([t.column("site").combine_chunks()]) == 0
     assert set(col["tenure_years"]) <= set(TENURE_LABELS)
     assert set(col["would_recommend"]) <= {"yes", "no"}
@@ -210,7 +210,7 @@ def test_summary_names_paths_verbatim(survey: dict[str, Path], ldpt) -> None:
 _ANSI = re.compile(r"\x1b\[[0-9;?]*[ -/]*[@-~]|\x1b[()][0-9A-Za-z]|\x1b[=>]")
 
 
-def _run_with_terminal_stderr(args: list[str], private: Path) -> tuple[int, str, str]:
+def _run_with_terminal_stderr(args: list[str | Path], private: Path) -> tuple[int, str, str]:
     env = cli_env(private)
     env["TERM"] = "xterm-256color"
     env["COLUMNS"] = "120"
@@ -228,13 +228,15 @@ def _run_with_terminal_stderr(args: list[str], private: Path) -> tuple[int, str,
             break
         chunks.append(data)
     os.close(master)
+    assert p.stdout is not None
     stdout = p.stdout.read().decode()
     p.wait(timeout=120)
     return p.returncode, stdout, b"".join(chunks).decode(errors="replace")
 
 
 def test_quiet_on_a_terminal_prints_only_the_summary(survey: dict[str, Path], private_dir: Path) -> None:
-    base = ["privatize", survey["csv"], "--policy", survey["policy"], "--key", survey["key"], "--batch-rows", "200"]
+    base: list[str | Path] = ["privatize", survey["csv"], "--policy", survey["policy"], "--key", survey["key"],
+                              "--batch-rows", "200"]
     # without --quiet a terminal gets the progress bar (so the check below can see one)
     code, stdout, err = _run_with_terminal_stderr([*base, "--out", survey["dir"] / "a.parquet"], private_dir)
     assert code == 0 and stdout == ""
@@ -294,7 +296,8 @@ def true_values(raw: pd.DataFrame) -> dict[str, Any]:
 # The documented shape of `estimate --format json`; the tool also adds a few informative
 # keys, listed here so that any other addition or removal is noticed.
 DOC_TOP, EXTRA_TOP = {"rows", "confidence", "columns"}, {"se_method", "public_columns"}
-DOC_COL, EXTRA_CAT, EXTRA_NUM = {"type", "mechanism", "epsilon"}, {"consistent_method", "distribution"}, {"bounds", "distribution"}
+DOC_COL = {"type", "mechanism", "epsilon"}
+EXTRA_CAT, EXTRA_NUM = {"consistent_method", "distribution"}, {"bounds", "distribution"}
 DOC_FREQ, EXTRA_FREQ = {"value", "estimate", "se", "ci_low", "ci_high"}, {"count_estimate", "consistent"}
 DOC_MEAN = {"estimate", "se", "ci_low", "ci_high"}
 
@@ -699,6 +702,7 @@ def _start(survey: dict[str, Path], src: Path, out: Path, private: Path, batch_r
 
 def _wait_for_partial(p: subprocess.Popen, folder: Path, timeout: float = 60) -> None:
     t0 = time.monotonic()
+    assert p.stderr is not None
     while not partials(folder):
         assert p.poll() is None, f"privatize ended (exit {p.returncode}) before its partial file appeared: " \
                                  f"{p.stderr.read().decode()}"

@@ -13,6 +13,7 @@ import json
 import subprocess
 import sys
 from pathlib import Path
+from typing import Any
 
 import pandas as pd
 import pyarrow as pa
@@ -113,6 +114,7 @@ def test_dask_engine_writes_the_local_engines_parts_bit_for_bit(policy_fn, datas
     dsk = privatize(dataset, pol, KEY, tmp_path / "dask", nonce=NONCE, fragment_rows=2000, engine="dask",
                     scheduler=cluster)
     # fragments: runs of whole row groups of at most 2000 rows (a.parquet: 1000-row groups; b: 700; c: 2500)
+    assert loc.manifest.extract.parts is not None
     rows = [p.rows for p in loc.manifest.extract.parts]
     assert rows == [2000, 1000, 1400, 1400, 1200] + [2500, 2500]
     assert parts_of(tmp_path / "local") == parts_of(tmp_path / "dask")
@@ -135,6 +137,7 @@ def test_csv_input_with_the_dask_engine(tmp_path: Path, cluster: str) -> None:
     privatize(DEMO_CSV, pol, KEY, tmp_path / "local", nonce=NONCE, fragment_rows=5000)
     dsk = privatize(DEMO_CSV, pol, KEY, tmp_path / "dask", nonce=NONCE, fragment_rows=5000, engine="dask",
                     scheduler=cluster)
+    assert dsk.manifest.extract.parts is not None
     assert [p.rows for p in dsk.manifest.extract.parts] == [5000, 5000, 2000]
     assert parts_of(tmp_path / "local") == parts_of(tmp_path / "dask")
     privatize(DEMO_CSV, pol, KEY, tmp_path / "one.parquet", nonce=NONCE)
@@ -163,7 +166,7 @@ def test_ledger_charges_are_the_same_with_either_engine(dataset: Path, tmp_path:
     spends = []
     for engine in ("local", "dask"):
         led = tmp_path / f"{engine}.sqlite3"
-        kw = {"scheduler": cluster} if engine == "dask" else {}
+        kw: dict[str, Any] = {"scheduler": cluster} if engine == "dask" else {}
         r = privatize(dataset, pol, KEY, tmp_path / engine, nonce=NONCE, ledger_path=led, engine=engine, **kw)
         assert r.ledger_release_id == 1
         with Ledger.open(led, create=False) as lg:
@@ -194,7 +197,7 @@ def test_estimate_merges_the_parts_with_either_engine(dataset: Path, tmp_path: P
     pol = parse_policy(survey_policy(), "survey.yaml")
     privatize(dataset, pol, KEY, tmp_path / "ds", nonce=NONCE, fragment_rows=2000)
     privatize(dataset, pol, KEY, tmp_path / "one.parquet", nonce=NONCE)
-    kw = dict(crosstabs=[("site", "role")], mean_by=[("pay", "site")])
+    kw: dict[str, Any] = dict(crosstabs=[("site", "role")], mean_by=[("pay", "site")])
     local = estimate(tmp_path / "ds", **kw).to_dict()
     dsk = estimate(tmp_path / "ds", engine="dask", scheduler=cluster, **kw).to_dict()
     single = estimate(tmp_path / "one.parquet", **kw).to_dict()
@@ -262,6 +265,7 @@ def test_overwrite_replaces_a_dataset_folder(dataset: Path, tmp_path: Path) -> N
     with pytest.raises(LdptError, match="already exists"):
         privatize(dataset, pol, KEY, tmp_path / "ds", nonce=NONCE)
     r = privatize(dataset, pol, KEY, tmp_path / "ds", nonce=NONCE, overwrite=True)
+    assert r.manifest.extract.parts is not None
     assert sorted(p.name for p in (tmp_path / "ds").iterdir()) == [p.file for p in r.manifest.extract.parts]
     assert [p.name for p in tmp_path.iterdir() if "partial" in p.name] == []
 

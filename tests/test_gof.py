@@ -25,6 +25,7 @@ from scipy import stats
 
 from conftest import keyed_words
 from ldptransform import gof
+from ldptransform.gof import FitResult, FitStats
 from ldptransform.keys import KeyedStream, SecretKey
 from ldptransform.mechanisms import (
     GRR,
@@ -73,9 +74,15 @@ def release(m, x: np.ndarray, label: str) -> list[pa.Array]:
     return m.randomize(x, w)
 
 
-def verdict(declared, arrays) -> dict:
-    f = gof.fit_stats_for(declared)
-    assert f is not None, gof.no_fit_reason(declared)
+def fit_of(m) -> FitStats:
+    """The mechanism's fit test (the test fails if it has none)."""
+    f = gof.fit_stats_for(m)
+    assert f is not None, gof.no_fit_reason(m)
+    return f
+
+
+def verdict(declared, arrays) -> FitResult:
+    f = fit_of(declared)
     f.add(arrays)
     return f.result(FAMILY)
 
@@ -166,8 +173,8 @@ def test_batches_merge_to_the_same_verdict():
         m = make(name, 1.0)
         x = data(name, 9000)
         arrays = release(m, x, f"merge-{name}")
-        whole = gof.fit_stats_for(m).add(arrays)
-        parts = [gof.fit_stats_for(m).add([a.slice(s, 3000) for a in arrays]) for s in (0, 3000, 6000)]
+        whole = fit_of(m).add(arrays)
+        parts = [fit_of(m).add([a.slice(s, 3000) for a in arrays]) for s in (0, 3000, 6000)]
         merged = parts[0].merge(parts[1]).merge(parts[2])
         for k in whole.stats:
             assert np.array_equal(np.asarray(whole.stats[k]), np.asarray(merged.stats[k])), (name, k)
@@ -177,13 +184,13 @@ def test_batches_merge_to_the_same_verdict():
 def test_n_tests_matches_results():
     for name in CAT_NAMES + NUM_NAMES:
         m = make(name, 1.0)
-        f = gof.fit_stats_for(m).add(release(m, data(name, 3000), f"count-{name}"))
+        f = fit_of(m).add(release(m, data(name, 3000), f"count-{name}"))
         assert f.n_tests == len(f.results(0.05)), name
 
 
 def test_results_are_typed_and_keep_the_dict_shape():
     m = make("oue", 1.0)
-    f = gof.fit_stats_for(m).add(release(m, data("oue", 3000), "typed-oue"))
+    f = fit_of(m).add(release(m, data("oue", 3000), "typed-oue"))
     tests = f.results(0.01)
     assert all(isinstance(r, gof.FitResult) for r in tests)
     d = tests[0].to_dict()
@@ -195,7 +202,7 @@ def test_results_are_typed_and_keep_the_dict_shape():
     assert verdict.p_value == min(1.0, 2 * min(r.p_value for r in tests))
     # hierarchy: every level's tests carry the level
     h = make("hierarchy", 1.0)
-    levels = [r.extra["level"] for r in gof.fit_stats_for(h).add(release(h, data("hierarchy", 3000), "typed-h"))
+    levels = [r.extra["level"] for r in fit_of(h).add(release(h, data("hierarchy", 3000), "typed-h"))
               .results(0.01)]
     assert levels == sorted(levels) and set(levels) == {1, 2, 3}
 
@@ -223,7 +230,7 @@ def test_false_alarm_rate_at_most_nominal(name):
     x = data(name, n)
     rejected = 0
     for r in range(R):
-        f = gof.fit_stats_for(m).add(release(m, x, f"null-{name}-{r}"))
+        f = fit_of(m).add(release(m, x, f"null-{name}-{r}"))
         rejected += not f.result(alpha)["passed"]
     limit = alpha + 4 * math.sqrt(alpha * (1 - alpha) / R)
     assert rejected / R <= limit, (name, rejected)

@@ -103,7 +103,8 @@ def test_subset_spec_default_and_explicit_size():
     spec = m.to_spec()
     del spec["subset_size"]
     assert SubsetSelection.from_spec(spec).m == 9
-    assert build({**spec, "subset_size": 4}).m == 4
+    four = build({**spec, "subset_size": 4})
+    assert isinstance(four, SubsetSelection) and four.m == 4
     # words per row: 1 + min(m, k - m) (the complement is shuffled when 2m > k)
     assert sub(1.0, 10, 3).words_per_row == 4 and sub(1.0, 10, 8).words_per_row == 3
     assert had(1.0, 7).K == 8 and had(1.0, 8).K == 16 and had(1.0, 4096).K == 8192
@@ -294,6 +295,7 @@ def test_output_distribution_matches_channel(m):
     Acharya et al. AISTATS 2019 / Ye and Barg IEEE Trans. Inf. Theory 2018 (docs/formulas.md
     3.1, 3.2 [M+D])."""
     wrong = build({**m.to_spec(), "epsilon": m.epsilon + 0.25})
+    assert isinstance(wrong, type(m))
     n = 20_000
     cells, probs, probs_wrong = [], [], []
     Q, Qw = m.channel(), wrong.channel()

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import json
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -61,8 +62,13 @@ def test_crosstab_and_grouped_mean_unbiased_and_covered(tmp_path, mechs):
     df.to_parquet(raw, index=False)
     lp = parse_policy(_policy(*mechs), "test")
     joint_t, within_t, means_t = _truth(df)
-    J, W, M, cover, total = [], [], [], 0, 0
-    seJ, seW, seM = [], [], []
+    J: list[np.ndarray] = []
+    W: list[np.ndarray] = []
+    M: list[np.ndarray] = []
+    seJ: list[np.ndarray] = []
+    seW: list[np.ndarray] = []
+    seM: list[np.ndarray] = []
+    cover, total = 0, 0
     for r in range(40):
         out = tmp_path / f"e{r}.parquet"
         privatize(raw, lp, KEY, out, nonce=f"{r:032x}")
@@ -75,13 +81,18 @@ def test_crosstab_and_grouped_mean_unbiased_and_covered(tmp_path, mechs):
         g = res["grouped_means"][0]["groups"]
         m = np.array([row["mean"]["estimate"] for row in g])
         ms = np.array([row["mean"]["se"] for row in g])
-        J.append(j), W.append(w), M.append(m), seJ.append(js), seW.append(ws), seM.append(ms)
+        J.append(j)
+        W.append(w)
+        M.append(m)
+        seJ.append(js)
+        seW.append(ws)
+        seM.append(ms)
         for est, se, t in ((j, js, joint_t), (w, ws, within_t), (m, ms, means_t)):
             cover += int((np.abs(est - t) <= 1.959964 * se).sum())
             total += t.size
-    for est, se, t in ((J, seJ, joint_t), (W, seW, within_t), (M, seM, means_t)):
-        avg = np.mean(est, axis=0)
-        se_avg = np.sqrt(np.mean(np.square(se), axis=0) / len(est))
+    for ests, ses, t in ((J, seJ, joint_t), (W, seW, within_t), (M, seM, means_t)):
+        avg = np.mean(ests, axis=0)
+        se_avg = np.sqrt(np.mean(np.square(ses), axis=0) / len(ests))
         assert np.all(np.abs(avg - t) < 5 * se_avg), (avg, t)
     share = cover / total
     assert 0.90 <= share <= 0.99, share
@@ -97,8 +108,10 @@ def test_joint_shares_are_the_product_of_row_estimates(tmp_path):
     df.to_csv(raw, index=False)
     res = privatize(raw, parse_policy(_policy("grr", "sue"), "t"), KEY, tmp_path / "x.parquet", nonce="1" * 32)
     ext = pd.read_parquet(tmp_path / "x.parquet")
-    ma = mech.build(res.manifest.column("area").mechanism)
-    mb = mech.build(res.manifest.column("band").mechanism)
+    spec_a, spec_b = res.manifest.column("area").mechanism, res.manifest.column("band").mechanism
+    assert spec_a is not None and spec_b is not None
+    ma, mb = mech.build(spec_a), mech.build(spec_b)
+    assert isinstance(ma, mech.FrequencyOracle) and isinstance(mb, mech.FrequencyOracle)
     import pyarrow as pa
 
     ua = ma.row_estimates([pa.array(ext["area"].astype(str))])
@@ -156,7 +169,7 @@ def test_merged_extracts_equal_their_concatenation(tmp_path):
         out = tmp_path / f"part{i}.parquet"
         privatize(raw, lp, KEY, out, nonce=f"{77 + i:032x}")
         outs.append(out)
-    kw = dict(crosstabs=[("area", "band")], mean_by=[("pay", "area")])
+    kw: dict[str, Any] = dict(crosstabs=[("area", "band")], mean_by=[("pay", "area")])
     merged = estimate(outs, **kw).to_dict()
     whole = estimate(_concat_release(tmp_path, outs), **kw).to_dict()
     assert merged["rows"] == whole["rows"] == 4000

@@ -343,10 +343,14 @@ def test_two_privatize_jobs_against_one_ledger(tmp_path: Path, private_dir: Path
                                  nonce], env=cli_env(private_dir), stdout=subprocess.PIPE, stderr=subprocess.PIPE,
                                 text=True, stdin=subprocess.DEVNULL)
 
+    def finish(job: subprocess.Popen) -> tuple[int, str]:
+        assert job.stderr is not None
+        return job.wait(timeout=180), job.stderr.read()
+
     free = write_policy(tmp_path / "free.yaml", policy())
     led = tmp_path / "free.sqlite3"
     jobs = [start(free, led, f"free{i}.parquet", n) for i, n in enumerate((NIGHT1, NIGHT2))]
-    res = [(j.wait(timeout=180), j.stderr.read()) for j in jobs]
+    res = [finish(j) for j in jobs]
     assert [r[0] for r in res] == [0, 0], res
     with Ledger.open(led, create=False) as lg:
         v = lg.verify()
@@ -357,7 +361,7 @@ def test_two_privatize_jobs_against_one_ledger(tmp_path: Path, private_dir: Path
     capped = write_policy(tmp_path / "capped.yaml", policy(cap=4.0))   # one release costs 3 per person
     led = tmp_path / "capped.sqlite3"
     jobs = [start(capped, led, f"cap{i}.parquet", n) for i, n in enumerate((NIGHT1, NIGHT2))]
-    res = [(j.wait(timeout=180), j.stderr.read()) for j in jobs]
+    res = [finish(j) for j in jobs]
     codes = sorted(r[0] for r in res)
     assert codes == [0, 2], res
     loser = [i for i, r in enumerate(res) if r[0] == 2][0]

@@ -26,7 +26,7 @@ from conftest import FIXED_KEY_BYTES, FIXED_NONCE, keyed_words, realized_channel
 from ldptransform.errors import PolicyError
 from ldptransform.estimate import CategoricalStats
 from ldptransform.mechanisms.base import build
-from ldptransform.mechanisms.categorical import GRR
+from ldptransform.mechanisms.categorical import GRR, FrequencyOracle
 from ldptransform.mechanisms.matrix import Matrix, grr_matrix
 
 CATS4 = ["north", "south", "east", "west"]
@@ -38,7 +38,7 @@ ASYM = [[0.50, 0.20, 0.20, 0.10],
 ASYM_EPS = math.log(5.5)
 
 
-def words(name: str, n: int, m: Matrix) -> np.ndarray:
+def words(name: str, n: int, m: FrequencyOracle) -> np.ndarray:
     return keyed_words(name, n, m.words_per_row, key=FIXED_KEY_BYTES, nonce=FIXED_NONCE, stream="test")
 
 
@@ -56,7 +56,9 @@ def test_matrix_beyond_eps_is_refused_with_the_eps_it_gives():
     """docs/formulas.md section 11 [D] (Gouweleeuw et al., JOS 1998; LDP iff column ratio <= e^eps):
     the message states the eps the realized matrix gives (ln 5.5) and the column attaining it."""
     msg = refusal(1.5, CATS4, ASYM)
-    got = float(re.search(r"gives eps = ([0-9.]+)", msg).group(1))
+    found = re.search(r"gives eps = ([0-9.]+)", msg)
+    assert found is not None, msg
+    got = float(found.group(1))
     assert abs(got - ASYM_EPS) < 1e-8
     assert "column 1 ('south')" in msg and "at least 1.704749" in msg and "flatten column 1" in msg
     # just below the matrix's own eps: refused; at it: accepted, and the realized eps is within it
@@ -121,6 +123,7 @@ def test_grr_matrix_decodes_exactly_as_grr():
     sg.add(reports)
     sm.add(reports)
     (eg, seg), (em, sem) = sg.estimates(), sm.estimates()
+    assert eg is not None and seg is not None and em is not None and sem is not None
     np.testing.assert_allclose(em, eg, rtol=0, atol=1e-12)
     np.testing.assert_allclose(sem, seg, rtol=1e-9)
     np.testing.assert_allclose(sm.covariance(), sg.covariance(), rtol=1e-9, atol=1e-18)

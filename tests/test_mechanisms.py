@@ -32,6 +32,7 @@ from ldptransform.mechanisms import (
     HadamardResponse,
     Hybrid,
     Piecewise,
+    SquareWave,
     SubsetSelection,
     TwoPoint,
     build,
@@ -178,7 +179,8 @@ def test_from_policy_names_the_missing_or_refused_field():
     with pytest.raises(MechanismParamError, match="two-point has no input grid") as err:
         registry()["two-point"].from_policy(1.0, (0, 1), {"grid": 8})
     assert err.value.field == "grid"
-    assert registry()["subset"].from_policy(1.0, ["a", "b", "c", "d"], {"subset_size": 2}).m == 2
+    sub = registry()["subset"].from_policy(1.0, ["a", "b", "c", "d"], {"subset_size": 2})
+    assert isinstance(sub, SubsetSelection) and sub.m == 2
 
 
 def test_planner_and_memoize_hooks():
@@ -191,7 +193,8 @@ def test_planner_and_memoize_hooks():
     dl = DiscreteLaplace(1.0, (0, 10), 16)
     assert not dl.supports_memoize and "variable number" in dl.memoize_refusal and dl.exact_decimal_epsilon
     assert Hybrid(1.0, (0, 10)).supports_memoize and Hybrid(1.0, (0, 10)).memoize_refusal == ""
-    sw = registry()["square-wave"](1.0, (0, 10), 16)
+    assert registry()["square-wave"] is SquareWave
+    sw = SquareWave(1.0, (0, 10), 16)
     assert sw.mean_row_variance() is None and sw.frequency_row_variance() is None and sw.fit_test() is not None
     assert GRR(1.0, ["a", "b"]).mean_row_variance() is None
     assert dl.mean_row_variance() == pytest.approx(max(dl.variance(0.0), dl.variance(10.0)) + 25.0)
@@ -244,7 +247,8 @@ def test_spec_round_trip_and_family_check(m):
 
 def test_olh_spec_keeps_an_explicit_hash_range():
     m = OLH(1.0, ["a", "b", "c"], hash_range=7)
-    assert build(m.to_spec()).g == 7
+    olh = build(m.to_spec())
+    assert isinstance(olh, OLH) and olh.g == 7
     with pytest.raises(PolicyError):
         OLH(1.0, ["a", "b"], hash_range=1)
 

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -19,6 +20,7 @@ from ldptransform.estimate import estimate
 from ldptransform.keys import SecretKey
 from ldptransform.policy import load_policy
 from ldptransform.release import privatize
+from ldptransform.results import EstimateResult
 from ldptransform.validate import validate
 
 KEY = SecretKey(bytes(range(100, 132)))
@@ -53,7 +55,7 @@ def _synthetic(n: int, seed: int = 7) -> pd.DataFrame:
     })
 
 
-POLICY = {
+POLICY: dict[str, Any] = {
     "budget": {"epsilon_per_row": 12.0},
     "columns": {
         "team": {"type": "categorical", "categories": list("abcdefghijkl"), "epsilon": 1.0, "mechanism": "oue"},
@@ -70,8 +72,8 @@ POLICY = {
 }
 
 
-def _truth(df: pd.DataFrame, policy: dict) -> dict:
-    out = {}
+def _truth(df: pd.DataFrame, policy: dict) -> dict[str, np.ndarray | float]:
+    out: dict[str, np.ndarray | float] = {}
     for name, col in policy["columns"].items():
         if col["type"] == "categorical":
             out[name] = np.array([(df[name].astype(str) == c).mean() for c in col["categories"]])
@@ -86,7 +88,7 @@ def _truth(df: pd.DataFrame, policy: dict) -> dict:
     return out
 
 
-def _vector(result: dict, name: str) -> tuple[np.ndarray, np.ndarray]:
+def _vector(result: EstimateResult, name: str) -> tuple[np.ndarray, np.ndarray]:
     col = result["columns"][name]
     if "frequencies" in col:
         return (np.array([f["estimate"] for f in col["frequencies"]]), np.array([f["se"] for f in col["frequencies"]]))
@@ -227,11 +229,12 @@ def test_manifest_records_auto_choice(tmp_path):
     df.to_csv(raw, index=False)
     res = privatize(raw, load_policy(_write_policy(tmp_path / "p.yaml", policy)), KEY, tmp_path / "x.csv")
     cols = {c.name: c for c in res.manifest.columns}
+    team, hours = cols["team"].mechanism, cols["hours"].mechanism
     # k=12 at eps 1: subset selection with m = 3 (Ye and Barg 2018) beats GRR, OLH and OUE
-    assert cols["team"].mechanism["mechanism"] == "subset" and cols["team"].mechanism["subset_size"] == 3
+    assert team is not None and team["mechanism"] == "subset" and team["subset_size"] == 3
     why = cols["team"].chosen_because
-    assert "lowest total variance" in why and "efficiency 1.000" in why and "lower bound" in why
-    assert cols["hours"].mechanism["mechanism"] == "hybrid"
+    assert why is not None and "lowest total variance" in why and "efficiency 1.000" in why and "lower bound" in why
+    assert hours is not None and hours["mechanism"] == "hybrid"
     # CSV extract decodes the same way
     est = estimate(tmp_path / "x.csv")
     assert set(est["columns"]) == {"team", "hours"}

@@ -37,7 +37,8 @@ POLICY = {
 def release(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     d = tmp_path_factory.mktemp("results")
     rng = np.random.default_rng(3)  # synthetic input data only
-    df = pd.DataFrame({"site": rng.choice(["a", "b", "c", None], ROWS, p=[0.5, 0.3, 0.15, 0.05]),
+    df = pd.DataFrame({"site": rng.choice(np.array(["a", "b", "c", None], dtype=object), ROWS,
+                                          p=[0.5, 0.3, 0.15, 0.05]),
                        "pay": np.where(rng.random(ROWS) < 0.05, np.nan, rng.normal(60, 30, ROWS)),
                        "years": rng.gamma(2.0, 4.0, ROWS), "hours": rng.uniform(10, 50, ROWS)})
     raw = d / "raw.parquet"
@@ -60,9 +61,11 @@ def test_estimate_is_typed_and_frozen(release: dict[str, Path]) -> None:
     assert (site.family, pay.family, years.family, hours.family) == ("frequency", "mean", "frequency", "distribution")
     assert [f.value for f in site.frequencies] == ["a", "b", "c", "<missing>"]
     assert all(isinstance(f, FrequencyResult) for f in site.frequencies)
-    assert isinstance(pay.mean, MeanResult) and pay.mean.se > 0 and pay.distribution is None
+    assert isinstance(pay.mean, MeanResult) and pay.mean.se is not None and pay.mean.se > 0
+    assert pay.distribution is None
     assert isinstance(years.distribution, DistributionResult) and len(years.distribution.quantiles) == 2
-    assert hours.mean is not None and hours.mean.se is None and [r.low for r in hours.distribution.ranges] == [20.0]
+    assert hours.mean is not None and hours.mean.se is None and hours.distribution is not None
+    assert [r.low for r in hours.distribution.ranges] == [20.0]
     assert isinstance(res.crosstabs[0], CrossTabResult) and isinstance(res.grouped_means[0], GroupedMeanResult)
     with pytest.raises(dataclasses.FrozenInstanceError):
         res.rows = 1  # type: ignore[misc]
@@ -86,7 +89,8 @@ def test_to_dict_is_the_json_shape(release: dict[str, Path]) -> None:
     assert set(d["crosstabs"][0]) == {"rows", "columns", "rows_used", "cells", "row_shares", "consistent_method"}
     assert set(d["grouped_means"][0]["groups"][0]) >= {"group", "mean", "share"}
     # the typed fields and the dict agree, and the dict view reads like the dict
-    assert d["columns"]["pay"]["mean"]["estimate"] == res.columns["pay"].mean.estimate
+    pay_mean = res.columns["pay"].mean
+    assert pay_mean is not None and d["columns"]["pay"]["mean"]["estimate"] == pay_mean.estimate
     assert res["columns"] == d["columns"] and res.columns["pay"]["mean"] == d["columns"]["pay"]["mean"]
     assert _estimate(release) == res
 
@@ -111,6 +115,7 @@ def test_to_frame_has_one_row_per_statistic_with_its_estimand(release: dict[str,
     assert est[("hours", "range share", "20..30")].startswith("share of rows with hours in [20, 30) among all rows")
     row = f[(f["column"] == "pay") & (f["statistic"] == "mean")].iloc[0]
     m = res.columns["pay"].mean
+    assert m is not None
     assert (row["estimate"], row["se"], row["ci_low"], row["ci_high"]) == (m.estimate, m.se, m.ci_low, m.ci_high)
     assert f["estimate"].dtype == np.float64 and f["se"].dtype == np.float64
 
@@ -137,9 +142,11 @@ def test_validation_report_is_typed(release: dict[str, Path], tmp_path: Path) ->
     d = rep.to_dict()
     assert list(d) == ["extract", "manifest", "ok", "checks", "calibration"]
     assert d["checks"] == [{"check": c.name, "status": c.status, "detail": c.detail} for c in rep.checks]
-    assert rep.check("calibration").ok is True and rep.check("no such check") is None
+    check = rep.check("calibration")
+    assert check is not None and check.ok is True and rep.check("no such check") is None
     frame = rep.to_frame()
     assert list(frame.columns) == ["check", "status", "ok", "detail"] and len(frame) == len(rep.checks)
+    assert rep.calibration is not None
     cal = rep.calibration.to_frame()
     # 4 + 4 frequencies, 1 mean; years: 3 quantiles and 4 ranges; hours: the same, and its mean (no interval)
     assert cal.groupby("statistic").size().to_dict() == {"frequency": 8, "mean": 2, "quantile": 6, "range share": 8}

@@ -24,6 +24,7 @@ import json
 import math
 from itertools import combinations
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -33,7 +34,7 @@ import pyarrow.parquet as pq
 import pytest
 from scipy.stats import binom
 
-from conftest import keyed_words
+from conftest import keyed_words, mechanism_of
 from ldptransform import mechanisms as mech
 from ldptransform.errors import PolicyError
 from ldptransform.estimate import estimate
@@ -65,7 +66,7 @@ def test_sample_size_rule(eps: float, d: int, m: int) -> None:
     lp = parse_policy(policy, "test")
     assert lp.policy.reported_columns == m
     assert lp.report_rate == pytest.approx(m / d)
-    assert all(rc.mechanism.epsilon == pytest.approx(eps / m) for rc in lp.columns)
+    assert all(mechanism_of(rc).epsilon == pytest.approx(eps / m) for rc in lp.columns)
     assert lp.epsilon_total == pytest.approx(eps)
 
 
@@ -97,9 +98,9 @@ def test_resolution_under_sample() -> None:
     assert lp.policy.reported_columns == 2  # floor(5/2.5)
     by = lp.by_name
     for name in lp.policy.privatized_columns:
-        assert by[name].mechanism.epsilon == 2.5
-    assert by["pay"].mechanism.name == mech.choose_numeric(2.5, (-1.0, 1.0))[0].name
-    assert by["grade"].mechanism.name == mech.choose_categorical(2.5, ["a", "b", "c"])[0].name
+        assert mechanism_of(by[name]).epsilon == 2.5
+    assert mechanism_of(by["pay"]).name == mech.choose_numeric(2.5, (-1.0, 1.0))[0].name
+    assert mechanism_of(by["grade"]).name == mech.choose_categorical(2.5, ["a", "b", "c"])[0].name
     assert by["wave"].mechanism is None and by["staff_id"].mechanism is None
     assert lp.epsilon_total == pytest.approx(5.0) and lp.report_rate == pytest.approx(0.4)
     lp3 = parse_policy(mixed_policy(sample_columns=3), "test")
@@ -194,7 +195,7 @@ def reported(table: pa.Table, lp: LoadedPolicy) -> np.ndarray:
     output of a column must be empty or present together."""
     cols = []
     for name in lp.policy.privatized_columns:
-        outs = [f.name for f in lp.by_name[name].mechanism.output_fields(name)]
+        outs = [f.name for f in mechanism_of(lp.by_name[name]).output_fields(name)]
         valid = np.stack([np.asarray(pc.is_valid(table.column(o)).to_numpy(zero_copy_only=False)) for o in outs])
         assert (valid.all(axis=0) | ~valid.any(axis=0)).all(), f"{name}: outputs partly empty"
         cols.append(valid[0])
@@ -356,7 +357,7 @@ def numeric_data(n: int, d: int, seed: int) -> pd.DataFrame:
 
 
 def numeric_policy(names: list[str], eps_row: float, strategy: str) -> dict:
-    cols = {c: {"type": "numeric", "bounds": [-1, 1]} for c in names}
+    cols: dict[str, dict[str, Any]] = {c: {"type": "numeric", "bounds": [-1, 1]} for c in names}
     if strategy == "split":
         for c in cols.values():
             c["epsilon"] = eps_row / len(names)
@@ -386,7 +387,8 @@ def predicted_mse(x: np.ndarray, lp: LoadedPolicy) -> np.ndarray:
     n = x.shape[0]
     out = []
     for j, name in enumerate(lp.policy.privatized_columns):
-        m = lp.by_name[name].mechanism
+        m = mechanism_of(lp.by_name[name])
+        assert isinstance(m, mech.MeanMechanism)
         v = m.variance(x[:, j])
         if lp.strategy == "split":
             out.append(v.sum() / n ** 2)

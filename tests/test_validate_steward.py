@@ -42,8 +42,8 @@ def _assert_passes(rep: ValidationReport) -> CalibrationResult:
     assert status["calibration"] == "pass", rep.check("calibration")
     cal = rep.calibration
     assert cal is not None and cal.max_abs_z <= cal.z_limit and cal.statistics >= 1
-    judged = [e for e in cal.entries if e.score is not None]
-    assert max(e.score for e in judged) == pytest.approx(cal.max_abs_z)
+    scores = [e.score for e in cal.entries if e.score is not None]
+    assert max(scores) == pytest.approx(cal.max_abs_z)
     assert cal.inside == sum(bool(e.inside) for e in cal.entries)
     # the JSON shape is unchanged: the same seven figures
     assert set(cal.to_dict()) == {"statistics", "inside", "share_inside", "confidence", "max_abs_z",
@@ -135,7 +135,9 @@ def test_the_calibration_fails_on_a_release_of_other_data(raw: Path, tmp_path: P
     other_path = tmp_path / "other.parquet"
     other.to_parquet(other_path, index=False)
     rep = validate(out, raw=other_path, key=KEY)
-    assert rep.check("calibration").ok is False and rep.check("reproduced").ok is False and not rep.ok
+    calibration, reproduced = rep.check("calibration"), rep.check("reproduced")
+    assert calibration is not None and calibration.ok is False
+    assert reproduced is not None and reproduced.ok is False and not rep.ok
 
 
 def _planned_release(tmp_path: Path) -> tuple[Path, Path]:
