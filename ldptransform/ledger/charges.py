@@ -4,7 +4,7 @@ checked against the lifetime budget with what each subject has spent so far."""
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -21,7 +21,7 @@ class ChargePlan:
     max_overshoot: float
     within_mask: np.ndarray = field(repr=False)
 
-    def __iter__(self):  # unpacks as (over_count, max_overshoot, within_mask)
+    def __iter__(self) -> Iterator[Any]:  # unpacks as (over_count, max_overshoot, within_mask)
         return iter((self.over_count, self.max_overshoot, self.within_mask))
 
 
