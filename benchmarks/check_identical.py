@@ -8,7 +8,10 @@ baseline and the working tree (each in its own child process, with that tree fir
 sys.path) and compares the sha256 of every extract.  The cases cover Parquet and CSV in
 and out, input row groups and CSV blocks that do not line up with the batches, several
 output row groups, and batch sizes from 1 to larger than a row group; within each tree,
-every batch size of one input and output format must also give the same file.
+every batch size of one input and output format must also give the same file.  Every example
+policy in policies/ is also run on the demo survey (demo_data/, as CSV and as a Parquet copy with
+row groups that do not line up with the batches), to Parquet and CSV, at several batch sizes;
+a policy with a subject key records into a fresh ledger for each run.
 
 Exit status 0 if everything matches, 1 otherwise.
 """
@@ -18,14 +21,22 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import shutil
 import subprocess
 import sys
 import tempfile
 from pathlib import Path
 
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+
 HERE = Path(__file__).resolve().parent
 REPO = HERE.parent
 NONCE = "ffeeddccbbaa99887766554433221100"
+
+POLICIES = REPO / "policies"
+DEMO_CSV = REPO / "demo_data" / "staff_survey.csv"
+POLICY_BATCHES = [65536, 999, 7]
 
 # (input name, rows, input chunk rows, output format, batch sizes)
 CASES = [
@@ -49,18 +60,26 @@ from ldptransform.policy import load_policy
 from ldptransform.release import privatize
 lp, key = load_policy(work / "policy.yaml"), load_key(work / "release.key")
 out = {}
-for name, fmt, batch in cases:
-    dest = work / f"out-{Path(tree).name}-{name}-{batch}.{fmt}"
-    r = privatize(work / name, lp, key, dest, batch_rows=batch, overwrite=True, nonce=sys.argv[4],
+for name, fmt, batch, policy in cases:
+    dest = work / f"out-{Path(tree).name}-{Path(name).name}-{batch}.{fmt}"
+    ledger = work / f"ledger-{Path(tree).name}-{len(out)}.sqlite3"
+    pol = load_policy(policy) if policy else lp
+    r = privatize(work / name, pol, key, dest, batch_rows=batch, overwrite=True, nonce=sys.argv[4],
+                  ledger_path=ledger if pol.policy.subject_key else None,
                   diagnostics_path=work / "diagnostics.json", manifest_path=work / "manifest.json")
-    out[f"{name} -> {fmt}, batch {batch}"] = r.manifest.extract.sha256
+    label = f"{Path(policy).name}: " if policy else ""
+    out[f"{label}{Path(name).name} -> {fmt}, batch {batch}"] = r.manifest.extract.sha256
     dest.unlink()
 print(json.dumps(out))
 """
 
 
 def run_tree(tree: Path, work: Path) -> dict[str, str]:
-    cases = [(name, fmt, b) for name, _, _, fmt, batches in CASES for b in batches]
+    cases: list[tuple[str, str, int, str | None]] = [
+        (name, fmt, b, None) for name, _, _, fmt, batches in CASES for b in batches]
+    for policy in sorted(p for p in POLICIES.iterdir() if p.suffix in (".yaml", ".yml", ".json")):
+        for name in ("demo.csv", "demo.parquet"):
+            cases += [(name, fmt, b, str(policy)) for fmt in ("parquet", "csv") for b in POLICY_BATCHES]
     proc = subprocess.run([sys.executable, "-c", _CHILD, str(tree), str(work), json.dumps(cases), NONCE],
                           capture_output=True, text=True, cwd=work, env=dict(os.environ, LDPT_PRIVATE_DIR=str(work)))
     if proc.returncode != 0:
@@ -90,6 +109,8 @@ def main() -> int:
         for name, rows, chunk, _, _ in CASES:
             if not (work / name).exists():
                 synthetic.write_input(work / name, rows, chunk_rows=chunk)
+        shutil.copyfile(DEMO_CSV, work / "demo.csv")
+        pq.write_table(pacsv.read_csv(DEMO_CSV), work / "demo.parquet", row_group_size=5_003)
         before = run_tree(base, work)
         after = run_tree(REPO, work)
 
