@@ -258,3 +258,10 @@ def assert_user_error(res: subprocess.CompletedProcess, names: list[str], forbid
     for value in forbidden:
         assert value not in err and value not in res.stdout, f"the output echoes {value!r}:\n{err}"
     return text
+
+
+def pytest_collection_modifyitems(config: pytest.Config, items: list[pytest.Item]) -> None:
+    """Long studies (marked slow) first: the test workers start them at once and share the
+    rest of the suite while they run, so the longest test does not come last and stretch the
+    run.  Order within each group is kept (every test is independent of order)."""
+    items.sort(key=lambda item: item.get_closest_marker("slow") is None)
