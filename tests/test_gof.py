@@ -200,6 +200,10 @@ def test_results_are_typed_and_keep_the_dict_shape():
     verdict = f.result(0.01)
     assert [t["kind"] for t in verdict.to_dict()["tests"]] == ["ones-mean", "ones-histogram"]
     assert verdict.p_value == min(1.0, 2 * min(r.p_value for r in tests))
+    frame = verdict.to_frame()  # one row per test of the combined verdict
+    assert list(frame["kind"]) == ["ones-mean", "ones-histogram"]
+    assert list(frame["p_value"]) == [r.p_value for r in tests] and frame["tested"].all()
+    assert len(tests[0].to_frame()) == 1 and tests[0].to_frame().loc[0, "test"] == tests[0].test
     # hierarchy: every level's tests carry the level
     h = make("hierarchy", 1.0)
     levels = [r.extra["level"] for r in fit_of(h).add(release(h, data("hierarchy", 3000), "typed-h"))

@@ -143,6 +143,7 @@ from typing import Any
 from collections.abc import Callable, Iterator, Mapping
 
 import numpy as np
+import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
@@ -219,6 +220,14 @@ class FitResult(DictAccess):
 
     def with_extra(self, **extra: Any) -> FitResult:
         return replace(self, extra={**self.extra, **extra})
+
+    def to_frame(self) -> pd.DataFrame:
+        """One row per test (this result's own ``tests`` if it combines several, else itself):
+        test, kind, statistic, df, p_value, alpha, passed, tested, rows, impossible, detail."""
+        cols = ["test", "kind", "statistic", "df", "p_value", "alpha", "passed", "tested", "rows", "impossible",
+                "detail"]
+        rows = [{c: getattr(t, c) for c in cols} for t in (self.tests if self.tests is not None else (self,))]
+        return pd.DataFrame(rows, columns=cols)
 
     def __iter__(self) -> Iterator[str]:
         return iter(self.to_dict())
