@@ -34,7 +34,8 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 from ldptransform.distribution import binned_distribution, frequency_covariance  # noqa: E402
-from ldptransform.keys import KeyedStream, SecretKey  # noqa: E402
+from ldptransform.keys import SecretKey  # noqa: E402
+from ldptransform.random import KeyedStream  # noqa: E402
 from ldptransform.mechanisms import GRR, OUE, Hierarchy, SquareWave, default_distribution  # noqa: E402
 
 KEY = SecretKey(bytes(range(64, 96)))  # a fixed benchmark key: the figures are reproducible

@@ -3,10 +3,8 @@
 The keyed pseudorandom function that is the only source of release noise lives in
 ``ldptransform.random`` (``bits.KeyedStream``: AES-256 in counter mode under a sub-key derived
 here, HMAC-SHA256 of the secret key, the release nonce, the column name and a purpose label;
-``bits.SubjectPRF`` for memoized columns; ``variates`` for what is made of the words).  The
-names ``KeyedStream``, ``SubjectPRF``, ``PRF_VERSION``, ``MEMO_PRF_VERSION``, ``to_unit``,
-``unit_below`` and ``to_below`` are re-exported here for the modules that import them from
-their old home.
+``bits.SubjectPRF`` for memoized columns; ``variates`` for what is made of the words); this
+module holds nothing but keys, fingerprints, sub-keys and nonces.
 
 Keys are 32 bytes from the operating system's CSPRNG, stored as one line of hex
 under a header line, in a file created with mode 0600.  The manifest carries only a
@@ -23,10 +21,6 @@ import stat
 from pathlib import Path
 
 from .errors import KeyFileError, UsageError
-
-# the keyed streams and the variates live in ldptransform.random; their old home re-exports them
-from .random.bits import MEMO_PRF_VERSION, PRF_VERSION, KeyedStream, SubjectPRF  # noqa: F401
-from .random.variates import to_below, to_unit, unit_below  # noqa: F401
 
 KEY_HEADER = "ldptransform secret key v1"
 KEY_BYTES = 32

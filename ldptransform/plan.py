@@ -111,8 +111,10 @@ _PLAN_KEY = bytes(range(32))  # public: planning simulates noise on invented, ev
 def simulated_median_se(m: mech.Mechanism, rc: ResolvedColumn, rows: float) -> float | None:
     """SE of the median estimate at ``rows`` rows, by simulation (see module docstring)."""
     from .distribution import binned_distribution
-    from .estimate import CategoricalStats, DistributionStats
-    from .keys import KeyedStream, SecretKey, to_unit
+    from .keys import SecretKey
+    from .mechanisms.decoders import DistributionDecoder, FrequencyDecoder
+    from .random import KeyedStream
+    from .random.variates import to_unit
 
     if rows < 2:
         return None
@@ -137,15 +139,12 @@ def simulated_median_se(m: mech.Mechanism, rc: ResolvedColumn, rows: float) -> f
         if rc.type == "binned":
             edges = np.asarray(cfg.bins, dtype=float)
             codes = np.clip(np.searchsorted(edges, x, side="right") - 1, 0, len(edges) - 2)
-            cst = CategoricalStats(cast(mech.FrequencyOracle, m), joint=True)
-            cst.add(m.randomize(codes, words))
+            cst = cast(FrequencyDecoder, m.decoder(joint=True)).add(m.randomize(codes, words))
             cov = cst.covariance()
             prefix_se = np.sqrt(np.maximum(np.diag(np.cumsum(np.cumsum(cov, axis=0), axis=1)), 0.0))
             dist = binned_distribution(edges, np.asarray(cst.estimates()[0]), prefix_se, cov=cov, n=cst.n)
         else:
-            dst = DistributionStats(cast(mech.DistributionMechanism, m))
-            dst.add(m.randomize(x, words))
-            dist = dst.distribution()
+            dist = cast(DistributionDecoder, m.decoder()).add(m.randomize(x, words)).distribution()
         meds.append(dist.quantile(0.5))
     meds_a = np.asarray(meds, dtype=float)
     bias = float(meds_a.mean() - true_median)

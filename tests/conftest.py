@@ -220,7 +220,7 @@ def survey(tmp_path: Path, key_file: Path) -> dict[str, Path]:
 def realized_channel(randomize_index, xs: np.ndarray, M: int) -> np.ndarray:
     """P(output j | grid input i) as a sampler actually realizes it, found by bisection over
     the PRF word that drives its second stage: for every (grid input x_i, output j) the
-    smallest 53-bit word prefix whose output index is >= j.  It assumes (as keys.to_unit
+    smallest 53-bit word prefix whose output index is >= j.  It assumes (as random.variates.to_unit
     does) that the sampler reads at most the top 53 bits of each word, and that ``xs`` are
     exact grid points so the first (rounding) stage lands on row i with certainty."""
     import numpy as np

@@ -26,7 +26,8 @@ from scipy import stats
 
 from conftest import FIXED_KEY_BYTES, FIXED_NONCE
 from ldptransform.errors import PolicyError
-from ldptransform.keys import KeyedStream, SecretKey
+from ldptransform.keys import SecretKey
+from ldptransform.random import KeyedStream
 from ldptransform.mechanisms.base import build
 from ldptransform.mechanisms.discrete_laplace import DiscreteLaplace
 from ldptransform.random.variates import RowDraws as _RowDraws

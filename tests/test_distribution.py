@@ -26,7 +26,8 @@ from scipy import stats
 
 from ldptransform.distribution import Distribution, Interval, binned_distribution, frequency_covariance
 from ldptransform.errors import PolicyError
-from ldptransform.keys import KeyedStream, SecretKey
+from ldptransform.keys import SecretKey
+from ldptransform.random import KeyedStream
 from ldptransform.mechanisms import (
     CATEGORICAL,
     DEFAULT_DISTRIBUTION,

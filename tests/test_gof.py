@@ -26,7 +26,8 @@ from scipy import stats
 from conftest import keyed_words
 from ldptransform import gof
 from ldptransform.gof import FitResult, FitStats
-from ldptransform.keys import KeyedStream, SecretKey
+from ldptransform.keys import SecretKey
+from ldptransform.random import KeyedStream
 from ldptransform.mechanisms import (
     GRR,
     OLH,

@@ -171,7 +171,7 @@ def test_channels_refuse_large_alphabets():
 
 def _branch_threshold(m, x: int, in_branch) -> float:
     """Realized P(first branch) of the word-0 coin for input x, by bisection over the 53-bit
-    prefix of word 0 (the coin is an integer comparison, ``keys.unit_below``)."""
+    prefix of word 0 (the coin is an integer comparison, ``random.variates.unit_below``)."""
     lo, hi = 0, 1 << 53
     w = np.zeros((1, m.words_per_row), dtype=np.uint64)
     while lo < hi:

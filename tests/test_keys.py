@@ -13,8 +13,9 @@ import pytest
 from cryptography.hazmat.primitives.ciphers import Cipher, algorithms, modes
 
 from ldptransform.errors import KeyFileError, UsageError
-from ldptransform.keys import (KEY_HEADER, KeyedStream, SecretKey, check_nonce, load_key, new_key_file, to_below,
-                               to_unit)
+from ldptransform.keys import KEY_HEADER, SecretKey, check_nonce, load_key, new_key_file
+from ldptransform.random import KeyedStream
+from ldptransform.random.variates import to_below, to_unit
 
 KEY = SecretKey(bytes(range(32)))
 NONCE = "00112233445566778899aabbccddeeff"

@@ -1,6 +1,6 @@
 """Statistical and structural tests of every registered local randomizer.
 
-Everything random here is driven by the keyed PRF (``keys.KeyedStream``) under a FIXED
+Everything random here is driven by the keyed PRF (``random.KeyedStream``) under a FIXED
 test key and nonce, so every Monte Carlo check is deterministic: it passes or fails the
 same way on every run.  numpy's generator is used only to make synthetic input data
 (fixed seeds).  Tolerances are stated next to each check; every Monte Carlo check also
@@ -22,7 +22,8 @@ from conftest import keyed_words, realized_channel
 from scipy import stats
 
 from ldptransform.errors import PolicyError
-from ldptransform.keys import KeyedStream, SecretKey
+from ldptransform.keys import SecretKey
+from ldptransform.random import KeyedStream
 from ldptransform.mechanisms import (
     CATEGORICAL,
     DISTRIBUTION,

@@ -27,7 +27,8 @@ from cryptography.hazmat.primitives.ciphers import Cipher, algorithms, modes
 from scipy import stats
 
 from conftest import assert_user_error, listing, partials, write_fixed_key, write_policy
-from ldptransform.keys import SecretKey, SubjectPRF
+from ldptransform.keys import SecretKey
+from ldptransform.random import SubjectPRF
 from ldptransform.policy import parse_policy
 from ldptransform.release import privatize
 

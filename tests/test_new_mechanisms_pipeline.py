@@ -31,7 +31,8 @@ import ldptransform.release.kernel as release_mod
 from conftest import assert_user_error, listing, partials, write_fixed_key
 from ldptransform import mechanisms as mech
 from ldptransform.estimate import estimate
-from ldptransform.keys import KeyedStream, SecretKey
+from ldptransform.keys import SecretKey
+from ldptransform.random import KeyedStream
 from ldptransform.policy import load_policy
 from ldptransform.release import DEFAULT_BATCH_ROWS, privatize
 from ldptransform.validate import validate

@@ -18,7 +18,8 @@ from conftest import FIXED_KEY_BYTES, keyed_words, mechanism_of, write_fixed_key
 
 from ldptransform import estimate, load_key, parse_policy, privatize
 from ldptransform.estimate import CategoricalStats, NumericStats
-from ldptransform.keys import KeyedStream, SecretKey
+from ldptransform.keys import SecretKey
+from ldptransform.random import KeyedStream
 from ldptransform.mechanisms import (
     GRR,
     OUE,
@@ -322,7 +323,7 @@ def test_memoized_mean_adds_the_grid_rounding_and_stays_an_upper_bound():
     (where the rounding variance is step^2/4), rounded with offsets from the keyed stream and
     randomized by two-point: the measured SD is within 10% of sqrt((Var_mech(x) + step^2/4) / n),
     which is itself within the plan's worst case."""
-    from ldptransform.keys import to_unit
+    from ldptransform.random.variates import to_unit
     from ldptransform.plan import memo_rounding_variance
 
     pol = parse_policy({"budget": {"epsilon_per_row": 1.0}, "subject_key": "id",

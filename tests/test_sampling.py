@@ -38,7 +38,8 @@ from conftest import keyed_words, mechanism_of
 from ldptransform import mechanisms as mech
 from ldptransform.errors import PolicyError
 from ldptransform.estimate import estimate
-from ldptransform.keys import KeyedStream, SecretKey
+from ldptransform.keys import SecretKey
+from ldptransform.random import KeyedStream
 from ldptransform.manifest import load_manifest
 from ldptransform.policy import LoadedPolicy, parse_policy, sample_size
 from ldptransform.release import blank_unreported, privatize
