@@ -216,7 +216,7 @@ def _arrow_schema(meta: Any) -> pa.Schema:
     fields = []
     for name in meta.columns:
         dt = meta[name].dtype
-        if dt == object:
+        if dt == np.dtype(object):
             t: pa.DataType = pa.string()
         else:
             t = pa.Schema.from_pandas(meta[[name]], preserve_index=False).field(0).type

@@ -19,6 +19,7 @@ import os
 import secrets
 import stat
 from pathlib import Path
+from typing import NoReturn
 
 from .errors import KeyFileError, UsageError
 
@@ -42,7 +43,7 @@ class SecretKey:
 
     __str__ = __repr__
 
-    def __reduce__(self):  # keys must not travel by pickle by accident
+    def __reduce__(self) -> NoReturn:  # keys must not travel by pickle by accident
         raise TypeError("SecretKey cannot be pickled")
 
     @classmethod

@@ -40,8 +40,12 @@ bound on the worst case over data sets, not on the variance at every data set.
 from __future__ import annotations
 
 import math
+from typing import TYPE_CHECKING
 
 import numpy as np
+
+if TYPE_CHECKING:
+    from .base import Mechanism
 
 
 def subset_total_variance(epsilon: float, k: int, m: np.ndarray | int) -> np.ndarray:
@@ -79,7 +83,7 @@ def mean_lower_bound(epsilon: float, bounds: tuple[float, float]) -> float:
     return (hi - lo) ** 2 * E / (E - 1.0) ** 2
 
 
-def efficiency(mechanism) -> float | None:
+def efficiency(mechanism: Mechanism) -> float | None:
     """bound / the mechanism's own variance (1 = as good as possible), for frequency oracles
     (total variance) and mean mechanisms (worst-case variance); None for others
     (``Mechanism.efficiency``)."""

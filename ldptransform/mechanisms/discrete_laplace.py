@@ -55,7 +55,7 @@ from __future__ import annotations
 
 import math
 from fractions import Fraction
-from typing import Any, ClassVar
+from typing import Any, ClassVar, overload
 
 import numpy as np
 import pyarrow as pa
@@ -152,6 +152,14 @@ class DiscreteLaplace(MeanMechanism):
         """a = exp(-eps/G), the geometric ratio of the noise pmf (analysis only)."""
         return math.exp(-self.noise_rate)
 
+    @overload
+    def pmf(self, z: int) -> float:
+        ...
+
+    @overload
+    def pmf(self, z: np.ndarray) -> np.ndarray:
+        ...
+
     def pmf(self, z: np.ndarray | int) -> np.ndarray | float:
         """Exact target P(Z = z) = (1-a)/(1+a) * a^|z| (evaluated in float64; (1-a)/(1+a) is
         computed as tanh(eps/(2G)) to keep precision for small eps/G)."""
@@ -159,7 +167,7 @@ class DiscreteLaplace(MeanMechanism):
         out = math.tanh(x / 2) * np.exp(-np.abs(np.asarray(z, dtype=float)) * x)
         return out if np.ndim(z) else float(out)
 
-    def report_pmf(self, y: np.ndarray, i: np.ndarray) -> np.ndarray:
+    def report_pmf(self, y: np.ndarray, i: np.ndarray | int) -> np.ndarray:
         """Exact channel from grid index i (0..G) to report y (integer grid units): pmf(y - i)."""
         return np.asarray(self.pmf(np.asarray(y) - np.asarray(i)))
 

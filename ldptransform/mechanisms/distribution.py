@@ -366,7 +366,8 @@ class HierarchyParams(BaseModel):
                                                  "(default 64)")
 
 
-def _level_oracle(epsilon: float, k: int, name: str | None = None, hash_range: int | None = None):
+# GRR or OLH (Any: the levels' callers choose what to call by the oracle's name, which mypy cannot narrow)
+def _level_oracle(epsilon: float, k: int, name: str | None = None, hash_range: int | None = None) -> Any:
     cats = [str(v) for v in range(k)]
     if name is None:
         grr, olh = GRR(epsilon, cats), OLH(epsilon, cats)

@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import itertools
 import math
+from collections.abc import Iterator
 from typing import Annotated, Any, ClassVar
 
 import numpy as np
@@ -183,7 +184,7 @@ class SubsetSelection(FrequencyOracle):
         return [bits_to_strings(self.randomize_bits(x, words))]
 
     # decoding --------------------------------------------------------------------------------
-    def _chunks(self, arrays: list[pa.Array]):
+    def _chunks(self, arrays: list[pa.Array]) -> Iterator[tuple[int, np.ndarray, np.ndarray]]:
         """Yield (start, bits, bad) over row chunks of at most 2^22 characters.  A row is bad
         if it is not a string of k '0'/'1' characters or has a number of '1's other than m."""
         arr = arrays[0]

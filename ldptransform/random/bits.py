@@ -82,7 +82,7 @@ class KeyedStream:
         enc.update_into(_zeros(nbytes), out.view(np.uint8).data)
         return out[: nbytes // 8].reshape(n_rows, 2 * blocks)[:, :per_row]
 
-    def words_at(self, rows: np.ndarray, draws: np.ndarray) -> np.ndarray:
+    def words_at(self, rows: np.ndarray, draws: np.ndarray | int) -> np.ndarray:
         """One uint64 word for each (global row index, draw index) pair, for samplers that
         need an unbounded number of words per row (rejection loops).
 
