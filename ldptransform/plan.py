@@ -32,7 +32,7 @@ the same spread term; means: the two-point bound, which two-point attains exactl
 from __future__ import annotations
 
 import math
-from collections.abc import Iterator, Mapping
+from collections.abc import Mapping
 from dataclasses import dataclass, field, fields
 from typing import TYPE_CHECKING, Any, cast
 
@@ -41,6 +41,7 @@ import numpy as np
 from . import mechanisms as mech
 from .errors import UsageError
 from .mechanisms import bounds
+from .results import DictView
 from .policy import (
     CategoricalColumn,
     LoadedPolicy,
@@ -155,24 +156,8 @@ def simulated_median_se(m: mech.Mechanism, rc: ResolvedColumn, rows: float) -> f
 
 # -- typed results ----------------------------------------------------------------------------
 
-class _DictView(Mapping):
-    """Read-only mapping access to ``to_dict()`` (for code written against the dict results)."""
-
-    def to_dict(self) -> dict[str, Any]:  # pragma: no cover - every subclass defines it
-        raise NotImplementedError
-
-    def __getitem__(self, key: str) -> Any:
-        return self.to_dict()[key]
-
-    def __iter__(self) -> Iterator[str]:
-        return iter(self.to_dict())
-
-    def __len__(self) -> int:
-        return len(self.to_dict())
-
-
 @dataclass(frozen=True)
-class PlanStatistic(_DictView):
+class PlanStatistic(DictView):
     """The prediction for one statistic of one column.  Every field the statistic has is set;
     ``keys`` lists them in the JSON order of ``to_dict()`` (a field not in ``keys`` is absent,
     which is not the same as a field present with the value None)."""
@@ -205,7 +190,7 @@ class PlanStatistic(_DictView):
 
 
 @dataclass(frozen=True)
-class PlanColumn(_DictView):
+class PlanColumn(DictView):
     """One column of a plan: a privatized column with its statistics, or a public column (a note)."""
 
     name: str
@@ -231,7 +216,7 @@ PLAN_FRAME_COLUMNS = ("column", "type", "mechanism", "epsilon", "rows_reporting"
 
 
 @dataclass(frozen=True)
-class PlanResult(_DictView):
+class PlanResult(DictView):
     """What ``plan`` predicts for a policy at ``rows`` table rows."""
 
     rows: int

@@ -27,6 +27,7 @@ if TYPE_CHECKING:  # pragma: no cover
     from .distribution import Distribution
 
 __all__ = [
+    "DictView",
     "FRAME_COLUMNS",
     "CalibrationEntry",
     "CalibrationResult",
@@ -49,8 +50,9 @@ FRAME_COLUMNS = ("column", "type", "mechanism", "epsilon", "statistic", "value",
                  "ci_high", "consistent", "estimand")
 
 
-class _DictView(Mapping):
-    """Read-only mapping access to ``to_dict()`` (for code written against the dict results)."""
+class DictView(Mapping):
+    """Read-only mapping access to ``to_dict()`` (for code written against the dict results):
+    the base of every result object that reads as a mapping (estimate, validate, plan, fit tests)."""
 
     def to_dict(self) -> dict[str, Any]:  # pragma: no cover - every subclass defines it
         raise NotImplementedError
@@ -314,7 +316,7 @@ class GroupedMeanResult(_Subscript):
 
 
 @dataclass(frozen=True, eq=False)
-class EstimateResult(_DictView):
+class EstimateResult(DictView):
     """What ``estimate`` returns: per-column results, the requested joint analyses, notes."""
 
     rows: int
@@ -397,7 +399,7 @@ class CalibrationEntry:
 
 
 @dataclass(frozen=True, eq=False)
-class CalibrationResult(_DictView):
+class CalibrationResult(DictView):
     statistics: int
     inside: int
     share_inside: float
@@ -423,7 +425,7 @@ class CalibrationResult(_DictView):
 
 
 @dataclass(frozen=True, eq=False)
-class ValidationReport(_DictView):
+class ValidationReport(DictView):
     """What ``validate`` returns: the checks in order, and the calibration figures (with the raw
     data and the key)."""
 

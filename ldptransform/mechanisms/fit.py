@@ -147,6 +147,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from ..results import DictView
 from .base import Mechanism
 
 MIN_EXPECTED = 5.0          # smallest expected count of a pooled cell (Cochran 1954's rule of thumb)
@@ -160,31 +161,8 @@ SUPPORT_CHUNK = 1 << 22     # support sizes, ones counts: at most this many entr
 # typed results
 # ----------------------------------------------------------------------------------------------
 
-class DictAccess:
-    """Read access by key to a typed result's ``to_dict()`` (``r["p_value"]``, ``r.get("tested")``),
-    for callers written against the dict results; new code reads the attributes."""
-
-    def to_dict(self) -> dict[str, Any]:
-        raise NotImplementedError
-
-    def __getitem__(self, key: str) -> Any:
-        return self.to_dict()[key]
-
-    def get(self, key: str, default: Any = None) -> Any:
-        return self.to_dict().get(key, default)
-
-    def __contains__(self, key: object) -> bool:
-        return key in self.to_dict()
-
-    def keys(self) -> Any:
-        return self.to_dict().keys()
-
-    def items(self) -> Any:
-        return self.to_dict().items()
-
-
 @dataclass(frozen=True, eq=True)
-class FitResult(DictAccess):
+class FitResult(DictView):
     """One goodness-of-fit test of one column (or, from ``FitStats.result``, the column's combined
     verdict with every test under ``tests``).  ``extra`` holds the test's own figures (observed,
     expected, cells, fit_gap, level; tested = False for a test that was not run)."""
