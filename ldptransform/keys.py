@@ -31,12 +31,19 @@ NONCE_BYTES = 16
 class SecretKey:
     """32 bytes of secret key material.  Never printed, logged or serialized."""
 
-    __slots__ = ("_raw",)
+    __slots__ = ("_path", "_raw")
 
-    def __init__(self, raw: bytes) -> None:
+    def __init__(self, raw: bytes, *, path: Path | None = None) -> None:
         if len(raw) != KEY_BYTES:
             raise KeyFileError(f"a secret key must be {KEY_BYTES} bytes, got {len(raw)}")
         self._raw = bytes(raw)
+        self._path = path
+
+    @property
+    def path(self) -> Path | None:
+        """The key file this key was read from (None for a key made in memory): no output of any
+        command may ever be written there."""
+        return self._path
 
     def __repr__(self) -> str:
         return "SecretKey(<redacted>)"
@@ -137,7 +144,7 @@ def load_key(path: Path) -> SecretKey:
     if len(raw) != KEY_BYTES:
         raise KeyFileError(f"key file {path} is malformed: its second line must be {2 * KEY_BYTES} hex "
                            "characters. Use a file made by `ldpt key new`.")
-    return SecretKey(raw)
+    return SecretKey(raw, path=path)
 
 
 def new_nonce() -> str:

@@ -492,6 +492,29 @@ def test_manifest_exists_without_overwrite(release: Release, ldpt) -> None:
         assert sha256(p) == h
 
 
+@pytest.mark.parametrize("option,target", [
+    ("manifest", "key"), ("manifest", "csv"), ("manifest", "policy"),
+    ("diagnostics", "key"), ("diagnostics", "csv"), ("diagnostics", "policy"), ("diagnostics", "out-file"),
+    ("diagnostics", "key-link"),
+])
+def test_no_output_replaces_a_source_or_secret_even_with_overwrite(option: str, target: str, release: Release,
+                                                                     ldpt, key_hex: str) -> None:
+    """--manifest or --diagnostics pointed at the key file, the raw input, the policy or the extract
+    (also through a symlink) is refused with exit 2 even with --overwrite, and nothing changes."""
+    if target == "key-link":
+        link = release.dir / "innocent.json"
+        link.symlink_to(release.key)
+        path = link
+    elif target == "out-file":
+        path = release.out
+    else:
+        path = {"key": release.key, "csv": release.csv, "policy": release.policy}[target]
+    before = listing(release.dir)
+    res = ldpt(*release.args(None, **{option: path, "overwrite": True}))
+    assert_user_error(res, [path.name, "destroy"], forbidden=[key_hex, key_hex[:16]])
+    release.assert_nothing_written(before)
+
+
 def test_output_folder_missing(release: Release, ldpt) -> None:
     release.out = release.dir / "for-partner" / "extract.parquet"
     before = listing(release.dir)

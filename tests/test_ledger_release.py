@@ -280,6 +280,15 @@ def test_cli_ledger_options(tmp_path: Path, ldpt, private_dir: Path) -> None:
     assert man["rows"] == 47
     r = ldpt("ledger", "verify", "--ledger", led)
     assert r.returncode == 0 and "2 release(s)" in r.stdout
+    # no output may replace the ledger, whatever --overwrite says (nor through a symlink to it)
+    led_bytes = led.read_bytes()
+    (tmp_path / "link.json").symlink_to(led)
+    for option, target in (("--manifest", led), ("--diagnostics", led), ("--manifest", tmp_path / "link.json")):
+        r = ldpt("privatize", raw, "--policy", capped, "--key", key, "--out", tmp_path / "c.parquet", "--ledger",
+                 led, option, target, "--overwrite", "--allow-partial")
+        assert r.returncode == 2 and "ledger" in r.stderr and "destroy" in r.stderr, r.stderr
+        assert "Traceback" not in r.stderr and not (tmp_path / "c.parquet").exists()
+        assert led.read_bytes() == led_bytes
 
 
 def test_strategy_sample_charges_the_row_total_and_tracks_reported_values(tmp_path: Path) -> None:

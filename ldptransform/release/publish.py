@@ -10,7 +10,7 @@ from pathlib import Path
 from typing import Any
 
 from .._version import __version__
-from ..errors import OutputError
+from ..errors import OutputError, UsageError
 from ..io import StagedFiles, check_dataset_destination, check_destination, private_dir
 from ..keys import SecretKey
 from ..ledger import LedgerCharges
@@ -37,6 +37,36 @@ def check_destinations(opts: ReleaseOptions) -> Path:
         path = private_dir() / f"{opts.out.stem}.{opts.nonce[:12]}.{secrets.token_hex(4)}.PRIVATE-diagnostics.json"
     check_destination(path, "diagnostics file", opts.overwrite)
     return path
+
+
+def _same_file(a: Path, b: Path) -> bool:
+    """Whether two paths name the same file once symlinks and relative parts are resolved."""
+    try:
+        return a.resolve() == b.resolve() or (a.exists() and b.exists() and os.path.samefile(a, b))
+    except OSError:
+        return False
+
+
+def check_paths_apart(opts: ReleaseOptions, policy: LoadedPolicy, key: SecretKey, diag_path: Path) -> None:
+    """Refuse, whatever ``overwrite`` says, an output (extract, manifest, diagnostics) that is the
+    input, the policy, the key file, the ledger or another of the outputs: the steward's secrets
+    and sources are never replaced.  Paths are compared after resolving symlinks."""
+    outputs = [("output", opts.out), ("manifest", opts.manifest_path), ("diagnostics file", diag_path)]
+    sources: list[tuple[str, Path | None]] = [
+        ("input", opts.input if isinstance(opts.input, Path) else None),
+        ("policy file", Path(policy.source) if Path(policy.source).is_file() else None),
+        ("key file", key.path), ("ledger", opts.ledger_path)]
+    for i, (role, path) in enumerate(outputs):
+        for other_role, other in sources + outputs[i + 1:]:
+            if other is not None and _same_file(path, other):
+                raise UsageError(
+                    f"the {role} {path} is the {other_role} {other}: writing it would destroy that file. Give the "
+                    f"{role} a path of its own; no option (not even overwrite) lets a release replace its input, "
+                    "policy, key file, ledger or another of its outputs.")
+        src_dir = sources[0][1]
+        if src_dir is not None and src_dir.is_dir() and path.resolve().is_relative_to(src_dir.resolve()):
+            raise UsageError(f"the {role} {path} is inside the input folder {src_dir}: it would change the input "
+                             "dataset. Write it outside that folder.")
 
 
 def privacy_entry(policy: LoadedPolicy, plans: list[ColumnPlan]) -> Privacy:

@@ -29,6 +29,7 @@ from .parts import PartJob, write_extract
 from .publish import (
     build_manifest,
     check_destinations,
+    check_paths_apart,
     diagnostics,
     move_into_place,
     stage_text,
@@ -83,6 +84,7 @@ def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey
     src = open_source(opts, policy)
     check_not_the_input(opts)
     diag_path = check_destinations(opts)
+    check_paths_apart(opts, policy, key, diag_path)
     plans = plan_columns(policy, src.column_names, source_location(src, opts))
     check_csv_markers(policy, src, plans)
     schema = output_schema(plans, src.schema, src.format)

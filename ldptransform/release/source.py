@@ -35,8 +35,11 @@ def check_not_the_input(opts: ReleaseOptions) -> None:
             same = opts.out.exists() and opts.out.resolve() == opts.input.resolve()
         except OSError:
             same = False
-        if same or opts.manifest_path.resolve() == opts.input.resolve():
+        if same:
             raise UsageError(f"output {opts.out} is the input; write the extract to another path.")
+        if opts.manifest_path.resolve() == opts.input.resolve():
+            raise UsageError(f"the manifest {opts.manifest_path} is the input {opts.input}: writing it would destroy "
+                             "the input. Give the manifest a path of its own.")
     if opts.manifest_path.resolve() == opts.out.resolve():
         raise UsageError("the manifest path and the output path are the same; give different paths.")
 
