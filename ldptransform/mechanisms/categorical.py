@@ -29,11 +29,10 @@ from .fit import (
     FitResult,
     FitStats,
     HullFit,
-    _impossible_result,
     _norm_two_sided,
     _pearson_result,
     _result,
-    _too_few,
+    unusable_results,
 )
 
 MAX_CATEGORIES = 1 << 20
@@ -568,13 +567,11 @@ class OnesCountFit(FitStats):
                      f"{m.name} at eps {m.epsilon:g} with k = {k} implies for every input")
         ref_mean = "standard normal, two-sided (exact null variance)"
         ref_hist = "chi-square, df = pooled cells - 1 (simple null)"
-        if bad:
-            return [_impossible_result(mean_name, "ones-mean", None, ref_mean, alpha, n, bad),
-                    _impossible_result(hist_name, "ones-histogram", None, ref_hist, alpha, n, bad)]
         good = n - bad
-        if good < 2:
-            return [_too_few(mean_name, "ones-mean", ref_mean, alpha, n, "fewer than 2 reports"),
-                    _too_few(hist_name, "ones-histogram", ref_hist, alpha, n, "fewer than 2 reports")]
+        unusable = unusable_results([(mean_name, "ones-mean", ref_mean), (hist_name, "ones-histogram", ref_hist)],
+                                    alpha, n, bad, good)
+        if unusable is not None:
+            return unusable
         h = self.stats["hist"].astype(float)
         t = np.arange(k + 1)
         mu, var = p + (k - 1) * q, p * (1 - p) + (k - 1) * q * (1 - q)
@@ -646,14 +643,12 @@ class SupportSizeFit(FitStats):
                        f"range {m.g} at eps {m.epsilon:g}")
         ref_mean = "standard normal, two-sided (variance estimated from the reports; asymptotic)"
         ref_b = "chi-square, df = pooled cells - 1 (simple null)"
-        if bad:
-            return [_impossible_result(mean_name, "support-mean", None, ref_mean, alpha, n, bad),
-                    _impossible_result(bucket_name, "bucket-histogram", None, ref_b, alpha, n, bad)]
         h = self.stats["sizes"].astype(float)
         good = int(h.sum())
-        if good < 2:
-            return [_too_few(mean_name, "support-mean", ref_mean, alpha, n, "fewer than 2 reports"),
-                    _too_few(bucket_name, "bucket-histogram", ref_b, alpha, n, "fewer than 2 reports")]
+        unusable = unusable_results([(mean_name, "support-mean", ref_mean), (bucket_name, "bucket-histogram", ref_b)],
+                                    alpha, n, bad, good)
+        if unusable is not None:
+            return unusable
         t = np.arange(k + 1, dtype=float)
         mean = float((h * t).sum() / good)
         var = float((h * (t - mean) ** 2).sum() / (good - 1))

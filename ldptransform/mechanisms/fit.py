@@ -276,6 +276,18 @@ def _too_few(test: str, kind: str, reference: str, alpha: float, rows: int, why:
     return _result(test, kind, 0.0, 0, reference, 1.0, alpha, rows, 0, f"not tested: {why}", tested=False)
 
 
+def unusable_results(tests: list[tuple[str, str, str]], alpha: float, rows: int, impossible: int,
+                     good: int) -> list[FitResult] | None:
+    """The results of several tests (name, kind, reference) when the reports cannot be tested:
+    failed outright if any report is impossible, not tested with fewer than 2 usable reports;
+    None when the tests can run."""
+    if impossible:
+        return [_impossible_result(name, kind, None, ref, alpha, rows, impossible) for name, kind, ref in tests]
+    if good < 2:
+        return [_too_few(name, kind, ref, alpha, rows, "fewer than 2 reports") for name, kind, ref in tests]
+    return None
+
+
 def pearson_test(counts: np.ndarray, probs: np.ndarray, min_expected: float = MIN_EXPECTED
                  ) -> tuple[float, int, int]:
     """Pearson's chi-square of ``counts`` (cells in a meaningful order) against the exact cell
