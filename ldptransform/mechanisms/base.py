@@ -54,6 +54,7 @@ from collections.abc import Mapping, Sequence
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 from pydantic import BaseModel, ConfigDict, ValidationError
 
 from ..errors import PolicyError
@@ -308,6 +309,36 @@ class Mechanism(ABC):
         possible); None where no bound applies."""
         return None
 
+    # -- empirical audit (audit.py) --------------------------------------------------
+    def audit_pairs(self) -> list[tuple[Any, Any]]:
+        """Worst-case pairs of inputs for the empirical audit (``ldpt audit``): encoded inputs as
+        ``randomize`` receives them (a category code, or a value in column units), two whose
+        report distributions differ most.  Default: the codes 0 and 1 (for a mechanism that treats
+        its categories alike, every pair of distinct categories is a worst case); the mean and
+        distribution bases give the two bounds; a mechanism with an uneven channel picks its pairs
+        from it (``worst_channel_pairs``)."""
+        return [(0, 1)]
+
+    def audit_ordered(self) -> bool:
+        """True when the keys of ``audit_outcomes`` are numbers whose order means something, so that
+        the audit also tries intervals of them as events.  Default: the report is one numeric field."""
+        fields = self.output_fields("x")
+        return len(fields) == 1 and (pa.types.is_integer(fields[0].type) or pa.types.is_floating(fields[0].type))
+
+    def audit_outcomes(self, arrays: list[pa.Array], pair: tuple[Any, Any]) -> np.ndarray:
+        """One outcome key per report row, for the audit of the input pair ``pair``: the audit's
+        events are sets of keys, so the keys must keep what tells the two inputs apart (rows that
+        did not report are removed before).  Numbers (float64) when ``audit_ordered``, else text.
+        Default: the reported number itself, or the report's fields joined as text (each distinct
+        report is an outcome: right for a small output alphabet; mechanisms with per-row public
+        parts such as a hash seed reduce the report to what it says about the pair)."""
+        if self.audit_ordered():
+            arr = arrays[0].combine_chunks() if isinstance(arrays[0], pa.ChunkedArray) else arrays[0]
+            return np.asarray(arr.cast(pa.float64()).to_numpy(zero_copy_only=False), dtype=float)
+        texts = [_as_text(a) for a in arrays]
+        joined = texts[0] if len(texts) == 1 else pc.binary_join_element_wise(*texts, "\x1f")
+        return np.asarray(joined.to_numpy(zero_copy_only=False), dtype=object)
+
 
 class MeanMechanism(Mechanism):
     """Bounded numeric input on [lo, hi], decoded as a mean: each written value is a per-row
@@ -345,6 +376,10 @@ class MeanMechanism(Mechanism):
 
         return mean_lower_bound(self.epsilon, (self.lo, self.hi)) / self.worst_variance()
 
+    def audit_pairs(self) -> list[tuple[Any, Any]]:
+        """The two bounds: the inputs furthest apart (a report's distribution moves most between them)."""
+        return [(self.lo, self.hi)]
+
 
 class DistributionMechanism(Mechanism):
     """Bounded numeric input on [lo, hi], decoded as a whole distribution (CDF, quantiles, range
@@ -373,3 +408,47 @@ class DistributionMechanism(Mechanism):
     def decoder(self, *, joint: bool = False) -> DistributionDecoder:
         """The additive count statistics (``new_stats``), decoded by ``decode``."""
         return DistributionDecoder(self)
+
+    def audit_pairs(self) -> list[tuple[Any, Any]]:
+        """The two bounds: the inputs furthest apart (a report's distribution moves most between them)."""
+        return [(self.lo, self.hi)]
+
+
+def _as_text(arr: pa.Array | pa.ChunkedArray) -> pa.Array:
+    """A report field as plain text (dictionary-encoded labels decoded; nulls as the empty text)."""
+    if isinstance(arr, pa.ChunkedArray):
+        arr = arr.combine_chunks()
+    if pa.types.is_dictionary(arr.type):
+        arr = arr.dictionary_decode()
+    return pc.fill_null(arr.cast(pa.string()), "")
+
+
+def worst_channel_pairs(channel: np.ndarray, inputs: Sequence[Any], top: int = 2) -> list[tuple[Any, Any]]:
+    """The audit's worst-case input pairs read off an exact channel ``channel[i, y]`` = P(y | inputs[i]):
+    the pairs (i, j) whose largest ratio P(y|i)/P(y|j) is largest, ties broken by the probability
+    P(y|i) of that output (an event the audit sees often); at most ``top`` pairs, each unordered
+    pair once (the audit tests both directions).  One pass per input i over the k x M channel."""
+    Q = np.asarray(channel, dtype=float)
+    k = Q.shape[0]
+    best = np.full((k, k), -1.0)
+    weight = np.zeros((k, k))
+    for i in range(k):
+        with np.errstate(divide="ignore", invalid="ignore"):
+            r = np.where(Q[i][None, :] > 0, Q[i][None, :] / Q, 0.0)       # (j, y)
+        r = np.where(np.isnan(r), 0.0, r)
+        y = r.argmax(axis=1)
+        best[i] = r[np.arange(k), y]
+        weight[i] = Q[i, y]
+    np.fill_diagonal(best, -1.0)
+    order = np.lexsort((-weight.ravel(), -best.ravel()))
+    out: list[tuple[Any, Any]] = []
+    seen: set[frozenset[int]] = set()
+    for flat in order[: 4 * top + 2 * k]:
+        i, j = divmod(int(flat), k)
+        if i == j or frozenset((i, j)) in seen:
+            continue
+        seen.add(frozenset((i, j)))
+        out.append((inputs[i], inputs[j]))
+        if len(out) >= top:
+            break
+    return out

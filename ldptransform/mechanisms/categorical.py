@@ -37,6 +37,9 @@ from .fit import (
 
 MAX_CATEGORIES = 1 << 20
 BUCKET_GROUPS = 4096        # olh fit test: reported buckets are counted in at most this many groups
+# the audit's outcomes of a frequency report for a pair (a, b): index 2 * [supports a] + [supports b]
+AUDIT_SUPPORT_LABELS = np.array(["supports neither", "supports b only", "supports a only", "supports both"],
+                                dtype=object)
 
 
 class FrequencyOracle(Mechanism):
@@ -89,6 +92,16 @@ class FrequencyOracle(Mechanism):
     def support_counts(self, arrays: list[pa.Array]) -> np.ndarray:
         """Integer vector of shape (k,): number of rows whose report supports each value."""
         return self.support(arrays).sum(axis=0, dtype=np.int64)
+
+    def audit_ordered(self) -> bool:
+        return False
+
+    def audit_outcomes(self, arrays: list[pa.Array], pair: tuple[Any, Any]) -> np.ndarray:
+        """For the audit (base.Mechanism.audit_outcomes): what a report says about the pair (a, b) of
+        codes, whether it supports a and whether it supports b (the events of the support counts)."""
+        S = self.support(arrays)
+        a, b = int(pair[0]), int(pair[1])
+        return AUDIT_SUPPORT_LABELS[S[:, a].astype(np.int64) * 2 + S[:, b]]
 
     # The decoder's additive summary of a batch of reports.  By default the support counts;
     # a mechanism with a small output alphabet may keep the histogram of its outputs instead

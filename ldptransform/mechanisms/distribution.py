@@ -512,6 +512,31 @@ class Hierarchy(DistributionMechanism):
     def count_invalid(self, arrays: list[pa.Array]) -> int:
         return int(self._parse(arrays)[3].sum())
 
+    # empirical audit (audit.py) ---------------------------------------------------------------
+    def audit_ordered(self) -> bool:
+        return False
+
+    def audit_outcomes(self, arrays: list[pa.Array], pair: tuple[Any, Any]) -> np.ndarray:
+        """What a report says about the pair (a, b) of values: its level, and whether it supports
+        the node of a and the node of b on that level (the reported node for grr levels, the hash
+        bucket of the node for olh levels); malformed rows are one outcome of their own."""
+        level, report, seed, bad = self._parse(arrays)
+        leaf = self.leaf_of(np.array([float(pair[0]), float(pair[1])]))
+        code = np.full(len(level), 4 * self.height, dtype=np.int64)
+        for l, o in enumerate(self.oracles):
+            at = np.flatnonzero((level == l + 1) & ~bad)
+            node = leaf // (self.branching ** (self.height - l - 1))
+            if o.name == "grr":
+                sa, sb = report[at] == node[0], report[at] == node[1]
+            else:
+                seeds = seed[at].astype(np.uint64)
+                sa = o.hash_values(seeds, np.full(at.size, node[0], dtype=np.uint64)) == report[at]
+                sb = o.hash_values(seeds, np.full(at.size, node[1], dtype=np.uint64)) == report[at]
+            code[at] = 4 * l + 2 * sa.astype(np.int64) + sb
+        labels = [f"level {l + 1}, {s}" for l in range(self.height)
+                  for s in ("supports neither", "supports b only", "supports a only", "supports both")]
+        return np.array(labels + ["malformed report"], dtype=object)[code]
+
     # analysis ---------------------------------------------------------------------------------
     def max_log_ratio(self) -> float:
         """The level is independent of the data and each level's oracle is exactly eps-LDP

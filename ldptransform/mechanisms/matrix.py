@@ -43,7 +43,7 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from ..errors import PolicyError
 from ..random.variates import SAMPLING_BITS, draw_index, guide_table, integer_masses, sampling_table
-from .base import register
+from .base import Mechanism, register, worst_channel_pairs
 from .categorical import FrequencyOracle, _as_strings
 from .fit import HullFit
 
@@ -397,3 +397,14 @@ class Matrix(FrequencyOracle):
             return np.where(codes < 0, 0, codes), codes < 0
 
         return HullFit(self, self.channel(), index, "reported categories")
+
+    # -- empirical audit (audit.py) --------------------------------------------------------
+    def audit_pairs(self) -> list[tuple[Any, Any]]:
+        """The steward's matrix need not treat its categories alike: the two pairs of codes with
+        the largest ratio of the realized channel."""
+        return worst_channel_pairs(self.channel(), list(range(self.k)))
+
+    def audit_outcomes(self, arrays: list[pa.Array], pair: tuple[Any, Any]) -> np.ndarray:
+        """Each published category is an outcome (the best event may include categories other than
+        the pair's own): the base's reported labels, not the support events of the pure protocols."""
+        return Mechanism.audit_outcomes(self, arrays, pair)
