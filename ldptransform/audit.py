@@ -62,7 +62,8 @@ DEFAULT_ROWS = 200_000
 DEFAULT_CONFIDENCE = 0.99
 MIN_ROWS = 200
 MAX_ROWS = 50_000_000
-MAX_OUTCOMES = 256          # outcomes are pooled into at most this many groups before events are formed
+MAX_OUTCOMES = 256          # unordered outcomes are pooled into at most this many groups before events are formed
+MAX_ORDERED_GROUPS = 64     # ordered ones into at most this many runs of neighbouring values (2080 intervals)
 CHUNK_ROWS = 65_536         # reports are reduced to outcomes this many rows at a time
 
 
@@ -289,9 +290,9 @@ def _fmt(key: Any) -> str:
 
 
 def _groups(keys_a: np.ndarray, keys_b: np.ndarray, ordered: bool) -> _Outcomes:
-    """Split each side in halves, number the distinct outcomes, and pool them into at most
-    MAX_OUTCOMES groups using the first halves only (ordered: runs of neighbouring values with
-    similar first-half counts; unordered: the most frequent outcomes, the rest together)."""
+    """Split each side in halves, number the distinct outcomes, and pool them into groups using the
+    first halves only (ordered: at most MAX_ORDERED_GROUPS runs of neighbouring values with similar
+    first-half counts; unordered: the MAX_OUTCOMES - 1 most frequent outcomes, the rest together)."""
     ha, hb = len(keys_a) // 2, len(keys_b) // 2
     samples = {"a1": keys_a[:ha], "b1": keys_b[:hb], "a2": keys_a[ha:], "b2": keys_b[hb:]}
     allk = np.concatenate(list(samples.values()))
@@ -300,12 +301,12 @@ def _groups(keys_a: np.ndarray, keys_b: np.ndarray, ordered: bool) -> _Outcomes:
     bounds = np.cumsum([0] + [len(v) for v in samples.values()])
     ids = {name: inv[bounds[i]: bounds[i + 1]] for i, name in enumerate(samples)}
     first = np.bincount(ids["a1"], minlength=M) + np.bincount(ids["b1"], minlength=M)
-    if M <= MAX_OUTCOMES:
+    if M <= (MAX_ORDERED_GROUPS if ordered else MAX_OUTCOMES):
         group = np.arange(M)
         labels = [_fmt(u) for u in uniq]
     elif ordered:
         total = max(int(first.sum()), 1)
-        group = np.minimum((np.cumsum(first) - first) * MAX_OUTCOMES // total, MAX_OUTCOMES - 1)
+        group = np.minimum((np.cumsum(first) - first) * MAX_ORDERED_GROUPS // total, MAX_ORDERED_GROUPS - 1)
         group = np.unique(group, return_inverse=True)[1]
         starts = np.flatnonzero(np.diff(np.concatenate([[-1], group])))
         ends = np.concatenate([starts[1:], [M]]) - 1
@@ -321,8 +322,10 @@ def _groups(keys_a: np.ndarray, keys_b: np.ndarray, ordered: bool) -> _Outcomes:
 
 
 def _score(ka: np.ndarray, na: int, kb: np.ndarray, nb: int, z: float) -> np.ndarray:
-    """Approximate lower confidence bound on ln P(E|a)/P(E|b) (delta method, half-counts added): used
-    only to pick the event on the first halves, never as the audit's figure."""
+    """Approximate lower confidence bound on ln P(E|a)/P(E|b) (delta method, half-counts added) with
+    ``z`` standard errors: used only to pick the event on the first halves, never as the audit's
+    figure.  The caller's z adds to the test's own a margin for the number of candidate events
+    (the largest of many noisy ratios overstates its event, most for small events)."""
     pa_, pb_ = (ka + 0.5) / (na + 1.0), (kb + 0.5) / (nb + 1.0)
     se = np.sqrt(np.maximum(1.0 / (ka + 0.5) - 1.0 / (na + 1.0) + 1.0 / (kb + 0.5) - 1.0 / (nb + 1.0), 0.0))
     return np.log(pa_) - np.log(pb_) - z * se
@@ -332,9 +335,13 @@ def _pick_event(o: _Outcomes, num: str, den: str, z: float) -> tuple[np.ndarray,
     """The groups of the event with the best first-half score for P(E|num)/P(E|den), and its text:
     among the intervals of outcomes when they are ordered numbers, else among the unions of the
     outcomes with the largest first-half ratios."""
+    from scipy.stats import norm
+
     ca, cb = o.counts[num + "1"], o.counts[den + "1"]
     na, nb = o.rows[num + "1"], o.rows[den + "1"]
     G = len(ca)
+    candidates = G * (G + 1) // 2 if o.ordered else G
+    z = z + float(norm.ppf(1.0 - 0.5 / max(candidates, 1)))
     if o.ordered:
         Ca, Cb = np.concatenate([[0], np.cumsum(ca)]), np.concatenate([[0], np.cumsum(cb)])
         i, j = np.triu_indices(G)
