@@ -93,6 +93,16 @@ class Quality(_Strict):
 
 
 FREQUENCY_NEEDS = Literal["frequencies"]
+_RERANDOMIZE_DOC = ("memoize only: the eps of a second randomization layer that re-randomizes the memoized report "
+                    "with fresh noise in every release, so that a report no longer stays the same (a linkage key) "
+                    "or changes only with the value; a release then reveals at most the composite eps of the two "
+                    "layers, and the lifetime cost per distinct value stays the column's epsilon.")
+
+
+def _check_rerandomize(col: Any) -> None:
+    if col.rerandomize_epsilon is not None and not col.memoize:
+        raise ValueError("rerandomize_epsilon applies only with memoize: true (it re-randomizes the memoized report "
+                         "in every release); add memoize: true or remove rerandomize_epsilon")
 
 
 class CategoricalColumn(_Strict):
@@ -114,6 +124,12 @@ class CategoricalColumn(_Strict):
         None, description="true: memoized randomness (permanent randomized response): a person (budget's "
                           "subject_key) with the same value gets the same report in every release; needs "
                           "subject_key at the top level.")
+    rerandomize_epsilon: Epsilon | None = Field(None, description=_RERANDOMIZE_DOC)
+
+    @model_validator(mode="after")
+    def _layer(self) -> CategoricalColumn:
+        _check_rerandomize(self)
+        return self
 
     @field_validator("categories")
     @classmethod
@@ -165,6 +181,7 @@ class NumericColumn(_Strict):
         None, ge=1, le=4096, description="memoize on a numeric column (no bins): number of steps between the bounds "
                                          "of the coarse grid the value is rounded to first, with a per-person random "
                                          "offset (default 32).")
+    rerandomize_epsilon: Epsilon | None = Field(None, description=_RERANDOMIZE_DOC)
 
     @model_validator(mode="after")
     def _domain(self) -> NumericColumn:
@@ -173,6 +190,7 @@ class NumericColumn(_Strict):
         self._check_bounds_and_bins()
         self._check_needs()
         self._check_memo_grid()
+        _check_rerandomize(self)
         if isinstance(self.missing, Fill):
             lo, hi = self.domain
             if not lo <= self.missing.fill <= hi:
@@ -321,7 +339,10 @@ class Policy(_Strict):
                                  loc=loc, input=value) for loc, value, msg in problems])
         if strategy == "sample":
             return self
-        total = sum(e or 0.0 for e in eps_of.values())   # every one is set under split (checked above)
+        # every one is set under split (checked above); a column with a second layer releases less than its
+        # epsilon per release (the composite of its two layers): ``resolve`` checks the sum with it
+        total = sum(e or 0.0 for n, e in eps_of.items()
+                    if getattr(self.columns[n], "rerandomize_epsilon", None) is None)
         if total > self.budget.epsilon_per_row + EPS_TOLERANCE:
             parts = ", ".join(f"{n} {c.epsilon:g}" for n, c in self.columns.items()
                               if isinstance(c, (CategoricalColumn, NumericColumn)))
@@ -423,10 +444,20 @@ class ResolvedColumn:
     other_code: int | None = None
     memoize: bool = False          # memoized randomness keyed by (subject, value)
     memo_grid: int | None = None   # numeric (not binned) memoized columns: steps of the coarse rounding grid
+    # memoized columns with a second layer: its eps; ``mechanism`` is then the composite channel
+    # (what one release reveals, what partners decode) and ``mechanism.permanent`` the memoized layer
+    rerandomize_epsilon: float | None = None
 
     @property
     def privatized(self) -> bool:
         return self.mechanism is not None
+
+    @property
+    def permanent_epsilon(self) -> float:
+        """The eps a distinct value of this column costs over a lifetime: the permanent layer's eps
+        (the column's own eps without a second layer)."""
+        assert self.mechanism is not None
+        return self.mechanism.permanent.epsilon
 
 
 def _where(name: str, fieldname: str) -> str:
@@ -602,7 +633,24 @@ def resolve(policy: Policy, source: str = "<policy>") -> LoadedPolicy:
                     and cls.exact_decimal_epsilon and "field 'epsilon'" in str(err)):
                 raise PolicyError(_sampled_exact_eps_message(policy, name, source, cls.name)) from None
             raise PolicyError(f"policy {source}: {err}") from None
-    return LoadedPolicy(policy, source, cols)
+    loaded = LoadedPolicy(policy, source, cols)
+    _check_layered_budget(loaded)
+    return loaded
+
+
+def _check_layered_budget(lp: LoadedPolicy) -> None:
+    """strategy split with second layers: a row's eps per release is the sum of the column eps, each
+    layered column counted at the composite eps of its two layers (what one release reveals)."""
+    if lp.strategy != "split" or not any(rc.rerandomize_epsilon is not None for rc in lp.columns):
+        return
+    total, budget = lp.epsilon_total, lp.policy.budget.epsilon_per_row
+    if total > budget + EPS_TOLERANCE:
+        parts = ", ".join(f"{rc.name} {rc.mechanism.epsilon:.6g}" + (" (composite of its two layers)"
+                                                                   if rc.rerandomize_epsilon is not None else "")
+                          for rc in lp.columns if rc.mechanism is not None)
+        raise PolicyError(f"policy {lp.source}: the column epsilons per release add up to {total:.6g} ({parts}), "
+                          f"more than budget.epsilon_per_row = {budget:g}; lower some column epsilons or "
+                          "rerandomize_epsilon values, or (after review) raise the budget")
 
 
 DEFAULT_MEMO_GRID = 32
@@ -615,6 +663,12 @@ def _memoize(rc: ResolvedColumn, source: str) -> None:
     rc.memoize = True
     if rc.type == "numeric":
         rc.memo_grid = rc.config.memo_grid or DEFAULT_MEMO_GRID
+    eps2 = getattr(rc.config, "rerandomize_epsilon", None)
+    if eps2 is not None:
+        if not rc.mechanism.supports_second_layer:
+            raise PolicyError(f"{_where(rc.name, 'rerandomize_epsilon')}: {rc.mechanism.second_layer_refusal}")
+        rc.mechanism = rc.mechanism.with_second_layer(eps2)
+        rc.rerandomize_epsilon = float(eps2)
 
 
 def _sampled_exact_eps_message(policy: Policy, name: str, source: str, mechanism: str) -> str:

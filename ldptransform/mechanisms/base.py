@@ -82,11 +82,28 @@ def registry() -> dict[str, type[Mechanism]]:
 
 
 def build(spec: dict[str, Any]) -> Mechanism:
-    """Instantiate a mechanism from its spec (as written in the manifest)."""
+    """Instantiate a mechanism from its spec (as written in the manifest).  A spec with a
+    ``second_layer`` entry is the composite channel of a memoized column re-randomized in each
+    release (``Mechanism.with_second_layer``): it is rebuilt from its two layers, and its stated
+    epsilon must be the composite's."""
     name = spec.get("mechanism")
     if name not in _REGISTRY:
         raise PolicyError(f"unknown mechanism {name!r}; known: {', '.join(sorted(_REGISTRY))}")
-    return _REGISTRY[name].from_spec(spec)
+    if "second_layer" not in spec:
+        return _REGISTRY[name].from_spec(spec)
+    layer = spec["second_layer"]
+    if not isinstance(layer, dict) or set(layer) != {"permanent_epsilon", "epsilon"}:
+        raise PolicyError(f"mechanism {name}: second_layer must give permanent_epsilon and epsilon, got {layer!r}")
+    permanent = {k: v for k, v in spec.items() if k != "second_layer"}
+    permanent["epsilon"] = layer["permanent_epsilon"]
+    composite = _REGISTRY[name].from_spec(permanent).with_second_layer(layer["epsilon"])
+    stated = spec.get("epsilon")
+    if (not isinstance(stated, (int, float))
+            or abs(composite.epsilon - float(stated)) > 1e-9 * max(1.0, composite.epsilon)):
+        raise PolicyError(f"mechanism {name}: the spec states epsilon {stated!r}, but its two layers (permanent eps "
+                          f"{layer['permanent_epsilon']!r}, then eps {layer['epsilon']!r}) compose to "
+                          f"{composite.epsilon!r}")
+    return composite
 
 
 class NoParams(BaseModel):
@@ -264,6 +281,82 @@ class Mechanism(ABC):
             return ""
         return (f"mechanism {self.name} draws a variable number of random words per row, which memoized randomness "
                 "does not support; remove memoize, or choose another mechanism for this column")
+
+    # -- second randomization layer (memoized columns) ----------------------------------
+    # A memoized column's report is permanent: the same for a (person, value) in every release.
+    # A second layer re-randomizes that permanent report in each release with fresh noise at its
+    # own eps (the instantaneous randomized response of Erlingsson, Pihur, Korolova, "RAPPOR:
+    # Randomized Aggregatable Privacy-Preserving Ordinal Response", CCS 2014).  A mechanism that
+    # supports it gives the layer (``second_layer_words_per_row``, ``rerandomize``) and the eps of
+    # the composite channel (permanent, then instantaneous), which stays in the mechanism's own
+    # family: ``with_second_layer`` returns the mechanism of that composite, the one the release
+    # states, the manifest carries and the family decoder reads (docs/formulas.md section 9.3).
+
+    #: True for a mechanism whose memoized report a second layer can re-randomize, the composite
+    #: staying in the mechanism's family (it then implements the three hooks below).
+    supports_second_layer: ClassVar[bool] = False
+    #: A mechanism's own reason for having no second layer ('' : the generic reason).
+    second_layer_reason: ClassVar[str] = ""
+    #: On a composite (``with_second_layer``): (the permanent layer's mechanism, the second layer's eps).
+    second_layer_of: tuple[Mechanism, float] | None = None
+
+    @property
+    def second_layer_refusal(self) -> str:
+        """Why ``rerandomize_epsilon`` is refused ('' when supported), naming the mechanisms of the
+        same kind of column that take it (from the registry)."""
+        if self.supports_second_layer:
+            return ""
+        families = ("frequency",) if self.family == "frequency" else ("mean", "distribution")
+        takers = [n for n, c in _REGISTRY.items() if c.supports_second_layer and c.family in families]
+        reason = self.second_layer_reason or (f"mechanism {self.name} has no second randomization layer whose "
+                                              "composite channel stays in its own family")
+        return (f"{reason}. A second layer (rerandomize_epsilon) is available for mechanism{'s' * (len(takers) > 1)} "
+                f"{', '.join(takers) or 'none'} on this kind of column: set mechanism to one of them, or remove "
+                "rerandomize_epsilon")
+
+    @property
+    def second_layer_words_per_row(self) -> int:
+        """64-bit words per row the second layer draws (from the release's row-addressed stream)."""
+        raise NotImplementedError(self.second_layer_refusal)
+
+    def rerandomize(self, reports: list[pa.Array], words: np.ndarray, epsilon2: float) -> list[pa.Array]:
+        """The second layer: this mechanism's (permanent) ``reports``, as ``randomize`` wrote them,
+        re-randomized at eps ``epsilon2`` with ``words`` of shape (n, second_layer_words_per_row);
+        returns the composite's reports (same fields)."""
+        raise NotImplementedError(self.second_layer_refusal)
+
+    def composite_epsilon(self, epsilon2: float) -> float:
+        """The exact eps of the composite channel (this mechanism, then the second layer at
+        ``epsilon2``), computed from the probabilities both samplers realize; at most
+        min(eps, epsilon2)."""
+        raise NotImplementedError(self.second_layer_refusal)
+
+    def with_second_layer(self, epsilon2: float) -> Mechanism:
+        """The composite channel as a mechanism of this class at the composite eps (its reports
+        have exactly the composite's distribution, so the family decoder reads them unbiasedly),
+        remembering both layers (``second_layer_of``, and ``second_layer`` in its spec)."""
+        if not self.supports_second_layer:
+            raise PolicyError(self.second_layer_refusal)
+        if self.second_layer_of is not None:
+            raise PolicyError(f"mechanism {self.name}: already has a second layer")
+        eps2 = check_epsilon(epsilon2, f"mechanism {self.name}, second layer")
+        spec = dict(self.to_spec())
+        spec["epsilon"] = self.composite_epsilon(eps2)
+        composite = type(self).from_spec(spec)
+        composite.second_layer_of = (self, eps2)
+        return composite
+
+    @property
+    def permanent(self) -> Mechanism:
+        """The mechanism the memoized words go through: the permanent layer of a composite, else itself."""
+        return self.second_layer_of[0] if self.second_layer_of is not None else self
+
+    def _layer_spec(self, spec: dict[str, Any]) -> dict[str, Any]:
+        """``spec`` with the two layers of a composite (nothing added otherwise)."""
+        if self.second_layer_of is not None:
+            spec["second_layer"] = {"permanent_epsilon": self.second_layer_of[0].epsilon,
+                                    "epsilon": self.second_layer_of[1]}
+        return spec
 
     # -- goodness of fit (mechanisms/fit.py) -----------------------------------------
     def fit_test(self) -> FitStats | None:

@@ -42,7 +42,15 @@ import pyarrow.compute as pc
 from pydantic import BaseModel, ConfigDict, Field
 
 from ..errors import PolicyError
-from ..random.variates import SAMPLING_BITS, draw_index, guide_table, integer_masses, sampling_table, to_unit
+from ..random.variates import (
+    SAMPLING_BITS,
+    draw_index,
+    guide_table,
+    integer_masses,
+    sampling_table,
+    to_unit,
+    unit_below,
+)
 from .base import MeanMechanism, NoParams, check_epsilon, register
 from .fit import HullFit
 
@@ -331,10 +339,48 @@ class TwoPoint(GridMechanism):
         super().__init__(epsilon, bounds, 1)
 
     def to_spec(self) -> dict[str, Any]:
-        return {"mechanism": self.name, "epsilon": self.epsilon, "bounds": [self.lo, self.hi]}
+        return self._layer_spec({"mechanism": self.name, "epsilon": self.epsilon, "bounds": [self.lo, self.hi]})
 
     def _channel(self) -> tuple[np.ndarray, np.ndarray]:
         return _two_point_channel(self.epsilon, self.inputs)
+
+    # second layer (memoized columns; docs/formulas.md section 9.3) ---------------------------
+    supports_second_layer: ClassVar[bool] = True
+
+    @property
+    def second_layer_words_per_row(self) -> int:
+        return 1
+
+    @staticmethod
+    def second_layer_keep(epsilon2: float) -> float:
+        """The probability that the second layer keeps the sign of the permanent report, exactly as
+        its sampler realizes it (``unit_below``): e^eps2/(e^eps2+1) rounded up to the 2^-53 grid
+        (binary randomized response on the sign: the layer alone is eps2-LDP)."""
+        e = math.exp(epsilon2)
+        return math.ceil(e / (e + 1) * (1 << 53)) / (1 << 53)
+
+    def composite_epsilon(self, epsilon2: float) -> float:
+        """Two-point with slope s = P(+C | t=1) - P(+C | t=-1) (as the sampler realizes it), then a
+        sign kept w.p. r: P'(+ | t) - 1/2 = (2r - 1)(P(+ | t) - 1/2), two-point with slope
+        s' = (2r - 1) s; a two-point mechanism's slope is (e^eps-1)/(e^eps+1), so
+        eps' = ln((1 + s')/(1 - s')), i.e. tanh(eps'/2) = tanh(eps/2) (2r - 1)."""
+        Q = self.channel()
+        slope = float(Q[1, 1] - Q[0, 1])
+        s2 = (2 * self.second_layer_keep(epsilon2) - 1) * slope
+        return math.log((1 + s2) / (1 - s2))
+
+    def rerandomize(self, reports: list[pa.Array], words: np.ndarray, epsilon2: float) -> list[pa.Array]:
+        """The sign of the permanent report kept with probability ``second_layer_keep``, else
+        flipped, and written as the composite's value +-C' = +-1/s' (normalized units), so that the
+        written value is again the row's unbiased estimate."""
+        arr = reports[0]
+        if isinstance(arr, pa.ChunkedArray):
+            arr = arr.combine_chunks()
+        vals = np.asarray(pc.cast(arr, pa.float64()).to_numpy(zero_copy_only=False))
+        plus = vals > (self.lo + self.hi) / 2.0
+        keep = unit_below(words[:, 0], self.second_layer_keep(epsilon2))
+        alphabet = self.to_units(_two_point_channel(self.composite_epsilon(epsilon2), self.inputs)[0])
+        return [pa.array(alphabet[np.where(keep, plus, ~plus).astype(np.int64)])]
 
 
 @register

@@ -76,8 +76,9 @@ class _PrePass:
 
 
 def _eps(p: ColumnPlan) -> float:
+    """What a new value of the column costs over a lifetime: with a second layer, the permanent layer's eps."""
     assert p.rc.mechanism is not None
-    return p.rc.mechanism.epsilon
+    return p.rc.permanent_epsilon
 
 
 def ledger_prepass(src: Any, plans: list[ColumnPlan], policy: LoadedPolicy, key: SecretKey,

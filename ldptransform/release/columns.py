@@ -41,6 +41,7 @@ class ColumnPlan:
     reported: int = 0                # strategy sample: cells reported so far (private diagnostics only)
     memo: SubjectPRF | None = None         # memoize: words keyed by (subject, value code), not (nonce, row)
     memo_offset: SubjectPRF | None = None  # memoize on a numeric column: per-subject offset of the coarse rounding
+    layer_stream: KeyedStream | None = None  # memoize with rerandomize_epsilon: the second layer's fresh words
 
 
 
@@ -103,6 +104,8 @@ def attach_randomness(plans: list[ColumnPlan], policy: LoadedPolicy, key: Secret
                 p.draw_stream = KeyedStream(key, nonce, "column-draws", p.rc.name)
             if p.rc.memoize:
                 p.memo, p.memo_offset = memo_streams(key, p.rc)
+            if p.rc.rerandomize_epsilon is not None:
+                p.layer_stream = KeyedStream(key, nonce, "second-layer", p.rc.name)
     if policy.strategy != "sample":
         return None
     order = policy.policy.privatized_columns  # policy order: the choice never depends on the input's layout

@@ -22,7 +22,7 @@ import pyarrow.compute as pc
 from ..random.bits import BitSource, KeyedStream
 from ..random.variates import choose_m_of_d
 from .encode import encode
-from .memo import memo_round, subject_bytes
+from .memo import memo_round, rerandomize_rows, subject_bytes
 
 if TYPE_CHECKING:
     from .columns import ColumnPlan
@@ -96,7 +96,10 @@ def privatize_column(p: ColumnPlan, values: pa.Array, row0: int, subjects: Subje
         x, codes = memo_round(p, x, subjects)
     else:
         codes = x
-    return randomize_rows(p, x, row0, subjects, codes)
+    reports = randomize_rows(p, x, row0, subjects, codes)
+    if p.rc.rerandomize_epsilon is not None:  # the second layer: fresh noise in every release (release/memo.py)
+        reports = rerandomize_rows(p, reports, row0, MAX_WORDS_PER_CALL)
+    return reports
 
 
 def _bits(p: ColumnPlan, row0: int, subjects: Subjects | None, codes: np.ndarray | None) -> BitSource:
@@ -120,6 +123,7 @@ def randomize_rows(p: ColumnPlan, x: np.ndarray, row0: int, subjects: Subjects |
     instead (``subjects`` = (bytes, offsets) of the batch's subject column, ``codes`` the value codes)."""
     m = p.rc.mechanism
     assert m is not None
+    m = m.permanent  # a memoized column with a second layer: its permanent layer (privatize_column)
     n, wpr = len(x), m.words_per_row
     # a report may be wider than its words (a k-character subset string from 1 + m words):
     # budget a slice by whichever is larger, words in or bytes out (counted in 8-byte words)
