@@ -186,12 +186,16 @@ def privatize(
     public = res.manifest.privacy.public_columns
     caution = (f"; CAUTION: {len(public)} column(s) released in the clear, not protected: {', '.join(public)}"
                if public else "")
+    if res.manifest.privacy.row_order == "as-input":
+        caution += ("; CAUTION: the rows keep the input's order (policy output.row_order: as-input): if the input "
+                    "is sorted or grouped by anything, a row's neighbours tell about it")
     err_console.print(f"privatized {res.manifest.rows} rows into {res.extract_path} (manifest {res.manifest_path}; "
                       f"steward-only diagnostics {res.diagnostics_path}) in {res.seconds:.1f} s, "
                       f"eps {res.manifest.privacy.epsilon_per_row_used:g} per row{caution}", markup=False)
     if res.ledger_release_id is not None:
         held = (f"; held back (steward-only, do not publish): {res.held_back_subjects} subject(s) past the lifetime "
-                f"budget, {res.held_back_rows} row(s)" if res.held_back_subjects else "")
+                f"budget, {res.held_back_rows} row(s), released as placeholder rows (reports of random values, none "
+                "of their data)" if res.held_back_subjects else "")
         err_console.print(f"recorded as release {res.ledger_release_id} in ledger {res.ledger_path}{held}",
                           markup=False)
 

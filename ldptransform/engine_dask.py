@@ -44,10 +44,19 @@ from .release.parts import (
     PartJob,
     PartResult,
     RowCutter,
-    _keep_slice,
+    Spilled,
+    Written,
+    _dataset_written,
+    _mask_slice,
+    add_part_counts,
     fragment_part,
+    fragment_spill,
+    part_ranges,
+    spill_rows,
     write_part,
+    write_sorted_part,
 )
+from .release.shuffle import Runs, windows
 
 DEFAULT_WORKERS = max(1, min(os.cpu_count() or 1, 8))
 
@@ -117,29 +126,100 @@ def _close(client: Any, cluster: Any) -> None:
             cluster.close()
 
 
-def run_parts(job: PartJob, src: Any, keep: np.ndarray | None, folder: Path, fragment_rows: int,
+def run_parts(job: PartJob, src: Any, held: Any, folder: Path, fragment_rows: int,
               scheduler: str | None, staged: StagedFiles,
               on_progress: Callable[[int], None] | None) -> list[PartResult]:
     """Write every part of the release with dask workers; results in part order."""
     client, cluster = _open_client(scheduler)
     try:
         if isinstance(src, FrameSource):
-            return _frame_parts(client, job, src, keep, folder, staged, on_progress)
+            return _frame_parts(client, job, src, held, folder, staged, on_progress)
         ds = src.parquet_dataset(fragment_rows)
         if ds is not None:
             job_f = client.scatter(job, broadcast=True)
-            futs = [client.submit(fragment_part, job_f, ds.fs, frag, _keep_slice(keep, frag.row0, frag.rows),
+            futs = [client.submit(fragment_part, job_f, ds.fs, frag, _mask_slice(held, frag.row0, frag.rows),
                                   str(folder), pure=False) for frag in ds.fragments]
             if not futs:
                 return [write_part(job, iter(()), 0, None, folder / PART_NAME.format(0))]
             return _gather(client, futs, staged, on_progress)
-        return _csv_parts(client, job, src, keep, folder, fragment_rows, staged, on_progress)
+        return _csv_parts(client, job, src, held, folder, fragment_rows, staged, on_progress)
     finally:
         _close(client, cluster)
 
 
+def run_shuffled(job: PartJob, src: Any, held: Any, opts: Any, folder: Path, spill: Path,
+                 staged: StagedFiles, on_progress: Callable[[int], None] | None) -> Written:
+    """A shuffled release (release/shuffle.py) on dask workers, in two rounds: every input
+    fragment (or CSV stretch, or frame partition) is privatized into sorted runs in the private
+    ``spill`` folder; then every part of ``fragment_rows`` rows (by rank in the keyed order) is
+    merged from the runs and written.  The same bytes as the local engine's."""
+    client, cluster = _open_client(opts.scheduler)
+    try:
+        spilled = _spill_parts(client, job, src, held, spill, opts.fragment_rows, staged, on_progress)
+        runs = Runs()
+        for s in spilled:
+            runs.extend(s.runs)
+        add_part_counts(job.plans, spilled)
+        n, wins = runs.rows, windows(runs)
+        job_f, runs_f = client.scatter(job, broadcast=True), client.scatter(runs, broadcast=True)
+        futs = [client.submit(write_sorted_part, job_f, runs_f, wins, start, stop, str(folder / PART_NAME.format(i)),
+                              pure=False) for i, (start, stop) in enumerate(part_ranges(n, opts.fragment_rows))]
+        parts: list[PartResult] = _gather(client, futs, staged, None)
+        return _dataset_written(job, opts, parts, n)
+    finally:
+        _close(client, cluster)
+
+
+def _spill_parts(client: Any, job: PartJob, src: Any, held: Any, spill: Path, fragment_rows: int,
+                 staged: StagedFiles, on_progress: Callable[[int], None] | None) -> list[Spilled]:
+    """The first round of a shuffled release: sorted runs of every stretch of input rows, in row order."""
+    job_f = client.scatter(job, broadcast=True)
+    if isinstance(src, FrameSource):
+        import dask
+
+        lengths = src.lengths()
+        starts = np.concatenate([[0], np.cumsum(lengths)]).astype(int)
+        tasks = [dask.delayed(frame_spill)(job, part, src.schema, int(starts[i]),
+                                           _mask_slice(held, int(starts[i]), lengths[i]), str(spill))
+                 for i, part in enumerate(src.frame.to_delayed())]
+        return _gather(client, list(client.compute(tasks)), staged, on_progress)
+    ds = src.parquet_dataset(fragment_rows)
+    if ds is not None:
+        futs = [client.submit(fragment_spill, job_f, ds.fs, frag, _mask_slice(held, frag.row0, frag.rows), str(spill),
+                              pure=False) for frag in ds.fragments]
+        return _gather(client, futs, staged, on_progress)
+    # CSV: read here in order, stretch by stretch, at most two stretches per worker in flight
+    limit = 2 * max(1, len(client.scheduler_info().get("workers", {})) or 1)
+    cutter = RowCutter(src.batches(job.read_cols, job.batch_rows))
+    pending: deque = deque()
+    out: list[Spilled] = []
+    row0 = 0
+    try:
+        while not cutter.exhausted():
+            batches = list(cutter.take(fragment_rows))
+            n = sum(b.num_rows for b in batches)
+            pending.append(client.submit(spill_rows, job_f, batches, row0, _mask_slice(held, row0, n), str(spill),
+                                         f"c{row0:012d}", in_memory=False, pure=False))
+            row0 += n
+            staged.check()
+            while len(pending) >= limit:
+                out.append(_one(pending.popleft(), on_progress))
+        while pending:
+            out.append(_one(pending.popleft(), on_progress))
+    except BaseException:
+        client.cancel(list(pending))
+        raise
+    return out
+
+
+def frame_spill(job: PartJob, pdf: Any, schema: pa.Schema, row0: int, held: Any, folder: str) -> Spilled:
+    batch = _to_batch(pdf, schema, job.read_cols)
+    return spill_rows(job, _rebatch(iter([batch]), job.batch_rows), row0, held, folder, f"p{row0:012d}",
+                      in_memory=False)
+
+
 def _gather(client: Any, futs: list[Any], staged: StagedFiles,
-            on_progress: Callable[[int], None] | None) -> list[PartResult]:
+            on_progress: Callable[[int], None] | None) -> list[Any]:
     from distributed import as_completed
 
     index = {f.key: i for i, f in enumerate(futs)}
@@ -157,7 +237,7 @@ def _gather(client: Any, futs: list[Any], staged: StagedFiles,
     return [r for r in out if r is not None]
 
 
-def _csv_parts(client: Any, job: PartJob, src: Any, keep: np.ndarray | None, folder: Path, fragment_rows: int,
+def _csv_parts(client: Any, job: PartJob, src: Any, held: Any, folder: Path, fragment_rows: int,
                staged: StagedFiles, on_progress: Callable[[int], None] | None) -> list[PartResult]:
     """CSV: read here, in order, part by part; each part is randomized and written by a worker.
     At most two parts per worker are in flight, so the client's memory stays bounded."""
@@ -172,7 +252,7 @@ def _csv_parts(client: Any, job: PartJob, src: Any, keep: np.ndarray | None, fol
             batches = list(cutter.take(fragment_rows))
             n = sum(b.num_rows for b in batches)
             i = len(results) + len(pending)
-            pending.append(client.submit(write_part, job_f, batches, row0, _keep_slice(keep, row0, n),
+            pending.append(client.submit(write_part, job_f, batches, row0, _mask_slice(held, row0, n),
                                          folder / PART_NAME.format(i), pure=False))
             row0 += n
             staged.check()
@@ -188,7 +268,7 @@ def _csv_parts(client: Any, job: PartJob, src: Any, keep: np.ndarray | None, fol
     return results
 
 
-def _one(fut: Any, on_progress: Callable[[int], None] | None) -> PartResult:
+def _one(fut: Any, on_progress: Callable[[int], None] | None) -> Any:
     res = fut.result()
     if on_progress is not None:
         on_progress(res.input_rows)
@@ -270,20 +350,20 @@ class FrameSource:
         return _rebatch(gen(), batch_rows)
 
 
-def frame_part(job: PartJob, pdf: Any, schema: pa.Schema, row0: int, keep: np.ndarray | None,
+def frame_part(job: PartJob, pdf: Any, schema: pa.Schema, row0: int, held: Any,
                path: str) -> PartResult:
     batch = _to_batch(pdf, schema, job.read_cols)
-    return write_part(job, _rebatch(iter([batch]), job.batch_rows), row0, keep, Path(path))
+    return write_part(job, _rebatch(iter([batch]), job.batch_rows), row0, held, Path(path))
 
 
-def _frame_parts(client: Any, job: PartJob, src: FrameSource, keep: np.ndarray | None, folder: Path,
+def _frame_parts(client: Any, job: PartJob, src: FrameSource, held: Any, folder: Path,
                  staged: StagedFiles, on_progress: Callable[[int], None] | None) -> list[PartResult]:
     import dask
 
     lengths = src.lengths()
     starts = np.concatenate([[0], np.cumsum(lengths)]).astype(int)
     parts = src.frame.to_delayed()
-    tasks = [dask.delayed(frame_part)(job, part, src.schema, int(starts[i]), _keep_slice(keep, int(starts[i]),
+    tasks = [dask.delayed(frame_part)(job, part, src.schema, int(starts[i]), _mask_slice(held, int(starts[i]),
                                                                                           lengths[i]),
                                       str(folder / PART_NAME.format(i)))
              for i, part in enumerate(parts)]

@@ -90,6 +90,15 @@ class Privacy(_Strict):
     strategy: Literal["split", "sample"] = "split"
     privatized_columns: int | None = Field(None, ge=0)  # d
     reported_columns: int | None = Field(None, ge=0)    # m
+    # policy output.row_order: "shuffled" (a keyed permutation of the input rows, independent of the
+    # data) or "as-input".  Manifests written before the shuffle existed kept the input's order.
+    row_order: Literal["shuffled", "as-input"] = "as-input"
+    row_order_note: str | None = None
+    # set when the release was run with held-back rows allowed (--allow-partial): whether any row
+    # is such a placeholder row, and how many, is never said (steward-only diagnostics)
+    placeholder_rows: str | None = None
+    # the central (eps, delta) that shuffling gives, when its conditions hold; else why not
+    central: dict[str, Any] | None = None
 
 
 class Manifest(_Strict):

@@ -297,12 +297,27 @@ class InputOptions(_Strict):
     csv_delimiter: Annotated[str, Field(min_length=1, max_length=1)] = ","
 
 
+class OutputOptions(_Strict):
+    row_order: Literal["shuffled", "as-input"] = Field(
+        "shuffled", description="shuffled (the default): the extract lists the rows in a keyed pseudorandom order, "
+                                "independent of the data, so a table exported sorted by a sensitive column does not "
+                                "give that column away through a row's neighbours. as-input: keep the input's row "
+                                "order (only when partners must align rows with another file; the input's order is "
+                                "then released and may disclose what it was sorted by).")
+    one_row_per_person: Annotated[bool, Field(strict=True)] = Field(
+        False, description="The steward declares that every person has at most one row of the input (with "
+                           "subject_key, privatize also checks it and refuses a release where a subject repeats). "
+                           "One of the conditions under which the manifest states the central guarantee that "
+                           "shuffling gives.")
+
+
 class Policy(_Strict):
     """A release policy (the file's top level)."""
 
     budget: Budget
     unlisted: Literal["error", "drop"] = "error"
     input: InputOptions = Field(default_factory=InputOptions)
+    output: OutputOptions = Field(default_factory=OutputOptions)
     quality: Quality | None = Field(None, description="Policy-wide default targets: max_se for frequency shares, "
                                                       "max_relative_se for means (a column's own quality overrides).")
     subject_key: Annotated[str, Field(strict=True, min_length=1)] | None = Field(
@@ -420,6 +435,8 @@ class Policy(_Strict):
         out = self.model_dump(mode="json", exclude_none=True)
         if out["budget"].get("strategy") == "split":
             del out["budget"]["strategy"]  # the default: policies keep the hash they had before strategies
+        if out.get("output") == OutputOptions().model_dump(mode="json"):
+            del out["output"]  # the default (shuffled rows, no declaration)
         return out
 
     def sha256(self) -> str:

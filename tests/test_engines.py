@@ -85,6 +85,12 @@ def sample_policy() -> dict:
     return p
 
 
+def as_input_policy() -> dict:
+    p = survey_policy()
+    p["output"] = {"row_order": "as-input"}
+    return p
+
+
 def parts_of(folder: Path) -> dict[str, bytes]:
     return {p.name: p.read_bytes() for p in sorted(folder.iterdir())}
 
@@ -105,18 +111,21 @@ def test_a_dataset_reads_as_one_table_in_path_order(dataset: Path, tmp_path: Pat
         privatize(f"file://{dataset}-missing", pol, KEY, tmp_path / "x.parquet", nonce=NONCE)
 
 
-@pytest.mark.parametrize("policy_fn", [survey_policy, memo_policy, sample_policy],
-                         ids=["survey", "memoized+discrete-laplace", "strategy-sample"])
+@pytest.mark.parametrize("policy_fn", [survey_policy, memo_policy, sample_policy, as_input_policy],
+                         ids=["survey", "memoized+discrete-laplace", "strategy-sample", "rows-as-input"])
 def test_dask_engine_writes_the_local_engines_parts_bit_for_bit(policy_fn, dataset: Path, tmp_path: Path,
                                                                 cluster: str) -> None:
     pol = parse_policy(policy_fn(), "survey.yaml")
     loc = privatize(dataset, pol, KEY, tmp_path / "local", nonce=NONCE, fragment_rows=2000)
     dsk = privatize(dataset, pol, KEY, tmp_path / "dask", nonce=NONCE, fragment_rows=2000, engine="dask",
                     scheduler=cluster)
-    # fragments: runs of whole row groups of at most 2000 rows (a.parquet: 1000-row groups; b: 700; c: 2500)
     assert loc.manifest.extract.parts is not None
     rows = [p.rows for p in loc.manifest.extract.parts]
-    assert rows == [2000, 1000, 1400, 1400, 1200] + [2500, 2500]
+    if pol.policy.output.row_order == "as-input":
+        # fragments: runs of whole row groups of at most 2000 rows (a.parquet: 1000-row groups; b: 700; c: 2500)
+        assert rows == [2000, 1000, 1400, 1400, 1200] + [2500, 2500]
+    else:  # shuffled across all parts: parts of 2000 rows by rank in the keyed order
+        assert rows == [2000] * 6
     assert parts_of(tmp_path / "local") == parts_of(tmp_path / "dask")
     assert loc.manifest.extract.sha256 == dsk.manifest.extract.sha256
     one = privatize(dataset, pol, KEY, tmp_path / "one.parquet", nonce=NONCE)
@@ -151,12 +160,18 @@ def test_a_dask_dataframe_is_released_like_its_rows(dataset: Path, tmp_path: Pat
 
     from ldptransform.engine_dask import privatize_frame
 
-    pol = parse_policy(survey_policy(), "survey.yaml")
     frame = dd.read_parquet(str(dataset / "a.parquet")).repartition(npartitions=3)
+    pol = parse_policy(as_input_policy(), "survey.yaml")
     res = privatize_frame(frame, pol, KEY, tmp_path / "frame", nonce=NONCE, scheduler=cluster)
     assert [p.rows for p in res.manifest.extract.parts] == [int(n) for n in frame.map_partitions(len).compute()]
     privatize(dataset / "a.parquet", pol, KEY, tmp_path / "a.parquet", nonce=NONCE)
     assert pq.read_table(tmp_path / "frame").equals(pq.read_table(tmp_path / "a.parquet"))
+    # shuffled (the default): parts of fragment_rows rows by rank, the local engine's bytes
+    pol = parse_policy(survey_policy(), "survey.yaml")
+    res = privatize_frame(frame, pol, KEY, tmp_path / "frame2", nonce=NONCE, scheduler=cluster, fragment_rows=1000)
+    loc = privatize(dataset / "a.parquet", pol, KEY, tmp_path / "a2", nonce=NONCE, fragment_rows=1000)
+    assert [p.rows for p in res.manifest.extract.parts] == [1000] * 3
+    assert parts_of(tmp_path / "frame2") == parts_of(tmp_path / "a2")
     with pytest.raises(UsageError, match="engine='dask'"):
         privatize_frame(frame, pol, KEY, tmp_path / "x", nonce=NONCE, engine="local")
 
@@ -312,17 +327,22 @@ def test_cli_dask_engine_on_a_local_cluster(dataset: Path, tmp_path: Path, ldpt_
     assert [p.name for p in tmp_path.iterdir() if "partial" in p.name] == []
 
 
-def test_allow_partial_with_held_back_rows_refuses_a_dataset_extract(dataset: Path, tmp_path: Path) -> None:
-    """Per-part row counts of known input ranges would show where rows were held back: refused,
-    nothing written; the same release to one file goes ahead."""
+def test_allow_partial_with_held_back_rows_writes_a_dataset_extract_of_every_row(dataset: Path,
+                                                                                  tmp_path: Path) -> None:
+    """Held-back people stay as placeholder rows, so a dataset extract shows nothing through its
+    parts' row counts: every part has fragment_rows rows, and the values equal the single-file
+    release's."""
     pol_d = memo_policy()
     pol_d["budget"]["lifetime_epsilon"] = 7.5  # one release costs 7 per row; a repeated staff_id costs more
     pol = parse_policy(pol_d, "survey.yaml")
-    led = tmp_path / "ledger.sqlite3"
+    led, led2 = tmp_path / "ledger.sqlite3", tmp_path / "ledger2.sqlite3"
     privatize(dataset / "a.parquet", pol, KEY, tmp_path / "n1.parquet", nonce=NONCE, ledger_path=led)
+    privatize(dataset / "a.parquet", pol, KEY, tmp_path / "m1.parquet", nonce=NONCE, ledger_path=led2)
     night2 = "0" * 31 + "2"  # the people of a.parquet are now past the budget, the others are not
-    with pytest.raises(UsageError, match="would show how many rows each part lost"):
-        privatize(dataset, pol, KEY, tmp_path / "ds", nonce=night2, ledger_path=led, allow_partial=True)
-    assert not (tmp_path / "ds").exists() and not (tmp_path / "ds.manifest.json").exists()
-    r = privatize(dataset, pol, KEY, tmp_path / "n2.parquet", nonce=night2, ledger_path=led, allow_partial=True)
-    assert r.held_back_subjects > 0 and r.manifest.rows < 12000
+    r = privatize(dataset, pol, KEY, tmp_path / "ds", nonce=night2, ledger_path=led, allow_partial=True,
+                  fragment_rows=5000)
+    assert r.held_back_subjects > 0 and r.manifest.rows == 12000
+    assert [p.rows for p in r.manifest.extract.parts] == [5000, 5000, 2000]
+    one = privatize(dataset, pol, KEY, tmp_path / "n2.parquet", nonce=night2, ledger_path=led2, allow_partial=True)
+    assert one.held_back_subjects == r.held_back_subjects and one.manifest.rows == 12000
+    assert pq.read_table(tmp_path / "ds").equals(pq.read_table(tmp_path / "n2.parquet"))

@@ -45,6 +45,7 @@ def policy(cap: float | None = None) -> dict[str, Any]:
     p: dict[str, Any] = {
         "budget": {"epsilon_per_row": 3.0},
         "subject_key": "person",
+        "output": {"row_order": "as-input"},  # these tests compare a person's reports across nights by row
         "columns": {
             "colour": {"type": "categorical", "categories": list(COLOURS), "epsilon": 1.0, "mechanism": "grr",
                        "memoize": True},
@@ -161,29 +162,52 @@ def test_cap_refuses_before_writing_anything(tmp_path: Path, private_dir: Path) 
         assert lg.verify().releases == 2
 
 
-def test_allow_partial_releases_only_subjects_within_budget(tmp_path: Path) -> None:
+def test_allow_partial_keeps_every_row_and_uses_no_data_of_held_back_people(tmp_path: Path,
+                                                                          monkeypatch: pytest.MonkeyPatch) -> None:
+    """Held-back people stay in the extract, at their rows, as rows whose reports are drawn from
+    placeholder values: the row count is the full table's, the other rows are exactly those of a
+    full release, and changing the held-back people's data changes no byte of the extract."""
     df = people()
     led = tmp_path / "ledger.sqlite3"
     run(df, policy(cap=5.5), tmp_path, NIGHT1, "night1", led)
     run(df, policy(cap=5.5), tmp_path, NIGHT2, "night2", led)
+    night2 = pd.read_parquet(tmp_path / "night2.parquet")
     df3 = df.copy()
     df3.loc[:6, "colour"] = [COLOURS[(COLOURS.index(c) + 1) % 5] for c in df.loc[:6, "colour"]]
     res = run(df3, policy(cap=5.5), tmp_path, NIGHT3, "night3", led, allow_partial=True)
     assert (res.held_back_subjects, res.held_back_rows) == (7, 7)
     out = pd.read_parquet(tmp_path / "night3.parquet")
-    assert len(out) == N - 7 == res.manifest.rows
-    # the released rows are exactly those a full release (same key and nonce) gives them
-    full = run(df3, policy(), tmp_path, NIGHT3, "full3", tmp_path / "other.sqlite3")
-    assert full.manifest.rows == N
-    np.testing.assert_array_equal(out["hours"], pd.read_parquet(tmp_path / "full3.parquet")["hours"].iloc[7:])
+    assert len(out) == N == res.manifest.rows
+    # the other rows are exactly those a full release (same key and nonce) gives them
+    full_res = run(df3, policy(), tmp_path, NIGHT3, "full3", tmp_path / "other.sqlite3")
+    full = pd.read_parquet(tmp_path / "full3.parquet")
+    assert full_res.manifest.rows == N
+    pd.testing.assert_frame_equal(out.iloc[7:], full.iloc[7:])
+    # held back: fresh columns are placeholder reports; a memoized cell whose value is the one the
+    # ledger recorded keeps the report released before (score); a changed one does not (colour)
+    assert not np.array_equal(out["hours"].iloc[:7], full["hours"].iloc[:7])
+    np.testing.assert_array_equal(out["score"].iloc[:7], night2["score"].iloc[:7])
+    assert (out["colour"].iloc[:7] != full["colour"].iloc[:7]).any()
+    # nothing of the held-back people's changed data reaches the extract
+    df4 = df3.copy()
+    df4.loc[:6, "hours"] = 59.0
+    df4.loc[:6, "colour"] = [COLOURS[(COLOURS.index(c) + 2) % 5] for c in df.loc[:6, "colour"]]  # changed too
+    monkeypatch.setenv("LDPT_PRIVATE_DIR", str(tmp_path / "other-private"))  # a separate steward state
+    (tmp_path / "other-private").mkdir(mode=0o700)
+    again_led = tmp_path / "again.sqlite3"
+    run(df, policy(cap=5.5), tmp_path, NIGHT1, "again1", again_led)
+    run(df, policy(cap=5.5), tmp_path, NIGHT2, "again2", again_led)
+    again = run(df4, policy(cap=5.5), tmp_path, NIGHT3, "again3", again_led, allow_partial=True)
+    assert again.manifest.extract.sha256 == res.manifest.extract.sha256
     s = spent(led, list(df["person"]))
     np.testing.assert_allclose(s[:7], 4.0)  # held back: not charged
     np.testing.assert_allclose(s[7:], 5.0)  # hours again, within the cap
     with Ledger.open(led, create=False) as lg:
         v = lg.verify()
         assert v.ok and v.releases == 3
-    manifest = (tmp_path / "night3.manifest.json").read_text()
-    assert "held" not in manifest.lower()
+    manifest = json.loads((tmp_path / "night3.manifest.json").read_text())
+    assert "7" not in json.dumps(manifest["privacy"]) and manifest["rows"] == N
+    assert "placeholder" in json.dumps(manifest["privacy"])  # it says the release may hold such rows
     diag = json.loads((tmp_path / "night3.diag.json").read_text())
     assert diag["ledger"]["held_back_subjects"] == 7 and diag["ledger"]["held_back_rows"] == 7
     # the held-back people's memo state was not updated: their old colour is still the recorded one
@@ -277,7 +301,7 @@ def test_cli_ledger_options(tmp_path: Path, ldpt, private_dir: Path) -> None:
     assert r.returncode == 0, r.stderr
     assert "3 subject(s) past the lifetime budget, 3 row(s)" in r.stderr
     man = json.loads((tmp_path / "b.manifest.json").read_text())
-    assert man["rows"] == 47
+    assert man["rows"] == 50  # held-back people stay, as placeholder rows
     r = ldpt("ledger", "verify", "--ledger", led)
     assert r.returncode == 0 and "2 release(s)" in r.stdout
     # no output may replace the ledger, whatever --overwrite says (nor through a symlink to it)

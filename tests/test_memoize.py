@@ -54,6 +54,7 @@ def policy(**over: Any) -> dict[str, Any]:
     p: dict[str, Any] = {
         "budget": {"epsilon_per_row": 3.0},
         "subject_key": "person",
+        "output": {"row_order": "as-input"},  # these tests align a person's reports across nights by row
         "columns": {
             "colour": {"type": "categorical", "categories": list(COLOURS), "epsilon": EPS, "mechanism": "grr",
                        "memoize": True},
@@ -243,6 +244,7 @@ def test_averaging_fifty_nights_recovers_nothing_with_memoization(tmp_path: Path
         if memo:
             col["memoize"] = True
         loaded = parse_policy({"budget": {"epsilon_per_row": EPS}, "subject_key": "person",
+                               "output": {"row_order": "as-input"},  # the attacker aligns people by row
                                "columns": {"score": col}}, "memo.yaml")
         reports = []
         for i, nonce in enumerate(NIGHTS):

@@ -190,12 +190,12 @@ def test_batch_size_invariance_and_reproduction(tmp_path):
 
 def test_row_order_matters_only_through_row_index(tmp_path):
     """Each row's noise is keyed by its global index: rows 0..n-1 of a file and the same rows
-    followed by more rows give the same first n reports."""
+    followed by more rows give the same first n reports (rows kept in input order)."""
     df = _synthetic(500)
     a, b = tmp_path / "a.parquet", tmp_path / "b.parquet"
     df.iloc[:300].to_parquet(a, index=False)
     df.to_parquet(b, index=False)
-    lp = load_policy(_write_policy(tmp_path / "p.yaml", POLICY))
+    lp = load_policy(_write_policy(tmp_path / "p.yaml", {**POLICY, "output": {"row_order": "as-input"}}))
     privatize(a, lp, KEY, tmp_path / "ea.parquet", nonce=nonce(9))
     privatize(b, lp, KEY, tmp_path / "eb.parquet", nonce=nonce(9))
     ea = pd.read_parquet(tmp_path / "ea.parquet")

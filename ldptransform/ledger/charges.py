@@ -60,6 +60,9 @@ class LedgerCharges:
     memo: dict[str, tuple[np.ndarray, np.ndarray, np.ndarray]]  # column -> (row index, subject hash, value hash)
     over_count: int = 0
     max_overshoot: float = 0.0
+    # per memoized column and input row: the value is the one last recorded (its report is the one
+    # already released); set by the release's pre-pass, used for the rows of held-back people
+    memo_same: dict[str, np.ndarray] = field(default_factory=dict)
 
     def memo_updates(self) -> dict[str, tuple[np.ndarray, np.ndarray]]:
         """Memo state of the released rows only (held-back subjects keep their old state)."""

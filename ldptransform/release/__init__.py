@@ -14,7 +14,7 @@ extract, then the public manifest (last), and the steward's private diagnostics.
 """
 
 from ..io import private_dir
-from .charges import ledger_prepass, precharge, record_release, rows_to_keep
+from .charges import ledger_prepass, precharge, record_release, rows_held
 from .columns import (
                       ColumnDiagnostics,
                       ColumnPlan,
@@ -47,7 +47,7 @@ from .parts import (
                       PartJob,
                       PartResult,
                       RowCutter,
-                      _keep_slice,
+                      _mask_slice,
                       fragment_part,
                       run_parts_local,
                       write_part,
@@ -57,9 +57,9 @@ from .run import ReleaseResult, privatize
 
 __all__ = ["DEFAULT_BATCH_ROWS", "ENGINES", "MAX_SUBJECT_BYTES", "MAX_WORDS_PER_CALL", "ColumnDiagnostics",
            "ColumnPlan", "ColumnSampler", "PartJob", "PartResult", "ReleaseOptions", "ReleaseResult", "RowCutter",
-           "_keep_slice", "attach_randomness", "blank_unreported", "column_entries", "encode", "encode_binned",
+           "_mask_slice", "attach_randomness", "blank_unreported", "column_entries", "encode", "encode_binned",
            "encode_categorical", "encode_numeric", "fragment_part", "ledger_prepass", "memo_composition_text",
            "memo_context", "memo_note", "memo_round", "memo_streams", "output_schema", "plan_columns", "precharge",
            "privacy_entry", "private_dir", "privatize", "privatize_batch", "randomize_rows", "read_columns",
-           "record_release", "rows_to_keep", "run_parts_local", "subject_bytes", "subject_text", "write_part",
+           "record_release", "rows_held", "run_parts_local", "subject_bytes", "subject_text", "write_part",
            "write_text_atomic_into"]

@@ -10,7 +10,6 @@ from typing import Any
 
 import numpy as np
 
-from ..errors import OptionError
 from ..keys import SecretKey
 from ..ledger import (
     BudgetExhaustedError,
@@ -25,7 +24,7 @@ from ..manifest import Manifest
 from ..policy import LoadedPolicy
 from .columns import ColumnDiagnostics, ColumnPlan
 from .encode import encode
-from .kernel import ColumnSampler
+from .kernel import ColumnSampler, Held
 from .memo import memo_context, memo_round, subject_bytes, subject_text
 from .options import ReleaseOptions
 
@@ -42,8 +41,10 @@ class _PrePass:
     sampler: ColumnSampler | None
     ledger: Any | None
 
-    def batch(self, batch: Any, row0: int) -> tuple[np.ndarray, np.ndarray, dict[str, tuple]]:
-        """(subject hashes, eps per row, memoized column -> (rows, subject hashes, value hashes))."""
+    def batch(self, batch: Any, row0: int) -> tuple[np.ndarray, np.ndarray, dict[str, tuple], dict[str, np.ndarray]]:
+        """(subject hashes, eps per row, memoized column -> (rows, subject hashes, value hashes),
+        memoized column -> rows whose value is the one the ledger last recorded: their memoized
+        report is the one already released, so repeating it costs nothing)."""
         n = batch.num_rows
         col = batch.column(self.subject)
         sh = subject_hashes(self.key, subject_text(col, self.subject, row0))
@@ -52,7 +53,7 @@ class _PrePass:
         subjects = subject_bytes(col, self.subject, row0) if self.memo_plans else None
         where = (self.ledger.positions(sh) if self.ledger is not None and self.memo_plans and reported is None
                  else None)
-        memo = {}
+        memo, same = {}, {}
         for p in self.memo_plans:
             vh = memo_value_hashes(self.key, p.rc.name, self.contexts[p.rc.name], sh,
                                    self._codes(p, batch.column(p.rc.name), row0, subjects))
@@ -60,12 +61,14 @@ class _PrePass:
             if reported is not None:  # sample: the state is the last value a row *reported*
                 rep = reported[:, p.sample_index]
                 memo[p.rc.name] = (rows[rep], sh[rep], vh[rep])
+                same[p.rc.name] = np.zeros(n, dtype=bool)  # charged as any column: nothing is free
                 continue
             last = (self.ledger.last_values(p.rc.name, sh, where) if self.ledger is not None
                     else np.zeros(n, dtype=sh.dtype))
             eps += np.where(vh != last, _eps(p), 0.0)
             memo[p.rc.name] = (rows, sh, vh)
-        return sh, eps, memo
+            same[p.rc.name] = (vh == last) if self.ledger is not None else np.zeros(n, dtype=bool)
+        return sh, eps, memo, same
 
     @staticmethod
     def _codes(p: ColumnPlan, values: Any, row0: int, subjects: Any) -> np.ndarray:
@@ -97,15 +100,19 @@ def ledger_prepass(src: Any, plans: list[ColumnPlan], policy: LoadedPolicy, key:
     base = policy.epsilon_total if sampler is not None else sum(_eps(p) for p in priv if p.memo is None)
     pre = _PrePass(subject, memo_plans, {p.rc.name: memo_context(p.rc) for p in memo_plans}, key, base, sampler,
                    ledger)
-    hashes, charges, memo = [], [], []
+    hashes, charges, memo, same = [], [], [], []
     row0 = 0
     for batch in src.batches([subject] + [p.rc.name for p in memo_plans], batch_rows):
-        sh, eps, m = pre.batch(batch, row0)
+        sh, eps, m, s = pre.batch(batch, row0)
         hashes.append(sh)
         charges.append(eps)
         memo.append(m)
+        same.append(s)
         row0 += batch.num_rows
-    return charges_of(hashes, charges, {p.rc.name: [m[p.rc.name] for m in memo] for p in memo_plans}, ledger, cap)
+    out = charges_of(hashes, charges, {p.rc.name: [m[p.rc.name] for m in memo] for p in memo_plans}, ledger, cap)
+    out.memo_same = {p.rc.name: np.concatenate([s[p.rc.name] for s in same]) if same else np.zeros(0, dtype=bool)
+                     for p in memo_plans}
+    return out
 
 
 def precharge(src: Any, plans: list[ColumnPlan], policy: LoadedPolicy, key: SecretKey, sampler: ColumnSampler | None,
@@ -141,18 +148,19 @@ def _refuse_over_budget(charges: LedgerCharges, opts: ReleaseOptions) -> None:
             f"ledger {opts.ledger_path}); nothing was written, as there is nothing left to release.")
 
 
-def rows_to_keep(charges: LedgerCharges | None, opts: ReleaseOptions) -> np.ndarray | None:
-    """--allow-partial: the input rows to release (None: all of them)."""
+def rows_held(charges: LedgerCharges | None, plans: list[ColumnPlan]) -> Held | None:
+    """--allow-partial: per privatized column, the input rows of people held back whose cell must
+    not use their data (None: nobody held back).  They stay in the extract, at their place, as
+    rows whose reports are of placeholder values: the row count and the rows' positions are those
+    of the full table, so the extract does not show who was held back, nor how many.  A memoized
+    cell whose value is the one the ledger last recorded for the person keeps its report (the very
+    report released before, which costs nothing and tells nothing new), so that aligning nights
+    by memoized reports does not single out the people held back."""
     if charges is None or charges.within.all():
         return None
-    if opts.dataset_out:
-        raise OptionError(
-            f"privatize(allow_partial=True, out={str(opts.out)!r})",
-            f"{{allow_partial}} would hold back {int((~charges.within).sum())} subject(s) (steward-only figure), "
-            "and a dataset extract would show how many rows each part lost: every part covers a known range "
-            "of input rows. Write a single-file extract instead ({out='FILE.parquet'}), or release without "
-            "{allow_partial} once everyone is within the budget; nothing was written.")
-    return charges.row_within
+    held = ~charges.row_within
+    return {p.rc.name: held & ~charges.memo_same[p.rc.name] if p.rc.name in charges.memo_same else held
+            for p in plans if p.rc.mechanism is not None}
 
 
 def record_release(ledger_path: Path, charges: LedgerCharges, plans: list[ColumnPlan], manifest: Manifest,

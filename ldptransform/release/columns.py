@@ -42,6 +42,7 @@ class ColumnPlan:
     memo: SubjectPRF | None = None         # memoize: words keyed by (subject, value code), not (nonce, row)
     memo_offset: SubjectPRF | None = None  # memoize on a numeric column: per-subject offset of the coarse rounding
     layer_stream: KeyedStream | None = None  # memoize with rerandomize_epsilon: the second layer's fresh words
+    placeholder_stream: KeyedStream | None = None  # --allow-partial: the placeholder values of held-back rows
 
 
 
@@ -100,6 +101,7 @@ def attach_randomness(plans: list[ColumnPlan], policy: LoadedPolicy, key: Secret
     for p in plans:
         if p.rc.mechanism is not None:
             p.stream = KeyedStream(key, nonce, "column", p.rc.name)
+            p.placeholder_stream = KeyedStream(key, nonce, "placeholder", p.rc.name)
             if p.rc.mechanism.variable_draws:
                 p.draw_stream = KeyedStream(key, nonce, "column-draws", p.rc.name)
             if p.rc.memoize:

@@ -12,6 +12,7 @@ for every row, so nothing else changes with the choice or the batch size.
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
@@ -30,6 +31,7 @@ if TYPE_CHECKING:
 MAX_WORDS_PER_CALL = 1 << 22  # 32 MiB of PRF words per randomize call, whatever the report width
 
 Subjects = tuple[np.ndarray, np.ndarray]  # a batch's subject column: (UTF-8 bytes, n + 1 offsets)
+Held = Mapping[str, np.ndarray]  # privatized column -> rows whose cell is a placeholder report (--allow-partial)
 
 
 @dataclass
@@ -62,9 +64,26 @@ def blank_unreported(arr: pa.Array, reported: np.ndarray) -> pa.Array:
     return pc.take(kept, pa.array(idx, mask=~reported))
 
 
+def rebuild_dictionary(values: pa.Array) -> pa.Array:
+    """A dictionary-encoded column with a dictionary of only the values its rows hold (an input
+    file's dictionary can list values of rows that are not released, or that no row has)."""
+    if isinstance(values, pa.ChunkedArray):
+        values = values.combine_chunks()
+    if not pa.types.is_dictionary(values.type):
+        return values
+    rebuilt = values.dictionary_decode().dictionary_encode()
+    return rebuilt if rebuilt.type == values.type else pc.cast(rebuilt, values.type)
+
+
 def privatize_batch(batch: pa.RecordBatch, row0: int, plans: list[ColumnPlan], schema: pa.Schema,
-                    sampler: ColumnSampler | None = None, subject_key: str | None = None) -> pa.RecordBatch:
-    """The pure batch kernel: raw batch rows [row0, row0+n) -> privatized batch."""
+                    sampler: ColumnSampler | None = None, subject_key: str | None = None,
+                    held: Held | None = None) -> pa.RecordBatch:
+    """The pure batch kernel: raw batch rows [row0, row0+n) -> privatized batch.
+
+    ``held`` (``--allow-partial``): per privatized column, True for the rows of people held back
+    by the ledger whose cell must not use their data.  Those cells are reports of placeholder
+    values drawn from the keyed stream (``placeholders``), independently of anyone's data; their
+    public cells are copied as any row's are (a public column is released in the clear)."""
     n = batch.num_rows
     arrays: list[pa.Array] = []
     reported = sampler.reported(row0, n) if sampler is not None else None
@@ -72,9 +91,10 @@ def privatize_batch(batch: pa.RecordBatch, row0: int, plans: list[ColumnPlan], s
     for p in plans:
         values = batch.column(p.rc.name)
         if p.rc.type == "public":
+            values = rebuild_dictionary(values)
             arrays.append(values if values.type == p.fields[0].type else pc.cast(values, p.fields[0].type))
             continue
-        out = privatize_column(p, values, row0, subjects)
+        out = privatize_column(p, values, row0, subjects, None if held is None else held.get(p.rc.name))
         if reported is None:
             arrays.extend(out)
         else:
@@ -85,9 +105,35 @@ def privatize_batch(batch: pa.RecordBatch, row0: int, plans: list[ColumnPlan], s
     return pa.RecordBatch.from_arrays(arrays, schema=schema)
 
 
-def privatize_column(p: ColumnPlan, values: pa.Array, row0: int, subjects: Subjects | None) -> list[pa.Array]:
-    """One privatized column of a batch: encode, (memoized: round to the memo grid), randomize."""
+PLACEHOLDER_CODE = -1  # the value code under which a memoized column's placeholder value is drawn
+
+
+def placeholders(p: ColumnPlan, row0: int, n: int, subjects: Subjects | None = None) -> np.ndarray:
+    """Placeholder inputs for rows [row0, row0 + n) of a privatized column: uniform over the
+    column's encoded domain (its codes, or its bounds), drawn from keyed words, never from data.
+    The values a held-back row's reports are made from.  A memoized column draws them from its
+    per-person words (the reserved code PLACEHOLDER_CODE), so a person held back on several
+    nights keeps one placeholder (and so one report), as an unchanged value would; other
+    columns from the release's own stream of placeholders."""
+    if p.memo is not None and subjects is not None:
+        w = p.memo.rows(subjects[0], subjects[1], np.full(n, PLACEHOLDER_CODE, dtype=np.int64)).take(0, n, 2)[:, 0]
+    else:
+        assert p.placeholder_stream is not None
+        w = p.placeholder_stream.words(row0, n, 2)[:, 0]
+    if p.rc.type in ("categorical", "binned"):
+        return (w % np.uint64(len(p.rc.labels))).astype(np.int64)
+    lo, hi = p.rc.config.domain
+    u = (w >> np.uint64(11)).astype(np.float64) * 2.0 ** -53
+    return np.minimum(lo + u * (hi - lo), hi)
+
+
+def privatize_column(p: ColumnPlan, values: pa.Array, row0: int, subjects: Subjects | None,
+                     held: np.ndarray | None = None) -> list[pa.Array]:
+    """One privatized column of a batch: encode, (memoized: round to the memo grid), randomize.
+    Rows marked ``held`` randomize placeholder values instead of their own."""
     x = encode(values, p, row0)
+    if held is not None and held.any():
+        x = np.where(held, placeholders(p, row0, len(x), subjects), x).astype(x.dtype)
     assert p.rc.mechanism is not None and p.stream is not None
     if p.memo is None:
         return randomize_rows(p, x, row0)

@@ -69,14 +69,34 @@ def check_paths_apart(opts: ReleaseOptions, policy: LoadedPolicy, key: SecretKey
                              "dataset. Write it outside that folder.")
 
 
-def privacy_entry(policy: LoadedPolicy, plans: list[ColumnPlan]) -> Privacy:
+ROW_ORDER_NOTES = {
+    "shuffled": "the rows are listed in a keyed pseudorandom order, independent of the data and of the input's "
+                "order (only the data steward can recompute it); public columns travel with their rows",
+    "as-input": "the rows keep the input's order, at the data steward's request: if the input was sorted or "
+                "grouped by anything (a site, a date, a pay grade), a row's neighbours tell about it, whatever "
+                "the privatized columns say",
+}
+PLACEHOLDER_NOTE = (
+    "this release may contain placeholder rows: rows of people past their lifetime budget, kept at their place "
+    "so that the row count is the full table's, whose privatized cells are reports of values drawn at random "
+    "(uniformly over each column's categories or bounds) independently of anyone's data; their public cells "
+    "are their own. Whether there are any, and how many, is not published. Estimates from this extract "
+    "describe the released rows, placeholder rows included (they pull every estimate toward the uniform "
+    "distribution over each column's domain).")
+
+
+def privacy_entry(policy: LoadedPolicy, plans: list[ColumnPlan], opts: ReleaseOptions | None = None,
+                  rows: int | None = None) -> Privacy:
     d, m = len(policy.policy.privatized_columns), policy.policy.reported_columns
     memo_text = memo_composition_text(policy)
+    order = policy.policy.output.row_order
     common: dict[str, Any] = {
         "model": "local differential privacy: every row is randomized on its own, column by column",
         "epsilon_per_row_budget": policy.policy.budget.epsilon_per_row,
         "public_columns": [p.rc.name for p in plans if p.rc.type == "public"],
-        "strategy": policy.strategy, "privatized_columns": d, "reported_columns": m}
+        "strategy": policy.strategy, "privatized_columns": d, "reported_columns": m,
+        "row_order": order, "row_order_note": ROW_ORDER_NOTES[order],
+        "placeholder_rows": PLACEHOLDER_NOTE if opts is not None and opts.allow_partial else None}
     if policy.strategy == "sample":
         return Privacy(**common, epsilon_per_row_used=policy.epsilon_total,
                        composition=f"sequential over the columns a row reports: each row reports {m} of its {d} "
@@ -95,7 +115,8 @@ def build_manifest(policy: LoadedPolicy, key: SecretKey, plans: list[ColumnPlan]
     return Manifest(
         tool_version=__version__, created_utc=now_utc(), rows=written.rows, nonce=opts.nonce,
         key_fingerprint=key.fingerprint(), prf=PRF_VERSION, policy_sha256=policy.policy.sha256(),
-        policy=policy.policy.canonical(), privacy=privacy_entry(policy, plans), extract=written.info,
+        policy=policy.policy.canonical(), privacy=privacy_entry(policy, plans, opts, written.rows),
+        extract=written.info,
         columns=column_entries(plans, policy.report_rate), cautions=list(CAUTIONS))
 
 
@@ -115,7 +136,7 @@ def diagnostics(plans: list[ColumnPlan], written: Written, opts: ReleaseOptions,
         diag["ledger"] = {
             "path": str(opts.ledger_path), "lifetime_epsilon": opts.lifetime_epsilon,
             "subjects_charged": int(charges.within.sum()),
-            "held_back_subjects": int((~charges.within).sum()), "held_back_rows": written.input_rows - written.rows,
+            "held_back_subjects": int((~charges.within).sum()), "held_back_rows": int((~charges.row_within).sum()),
             "eps_charged_max": float(charges.eps[charges.within].max()) if charges.within.any() else 0.0,
         }
     return diag

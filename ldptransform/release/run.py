@@ -16,7 +16,7 @@ from ..keys import SecretKey
 from ..ledger import LedgerCharges
 from ..manifest import Manifest
 from ..policy import LoadedPolicy
-from .charges import precharge, record_release, rows_to_keep
+from .charges import precharge, record_release, rows_held
 from .columns import (
     ColumnPlan,
     attach_randomness,
@@ -26,6 +26,7 @@ from .columns import (
 )
 from .options import DEFAULT_BATCH_ROWS, ReleaseOptions
 from .parts import PartJob, write_extract
+from .shuffle import tag_stream
 from .publish import (
     build_manifest,
     check_destinations,
@@ -90,11 +91,13 @@ def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey
     schema = output_schema(plans, src.schema, src.format)
     sampler = attach_randomness(plans, policy, key, opts.nonce)
     read_cols, subject_key = read_columns(plans, policy)
-    job = PartJob(read_cols, opts.batch_rows, plans, schema, sampler, subject_key, dictionary_columns(src, plans))
+    job = PartJob(read_cols, opts.batch_rows, plans, schema, sampler, subject_key, dictionary_columns(src, plans),
+                  order=tag_stream(key, opts.nonce) if policy.policy.output.row_order == "shuffled" else None,
+                  public=frozenset(p.rc.name for p in plans if p.rc.type == "public"))
     charges = precharge(src, plans, policy, key, sampler, opts)
-    keep = rows_to_keep(charges, opts)
+    held = rows_held(charges, plans)
     with StagedFiles() as staged:
-        written = write_extract(job, src, keep, opts, staged, on_progress)
+        written = write_extract(job, src, held, opts, staged, on_progress)
         manifest = build_manifest(policy, key, plans, written, opts)
         stage_text(staged, opts.manifest_path, manifest.to_json())
         diag = diagnostics(plans, written, opts, opts.manifest_path, charges, sampler is not None,
@@ -102,9 +105,9 @@ def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey
         stage_text(staged, diag_path, json.dumps(diag, indent=2) + "\n", mode=0o600)
         release_id = _record(staged, charges, plans, manifest, opts)
         move_into_place(staged, opts, release_id)
-    held = (0, 0) if charges is None else (int((~charges.within).sum()), written.input_rows - written.rows)
+    counts = (0, 0) if charges is None else (int((~charges.within).sum()), int((~charges.row_within).sum()))
     return ReleaseResult(manifest, opts.out, opts.manifest_path, diag_path, time.perf_counter() - t0,
-                         opts.ledger_path if charges is not None else None, release_id, *held)
+                         opts.ledger_path if charges is not None else None, release_id, *counts)
 
 
 def _record(staged: StagedFiles, charges: LedgerCharges | None, plans: list[ColumnPlan], manifest: Manifest,

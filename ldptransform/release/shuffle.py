@@ -1,0 +1,268 @@
+"""The keyed shuffle of an extract's rows (policy ``output.row_order: shuffled``, the default).
+
+The extract's row order must not carry the input's order: a table exported sorted by site, by
+date or by pay would otherwise give that column away through a row's neighbours.  Every input
+row ``r`` gets a 64-bit tag, word 0 of row ``r`` of the keyed stream (key, nonce, "row-order"),
+and the extract lists the rows by increasing tag (equal tags, about one pair in 2^64 / n, by
+input row).  So the order is a uniformly random permutation, independent of the data,
+reproducible from the key and the nonce, and the same for every batch size, engine and part
+layout: the tags depend on nothing but the global row index.  A partner who reads the extract
+learns nothing about which input row a report came from (only the steward can recompute it).
+
+Memory stays bounded whatever the number of rows (an external sort in two passes):
+
+1. *Runs.*  Privatized batches are gathered into runs of at most ``RUN_ROWS`` rows; each run is
+   sorted by tag and spilled to an Arrow IPC file in a private staging folder (mode 0700: with
+   the tags and the run order it would undo the shuffle), in record batches of ``CHUNK_ROWS``
+   rows whose first tags are kept in memory.  A histogram of the tags' top ``BUCKET_BITS`` bits
+   counts the rows of every tag bucket.  A release that fits in one run is never spilled.
+2. *Windows.*  The histogram cuts the tag range into windows of at most about ``WINDOW_ROWS``
+   rows (whole buckets); every window is read from every run (only the chunks that overlap
+   it), merged by a stable sort on the tag, and written out.  A window's rows are known exactly
+   in advance, so a dataset's parts (``fragment_rows`` rows each, by rank) can be written by
+   different workers (``write_ranks``), byte for byte as in one pass.
+
+Costs (measured by benchmarks/bench_privatize.py, see README): one extra write and read of the
+privatized rows, plus sorting; peak memory holds one run or one window.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import shutil
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+
+from ..io import partial_path, remove_stale_partials
+from ..random.bits import KeyedStream
+from .kernel import rebuild_dictionary
+
+ROW_ORDER_PURPOSE = "row-order"
+RUN_ROWS = 1 << 20      # rows gathered, sorted and spilled together
+CHUNK_ROWS = 8192       # rows per record batch of a spilled run (the unit read back)
+WINDOW_ROWS = 1 << 20   # rows merged in memory at once (at most about this many)
+BUCKET_BITS = 16        # tag buckets counted: windows are whole buckets
+_BUCKET_SHIFT = np.uint64(64 - BUCKET_BITS)
+TAG_COLUMN = "__ldpt_row_tag"
+
+
+def tag_stream(key: object, nonce: str) -> KeyedStream:
+    """The release's keyed stream of row tags."""
+    return KeyedStream(key, nonce, ROW_ORDER_PURPOSE)  # type: ignore[arg-type]
+
+
+def row_tags(stream: KeyedStream, row0: int, n: int) -> np.ndarray:
+    """The tags of global rows [row0, row0 + n): uint64, one per row."""
+    return np.ascontiguousarray(stream.words(row0, n, 2)[:, 0])
+
+
+def tag_name(schema: pa.Schema) -> str:
+    """A column name for the tags that no output column has."""
+    name = TAG_COLUMN
+    while name in schema.names:
+        name += "_"
+    return name
+
+
+@dataclass
+class Run:
+    """One sorted run: spilled (``path``, the first tag of every chunk) or kept in memory."""
+
+    rows: int
+    path: str | None = None
+    firsts: np.ndarray | None = None
+    table: pa.Table | None = None
+    tags: np.ndarray | None = None
+
+
+@dataclass
+class Runs:
+    """What the first pass leaves: the sorted runs in input-row order and the tag histogram."""
+
+    runs: list[Run] = field(default_factory=list)
+    hist: np.ndarray = field(default_factory=lambda: np.zeros(1 << BUCKET_BITS, dtype=np.int64))
+
+    @property
+    def rows(self) -> int:
+        return int(self.hist.sum())
+
+    def extend(self, other: Runs) -> None:
+        """Append the runs of a later stretch of rows (dask: one fragment's runs after another's)."""
+        self.runs.extend(other.runs)
+        self.hist += other.hist
+
+
+def spill_folder(dest: Path) -> Path:
+    """A fresh private folder (0700) beside the extract for the spilled runs (same disk as the
+    output); one left by a killed run is removed by the next run on the same destination."""
+    marker = Path(dest).parent / f"{Path(dest).name}.row-order"
+    remove_stale_partials(marker)
+    folder = partial_path(marker)
+    os.mkdir(folder, 0o700)
+    return folder
+
+
+def remove_spill(folder: Path | None) -> None:
+    if folder is not None:
+        shutil.rmtree(folder, ignore_errors=True)
+
+
+class RunWriter:
+    """Gathers privatized batches with their tags, sorts them into runs and spills full runs."""
+
+    def __init__(self, schema: pa.Schema, folder: Path | None, prefix: str) -> None:
+        self.schema = schema
+        self.tag = tag_name(schema)
+        self.folder, self.prefix = folder, prefix
+        self.out = Runs()
+        self._batches: list[pa.RecordBatch] = []
+        self._tags: list[np.ndarray] = []
+        self._rows = 0
+
+    def add(self, batch: pa.RecordBatch, tags: np.ndarray) -> None:
+        if batch.num_rows == 0:
+            return
+        self._batches.append(batch)
+        self._tags.append(tags)
+        self._rows += batch.num_rows
+        if self._rows >= RUN_ROWS:
+            self._spill()
+
+    def _sorted(self) -> tuple[pa.Table, np.ndarray]:
+        tags = np.concatenate(self._tags)
+        order = np.argsort(tags, kind="stable")
+        table = pa.Table.from_batches(self._batches, schema=self.schema).take(pa.array(order))
+        self._batches, self._tags, self._rows = [], [], 0
+        return table, tags[order]
+
+    def _count(self, tags: np.ndarray) -> None:
+        self.out.hist += np.bincount((tags >> _BUCKET_SHIFT).astype(np.int64), minlength=1 << BUCKET_BITS)
+
+    def _spill(self) -> None:
+        if self.folder is None:
+            raise AssertionError("a run to spill without a spill folder")
+        table, tags = self._sorted()
+        self._count(tags)
+        path = self.folder / f"{self.prefix}-{len(self.out.runs):06d}.arrow"
+        table = table.append_column(self.tag, pa.array(tags, pa.uint64()))
+        with pa.OSFile(str(path), "wb") as sink, pa.ipc.new_file(sink, table.schema) as w:
+            for batch in table.to_batches(max_chunksize=CHUNK_ROWS):
+                w.write_batch(batch)
+        self.out.runs.append(Run(rows=len(tags), path=str(path), firsts=np.ascontiguousarray(tags[::CHUNK_ROWS])))
+
+    def finish(self, *, in_memory: bool) -> Runs:
+        """The runs; the last one stays in memory when ``in_memory`` (and nothing was spilled
+        before it, so that a small release never touches the disk) or else is spilled too."""
+        if self._rows:
+            if in_memory and not self.out.runs:
+                table, tags = self._sorted()
+                self._count(tags)
+                self.out.runs.append(Run(rows=len(tags), table=table, tags=tags))
+            else:
+                self._spill()
+        return self.out
+
+
+@dataclass(frozen=True)
+class Window:
+    """Tag buckets [b0, b1) and the rows they hold; ``rank0``: rows in earlier windows."""
+
+    b0: int
+    b1: int
+    rows: int
+    rank0: int
+
+
+def windows(runs: Runs, target: int = WINDOW_ROWS) -> list[Window]:
+    """Whole-bucket windows of at most ``target`` rows each (one bucket may hold more)."""
+    out: list[Window] = []
+    cum = np.concatenate([[0], np.cumsum(runs.hist)])
+    b0, total = 0, int(cum[-1])
+    nb = len(runs.hist)
+    while b0 < nb and int(cum[b0]) < total:
+        # the furthest b1 with cum[b1] - cum[b0] <= target, at least one bucket further
+        b1 = int(np.searchsorted(cum, cum[b0] + target, side="right")) - 1
+        b1 = min(nb, max(b1, b0 + 1))
+        out.append(Window(b0, b1, int(cum[b1] - cum[b0]), int(cum[b0])))
+        b0 = b1
+    return out
+
+
+def _bounds(w: Window) -> tuple[np.uint64, np.uint64 | None]:
+    lo = np.uint64(w.b0) << _BUCKET_SHIFT
+    hi = None if w.b1 >= (1 << BUCKET_BITS) else np.uint64(w.b1) << _BUCKET_SHIFT
+    return lo, hi
+
+
+def _cut(tags: np.ndarray, lo: np.uint64, hi: np.uint64 | None) -> tuple[int, int]:
+    s = int(np.searchsorted(tags, lo, side="left"))
+    e = len(tags) if hi is None else int(np.searchsorted(tags, hi, side="left"))
+    return s, e
+
+
+def read_window(runs: Runs, w: Window, schema: pa.Schema, rebuild: frozenset[str] = frozenset()) -> pa.Table:
+    """The rows of window ``w`` in extract order (by tag; equal tags by input row), with the
+    dictionaries of the dictionary-encoded columns named in ``rebuild`` (public columns) rebuilt
+    from the window's own values."""
+    lo, hi = _bounds(w)
+    tag = tag_name(schema)
+    pieces: list[pa.Table] = []
+    tag_parts: list[np.ndarray] = []
+    for run in runs.runs:
+        if run.table is not None:
+            assert run.tags is not None
+            s, e = _cut(run.tags, lo, hi)
+            if e > s:
+                pieces.append(run.table.slice(s, e - s))
+                tag_parts.append(run.tags[s:e])
+            continue
+        assert run.path is not None and run.firsts is not None
+        i0 = max(0, int(np.searchsorted(run.firsts, lo, side="right")) - 1)
+        i1 = len(run.firsts) if hi is None else int(np.searchsorted(run.firsts, hi, side="left"))
+        if i1 <= i0:
+            continue
+        with pa.OSFile(run.path, "rb") as f:
+            reader = pa.ipc.open_file(f)
+            for i in range(i0, i1):
+                b = reader.get_batch(i)
+                t = b.column(tag).to_numpy()
+                s, e = _cut(t, lo, hi)
+                if e > s:
+                    pieces.append(pa.Table.from_batches([b.slice(s, e - s).drop_columns([tag])]))
+                    tag_parts.append(t[s:e])
+    if not pieces:
+        return schema.empty_table()
+    tags = np.concatenate(tag_parts)
+    order = np.argsort(tags, kind="stable")
+    table = pa.concat_tables(pieces).take(pa.array(order))
+    if table.num_rows != w.rows:
+        raise AssertionError(f"window of tag buckets [{w.b0}, {w.b1}) read {table.num_rows} rows, not {w.rows}")
+    cols = [rebuild_dictionary(table.column(i)) if f.name in rebuild and pa.types.is_dictionary(f.type)
+            else table.column(i) for i, f in enumerate(schema)]
+    return pa.Table.from_arrays(cols, schema=schema)
+
+
+def write_ranks(runs: Runs, wins: list[Window], schema: pa.Schema, start: int, stop: int,
+                rebuild: frozenset[str] = frozenset()) -> Iterator[pa.RecordBatch]:
+    """The extract's rows of ranks [start, stop), in order, window by window."""
+    for w in wins:
+        if w.rank0 + w.rows <= start or w.rank0 >= stop or w.rows == 0:
+            continue
+        table = read_window(runs, w, schema, rebuild)
+        s, e = max(start, w.rank0) - w.rank0, min(stop, w.rank0 + w.rows) - w.rank0
+        yield from table.slice(s, e - s).to_batches()
+
+
+@contextlib.contextmanager
+def spilling(dest: Path, needed: bool) -> Iterator[Path | None]:
+    """A private spill folder beside ``dest`` for the duration of a release (None if not needed)."""
+    folder = spill_folder(dest) if needed else None
+    try:
+        yield folder
+    finally:
+        remove_spill(folder)
