@@ -169,7 +169,7 @@ def test_a_dask_dataframe_is_released_like_its_rows(dataset: Path, tmp_path: Pat
     # shuffled (the default): parts of fragment_rows rows by rank, the local engine's bytes
     pol = parse_policy(survey_policy(), "survey.yaml")
     res = privatize_frame(frame, pol, KEY, tmp_path / "frame2", nonce=NONCE, scheduler=cluster, fragment_rows=1000)
-    loc = privatize(dataset / "a.parquet", pol, KEY, tmp_path / "a2", nonce=NONCE, fragment_rows=1000)
+    privatize(dataset / "a.parquet", pol, KEY, tmp_path / "a2", nonce=NONCE, fragment_rows=1000)
     assert [p.rows for p in res.manifest.extract.parts] == [1000] * 3
     assert parts_of(tmp_path / "frame2") == parts_of(tmp_path / "a2")
     with pytest.raises(UsageError, match="engine='dask'"):
