@@ -97,6 +97,8 @@ def _check_secrets(manifest: Manifest, text: str, key: SecretKey | None, rep: _C
 
 def _channel_issues(manifest: Manifest, issues: list[str]) -> float:
     """Each column's channel against its stated eps; returns the sum of the column epsilons."""
+    from .random.variates import exp_lower_bound
+
     total = 0.0
     for c in manifest.columns:
         if c.mechanism is None:
@@ -112,6 +114,14 @@ def _channel_issues(manifest: Manifest, issues: list[str]) -> float:
         if not worst <= eps + 1e-9:
             issues.append(f"column {c.name!r}: its channel allows a likelihood ratio of e^{worst:.6g}, above its "
                           f"stated eps {eps:g}")
+            continue
+        # a threshold sampler: the channel its integer thresholds realize, in exact rational
+        # arithmetic, against a certified lower bound of e^eps (docs/formulas.md section 10.4)
+        realized = built.realized_ratio()
+        if realized is not None and not (math.isfinite(eps) and eps > 0 and realized <= exp_lower_bound(eps)):
+            issues.append(f"column {c.name!r}: the channel its integer thresholds realize has a worst likelihood "
+                          f"ratio of {float(realized):.17g}, not certified to be at most e^eps for its stated eps "
+                          f"{eps:g} (exact rational check)")
     return total
 
 

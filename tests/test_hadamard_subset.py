@@ -170,18 +170,20 @@ def test_channels_refuse_large_alphabets():
 # --------------------------------------------------------------------------------------
 
 def _branch_threshold(m, x: int, in_branch) -> float:
-    """Realized P(first branch) of the word-0 coin for input x, by bisection over the 53-bit
-    prefix of word 0 (the coin is an integer comparison, ``random.variates.unit_below``)."""
-    lo, hi = 0, 1 << 53
+    """Realized P(first branch) of the word-0 coin for input x, by bisection over the whole
+    64-bit word 0 (the coin is the integer comparison word < Tp, ``random.variates.words_below``):
+    the number of words that take the first branch over 2^64, which must be Tp / 2^64 exactly."""
+    lo, hi = 0, 1 << 64
     w = np.zeros((1, m.words_per_row), dtype=np.uint64)
     while lo < hi:
         mid = (lo + hi) // 2
-        w[0, 0] = np.uint64(mid << 11)
+        w[0, 0] = np.uint64(mid)
         if in_branch(m, np.array([x]), w)[0]:
             lo = mid + 1
         else:
             hi = mid
-    return lo / float(1 << 53)
+    assert lo == m.thresholds[0]
+    return lo / float(1 << 64)
 
 
 def _had_in_set(m, x, w):
@@ -212,7 +214,7 @@ def test_hadamard_sampler_realizes_the_channel(eps, k):
         np.add.at(counts, (xs, y), 1)
         assert np.array_equal(counts, 2 * (member if branch_in else ~member))
         p_in = np.array([_branch_threshold(m, x, _had_in_set) for x in range(min(k, 4))])
-        assert np.abs(p_in - m.p_star).max() <= 2.0 ** -53
+        assert (p_in == m.p_star).all()
         realized += (p_in[0] if branch_in else 1 - p_in[0]) * counts / K
     np.testing.assert_allclose(realized, m.channel(), rtol=0, atol=1e-15)
 
@@ -239,7 +241,7 @@ def test_subset_sampler_realizes_the_channel(k, msize):
     realized = np.zeros((k, len(outs)))
     contains = np.array([[s[x] == "1" for s in outs] for x in range(k)])
     p_in = _branch_threshold(m, 0, lambda mm, x, w: mm.randomize_bits(x, w)[np.arange(len(x)), x])
-    assert abs(p_in - m.p_star) <= 2.0 ** -53
+    assert p_in == m.p_star
     for word0, branch_in in ((0, True), (TOP, False)):
         xs = np.repeat(np.arange(k), total)
         w = np.zeros((k * total, 1 + D), dtype=np.uint64)

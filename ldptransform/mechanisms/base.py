@@ -49,6 +49,7 @@ from __future__ import annotations
 
 import math
 from abc import ABC, abstractmethod
+from fractions import Fraction
 from typing import TYPE_CHECKING, Any, ClassVar
 from collections.abc import Mapping, Sequence
 
@@ -253,6 +254,14 @@ class Mechanism(ABC):
     @abstractmethod
     def max_log_ratio(self) -> float:
         """max over outputs y and inputs x, x' of ln P(y|x)/P(y|x'), computed exactly."""
+
+    def realized_ratio(self) -> Fraction | None:
+        """For a sampler that compares words with integer thresholds (probabilities T / 2^64): the
+        worst likelihood ratio of the channel those thresholds realize, as an exact rational (or an
+        exact rational upper bound of it, where the mechanism says so), to be compared with a
+        certified lower bound of e^eps (``random.variates.exp_lower_bound``; docs/formulas.md
+        section 10.4).  None for the other mechanisms, whose check is ``max_log_ratio``."""
+        return None
 
     def describe(self) -> str:
         return self.name

@@ -11,6 +11,7 @@ category the policy asks for, such as one for missing values).
 from __future__ import annotations
 
 import math
+from fractions import Fraction
 from functools import cached_property
 from typing import Annotated, Any, ClassVar
 
@@ -20,7 +21,16 @@ import pyarrow.compute as pc
 from pydantic import BaseModel, ConfigDict, Field
 
 from ..errors import PolicyError
-from ..random.variates import to_below, to_unit, unit_below
+from ..random.variates import (
+    THRESHOLD_ONE,
+    exp_lower_bound,
+    grr_thresholds,
+    randomized_response,
+    second_threshold,
+    symmetric_thresholds,
+    to_below,
+    words_below,
+)
 from .base import Mechanism, check_epsilon, register
 from .decoders import FrequencyDecoder
 from .bounds import frequency_lower_bound
@@ -72,7 +82,7 @@ class FrequencyOracle(Mechanism):
         raise NotImplementedError
 
     def to_spec(self) -> dict[str, Any]:
-        return self._layer_spec({"mechanism": self.name, "epsilon": self.epsilon, "categories": list(self.categories)})
+        return {"mechanism": self.name, "epsilon": self.epsilon, "categories": list(self.categories)}
 
     @classmethod
     def from_spec(cls, spec: dict[str, Any]) -> FrequencyOracle:
@@ -180,22 +190,37 @@ class FrequencyOracle(Mechanism):
 @register
 class GRR(FrequencyOracle):
     """Generalized (k-ary) randomized response: keep the value w.p. e^eps/(e^eps+k-1), else
-    report one of the other k-1 values uniformly.  Output: the reported category label."""
+    report one of the other k-1 values uniformly.  Output: the reported category label.
+
+    Sampling (docs/formulas.md section 10.4): one word w per row against integer masses
+    Tp + (k-1) Tq = 2^64 (``thresholds``): w < Tp keeps the value, else the other value number
+    (w - Tp) // Tq is reported, so P(keep) = Tp / 2^64 and each other value has Tq / 2^64 exactly.
+    Tq = ceil(2^64 / (L + k - 1)) with L a certified lower bound of e^eps: the realized ratio
+    Tp / Tq is at most e^eps exactly, and p*, q* are the realized Tp / 2^64, Tq / 2^64 (within
+    about 2^-64 of the ideal values)."""
 
     name: ClassVar[str] = "grr"
 
+    @cached_property
+    def thresholds(self) -> tuple[int, int]:
+        """(Tp, Tq): the integer masses in units of 2^-64 of keeping the value and of each other value."""
+        return grr_thresholds(exp_lower_bound(self.epsilon), self.k)
+
+    def realized_ratio(self) -> Fraction:
+        Tp, Tq = self.thresholds
+        return Fraction(max(Tp, Tq), min(Tp, Tq))
+
     @property
     def p_star(self) -> float:
-        e = math.exp(self.epsilon)
-        return e / (e + self.k - 1)
+        return self.thresholds[0] / THRESHOLD_ONE
 
     @property
     def q_star(self) -> float:
-        return 1.0 / (math.exp(self.epsilon) + self.k - 1)
+        return self.thresholds[1] / THRESHOLD_ONE
 
     @property
     def words_per_row(self) -> int:
-        return 2
+        return 1
 
     def output_fields(self, column: str) -> list[pa.Field]:
         return [pa.field(column, pa.dictionary(pa.int32(), pa.string()))]
@@ -204,10 +229,8 @@ class GRR(FrequencyOracle):
         return "reported category (randomized response over the mechanism's categories)"
 
     def randomize_codes(self, x: np.ndarray, words: np.ndarray) -> np.ndarray:
-        keep = to_unit(words[:, 0]) < self.p_star
-        other = to_below(words[:, 1], self.k - 1)
-        other = other + (other >= x)
-        return np.where(keep, x, other)
+        """Reported codes from the first word of each row (``randomized_response``)."""
+        return randomized_response(words[:, 0], x, *self.thresholds)
 
     def randomize(self, x: np.ndarray, words: np.ndarray) -> list[pa.Array]:
         return [self._labels_dictionary(self.randomize_codes(x, words))]
@@ -234,43 +257,7 @@ class GRR(FrequencyOracle):
         return np.full((self.k, self.k), q) + np.eye(self.k) * (p - q)
 
     def max_log_ratio(self) -> float:
-        return math.log(self.p_star / self.q_star)
-
-    # second layer (memoized columns; docs/formulas.md section 9.3) ---------------------------
-    supports_second_layer: ClassVar[bool] = True
-
-    @property
-    def second_layer_words_per_row(self) -> int:
-        return 2
-
-    def second_layer_keep(self, epsilon2: float) -> float:
-        """The probability that the second layer keeps the permanent category, exactly as its
-        sampler realizes it (``unit_below``): e^eps2/(e^eps2+k-1) rounded up to the 2^-53 grid."""
-        e = math.exp(epsilon2)
-        return math.ceil(e / (e + self.k - 1) * (1 << 53)) / (1 << 53)
-
-    def composite_epsilon(self, epsilon2: float) -> float:
-        """k-ary RR then k-ary RR is k-ary RR: p' = p r + q (1 - r), q' = q r + (p + (k-2) q)(1 - r)/(k-1)
-        with r the second layer's keep probability; eps' = ln(p'/q')."""
-        p, q, k, r = self.p_star, self.q_star, self.k, self.second_layer_keep(epsilon2)
-        p2 = p * r + q * (1 - r)
-        q2 = q * r + (p + (k - 2) * q) * (1 - r) / (k - 1)
-        return math.log(p2 / q2)
-
-    def rerandomize(self, reports: list[pa.Array], words: np.ndarray, epsilon2: float) -> list[pa.Array]:
-        """k-ary RR on the reported category: kept with probability ``second_layer_keep``, else
-        one of the other k-1 categories uniformly."""
-        arr = reports[0]
-        if isinstance(arr, pa.ChunkedArray):
-            arr = arr.combine_chunks()
-        if pa.types.is_dictionary(arr.type) and arr.dictionary.equals(pa.array(self.categories)):
-            codes = np.asarray(arr.indices.to_numpy(zero_copy_only=False)).astype(np.int64)
-        else:
-            codes = np.asarray(self.reported_codes([arr])).astype(np.int64)
-        keep = unit_below(words[:, 0], self.second_layer_keep(epsilon2))
-        other = to_below(words[:, 1], self.k - 1)
-        other = other + (other >= codes)
-        return [self._labels_dictionary(np.where(keep, codes, other))]
+        return math.log(self.realized_ratio())
 
     def fit_test(self) -> HullFit:
         """The reported labels against the hull of the k x k channel (no data-independent feature
@@ -287,7 +274,33 @@ class GRR(FrequencyOracle):
 
 class _UnaryEncoding(FrequencyOracle):
     """One-hot encode, then flip each bit independently: 1 stays 1 w.p. p, 0 becomes 1 w.p. q.
-    Output: one string of k characters '0'/'1'; character j is the bit of category j."""
+    Output: one string of k characters '0'/'1'; character j is the bit of category j.
+
+    Sampling (docs/formulas.md section 10.4): bit j is ``word j < T`` with the integer threshold
+    T = Tp at the row's value and Tq elsewhere (``thresholds``), so p* = Tp / 2^64 and
+    q* = Tq / 2^64 exactly; the thresholds are rounded toward privacy, so that the realized worst
+    ratio Tp (2^64 - Tq) / (Tq (2^64 - Tp)) is at most e^eps exactly."""
+
+    @cached_property
+    def thresholds(self) -> tuple[int, int]:
+        """(Tp, Tq): the probabilities of a 1 at the row's value and elsewhere, in units of 2^-64."""
+        raise NotImplementedError
+
+    def realized_ratio(self) -> Fraction:
+        # Two inputs differ in two bit positions: the ratio is (a(b_x) / b(b_x)) (b(b_x') / a(b_x'))
+        # with a(1) = Tp, a(0) = 2^64 - Tp, b(1) = Tq, b(0) = 2^64 - Tq; its largest value over the bits.
+        Tp, Tq = self.thresholds
+        W = THRESHOLD_ONE
+        r = [Fraction(Tp, Tq), Fraction(W - Tp, W - Tq)]
+        return max(r) * max(1 / v for v in r)
+
+    @property
+    def p_star(self) -> float:
+        return self.thresholds[0] / THRESHOLD_ONE
+
+    @property
+    def q_star(self) -> float:
+        return self.thresholds[1] / THRESHOLD_ONE
 
     @property
     def words_per_row(self) -> int:
@@ -300,10 +313,11 @@ class _UnaryEncoding(FrequencyOracle):
         return "report bits: character j is the randomized bit of category j of the mechanism's categories"
 
     def randomize_bits(self, x: np.ndarray, words: np.ndarray) -> np.ndarray:
-        # bit j = to_unit(word j) < (p* if j == x else q*), compared as integers (random.variates.unit_below)
+        # bit j = word j < (Tp if j == x else Tq): probabilities Tp / 2^64 and Tq / 2^64 exactly
         rows = np.arange(x.shape[0])
-        bits = unit_below(words, self.q_star)
-        bits[rows, x] = unit_below(words[rows, x], self.p_star)
+        Tp, Tq = self.thresholds
+        bits = words_below(words, Tq)
+        bits[rows, x] = words_below(words[rows, x], Tp)
         return bits
 
     def randomize(self, x: np.ndarray, words: np.ndarray) -> list[pa.Array]:
@@ -333,74 +347,40 @@ class _UnaryEncoding(FrequencyOracle):
         return P
 
     def max_log_ratio(self) -> float:
-        p, q = self.p_star, self.q_star
-        # Two inputs differ in two bit positions; the worst output has 1 at x and 0 at x'.
-        return math.log(p / q) + math.log((1 - q) / (1 - p))
+        # Two inputs differ in two bit positions; the worst output has 1 at x and 0 at x'
+        # (the realized integer channel: ``realized_ratio``).
+        return math.log(self.realized_ratio())
 
     def fit_test(self) -> OnesCountFit:
         """The number of ones per report has a data-independent distribution."""
         return OnesCountFit(self)
 
-    # second layer (memoized columns; docs/formulas.md section 9.3) ---------------------------
-    supports_second_layer: ClassVar[bool] = True
-
-    @property
-    def second_layer_words_per_row(self) -> int:
-        return self.k
-
-    @staticmethod
-    def second_layer_keep(epsilon2: float) -> float:
-        """The probability that the second layer keeps a bit, exactly as its sampler realizes it
-        (``unit_below``): e^(eps2/2)/(e^(eps2/2)+1) rounded up to the 2^-53 grid (every bit is
-        kept or flipped symmetrically, so the layer alone on a one-hot vector is eps2-LDP)."""
-        a = math.exp(epsilon2 / 2)
-        return math.ceil(a / (a + 1) * (1 << 53)) / (1 << 53)
-
-    def composite_epsilon(self, epsilon2: float) -> float:
-        """Each bit through the permanent layer, then kept w.p. r or flipped: a unary encoding with
-        p' = p r + (1-p)(1-r), q' = q r + (1-q)(1-r); eps' = ln(p'(1-q') / (q'(1-p'))).  With
-        p = 1/2 (oue) p' = 1/2; with q = 1 - p (sue) q' = 1 - p': the family is kept."""
-        p, q, r = self.p_star, self.q_star, self.second_layer_keep(epsilon2)
-        p2 = p * r + (1 - p) * (1 - r)
-        q2 = q * r + (1 - q) * (1 - r)
-        return math.log(p2 / q2) + math.log((1 - q2) / (1 - p2))
-
-    def rerandomize(self, reports: list[pa.Array], words: np.ndarray, epsilon2: float) -> list[pa.Array]:
-        """Every bit of the report kept with probability ``second_layer_keep``, else flipped."""
-        bits, _ = strings_to_bits(reports[0], self.k)
-        flip = ~unit_below(words, self.second_layer_keep(epsilon2))
-        return [bits_to_strings(bits ^ flip)]
-
 
 @register
 class SUE(_UnaryEncoding):
-    """Symmetric unary encoding: p = e^(eps/2)/(e^(eps/2)+1), q = 1 - p."""
+    """Symmetric unary encoding: p = e^(eps/2)/(e^(eps/2)+1), q = 1 - p.  Realized as
+    Tp + Tq = 2^64 with the smallest Tq whose squared odds ((2^64 - Tq) / Tq)^2 are at most a
+    certified lower bound of e^eps (docs/formulas.md section 10.4)."""
 
     name: ClassVar[str] = "sue"
 
-    @property
-    def p_star(self) -> float:
-        a = math.exp(self.epsilon / 2)
-        return a / (a + 1)
-
-    @property
-    def q_star(self) -> float:
-        return 1.0 / (math.exp(self.epsilon / 2) + 1)
+    @cached_property
+    def thresholds(self) -> tuple[int, int]:
+        return symmetric_thresholds(exp_lower_bound(self.epsilon))
 
 
 @register
 class OUE(_UnaryEncoding):
-    """Optimized unary encoding: p = 1/2, q = 1/(e^eps+1)."""
+    """Optimized unary encoding: p = 1/2, q = 1/(e^eps+1).  Realized as Tp = 2^63 (p = 1/2
+    exactly) and the smallest Tq with (2^64 - Tq) / Tq at most a certified lower bound of e^eps
+    (docs/formulas.md section 10.4)."""
 
     name: ClassVar[str] = "oue"
 
-    @property
-    def p_star(self) -> float:
-        return 0.5
-
-    @property
-    def q_star(self) -> float:
-        return 1.0 / (math.exp(self.epsilon) + 1)
+    @cached_property
+    def thresholds(self) -> tuple[int, int]:
+        Tp = THRESHOLD_ONE // 2
+        return Tp, second_threshold(Tp, exp_lower_bound(self.epsilon))
 
 
 HASH_PRIME = (1 << 31) - 1  # Mersenne prime 2^31 - 1
@@ -426,14 +406,16 @@ class OLH(FrequencyOracle):
     bucket sizes (it is 1/g up to O(1/P)), and q* uses that exact c: the estimator is
     exactly unbiased, not only up to hashing error.  g defaults to the integer near
     e^eps + 1 with the lower variance.
+
+    Sampling: words 0 and 1 give a and b (reduced modulo P - 1 and P: each within 2^-33 relative
+    of uniform, which moves q* by as little, and no privacy loss, the seed being drawn independently
+    of x); word 2 is randomized response over the g buckets against integer masses
+    Tp + (g-1) Tq = 2^64 rounded toward privacy (``thresholds``, as grr: the realized ratio Tp / Tq
+    is at most e^eps exactly; p* = Tp / 2^64; docs/formulas.md section 10.4).
     """
 
     name: ClassVar[str] = "olh"
     Params: ClassVar[type[BaseModel]] = OLHParams
-    second_layer_reason: ClassVar[str] = (
-        "mechanism olh writes its public hash seed as part of the memoized report: the seed stays the same for a "
-        "person and value in every release, so it would remain an exact linkage key and still show every change "
-        "of value, whatever a second layer did to the reported bucket")
 
     def __init__(self, epsilon: float, categories: list[str], hash_range: int | None = None) -> None:
         super().__init__(epsilon, categories)
@@ -472,19 +454,29 @@ class OLH(FrequencyOracle):
         pairs = r * (a + 1) * a + (g - r) * a * (a - 1)   # sum of size*(size-1), exact integers
         return pairs / (P * (P - 1))
 
+    @cached_property
+    def thresholds(self) -> tuple[int, int]:
+        """(Tp, Tq), Tp + (g-1) Tq = 2^64: the integer masses in units of 2^-64 of reporting the
+        row's own bucket and each other bucket (docs/formulas.md section 10.4)."""
+        return grr_thresholds(exp_lower_bound(self.epsilon), self.g)
+
+    def realized_ratio(self) -> Fraction:
+        # Given the seed (drawn independently of x) the channel is randomized response on g buckets.
+        Tp, Tq = self.thresholds
+        return Fraction(max(Tp, Tq), min(Tp, Tq))
+
     @property
     def p_star(self) -> float:
-        e = math.exp(self.epsilon)
-        return e / (e + self.g - 1)
+        return self.thresholds[0] / THRESHOLD_ONE
 
     @property
     def q_star(self) -> float:
         p, c = self.p_star, self.collision_probability
-        return p * c + (1 - c) * (1 - p) / (self.g - 1)
+        return p * c + (1 - c) * self.thresholds[1] / THRESHOLD_ONE
 
     @property
     def words_per_row(self) -> int:
-        return 4
+        return 3
 
     def output_fields(self, column: str) -> list[pa.Field]:
         return [pa.field(column + "__hash", pa.int64()), pa.field(column, pa.int32())]
@@ -507,10 +499,7 @@ class OLH(FrequencyOracle):
         b = to_below(words[:, 1], HASH_PRIME).astype(np.uint64)
         seeds = a * P + b
         h = self.hash_values(seeds, x)
-        keep = to_unit(words[:, 2]) < self.p_star
-        other = to_below(words[:, 3], self.g - 1)
-        other = other + (other >= h)
-        y = np.where(keep, h, other)
+        y = randomized_response(words[:, 2], h, *self.thresholds)   # exact masses Tp, Tq (section 10.4)
         return [pa.array(seeds.astype(np.int64)), pa.array(y.astype(np.int32))]
 
     def _decode_inputs(self, arrays: list[pa.Array]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -541,7 +530,7 @@ class OLH(FrequencyOracle):
         """P(y | x, seed) for each seed: array of shape (len(seeds), k, g)."""
         h = self.hash_values(seeds[:, None], np.arange(self.k, dtype=np.uint64)[None, :])  # (s, k)
         p = self.p_star
-        q = (1 - p) / (self.g - 1)
+        q = self.thresholds[1] / THRESHOLD_ONE
         out = np.full((len(seeds), self.k, self.g), q)
         s_idx, x_idx = np.meshgrid(np.arange(len(seeds)), np.arange(self.k), indexing="ij")
         out[s_idx, x_idx, h] = p
@@ -549,8 +538,7 @@ class OLH(FrequencyOracle):
 
     def max_log_ratio(self) -> float:
         # The seed is drawn independently of x; given the seed the channel is GRR on g buckets.
-        p = self.p_star
-        return math.log(p / ((1 - p) / (self.g - 1)))
+        return math.log(self.realized_ratio())
 
     def fit_test(self) -> SupportSizeFit:
         """The support size's mean and the reported buckets' distribution are data-independent."""

@@ -23,13 +23,15 @@ all k values are one fast Walsh-Hadamard transform of it (O(K log K), no K x K m
 from __future__ import annotations
 
 import math
+from fractions import Fraction
+from functools import cached_property
 from typing import ClassVar
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from ..random.variates import unit_below
+from ..random.variates import THRESHOLD_ONE, exp_lower_bound, odds_threshold, words_below
 from .base import register
 from .categorical import FrequencyOracle
 from .fit import FitResult, SupportBoundsFit, _result
@@ -109,8 +111,11 @@ class HadamardResponse(FrequencyOracle):
     uniform element of C_x, else a uniform element of its complement.  p* = e^eps/(e^eps+1),
     q* = 1/2.  Output: one int32 column, the reported index y in 0..K-1.
 
-    Sampling: word 0 picks the half (integer threshold comparison, ``random.variates.unit_below``);
-    the top log2(K) bits of word 1 give u uniform on [K] exactly; if u lies in the wrong half,
+    Sampling: word 0 picks the half, C_x iff word 0 < Tp (``thresholds``): P(C_x) = Tp / 2^64
+    exactly, Tp the largest integer with Tp / (2^64 - Tp) at most a certified lower bound of e^eps
+    (rounded toward privacy: the realized ratio is at most e^eps exactly, and p* = Tp / 2^64 is
+    within 2^-64 of the ideal E/(E+1); docs/formulas.md section 10.4); the top log2(K) bits
+    of word 1 give u uniform on [K] exactly; if u lies in the wrong half,
     the lowest set bit of x + 1 is flipped in u.  That flip changes the parity of
     popcount((x+1) AND u) and is a bijection between the two halves, so the report is exactly
     uniform on the wanted half.
@@ -135,10 +140,20 @@ class HadamardResponse(FrequencyOracle):
         self.log2K = self.K.bit_length() - 1
 
     # p*, q* -------------------------------------------------------------------------
+    @cached_property
+    def thresholds(self) -> tuple[int]:
+        """(Tp,): the probability of reporting from C_x, in units of 2^-64."""
+        return (odds_threshold(exp_lower_bound(self.epsilon)),)
+
+    def realized_ratio(self) -> Fraction:
+        # Q(y|x) is 2 Tp / (K 2^64) or 2 (2^64 - Tp) / (K 2^64): every ratio is r, 1 or 1/r
+        (Tp,) = self.thresholds
+        a, b = Tp, THRESHOLD_ONE - Tp
+        return Fraction(max(a, b), min(a, b))
+
     @property
     def p_star(self) -> float:
-        # E/(E+1) written as 1/(1+e^-eps): no overflow at any finite eps
-        return 1.0 / (1.0 + math.exp(-self.epsilon))
+        return self.thresholds[0] / THRESHOLD_ONE
 
     @property
     def q_star(self) -> float:
@@ -162,7 +177,7 @@ class HadamardResponse(FrequencyOracle):
 
     def randomize_index(self, x: np.ndarray, words: np.ndarray) -> np.ndarray:
         """Reported output indices (int64) for codes ``x`` and words of shape (n, 2)."""
-        want_in = unit_below(words[:, 0], self.p_star)            # report from C_x
+        want_in = words_below(words[:, 0], self.thresholds[0])    # report from C_x
         u = (words[:, 1] >> np.uint64(64 - self.log2K)).astype(np.int64)   # uniform on [K]
         r = np.asarray(x, dtype=np.int64) + 1                      # Hadamard row of x
         in_set = ~odd_parity(r & u)
@@ -223,13 +238,14 @@ class HadamardResponse(FrequencyOracle):
         rows = np.arange(1, self.k + 1, dtype=np.int64)[:, None]
         ys = np.arange(self.K, dtype=np.int64)[None, :]
         in_set = ~odd_parity(rows & ys)
-        p = self.p_star
-        return np.where(in_set, p, 1.0 - p) * (2.0 / self.K)
+        (Tp,) = self.thresholds
+        p, p_out = Tp / THRESHOLD_ONE, (THRESHOLD_ONE - Tp) / THRESHOLD_ONE
+        return np.where(in_set, p, p_out) * (2.0 / self.K)
 
     def max_log_ratio(self) -> float:
-        # Q(y|x) is 2p/K or 2(1-p)/K with p/(1-p) = e^eps exactly: every ratio is e^eps, 1 or
-        # e^-eps, and e^eps occurs (two different sets differ in K/2 outputs).
-        return float(self.epsilon)
+        # Q(y|x) is 2p/K or 2(1-p)/K with p = Tp / 2^64: every ratio is p/(1-p), 1 or its inverse,
+        # and p/(1-p) <= e^eps occurs (two different sets differ in K/2 outputs).
+        return math.log(self.realized_ratio())
 
     def fit_test(self) -> HadamardFit:
         """The count of reports at output 0 (exactly binomial whatever the data) and the support

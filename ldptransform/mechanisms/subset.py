@@ -16,6 +16,8 @@ from __future__ import annotations
 import itertools
 import math
 from collections.abc import Iterator
+from fractions import Fraction
+from functools import cached_property
 from typing import Annotated, Any, ClassVar
 
 import numpy as np
@@ -23,7 +25,7 @@ import pyarrow as pa
 from pydantic import BaseModel, ConfigDict, Field
 
 from ..errors import PolicyError
-from ..random.variates import to_below, unit_below
+from ..random.variates import THRESHOLD_ONE, exp_lower_bound, odds_threshold, to_below, words_below
 from .base import register
 from .categorical import FrequencyOracle, _as_strings, bits_to_strings, strings_to_bits
 from .fit import SupportBoundsFit
@@ -68,6 +70,17 @@ class SubsetSelection(FrequencyOracle):
     (the k - m or k - 1 - m other values left out), so a row takes 1 + min(m, k - m) words.
     Given whether x is in S, every subset of that kind is then equally likely, so
     P(S | x) = E/Z for x in S and 1/Z otherwise, Z = C(k-1, m-1) E + C(k-1, m).
+
+    Exact thresholds (docs/formulas.md section 10.4): x is in S iff word 0 < Tp, so p* = Tp / 2^64
+    exactly.  The realized channel also carries the modulo bias of the shuffle's steps (step i
+    gives each of its n_i = k-1-i positions a_i or a_i + 1 of the 2^64 words, a_i = floor(2^64 / n_i)),
+    so ``realized_ratio`` is an exact rational upper bound of the realized worst ratio: the
+    ideal ratio's factor C(k-1, m) / C(k-1, m-1) for the choice of the others, times the largest
+    and smallest probabilities a set of picks can have (``_pick_bounds``).  Tp is the largest
+    integer for which that bound is at most a certified lower bound of e^eps: the realized ratio is
+    at most e^eps exactly, and p* is below the ideal value by about 2 min(m, k-m) k / 2^64
+    relative at most.  q* = (p* (m-1) + (1-p*) m) / (k-1) is exact for uniform picks; their
+    modulo bias moves it by less than min(m, k-m) k / 2^64 relative.
     """
 
     name: ClassVar[str] = "subset"
@@ -116,16 +129,62 @@ class SubsetSelection(FrequencyOracle):
         return (f"subset (reports a set of {self.m} of the {self.k} values; "
                 f"n * total variance {self.total_variance():.4g})")
 
-    # p*, q* (written with t = e^-eps: finite at any eps) ----------------------------------
+    # exact thresholds (docs/formulas.md section 10.4) --------------------------------------
+    def _pick_sizes(self) -> tuple[int, int]:
+        """How many other values the shuffle picks when x is in S and when it is not (the other
+        members, or in complement mode the others left out)."""
+        k, m = self.k, self.m
+        return (k - m, k - 1 - m) if self._complement else (m - 1, m)
+
+    def _pick_bounds(self, s: int, t: int) -> Fraction:
+        """An exact upper bound of P(a set of s picks) / P(a set of t picks), |s - t| <= 1, over
+        any two such sets.  Step i reduces a word modulo n_i = k-1-i: each position has a_i or h_i
+        (= a_i + 1 when n_i does not divide 2^64, else a_i) of the 2^64 words, so a set of s picks
+        (its s! orders) has a probability between s! prod_{i<s} a_i / 2^64^s and the same with
+        h_i.  With c = min(s, t): prod_{i<c} h_i / a_i <= (1 + 1/a_0)^c <= a_0 / (a_0 - c)
+        (a_i >= a_0 = floor(2^64 / (k-1)) and e^u <= 1/(1-u)); the one step more on one side gives
+        the factor (c+1) h_c / 2^64 (s > t) or 2^64 / ((c+1) a_c) (t > s)."""
+        W, n0 = THRESHOLD_ONE, self.k - 1
+
+        def a_h(i: int) -> tuple[int, int]:
+            a, r = divmod(W, n0 - i)
+            return a, a + (r > 0)
+
+        c = min(s, t)
+        a0 = W // n0
+        out = Fraction(a0, a0 - c)
+        if s > t:
+            out *= Fraction((c + 1) * a_h(c)[1], W)
+        elif t > s:
+            out *= Fraction(W, (c + 1) * a_h(c)[0])
+        return out
+
+    @cached_property
+    def thresholds(self) -> tuple[int]:
+        """(Tp,): the probability that x is in S, in units of 2^-64: the largest Tp whose bound of
+        the realized ratio (x in S against x' not in S) is at most a certified lower bound of e^eps."""
+        s_in, s_out = self._pick_sizes()
+        return (odds_threshold(exp_lower_bound(self.epsilon) / self._pick_bounds(s_in, s_out)),)
+
+    def realized_ratio(self) -> Fraction:
+        """An exact upper bound of the realized worst ratio P(S|x) / P(S|x') over S, x, x': the
+        largest of the four cases (x in S and x' not, the reverse, both in S, neither)."""
+        (Tp,) = self.thresholds
+        odds = Fraction(Tp, THRESHOLD_ONE - Tp)
+        s_in, s_out = self._pick_sizes()
+        return max(odds * self._pick_bounds(s_in, s_out), self._pick_bounds(s_out, s_in) / odds,
+                   self._pick_bounds(s_in, s_in), self._pick_bounds(s_out, s_out))
+
+    # p*, q* --------------------------------------------------------------------------------
     @property
     def p_star(self) -> float:
-        k, m, t = self.k, self.m, math.exp(-self.epsilon)
-        return m / (m + (k - m) * t)
+        return self.thresholds[0] / THRESHOLD_ONE
 
     @property
     def q_star(self) -> float:
-        k, m, t = self.k, self.m, math.exp(-self.epsilon)
-        return m * ((m - 1) + (k - m) * t) / ((k - 1) * (m + (k - m) * t))
+        k, m = self.k, self.m
+        Tp = self.thresholds[0]
+        return ((m - 1) * Tp + m * (THRESHOLD_ONE - Tp)) / ((k - 1) * THRESHOLD_ONE)
 
     # randomization -------------------------------------------------------------------------
     @property
@@ -147,7 +206,7 @@ class SubsetSelection(FrequencyOracle):
     def _bits_chunk(self, x: np.ndarray, w: np.ndarray) -> np.ndarray:
         c, k, m, D = len(x), self.k, self.m, self._draws
         N = k - 1                                  # the other values, by position 0..k-2
-        incl = unit_below(w[:, 0], self.p_star)    # is x in S?
+        incl = words_below(w[:, 0], self.thresholds[0])   # is x in S? (probability Tp / 2^64)
         perm = np.empty((c, N), dtype=np.int32)
         perm[:] = np.arange(N, dtype=np.int32)
         rows = np.arange(c)
@@ -242,14 +301,15 @@ class SubsetSelection(FrequencyOracle):
         combs = np.array(list(itertools.combinations(range(self.k), self.m)), dtype=np.int64)
         member = np.zeros((len(combs), self.k), dtype=bool)
         member[np.arange(len(combs))[:, None], combs] = True
-        p = self.p_star
-        hit = p / math.comb(self.k - 1, self.m - 1)
-        miss = (1.0 - p) / math.comb(self.k - 1, self.m)
+        (Tp,) = self.thresholds
+        hit = Tp / THRESHOLD_ONE / math.comb(self.k - 1, self.m - 1)
+        miss = (THRESHOLD_ONE - Tp) / THRESHOLD_ONE / math.comb(self.k - 1, self.m)
         return np.where(member.T, hit, miss)
 
     def max_log_ratio(self) -> float:
-        # P(S|x)/P(S|x') is E (x in S, x' not), 1 or 1/E; E occurs since 1 <= m <= k-1.
-        return float(self.epsilon)
+        # P(S|x)/P(S|x') is r (x in S, x' not), 1 or 1/r, r <= e^eps (r occurs since 1 <= m <= k-1);
+        # with the shuffle's modulo bias bounded exactly (``realized_ratio``, an upper bound).
+        return math.log(self.realized_ratio())
 
     def fit_test(self) -> SupportBoundsFit:
         """Every report holds exactly m values, and the support counts obey the binomial floor and

@@ -14,6 +14,12 @@ its (negligible) deviation.  All of it is vectorized over rows.
   ``draw_index`` draws an output per row by exact integer comparison of the top
   SAMPLING_BITS bits of one word with the cumulative masses (inverse-CDF sampling, the
   guide replacing most of the binary search).
+- Exact thresholds (``THRESHOLD_ONE`` = 2^64): a threshold sampler draws an event of
+  probability T/2^64 exactly as ``word < T`` (``words_below``), and ``exp_bounds`` /
+  ``exp_lower_bound`` give certified rational bounds of e^eps, so the integer thresholds of
+  every threshold sampler can be rounded toward privacy and checked in exact rational
+  arithmetic (``grr_thresholds``, ``odds_threshold``, ``symmetric_thresholds``,
+  ``second_threshold``; docs/formulas.md section 10.4).
 - Exact rejection samplers over a variable number of words per row (``RowDraws``: each
   row's own draw counter over a ``draw(rows, j)`` function): ``uniform_below`` (exactly
   uniform integers below m), ``bernoulli_exp`` (Bernoulli(exp(-num/den))) and
@@ -26,6 +32,8 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
+from fractions import Fraction
+from functools import lru_cache
 
 import numpy as np
 
@@ -71,6 +79,141 @@ def choose_m_of_d(words: np.ndarray, m: int) -> np.ndarray:
     mask = np.zeros(words.shape, dtype=bool)
     mask[np.arange(n)[:, None], chosen] = True
     return mask
+
+
+# -- exact thresholds -----------------------------------------------------------------------------
+
+#: A threshold sampler's event of probability T / THRESHOLD_ONE is ``word < T`` for a uniform 64-bit
+#: word: exact, so the channel it realizes has rational probabilities with denominator 2^64.
+THRESHOLD_ONE = 1 << 64
+
+_EXP_BITS = 320      # bits after the binary point kept by the certified bounds of e^x
+#: e^x for x above EXP_CAP is bounded below by e^EXP_CAP (2^184): no 64-bit threshold can tell
+#: the difference (odds above 2^64 are not realizable), and the bound stays cheap.
+EXP_CAP = 128.0
+
+
+def _floor_to(v: Fraction) -> Fraction:
+    return Fraction(math.floor(v * (1 << _EXP_BITS)), 1 << _EXP_BITS)
+
+
+def _ceil_to(v: Fraction) -> Fraction:
+    return Fraction(math.ceil(v * (1 << _EXP_BITS)), 1 << _EXP_BITS)
+
+
+@lru_cache(maxsize=4096)
+def exp_bounds(x: float) -> tuple[Fraction, Fraction]:
+    """Certified rationals lo <= e^x <= hi for a float 0 <= x <= EXP_CAP (x read exactly as the
+    rational it is), with hi / lo - 1 below 2^-300.
+
+    Certificate: y = x / 2^s <= 1/2 (exact); S = sum_{j<=n} y^j / j! (exact rationals, all terms
+    >= 0) is a lower bound of e^y, and the tail sum_{j>n} y^j / j! is at most
+    2 y^(n+1) / (n+1)! (each further term is at most y/(n+2) <= 1/2 of the one before), so
+    S + 2 y^(n+1)/(n+1)! is an upper bound.  The bounds are rounded down and up to multiples of
+    2^-320 and squared s times, rounding down and up again (squaring is increasing on positive
+    numbers), which gives bounds of (e^y)^(2^s) = e^x."""
+    if not (0.0 <= x <= EXP_CAP):
+        raise ValueError(f"exp_bounds: x must be in [0, {EXP_CAP}], got {x!r}")
+    q = Fraction(x)
+    s = 0
+    while q > Fraction(1, 2) * (1 << s):
+        s += 1
+    y = q / (1 << s)
+    term, total, j = Fraction(1), Fraction(1), 0
+    tiny = Fraction(1, 1 << (_EXP_BITS + 16))
+    while term > tiny or j < 2:
+        j += 1
+        term = term * y / j
+        total += term
+    tail = 2 * term * y / (j + 1)
+    lo, hi = _floor_to(total), _ceil_to(total + tail)
+    for _ in range(s):
+        lo, hi = _floor_to(lo * lo), _ceil_to(hi * hi)
+    return lo, hi
+
+
+def exp_lower_bound(x: float) -> Fraction:
+    """A certified rational lower bound of e^x for x >= 0 (``exp_bounds``; above EXP_CAP the bound
+    of e^EXP_CAP, which is below e^x since e^x increases)."""
+    return exp_bounds(min(float(x), EXP_CAP))[0]
+
+
+def words_below(words: np.ndarray, T: int) -> np.ndarray:
+    """``words < T`` for uint64 words and an integer threshold 0 <= T <= 2^64: True with
+    probability exactly T / 2^64 for a uniform word."""
+    if T <= 0:
+        return np.zeros(words.shape, dtype=bool)
+    if T >= THRESHOLD_ONE:
+        return np.ones(words.shape, dtype=bool)
+    return words < np.uint64(T)
+
+
+def _smallest(pred: Callable[[int], bool], lo: int, hi: int) -> int:
+    """The smallest integer t in [lo, hi] with pred(t), for a pred that is monotone (False then
+    True) and true at hi: a binary search, each step an exact comparison."""
+    while lo < hi:
+        mid = (lo + hi) // 2
+        if pred(mid):
+            hi = mid
+        else:
+            lo = mid + 1
+    return lo
+
+
+def grr_thresholds(bound: Fraction, outputs: int) -> tuple[int, int]:
+    """Integer masses (Tp, Tq), Tp + (outputs - 1) Tq = 2^64, of randomized response over
+    ``outputs`` values whose realized ratio Tp / Tq is at most ``bound`` (a certified lower bound
+    of e^eps): the smallest Tq with 2^64 - (outputs - 1) Tq <= bound Tq, i.e.
+    Tq = ceil(2^64 / (bound + outputs - 1)): the realized channel closest to the ideal one
+    (Tq / 2^64 is within 2^-64 above 1 / (e^eps + outputs - 1), up to the bound's 2^-300)."""
+    W, c = THRESHOLD_ONE, outputs - 1
+    Tq = math.ceil(Fraction(W) / (bound + c))
+    Tp = W - c * Tq
+    if not (1 <= Tq and 1 <= Tp and Tp <= bound * Tq):
+        raise ArithmeticError("grr_thresholds: no valid integer thresholds (a bug)")
+    return Tp, Tq
+
+
+def randomized_response(words: np.ndarray, x: np.ndarray, Tp: int, Tq: int) -> np.ndarray:
+    """Randomized response over Tp + (c) Tq = 2^64 (``grr_thresholds``) from one uint64 word per
+    row: w < Tp keeps x; otherwise the other value number (w - Tp) // Tq in 0..c-1 (exactly
+    uniform: each holds Tq words), shifted past x.  Output int64 codes."""
+    tp = np.uint64(Tp)
+    other = ((np.maximum(words, tp) - tp) // np.uint64(Tq)).astype(np.int64)
+    x = np.asarray(x, dtype=np.int64)
+    other += other >= x
+    return np.where(words < tp, x, other)
+
+
+def odds_threshold(bound: Fraction) -> int:
+    """The largest integer T with T / (2^64 - T) <= ``bound``: floor(bound 2^64 / (bound + 1)),
+    at most 2^64 - 1 (both outcomes stay possible)."""
+    W = THRESHOLD_ONE
+    T = min(math.floor(bound * W / (bound + 1)), W - 1)
+    if not (T >= 1 and Fraction(T, W - T) <= bound):
+        raise ArithmeticError("odds_threshold: no valid integer threshold (a bug)")
+    return T
+
+
+def second_threshold(Tp: int, bound: Fraction) -> int:
+    """For a fixed first threshold Tp (probability Tp / 2^64 of a bit), the smallest integer Tq such
+    that two bits of probabilities Tp and Tq realize a worst ratio
+    Tp (2^64 - Tq) / (Tq (2^64 - Tp)) at most ``bound`` (unary encoding, Tp >= Tq)."""
+    W = THRESHOLD_ONE
+    Tq = _smallest(lambda t: Tp * (W - t) <= bound * t * (W - Tp), 1, Tp)
+    if not Tp * (W - Tq) <= bound * Tq * (W - Tp):
+        raise ArithmeticError("second_threshold: no valid integer threshold (a bug)")
+    return Tq
+
+
+def symmetric_thresholds(bound: Fraction) -> tuple[int, int]:
+    """(Tp, Tq), Tp + Tq = 2^64, with the smallest Tq whose squared odds ((2^64 - Tq) / Tq)^2 are
+    at most ``bound`` (symmetric unary encoding: p = 1 - q)."""
+    W = THRESHOLD_ONE
+    Tq = _smallest(lambda t: (W - t) * (W - t) <= bound * t * t, 1, W // 2)
+    if not (W - Tq) * (W - Tq) <= bound * Tq * Tq:
+        raise ArithmeticError("symmetric_thresholds: no valid integer threshold (a bug)")
+    return W - Tq, Tq
 
 
 # -- the integer-mass sampler of a finite channel ------------------------------------------------
