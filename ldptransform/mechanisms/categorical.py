@@ -29,6 +29,7 @@ from ..random.variates import (
     second_threshold,
     symmetric_thresholds,
     to_below,
+    unit_below,
     words_below,
 )
 from .base import Mechanism, check_epsilon, register
@@ -82,7 +83,7 @@ class FrequencyOracle(Mechanism):
         raise NotImplementedError
 
     def to_spec(self) -> dict[str, Any]:
-        return {"mechanism": self.name, "epsilon": self.epsilon, "categories": list(self.categories)}
+        return self._layer_spec({"mechanism": self.name, "epsilon": self.epsilon, "categories": list(self.categories)})
 
     @classmethod
     def from_spec(cls, spec: dict[str, Any]) -> FrequencyOracle:
@@ -259,6 +260,42 @@ class GRR(FrequencyOracle):
     def max_log_ratio(self) -> float:
         return math.log(self.realized_ratio())
 
+    # second layer (memoized columns; docs/formulas.md section 9.3) ---------------------------
+    supports_second_layer: ClassVar[bool] = True
+
+    @property
+    def second_layer_words_per_row(self) -> int:
+        return 2
+
+    def second_layer_keep(self, epsilon2: float) -> float:
+        """The probability that the second layer keeps the permanent category, exactly as its
+        sampler realizes it (``unit_below``): e^eps2/(e^eps2+k-1) rounded up to the 2^-53 grid."""
+        e = math.exp(epsilon2)
+        return math.ceil(e / (e + self.k - 1) * (1 << 53)) / (1 << 53)
+
+    def composite_epsilon(self, epsilon2: float) -> float:
+        """k-ary RR then k-ary RR is k-ary RR: p' = p r + q (1 - r), q' = q r + (p + (k-2) q)(1 - r)/(k-1)
+        with r the second layer's keep probability; eps' = ln(p'/q')."""
+        p, q, k, r = self.p_star, self.q_star, self.k, self.second_layer_keep(epsilon2)
+        p2 = p * r + q * (1 - r)
+        q2 = q * r + (p + (k - 2) * q) * (1 - r) / (k - 1)
+        return math.log(p2 / q2)
+
+    def rerandomize(self, reports: list[pa.Array], words: np.ndarray, epsilon2: float) -> list[pa.Array]:
+        """k-ary RR on the reported category: kept with probability ``second_layer_keep``, else
+        one of the other k-1 categories uniformly."""
+        arr = reports[0]
+        if isinstance(arr, pa.ChunkedArray):
+            arr = arr.combine_chunks()
+        if pa.types.is_dictionary(arr.type) and arr.dictionary.equals(pa.array(self.categories)):
+            codes = np.asarray(arr.indices.to_numpy(zero_copy_only=False)).astype(np.int64)
+        else:
+            codes = np.asarray(self.reported_codes([arr])).astype(np.int64)
+        keep = unit_below(words[:, 0], self.second_layer_keep(epsilon2))
+        other = to_below(words[:, 1], self.k - 1)
+        other = other + (other >= codes)
+        return [self._labels_dictionary(np.where(keep, codes, other))]
+
     def fit_test(self) -> HullFit:
         """The reported labels against the hull of the k x k channel (no data-independent feature
         exists: the support size is always 1)."""
@@ -355,6 +392,36 @@ class _UnaryEncoding(FrequencyOracle):
         """The number of ones per report has a data-independent distribution."""
         return OnesCountFit(self)
 
+    # second layer (memoized columns; docs/formulas.md section 9.3) ---------------------------
+    supports_second_layer: ClassVar[bool] = True
+
+    @property
+    def second_layer_words_per_row(self) -> int:
+        return self.k
+
+    @staticmethod
+    def second_layer_keep(epsilon2: float) -> float:
+        """The probability that the second layer keeps a bit, exactly as its sampler realizes it
+        (``unit_below``): e^(eps2/2)/(e^(eps2/2)+1) rounded up to the 2^-53 grid (every bit is
+        kept or flipped symmetrically, so the layer alone on a one-hot vector is eps2-LDP)."""
+        a = math.exp(epsilon2 / 2)
+        return math.ceil(a / (a + 1) * (1 << 53)) / (1 << 53)
+
+    def composite_epsilon(self, epsilon2: float) -> float:
+        """Each bit through the permanent layer, then kept w.p. r or flipped: a unary encoding with
+        p' = p r + (1-p)(1-r), q' = q r + (1-q)(1-r); eps' = ln(p'(1-q') / (q'(1-p'))).  With
+        p = 1/2 (oue) p' = 1/2; with q = 1 - p (sue) q' = 1 - p': the family is kept."""
+        p, q, r = self.p_star, self.q_star, self.second_layer_keep(epsilon2)
+        p2 = p * r + (1 - p) * (1 - r)
+        q2 = q * r + (1 - q) * (1 - r)
+        return math.log(p2 / q2) + math.log((1 - q2) / (1 - p2))
+
+    def rerandomize(self, reports: list[pa.Array], words: np.ndarray, epsilon2: float) -> list[pa.Array]:
+        """Every bit of the report kept with probability ``second_layer_keep``, else flipped."""
+        bits, _ = strings_to_bits(reports[0], self.k)
+        flip = ~unit_below(words, self.second_layer_keep(epsilon2))
+        return [bits_to_strings(bits ^ flip)]
+
 
 @register
 class SUE(_UnaryEncoding):
@@ -416,6 +483,10 @@ class OLH(FrequencyOracle):
 
     name: ClassVar[str] = "olh"
     Params: ClassVar[type[BaseModel]] = OLHParams
+    second_layer_reason: ClassVar[str] = (
+        "mechanism olh writes its public hash seed as part of the memoized report: the seed stays the same for a "
+        "person and value in every release, so it would remain an exact linkage key and still show every change "
+        "of value, whatever a second layer did to the reported bucket")
 
     def __init__(self, epsilon: float, categories: list[str], hash_range: int | None = None) -> None:
         super().__init__(epsilon, categories)
