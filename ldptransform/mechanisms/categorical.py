@@ -207,9 +207,13 @@ class GRR(FrequencyOracle):
         """(Tp, Tq): the integer masses in units of 2^-64 of keeping the value and of each other value."""
         return grr_thresholds(exp_lower_bound(self.epsilon), self.k)
 
-    def realized_ratio(self) -> Fraction:
+    def _threshold_ratio(self) -> Fraction:
         Tp, Tq = self.thresholds
         return Fraction(max(Tp, Tq), min(Tp, Tq))
+
+    def realized_ratio(self) -> Fraction | None:
+        # a composite (second layer) samples two layers, which these thresholds do not describe
+        return None if self.second_layer_of is not None else self._threshold_ratio()
 
     @property
     def p_star(self) -> float:
@@ -258,7 +262,7 @@ class GRR(FrequencyOracle):
         return np.full((self.k, self.k), q) + np.eye(self.k) * (p - q)
 
     def max_log_ratio(self) -> float:
-        return math.log(self.realized_ratio())
+        return math.log(self._threshold_ratio())
 
     # second layer (memoized columns; docs/formulas.md section 9.3) ---------------------------
     supports_second_layer: ClassVar[bool] = True
@@ -323,13 +327,17 @@ class _UnaryEncoding(FrequencyOracle):
         """(Tp, Tq): the probabilities of a 1 at the row's value and elsewhere, in units of 2^-64."""
         raise NotImplementedError
 
-    def realized_ratio(self) -> Fraction:
+    def _threshold_ratio(self) -> Fraction:
         # Two inputs differ in two bit positions: the ratio is (a(b_x) / b(b_x)) (b(b_x') / a(b_x'))
         # with a(1) = Tp, a(0) = 2^64 - Tp, b(1) = Tq, b(0) = 2^64 - Tq; its largest value over the bits.
         Tp, Tq = self.thresholds
         W = THRESHOLD_ONE
         r = [Fraction(Tp, Tq), Fraction(W - Tp, W - Tq)]
         return max(r) * max(1 / v for v in r)
+
+    def realized_ratio(self) -> Fraction | None:
+        # a composite (second layer) samples two layers, which these thresholds do not describe
+        return None if self.second_layer_of is not None else self._threshold_ratio()
 
     @property
     def p_star(self) -> float:
@@ -386,7 +394,7 @@ class _UnaryEncoding(FrequencyOracle):
     def max_log_ratio(self) -> float:
         # Two inputs differ in two bit positions; the worst output has 1 at x and 0 at x'
         # (the realized integer channel: ``realized_ratio``).
-        return math.log(self.realized_ratio())
+        return math.log(self._threshold_ratio())
 
     def fit_test(self) -> OnesCountFit:
         """The number of ones per report has a data-independent distribution."""

@@ -283,7 +283,8 @@ def test_old_float_rounded_thresholds_fail_the_exact_check() -> None:
     worst = max(float(old_grr_ratio(e, k) / lower(e)) - 1 for e, k in GRID)
     assert 1e-13 < worst < 1e-11
     for e, k in grr_bad:
-        assert GRR(e, cats(k)).realized_ratio() <= lower(e) < old_grr_ratio(e, k)
+        new = GRR(e, cats(k)).realized_ratio()
+        assert new is not None and new <= lower(e) < old_grr_ratio(e, k)
 
 
 # -- validate reports the realized channel ---------------------------------------------------------
@@ -331,3 +332,14 @@ def test_utility_loss_is_negligible() -> None:
             tv = k * q * (1 - q) / (p - q) ** 2 + (1 - p - q) / (p - q)
             worst = max(worst, abs(s.total_variance() / tv - 1))
     assert worst < 1e-9, worst
+
+
+def test_a_composite_with_a_second_layer_claims_no_exact_ratio() -> None:
+    """A memoized column's composite (permanent layer, then a second layer) samples through two
+    layers: the composite's own thresholds do not describe that channel, so it gives no exact
+    ratio (``validate`` then checks its ``max_log_ratio``); the permanent layer still does."""
+    for cls in (GRR, OUE, SUE):
+        m = cls(1.0, cats(5))
+        composite = m.with_second_layer(2.0)
+        assert composite.realized_ratio() is None and composite.max_log_ratio() <= composite.epsilon + 1e-9
+        assert composite.permanent.realized_ratio() == m.realized_ratio() is not None
