@@ -37,6 +37,7 @@ from __future__ import annotations
 
 import hashlib
 import math
+import os
 import shutil
 import tempfile
 import time
@@ -64,6 +65,7 @@ MIN_ROWS = 200
 MAX_ROWS = 50_000_000
 MAX_OUTCOMES = 256          # unordered outcomes are pooled into at most this many groups before events are formed
 MAX_ORDERED_GROUPS = 64     # ordered ones into at most this many runs of neighbouring values (2080 intervals)
+PRIVATE_ENV = "LDPT_PRIVATE_DIR"  # the steward's private folder (io.private_dir): the audit's own while it runs
 CHUNK_ROWS = 65_536         # reports are reduced to outcomes this many rows at a time
 
 
@@ -412,10 +414,13 @@ def audit(policy: LoadedPolicy, *, rows: int = DEFAULT_ROWS, confidence: float =
     rounds = max(len(p) for p in pairs.values())
     keys: dict[tuple[str, int], dict[str, np.ndarray]] = {}
     folder = Path(tempfile.mkdtemp(prefix="ldpt-audit-"))
+    steward_private = os.environ.get(PRIVATE_ENV)
     try:
         folder.chmod(0o700)
         for sub in ("private", "out"):
             (folder / sub).mkdir(mode=0o700)
+        # whatever a release keeps in the steward's private folder by default goes to the audit's own
+        os.environ[PRIVATE_ENV] = str(folder / "private")
         k = key if key is not None else new_key_file(folder / "private" / "audit.key")
         for r in range(rounds):
             for side, index in (("a", 0), ("b", 1)):
@@ -432,6 +437,10 @@ def audit(policy: LoadedPolicy, *, rows: int = DEFAULT_ROWS, confidence: float =
                         keys.setdefault((rc.name, r), {})[side] = _outcomes(rc, extract, pairs[rc.name][r])
                 extract.unlink()
     finally:
+        if steward_private is None:
+            os.environ.pop(PRIVATE_ENV, None)
+        else:
+            os.environ[PRIVATE_ENV] = steward_private
         shutil.rmtree(folder, ignore_errors=True)
     results = []
     for rc in cols:

@@ -224,7 +224,11 @@ def test_cli_audits_the_policy_embedded_in_a_manifest(tmp_path: Path, ldpt: Any)
     assert_user_error(ldpt("audit", "--manifest", manifest, "--rows", 2000), ["'x'", "--policy"])
 
 
-def test_temporary_folder_is_private_and_removed(monkeypatch: pytest.MonkeyPatch) -> None:
+def test_temporary_folder_is_private_and_removed(monkeypatch: pytest.MonkeyPatch, private_dir: Path) -> None:
+    """The releases run in a fresh 0700 folder (key, inputs, extracts, diagnostics) removed afterwards;
+    the steward's own private folder is neither written nor left pointed elsewhere."""
+    import os
+
     seen: list[tuple[Path, int, list[str]]] = []
     plain = audit_mod._release
 
@@ -240,6 +244,7 @@ def test_temporary_folder_is_private_and_removed(monkeypatch: pytest.MonkeyPatch
     assert all(mode == 0o700 for _, mode, _ in seen)
     assert "audit.key" in seen[0][2]
     assert not folder.exists()
+    assert list(private_dir.iterdir()) == [] and os.environ["LDPT_PRIVATE_DIR"] == str(private_dir)
 
 
 def test_same_key_and_seed_give_the_same_audit() -> None:
