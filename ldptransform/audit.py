@@ -375,6 +375,8 @@ def _pair_tests(keys_a: np.ndarray, keys_b: np.ndarray, ordered: bool, texts: tu
             out.append(PairTest(first, second, "no reports", 0, n1, 0, n2, 0.0, 0.0))
             continue
         groups, text = _pick_event(o, num, den, z)
+        if not ordered:   # outcome texts may speak of the pair's inputs as a and b
+            text += f" (a = {texts[0]}, b = {texts[1]})"
         k1 = int(o.counts[num + "2"][groups].sum())
         k2 = int(o.counts[den + "2"][groups].sum())
         ratio = ratio_lower_bound(k1, n1, k2, n2, confidence)
