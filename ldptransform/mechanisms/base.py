@@ -21,7 +21,10 @@ fill small hooks), never decided by the mechanism's name or by probing its attri
   ``fit_test`` / ``no_fit_reason`` (goodness of fit, mechanisms/fit.py);
 * policy and planning: ``accepts_binned`` / ``binned_refusal``, ``supports_memoize`` /
   ``memoize_refusal``, ``exact_decimal_epsilon``, ``fixed_epsilon``, ``mean_row_variance``,
-  ``frequency_row_variance``, ``efficiency``.
+  ``frequency_row_variance``, ``efficiency``;
+* the empirical audit (audit.py, ``ldpt audit``): ``audit_pairs`` (worst-case inputs),
+  ``audit_outcomes`` / ``audit_ordered`` (what a report says about them); ``worst_channel_pairs``
+  reads the pairs off an exact channel.
 
 Three family bases fill most hooks:
 
