@@ -32,6 +32,7 @@ from ldptransform.keys import SecretKey
 from ldptransform.plan import plan
 from ldptransform.policy import Policy, parse_policy
 from ldptransform.random import KeyedStream
+from ldptransform.random.variates import exp_lower_bound
 from ldptransform.release import privatize
 
 KEY = SecretKey(bytes(range(140, 172)))  # fixed key: the statistical checks cannot flake
@@ -94,23 +95,30 @@ def _matmul(a: list[list[Fraction]], b: list[list[Fraction]]) -> list[list[Fract
 
 @pytest.mark.parametrize("eps1,eps2", [(1.0, 0.5), (2.0, 2.0), (0.3, 4.0)])
 def test_grr_composite_is_grr_at_the_stated_eps(eps1: float, eps2: float) -> None:
-    """Permanent k-ary RR (its realized channel) times the second layer's k x k channel (keep w.p.
-    r, exactly the sampler's dyadic probability; else uniform over the other k-1), computed with
-    fractions, equals the closed form p' = p r + q (1 - r), q' = (1 - p')/(k-1) exactly, and the
-    composite mechanism's channel to 1e-12; its eps is ln(p'/q') <= min(eps1, eps2)."""
-    k = len(COLOURS)
+    """Permanent k-ary RR (its integer thresholds Tp, Tq in units of 2^-64) times the second
+    layer's k x k channel (its thresholds Lp, Lq: kept w.p. Lp / 2^64, each other category
+    Lq / 2^64), computed with fractions, equals the closed form p' = p r + (k-1) q o,
+    q' = q r + p o + (k-2) q o exactly (k-ary RR again); the stated composite eps is certified
+    (e^eps' >= p'/q' exactly) and within 1e-12 of ln(p'/q'), below min(eps1, eps2); the composite
+    mechanism's channel matches to 1e-12."""
+    k, W = len(COLOURS), 1 << 64
     perm = mech.GRR(eps1, COLOURS)
-    r = Fraction(perm.second_layer_keep(eps2))
-    layer = [[r if i == j else (1 - r) / (k - 1) for j in range(k)] for i in range(k)]
-    exact = _matmul(_exact(perm.channel()), layer)
-    p, q = Fraction(perm.p_star), Fraction(perm.q_star)
-    p2 = p * r + q * (1 - r)
-    q2 = q * r + (p + (k - 2) * q) * (1 - r) / (k - 1)
+    Lp, Lq = perm.second_layer_thresholds(eps2)
+    r, o = Fraction(Lp, W), Fraction(Lq, W)
+    assert Lp + (k - 1) * Lq == W and r / o <= exp_lower_bound(eps2)  # the layer alone: eps2-LDP, exactly
+    p, q = Fraction(perm.thresholds[0], W), Fraction(perm.thresholds[1], W)
+    permanent = [[p if i == j else q for j in range(k)] for i in range(k)]
+    layer = [[r if i == j else o for j in range(k)] for i in range(k)]
+    exact = _matmul(permanent, layer)
+    p2 = p * r + (k - 1) * q * o
+    q2 = q * r + p * o + (k - 2) * q * o
     assert all(exact[i][j] == (p2 if i == j else q2) for i in range(k) for j in range(k))
+    assert perm.second_layer_ratio(eps2) == p2 / q2
     comp = perm.with_second_layer(eps2)
     assert isinstance(comp, mech.GRR) and comp.family == perm.family
-    assert np.max(np.abs(comp.channel() - np.array(exact, dtype=float))) < 1e-12
+    assert exp_lower_bound(comp.epsilon) >= p2 / q2
     assert comp.epsilon == pytest.approx(math.log(p2 / q2), rel=1e-12)
+    assert np.max(np.abs(comp.channel() - np.array(exact, dtype=float))) < 1e-12
     assert comp.max_log_ratio() <= comp.epsilon + 1e-12
     assert comp.epsilon < min(eps1, eps2)
 
@@ -123,13 +131,15 @@ def test_unary_composite_is_the_same_encoding_at_the_stated_eps(cls: type, eps1:
     encoding with p' = p r + (1-p)(1-r), q' = q r + (1-q)(1-r); the composite mechanism (same
     class) realizes it to 1e-12, with eps' = ln(p'(1-q')/(q'(1-p'))) <= min(eps1, eps2)."""
     cats = COLOURS[:3]
-    k = len(cats)
+    k, W = len(cats), 1 << 64
     perm = cls(eps1, cats)
-    r = Fraction(perm.second_layer_keep(eps2))
+    Lk, Lf = perm.second_layer_thresholds(eps2)
+    r = Fraction(Lk, W)
+    assert Lk + Lf == W and (r / (1 - r)) ** 2 <= exp_lower_bound(eps2)
     outs = [[(o >> j) & 1 for j in range(k)] for o in range(1 << k)]
     layer = [[math.prod([r if a == b else 1 - r for a, b in zip(outs[i], outs[j])], start=Fraction(1))
               for j in range(1 << k)] for i in range(1 << k)]
-    p, q = Fraction(perm.p_star), Fraction(perm.q_star)  # the bit probabilities the sampler realizes
+    p, q = Fraction(perm.thresholds[0], W), Fraction(perm.thresholds[1], W)  # the realized bit probabilities
     permanent = [[math.prod([(p if j == x else q) if outs[o][j] else 1 - (p if j == x else q) for j in range(k)],
                             start=Fraction(1)) for o in range(1 << k)] for x in range(k)]
     assert np.max(np.abs(perm.channel() - np.array(permanent, dtype=float))) < 1e-15
@@ -143,8 +153,9 @@ def test_unary_composite_is_the_same_encoding_at_the_stated_eps(cls: type, eps1:
     comp = perm.with_second_layer(eps2)
     assert type(comp) is cls
     assert np.max(np.abs(comp.channel() - np.array(exact, dtype=float))) < 1e-12
-    want_eps = math.log(p2 * (1 - q2) / (q2 * (1 - p2)))
-    assert comp.epsilon == pytest.approx(want_eps, rel=1e-12) and comp.max_log_ratio() <= comp.epsilon + 1e-12
+    ratio = p2 * (1 - q2) / (q2 * (1 - p2))
+    assert perm.second_layer_ratio(eps2) == ratio and exp_lower_bound(comp.epsilon) >= ratio
+    assert comp.epsilon == pytest.approx(math.log(ratio), rel=1e-12) and comp.max_log_ratio() <= comp.epsilon + 1e-12
     assert comp.epsilon < min(eps1, eps2)
 
 
@@ -154,7 +165,9 @@ def test_two_point_composite_is_two_point_and_unbiased(eps1: float, eps2: float)
     product of the realized channels; written as +-C' with C' = 1/((2r-1) s), the mean is t
     exactly (up to the float C'), and it is two-point at eps' with tanh(eps'/2) = (2r-1) tanh(eps1/2)."""
     perm = mech.TwoPoint(eps1, [0, 10])
-    r = Fraction(perm.second_layer_keep(eps2))
+    Lk, Lf = perm.second_layer_thresholds(eps2)
+    r = Fraction(Lk, 1 << 64)
+    assert Lk + Lf == 1 << 64 and r / (1 - r) <= exp_lower_bound(eps2)
     exact = _matmul(_exact(perm.channel()), [[r, 1 - r], [1 - r, r]])
     comp = perm.with_second_layer(eps2)
     assert isinstance(comp, mech.TwoPoint)
@@ -165,6 +178,8 @@ def test_two_point_composite_is_two_point_and_unbiased(eps1: float, eps2: float)
         mean = sum(float(exact[i][j]) * comp.outputs[j] for j in range(2))
         assert mean == pytest.approx(t, abs=1e-12)
     assert math.tanh(comp.epsilon / 2) == pytest.approx(float(2 * r - 1) * math.tanh(eps1 / 2), rel=1e-9)
+    ratio = max(max(exact[0][o], exact[1][o]) / min(exact[0][o], exact[1][o]) for o in range(2))
+    assert perm.second_layer_ratio(eps2) == ratio and exp_lower_bound(comp.epsilon) >= ratio
     assert comp.epsilon < min(eps1, eps2)
 
 
@@ -233,19 +248,21 @@ def test_frequencies_and_means_decode_unbiasedly(nights: dict[str, Any], tmp_pat
 def test_without_the_layer_reports_repeat_with_it_a_stated_share_differs(nights: dict[str, Any]) -> None:
     """Same people, same values, two nonces.  Without the layer every memoized report repeats
     exactly; with it the share of reports that differ matches the layer's formula within 4.5
-    binomial SE: 1 - r^2 - (1-r)^2/(k-1) (grr), 1 - (r^2 + (1-r)^2)^k (unary), 2 r (1-r)
-    (two-point), r the keep probability.  So a changed report no longer shows a changed value."""
+    binomial SE: 1 - r^2 - (k-1) o^2 (grr, o each other category's probability),
+    1 - (r^2 + (1-r)^2)^k (unary), 2 r (1-r) (two-point), r the keep probability.  So a changed
+    report no longer shows a changed value."""
     plain_1, plain_2 = nights[False, NIGHT_1][0], nights[False, NIGHT_2][0]
     layer_1, layer_2 = nights[True, NIGHT_1][0], nights[True, NIGHT_2][0]
     k, n = len(COLOURS), len(plain_1)
+    W = float(1 << 64)
     expected = {}
-    r = mech.GRR(1.5, COLOURS).second_layer_keep(2.0)
-    expected["colour"] = 1 - r * r - (1 - r) ** 2 / (k - 1)
-    r = mech.OUE.second_layer_keep(2.0)
+    Lp, Lq = mech.GRR(1.5, COLOURS).second_layer_thresholds(2.0)
+    expected["colour"] = 1 - (Lp / W) ** 2 - (k - 1) * (Lq / W) ** 2
+    r = mech.OUE(1.5, COLOURS).second_layer_thresholds(2.0)[0] / W
     expected["shade"] = 1 - (r * r + (1 - r) ** 2) ** k
-    r = mech.SUE.second_layer_keep(3.0)
+    r = mech.SUE(1.5, COLOURS).second_layer_thresholds(3.0)[0] / W
     expected["tone"] = 1 - (r * r + (1 - r) ** 2) ** k
-    r = mech.TwoPoint.second_layer_keep(1.5)
+    r = mech.TwoPoint.second_layer_thresholds(1.5)[0] / W
     expected["score"] = 2 * r * (1 - r)
     for col, want in expected.items():
         assert (plain_1[col].astype(str) == plain_2[col].astype(str)).all(), col

@@ -131,6 +131,18 @@ def check_epsilon(eps: Any, where: str) -> float:
     return float(eps)
 
 
+def certified_epsilon(ratio: Fraction) -> float:
+    """The eps to state for a channel whose exact worst likelihood ratio is ``ratio``: the smallest
+    float from ln(ratio) up whose certified lower bound of e^eps (``random.variates.exp_lower_bound``)
+    is at least ``ratio``, so the stated eps is never below the realized one."""
+    from ..random.variates import exp_lower_bound
+
+    eps = math.log(ratio)
+    while exp_lower_bound(eps) < ratio:
+        eps = math.nextafter(eps, math.inf)
+    return eps
+
+
 class Mechanism(ABC):
     """Common interface.  Subclasses set ``name``, ``kind`` and ``family`` (the family bases do the
     last two) and implement the rest."""

@@ -10,6 +10,7 @@ category the policy asks for, such as one for missing values).
 
 from __future__ import annotations
 
+import functools
 import math
 from fractions import Fraction
 from functools import cached_property
@@ -29,10 +30,9 @@ from ..random.variates import (
     second_threshold,
     symmetric_thresholds,
     to_below,
-    unit_below,
     words_below,
 )
-from .base import Mechanism, check_epsilon, register
+from .base import Mechanism, certified_epsilon, check_epsilon, register
 from .decoders import FrequencyDecoder
 from .bounds import frequency_lower_bound
 from .fit import (
@@ -269,25 +269,30 @@ class GRR(FrequencyOracle):
 
     @property
     def second_layer_words_per_row(self) -> int:
-        return 2
+        return 1
 
-    def second_layer_keep(self, epsilon2: float) -> float:
-        """The probability that the second layer keeps the permanent category, exactly as its
-        sampler realizes it (``unit_below``): e^eps2/(e^eps2+k-1) rounded up to the 2^-53 grid."""
-        e = math.exp(epsilon2)
-        return math.ceil(e / (e + self.k - 1) * (1 << 53)) / (1 << 53)
+    def second_layer_thresholds(self, epsilon2: float) -> tuple[int, int]:
+        """(Lp, Lq): k-ary RR at eps2 on the reported category, as integer masses in units of 2^-64
+        rounded toward privacy (``grr_thresholds``): kept w.p. Lp / 2^64, each other category
+        Lq / 2^64 exactly."""
+        return _layer_thresholds("grr", float(epsilon2), self.k)
+
+    def second_layer_ratio(self, epsilon2: float) -> Fraction:
+        """The exact worst likelihood ratio of the composite (this channel's thresholds, then the
+        layer's): k-ary RR with masses p' = Tp Lp + (k-1) Tq Lq, q' = Tq Lp + Tp Lq + (k-2) Tq Lq
+        (units of 2^-128)."""
+        (Tp, Tq), (Lp, Lq), k = self.thresholds, self.second_layer_thresholds(epsilon2), self.k
+        p2 = Tp * Lp + (k - 1) * Tq * Lq
+        q2 = Tq * Lp + Tp * Lq + (k - 2) * Tq * Lq
+        return Fraction(max(p2, q2), min(p2, q2))
 
     def composite_epsilon(self, epsilon2: float) -> float:
-        """k-ary RR then k-ary RR is k-ary RR: p' = p r + q (1 - r), q' = q r + (p + (k-2) q)(1 - r)/(k-1)
-        with r the second layer's keep probability; eps' = ln(p'/q')."""
-        p, q, k, r = self.p_star, self.q_star, self.k, self.second_layer_keep(epsilon2)
-        p2 = p * r + q * (1 - r)
-        q2 = q * r + (p + (k - 2) * q) * (1 - r) / (k - 1)
-        return math.log(p2 / q2)
+        """k-ary RR then k-ary RR is k-ary RR at eps' = ln(p'/q') (``second_layer_ratio``), stated as
+        the smallest float whose certified e^eps' is at least the exact ratio."""
+        return certified_epsilon(self.second_layer_ratio(epsilon2))
 
     def rerandomize(self, reports: list[pa.Array], words: np.ndarray, epsilon2: float) -> list[pa.Array]:
-        """k-ary RR on the reported category: kept with probability ``second_layer_keep``, else
-        one of the other k-1 categories uniformly."""
+        """k-ary RR on the reported category from one word per row (``randomized_response``)."""
         arr = reports[0]
         if isinstance(arr, pa.ChunkedArray):
             arr = arr.combine_chunks()
@@ -295,10 +300,8 @@ class GRR(FrequencyOracle):
             codes = np.asarray(arr.indices.to_numpy(zero_copy_only=False)).astype(np.int64)
         else:
             codes = np.asarray(self.reported_codes([arr])).astype(np.int64)
-        keep = unit_below(words[:, 0], self.second_layer_keep(epsilon2))
-        other = to_below(words[:, 1], self.k - 1)
-        other = other + (other >= codes)
-        return [self._labels_dictionary(np.where(keep, codes, other))]
+        return [self._labels_dictionary(randomized_response(words[:, 0], codes,
+                                                            *self.second_layer_thresholds(epsilon2)))]
 
     def fit_test(self) -> HullFit:
         """The reported labels against the hull of the k x k channel (no data-independent feature
@@ -407,28 +410,33 @@ class _UnaryEncoding(FrequencyOracle):
     def second_layer_words_per_row(self) -> int:
         return self.k
 
-    @staticmethod
-    def second_layer_keep(epsilon2: float) -> float:
-        """The probability that the second layer keeps a bit, exactly as its sampler realizes it
-        (``unit_below``): e^(eps2/2)/(e^(eps2/2)+1) rounded up to the 2^-53 grid (every bit is
-        kept or flipped symmetrically, so the layer alone on a one-hot vector is eps2-LDP)."""
-        a = math.exp(epsilon2 / 2)
-        return math.ceil(a / (a + 1) * (1 << 53)) / (1 << 53)
+    def second_layer_thresholds(self, epsilon2: float) -> tuple[int, int]:
+        """(Lk, Lf), Lk + Lf = 2^64: every bit kept w.p. Lk / 2^64, else flipped, with squared odds
+        (Lk / Lf)^2 at most e^eps2 (``symmetric_thresholds``, rounded toward privacy): on a one-hot
+        vector the layer alone is eps2-LDP."""
+        return _layer_thresholds("symmetric", float(epsilon2), 2)
+
+    def second_layer_ratio(self, epsilon2: float) -> Fraction:
+        """The exact worst likelihood ratio of the composite: a unary encoding whose bit is 1 with
+        mass P = Tp Lk + (2^64 - Tp) Lf at the row's value and Q = Tq Lk + (2^64 - Tq) Lf elsewhere
+        (units of 2^-128); the worst output has 1 at x and 0 at x'."""
+        (Tp, Tq), (Lk, Lf), W2 = self.thresholds, self.second_layer_thresholds(epsilon2), THRESHOLD_ONE ** 2
+        P = Tp * Lk + (THRESHOLD_ONE - Tp) * Lf
+        Q = Tq * Lk + (THRESHOLD_ONE - Tq) * Lf
+        r = [Fraction(P, Q), Fraction(W2 - P, W2 - Q)]
+        return max(r) * max(1 / v for v in r)
 
     def composite_epsilon(self, epsilon2: float) -> float:
-        """Each bit through the permanent layer, then kept w.p. r or flipped: a unary encoding with
-        p' = p r + (1-p)(1-r), q' = q r + (1-q)(1-r); eps' = ln(p'(1-q') / (q'(1-p'))).  With
-        p = 1/2 (oue) p' = 1/2; with q = 1 - p (sue) q' = 1 - p': the family is kept."""
-        p, q, r = self.p_star, self.q_star, self.second_layer_keep(epsilon2)
-        p2 = p * r + (1 - p) * (1 - r)
-        q2 = q * r + (1 - q) * (1 - r)
-        return math.log(p2 / q2) + math.log((1 - q2) / (1 - p2))
+        """The composite is a unary encoding with p' = P / 2^128, q' = Q / 2^128 (``second_layer_ratio``);
+        p = 1/2 gives p' = 1/2 (oue), q = 1 - p gives q' = 1 - p' (sue): the family is kept.  Stated
+        as the smallest float whose certified e^eps' is at least the exact ratio."""
+        return certified_epsilon(self.second_layer_ratio(epsilon2))
 
     def rerandomize(self, reports: list[pa.Array], words: np.ndarray, epsilon2: float) -> list[pa.Array]:
-        """Every bit of the report kept with probability ``second_layer_keep``, else flipped."""
+        """Every bit of the report kept when its word is below Lk, else flipped."""
         bits, _ = strings_to_bits(reports[0], self.k)
-        flip = ~unit_below(words, self.second_layer_keep(epsilon2))
-        return [bits_to_strings(bits ^ flip)]
+        keep = words_below(words, self.second_layer_thresholds(epsilon2)[0])
+        return [bits_to_strings(bits ^ ~keep)]
 
 
 @register
@@ -456,6 +464,14 @@ class OUE(_UnaryEncoding):
     def thresholds(self) -> tuple[int, int]:
         Tp = THRESHOLD_ONE // 2
         return Tp, second_threshold(Tp, exp_lower_bound(self.epsilon))
+
+
+@functools.lru_cache(maxsize=64)
+def _layer_thresholds(kind: str, epsilon2: float, outputs: int) -> tuple[int, int]:
+    """The second layer's integer thresholds at eps2 (cached: the certified bound of e^eps2 is
+    computed once per layer, not per batch)."""
+    bound = exp_lower_bound(epsilon2)
+    return grr_thresholds(bound, outputs) if kind == "grr" else symmetric_thresholds(bound)
 
 
 HASH_PRIME = (1 << 31) - 1  # Mersenne prime 2^31 - 1

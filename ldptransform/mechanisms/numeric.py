@@ -33,6 +33,7 @@ estimate of x in the column's own units.
 from __future__ import annotations
 
 import math
+from fractions import Fraction
 from functools import cached_property
 from typing import Annotated, Any, ClassVar
 
@@ -45,13 +46,15 @@ from ..errors import PolicyError
 from ..random.variates import (
     SAMPLING_BITS,
     draw_index,
+    exp_lower_bound,
+    grr_thresholds,
     guide_table,
     integer_masses,
     sampling_table,
     to_unit,
-    unit_below,
+    words_below,
 )
-from .base import MeanMechanism, NoParams, check_epsilon, register
+from .base import MeanMechanism, NoParams, certified_epsilon, check_epsilon, register
 from .fit import HullFit
 
 DEFAULT_GRID = 256
@@ -352,36 +355,44 @@ class TwoPoint(GridMechanism):
         return 1
 
     @staticmethod
-    def second_layer_keep(epsilon2: float) -> float:
-        """The probability that the second layer keeps the sign of the permanent report, exactly as
-        its sampler realizes it (``unit_below``): e^eps2/(e^eps2+1) rounded up to the 2^-53 grid
-        (binary randomized response on the sign: the layer alone is eps2-LDP)."""
-        e = math.exp(epsilon2)
-        return math.ceil(e / (e + 1) * (1 << 53)) / (1 << 53)
+    def second_layer_thresholds(epsilon2: float) -> tuple[int, int]:
+        """(Lk, Lf), Lk + Lf = 2^64: binary randomized response at eps2 on the sign of the permanent
+        report, kept w.p. Lk / 2^64 (``grr_thresholds`` with two outputs, rounded toward privacy:
+        Lk / Lf <= e^eps2, so the layer alone is eps2-LDP)."""
+        return grr_thresholds(exp_lower_bound(float(epsilon2)), 2)
+
+    def _composite_masses(self, epsilon2: float) -> list[list[int]]:
+        """The composite channel as exact integer masses (units of 2^-(50+64)), rows the grid
+        inputs t = -1, 1, columns the outputs -C', +C': M[i][o] Lk + M[i][1-o] Lf."""
+        M = [[int(v) for v in row] for row in self._integer_channel]
+        Lk, Lf = self.second_layer_thresholds(epsilon2)
+        return [[M[i][o] * Lk + M[i][1 - o] * Lf for o in range(2)] for i in range(2)]
+
+    def second_layer_ratio(self, epsilon2: float) -> Fraction:
+        """The exact worst likelihood ratio of the composite over its two outputs."""
+        C = self._composite_masses(epsilon2)
+        return max(Fraction(max(C[0][o], C[1][o]), min(C[0][o], C[1][o])) for o in range(2))
 
     def composite_epsilon(self, epsilon2: float) -> float:
-        """Two-point with slope s = P(+C | t=1) - P(+C | t=-1) (as the sampler realizes it), then a
-        sign kept w.p. r: P'(+ | t) - 1/2 = (2r - 1)(P(+ | t) - 1/2), two-point with slope
-        s' = (2r - 1) s; a two-point mechanism's slope is (e^eps-1)/(e^eps+1), so
-        eps' = ln((1 + s')/(1 - s')), i.e. tanh(eps'/2) = tanh(eps/2) (2r - 1)."""
-        Q = self.channel()
-        slope = float(Q[1, 1] - Q[0, 1])
-        s2 = (2 * self.second_layer_keep(epsilon2) - 1) * slope
-        return math.log((1 + s2) / (1 - s2))
+        """Two-point with slope s = P(+C | t=1) - P(+C | t=-1), then the sign kept w.p. r:
+        P'(+ | t) - 1/2 = (2r - 1)(P(+ | t) - 1/2), two-point with slope s' = (2r - 1) s; a two-point
+        mechanism's slope is tanh(eps/2), so tanh(eps'/2) = (2r - 1) tanh(eps/2).  Stated from the
+        exact ratio of the realized masses (``second_layer_ratio``), as the smallest float whose
+        certified e^eps' is at least it."""
+        return certified_epsilon(self.second_layer_ratio(epsilon2))
 
     def rerandomize(self, reports: list[pa.Array], words: np.ndarray, epsilon2: float) -> list[pa.Array]:
-        """The sign of the permanent report kept with probability ``second_layer_keep``, else
-        flipped, and written as the composite's value +-C' = +-1/s' (normalized units), so that the
-        written value is again the row's unbiased estimate."""
+        """The sign of the permanent report kept when the row's word is below Lk, else flipped,
+        written as the composite's value +-C' = +-(e^eps'+1)/(e^eps'-1) (the output alphabet of
+        two-point at eps', normalized units): the row's unbiased estimate under the composite."""
         arr = reports[0]
         if isinstance(arr, pa.ChunkedArray):
             arr = arr.combine_chunks()
         vals = np.asarray(pc.cast(arr, pa.float64()).to_numpy(zero_copy_only=False))
         plus = vals > (self.lo + self.hi) / 2.0
-        keep = unit_below(words[:, 0], self.second_layer_keep(epsilon2))
+        keep = words_below(words[:, 0], self.second_layer_thresholds(epsilon2)[0])
         alphabet = self.to_units(_two_point_channel(self.composite_epsilon(epsilon2), self.inputs)[0])
         return [pa.array(alphabet[np.where(keep, plus, ~plus).astype(np.int64)])]
-
 
 @register
 class Piecewise(GridMechanism):
