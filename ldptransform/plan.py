@@ -392,6 +392,12 @@ def _meets(rc: ResolvedColumn, eps: float, rows: int, rate: float, default: Qual
     return all(s.get("meets_target") is not False for s in stats)
 
 
+def _meets_as_is(rc: ResolvedColumn, rows: int, default: Quality | None) -> bool:
+    """Whether the column as the policy gives it (its mechanism, second layer included) meets its targets."""
+    stats = column_statistics(rc, rows, 1.0, default, simulate=True)
+    return all(s.get("meets_target") is not False for s in stats)
+
+
 def _has_target(rc: ResolvedColumn, default: Quality | None) -> bool:
     stats = column_statistics(rc, 1000, 1.0, default, simulate=False)
     return any("target_se" in s and (s.get("target_se") is not None or s.get("target_relative_se") is not None)
@@ -437,6 +443,14 @@ def _split_column(rc: ResolvedColumn, rows: int, default: Quality | None) -> tup
     m = _mechanism(rc)
     if not _has_target(rc, default):
         return {"epsilon": m.epsilon, "note": "no target: eps kept as in the policy"}, m.epsilon
+    if rc.rerandomize_epsilon is not None:
+        # two layers: the SE follows both eps, so no single eps is searched; the column adds its
+        # composite eps (what one release reveals) to the row's total
+        verdict = "meets" if _meets_as_is(rc, rows, default) else "misses"
+        note = (f"second layer: eps {rc.permanent_epsilon:g} then rerandomize_epsilon {rc.rerandomize_epsilon:g}, "
+                f"composite eps {m.epsilon:.4g} per release, kept as in the policy; it {verdict} the target at "
+                f"{rows} rows (raise either eps to lower the SE)")
+        return {"epsilon": m.epsilon, "note": note}, m.epsilon
     fixed = m.fixed_epsilon()
     if fixed is not None:
         # the mechanism's own parameters fix the noise (a supplied transition matrix): eps only

@@ -434,3 +434,20 @@ def test_the_ledger_charges_the_permanent_eps_once_per_value(tmp_path: Path, pri
     a, b = pd.read_parquet(tmp_path / "n0.parquet"), pd.read_parquet(tmp_path / "n1.parquet")
     if ROW_ORDER:
         assert (a["colour"].astype(str) != b["colour"].astype(str)).any()
+
+
+def test_plan_suggest_keeps_a_layered_column_and_says_why() -> None:
+    """plan --suggest does not search one eps for a column with two layers (its SE follows both):
+    it keeps the policy's layers, counts the composite eps in the row's total and says whether the
+    target is met."""
+    from ldptransform.plan import suggest
+
+    p = layered_policy(True)
+    p["columns"]["colour"]["quality"] = {"max_se": 0.05}
+    loaded = parse_policy(p, "layer.yaml")
+    out = suggest(loaded, 2000)
+    entry = out["split"]["columns"]["colour"]
+    comp = loaded.by_name["colour"].mechanism
+    assert comp is not None and entry["epsilon"] == comp.epsilon
+    assert "second layer" in entry["note"] and "meets the target at 2000 rows" in entry["note"]
+    assert "misses the target at 200 rows" in suggest(loaded, 200)["split"]["columns"]["colour"]["note"]
