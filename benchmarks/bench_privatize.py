@@ -18,7 +18,9 @@ Default: timings and memory scaling.  Timings, on one synthetic file of N rows, 
   copy       plain pyarrow read + write of the same file (Parquet: ParquetFile.iter_batches
              -> ParquetWriter, zstd like the extract; CSV: pyarrow.csv streaming reader ->
              CSVWriter)
-  privatize  ldptransform.release.privatize on it (manifest, hash and diagnostics included)
+  privatize  ldptransform.release.privatize on it (manifest, hash and diagnostics included), rows in
+             the keyed shuffled order (the default)
+  as-input   the same with policy output.row_order: as-input (no shuffle)
   estimate   ldptransform.estimate.estimate on the extract
   pandas     pandas read of the same extract columns + value_counts / mean per column
   parts      privatize with the local engine into a Parquet dataset (one part per 1M rows)
@@ -181,11 +183,14 @@ def _child_setup(a: dict) -> dict:
     import synthetic
 
     synthetic.write_policy(a["policy"], a["policy_kind"])
+    # the same policy with the rows kept in input order (no keyed shuffle)
+    Path(a["policy_as_input"]).write_text(Path(a["policy"]).read_text() + "\noutput:\n  row_order: as-input\n")
     synthetic.write_key(a["key"])
     return {"seconds": 0.0, "rows": 0}
 
 
 CHILDREN = {"setup": _child_setup, "generate": _child_generate, "copy": _child_copy, "privatize": _child_privatize,
+            "as-input": _child_privatize,
             "estimate": _child_estimate, "pandas": _child_pandas, "parts": _child_parts, "dask": _child_parts}
 
 
@@ -317,7 +322,8 @@ def _run(args: argparse.Namespace, out_dir: Path, chunk_rows: int) -> int:
     print(f"ldptransform benchmark: {n:,} rows, {fmt}, batch_rows {batch:,}, input row groups/chunks of "
           f"{chunk_rows:,}, repeat {args.repeat}, python {sys.version.split()[0]}, {os.cpu_count()} CPU(s)")
     policy, key = out_dir / f"synthetic_policy_{args.policy}.yaml", out_dir / "synthetic.key"
-    run_child("setup", policy=str(policy), key=str(key), policy_kind=args.policy)
+    policy_kept = out_dir / f"synthetic_policy_{args.policy}_as_input.yaml"
+    run_child("setup", policy=str(policy), key=str(key), policy_kind=args.policy, policy_as_input=str(policy_kept))
     dask_ok = timings and not args.no_dask and fmt == "parquet" and _dask_installed()
     src = make_input(out_dir, n, fmt, chunk_rows)
     results: dict = {"rows": n, "format": fmt, "batch_rows": batch, "chunk_rows": chunk_rows,
@@ -330,6 +336,8 @@ def _run(args: argparse.Namespace, out_dir: Path, chunk_rows: int) -> int:
         steps["copy"] = dict(input=str(src), output=str(out_dir / f"copy_{n}.{fmt}"), batch_rows=batch)
     steps["privatize"] = dict(input=str(src), output=str(extract), policy=str(policy), key=str(key), batch_rows=batch)
     if timings:
+        steps["as-input"] = dict(input=str(src), output=str(out_dir / f"extract_as_input_{n}.{fmt}"),
+                                 policy=str(policy_kept), key=str(key), batch_rows=batch)
         steps["estimate"] = dict(extract=str(extract))
         steps["pandas"] = dict(extract=str(extract))
     if dask_ok:
@@ -353,7 +361,10 @@ def _run(args: argparse.Namespace, out_dir: Path, chunk_rows: int) -> int:
         print(f"\nfastest of {args.repeat} round(s); peak RSS is the largest over the rounds")
         print(f"{'step':<11}{'rows':>12}{'seconds':>10}{'rows/s':>13}{'peak RSS':>11}{'(VmHWM)':>11}"
               f"{'process s':>11}")
-        shown = [("copy", copy), ("privatize", priv), ("estimate", est), ("pandas", pdr)]
+        kept = measured["as-input"]
+        results["as_input"] = kept
+        results["as_input_over_copy"] = kept["seconds"] / copy["seconds"]
+        shown = [("copy", copy), ("privatize", priv), ("as-input", kept), ("estimate", est), ("pandas", pdr)]
         if dask_ok:
             shown += [("parts", measured["parts"]), ("dask", measured["dask"])]
         for name, r in shown:
@@ -366,6 +377,8 @@ def _run(args: argparse.Namespace, out_dir: Path, chunk_rows: int) -> int:
               f"{verdict})")
         if len(per_round) > 1:
             print(f"  round by round:    {', '.join(f'{r:.2f}' for r in per_round)}")
+        print(f"as-input / copy    = {kept['seconds'] / copy['seconds']:.2f}  (policy output.row_order: as-input, "
+              "no shuffle; informative)")
         everdict = "OK" if eratio <= TARGET_ESTIMATE_RATIO else "ABOVE TARGET"
         ok &= eratio <= TARGET_ESTIMATE_RATIO
         print(f"estimate / pandas  = {eratio:.2f}  (target <= {TARGET_ESTIMATE_RATIO:g}: {everdict}; estimate also "

@@ -187,6 +187,16 @@ def keyed_words(label: str, n: int, per_row: int, start: int = 0, *, key: Any = 
     return KeyedStream(key, nonce, stream, label).words(start, n, per_row)
 
 
+def extract_order(key: Any, nonce: str, n: int) -> Any:
+    """The steward's view of a shuffled extract (policy output.row_order: shuffled): row j of the
+    extract is input row ``extract_order(...)[j]`` (the input rows sorted by their keyed tags)."""
+    from ldptransform.release.shuffle import row_tags, tag_stream
+
+    import numpy as np
+
+    return np.argsort(row_tags(tag_stream(key, nonce), 0, n), kind="stable")
+
+
 def mechanism_of(rc: ResolvedColumn) -> Mechanism:
     """The mechanism of a privatized column of a resolved policy (the test fails if it has none)."""
     assert rc.mechanism is not None, f"column {rc.name} is not privatized"

@@ -17,6 +17,7 @@ from ..ledger import LedgerCharges
 from ..manifest import CAUTIONS, Manifest, Privacy, now_utc
 from ..policy import LoadedPolicy
 from ..random.bits import PRF_VERSION
+from .central import central_entry
 from .columns import ColumnPlan, column_entries
 from .memo import memo_composition_text
 from .options import ReleaseOptions
@@ -98,6 +99,8 @@ def privacy_entry(policy: LoadedPolicy, plans: list[ColumnPlan], opts: ReleaseOp
         "row_order": order, "row_order_note": ROW_ORDER_NOTES[order],
         "placeholder_rows": PLACEHOLDER_NOTE if opts is not None and opts.allow_partial else None}
     if policy.strategy == "sample":
+        if rows is not None:
+            common["central"] = central_entry(policy, plans, opts, rows, policy.epsilon_total)
         return Privacy(**common, epsilon_per_row_used=policy.epsilon_total,
                        composition=f"sequential over the columns a row reports: each row reports {m} of its {d} "
                                    f"privatized columns, each randomized at eps {policy.policy.sampled_epsilon:g} "
@@ -105,6 +108,8 @@ def privacy_entry(policy: LoadedPolicy, plans: list[ColumnPlan], opts: ReleaseOp
                                    "reports is chosen by the keyed PRF independently of the data (the other cells "
                                    "are empty); releases about the same people add up" + memo_text)
     used = sum(p.rc.mechanism.epsilon for p in plans if p.rc.mechanism is not None)
+    if rows is not None:
+        common["central"] = central_entry(policy, plans, opts, rows, used)
     return Privacy(**common, epsilon_per_row_used=used,
                    composition="sequential: a row's epsilon is the sum over its privatized columns; releases about "
                                "the same people add up" + memo_text)

@@ -16,6 +16,7 @@ from ..keys import SecretKey
 from ..ledger import LedgerCharges
 from ..manifest import Manifest
 from ..policy import LoadedPolicy
+from .central import check_one_row_per_person
 from .charges import precharge, record_release, rows_held
 from .columns import (
     ColumnPlan,
@@ -88,6 +89,7 @@ def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey
     check_paths_apart(opts, policy, key, diag_path)
     plans = plan_columns(policy, src.column_names, source_location(src, opts))
     check_csv_markers(policy, src, plans)
+    check_one_row_per_person(src, policy, opts.batch_rows, source_location(src, opts))
     schema = output_schema(plans, src.schema, src.format)
     sampler = attach_randomness(plans, policy, key, opts.nonce)
     read_cols, subject_key = read_columns(plans, policy)

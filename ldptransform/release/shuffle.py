@@ -43,9 +43,9 @@ from ..random.bits import KeyedStream
 from .kernel import rebuild_dictionary
 
 ROW_ORDER_PURPOSE = "row-order"
-RUN_ROWS = 1 << 20      # rows gathered, sorted and spilled together
-CHUNK_ROWS = 8192       # rows per record batch of a spilled run (the unit read back)
-WINDOW_ROWS = 1 << 20   # rows merged in memory at once (at most about this many)
+RUN_ROWS = 1 << 18      # rows gathered, sorted and spilled together
+CHUNK_ROWS = 2048       # rows per record batch of a spilled run (the unit read back)
+WINDOW_ROWS = 1 << 18   # rows merged in memory at once (at most about this many)
 BUCKET_BITS = 16        # tag buckets counted: windows are whole buckets
 _BUCKET_SHIFT = np.uint64(64 - BUCKET_BITS)
 TAG_COLUMN = "__ldpt_row_tag"
