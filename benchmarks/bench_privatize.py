@@ -102,7 +102,7 @@ def _child_privatize(a: dict) -> dict:
     lp = load_policy(a["policy"])
     key = load_key(a["key"])
     t0 = time.perf_counter()
-    res = privatize(a["input"], lp, key, a["output"], diagnostics_path=a["output"] + ".PRIVATE-diagnostics.json",
+    res = privatize(a["input"], lp, key, a["output"],
                     batch_rows=a["batch_rows"], overwrite=True, nonce=FIXED_NONCE)
     return {"seconds": time.perf_counter() - t0, "rows": res.manifest.rows, "sha256": res.manifest.extract.sha256}
 
@@ -135,7 +135,7 @@ def _child_parts(a: dict) -> dict:
         kw = {"engine": "dask", "scheduler": cluster.scheduler_address}
     try:
         t0 = time.perf_counter()
-        res = privatize(a["input"], lp, key, out, diagnostics_path=str(out) + ".PRIVATE-diagnostics.json",
+        res = privatize(a["input"], lp, key, out,
                         batch_rows=a["batch_rows"], overwrite=True, nonce=FIXED_NONCE, **kw)
         secs = time.perf_counter() - t0
     finally:
@@ -195,7 +195,16 @@ CHILDREN = {"setup": _child_setup, "generate": _child_generate, "copy": _child_c
 
 
 def child_main(kind: str, args_json: str) -> None:
-    result = CHILDREN[kind](json.loads(args_json))
+    import shutil
+
+    # every child is a steward of its own: its own private folder (0700) for the diagnostics and
+    # the record of used nonces, so the fixed nonce can be reused from one child to the next
+    private = tempfile.mkdtemp(prefix="ldpt-bench-private-")
+    os.environ["LDPT_PRIVATE_DIR"] = private
+    try:
+        result = CHILDREN[kind](json.loads(args_json))
+    finally:
+        shutil.rmtree(private, ignore_errors=True)
     result["vmhwm_kb"] = _vmhwm_kb()
     print(json.dumps(result))
 

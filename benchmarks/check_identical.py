@@ -49,7 +49,7 @@ CASES = [
 ]
 
 _CHILD = """
-import json, sys
+import json, os, sys, tempfile
 from pathlib import Path
 tree, work, cases = sys.argv[1], Path(sys.argv[2]), json.loads(sys.argv[3])
 sys.path.insert(0, tree)
@@ -64,9 +64,12 @@ for name, fmt, batch, policy in cases:
     dest = work / f"out-{Path(tree).name}-{Path(name).name}-{batch}.{fmt}"
     ledger = work / f"ledger-{Path(tree).name}-{len(out)}.sqlite3"
     pol = load_policy(policy) if policy else lp
+    # each case a steward of its own (the nonce is reused on purpose), diagnostics kept apart
+    private = Path(tempfile.mkdtemp(prefix="ldpt-identical-"))
+    os.environ["LDPT_PRIVATE_DIR"] = str(private)
     r = privatize(work / name, pol, key, dest, batch_rows=batch, overwrite=True, nonce=sys.argv[4],
                   ledger_path=ledger if pol.policy.subject_key else None,
-                  diagnostics_path=work / "diagnostics.json", manifest_path=work / "manifest.json")
+                  diagnostics_path=private / "diagnostics.json", manifest_path=work / "manifest.json")
     label = f"{Path(policy).name}: " if policy else ""
     out[f"{label}{Path(name).name} -> {fmt}, batch {batch}"] = r.manifest.extract.sha256
     dest.unlink()

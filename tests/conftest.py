@@ -87,6 +87,18 @@ def private_dir(tmp_path_factory: pytest.TempPathFactory, monkeypatch: pytest.Mo
     return d
 
 
+@pytest.fixture
+def other_steward(tmp_path_factory: pytest.TempPathFactory, monkeypatch: pytest.MonkeyPatch) -> Callable[[], Path]:
+    """Switch to a fresh steward-private folder (its own nonce record, diagnostics, default
+    ledger): for tests that re-run a release under the same key and nonce with another policy or
+    other data on purpose (to compare the two), which one steward's state refuses."""
+    def switch() -> Path:
+        d = tmp_path_factory.mktemp("ldpt-private")
+        monkeypatch.setenv("LDPT_PRIVATE_DIR", str(d))
+        return d
+    return switch
+
+
 def cli_env(private: Path) -> dict[str, str]:
     env = os.environ.copy()
     env["LDPT_PRIVATE_DIR"] = str(private)

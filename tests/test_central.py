@@ -47,9 +47,7 @@ def policy(**out: Any) -> dict[str, Any]:
 def release(tmp: Path, pol: dict[str, Any], df: pd.DataFrame | None = None, name: str = "x", **kw: Any) -> Any:
     raw = tmp / f"{name}.parquet"
     (df if df is not None else table()).to_parquet(raw, index=False)
-    (tmp / "private").mkdir(mode=0o700, exist_ok=True)
-    return privatize(raw, parse_policy(pol, f"{name}.yaml"), KEY, tmp / f"{name}-out.parquet", nonce=NONCE,
-                     diagnostics_path=tmp / "private" / f"{name}.json", **kw)
+    return privatize(raw, parse_policy(pol, f"{name}.yaml"), KEY, tmp / f"{name}-out.parquet", nonce=NONCE, **kw)
 
 
 def paper_epsilon(eps0: float, n: int, delta: float) -> float:

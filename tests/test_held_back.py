@@ -12,6 +12,7 @@ the people whose values changed, held back or not: its precision is the base rat
 
 from __future__ import annotations
 
+from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
@@ -55,15 +56,21 @@ def policy() -> Any:
 def release(df: pd.DataFrame, tmp: Path, name: str, nonce: int, **kw: Any) -> Any:
     raw = tmp / f"{name}.csv"
     df.to_csv(raw, index=False)
+    steward = tmp.parent / f"{tmp.name}-steward"  # private, apart from what partners receive
     return privatize(raw, policy(), KEY, tmp / f"{name}.parquet", nonce=f"{nonce:032x}",
-                     diagnostics_path=tmp / "private" / f"{name}.json", ledger_path=tmp / "private" / "ledger.sqlite3",
-                     **kw)
+                     diagnostics_path=steward / f"{name}.json", ledger_path=steward / "ledger.sqlite3", **kw)
 
 
 @pytest.fixture(scope="module")
-def nights(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
+def nights(tmp_path_factory: pytest.TempPathFactory) -> Iterator[dict[str, Any]]:
     tmp = tmp_path_factory.mktemp("held")
-    (tmp / "private").mkdir(mode=0o700)
+    (tmp.parent / f"{tmp.name}-steward").mkdir(mode=0o700)
+    with pytest.MonkeyPatch.context() as mp:  # the steward's private state of these nights
+        mp.setenv("LDPT_PRIVATE_DIR", str(tmp.parent / f"{tmp.name}-steward"))
+        yield _nights(tmp)
+
+
+def _nights(tmp: Path) -> dict[str, Any]:
     df = people()
     release(df, tmp, "night1", 1)                              # everyone: 3 each
     release(df.iloc[:HELD], tmp, "sensitive", 2)               # the sensitive group: +1 (memoized unchanged)

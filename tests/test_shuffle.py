@@ -59,13 +59,11 @@ def policy(order: str | None = None, **extra: Any) -> Any:
 
 
 def release(raw: Path, pol: Any, out: Path, nonce: str = NONCE, **kw: Any) -> Any:
-    return privatize(raw, pol, KEY, out, nonce=nonce, diagnostics_path=out.parent / "private" / f"{out.name}.d.json",
-                     **kw)
+    return privatize(raw, pol, KEY, out, nonce=nonce, **kw)  # diagnostics: the test's private folder
 
 
 @pytest.fixture
 def raw(tmp_path: Path) -> Path:
-    (tmp_path / "private").mkdir(mode=0o700)
     path = tmp_path / "raw.parquet"
     table(5000).to_parquet(path, index=False)
     return path
@@ -82,8 +80,10 @@ def reference_tags(n: int, nonce: str) -> np.ndarray:
     return np.frombuffer(out, dtype="<u8").reshape(n, 2)[:, 0]
 
 
-def test_the_extract_is_the_rows_in_the_order_of_their_keyed_tags(raw: Path, tmp_path: Path) -> None:
+def test_the_extract_is_the_rows_in_the_order_of_their_keyed_tags(raw: Path, tmp_path: Path,
+                                                                  other_steward: Any) -> None:
     kept = release(raw, policy("as-input"), tmp_path / "kept.parquet")
+    other_steward()  # the same noise under another policy, on purpose: one steward's nonce record refuses it
     shuf = release(raw, policy(), tmp_path / "shuf.parquet")
     a = pd.read_parquet(tmp_path / "kept.parquet")
     b = pd.read_parquet(tmp_path / "shuf.parquet")
@@ -123,10 +123,11 @@ def test_the_order_is_the_same_for_every_batch_size_spill_size_and_layout(raw: P
     assert not [p for p in tmp_path.iterdir() if "row-order" in p.name]
 
 
-def test_the_order_does_not_depend_on_the_data_and_changes_with_the_nonce(tmp_path: Path) -> None:
-    (tmp_path / "private").mkdir(mode=0o700)
+def test_the_order_does_not_depend_on_the_data_and_changes_with_the_nonce(tmp_path: Path,
+                                                                         other_steward: Any) -> None:
     rows = {}
     for name, seed, nonce in (("a", 1, NONCE), ("b", 2, NONCE), ("c", 1, "77" * 16)):
+        other_steward()  # other data under the same nonce, on purpose
         path = tmp_path / f"{name}.parquet"
         table(4000, seed).to_parquet(path, index=False)
         release(path, policy(), tmp_path / f"out-{name}.parquet", nonce=nonce)
@@ -138,19 +139,19 @@ def test_the_order_does_not_depend_on_the_data_and_changes_with_the_nonce(tmp_pa
     assert abs(rho) < 4 / np.sqrt(4000), rho
 
 
-def test_neighbours_of_a_sorted_input_tell_nothing_once_shuffled(tmp_path: Path) -> None:
+def test_neighbours_of_a_sorted_input_tell_nothing_once_shuffled(tmp_path: Path, other_steward: Any) -> None:
     """The row-order attack: the demo survey exported sorted by site, site randomized by k-ary
     randomized response at eps 1.  A partner guesses each row's site from its own report, or
     from the majority of the reports of its 301 neighbours.  In input order the neighbours give
     the site away (measured about 97% correct); shuffled, their majority is no better than the
     row's own report (at most 1 percentage point above it).  Fixed key and nonce."""
-    (tmp_path / "private").mkdir(mode=0o700)
     df = pd.read_csv(DEMO_CSV).sort_values("site", kind="stable").reset_index(drop=True)
     raw = tmp_path / "sorted.csv"
     df.to_csv(raw, index=False)
     truth_of = df.set_index("staff_id")["site"]
     found = {}
     for order in ("as-input", "shuffled"):
+        other_steward()  # the same nonce for both orders, on purpose
         pol = parse_policy({"budget": {"epsilon_per_row": 1.0}, "unlisted": "drop", "output": {"row_order": order},
                             "columns": {"site": {"type": "categorical", "categories": SITES, "epsilon": 1.0,
                                                  "mechanism": "grr", "unknown": "as-category"},
@@ -171,10 +172,9 @@ def test_neighbours_of_a_sorted_input_tell_nothing_once_shuffled(tmp_path: Path)
     assert neighbours <= own + 0.01, found
 
 
-def test_a_public_dictionary_column_carries_only_released_values(tmp_path: Path) -> None:
+def test_a_public_dictionary_column_carries_only_released_values(tmp_path: Path, other_steward: Any) -> None:
     """A Parquet dictionary column whose dictionary lists values no row holds: the extract's
     dictionary is rebuilt from the released rows (shuffled or not)."""
-    (tmp_path / "private").mkdir(mode=0o700)
     n = 3000
     df = table(n)
     team = pa.DictionaryArray.from_arrays(pa.array(np.arange(n) % 3, pa.int32()),
@@ -183,6 +183,7 @@ def test_a_public_dictionary_column_carries_only_released_values(tmp_path: Path)
     raw = tmp_path / "dict.parquet"
     pq.write_table(t, raw, row_group_size=1000)
     for order in ("shuffled", "as-input"):
+        other_steward()
         pol = policy(order)
         cols = {**pol.policy.canonical()["columns"], "team": {"type": "public"}}
         pol = parse_policy({**pol.policy.canonical(), "columns": cols}, "dict.yaml")
@@ -213,7 +214,7 @@ def test_spilled_runs_are_private_while_they_exist_and_removed_after(raw: Path, 
     release(raw, policy(), tmp_path / "x.parquet")
     assert modes_seen and set(modes_seen) == {0o700}
     assert sorted(p.name for p in tmp_path.iterdir() if not p.name.startswith("raw")) == \
-        ["private", "x.manifest.json", "x.parquet"]
+        ["x.manifest.json", "x.parquet"]
 
 
 def test_a_stop_during_the_shuffle_leaves_nothing(raw: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
@@ -225,7 +226,7 @@ def test_a_stop_during_the_shuffle_leaves_nothing(raw: Path, tmp_path: Path, mon
     monkeypatch.setattr(shuffle, "read_window", boom)
     with pytest.raises(KeyboardInterrupt):
         release(raw, policy(), tmp_path / "x.parquet")
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["private", "raw.parquet"]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["raw.parquet"]
 
 
 def test_the_cli_shows_the_row_order(tmp_path: Path, ldpt: Any) -> None:
