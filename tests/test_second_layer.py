@@ -37,6 +37,10 @@ from ldptransform.release import privatize
 
 KEY = SecretKey(bytes(range(140, 172)))  # fixed key: the statistical checks cannot flake
 NIGHT_1, NIGHT_2 = "00000000000000000000000000000101", "00000000000000000000000000000202"
+# every release of this file has a nonce of its own (a nonce is single-use unless input and policy repeat)
+PLAIN = {NIGHT_1: "00000000000000000000000000001101", NIGHT_2: "00000000000000000000000000001202"}
+NIGHT_V, NIGHT_L = "00000000000000000000000000002101", ("00000000000000000000000000003101",
+                                                         "00000000000000000000000000003202")
 Z_LIMIT = 4.5
 COLOURS = ["red", "green", "blue", "white", "black"]
 # these tests align a person's rows across releases: keep the input's order where the policy can say so
@@ -73,12 +77,23 @@ def layered_policy(layer: bool = True, **over: Any) -> dict[str, Any]:
     return p
 
 
-def release(df: pd.DataFrame, pol: dict[str, Any], tmp: Path, nonce: str, name: str) -> tuple[pd.DataFrame, dict]:
-    raw = tmp / f"{name}.csv"
+def places(tmp: Path) -> tuple[Path, Path]:
+    """(the folder partners receive, a steward-only folder of mode 0700 beside it)."""
+    pub, priv = tmp / "pub", tmp / "priv"
+    pub.mkdir(exist_ok=True)
+    priv.mkdir(mode=0o700, exist_ok=True)
+    return pub, priv
+
+
+def release(df: pd.DataFrame, pol: dict[str, Any], tmp: Path, nonce: str, name: str,
+            **kw: Any) -> tuple[pd.DataFrame, dict]:
+    pub, priv = places(tmp)
+    raw = priv / f"{name}.csv"
     df.to_csv(raw, index=False)
-    out = tmp / f"{name}.parquet"
-    privatize(raw, parse_policy(pol, "layer.yaml"), KEY, out, nonce=nonce, diagnostics_path=tmp / f"{name}.diag.json")
-    manifest = json.loads((tmp / f"{name}.manifest.json").read_text())
+    out = pub / f"{name}.parquet"
+    privatize(raw, parse_policy(pol, "layer.yaml"), KEY, out, nonce=nonce, diagnostics_path=priv / f"{name}.diag.json",
+              **kw)
+    manifest = json.loads((pub / f"{name}.manifest.json").read_text())
     return pd.read_parquet(out), manifest
 
 
@@ -106,7 +121,8 @@ def test_grr_composite_is_grr_at_the_stated_eps(eps1: float, eps2: float) -> Non
     Lp, Lq = perm.second_layer_thresholds(eps2)
     r, o = Fraction(Lp, W), Fraction(Lq, W)
     assert Lp + (k - 1) * Lq == W and r / o <= exp_lower_bound(eps2)  # the layer alone: eps2-LDP, exactly
-    p, q = Fraction(perm.thresholds[0], W), Fraction(perm.thresholds[1], W)
+    own, other = perm.thresholds  # the realized masses of the permanent channel (own + (k-1) other = 1 unit)
+    p, q = Fraction(own, own + (k - 1) * other), Fraction(other, own + (k - 1) * other)
     permanent = [[p if i == j else q for j in range(k)] for i in range(k)]
     layer = [[r if i == j else o for j in range(k)] for i in range(k)]
     exact = _matmul(permanent, layer)
@@ -222,7 +238,8 @@ def nights(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
     out: dict[str, Any] = {"df": df}
     for layer in (True, False):
         for nonce in (NIGHT_1, NIGHT_2):
-            out[layer, nonce] = release(df, layered_policy(layer), tmp, nonce, f"l{int(layer)}_{nonce[-3:]}")
+            out[layer, nonce] = release(df, layered_policy(layer), tmp, nonce if layer else PLAIN[nonce],
+                                        f"l{int(layer)}_{nonce[-3:]}")
     return out
 
 
@@ -409,8 +426,9 @@ def test_validate_rederives_a_layered_release_and_its_channels_pass(tmp_path: Pa
     from ldptransform import validate
 
     df = people(3000)
-    release(df, layered_policy(True), tmp_path, NIGHT_1, "v")
-    rep = validate(tmp_path / "v.parquet", raw=tmp_path / "v.csv", key=KEY)
+    release(df, layered_policy(True), tmp_path, NIGHT_V, "v")
+    pub, priv = places(tmp_path)
+    rep = validate(pub / "v.parquet", raw=priv / "v.csv", key=KEY)
     failed = [c for c in rep.checks if c.ok is False]
     assert rep.ok and not failed, failed
 
@@ -421,17 +439,14 @@ def test_the_ledger_charges_the_permanent_eps_once_per_value(tmp_path: Path, pri
     charges nothing more, although its reports differ from the first's."""
     df = people(400)
     pol = layered_policy(True, budget={"epsilon_per_row": 6.0, "lifetime_epsilon": 20.0})
-    raw = tmp_path / "p.csv"
-    df.to_csv(raw, index=False)
-    ledger = tmp_path / "ledger.sqlite"
-    charged = []
-    for i, nonce in enumerate((NIGHT_1, NIGHT_2)):
-        privatize(raw, parse_policy(pol, "layer.yaml"), KEY, tmp_path / f"n{i}.parquet", nonce=nonce,
-                  diagnostics_path=tmp_path / f"n{i}.diag.json", ledger_path=ledger)
-        charged.append(json.loads((tmp_path / f"n{i}.diag.json").read_text())["ledger"]["eps_charged_max"])
+    pub, priv = places(tmp_path)
+    charged, ext = [], []
+    for i, nonce in enumerate(NIGHT_L):
+        ext.append(release(df, pol, tmp_path, nonce, f"n{i}", ledger_path=priv / "ledger.sqlite")[0])
+        charged.append(json.loads((priv / f"n{i}.diag.json").read_text())["ledger"]["eps_charged_max"])
     assert charged[0] == pytest.approx(5.5, rel=1e-12)
     assert charged[1] == 0.0
-    a, b = pd.read_parquet(tmp_path / "n0.parquet"), pd.read_parquet(tmp_path / "n1.parquet")
+    a, b = ext
     if ROW_ORDER:
         assert (a["colour"].astype(str) != b["colour"].astype(str)).any()
 
