@@ -628,9 +628,12 @@ class LoadedPolicy:
     @property
     def epsilon_total(self) -> float:
         """A row's privacy loss: the sum over its privatized columns (split), or m x eps_row/m
-        over the m columns it reports (sample; which ones is independent of the data)."""
+        over the m columns it reports (sample; which ones is independent of the data).  A column
+        with a second layer counts its composite eps (what one release reveals), so under sample
+        the loss is m x the largest column eps (eps_row/m unless every column has a second layer)."""
         if self.strategy == "sample":
-            return self.policy.reported_columns * self.policy.sampled_epsilon
+            eps = [c.mechanism.epsilon for c in self.columns if c.mechanism is not None]
+            return self.policy.reported_columns * (max(eps) if eps else self.policy.sampled_epsilon)
         return sum(c.mechanism.epsilon for c in self.columns if c.mechanism is not None)
 
 

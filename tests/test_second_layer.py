@@ -466,3 +466,21 @@ def test_plan_suggest_keeps_a_layered_column_and_says_why() -> None:
     assert comp is not None and entry["epsilon"] == comp.epsilon
     assert "second layer" in entry["note"] and "meets the target at 2000 rows" in entry["note"]
     assert "misses the target at 200 rows" in suggest(loaded, 200)["split"]["columns"]["colour"]["note"]
+
+
+def test_under_sample_every_layered_column_states_its_composite(tmp_path: Path, private_dir: Path) -> None:
+    """strategy sample with every privatized column layered: a row's loss is m x the largest
+    composite eps, the manifest says so, and validate agrees (no mismatch with the stated use)."""
+    from ldptransform import validate
+
+    pol = layered_policy(True, budget={"epsilon_per_row": 4.0, "strategy": "sample", "sample_columns": 2})
+    for col in pol["columns"].values():
+        col.pop("epsilon", None)
+    loaded = parse_policy(pol, "layer.yaml")
+    worst = max(rc.mechanism.epsilon for rc in loaded.columns if rc.mechanism is not None)
+    assert worst < 2.0 and loaded.epsilon_total == pytest.approx(2 * worst, rel=1e-12)
+    _, man = release(people(2000), pol, tmp_path, "00000000000000000000000000004101", "s")
+    assert man["privacy"]["epsilon_per_row_used"] == pytest.approx(2 * worst, rel=1e-12)
+    pub, priv = places(tmp_path)
+    rep = validate(pub / "s.parquet", raw=priv / "s.csv", key=KEY)
+    assert rep.ok, [c for c in rep.checks if c.ok is False]
