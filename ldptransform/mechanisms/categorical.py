@@ -29,6 +29,9 @@ from ..random.variates import (
     randomized_response,
     second_threshold,
     symmetric_thresholds,
+    keep_masses,
+    keep_or_other,
+    keep_threshold,
     to_below,
     words_below,
 )
@@ -47,6 +50,7 @@ from .fit import (
 )
 
 MAX_CATEGORIES = 1 << 20
+MASS_ONE = 1 << 128         # grr and olh state their channel in units of 2^-128 (``variates.keep_masses``)
 BUCKET_GROUPS = 4096        # olh fit test: reported buckets are counted in at most this many groups
 # the audit's outcomes of a frequency report for a pair (a, b): index 2 * [supports a] + [supports b]
 AUDIT_SUPPORT_LABELS = np.array(["supports neither", "supports b only", "supports a only", "supports both"],
@@ -193,19 +197,28 @@ class GRR(FrequencyOracle):
     """Generalized (k-ary) randomized response: keep the value w.p. e^eps/(e^eps+k-1), else
     report one of the other k-1 values uniformly.  Output: the reported category label.
 
-    Sampling (docs/formulas.md section 10.4): one word w per row against integer masses
-    Tp + (k-1) Tq = 2^64 (``thresholds``): w < Tp keeps the value, else the other value number
-    (w - Tp) // Tq is reported, so P(keep) = Tp / 2^64 and each other value has Tq / 2^64 exactly.
-    Tq = ceil(2^64 / (L + k - 1)) with L a certified lower bound of e^eps: the realized ratio
-    Tp / Tq is at most e^eps exactly, and p*, q* are the realized Tp / 2^64, Tq / 2^64 (within
-    about 2^-64 of the ideal values)."""
+    Sampling (docs/formulas.md section 10.4): two words per row (``variates.keep_or_other``):
+    word 0 < Tk keeps the value; otherwise word 1 mod (k-1) numbers the other value reported when
+    word 1 < a (k-1) (a = floor(2^64/(k-1)): each other value exactly a of the 2^64 words), the
+    r = 2^64 - a (k-1) words left over keeping the value too.  So the realized channel is exact,
+    with masses (``thresholds``) own = Tk 2^64 + (2^64 - Tk) r and other = (2^64 - Tk) a in
+    units of 2^-128.  Tk is the largest
+    threshold with own / other at most a certified lower bound of e^eps (``keep_threshold``): the
+    realized ratio is at most e^eps exactly, and p*, q* are the realized own / 2^128,
+    other / 2^128 (within a few units of 2^-64 of the ideal values, for any k)."""
 
     name: ClassVar[str] = "grr"
 
     @cached_property
+    def keep_threshold(self) -> int:
+        """Tk: word 0 < Tk keeps the value (``variates.keep_threshold``)."""
+        return keep_threshold(exp_lower_bound(self.epsilon), self.k)
+
+    @cached_property
     def thresholds(self) -> tuple[int, int]:
-        """(Tp, Tq): the integer masses in units of 2^-64 of keeping the value and of each other value."""
-        return grr_thresholds(exp_lower_bound(self.epsilon), self.k)
+        """(own, other): the realized masses, in units of 2^-128, of reporting the value itself and
+        each other value (own + (k-1) other = 2^128; ``variates.keep_masses``)."""
+        return keep_masses(self.keep_threshold, self.k)
 
     def _threshold_ratio(self) -> Fraction:
         Tp, Tq = self.thresholds
@@ -217,15 +230,15 @@ class GRR(FrequencyOracle):
 
     @property
     def p_star(self) -> float:
-        return self.thresholds[0] / THRESHOLD_ONE
+        return self.thresholds[0] / MASS_ONE
 
     @property
     def q_star(self) -> float:
-        return self.thresholds[1] / THRESHOLD_ONE
+        return self.thresholds[1] / MASS_ONE
 
     @property
     def words_per_row(self) -> int:
-        return 1
+        return 2
 
     def output_fields(self, column: str) -> list[pa.Field]:
         return [pa.field(column, pa.dictionary(pa.int32(), pa.string()))]
@@ -234,8 +247,8 @@ class GRR(FrequencyOracle):
         return "reported category (randomized response over the mechanism's categories)"
 
     def randomize_codes(self, x: np.ndarray, words: np.ndarray) -> np.ndarray:
-        """Reported codes from the first word of each row (``randomized_response``)."""
-        return randomized_response(words[:, 0], x, *self.thresholds)
+        """Reported codes from the first two words of each row (``variates.keep_or_other``)."""
+        return keep_or_other(words[:, 0], words[:, 1], x, self.keep_threshold, self.k)
 
     def randomize(self, x: np.ndarray, words: np.ndarray) -> list[pa.Array]:
         return [self._labels_dictionary(self.randomize_codes(x, words))]
@@ -280,7 +293,7 @@ class GRR(FrequencyOracle):
     def second_layer_ratio(self, epsilon2: float) -> Fraction:
         """The exact worst likelihood ratio of the composite (this channel's thresholds, then the
         layer's): k-ary RR with masses p' = Tp Lp + (k-1) Tq Lq, q' = Tq Lp + Tp Lq + (k-2) Tq Lq
-        (units of 2^-128)."""
+        (units of 2^-192: (Tp, Tq) are the masses of ``thresholds``, in units of 2^-128)."""
         (Tp, Tq), (Lp, Lq), k = self.thresholds, self.second_layer_thresholds(epsilon2), self.k
         p2 = Tp * Lp + (k - 1) * Tq * Lq
         q2 = Tq * Lp + Tp * Lq + (k - 2) * Tq * Lq
@@ -500,9 +513,10 @@ class OLH(FrequencyOracle):
 
     Sampling: words 0 and 1 give a and b (reduced modulo P - 1 and P: each within 2^-33 relative
     of uniform, which moves q* by as little, and no privacy loss, the seed being drawn independently
-    of x); word 2 is randomized response over the g buckets against integer masses
-    Tp + (g-1) Tq = 2^64 rounded toward privacy (``thresholds``, as grr: the realized ratio Tp / Tq
-    is at most e^eps exactly; p* = Tp / 2^64; docs/formulas.md section 10.4).
+    of x); words 2 and 3 are randomized response over the g buckets as grr samples it
+    (``variates.keep_or_other``, threshold rounded toward privacy): exact masses own and other in
+    units of 2^-128 (``thresholds``) with own / other at most e^eps exactly, p* = own / 2^128
+    (docs/formulas.md section 10.4).
     """
 
     name: ClassVar[str] = "olh"
@@ -550,10 +564,15 @@ class OLH(FrequencyOracle):
         return pairs / (P * (P - 1))
 
     @cached_property
+    def keep_threshold(self) -> int:
+        """Tk: word 2 < Tk reports the row's own bucket (``variates.keep_threshold``)."""
+        return keep_threshold(exp_lower_bound(self.epsilon), self.g)
+
+    @cached_property
     def thresholds(self) -> tuple[int, int]:
-        """(Tp, Tq), Tp + (g-1) Tq = 2^64: the integer masses in units of 2^-64 of reporting the
-        row's own bucket and each other bucket (docs/formulas.md section 10.4)."""
-        return grr_thresholds(exp_lower_bound(self.epsilon), self.g)
+        """(own, other), own + (g-1) other = 2^128: the realized masses in units of 2^-128 of
+        reporting the row's own bucket and each other bucket (``variates.keep_masses``)."""
+        return keep_masses(self.keep_threshold, self.g)
 
     def realized_ratio(self) -> Fraction:
         # Given the seed (drawn independently of x) the channel is randomized response on g buckets.
@@ -562,16 +581,16 @@ class OLH(FrequencyOracle):
 
     @property
     def p_star(self) -> float:
-        return self.thresholds[0] / THRESHOLD_ONE
+        return self.thresholds[0] / MASS_ONE
 
     @property
     def q_star(self) -> float:
         p, c = self.p_star, self.collision_probability
-        return p * c + (1 - c) * self.thresholds[1] / THRESHOLD_ONE
+        return p * c + (1 - c) * self.thresholds[1] / MASS_ONE
 
     @property
     def words_per_row(self) -> int:
-        return 3
+        return 4
 
     def output_fields(self, column: str) -> list[pa.Field]:
         return [pa.field(column + "__hash", pa.int64()), pa.field(column, pa.int32())]
@@ -594,7 +613,7 @@ class OLH(FrequencyOracle):
         b = to_below(words[:, 1], HASH_PRIME).astype(np.uint64)
         seeds = a * P + b
         h = self.hash_values(seeds, x)
-        y = randomized_response(words[:, 2], h, *self.thresholds)   # exact masses Tp, Tq (section 10.4)
+        y = keep_or_other(words[:, 2], words[:, 3], h, self.keep_threshold, self.g)   # exact masses (section 10.4)
         return [pa.array(seeds.astype(np.int64)), pa.array(y.astype(np.int32))]
 
     def _decode_inputs(self, arrays: list[pa.Array]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -625,7 +644,7 @@ class OLH(FrequencyOracle):
         """P(y | x, seed) for each seed: array of shape (len(seeds), k, g)."""
         h = self.hash_values(seeds[:, None], np.arange(self.k, dtype=np.uint64)[None, :])  # (s, k)
         p = self.p_star
-        q = self.thresholds[1] / THRESHOLD_ONE
+        q = self.thresholds[1] / MASS_ONE
         out = np.full((len(seeds), self.k, self.g), q)
         s_idx, x_idx = np.meshgrid(np.arange(len(seeds)), np.arange(self.k), indexing="ij")
         out[s_idx, x_idx, h] = p

@@ -18,8 +18,9 @@ its (negligible) deviation.  All of it is vectorized over rows.
   probability T/2^64 exactly as ``word < T`` (``words_below``), and ``exp_bounds`` /
   ``exp_lower_bound`` give certified rational bounds of e^eps, so the integer thresholds of
   every threshold sampler can be rounded toward privacy and checked in exact rational
-  arithmetic (``grr_thresholds``, ``odds_threshold``, ``symmetric_thresholds``,
-  ``second_threshold``; docs/formulas.md section 10.4).
+  arithmetic (``keep_threshold`` and ``keep_or_other``, ``grr_thresholds`` and
+  ``randomized_response``, ``odds_threshold``, ``symmetric_thresholds``, ``second_threshold``;
+  docs/formulas.md section 10.4).
 - Exact rejection samplers over a variable number of words per row (``RowDraws``: each
   row's own draw counter over a ``draw(rows, j)`` function): ``uniform_below`` (exactly
   uniform integers below m), ``bernoulli_exp`` (Bernoulli(exp(-num/den))) and
@@ -183,6 +184,50 @@ def randomized_response(words: np.ndarray, x: np.ndarray, Tp: int, Tq: int) -> n
     x = np.asarray(x, dtype=np.int64)
     other += other >= x
     return np.where(words < tp, x, other)
+
+
+def keep_masses(Tk: int, outputs: int) -> tuple[int, int]:
+    """The exact channel of ``keep_or_other`` with keep threshold Tk, as integer masses in units
+    of 2^-128: (own, other), own + (outputs - 1) other = 2^128.  The other value is word 2's
+    residue w mod c for w < a c, a = floor(2^64 / c), c = outputs - 1, so each other value has
+    exactly a of the 2^64 words; the r = 2^64 - a c words left over report the row's own value."""
+    W, c = THRESHOLD_ONE, outputs - 1
+    a, r = divmod(W, c)
+    return Tk * W + (W - Tk) * r, (W - Tk) * a
+
+
+def keep_threshold(bound: Fraction, outputs: int) -> int:
+    """The largest keep threshold Tk (at most 2^64 - 1) of ``keep_or_other`` over ``outputs``
+    values whose realized ratio own / other (``keep_masses``) is at most ``bound`` (a certified
+    lower bound of e^eps): Tk = floor(2^64 (bound a - r) / (2^64 - r + bound a)).  One unit of
+    Tk moves the ratio by about (ratio + c)^2 / (c 2^64): the realized channel is the ideal one
+    to within a few units of 2^-64 for any number of outputs."""
+    W, c = THRESHOLD_ONE, outputs - 1
+    a, r = divmod(W, c)
+    Tk = min(math.floor(W * (bound * a - r) / (W - r + bound * a)), W - 1)
+    own, other = keep_masses(Tk, outputs)
+    if not (Tk >= 0 and own <= bound * other and other <= bound * own):
+        raise ArithmeticError("keep_threshold: no valid integer threshold (a bug)")
+    return Tk
+
+
+def keep_or_other(w_keep: np.ndarray, w_other: np.ndarray, x: np.ndarray, Tk: int, outputs: int) -> np.ndarray:
+    """Randomized response over ``outputs`` values from two uint64 words per row: the row's own
+    value x when w_keep < Tk or w_other >= a c (the r left-over words), else the other value
+    number w_other mod c (0..c-1, each exactly a of the words below a c), shifted past x.  The
+    channel is exactly ``keep_masses`` (the other values exactly uniform).  Output int64 codes."""
+    W, c = THRESHOLD_ONE, outputs - 1
+    a, r = divmod(W, c)
+    x = np.asarray(x, dtype=np.int64)
+    own = words_below(w_keep, Tk)
+    if c == 1:
+        j = np.zeros(x.shape, dtype=np.int64)
+    else:
+        j = (w_other % np.uint64(c)).astype(np.int64)
+        if r:
+            own |= w_other >= np.uint64(a * c)
+    j += j >= x
+    return np.where(own, x, j)
 
 
 def odds_threshold(bound: Fraction) -> int:
