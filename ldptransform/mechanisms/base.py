@@ -22,6 +22,9 @@ fill small hooks), never decided by the mechanism's name or by probing its attri
 * policy and planning: ``accepts_binned`` / ``binned_refusal``, ``supports_memoize`` /
   ``memoize_refusal``, ``exact_decimal_epsilon``, ``fixed_epsilon``, ``mean_row_variance``,
   ``frequency_row_variance``, ``efficiency``;
+* the second layer of a memoized column (``rerandomize_epsilon``): ``supports_second_layer`` /
+  ``second_layer_refusal``, ``second_layer_words_per_row``, ``rerandomize``,
+  ``composite_epsilon``, ``with_second_layer`` (the composite, same class) and ``permanent``;
 * the empirical audit (audit.py, ``ldpt audit``): ``audit_pairs`` (worst-case inputs),
   ``audit_outcomes`` / ``audit_ordered`` (what a report says about them); ``worst_channel_pairs``
   reads the pairs off an exact channel.
@@ -275,8 +278,9 @@ class Mechanism(ABC):
         worst likelihood ratio of the channel those thresholds realize, as an exact rational (or an
         exact rational upper bound of it, where the mechanism says so), to be compared with a
         certified lower bound of e^eps (``random.variates.exp_lower_bound``; docs/formulas.md
-        section 10.4).  None for the other mechanisms, whose check is ``max_log_ratio``, and for a
-        composite with a second layer (``second_layer_of``), whose channel is that of both layers."""
+        section 10.4).  For a composite with a second layer (``second_layer_of``): the exact ratio
+        of the channel through both layers.  None for the other mechanisms, whose check is
+        ``max_log_ratio``."""
         return None
 
     def describe(self) -> str:
