@@ -278,8 +278,9 @@ class Mechanism(ABC):
         worst likelihood ratio of the channel those thresholds realize, as an exact rational (or an
         exact rational upper bound of it, where the mechanism says so), to be compared with a
         certified lower bound of e^eps (``random.variates.exp_lower_bound``; docs/formulas.md
-        section 10.4).  None for the other mechanisms, whose check is ``max_log_ratio``, and for a
-        composite with a second layer (``second_layer_of``), whose channel is that of both layers."""
+        section 10.4).  For a composite with a second layer (``second_layer_of``): the exact ratio
+        of the channel through both layers.  None for the other mechanisms, whose check is
+        ``max_log_ratio``."""
         return None
 
     def describe(self) -> str:

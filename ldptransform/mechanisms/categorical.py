@@ -225,8 +225,12 @@ class GRR(FrequencyOracle):
         return Fraction(max(Tp, Tq), min(Tp, Tq))
 
     def realized_ratio(self) -> Fraction | None:
-        # a composite (second layer) samples two layers, which these thresholds do not describe
-        return None if self.second_layer_of is not None else self._threshold_ratio()
+        # a composite (second layer) samples through both layers: their exact composite ratio
+        if self.second_layer_of is not None:
+            permanent, epsilon2 = self.second_layer_of
+            assert isinstance(permanent, GRR)
+            return permanent.second_layer_ratio(epsilon2)
+        return self._threshold_ratio()
 
     @property
     def p_star(self) -> float:
@@ -352,8 +356,12 @@ class _UnaryEncoding(FrequencyOracle):
         return max(r) * max(1 / v for v in r)
 
     def realized_ratio(self) -> Fraction | None:
-        # a composite (second layer) samples two layers, which these thresholds do not describe
-        return None if self.second_layer_of is not None else self._threshold_ratio()
+        # a composite (second layer) samples through both layers: their exact composite ratio
+        if self.second_layer_of is not None:
+            permanent, epsilon2 = self.second_layer_of
+            assert isinstance(permanent, _UnaryEncoding)
+            return permanent.second_layer_ratio(epsilon2)
+        return self._threshold_ratio()
 
     @property
     def p_star(self) -> float:

@@ -357,12 +357,16 @@ def test_utility_loss_is_negligible() -> None:
     assert worst < 2e-10 and worst_olh < 2e-8, (worst, worst_olh)
 
 
-def test_a_composite_with_a_second_layer_claims_no_exact_ratio() -> None:
+def test_a_composite_with_a_second_layer_reports_the_two_layer_ratio() -> None:
     """A memoized column's composite (permanent layer, then a second layer) samples through two
-    layers: the composite's own thresholds do not describe that channel, so it gives no exact
-    ratio (``validate`` then checks its ``max_log_ratio``); the permanent layer still does."""
+    layers: its realized ratio is the exact ratio of both (``second_layer_ratio``), within the
+    certified e^eps of its stated eps; a wrong composite ratio would fail validate's check."""
     for cls in (GRR, OUE, SUE):
         m = cls(1.0, cats(5))
         composite = m.with_second_layer(2.0)
-        assert composite.realized_ratio() is None and composite.max_log_ratio() <= composite.epsilon + 1e-9
-        assert composite.permanent.realized_ratio() == m.realized_ratio() is not None
+        ratio = composite.realized_ratio()
+        assert ratio is not None and ratio == m.second_layer_ratio(2.0) != m.realized_ratio()
+        assert ratio <= exp_bounds(composite.epsilon)[0]
+        issues: list[str] = []
+        _channel_issues(_manifest(composite.to_spec()), issues)
+        assert issues == [], issues
