@@ -317,6 +317,18 @@ def _estimate_csv(result: EstimateResult) -> str:
     return _frame_csv(result.to_frame())
 
 
+def _check_estimate_out(out: Path, extracts: list[Path], manifests: list[Path] | None, overwrite: bool) -> None:
+    """``estimate --out``: never an extract or manifest it reads (nor inside a dataset extract),
+    and not an existing file without --overwrite."""
+    from .manifest import default_manifest_path
+    from .outputs import ESTIMATES, MANIFEST, check_outputs
+
+    known: list[tuple[str, Path | None]] = [("extract", Path(e)) for e in extracts]
+    known += [(MANIFEST, Path(m)) for m in manifests] if manifests else \
+        [(MANIFEST, default_manifest_path(Path(e))) for e in extracts]
+    check_outputs([(ESTIMATES, out)], known, overwrite=overwrite)
+
+
 @app.command()
 def estimate(
     extracts: list[Path] = typer.Argument(..., help="Extract(s) (.csv or .parquet, or a dataset folder) written "
@@ -336,7 +348,9 @@ def estimate(
                                             "[LOW, HIGH), COLUMN:LOW..HIGH (repeatable)."),
     consistency: str = typer.Option("norm-sub", "--consistency", help="Post-processing shown as 'share': "
                                     "norm-sub, norm-mul or norm."),
-    out: Path | None = typer.Option(None, "--out", help="Write the result to this file instead of stdout."),
+    out: Path | None = typer.Option(None, "--out", help="Write the result to this file instead of stdout "
+                                    "(never over an extract or manifest it reads)."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="With --out: replace an existing file."),
     engine: Engine = typer.Option(Engine.local, "--engine", help="local: this process; dask: the parts of a "
                                   "Parquet dataset extract are decoded by dask workers and their sufficient "
                                   "statistics merged (same estimates)."),
@@ -353,6 +367,8 @@ def estimate(
 
     global out_console
     with _user_errors():
+        if out is not None:
+            _check_estimate_out(out, extracts, manifest, overwrite)
         result = run(extracts, list(manifest) if manifest else None, confidence=confidence,
                      crosstabs=[parse_pair(x, "--crosstab") for x in crosstab or []],
                      mean_by=[parse_pair(x, "--mean-by") for x in mean_by or []],
@@ -377,7 +393,11 @@ def estimate(
                 out_console = saved
             text = rec.export_text()
         if out is not None:
-            write_text_atomic(out, text)
+            from .outputs import ESTIMATES, DestinationLock
+
+            with DestinationLock([(ESTIMATES, out)]):
+                _check_estimate_out(out, extracts, manifest, overwrite)  # again: a job may have just written it
+                write_text_atomic(out, text)
             err_console.print(f"wrote estimates to {out}", markup=False)
         else:
             sys.stdout.write(text)
@@ -629,14 +649,34 @@ def audit(
 
 # -- demo -----------------------------------------------------------------------------------
 
+def _check_demo_folder(folder: Path, overwrite: bool) -> None:
+    """The demo's files (run_demo's layout): none may exist without --overwrite (its key is kept and
+    reused, never replaced), and its steward-private folder, if there, must be private (0700)."""
+    from .io import private_folder
+    from .outputs import DEMO, DIAGNOSTICS, ESTIMATES, EXTRACT, MANIFEST, check_new
+
+    steward, partner = folder / "steward-private", folder / "for-partner"
+    if steward.exists():
+        private_folder(steward, "demo's steward-only folder")
+    extract = partner / "staff_survey_extract.parquet"
+    files: list[tuple[str, Path | None]] = [
+        (DEMO, steward / "staff_survey.csv"), (DEMO, folder / "staff_survey.yaml"), (EXTRACT, extract),
+        (MANIFEST, partner / "staff_survey_extract.manifest.json"), (ESTIMATES, partner / "estimates.json"),
+        (DIAGNOSTICS, steward / "release.PRIVATE-diagnostics.json")]
+    check_new([(role, p) for role, p in files if p is not None and p.exists()], overwrite)
+
+
 @app.command()
 def demo(dir: Path = typer.Option(Path("demo_out"), "--dir", help="Folder for the demo's files."),
          nonce: str | None = typer.Option(None, "--nonce", help="Reuse a release nonce (to repeat a demo run "
-                                          "exactly with the same key).")) -> None:
+                                          "exactly with the same key)."),
+         overwrite: bool = typer.Option(False, "--overwrite", help="Replace the files of an earlier demo run in "
+                                        "DIR (its key is kept).")) -> None:
     """Make the demo data (a fictional staff survey), privatize, estimate and validate it."""
     from .demo import run_demo
 
     with _user_errors():
+        _check_demo_folder(dir, overwrite)
         code = run_demo(dir, out_console, err_console, nonce=nonce, show_estimates=_estimate_table)
     raise typer.Exit(code=code)
 

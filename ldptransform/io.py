@@ -18,7 +18,8 @@ import re
 import secrets
 import shutil
 import signal
-from collections.abc import Iterator
+import stat
+from collections.abc import Callable, Iterator
 from concurrent.futures import Future, ThreadPoolExecutor
 from pathlib import Path
 from typing import Any, Literal
@@ -227,9 +228,11 @@ def _rebatch(source: Iterator[pa.RecordBatch], rows: int) -> Iterator[pa.RecordB
 # -- writing ------------------------------------------------------------------------------
 
 def private_dir() -> Path:
-    """The steward's private folder (mode 0700) for diagnostics and the ledger.
+    """The steward's private folder (mode 0700) for diagnostics, the ledger and the record of
+    release nonces (release/nonces.py).
 
     $LDPT_PRIVATE_DIR if set, else $XDG_STATE_HOME/ldptransform, else ~/.local/state/ldptransform.
+    Created with mode 0700; refused (``private_folder``) when group or others may use it.
     """
     env = os.environ.get("LDPT_PRIVATE_DIR")
     if env:
@@ -237,8 +240,30 @@ def private_dir() -> Path:
     else:
         base = os.environ.get("XDG_STATE_HOME") or str(Path.home() / ".local" / "state")
         d = Path(base) / "ldptransform"
-    d.mkdir(parents=True, exist_ok=True, mode=0o700)
-    return d
+    return private_folder(d, "private folder", "$LDPT_PRIVATE_DIR")
+
+
+def private_folder(folder: Path, role: str = "private folder", named_by: str | None = None) -> Path:
+    """``folder`` for steward-only files: created with mode 0700 if missing; refused (a user
+    error, exit 2) when it is not a folder or when group or others can read, write or enter it."""
+    folder = Path(folder)
+    try:
+        folder.mkdir(parents=True, exist_ok=True, mode=0o700)
+        st = folder.stat()
+    except FileExistsError:
+        st = None
+    except OSError as err:
+        hint = f", or point {named_by} elsewhere." if named_by else "."
+        raise UsageError(f"the {role} {folder} cannot be created ({err.strerror or err}). Create it yourself with "
+                         f"`mkdir -m 700 {folder}`{hint}") from None
+    if st is None or not stat.S_ISDIR(st.st_mode):
+        raise UsageError(f"the {role} {folder} is not a folder. Point " + (named_by or "it") + " at a folder.")
+    if st.st_mode & 0o077:
+        raise UsageError(
+            f"the {role} {folder} can be used by other users (mode {stat.S_IMODE(st.st_mode):04o}): it holds "
+            f"steward-only files (diagnostics, ledger, nonce record), which must be private to the steward. Run "
+            f"`chmod 700 {folder}`" + (f", or point {named_by} at a private folder." if named_by else "."))
+    return folder
 
 
 def _pid_alive(pid: int) -> bool:
@@ -325,7 +350,13 @@ class StagedFiles:
         self._items: list[tuple[Path, Path]] = []
         self._committed = False
         self._old_handlers: dict[int, Any] = {}
+        self._on_exit: list[Callable[[], None]] = []
         self.stop_signal: int | None = None
+
+    def on_exit(self, fn: Callable[[], None]) -> None:
+        """Call ``fn`` when the block ends, after the files are renamed or removed (last
+        registered, first called): for instance to release the destinations' locks."""
+        self._on_exit.append(fn)
 
     def add(self, dest: Path) -> Path:
         dest = Path(dest)
@@ -351,6 +382,8 @@ class StagedFiles:
             if not self._committed:
                 self.discard()
         finally:
+            while self._on_exit:
+                self._on_exit.pop()()
             for sig, h in self._old_handlers.items():
                 with contextlib.suppress(ValueError, OSError):
                     signal.signal(sig, h)

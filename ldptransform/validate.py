@@ -482,12 +482,22 @@ def _check_dataset_hash(folder: Path, manifest: Manifest, rep: _Checks) -> None:
 
 
 def _reproduce(raw: Path, extract: Path, manifest: Manifest, key: SecretKey, rep: _Checks) -> None:
+    """Re-derive the extract from the raw data, the key and the manifest's nonce, into a fresh
+    folder of the steward's private folder (mode 0700, removed afterwards; never beside the
+    extract), with a throwaway ledger if the policy has a lifetime budget (the steward's ledger
+    is not charged again), outside the record of release nonces (release/nonces.py)."""
+    from .io import private_dir
+    from .release.nonces import rederiving
+
     lp = parse_policy(manifest.policy, "embedded in the manifest")
-    with tempfile.TemporaryDirectory(prefix="ldpt-validate-") as tmp:
-        out = Path(tmp) / manifest.extract.file
-        res = privatize(raw, lp, key, out, manifest_path=Path(tmp) / "m.json",
+    with tempfile.TemporaryDirectory(prefix="ldpt-validate-", dir=private_dir()) as tmp, rederiving():
+        Path(tmp).chmod(0o700)
+        (Path(tmp) / "out").mkdir(mode=0o700)
+        out = Path(tmp) / "out" / manifest.extract.file
+        ledger = Path(tmp) / "ledger.sqlite3" if lp.policy.budget.lifetime_epsilon is not None else None
+        res = privatize(raw, lp, key, out, manifest_path=Path(tmp) / "out" / "m.json",
                         diagnostics_path=Path(tmp) / "d.json", nonce=manifest.nonce,
-                        fragment_rows=manifest.extract.part_rows)
+                        fragment_rows=manifest.extract.part_rows, ledger_path=ledger)
         digest = res.manifest.extract.sha256
         specs_same = [c.mechanism for c in res.manifest.columns] == [c.mechanism for c in manifest.columns]
         if digest == manifest.extract.sha256 and specs_same:

@@ -154,8 +154,9 @@ def test_privatize_formats(fmt_in: str, fmt_out: str, survey: dict[str, Path], l
     # randomized, not copied: the reported role differs from the true one in many rows
     assert np.mean(np.array(col["role"]) != raw["role"].to_numpy()) > 0.2
 
-    diags = listing(private_dir)
+    diags = [n for n in listing(private_dir) if n != "nonces.jsonl"]  # and the record of release nonces
     assert len(diags) == 1 and "PRIVATE" in diags[0]
+    assert stat.S_IMODE((private_dir / "nonces.jsonl").stat().st_mode) == 0o600
     assert stat.S_IMODE((private_dir / diags[0]).stat().st_mode) == 0o600
     assert str(private_dir / diags[0]) in res.stderr
 
@@ -164,11 +165,12 @@ def test_privatize_manifest_option_and_diagnostics_option(survey: dict[str, Path
     out = survey["dir"] / "extract.parquet"
     mpath = survey["dir"] / "public" / "release-2026.json"
     mpath.parent.mkdir()
-    diag = survey["dir"] / "steward.json"
+    diag = survey["dir"] / "steward" / "steward.json"  # never in the folder of the extract or the manifest
+    diag.parent.mkdir(mode=0o700)
     ok(privatize(ldpt, survey, out, "--manifest", mpath, "--diagnostics", diag))
     assert mpath.exists() and diag.exists()
     assert not (survey["dir"] / "extract.manifest.json").exists()
-    assert listing(private_dir) == []
+    assert listing(private_dir) == ["nonces.jsonl"]  # only the record of release nonces
     assert json.loads(mpath.read_text())["extract"]["sha256"] == sha256(out)
     ok(ldpt("validate", out, "--manifest", mpath))
 

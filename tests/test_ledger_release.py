@@ -68,11 +68,18 @@ def policy_without_subject(cap: float | None = None) -> dict[str, Any]:
     return p
 
 
+def steward(tmp: Path) -> Path:
+    """A steward-only folder beside ``tmp`` (diagnostics never go where the extract goes)."""
+    d = tmp.parent / f"{tmp.name}-steward"
+    d.mkdir(mode=0o700, exist_ok=True)
+    return d
+
+
 def run(df: pd.DataFrame, pol: dict[str, Any], tmp: Path, nonce: str, name: str, ledger: Path, **kw: Any):
     raw = tmp / f"{name}.csv"
     df.to_csv(raw, index=False)
     return privatize(raw, parse_policy(pol, "ledger-release.yaml"), KEY, tmp / f"{name}.parquet", nonce=nonce,
-                     diagnostics_path=tmp / f"{name}.diag.json", ledger_path=ledger, **kw)
+                     diagnostics_path=steward(tmp) / f"{name}.diag.json", ledger_path=ledger, **kw)
 
 
 def spent(ledger: Path, ids: list[str]) -> np.ndarray:
@@ -178,7 +185,9 @@ def test_allow_partial_keeps_every_row_and_uses_no_data_of_held_back_people(tmp_
     assert (res.held_back_subjects, res.held_back_rows) == (7, 7)
     out = pd.read_parquet(tmp_path / "night3.parquet")
     assert len(out) == N == res.manifest.rows
-    # the other rows are exactly those a full release (same key and nonce) gives them
+    # the other rows are exactly those a full release (same key and nonce) gives them; it reuses the
+    # nonce with another policy, which a steward's record of nonces refuses: a separate steward state
+    monkeypatch.setenv("LDPT_PRIVATE_DIR", str(tmp_path / "full-private"))
     full_res = run(df3, policy(), tmp_path, NIGHT3, "full3", tmp_path / "other.sqlite3")
     full = pd.read_parquet(tmp_path / "full3.parquet")
     assert full_res.manifest.rows == N
@@ -208,7 +217,7 @@ def test_allow_partial_keeps_every_row_and_uses_no_data_of_held_back_people(tmp_
     manifest = json.loads((tmp_path / "night3.manifest.json").read_text())
     assert "7" not in json.dumps(manifest["privacy"]) and manifest["rows"] == N
     assert "placeholder" in json.dumps(manifest["privacy"])  # it says the release may hold such rows
-    diag = json.loads((tmp_path / "night3.diag.json").read_text())
+    diag = json.loads((steward(tmp_path) / "night3.diag.json").read_text())
     assert diag["ledger"]["held_back_subjects"] == 7 and diag["ledger"]["held_back_rows"] == 7
     # the held-back people's memo state was not updated: their old colour is still the recorded one
     night4 = run(df, policy(cap=10.0), tmp_path, f"{14:032x}", "night4", led)
@@ -264,7 +273,7 @@ def test_default_ledger_path_when_the_policy_sets_a_lifetime_budget(tmp_path: Pa
     res = privatize(raw, parse_policy(policy(cap=10.0), "p.yaml"), KEY, tmp_path / "o.parquet", nonce=NIGHT1)
     assert res.ledger_path == private_dir / "ledger.sqlite3" and res.ledger_release_id == 1
     # without a lifetime budget and without --ledger there is no ledger at all
-    privatize(raw, parse_policy(policy(), "p.yaml"), KEY, tmp_path / "o2.parquet", nonce=NIGHT1)
+    privatize(raw, parse_policy(policy(), "p.yaml"), KEY, tmp_path / "o2.parquet", nonce=NIGHT2)
     with Ledger.open(private_dir / "ledger.sqlite3", create=False) as lg:
         assert lg.verify().releases == 1
 
@@ -350,7 +359,7 @@ def test_a_ledger_refuses_another_key(tmp_path: Path) -> None:
     df.to_csv(raw, index=False)
     with pytest.raises(LdptError, match="belongs to another key"):
         privatize(raw, parse_policy(policy(), "ledger-release.yaml"), SecretKey(bytes(range(1, 33))),
-                  tmp_path / "other.parquet", nonce=NIGHT2, diagnostics_path=tmp_path / "other.diag.json",
+                  tmp_path / "other.parquet", nonce=NIGHT2, diagnostics_path=steward(tmp_path) / "other.diag.json",
                   ledger_path=led)
     assert led.read_bytes() == before
     assert not (tmp_path / "other.parquet").exists() and not (tmp_path / "other.manifest.json").exists()
@@ -396,7 +405,8 @@ def test_two_privatize_jobs_against_one_ledger(tmp_path: Path, private_dir: Path
     # fits when the first has committed before it is charged, which depends on timing)
     capped = write_policy(tmp_path / "capped.yaml", policy(cap=3.5))
     led = tmp_path / "capped.sqlite3"
-    jobs = [start(capped, led, f"cap{i}.parquet", n) for i, n in enumerate((NIGHT1, NIGHT2))]
+    fresh = (f"{21:032x}", f"{22:032x}")  # another policy: nonces of its own (a nonce is used once)
+    jobs = [start(capped, led, f"cap{i}.parquet", n) for i, n in enumerate(fresh)]
     res = [finish(j) for j in jobs]
     codes = sorted(r[0] for r in res)
     assert codes == [0, 2], res

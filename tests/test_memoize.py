@@ -72,7 +72,7 @@ def release(df: pd.DataFrame, pol: dict[str, Any], tmp: Path, nonce: str, name: 
     df.to_csv(raw, index=False)
     out = tmp / f"{name}.parquet"
     privatize(raw, parse_policy(pol, "memo.yaml"), KEY, out, nonce=nonce,
-              diagnostics_path=tmp / f"{name}.diag.json", **kw)
+              diagnostics_path=tmp.parent / f"{tmp.name}-{name}.diag.json", **kw)  # not beside the extract
     return pd.read_parquet(out)
 
 
@@ -247,10 +247,13 @@ def test_averaging_fifty_nights_recovers_nothing_with_memoization(tmp_path: Path
                                "output": {"row_order": "as-input"},  # the attacker aligns people by row
                                "columns": {"score": col}}, "memo.yaml")
         reports = []
-        for i, nonce in enumerate(NIGHTS):
-            out = tmp_path / f"n{int(memo)}_{i}.parquet"
-            privatize(raw, loaded, KEY, out, nonce=nonce, diagnostics_path=tmp_path / f"d{int(memo)}_{i}.json")
-            reports.append(pd.read_parquet(out)["score"].to_numpy())
+        with pytest.MonkeyPatch.context() as mp:  # the nights' nonces under two policies: one steward state each
+            mp.setenv("LDPT_PRIVATE_DIR", str(tmp_path.parent / f"{tmp_path.name}-steward-{int(memo)}"))
+            for i, nonce in enumerate(NIGHTS):
+                out = tmp_path / f"n{int(memo)}_{i}.parquet"
+                privatize(raw, loaded, KEY, out, nonce=nonce,
+                          diagnostics_path=tmp_path.parent / f"{tmp_path.name}-d{int(memo)}_{i}.json")
+                reports.append(pd.read_parquet(out)["score"].to_numpy())
         r = np.array(reports)
         one = float(np.sqrt(np.mean((r[0] - truth) ** 2)))
         avg = float(np.sqrt(np.mean((r.mean(axis=0) - truth) ** 2)))

@@ -197,7 +197,9 @@ def test_row_order_matters_only_through_row_index(tmp_path):
     df.to_parquet(b, index=False)
     lp = load_policy(_write_policy(tmp_path / "p.yaml", {**POLICY, "output": {"row_order": "as-input"}}))
     privatize(a, lp, KEY, tmp_path / "ea.parquet", nonce=nonce(9))
-    privatize(b, lp, KEY, tmp_path / "eb.parquet", nonce=nonce(9))
+    with pytest.MonkeyPatch.context() as mp:  # one nonce on other data: refused in one steward state
+        mp.setenv("LDPT_PRIVATE_DIR", str(tmp_path / "other-steward"))
+        privatize(b, lp, KEY, tmp_path / "eb.parquet", nonce=nonce(9))
     ea = pd.read_parquet(tmp_path / "ea.parquet")
     eb = pd.read_parquet(tmp_path / "eb.parquet").iloc[:300]
     pd.testing.assert_frame_equal(ea.astype(str), eb.astype(str))

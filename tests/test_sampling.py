@@ -178,16 +178,21 @@ def released(tmp_path_factory: pytest.TempPathFactory) -> dict:
     work = tmp_path_factory.mktemp("sampling")
     lp = parse_policy(mixed_policy(), "test")
     out: dict = {"dir": work, "lp": lp}
+    steward = work.parent / f"{work.name}-steward"  # diagnostics never go where the extract goes
+    steward.mkdir(mode=0o700)
     for tag, seed in (("a", 1), ("b", 2)):
         raw = work / f"raw_{tag}.parquet"
         mixed_data(N_MIXED, seed).to_parquet(raw, index=False)
-        res = privatize(raw, lp, KEY, work / f"{tag}.parquet", nonce=NONCE, diagnostics_path=work / f"{tag}.diag.json")
+        with pytest.MonkeyPatch.context() as mp:  # one nonce on two data sets: one steward state each
+            mp.setenv("LDPT_PRIVATE_DIR", str(steward / f"state-{tag}"))
+            res = privatize(raw, lp, KEY, work / f"{tag}.parquet", nonce=NONCE,
+                            diagnostics_path=steward / f"{tag}.diag.json")
         out[tag] = {"raw": raw, "res": res, "table": pq.read_table(res.extract_path)}
     res = privatize(out["a"]["raw"], lp, KEY, work / "a_small_batches.parquet", nonce=NONCE, batch_rows=977,
-                    diagnostics_path=work / "c.diag.json")
+                    diagnostics_path=steward / "c.diag.json")
     out["a_small_batches"] = res
     out["a_csv"] = privatize(out["a"]["raw"], lp, KEY, work / "a_csv.csv", nonce=NONCE,
-                             diagnostics_path=work / "d.diag.json")
+                             diagnostics_path=steward / "d.diag.json")
     return out
 
 
@@ -370,7 +375,8 @@ def squared_errors(raw: Path, lp: LoadedPolicy, truth: np.ndarray, releases: ran
     names = lp.policy.privatized_columns
     out = []
     for i in releases:
-        res = privatize(raw, lp, KEY, work / f"r{i}.parquet", nonce=nonce(i), diagnostics_path=work / f"r{i}.json")
+        res = privatize(raw, lp, KEY, work / f"r{i}.parquet", nonce=nonce(i),
+                        diagnostics_path=work.parent / f"{work.name}-r{i}.json")  # not beside the extract
         est = estimate(res.extract_path, res.manifest_path)
         out.append([(est["columns"][c]["mean"]["estimate"] - t) ** 2 for c, t in zip(names, truth)])
         res.extract_path.unlink()

@@ -9,9 +9,10 @@ import secrets
 from pathlib import Path
 from typing import Any
 
+from .. import outputs
 from .._version import __version__
-from ..errors import OutputError, UsageError
-from ..io import StagedFiles, check_dataset_destination, check_destination, private_dir
+from ..errors import OutputError
+from ..io import StagedFiles, check_dataset_destination, private_dir
 from ..keys import SecretKey
 from ..ledger import LedgerCharges
 from ..manifest import CAUTIONS, Manifest, Privacy, now_utc
@@ -25,49 +26,49 @@ from .parts import Written
 
 
 def check_destinations(opts: ReleaseOptions) -> Path:
-    """Refuse existing outputs (without ``overwrite``); returns the diagnostics file's path
-    (by default a fresh name in the private folder: re-running a release with the same nonce
-    and file name must not collide)."""
+    """The destinations' folders exist (a dataset output: see ``io.check_dataset_destination``);
+    returns the diagnostics file's path (by default a fresh name in the private folder:
+    re-running a release with the same nonce and file name must not collide).  Whether an
+    output may be replaced is ``check_paths_apart``'s question (asked next)."""
     if opts.dataset_out:
         check_dataset_destination(opts.out, opts.overwrite)
-    else:
-        check_destination(opts.out, "output", opts.overwrite)
-    check_destination(opts.manifest_path, "manifest", opts.overwrite)
     path = opts.diagnostics_path
     if path is None:
         path = private_dir() / f"{opts.out.stem}.{opts.nonce[:12]}.{secrets.token_hex(4)}.PRIVATE-diagnostics.json"
-    check_destination(path, "diagnostics file", opts.overwrite)
     return path
 
 
-def _same_file(a: Path, b: Path) -> bool:
-    """Whether two paths name the same file once symlinks and relative parts are resolved."""
-    try:
-        return a.resolve() == b.resolve() or (a.exists() and b.exists() and os.path.samefile(a, b))
-    except OSError:
-        return False
+def _outputs(opts: ReleaseOptions, diag_path: Path) -> list[tuple[str, Path | None]]:
+    return [(outputs.EXTRACT, opts.out), (outputs.MANIFEST, opts.manifest_path), (outputs.DIAGNOSTICS, diag_path)]
 
 
 def check_paths_apart(opts: ReleaseOptions, policy: LoadedPolicy, key: SecretKey, diag_path: Path) -> None:
     """Refuse, whatever ``overwrite`` says, an output (extract, manifest, diagnostics) that is the
-    input, the policy, the key file, the ledger or another of the outputs: the steward's secrets
-    and sources are never replaced.  Paths are compared after resolving symlinks."""
-    outputs = [("output", opts.out), ("manifest", opts.manifest_path), ("diagnostics file", diag_path)]
-    sources: list[tuple[str, Path | None]] = [
-        ("input", opts.input if isinstance(opts.input, Path) else None),
-        ("policy file", Path(policy.source) if Path(policy.source).is_file() else None),
-        ("key file", key.path), ("ledger", opts.ledger_path)]
-    for i, (role, path) in enumerate(outputs):
-        for other_role, other in sources + outputs[i + 1:]:
-            if other is not None and _same_file(path, other):
-                raise UsageError(
-                    f"the {role} {path} is the {other_role} {other}: writing it would destroy that file. Give the "
-                    f"{role} a path of its own; no option (not even overwrite) lets a release replace its input, "
-                    "policy, key file, ledger or another of its outputs.")
-        src_dir = sources[0][1]
-        if src_dir is not None and src_dir.is_dir() and path.resolve().is_relative_to(src_dir.resolve()):
-            raise UsageError(f"the {role} {path} is inside the input folder {src_dir}: it would change the input "
-                             "dataset. Write it outside that folder.")
+    input, the policy, the key file, the ledger or another of the outputs, or lies inside the input
+    folder (paths compared after resolving symlinks); then an existing output without
+    ``overwrite``; diagnostics in the folder of the extract or the manifest (what partners
+    receive); and a destination another job is writing (``outputs.DestinationLock``)."""
+    known: list[tuple[str, Path | None]] = [
+        (outputs.INPUT, opts.input if isinstance(opts.input, Path) else None),
+        (outputs.POLICY, Path(policy.source) if Path(policy.source).is_file() else None),
+        (outputs.KEY, key.path), (outputs.LEDGER, opts.ledger_path)]
+    dests = _outputs(opts, diag_path)
+    outputs.check_apart(dests, known, folders=[(outputs.EXTRACT, opts.out)] if opts.dataset_out else [])
+    outputs.check_new(dests[1:] if opts.dataset_out else dests, opts.overwrite)
+    outputs.check_private_place(outputs.DIAGNOSTICS, diag_path, dests[:2], "--diagnostics")
+    outputs.probe_locks(dests)
+
+
+def hold_destinations(staged: StagedFiles, opts: ReleaseOptions, diag_path: Path) -> None:
+    """Lock every destination of the release until ``staged`` ends (a second job on one of them
+    stops with exit 2 and changes nothing), and check again, under the lock, that no job that
+    finished meanwhile left an output this release may not replace."""
+    dests = _outputs(opts, diag_path)
+    lock = outputs.DestinationLock(dests).acquire()
+    staged.on_exit(lock.release)
+    if opts.dataset_out:
+        check_dataset_destination(opts.out, opts.overwrite)
+    outputs.check_new(dests[1:] if opts.dataset_out else dests, opts.overwrite)
 
 
 ROW_ORDER_NOTES = {

@@ -16,6 +16,7 @@ from ..keys import SecretKey
 from ..ledger import LedgerCharges
 from ..manifest import Manifest
 from ..policy import LoadedPolicy
+from . import nonces
 from .central import check_one_row_per_person
 from .charges import precharge, record_release, rows_held
 from .columns import (
@@ -33,6 +34,7 @@ from .publish import (
     check_destinations,
     check_paths_apart,
     diagnostics,
+    hold_destinations,
     move_into_place,
     stage_text,
 )
@@ -96,15 +98,18 @@ def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey
     job = PartJob(read_cols, opts.batch_rows, plans, schema, sampler, subject_key, dictionary_columns(src, plans),
                   order=tag_stream(key, opts.nonce) if policy.policy.output.row_order == "shuffled" else None,
                   public=frozenset(p.rc.name for p in plans if p.rc.type == "public"))
+    nonce_use = nonces.check(opts, policy, key, src)  # a reused nonce is refused before anything is written
     charges = precharge(src, plans, policy, key, sampler, opts)
     held = rows_held(charges, plans)
     with StagedFiles() as staged:
+        hold_destinations(staged, opts, diag_path)
         written = write_extract(job, src, held, opts, staged, on_progress)
         manifest = build_manifest(policy, key, plans, written, opts)
         stage_text(staged, opts.manifest_path, manifest.to_json())
         diag = diagnostics(plans, written, opts, opts.manifest_path, charges, sampler is not None,
                            time.perf_counter() - t0)
         stage_text(staged, diag_path, json.dumps(diag, indent=2) + "\n", mode=0o600)
+        nonces.record(nonce_use)
         release_id = _record(staged, charges, plans, manifest, opts)
         move_into_place(staged, opts, release_id)
     counts = (0, 0) if charges is None else (int((~charges.within).sum()), int((~charges.row_within).sum()))
