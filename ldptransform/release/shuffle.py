@@ -34,6 +34,7 @@ import shutil
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pyarrow as pa
@@ -49,6 +50,7 @@ WINDOW_ROWS = 1 << 18   # rows merged in memory at once (at most about this many
 BUCKET_BITS = 16        # tag buckets counted: windows are whole buckets
 _BUCKET_SHIFT = np.uint64(64 - BUCKET_BITS)
 TAG_COLUMN = "__ldpt_row_tag"
+MAX_OPEN_RUNS = 256     # runs whose files stay open from one window to the next (more: reopened)
 
 
 def tag_stream(key: object, nonce: str) -> KeyedStream:
@@ -69,6 +71,17 @@ def tag_name(schema: pa.Schema) -> str:
     return name
 
 
+def tag_order(tags: np.ndarray) -> np.ndarray:
+    """The order of rows by tag, equal tags in their given order (input-row order).  Tags are
+    uniform 64-bit words, so equal tags almost never occur (about n^2 / 2^65 pairs): the faster
+    unstable sort is used and checked, and the stable one only if two tags are equal."""
+    order = np.argsort(tags)
+    st = tags[order]
+    if len(st) > 1 and not (st[1:] > st[:-1]).all():
+        order = np.argsort(tags, kind="stable")
+    return order
+
+
 @dataclass
 class Run:
     """One sorted run: spilled (``path``, the first tag of every chunk) or kept in memory."""
@@ -78,6 +91,27 @@ class Run:
     firsts: np.ndarray | None = None
     table: pa.Table | None = None
     tags: np.ndarray | None = None
+    _file: Any = field(default=None, repr=False, compare=False)
+    _reader: Any = field(default=None, repr=False, compare=False)
+
+    def reader(self) -> Any:
+        """The spilled run's IPC reader, opened once (a plain file, not a memory map: the pages
+        read are not kept in the process's memory)."""
+        if self._reader is None:
+            assert self.path is not None
+            self._file = pa.OSFile(self.path, "rb")
+            self._reader = pa.ipc.open_file(self._file)
+        return self._reader
+
+    def close(self) -> None:
+        if self._file is not None:
+            self._file.close()
+        self._file = self._reader = None
+
+    def __getstate__(self) -> dict[str, Any]:  # sent to dask workers without open files
+        d = dict(self.__dict__)
+        d["_file"] = d["_reader"] = None
+        return d
 
 
 @dataclass
@@ -90,6 +124,10 @@ class Runs:
     @property
     def rows(self) -> int:
         return int(self.hist.sum())
+
+    def close(self) -> None:
+        for run in self.runs:
+            run.close()
 
     def extend(self, other: Runs) -> None:
         """Append the runs of a later stretch of rows (dask: one fragment's runs after another's)."""
@@ -135,8 +173,9 @@ class RunWriter:
 
     def _sorted(self) -> tuple[pa.Table, np.ndarray]:
         tags = np.concatenate(self._tags)
-        order = np.argsort(tags, kind="stable")
-        table = pa.Table.from_batches(self._batches, schema=self.schema).take(pa.array(order))
+        order = tag_order(tags)
+        # one contiguous copy first: a take from contiguous columns is faster than across chunks
+        table = pa.Table.from_batches(self._batches, schema=self.schema).combine_chunks().take(pa.array(order))
         self._batches, self._tags, self._rows = [], [], 0
         return table, tags[order]
 
@@ -226,20 +265,24 @@ def read_window(runs: Runs, w: Window, schema: pa.Schema, rebuild: frozenset[str
         i1 = len(run.firsts) if hi is None else int(np.searchsorted(run.firsts, hi, side="left"))
         if i1 <= i0:
             continue
-        with pa.OSFile(run.path, "rb") as f:
-            reader = pa.ipc.open_file(f)
-            for i in range(i0, i1):
-                b = reader.get_batch(i)
-                t = b.column(tag).to_numpy()
-                s, e = _cut(t, lo, hi)
-                if e > s:
-                    pieces.append(pa.Table.from_batches([b.slice(s, e - s).drop_columns([tag])]))
-                    tag_parts.append(t[s:e])
+        reader = run.reader()
+        batches = []
+        for i in range(i0, i1):
+            b = reader.get_batch(i)
+            t = b.column(tag).to_numpy()
+            s, e = _cut(t, lo, hi)
+            if e > s:
+                batches.append(b.slice(s, e - s))
+                tag_parts.append(t[s:e])
+        if batches:
+            pieces.append(pa.Table.from_batches(batches).drop_columns([tag]))
+        if len(runs.runs) > MAX_OPEN_RUNS:
+            run.close()
     if not pieces:
         return schema.empty_table()
     tags = np.concatenate(tag_parts)
-    order = np.argsort(tags, kind="stable")
-    table = pa.concat_tables(pieces).take(pa.array(order))
+    order = tag_order(tags)
+    table = pa.concat_tables(pieces).combine_chunks().take(pa.array(order))
     if table.num_rows != w.rows:
         raise AssertionError(f"window of tag buckets [{w.b0}, {w.b1}) read {table.num_rows} rows, not {w.rows}")
     cols = [rebuild_dictionary(table.column(i)) if f.name in rebuild and pa.types.is_dictionary(f.type)
@@ -250,12 +293,15 @@ def read_window(runs: Runs, w: Window, schema: pa.Schema, rebuild: frozenset[str
 def write_ranks(runs: Runs, wins: list[Window], schema: pa.Schema, start: int, stop: int,
                 rebuild: frozenset[str] = frozenset()) -> Iterator[pa.RecordBatch]:
     """The extract's rows of ranks [start, stop), in order, window by window."""
-    for w in wins:
-        if w.rank0 + w.rows <= start or w.rank0 >= stop or w.rows == 0:
-            continue
-        table = read_window(runs, w, schema, rebuild)
-        s, e = max(start, w.rank0) - w.rank0, min(stop, w.rank0 + w.rows) - w.rank0
-        yield from table.slice(s, e - s).to_batches()
+    try:
+        for w in wins:
+            if w.rank0 + w.rows <= start or w.rank0 >= stop or w.rows == 0:
+                continue
+            table = read_window(runs, w, schema, rebuild)
+            s, e = max(start, w.rank0) - w.rank0, min(stop, w.rank0 + w.rows) - w.rank0
+            yield from table.slice(s, e - s).to_batches()
+    finally:
+        runs.close()
 
 
 @contextlib.contextmanager
