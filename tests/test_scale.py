@@ -100,7 +100,7 @@ def test_peak_memory_flat_in_rows(work: dict[str, Path], fmt: str, small: int) -
         out = d / f"out_{rows}.{fmt}"
         peaks[rows] = peak_rss_kb(["privatize", str(src), "--policy", str(work["policy"]), "--key",
                                    str(work["key"]), "--out", str(out), "--batch-rows", str(BATCH_ROWS),
-                                   "--diagnostics", str(d / f"diag_{rows}_{fmt}.json"), "--quiet"], d)
+                                   "--diagnostics", str(steward(d) / f"diag_{rows}_{fmt}.json"), "--quiet"], d)
         src.unlink()  # keep the temporary folder small
         if fmt == "parquet":
             assert pq.ParquetFile(out).metadata.num_rows == rows
@@ -125,8 +125,15 @@ def test_peak_memory_flat_in_rows(work: dict[str, Path], fmt: str, small: int) -
 
 def _release(work: dict[str, Path], src: Path, out: Path, batch_rows: int) -> Path:
     privatize(src, load_policy(work["policy"]), load_key(work["key"]), out, batch_rows=batch_rows, nonce=NONCE,
-              diagnostics_path=out.with_suffix(".diag.json"))
+              diagnostics_path=steward(out.parent) / f"{out.stem}.diag.json")
     return out
+
+
+def steward(folder: Path) -> Path:
+    """A steward-only folder (0700) beside ``folder``: diagnostics never go where the extract goes."""
+    d = folder.parent / f"{folder.name}-steward"
+    d.mkdir(mode=0o700, exist_ok=True)
+    return d
 
 
 def _read(path: Path) -> pa.Table:
