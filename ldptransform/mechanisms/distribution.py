@@ -41,6 +41,7 @@ import hashlib
 import json
 import math
 from dataclasses import replace
+from fractions import Fraction
 from functools import cached_property
 from typing import Any, ClassVar
 
@@ -543,6 +544,12 @@ class Hierarchy(DistributionMechanism):
         (its own ``max_log_ratio``); the row's channel is a mixture over levels with the
         level written out, so its worst ratio is the worst level's."""
         return max(o.max_log_ratio() for o in self.oracles)
+
+    def realized_ratio(self) -> Fraction | None:
+        """The worst level oracle's exact realized ratio (grr and olh sample with integer
+        thresholds; the level is drawn independently of the data and written out)."""
+        ratios = [o.realized_ratio() for o in self.oracles]
+        return None if any(r is None for r in ratios) else max(ratios)
 
     def fit_test(self) -> HierarchyFit:
         """Each level's rows tested as that level's oracle."""

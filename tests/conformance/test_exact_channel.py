@@ -34,7 +34,7 @@ from typing import Any, cast
 import numpy as np
 import pytest
 
-from ldptransform.mechanisms import GRR, OLH, OUE, SUE, HadamardResponse, SubsetSelection
+from ldptransform.mechanisms import GRR, OLH, OUE, SUE, HadamardResponse, SubsetSelection, registry
 from ldptransform.mechanisms.hadamard import odd_parity
 from ldptransform.random.variates import exp_bounds
 from ldptransform.validate import _channel_issues
@@ -370,3 +370,13 @@ def test_a_composite_with_a_second_layer_reports_the_two_layer_ratio() -> None:
         issues: list[str] = []
         _channel_issues(_manifest(composite.to_spec()), issues)
         assert issues == [], issues
+
+
+@pytest.mark.parametrize("eps", EPS_GRID)
+def test_hierarchy_realized_channel(eps: float) -> None:
+    """hierarchy reports one data-independent level per row through that level's grr or olh: its
+    realized ratio is the worst level's, recomputed here from each level's keep threshold."""
+    for leaves in (16, 1024):
+        m: Any = registry()["hierarchy"].from_policy(eps, (0.0, 100.0), {"branching": 4, "leaves": leaves})
+        worst = max(keep_channel(o.keep_threshold, o.k if o.name == "grr" else o.g)[0] for o in m.oracles)
+        assert m.realized_ratio() == worst <= lower(eps)
