@@ -91,6 +91,27 @@ def check_new(outputs: Sequence[Named], overwrite: bool) -> None:
         if path.exists() and not overwrite:
             raise OutputExistsError(f"{role} {path} already exists. Give --overwrite to replace it, or choose "
                                     "another path.")
+        secret = _secret_kind(path)
+        if secret:
+            raise UsageError(f"the {role} {path} is {secret}: writing it would destroy that file. Give the {role} "
+                             "a path of its own; no option (not even --overwrite) replaces a key or a ledger.")
+
+
+def _secret_kind(path: Path) -> str | None:
+    """What an existing file is if it is one of the steward's secrets (a key file or a ledger, told
+    by their first bytes), whichever command would write over it; None otherwise."""
+    from .keys import KEY_HEADER
+
+    try:
+        with open(path, "rb") as f:
+            head = f.read(32)
+    except OSError:
+        return None
+    if head.startswith(KEY_HEADER.encode("ascii")):
+        return "a secret key file"
+    if head.startswith(b"SQLite format 3\0"):
+        return "a SQLite database (such as a privacy ledger)"
+    return None
 
 
 def check_outputs(outputs: Sequence[Named], known: Sequence[Named], *, overwrite: bool,
