@@ -97,16 +97,18 @@ def parts_of(folder: Path) -> dict[str, bytes]:
 
 # -- reading datasets -------------------------------------------------------------------------
 
-def test_a_dataset_reads_as_one_table_in_path_order(dataset: Path, tmp_path: Path) -> None:
+def test_a_dataset_reads_as_one_table_in_path_order(dataset: Path, tmp_path: Path, other_steward) -> None:
     """A folder of Parquet files releases exactly as the same rows in one file: same extract bytes."""
     pol = parse_policy(survey_policy(), "survey.yaml")
     a = privatize(dataset, pol, KEY, tmp_path / "from_dataset.parquet", nonce=NONCE)
+    # the same dataset named by a URI (the path object stores take: pyarrow's filesystem layer); its
+    # files digest as the folder's, so the nonce again is a reproduction
+    c = privatize(f"file://{dataset}", pol, KEY, tmp_path / "from_uri.parquet", nonce=NONCE)
+    assert c.manifest.extract.sha256 == a.manifest.extract.sha256
+    other_steward()  # the nonce again on another input (the same rows, other bytes): refused by one steward state
     b = privatize(dataset.parent / "whole.parquet", pol, KEY, tmp_path / "from_file.parquet", nonce=NONCE)
     assert a.manifest.rows == 12000
     assert a.manifest.extract.sha256 == b.manifest.extract.sha256
-    # the same dataset named by a URI (the path object stores take: pyarrow's filesystem layer)
-    c = privatize(f"file://{dataset}", pol, KEY, tmp_path / "from_uri.parquet", nonce=NONCE)
-    assert c.manifest.extract.sha256 == a.manifest.extract.sha256
     with pytest.raises(InputFileError, match="does not exist"):
         privatize(f"file://{dataset}-missing", pol, KEY, tmp_path / "x.parquet", nonce=NONCE)
 
@@ -153,7 +155,8 @@ def test_csv_input_with_the_dask_engine(tmp_path: Path, cluster: str) -> None:
     assert pq.read_table(tmp_path / "dask").equals(pq.read_table(tmp_path / "one.parquet"))
 
 
-def test_a_dask_dataframe_is_released_like_its_rows(dataset: Path, tmp_path: Path, cluster: str) -> None:
+def test_a_dask_dataframe_is_released_like_its_rows(dataset: Path, tmp_path: Path, cluster: str,
+                                                    other_steward) -> None:
     """The Python API takes a dask DataFrame: a counting pass numbers its rows; one part per
     partition; values equal to the local engine's on the same rows."""
     import dask.dataframe as dd
@@ -164,11 +167,14 @@ def test_a_dask_dataframe_is_released_like_its_rows(dataset: Path, tmp_path: Pat
     pol = parse_policy(as_input_policy(), "survey.yaml")
     res = privatize_frame(frame, pol, KEY, tmp_path / "frame", nonce=NONCE, scheduler=cluster)
     assert [p.rows for p in res.manifest.extract.parts] == [int(n) for n in frame.map_partitions(len).compute()]
+    other_steward()  # a dask DataFrame cannot be digested: the nonce again on its file needs another state
     privatize(dataset / "a.parquet", pol, KEY, tmp_path / "a.parquet", nonce=NONCE)
     assert pq.read_table(tmp_path / "frame").equals(pq.read_table(tmp_path / "a.parquet"))
     # shuffled (the default): parts of fragment_rows rows by rank, the local engine's bytes
     pol = parse_policy(survey_policy(), "survey.yaml")
+    other_steward()
     res = privatize_frame(frame, pol, KEY, tmp_path / "frame2", nonce=NONCE, scheduler=cluster, fragment_rows=1000)
+    other_steward()
     privatize(dataset / "a.parquet", pol, KEY, tmp_path / "a2", nonce=NONCE, fragment_rows=1000)
     assert [p.rows for p in res.manifest.extract.parts] == [1000] * 3
     assert parts_of(tmp_path / "frame2") == parts_of(tmp_path / "a2")
