@@ -269,15 +269,8 @@ def symmetric_thresholds(bound: Fraction) -> tuple[int, int]:
 SAMPLING_BITS = 50
 
 
-def integer_masses(Q: np.ndarray, epsilon: float) -> np.ndarray:
-    """A finite channel ``Q`` (inputs x outputs, rows summing to 1) as whole-number masses in
-    units of 2^-SAMPLING_BITS, held exactly in float64: what ``draw_index`` realizes.
-
-    Each mass is within one unit of the float channel (cumulative rounding of the remainders
-    keeps every row's total); then, per output, masses are raised to ceil(max / e^eps) so no
-    input gets more than e^eps times the mass of another, and each row's few units of surplus
-    come off its largest cell.  Without this a cell of tiny probability could be realized as 0
-    for one input and > 0 for another (an unbounded privacy loss)."""
+def _rounded_masses(Q: np.ndarray, epsilon: float) -> np.ndarray:
+    """``integer_masses`` before its exact rounding toward privacy (float arithmetic only)."""
     S = float(1 << SAMPLING_BITS)
     X = np.asarray(Q, dtype=float) * S
     F = np.floor(X)
@@ -291,6 +284,63 @@ def integer_masses(Q: np.ndarray, epsilon: float) -> np.ndarray:
     np.maximum(F, need[None, :], out=F)
     F[np.arange(F.shape[0]), F.argmax(axis=1)] += S - F.sum(axis=1)
     return F
+
+
+def integer_masses(Q: np.ndarray, epsilon: float) -> np.ndarray:
+    """A finite channel ``Q`` (inputs x outputs, rows summing to 1) as whole-number masses in
+    units of 2^-SAMPLING_BITS, held exactly in float64: what ``draw_index`` realizes.
+
+    Each mass is within one unit of the float channel (cumulative rounding of the remainders
+    keeps every row's total); then, per output, masses are raised to ceil(max / e^eps) so no
+    input gets more than e^eps times the mass of another, and each row's few units of surplus
+    come off its largest cell.  Without this a cell of tiny probability could be realized as 0
+    for one input and > 0 for another (an unbounded privacy loss).  Finally the masses are
+    rounded toward privacy in exact arithmetic (``_certify_masses``): the realized worst ratio is
+    at most e^eps exactly (docs/formulas.md section 10.4)."""
+    return _certify_masses(_rounded_masses(Q, epsilon), epsilon)
+
+
+def masses_ratio(F: np.ndarray) -> Fraction | None:
+    """The exact worst column ratio max_i F[i, j] / min_i F[i, j] of integer masses (inputs x
+    outputs; columns with no mass left out), or None if some output is possible for one input
+    and not for another.  The float ratios pick the candidates (within 1e-9 of the largest);
+    those are compared as exact rationals."""
+    mx, mn = F.max(axis=0), F.min(axis=0)
+    used = mx > 0
+    if (mn[used] <= 0).any():
+        return None
+    if not used.any():
+        return Fraction(1)
+    r = mx[used] / mn[used]
+    cand = np.flatnonzero(used)[r >= r.max() * (1 - 1e-9)]
+    return max(Fraction(int(mx[j]), int(mn[j])) for j in cand)
+
+
+def _certify_masses(F: np.ndarray, epsilon: float) -> np.ndarray:
+    """Round ``integer_masses`` toward privacy in exact arithmetic (docs/formulas.md section 10.4):
+    every column whose largest mass exceeds L times its smallest, L a certified lower bound of
+    e^eps, has its small masses raised to ceil(largest / L) (integer arithmetic), and each row
+    gives its few units of surplus back from its largest cell; repeated until no column exceeds.
+    Columns whose float ratio is more than 1e-9 below e^eps cannot exceed (float error is below
+    1e-15) and are not looked at; the others (few) are checked one by one with Python integers.
+    A channel that already meets L exactly is returned unchanged."""
+    S = float(1 << SAMPLING_BITS)
+    L = exp_lower_bound(epsilon)
+    num, den = L.numerator, L.denominator
+    margin = math.exp(min(epsilon, EXP_CAP)) * (1 - 1e-9)
+    rows = np.arange(F.shape[0])
+    for _ in range(16):
+        mx, mn = F.max(axis=0), F.min(axis=0)
+        changed = False
+        for j in np.flatnonzero(mx > mn * margin):
+            big, small = int(mx[j]), int(mn[j])
+            if big * den > num * small:
+                np.maximum(F[:, j], float(-(-big * den // num)), out=F[:, j])
+                changed = True
+        if not changed:
+            return F
+        F[rows, F.argmax(axis=1)] += S - F.sum(axis=1)
+    raise ArithmeticError("integer_masses: the masses did not settle within e^eps (a bug)")
 
 
 def sampling_table(F: np.ndarray) -> np.ndarray:

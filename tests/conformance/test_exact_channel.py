@@ -36,7 +36,7 @@ import pytest
 
 from ldptransform.mechanisms import GRR, OLH, OUE, SUE, HadamardResponse, SubsetSelection, registry
 from ldptransform.mechanisms.hadamard import odd_parity
-from ldptransform.random.variates import exp_bounds
+from ldptransform.random.variates import _rounded_masses, exp_bounds, integer_masses, masses_ratio
 from ldptransform.validate import _channel_issues
 
 W = 1 << 64
@@ -380,3 +380,37 @@ def test_hierarchy_realized_channel(eps: float) -> None:
         m: Any = registry()["hierarchy"].from_policy(eps, (0.0, 100.0), {"branching": 4, "leaves": leaves})
         worst = max(keep_channel(o.keep_threshold, o.k if o.name == "grr" else o.g)[0] for o in m.oracles)
         assert m.realized_ratio() == worst <= lower(eps)
+
+
+# -- the integer-mass sampler of a finite channel (grid mechanisms, square-wave, matrix) ---------
+
+GRID_MECHANISMS = ("two-point", "piecewise", "hybrid", "square-wave")
+
+
+@pytest.mark.parametrize("eps", EPS_GRID)
+@pytest.mark.parametrize("name", GRID_MECHANISMS)
+def test_integer_mass_channels_are_within_e_to_the_eps(name: str, eps: float) -> None:
+    """The mechanisms sampled by the integer-mass sampler (``draw_index``) realize their masses
+    in units of 2^-50 exactly (``channel()`` is those masses over 2^50, exact in float64): the
+    worst column ratio, as exact rationals, is at most the certified lower bound of e^eps."""
+    m: Any = registry()[name].from_policy(eps, (0.0, 100.0), {})
+    F = m.channel() * float(1 << 50)
+    assert (F == np.floor(F)).all() and (F.sum(axis=1) == float(1 << 50)).all()
+    mx, mn = F.max(axis=0), F.min(axis=0)
+    worst = max(Fraction(int(a), int(b)) for a, b in zip(mx, mn) if a > 0)
+    assert worst <= lower(eps)
+    assert masses_ratio(F) == worst
+
+
+def test_float_rounded_masses_fail_and_certified_ones_pass() -> None:
+    """The float steps of ``integer_masses`` alone (``_rounded_masses``) realize binary randomized
+    response at eps 0.1 (two-point's channel) above e^eps (above the certified upper bound);
+    the certified masses do not, and differ from them by one unit of 2^-50 per cell at most."""
+    e = math.exp(0.1)
+    Q = np.array([[e, 1.0], [1.0, e]]) / (e + 1)
+    old = _rounded_masses(Q, 0.1)
+    new = integer_masses(Q, 0.1)
+    old_ratio, new_ratio = masses_ratio(old), masses_ratio(new)
+    assert old_ratio is not None and new_ratio is not None
+    assert old_ratio > upper(0.1) and new_ratio <= lower(0.1)
+    assert np.abs(old - new).max() <= 1 and (new.sum(axis=1) == old.sum(axis=1)).all()
