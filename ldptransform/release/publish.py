@@ -42,6 +42,13 @@ def _outputs(opts: ReleaseOptions, diag_path: Path) -> list[tuple[str, Path | No
     return [(outputs.EXTRACT, opts.out), (outputs.MANIFEST, opts.manifest_path), (outputs.DIAGNOSTICS, diag_path)]
 
 
+def _locked(opts: ReleaseOptions, diag_path: Path) -> list[tuple[str, Path | None]]:
+    """The destinations another job could aim at too (a default diagnostics name is fresh for every
+    run, so it needs no lock, and a killed run leaves no lock file in the private folder)."""
+    dests = _outputs(opts, diag_path)
+    return dests if opts.diagnostics_path is not None else dests[:2]
+
+
 def check_paths_apart(opts: ReleaseOptions, policy: LoadedPolicy, key: SecretKey, diag_path: Path) -> None:
     """Refuse, whatever ``overwrite`` says, an output (extract, manifest, diagnostics) that is the
     input, the policy, the key file, the ledger or another of the outputs, or lies inside the input
@@ -56,7 +63,7 @@ def check_paths_apart(opts: ReleaseOptions, policy: LoadedPolicy, key: SecretKey
     outputs.check_apart(dests, known, folders=[(outputs.EXTRACT, opts.out)] if opts.dataset_out else [])
     outputs.check_new(dests[1:] if opts.dataset_out else dests, opts.overwrite)
     outputs.check_private_place(outputs.DIAGNOSTICS, diag_path, dests[:2], "--diagnostics")
-    outputs.probe_locks(dests)
+    outputs.probe_locks(_locked(opts, diag_path))
 
 
 def hold_destinations(staged: StagedFiles, opts: ReleaseOptions, diag_path: Path) -> None:
@@ -64,7 +71,7 @@ def hold_destinations(staged: StagedFiles, opts: ReleaseOptions, diag_path: Path
     stops with exit 2 and changes nothing), and check again, under the lock, that no job that
     finished meanwhile left an output this release may not replace."""
     dests = _outputs(opts, diag_path)
-    lock = outputs.DestinationLock(dests).acquire()
+    lock = outputs.DestinationLock(_locked(opts, diag_path)).acquire()
     staged.on_exit(lock.release)
     if opts.dataset_out:
         check_dataset_destination(opts.out, opts.overwrite)
