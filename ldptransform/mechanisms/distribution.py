@@ -52,7 +52,16 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from ..distribution import Distribution, frequency_covariance
 from ..errors import PolicyError
-from ..random.variates import SAMPLING_BITS, draw_index, guide_table, integer_masses, sampling_table, to_below, to_unit
+from ..random.variates import (
+    SAMPLING_BITS,
+    draw_index,
+    guide_table,
+    integer_masses,
+    masses_ratio,
+    sampling_table,
+    to_below,
+    to_unit,
+)
 from .base import DistributionMechanism, check_epsilon, register
 from .categorical import GRR, HASH_PRIME, OLH, SupportSizeFit
 from .fit import FitResult, FitStats, HullFit, _impossible_result
@@ -282,6 +291,10 @@ class SquareWave(DistributionMechanism):
         Q = self.channel()
         with np.errstate(divide="ignore"):
             return float(np.max(np.log(Q.max(axis=0)) - np.log(Q.min(axis=0))))
+
+    def realized_ratio(self) -> Fraction | None:
+        """The exact worst ratio of the integer masses the sampler realizes (docs/formulas.md 10.4)."""
+        return masses_ratio(self._integer_channel)
 
     def fit_test(self) -> HullFit:
         """The written cell indices against the hull of the exact channel."""

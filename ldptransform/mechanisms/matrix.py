@@ -32,6 +32,7 @@ variance is data-dependent; ``total_variance`` returns its worst case over data 
 from __future__ import annotations
 
 import math
+from fractions import Fraction
 from functools import cached_property
 from numbers import Real
 from typing import Any, ClassVar
@@ -42,7 +43,7 @@ import pyarrow.compute as pc
 from pydantic import BaseModel, ConfigDict, Field
 
 from ..errors import PolicyError
-from ..random.variates import SAMPLING_BITS, draw_index, guide_table, integer_masses, sampling_table
+from ..random.variates import SAMPLING_BITS, draw_index, guide_table, integer_masses, masses_ratio, sampling_table
 from .base import Mechanism, register, worst_channel_pairs
 from .categorical import FrequencyOracle, _as_strings
 from .fit import HullFit
@@ -250,6 +251,10 @@ class Matrix(FrequencyOracle):
 
     def max_log_ratio(self) -> float:
         return self._actual_epsilon
+
+    def realized_ratio(self) -> Fraction | None:
+        """The exact worst ratio of the integer masses the sampler realizes (docs/formulas.md 10.4)."""
+        return masses_ratio(self._masses)
 
     @property
     def matrix(self) -> list[list[float]]:

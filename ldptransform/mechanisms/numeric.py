@@ -50,6 +50,7 @@ from ..random.variates import (
     grr_thresholds,
     guide_table,
     integer_masses,
+    masses_ratio,
     sampling_table,
     to_unit,
     words_below,
@@ -239,6 +240,15 @@ class GridMechanism(MeanMechanism):
         return int((~ok | ~(np.nan_to_num(near, nan=np.inf) <= tol)).sum())
 
     # analysis --------------------------------------------------------------------
+    def realized_ratio(self) -> Fraction | None:
+        """The exact worst ratio of the integer masses the sampler realizes (``masses_ratio``,
+        docs/formulas.md section 10.4); for a composite with a second layer, that of both layers."""
+        if self.second_layer_of is not None:
+            permanent, epsilon2 = self.second_layer_of
+            assert isinstance(permanent, TwoPoint)
+            return permanent.second_layer_ratio(epsilon2)
+        return masses_ratio(self._integer_channel)
+
     def max_log_ratio(self) -> float:
         Q = self.channel()
         used = Q.max(axis=0) > 0  # an output no input can produce reveals nothing

@@ -58,6 +58,7 @@ from ldptransform.errors import PolicyError
 from ldptransform.keys import SecretKey
 from ldptransform.mechanisms import FAMILIES, Mechanism, build, registry
 from ldptransform.random import KeyedStream
+from ldptransform.random.variates import exp_lower_bound
 
 STREAM = "conformance"
 words_for = partial(keyed_words, stream=STREAM)
@@ -311,6 +312,18 @@ def test_channel_within_eps(name: str) -> None:
     ratio = float(np.max(Q[:, used].max(axis=0) / Q[:, used].min(axis=0)))
     assert ratio <= math.exp(eps) * (1 + EPS_SLACK), (ratio, math.exp(eps))
     assert math.log(ratio) == pytest.approx(m.max_log_ratio(), abs=1e-9)
+    # the channel the sampler's integers realize, exactly (docs/formulas.md section 10.4; the
+    # grid of eps and domain sizes is in tests/conformance/test_exact_channel.py)
+    realized = m.realized_ratio()
+    assert (realized is None) == (name in NO_REALIZED_RATIO), name
+    if realized is not None:
+        assert realized <= exp_lower_bound(eps)
+        assert math.log(realized) == pytest.approx(m.max_log_ratio(), abs=1e-9)
+
+
+#: Mechanisms without an exact realized ratio: discrete-laplace samples by exact rejection (its
+#: eps is exact by construction, docs/formulas.md section 10.3), not with integer thresholds.
+NO_REALIZED_RATIO = {"discrete-laplace"}
 
 
 # -- 3. exact unbiasedness ------------------------------------------------------------------------
