@@ -143,6 +143,22 @@ def test_a_dataset_input_is_digested_file_by_file(survey: dict[str, Path], ldpt,
     assert_user_error(res, ["--nonce", "different input data"])
 
 
+def test_a_nonce_of_a_dask_dataframe_release_is_never_reused(survey: dict[str, Path], ldpt,
+                                                            private_dir: Path) -> None:
+    """A dask DataFrame cannot be digested (recorded as such), so its nonce is never taken as a
+    reproduction, even with the same policy and key."""
+    from ldptransform.keys import load_key
+    from ldptransform.policy import load_policy
+
+    rec = {"nonce": FIXED_NONCE, "key_fingerprint": load_key(survey["key"]).fingerprint(),
+           "input": {"kind": "dask-dataframe", "sha256": None},
+           "policy_sha256": load_policy(survey["policy"]).policy.sha256(), "extract": "/srv/frame",
+           "time_utc": "2026-01-01T00:00:00Z"}
+    (private_dir / STATE).write_text(json.dumps(rec) + "\n")
+    res = ldpt(*privatize_args(survey, survey["dir"] / "x.parquet", "--nonce", FIXED_NONCE))
+    assert_user_error(res, ["--nonce", "dask DataFrame", "/srv/frame"])
+
+
 def test_a_refused_release_records_no_nonce(survey: dict[str, Path], ldpt, private_dir: Path) -> None:
     p = survey_policy()
     p["columns"]["role"]["mechanism"] = "blur"

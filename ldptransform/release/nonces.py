@@ -145,15 +145,20 @@ def _conflict(entry: dict[str, Any], records: list[dict[str, Any]]) -> None:
         if same_input and same_policy:
             continue
         what = []
-        if not same_input:
-            what.append("a dask DataFrame input, which cannot be digested and so cannot be shown to be the same "
-                        "data" if new.get("sha256") is None or old.get("sha256") is None else "different input data")
+        if not same_input and new.get("sha256") is None:
+            what.append("this release's input is a dask DataFrame, which cannot be digested, so it cannot be shown "
+                        "to be the same data")
+        elif not same_input and old.get("sha256") is None:
+            what.append("that release's input was a dask DataFrame, which cannot be digested, so this input cannot "
+                        "be shown to be the same data")
+        elif not same_input:
+            what.append("this release has different input data")
         if not same_policy:
-            what.append("a different policy")
+            what.append("this release has a different policy")
         raise OptionError(
             f"privatize(nonce={entry['nonce']!r})",
             f"{{nonce}} {entry['nonce']} was already used with this key (fingerprint {entry['key_fingerprint']}) by "
-            f"the release into {rec.get('extract')} at {rec.get('time_utc')}, and this release has "
+            f"the release into {rec.get('extract')} at {rec.get('time_utc')}, and "
             f"{' and '.join(what)}: two releases under one key and nonce share their noise, so comparing them shows "
             "exactly which cells changed and what the old and new values were. Leave out {nonce} to draw a fresh "
             "one; give it only to reproduce a release from the very same input and policy (recorded in "
