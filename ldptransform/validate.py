@@ -489,7 +489,10 @@ def _reproduce(raw: Path, extract: Path, manifest: Manifest, key: SecretKey, rep
     from .io import private_dir
     from .release.nonces import rederiving
 
-    lp = parse_policy(manifest.policy, "embedded in the manifest")
+    policy = dict(manifest.policy)
+    if "output" not in policy and manifest.privacy.row_order == "as-input":
+        policy["output"] = {"row_order": "as-input"}  # a manifest from before the row shuffle: input order
+    lp = parse_policy(policy, "embedded in the manifest")
     with tempfile.TemporaryDirectory(prefix="ldpt-validate-", dir=private_dir()) as tmp, rederiving():
         Path(tmp).chmod(0o700)
         (Path(tmp) / "out").mkdir(mode=0o700)

@@ -246,3 +246,22 @@ def test_the_cli_shows_the_row_order(tmp_path: Path, ldpt: Any) -> None:
             assert "input's order" in r.stderr
         else:
             assert "input's order" not in r.stderr
+
+
+def test_validate_reproduces_shuffled_releases_and_input_order_ones_from_before_the_shuffle(raw: Path,
+                                                                                           tmp_path: Path) -> None:
+    """The steward's re-derivation follows the manifest: a shuffled release, and a manifest
+    written before the shuffle existed (no output section, no privacy.row_order: input order)."""
+    from ldptransform.validate import validate
+
+    release(raw, policy(), tmp_path / "s.parquet", nonce="1f" * 16)
+    rep = validate(tmp_path / "s.parquet", raw=raw, key=KEY)
+    assert {c.name: c.ok for c in rep.checks}["reproduced"] is True
+    release(raw, policy("as-input"), tmp_path / "old.parquet", nonce="2f" * 16)
+    man_path = tmp_path / "old.manifest.json"
+    man = json.loads(man_path.read_text())
+    del man["policy"]["output"], man["privacy"]["row_order"], man["privacy"]["row_order_note"]
+    man["privacy"].pop("central", None)
+    man_path.write_text(json.dumps(man))
+    rep = validate(tmp_path / "old.parquet", man_path, raw=raw, key=KEY)
+    assert {c.name: c.ok for c in rep.checks}["reproduced"] is True
