@@ -274,7 +274,8 @@ class Mechanism(ABC):
         """max over outputs y and inputs x, x' of ln P(y|x)/P(y|x'), computed exactly."""
 
     def realized_ratio(self) -> Fraction | None:
-        """For a sampler that compares words with integer thresholds (probabilities T / 2^64): the
+        """For a sampler that compares words with integer thresholds (probabilities T / 2^64, or the
+        integer masses of ``random.variates.integer_masses`` in units of 2^-50): the
         worst likelihood ratio of the channel those thresholds realize, as an exact rational (or an
         exact rational upper bound of it, where the mechanism says so), to be compared with a
         certified lower bound of e^eps (``random.variates.exp_lower_bound``; docs/formulas.md
