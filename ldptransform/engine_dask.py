@@ -18,7 +18,9 @@ the secret key for this release and column (AES keys of the keyed streams; for m
 the long-lived per-column keys of the memoized randomness), never the secret key itself.  They
 are still secrets: a scheduler on another machine must be reached over TLS (``tls://``
 addresses, with dask's TLS configuration), and the workers must be trusted like the steward's
-own machine.  A plaintext ``tcp://`` address that is not this machine is refused.
+own machine.  A plaintext ``tcp://`` address that is not this machine is refused.  The local
+cluster of a run with no scheduler speaks only TLS, under credentials made for the run
+(``start_local_cluster``), so other processes on the machine cannot use it.
 
 The manifest, the diagnostics, the ledger and the final move into place stay on the client.
 """
@@ -101,14 +103,49 @@ def check_scheduler_address(address: str) -> None:
                      "scheduler on this machine.")
 
 
+def start_local_cluster(n_workers: int = DEFAULT_WORKERS) -> tuple[Any, Any]:
+    """The local cluster of a run with no ``--scheduler``: ``(cluster, security)``.
+
+    The scheduler, the nannies and the workers listen on the loopback interface over ``tls://``
+    only, with mutual authentication under credentials made for this run
+    (``Security.temporary()``: a fresh RSA key and a self-signed certificate that is also the
+    only trusted authority).  A client must present a certificate signed by that key, so no
+    other process on the machine can connect without those credentials, run code in a worker or
+    read the derived keys the release sends there.  The credentials are never
+    written to a file by this tool: they stay in this process's memory and reach the worker
+    processes it spawns through their start-up pipes (distributed hands them to Python's ssl
+    module through a file in a fresh temporary folder of mode 0700, deleted at once).  The
+    HTTP servers that the scheduler and the workers always start (plaintext, no authentication)
+    serve no page but their own empty list of pages: no dashboard, no cluster state, no logs;
+    the scheduler's takes a free port (not 8787).  Connect to it with
+    ``Client(cluster, security=security)``."""
+    _require_dask()
+    import dask
+    from distributed import LocalCluster
+    from distributed.security import Security
+
+    security = Security.temporary()
+    # read when the scheduler starts and copied into each worker process by its nanny
+    no_pages: dict[str, list[str]] = {"distributed.scheduler.http.routes": [], "distributed.worker.http.routes": []}
+    with dask.config.set(no_pages):
+        cluster = LocalCluster(n_workers=n_workers, threads_per_worker=1, processes=True, host="127.0.0.1",
+                               protocol="tls://", security=security, dashboard_address=None,
+                               scheduler_kwargs={"dashboard_address": "127.0.0.1:0"},
+                               silence_logs=logging.CRITICAL)
+    return cluster, security
+
+
 def _open_client(scheduler: str | None, needs_keys: bool = True) -> tuple[Any, Any]:
     _require_dask()
-    from distributed import Client, LocalCluster
+    from distributed import Client
 
     if scheduler is None:
-        cluster = LocalCluster(n_workers=DEFAULT_WORKERS, threads_per_worker=1, processes=True,
-                               dashboard_address=None, silence_logs=logging.CRITICAL)
-        return Client(cluster), cluster
+        cluster, security = start_local_cluster()
+        try:
+            return Client(cluster, security=security), cluster
+        except BaseException:
+            cluster.close()
+            raise
     if needs_keys:
         check_scheduler_address(scheduler)
     try:
@@ -384,4 +421,5 @@ def privatize_frame(frame: Any, policy: Any, key: Any, out: Path | str, **kwargs
     return privatize(frame, policy, key, out, **kwargs)
 
 
-__all__ = ["DEFAULT_WORKERS", "FrameSource", "check_scheduler_address", "map_fragments", "privatize_frame", "run_parts"]
+__all__ = ["DEFAULT_WORKERS", "FrameSource", "check_scheduler_address", "map_fragments", "privatize_frame", "run_parts",
+           "start_local_cluster"]
