@@ -106,7 +106,6 @@ def test_the_order_is_the_same_for_every_batch_size_spill_size_and_layout(raw: P
             ref.manifest.extract.sha256
     # spilled runs, small chunks and windows: the external sort gives the in-memory sort's bytes
     monkeypatch.setattr(shuffle, "RUN_ROWS", 1000)
-    monkeypatch.setattr(shuffle, "CHUNK_ROWS", 64)
     monkeypatch.setattr(shuffle, "WINDOW_ROWS", 700)
     monkeypatch.setattr(shuffle.windows, "__defaults__", (700,))
     spilled = release(raw, pol, tmp_path / "spilled.parquet", batch_rows=333)

@@ -109,14 +109,18 @@ def spill_rows(job: PartJob, batches: Any, row0: int, held: Held | None, folder:
     plans = [replace(p, diag=ColumnDiagnostics(), reported=0) for p in job.plans]
     runs = RunWriter(job.schema, Path(folder), prefix)
     rows = 0
-    for batch in batches:
-        n = batch.num_rows
-        out_batch = privatize_batch(batch, row0 + rows, plans, job.schema, job.sampler, job.subject_key,
-                                    _mask_slice(held, rows, n))
-        runs.add(out_batch, row_tags(job.order, row0 + rows, n))
-        rows += n
-        if on_batch is not None:
-            on_batch(n)
+    try:
+        for batch in batches:
+            n = batch.num_rows
+            out_batch = privatize_batch(batch, row0 + rows, plans, job.schema, job.sampler, job.subject_key,
+                                        _mask_slice(held, rows, n))
+            runs.add(out_batch, row_tags(job.order, row0 + rows, n))
+            rows += n
+            if on_batch is not None:
+                on_batch(n)
+    except BaseException:
+        runs.close()
+        raise
     return Spilled(runs.finish(in_memory=in_memory), rows,
                    {p.rc.name: p.diag.as_dict() for p in plans if p.rc.mechanism is not None},
                    {p.rc.name: p.reported for p in plans if p.rc.mechanism is not None})

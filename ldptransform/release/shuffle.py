@@ -12,13 +12,14 @@ learns nothing about which input row a report came from (only the steward can re
 Memory stays bounded whatever the number of rows (an external sort in two passes):
 
 1. *Runs.*  Privatized batches are gathered into runs of at most ``RUN_ROWS`` rows; each run is
-   sorted by tag and spilled to an Arrow IPC file in a private staging folder (mode 0700: with
-   the tags and the run order it would undo the shuffle), in record batches of ``CHUNK_ROWS``
-   rows whose first tags are kept in memory.  A histogram of the tags' top ``BUCKET_BITS`` bits
-   counts the rows of every tag bucket.  A release that fits in one run is never spilled.
+   sorted by tag and spilled (in a background thread) to an Arrow IPC file in a private staging
+   folder (mode 0700: with the tags and the run order it would undo the shuffle), its tags in a
+   last column, in record batches of ``CHUNK_ROWS`` rows whose first tags are kept in memory.
+   A histogram of the tags' top ``BUCKET_BITS`` bits counts the rows of every tag
+   bucket.  A release that fits in one run is never spilled.
 2. *Windows.*  The histogram cuts the tag range into windows of at most about ``WINDOW_ROWS``
-   rows (whole buckets); every window is read from every run (only the chunks that overlap
-   it), merged by a stable sort on the tag, and written out.  A window's rows are known exactly
+   rows (whole buckets); every window is read from every run (only the chunks that overlap it),
+   merged by a sort on the tag, and written out.  A window's rows are known exactly
    in advance, so a dataset's parts (``fragment_rows`` rows each, by rank) can be written by
    different workers (``write_ranks``), byte for byte as in one pass.
 
@@ -32,6 +33,7 @@ import contextlib
 import os
 import shutil
 from collections.abc import Iterator
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -45,11 +47,11 @@ from .kernel import rebuild_dictionary
 
 ROW_ORDER_PURPOSE = "row-order"
 RUN_ROWS = 1 << 18      # rows gathered, sorted and spilled together
-CHUNK_ROWS = 2048       # rows per record batch of a spilled run (the unit read back)
 WINDOW_ROWS = 1 << 18   # rows merged in memory at once (at most about this many)
 BUCKET_BITS = 16        # tag buckets counted: windows are whole buckets
 _BUCKET_SHIFT = np.uint64(64 - BUCKET_BITS)
 TAG_COLUMN = "__ldpt_row_tag"
+CHUNK_ROWS = 4096       # rows per record batch of a spilled run (the unit read back)
 MAX_OPEN_RUNS = 256     # runs whose files stay open from one window to the next (more: reopened)
 
 
@@ -151,7 +153,9 @@ def remove_spill(folder: Path | None) -> None:
 
 
 class RunWriter:
-    """Gathers privatized batches with their tags, sorts them into runs and spills full runs."""
+    """Gathers privatized batches with their tags, and sorts and spills every full run in a
+    background thread (at most one run in flight, so memory holds at most two runs) while the
+    caller privatizes the next batches (pyarrow and numpy release the GIL while they work)."""
 
     def __init__(self, schema: pa.Schema, folder: Path | None, prefix: str) -> None:
         self.schema = schema
@@ -161,6 +165,8 @@ class RunWriter:
         self._batches: list[pa.RecordBatch] = []
         self._tags: list[np.ndarray] = []
         self._rows = 0
+        self._pool: ThreadPoolExecutor | None = None
+        self._pending: Future | None = None
 
     def add(self, batch: pa.RecordBatch, tags: np.ndarray) -> None:
         if batch.num_rows == 0:
@@ -171,40 +177,63 @@ class RunWriter:
         if self._rows >= RUN_ROWS:
             self._spill()
 
-    def _sorted(self) -> tuple[pa.Table, np.ndarray]:
-        tags = np.concatenate(self._tags)
+    def _take(self) -> tuple[list[pa.RecordBatch], np.ndarray]:
+        batches, tags = self._batches, np.concatenate(self._tags)
+        self._batches, self._tags, self._rows = [], [], 0
+        self.out.hist += np.bincount((tags >> _BUCKET_SHIFT).astype(np.int64), minlength=1 << BUCKET_BITS)
+        return batches, tags
+
+    def _sorted(self, batches: list[pa.RecordBatch], tags: np.ndarray) -> tuple[pa.Table, np.ndarray]:
         order = tag_order(tags)
         # one contiguous copy first: a take from contiguous columns is faster than across chunks
-        table = pa.Table.from_batches(self._batches, schema=self.schema).combine_chunks().take(pa.array(order))
-        self._batches, self._tags, self._rows = [], [], 0
+        table = pa.Table.from_batches(batches, schema=self.schema).combine_chunks().take(pa.array(order))
         return table, tags[order]
 
-    def _count(self, tags: np.ndarray) -> None:
-        self.out.hist += np.bincount((tags >> _BUCKET_SHIFT).astype(np.int64), minlength=1 << BUCKET_BITS)
+    def _write(self, batches: list[pa.RecordBatch], tags: np.ndarray, run: Run) -> None:
+        table, sorted_tags = self._sorted(batches, tags)
+        table = table.append_column(self.tag, pa.array(sorted_tags, pa.uint64()))
+        assert run.path is not None
+        with pa.OSFile(run.path, "wb") as sink, pa.ipc.new_file(sink, table.schema) as w:
+            w.write_table(table, max_chunksize=CHUNK_ROWS)
+        run.firsts = np.ascontiguousarray(sorted_tags[::CHUNK_ROWS])
+
+    def _wait(self) -> None:
+        if self._pending is not None:
+            pending, self._pending = self._pending, None
+            pending.result()
 
     def _spill(self) -> None:
         if self.folder is None:
             raise AssertionError("a run to spill without a spill folder")
-        table, tags = self._sorted()
-        self._count(tags)
-        path = self.folder / f"{self.prefix}-{len(self.out.runs):06d}.arrow"
-        table = table.append_column(self.tag, pa.array(tags, pa.uint64()))
-        with pa.OSFile(str(path), "wb") as sink, pa.ipc.new_file(sink, table.schema) as w:
-            for batch in table.to_batches(max_chunksize=CHUNK_ROWS):
-                w.write_batch(batch)
-        self.out.runs.append(Run(rows=len(tags), path=str(path), firsts=np.ascontiguousarray(tags[::CHUNK_ROWS])))
+        batches, tags = self._take()
+        run = Run(rows=len(tags), path=str(self.folder / f"{self.prefix}-{len(self.out.runs):06d}.arrow"))
+        self.out.runs.append(run)
+        self._wait()
+        if self._pool is None:
+            self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="ldpt-spill")
+        self._pending = self._pool.submit(self._write, batches, tags, run)
 
     def finish(self, *, in_memory: bool) -> Runs:
         """The runs; the last one stays in memory when ``in_memory`` (and nothing was spilled
         before it, so that a small release never touches the disk) or else is spilled too."""
-        if self._rows:
-            if in_memory and not self.out.runs:
-                table, tags = self._sorted()
-                self._count(tags)
-                self.out.runs.append(Run(rows=len(tags), table=table, tags=tags))
-            else:
-                self._spill()
+        try:
+            if self._rows:
+                if in_memory and not self.out.runs:
+                    batches, tags = self._take()
+                    table, sorted_tags = self._sorted(batches, tags)
+                    self.out.runs.append(Run(rows=len(tags), table=table, tags=sorted_tags))
+                else:
+                    self._spill()
+            self._wait()
+        finally:
+            self.close()
         return self.out
+
+    def close(self) -> None:
+        """Stop the background thread (after its run is written, or failed)."""
+        if self._pool is not None:
+            self._pool.shutdown(wait=True)
+            self._pool = None
 
 
 @dataclass(frozen=True)
@@ -247,7 +276,9 @@ def _cut(tags: np.ndarray, lo: np.uint64, hi: np.uint64 | None) -> tuple[int, in
 def read_window(runs: Runs, w: Window, schema: pa.Schema, rebuild: frozenset[str] = frozenset()) -> pa.Table:
     """The rows of window ``w`` in extract order (by tag; equal tags by input row), with the
     dictionaries of the dictionary-encoded columns named in ``rebuild`` (public columns) rebuilt
-    from the window's own values."""
+    from the window's own values.  A spilled run is read only in its chunks that overlap the
+    window (plain reads into memory: no memory map, whose pages would count in the process's
+    memory in large blocks), its file opened once for all windows."""
     lo, hi = _bounds(w)
     tag = tag_name(schema)
     pieces: list[pa.Table] = []
@@ -281,8 +312,11 @@ def read_window(runs: Runs, w: Window, schema: pa.Schema, rebuild: frozenset[str
     if not pieces:
         return schema.empty_table()
     tags = np.concatenate(tag_parts)
-    order = tag_order(tags)
+    # the pieces are sorted runs in input-row order: a stable merge sort (numpy's timsort finds the
+    # runs) merges them in O(n log runs), equal tags in input-row order
+    order = np.argsort(tags, kind="stable")
     table = pa.concat_tables(pieces).combine_chunks().take(pa.array(order))
+    del pieces
     if table.num_rows != w.rows:
         raise AssertionError(f"window of tag buckets [{w.b0}, {w.b1}) read {table.num_rows} rows, not {w.rows}")
     cols = [rebuild_dictionary(table.column(i)) if f.name in rebuild and pa.types.is_dictionary(f.type)
