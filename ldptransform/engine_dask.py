@@ -225,28 +225,10 @@ def _spill_parts(client: Any, job: PartJob, src: Any, held: Any, spill: Path, fr
         futs = [client.submit(fragment_spill, job_f, ds.fs, frag, _mask_slice(held, frag.row0, frag.rows), str(spill),
                               pure=False) for frag in ds.fragments]
         return _gather(client, futs, staged, on_progress)
-    # CSV: read here in order, stretch by stretch, at most two stretches per worker in flight
-    limit = 2 * max(1, len(client.scheduler_info().get("workers", {})) or 1)
-    cutter = RowCutter(src.batches(job.read_cols, job.batch_rows))
-    pending: deque = deque()
-    out: list[Spilled] = []
-    row0 = 0
-    try:
-        while not cutter.exhausted():
-            batches = list(cutter.take(fragment_rows))
-            n = sum(b.num_rows for b in batches)
-            pending.append(client.submit(spill_rows, job_f, batches, row0, _mask_slice(held, row0, n), str(spill),
-                                         f"c{row0:012d}", in_memory=False, pure=False))
-            row0 += n
-            staged.check()
-            while len(pending) >= limit:
-                out.append(_one(pending.popleft(), on_progress))
-        while pending:
-            out.append(_one(pending.popleft(), on_progress))
-    except BaseException:
-        client.cancel(list(pending))
-        raise
-    return out
+    return _csv_stretches(  # CSV: read here in order
+        client, src, job, fragment_rows, staged, on_progress, at_least_one=False,
+        submit=lambda batches, row0, n, i: client.submit(spill_rows, job_f, batches, row0, _mask_slice(held, row0, n),
+                                                         str(spill), f"c{row0:012d}", in_memory=False, pure=False))
 
 
 def frame_spill(job: PartJob, pdf: Any, schema: pa.Schema, row0: int, held: Any, folder: str) -> Spilled:
@@ -276,33 +258,42 @@ def _gather(client: Any, futs: list[Any], staged: StagedFiles,
 
 def _csv_parts(client: Any, job: PartJob, src: Any, held: Any, folder: Path, fragment_rows: int,
                staged: StagedFiles, on_progress: Callable[[int], None] | None) -> list[PartResult]:
-    """CSV: read here, in order, part by part; each part is randomized and written by a worker.
-    At most two parts per worker are in flight, so the client's memory stays bounded."""
+    """CSV: read here, in order, part by part; each part is randomized and written by a worker."""
     job_f = client.scatter(job, broadcast=True)
+    return _csv_stretches(
+        client, src, job, fragment_rows, staged, on_progress, at_least_one=True,  # an empty CSV: one empty part
+        submit=lambda batches, row0, n, i: client.submit(write_part, job_f, batches, row0, _mask_slice(held, row0, n),
+                                                         folder / PART_NAME.format(i), pure=False))
+
+
+def _csv_stretches(client: Any, src: Any, job: PartJob, fragment_rows: int, staged: StagedFiles,
+                   on_progress: Callable[[int], None] | None, *, at_least_one: bool,
+                   submit: Callable[[list[pa.RecordBatch], int, int, int], Any]) -> list[Any]:
+    """Read a CSV here, in order, in stretches of ``fragment_rows`` rows; ``submit(batches, row0,
+    n, i)`` sends stretch i to a worker.  At most two stretches per worker are in flight, so the
+    client's memory stays bounded.  The workers' results, in order."""
     limit = 2 * max(1, len(client.scheduler_info().get("workers", {})) or 1)
     cutter = RowCutter(src.batches(job.read_cols, job.batch_rows))
     pending: deque = deque()
-    results: list[PartResult] = []
+    out: list[Any] = []
     row0 = 0
     try:
-        while True:
+        first = at_least_one
+        while first or not cutter.exhausted():
+            first = False
             batches = list(cutter.take(fragment_rows))
             n = sum(b.num_rows for b in batches)
-            i = len(results) + len(pending)
-            pending.append(client.submit(write_part, job_f, batches, row0, _mask_slice(held, row0, n),
-                                         folder / PART_NAME.format(i), pure=False))
+            pending.append(submit(batches, row0, n, len(out) + len(pending)))
             row0 += n
             staged.check()
             while len(pending) >= limit:
-                results.append(_one(pending.popleft(), on_progress))
-            if cutter.exhausted():
-                break
+                out.append(_one(pending.popleft(), on_progress))
         while pending:
-            results.append(_one(pending.popleft(), on_progress))
+            out.append(_one(pending.popleft(), on_progress))
     except BaseException:
         client.cancel(list(pending))
         raise
-    return results
+    return out
 
 
 def _one(fut: Any, on_progress: Callable[[int], None] | None) -> Any:

@@ -490,17 +490,22 @@ class BatchWriter:
             self._writer.close()
 
 
-def sha256_file(path: Path, chunk: int = 1 << 22) -> tuple[str, int]:
+def sha256_stream(f: Any, chunk: int = 1 << 22) -> tuple[str, int]:
+    """(SHA-256 hex digest, bytes) of what a readable binary stream holds, read in chunks."""
     h = hashlib.sha256()
     size = 0
-    with open(path, "rb") as f:
-        while True:
-            b = f.read(chunk)
-            if not b:
-                break
-            h.update(b)
-            size += len(b)
+    while True:
+        b = f.read(chunk)
+        if not b:
+            break
+        h.update(b)
+        size += len(b)
     return h.hexdigest(), size
+
+
+def sha256_file(path: Path, chunk: int = 1 << 22) -> tuple[str, int]:
+    with open(path, "rb") as f:
+        return sha256_stream(f, chunk)
 
 
 def write_text_atomic(path: Path, text: str, mode: int = 0o644) -> None:

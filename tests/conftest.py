@@ -199,6 +199,23 @@ def keyed_words(label: str, n: int, per_row: int, start: int = 0, *, key: Any = 
     return KeyedStream(key, nonce, stream, label).words(start, n, per_row)
 
 
+def assert_close_nested(a: Any, b: Any, path: str = "") -> None:
+    """Two results (dicts, lists, numbers) equal up to floating-point rounding of sums taken in
+    another order (relative 1e-9): what two engines adding the same parts give."""
+    if isinstance(a, dict):
+        assert a.keys() == b.keys(), path
+        for k in a:
+            assert_close_nested(a[k], b[k], f"{path}.{k}")
+    elif isinstance(a, list):
+        assert len(a) == len(b), path
+        for i, (x, y) in enumerate(zip(a, b)):
+            assert_close_nested(x, y, f"{path}[{i}]")
+    elif isinstance(a, float) and isinstance(b, float):
+        assert b == pytest.approx(a, rel=1e-9, abs=1e-12), path
+    else:
+        assert a == b, path
+
+
 def extract_order(key: Any, nonce: str, n: int) -> Any:
     """The steward's view of a shuffled extract (policy output.row_order: shuffled): row j of the
     extract is input row ``extract_order(...)[j]`` (the input rows sorted by their keyed tags)."""

@@ -24,7 +24,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from conftest import DEMO_CSV, FIXED_KEY_BYTES, survey_policy
+from conftest import assert_close_nested, DEMO_CSV, FIXED_KEY_BYTES, survey_policy
 from ldptransform import estimate, privatize
 from ldptransform.errors import UsageError
 from ldptransform.keys import SecretKey
@@ -202,23 +202,7 @@ def test_a_release_on_the_authenticated_cluster_equals_the_local_engines(dataset
     for d in (a, b):
         d.pop("extract", None)
         d.pop("extracts", None)
-    _close(a, b, "estimate")
-
-
-def _close(a: Any, b: Any, path: str) -> None:
-    """Equal, floats up to relative 1e-9 (the workers add the parts' sums in another order)."""
-    if isinstance(a, dict):
-        assert a.keys() == b.keys(), path
-        for k in a:
-            _close(a[k], b[k], f"{path}.{k}")
-    elif isinstance(a, list):
-        assert len(a) == len(b), path
-        for i, (x, y) in enumerate(zip(a, b)):
-            _close(x, y, f"{path}[{i}]")
-    elif isinstance(a, float) and isinstance(b, float):
-        assert b == pytest.approx(a, rel=1e-9, abs=1e-12), path
-    else:
-        assert a == b, path
+    assert_close_nested(a, b, "estimate")
 
 
 # -- a scheduler given with --scheduler ----------------------------------------------------------

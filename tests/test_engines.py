@@ -20,7 +20,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from conftest import DEMO_CSV, FIXED_KEY_BYTES, survey_policy, write_fixed_key, write_policy
+from conftest import assert_close_nested, DEMO_CSV, FIXED_KEY_BYTES, survey_policy, write_fixed_key, write_policy
 from ldptransform import estimate, privatize, validate
 from ldptransform.errors import InputFileError, LdptError, UsageError
 from ldptransform.keys import SecretKey
@@ -141,10 +141,12 @@ def test_dask_engine_writes_the_local_engines_parts_bit_for_bit(policy_fn, datas
     assert d_dsk["engine"] == "dask"
 
 
-def test_csv_input_with_the_dask_engine(tmp_path: Path, cluster: str) -> None:
+@pytest.mark.parametrize("policy_fn", [survey_policy, as_input_policy], ids=["shuffled", "rows-as-input"])
+def test_csv_input_with_the_dask_engine(policy_fn, tmp_path: Path, cluster: str) -> None:
     """CSV: read in order by the client (its counting pass), parts of --part-rows rows written
-    by the workers; the same parts as the local engine's."""
-    pol = parse_policy(survey_policy(), "survey.yaml")
+    by the workers (shuffled: the rows' sorted runs spilled by the workers, then the parts merged
+    from them); the same parts as the local engine's."""
+    pol = parse_policy(policy_fn(), "survey.yaml")
     privatize(DEMO_CSV, pol, KEY, tmp_path / "local", nonce=NONCE, fragment_rows=5000)
     dsk = privatize(DEMO_CSV, pol, KEY, tmp_path / "dask", nonce=NONCE, fragment_rows=5000, engine="dask",
                     scheduler=cluster)
@@ -198,22 +200,6 @@ def test_ledger_charges_are_the_same_with_either_engine(dataset: Path, tmp_path:
 
 # -- estimating and validating a dataset extract ----------------------------------------------------
 
-def _close(a, b, path="") -> None:
-    """Equal up to floating-point rounding of sums taken in another order (relative 1e-9)."""
-    if isinstance(a, dict):
-        assert a.keys() == b.keys(), path
-        for k in a:
-            _close(a[k], b[k], f"{path}.{k}")
-    elif isinstance(a, list):
-        assert len(a) == len(b), path
-        for i, (x, y) in enumerate(zip(a, b)):
-            _close(x, y, f"{path}[{i}]")
-    elif isinstance(a, float) and isinstance(b, float):
-        assert b == pytest.approx(a, rel=1e-9, abs=1e-12), path
-    else:
-        assert a == b, path
-
-
 def test_estimate_merges_the_parts_with_either_engine(dataset: Path, tmp_path: Path, cluster: str) -> None:
     pol = parse_policy(survey_policy(), "survey.yaml")
     privatize(dataset, pol, KEY, tmp_path / "ds", nonce=NONCE, fragment_rows=2000)
@@ -225,8 +211,8 @@ def test_estimate_merges_the_parts_with_either_engine(dataset: Path, tmp_path: P
     for d in (local, dsk, single):
         d.pop("extract", None)
         d.pop("extracts", None)
-    _close(single, local)
-    _close(single, dsk)
+    assert_close_nested(single, local)
+    assert_close_nested(single, dsk)
     with pytest.raises(UsageError, match="reads a Parquet dataset extract"):
         estimate(tmp_path / "one.parquet", engine="dask", scheduler=cluster)
 
@@ -347,7 +333,7 @@ def test_allow_partial_with_held_back_rows_writes_a_dataset_extract_of_every_row
     night2 = "0" * 31 + "2"  # the people of a.parquet are now past the budget, the others are not
     r = privatize(dataset, pol, KEY, tmp_path / "ds", nonce=night2, ledger_path=led, allow_partial=True,
                   fragment_rows=5000)
-    assert r.held_back_subjects > 0 and r.manifest.rows == 12000
+    assert r.held_back_subjects > 0 and r.manifest.rows == 12000 and r.manifest.extract.parts is not None
     assert [p.rows for p in r.manifest.extract.parts] == [5000, 5000, 2000]
     one = privatize(dataset, pol, KEY, tmp_path / "n2.parquet", nonce=night2, ledger_path=led2, allow_partial=True)
     assert one.held_back_subjects == r.held_back_subjects and one.manifest.rows == 12000

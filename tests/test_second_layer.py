@@ -141,7 +141,7 @@ def test_grr_composite_is_grr_at_the_stated_eps(eps1: float, eps2: float) -> Non
 
 @pytest.mark.parametrize("cls", [mech.OUE, mech.SUE])
 @pytest.mark.parametrize("eps1,eps2", [(1.0, 1.0), (2.5, 0.8)])
-def test_unary_composite_is_the_same_encoding_at_the_stated_eps(cls: type, eps1: float, eps2: float) -> None:
+def test_unary_composite_is_the_same_encoding_at_the_stated_eps(cls: Any, eps1: float, eps2: float) -> None:
     """The full channel over the 2^k bit vectors (k = 3): the permanent encoding's realized
     channel times the layer's (each bit kept w.p. r, else flipped), with fractions, is the unary
     encoding with p' = p r + (1-p)(1-r), q' = q r + (1-q)(1-r); the composite mechanism (same
@@ -232,10 +232,10 @@ def test_the_refusal_names_the_mechanisms_from_the_contract() -> None:
 # -- releases --------------------------------------------------------------------------------
 
 @pytest.fixture(scope="module")
-def nights(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
+def nights(tmp_path_factory: pytest.TempPathFactory) -> dict[Any, Any]:
     tmp = tmp_path_factory.mktemp("layer")
     df = people(20000)
-    out: dict[str, Any] = {"df": df}
+    out: dict[Any, Any] = {"df": df}
     for layer in (True, False):
         for nonce in (NIGHT_1, NIGHT_2):
             out[layer, nonce] = release(df, layered_policy(layer), tmp, nonce if layer else PLAIN[nonce],
@@ -243,7 +243,7 @@ def nights(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
     return out
 
 
-def test_frequencies_and_means_decode_unbiasedly(nights: dict[str, Any], tmp_path: Path) -> None:
+def test_frequencies_and_means_decode_unbiasedly(nights: dict[Any, Any], tmp_path: Path) -> None:
     """Each layered column decoded by its family decoder from the manifest's composite spec: every
     share within 4.5 SE of the truth, the mean too (20000 rows, fixed key and nonce)."""
     df = nights["df"]
@@ -262,7 +262,7 @@ def test_frequencies_and_means_decode_unbiasedly(nights: dict[str, Any], tmp_pat
     assert abs(z) < Z_LIMIT, (mean, z)
 
 
-def test_without_the_layer_reports_repeat_with_it_a_stated_share_differs(nights: dict[str, Any]) -> None:
+def test_without_the_layer_reports_repeat_with_it_a_stated_share_differs(nights: dict[Any, Any]) -> None:
     """Same people, same values, two nonces.  Without the layer every memoized report repeats
     exactly; with it the share of reports that differ matches the layer's formula within 4.5
     binomial SE: 1 - r^2 - (k-1) o^2 (grr, o each other category's probability),
@@ -289,7 +289,7 @@ def test_without_the_layer_reports_repeat_with_it_a_stated_share_differs(nights:
         print(f"{col}: {differ:.4f} of unchanged reports differ between releases (formula {want:.4f})")
 
 
-def test_manifest_states_both_layers_and_charges_the_composite(nights: dict[str, Any]) -> None:
+def test_manifest_states_both_layers_and_charges_the_composite(nights: dict[Any, Any]) -> None:
     _, man = nights[True, NIGHT_1]
     cols = {c["name"]: c for c in man["columns"]}
     total = 0.0
@@ -306,7 +306,7 @@ def test_manifest_states_both_layers_and_charges_the_composite(nights: dict[str,
     assert all("second_layer" not in c["mechanism"] for c in plain["columns"])
 
 
-def test_the_layer_keeps_the_permanent_reports(nights: dict[str, Any], tmp_path: Path) -> None:
+def test_the_layer_keeps_the_permanent_reports(nights: dict[Any, Any], tmp_path: Path) -> None:
     """The permanent layer is keyed as without the second layer (the memo context is the permanent
     spec), so adding a layer costs no new lifetime eps: re-randomizing the plain release's reports
     with the release's layer words gives the layered release exactly."""
@@ -338,15 +338,15 @@ def test_plan_predicts_the_composite_se_within_ten_percent() -> None:
     n, reps = 2000, 300
     rng = np.random.default_rng(3)  # invented input data only
     loaded = parse_policy(layered_policy(True, **{"budget": {"epsilon_per_row": 6.0}}), "layer.yaml")
-    predicted = {c.name: c.statistics[0].se for c in plan(loaded, n, simulate=False).columns}
+    predicted = {c.name: (c.statistics or ())[0].se for c in plan(loaded, n, simulate=False).columns}
     for rc in loaded.columns:
-        comp = rc.mechanism
-        assert comp is not None
-        perm = comp.permanent
+        comp: Any = rc.mechanism
+        assert comp is not None and rc.rerandomize_epsilon is not None
+        perm: Any = comp.permanent
         sq = []
         for rep in range(reps):
             if comp.family == "frequency":
-                x = rng.integers(0, perm.k, size=n)
+                x: Any = rng.integers(0, perm.k, size=n)
                 truth = np.full(perm.k, 1.0 / perm.k)
             else:
                 x = np.where(rng.integers(0, 2, size=n) == 0, perm.lo, perm.hi)
@@ -354,7 +354,7 @@ def test_plan_predicts_the_composite_se_within_ten_percent() -> None:
             w1 = KeyedStream(KEY, f"{rep:032x}", "perm", rc.name).words(0, n, perm.words_per_row)
             w2 = KeyedStream(KEY, f"{rep:032x}", "layer", rc.name).words(0, n, perm.second_layer_words_per_row)
             reports = perm.rerandomize(perm.randomize(x, w1), w2, rc.rerandomize_epsilon)
-            dec = comp.decoder()
+            dec: Any = comp.decoder()
             dec.add(reports)
             est = np.asarray(dec.estimates()[0] if comp.family == "frequency" else [dec.mean(1.96).estimate],
                              dtype=float)

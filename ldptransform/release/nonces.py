@@ -37,7 +37,7 @@ from pathlib import Path
 from typing import Any
 
 from ..errors import OptionError, UsageError
-from ..io import private_dir
+from ..io import private_dir, sha256_stream
 from ..keys import SecretKey
 from ..manifest import now_utc
 from ..policy import LoadedPolicy
@@ -73,18 +73,6 @@ class NonceUse:
     entry: dict[str, Any]
 
 
-def _sha256_stream(f: Any) -> tuple[str, int]:
-    h = hashlib.sha256()
-    size = 0
-    while True:
-        b = f.read(CHUNK_BYTES)
-        if not b:
-            break
-        h.update(b)
-        size += len(b)
-    return h.hexdigest(), size
-
-
 def input_digest(src: Any, opts: ReleaseOptions) -> dict[str, Any]:
     """The ``input`` entry of a release: kind and digest (None for a dask DataFrame)."""
     if opts.frame_input:
@@ -95,14 +83,14 @@ def input_digest(src: Any, opts: ReleaseOptions) -> dict[str, Any]:
         root = ds.root.rstrip("/")
         for path in ds.files:
             with ds.fs.open_input_stream(path) as f:
-                digest, size = _sha256_stream(f)
+                digest, size = sha256_stream(f, CHUNK_BYTES)
             files.append([path[len(root):].lstrip("/") if path.startswith(root) else path, digest, size])
         h = hashlib.sha256(_DATASET_LABEL)
         for name, digest, size in files:
             h.update(f"{name} {digest} {size}\n".encode())
         return {"kind": "dataset", "sha256": h.hexdigest(), "files": files}
     with open(src.path, "rb") as f:
-        digest, size = _sha256_stream(f)
+        digest, size = sha256_stream(f, CHUNK_BYTES)
     return {"kind": "file", "sha256": digest, "bytes": size}
 
 
