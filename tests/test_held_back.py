@@ -149,11 +149,11 @@ def test_the_extract_alone_tells_little_about_who_is_a_placeholder(nights: dict[
     # partner could score, and a held-back person's unchanged colour is their real report
     colour = n2["colour"].astype(str).to_numpy()
     p_real = pd.Series(people()["colour"]).value_counts(normalize=True).reindex(COLOURS).to_numpy()
-    e = np.e
+    ratio = float(np.exp(1.0))  # the column's eps is 1
     k = len(COLOURS)
-    q = (p_real * e + (1 - p_real)) / (e + k - 1)       # P(report = c) for real values (k-ary RR)
-    u = np.full(k, 1 / k)                               # placeholders: uniform values
-    q_u = (u * e + (1 - u)) / (e + k - 1)
+    q = (p_real * ratio + (1 - p_real)) / (ratio + k - 1)  # P(report = c) for real values (k-ary RR)
+    u = np.full(k, 1 / k)                                    # placeholders: uniform values
+    q_u = (u * ratio + (1 - u)) / (ratio + k - 1)
     score = pd.Series(colour).map(dict(zip(COLOURS, q_u / q, strict=True))).to_numpy()
     from scipy.stats import mannwhitneyu
 
