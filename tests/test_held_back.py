@@ -160,3 +160,14 @@ def test_the_extract_alone_tells_little_about_who_is_a_placeholder(nights: dict[
     auc = mannwhitneyu(score[held], score[~held]).statistic / (held.sum() * (~held).sum())
     print("placeholder-detection AUC from the extract alone:", auc)
     assert auc < 0.6
+
+
+def test_validate_does_not_call_a_release_with_placeholder_rows_wrong(nights: dict[str, Any]) -> None:
+    """The steward's re-derivation cannot replay the ledger that decided who was held back: for a
+    release with placeholder rows it says so (not checked) rather than "different values"."""
+    from ldptransform.validate import validate
+
+    tmp = nights["tmp"]
+    rep = validate(tmp / "night2.parquet", raw=tmp / "night2.csv", key=KEY)
+    check = {c.name: c for c in rep.checks}["reproduced"]
+    assert check.ok is None and "placeholder rows" in check.detail, check
