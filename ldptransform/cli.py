@@ -479,6 +479,8 @@ def policy_check(policy: Path = typer.Argument(..., help="Policy file to check."
             dom = "released in the clear (NOT protected)" if rc.type == "public" else "not released"
         mname = (m.name + (" (auto)" if rc.chosen_because else "")) if m else "-"
         memo = ("-" if not rc.memoize else f"yes (grid {rc.memo_grid})" if rc.memo_grid else "yes")
+        if rc.memoize and rc.rerandomize_epsilon is not None:
+            memo += f", second layer eps {rc.rerandomize_epsilon:g} (permanent eps {rc.permanent_epsilon:g})"
         t.add_row(escape(rc.name), rc.type, mname, f"{m.epsilon:g}" if m else "-", escape(dom),
                   *((memo,) if any_memo else ()))
     out_console.print(t)
@@ -494,6 +496,12 @@ def policy_check(policy: Path = typer.Argument(..., help="Policy file to check."
         out_console.print(f"budget.strategy sample: each row reports {pol.reported_columns} of its "
                           f"{len(pol.privatized_columns)} privatized columns (chosen by the keyed PRF, independent "
                           f"of the data) at eps {pol.sampled_epsilon:g} each", markup=False)
+    order = pol.output.row_order
+    people = ("one row per person, checked against subject_key" if pol.output.one_row_per_person and
+              pol.subject_key is not None else "one row per person, declared" if pol.output.one_row_per_person
+              else "rows per person not declared")
+    out_console.print(f"output: rows {order}" + ("" if order == "shuffled" else " (CAUTION: the input's order is "
+                      "released; a sorted input gives its sort column away)") + f"; {people}", markup=False)
     out_console.print(f"eps per row: {lp.epsilon_total:g} of the budget {lp.policy.budget.epsilon_per_row:g}")
 
 

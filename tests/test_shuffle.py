@@ -245,6 +245,9 @@ def test_the_cli_shows_the_row_order(tmp_path: Path, ldpt: Any) -> None:
             assert "input's order" in r.stderr
         else:
             assert "input's order" not in r.stderr
+        check = ldpt("policy", "check", pfile)
+        assert check.returncode == 0 and f"output: rows {order}" in check.stdout
+        assert ("CAUTION" in check.stdout) == (order == "as-input")
 
 
 def test_validate_reproduces_shuffled_releases_and_input_order_ones_from_before_the_shuffle(raw: Path,
