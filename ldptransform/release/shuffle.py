@@ -19,7 +19,8 @@ Memory stays bounded whatever the number of rows (an external sort in two passes
    bucket.  A release that fits in one run is never spilled.
 2. *Windows.*  The histogram cuts the tag range into windows of at most about ``WINDOW_ROWS``
    rows (whole buckets); every window is read from every run (only the chunks that overlap it),
-   merged by a sort on the tag, and written out.  A window's rows are known exactly
+   merged by a sort on the tag (in a background thread, one window ahead of the writer), and
+   written out.  A window's rows are known exactly
    in advance, so a dataset's parts (``fragment_rows`` rows each, by rank) can be written by
    different workers (``write_ranks``), byte for byte as in one pass.
 
@@ -47,7 +48,7 @@ from .kernel import rebuild_dictionary
 
 ROW_ORDER_PURPOSE = "row-order"
 RUN_ROWS = 1 << 18      # rows gathered, sorted and spilled together
-WINDOW_ROWS = 1 << 18   # rows merged in memory at once (at most about this many)
+WINDOW_ROWS = 1 << 17   # rows merged in memory at once (at most about this many)
 BUCKET_BITS = 16        # tag buckets counted: windows are whole buckets
 _BUCKET_SHIFT = np.uint64(64 - BUCKET_BITS)
 TAG_COLUMN = "__ldpt_row_tag"
@@ -326,15 +327,21 @@ def read_window(runs: Runs, w: Window, schema: pa.Schema, rebuild: frozenset[str
 
 def write_ranks(runs: Runs, wins: list[Window], schema: pa.Schema, start: int, stop: int,
                 rebuild: frozenset[str] = frozenset()) -> Iterator[pa.RecordBatch]:
-    """The extract's rows of ranks [start, stop), in order, window by window."""
+    """The extract's rows of ranks [start, stop), in order, window by window.  The next window is
+    read and merged in a background thread while the caller writes the current one."""
+    todo = [w for w in wins if w.rank0 + w.rows > start and w.rank0 < stop and w.rows > 0]
+    pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="ldpt-merge")
     try:
-        for w in wins:
-            if w.rank0 + w.rows <= start or w.rank0 >= stop or w.rows == 0:
-                continue
-            table = read_window(runs, w, schema, rebuild)
+        nxt: Future | None = pool.submit(read_window, runs, todo[0], schema, rebuild) if todo else None
+        for i, w in enumerate(todo):
+            assert nxt is not None
+            table = nxt.result()
+            nxt = pool.submit(read_window, runs, todo[i + 1], schema, rebuild) if i + 1 < len(todo) else None
             s, e = max(start, w.rank0) - w.rank0, min(stop, w.rank0 + w.rows) - w.rank0
             yield from table.slice(s, e - s).to_batches()
+            del table
     finally:
+        pool.shutdown(wait=True, cancel_futures=True)
         runs.close()
 
 
