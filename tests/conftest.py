@@ -79,6 +79,20 @@ def partials(folder: Path) -> list[str]:
     return [n for n in listing(folder) if ".ldpt-partial-" in n]
 
 
+TEST_DEADLINE_SECONDS = 900  # no test may hang CI: past this, its worker prints every thread's stack and exits
+
+
+@pytest.fixture(autouse=True)
+def _deadline() -> Any:
+    """A test still running after TEST_DEADLINE_SECONDS dumps the stacks of all its threads and
+    ends its process (the run then reports that test as crashed instead of waiting forever)."""
+    import faulthandler
+
+    faulthandler.dump_traceback_later(TEST_DEADLINE_SECONDS, exit=True)
+    yield
+    faulthandler.cancel_dump_traceback_later()
+
+
 @pytest.fixture(autouse=True)
 def private_dir(tmp_path_factory: pytest.TempPathFactory, monkeypatch: pytest.MonkeyPatch) -> Path:
     """A fresh steward-private folder for this test, also for in-process calls."""
