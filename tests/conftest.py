@@ -318,3 +318,20 @@ def pytest_collection_modifyitems(config: pytest.Config, items: list[pytest.Item
     rest of the suite while they run, so the longest test does not come last and stretch the
     run.  Order within each group is kept (every test is independent of order)."""
     items.sort(key=lambda item: item.get_closest_marker("slow") is None)
+
+
+def assert_policy_refused(ldpt: Any, tmp_path: Path, private_dir: Path, policy: dict[str, Any], raw: Any,
+                          names: list[str]) -> None:
+    """``ldpt privatize`` under a bad ``policy`` (a dict) on the table ``raw`` (a DataFrame): exit 2
+    with one paragraph naming ``names``, and nothing written, neither beside the policy nor in the
+    private folder."""
+    work = tmp_path / "work"
+    work.mkdir()
+    raw_path = tmp_path / "people.csv"
+    raw.to_csv(raw_path, index=False)
+    pol = write_policy(work / "bad_policy.yaml", policy)
+    key = write_fixed_key(tmp_path / "release.key")
+    before = listing(work)
+    res = ldpt("privatize", raw_path, "--policy", pol, "--key", key, "--out", work / "extract.parquet")
+    assert_user_error(res, names)
+    assert listing(work) == before and partials(work) == [] and listing(private_dir) == []

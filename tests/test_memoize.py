@@ -16,7 +16,6 @@ standard errors; chi-square p-value above 1e-6).
 from __future__ import annotations
 
 import json
-import subprocess
 from pathlib import Path
 from typing import Any
 
@@ -26,7 +25,7 @@ import pytest
 from cryptography.hazmat.primitives.ciphers import Cipher, algorithms, modes
 from scipy import stats
 
-from conftest import assert_user_error, listing, partials, write_fixed_key, write_policy
+from conftest import assert_policy_refused
 from ldptransform.keys import SecretKey
 from ldptransform.random import SubjectPRF
 from ldptransform.policy import parse_policy
@@ -334,17 +333,7 @@ def test_bad_memo_policies_are_refused(case: str, tmp_path: Path, private_dir: P
     edit, names = BAD[case]
     p = policy()
     edit(p)
-    work = tmp_path / "work"
-    work.mkdir()
-    raw = tmp_path / "people.csv"
-    people(50).to_csv(raw, index=False)
-    pol = write_policy(work / "bad_policy.yaml", p)
-    key = write_fixed_key(tmp_path / "release.key")
-    before = listing(work)
-    res: subprocess.CompletedProcess = ldpt("privatize", raw, "--policy", pol, "--key", key,
-                                            "--out", work / "extract.parquet")
-    assert_user_error(res, names)
-    assert listing(work) == before and partials(work) == [] and listing(private_dir) == []
+    assert_policy_refused(ldpt, tmp_path, private_dir, p, people(50), names)
 
 
 def test_missing_subject_values_are_refused(tmp_path: Path) -> None:

@@ -16,7 +16,6 @@ from __future__ import annotations
 
 import json
 import math
-import subprocess
 from fractions import Fraction
 from pathlib import Path
 from typing import Any
@@ -25,7 +24,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from conftest import assert_user_error, listing, partials, write_fixed_key, write_policy
+from conftest import assert_policy_refused
 from ldptransform import estimate, mechanisms as mech
 from ldptransform.errors import PolicyError
 from ldptransform.keys import SecretKey
@@ -395,17 +394,7 @@ def test_bad_layer_policies_are_refused(case: str, tmp_path: Path, private_dir: 
     edit, names = BAD[case]
     p = layered_policy(True)
     edit(p)
-    work = tmp_path / "work"
-    work.mkdir()
-    raw = tmp_path / "people.csv"
-    people(50).to_csv(raw, index=False)
-    pol = write_policy(work / "bad_policy.yaml", p)
-    key = write_fixed_key(tmp_path / "release.key")
-    before = listing(work)
-    res: subprocess.CompletedProcess = ldpt("privatize", raw, "--policy", pol, "--key", key,
-                                            "--out", work / "extract.parquet")
-    assert_user_error(res, names)
-    assert listing(work) == before and partials(work) == [] and listing(private_dir) == []
+    assert_policy_refused(ldpt, tmp_path, private_dir, p, people(50), names)
 
 
 def test_the_composite_budget_admits_what_the_declared_eps_would_not() -> None:
