@@ -281,7 +281,15 @@ class Mechanism(ABC):
         certified lower bound of e^eps (``random.variates.exp_lower_bound``; docs/formulas.md
         section 10.4).  For a composite with a second layer (``second_layer_of``): the exact ratio
         of the channel through both layers.  None for the other mechanisms, whose check is
-        ``max_log_ratio``."""
+        ``max_log_ratio``.  Samplers give their own channel's ratio in ``_threshold_ratio``; the
+        composite case is handled here once."""
+        if self.second_layer_of is not None:
+            permanent, epsilon2 = self.second_layer_of
+            return permanent.second_layer_ratio(epsilon2)
+        return self._threshold_ratio()
+
+    def _threshold_ratio(self) -> Fraction | None:
+        """The exact worst ratio of this sampler's own integer thresholds (None: not such a sampler)."""
         return None
 
     def describe(self) -> str:
@@ -353,6 +361,11 @@ class Mechanism(ABC):
         """The second layer: this mechanism's (permanent) ``reports``, as ``randomize`` wrote them,
         re-randomized at eps ``epsilon2`` with ``words`` of shape (n, second_layer_words_per_row);
         returns the composite's reports (same fields)."""
+        raise NotImplementedError(self.second_layer_refusal)
+
+    def second_layer_ratio(self, epsilon2: float) -> Fraction:
+        """The exact worst likelihood ratio of this mechanism followed by a second layer at
+        ``epsilon2`` (mechanisms that support a second layer)."""
         raise NotImplementedError(self.second_layer_refusal)
 
     def composite_epsilon(self, epsilon2: float) -> float:

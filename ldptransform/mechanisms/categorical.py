@@ -224,14 +224,6 @@ class GRR(FrequencyOracle):
         Tp, Tq = self.thresholds
         return Fraction(max(Tp, Tq), min(Tp, Tq))
 
-    def realized_ratio(self) -> Fraction | None:
-        # a composite (second layer) samples through both layers: their exact composite ratio
-        if self.second_layer_of is not None:
-            permanent, epsilon2 = self.second_layer_of
-            assert isinstance(permanent, GRR)
-            return permanent.second_layer_ratio(epsilon2)
-        return self._threshold_ratio()
-
     @property
     def p_star(self) -> float:
         return self.thresholds[0] / MASS_ONE
@@ -354,14 +346,6 @@ class _UnaryEncoding(FrequencyOracle):
         W = THRESHOLD_ONE
         r = [Fraction(Tp, Tq), Fraction(W - Tp, W - Tq)]
         return max(r) * max(1 / v for v in r)
-
-    def realized_ratio(self) -> Fraction | None:
-        # a composite (second layer) samples through both layers: their exact composite ratio
-        if self.second_layer_of is not None:
-            permanent, epsilon2 = self.second_layer_of
-            assert isinstance(permanent, _UnaryEncoding)
-            return permanent.second_layer_ratio(epsilon2)
-        return self._threshold_ratio()
 
     @property
     def p_star(self) -> float:

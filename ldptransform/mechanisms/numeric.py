@@ -240,13 +240,9 @@ class GridMechanism(MeanMechanism):
         return int((~ok | ~(np.nan_to_num(near, nan=np.inf) <= tol)).sum())
 
     # analysis --------------------------------------------------------------------
-    def realized_ratio(self) -> Fraction | None:
+    def _threshold_ratio(self) -> Fraction | None:
         """The exact worst ratio of the integer masses the sampler realizes (``masses_ratio``,
-        docs/formulas.md section 10.4); for a composite with a second layer, that of both layers."""
-        if self.second_layer_of is not None:
-            permanent, epsilon2 = self.second_layer_of
-            assert isinstance(permanent, TwoPoint)
-            return permanent.second_layer_ratio(epsilon2)
+        docs/formulas.md section 10.4); a composite's is the base class's (both layers)."""
         return masses_ratio(self._integer_channel)
 
     def max_log_ratio(self) -> float:
