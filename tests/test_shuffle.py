@@ -267,3 +267,51 @@ def test_validate_reproduces_shuffled_releases_and_input_order_ones_from_before_
     man_path.write_text(json.dumps(man))
     rep = validate(tmp_path / "old.parquet", man_path, raw=raw, key=KEY)
     assert {c.name: c.ok for c in rep.checks}["reproduced"] is True
+
+
+def test_external_sort_orders_by_full_tag_with_ties_in_input_order(tmp_path: Path,
+                                                                 monkeypatch: pytest.MonkeyPatch) -> None:
+    """Runs are only grouped by tag bucket (a radix sort); the windows sort by the full tag.
+    With many equal tags and equal buckets forced, spread over several spilled runs and windows,
+    the rows still come out as a stable sort of the tags (equal tags in input-row order)."""
+    monkeypatch.setattr(shuffle, "RUN_ROWS", 500)
+    rng = np.random.default_rng(5)
+    n = 3000
+    # few distinct buckets and many exact duplicates, so ties occur within and across runs
+    top = rng.integers(0, 4, n).astype(np.uint64) << np.uint64(62)
+    tags = top | rng.integers(0, 50, n).astype(np.uint64)
+    schema = pa.schema([pa.field("row", pa.int64()), pa.field("s", pa.string())])
+    writer = shuffle.RunWriter(schema, tmp_path, "t")
+    for s in range(0, n, 170):
+        e = min(n, s + 170)
+        batch = pa.record_batch([pa.array(np.arange(s, e)), pa.array([f"r{i}" for i in range(s, e)])], schema=schema)
+        writer.add(batch, tags[s:e])
+    runs = writer.finish(in_memory=False)
+    assert len(runs.runs) >= 6
+    wins = shuffle.windows(runs, target=400)
+    assert len(wins) >= 4
+    got = pa.concat_tables([shuffle.read_window(runs, w, schema) for w in wins])
+    runs.close()
+    expected = np.argsort(tags, kind="stable")
+    np.testing.assert_array_equal(got.column("row").to_numpy(), expected)
+    assert got.column("s").to_pylist() == [f"r{i}" for i in expected]
+
+
+def test_window_cut_finds_rows_of_a_bucket_whatever_their_order_inside_it(tmp_path: Path,
+                                                                         monkeypatch: pytest.MonkeyPatch) -> None:
+    """A chunk that starts exactly at a bucket's first tag, after a chunk that starts later
+    inside the same bucket (runs are only grouped by bucket): the window still reads both."""
+    monkeypatch.setattr(shuffle, "CHUNK_ROWS", 4)
+    b = np.uint64(7) << shuffle._BUCKET_SHIFT
+    # one run of bucket 7 rows and then bucket 8: its chunks start at b + 9, at b exactly, at bucket 8
+    tags = np.concatenate([b + np.array([9, 5, 6, 7, 0, 1, 2, 3], dtype=np.uint64),
+                           (np.uint64(8) << shuffle._BUCKET_SHIFT) + np.array([4, 1, 3, 2], dtype=np.uint64)])
+    schema = pa.schema([pa.field("row", pa.int64())])
+    writer = shuffle.RunWriter(schema, tmp_path, "c")
+    monkeypatch.setattr(shuffle, "RUN_ROWS", len(tags))
+    writer.add(pa.record_batch([pa.array(np.arange(len(tags)))], schema=schema), tags)
+    runs = writer.finish(in_memory=False)
+    got = np.concatenate([shuffle.read_window(runs, w, schema).column("row").to_numpy()
+                          for w in shuffle.windows(runs, target=1)])
+    runs.close()
+    np.testing.assert_array_equal(got, np.argsort(tags, kind="stable"))

@@ -12,14 +12,16 @@ learns nothing about which input row a report came from (only the steward can re
 Memory stays bounded whatever the number of rows (an external sort in two passes):
 
 1. *Runs.*  Privatized batches are gathered into runs of at most ``RUN_ROWS`` rows; each run is
-   sorted by tag and spilled (in a background thread) to an Arrow IPC file in a private staging
+   grouped by tag bucket (a stable radix sort of the tags' top ``BUCKET_BITS`` bits, several
+   times cheaper than a full sort and all a window cut needs) and spilled (in a background
+   thread) to an Arrow IPC file in a private staging
    folder (mode 0700: with the tags and the run order it would undo the shuffle), its tags in a
    last column, in record batches of ``CHUNK_ROWS`` rows whose first tags are kept in memory.
    A histogram of the tags' top ``BUCKET_BITS`` bits counts the rows of every tag
    bucket.  A release that fits in one run is never spilled.
 2. *Windows.*  The histogram cuts the tag range into windows of at most about ``WINDOW_ROWS``
    rows (whole buckets); every window is read from every run (only the chunks that overlap it),
-   merged by a sort on the tag (in a background thread, one window ahead of the writer), and
+   sorted by the full tag (in a background thread, one window ahead of the writer), and
    written out.  A window's rows are known exactly
    in advance, so a dataset's parts (``fragment_rows`` rows each, by rank) can be written by
    different workers (``write_ranks``), byte for byte as in one pass.
@@ -47,7 +49,7 @@ from ..random.bits import KeyedStream
 from .kernel import rebuild_dictionary
 
 ROW_ORDER_PURPOSE = "row-order"
-RUN_ROWS = 1 << 18      # rows gathered, sorted and spilled together
+RUN_ROWS = 1 << 18      # rows gathered, grouped by bucket and spilled together
 WINDOW_ROWS = 1 << 17   # rows merged in memory at once (at most about this many)
 BUCKET_BITS = 16        # tag buckets counted: windows are whole buckets
 _BUCKET_SHIFT = np.uint64(64 - BUCKET_BITS)
@@ -85,9 +87,17 @@ def tag_order(tags: np.ndarray) -> np.ndarray:
     return order
 
 
+def bucket_order(tags: np.ndarray) -> np.ndarray:
+    """The order of rows by tag bucket (the top BUCKET_BITS bits), equal buckets in their given
+    order: a stable sort of 16-bit keys, which numpy does as a radix sort in linear time.  Enough
+    for a run: a window is whole buckets, and read_window sorts its rows by the full tag."""
+    return np.argsort((tags >> _BUCKET_SHIFT).astype(np.uint16), kind="stable")
+
+
 @dataclass
 class Run:
-    """One sorted run: spilled (``path``, the first tag of every chunk) or kept in memory."""
+    """One run, its rows grouped by tag bucket: spilled (``path``, the first tag of every chunk)
+    or kept in memory."""
 
     rows: int
     path: str | None = None
@@ -119,7 +129,7 @@ class Run:
 
 @dataclass
 class Runs:
-    """What the first pass leaves: the sorted runs in input-row order and the tag histogram."""
+    """What the first pass leaves: the runs in input-row order and the tag histogram."""
 
     runs: list[Run] = field(default_factory=list)
     hist: np.ndarray = field(default_factory=lambda: np.zeros(1 << BUCKET_BITS, dtype=np.int64))
@@ -154,7 +164,7 @@ def remove_spill(folder: Path | None) -> None:
 
 
 class RunWriter:
-    """Gathers privatized batches with their tags, and sorts and spills every full run in a
+    """Gathers privatized batches with their tags, and groups by bucket and spills every full run in a
     background thread (at most one run in flight, so memory holds at most two runs) while the
     caller privatizes the next batches (pyarrow and numpy release the GIL while they work)."""
 
@@ -185,9 +195,8 @@ class RunWriter:
         return batches, tags
 
     def _sorted(self, batches: list[pa.RecordBatch], tags: np.ndarray) -> tuple[pa.Table, np.ndarray]:
-        order = tag_order(tags)
-        # one contiguous copy first: a take from contiguous columns is faster than across chunks
-        table = pa.Table.from_batches(batches, schema=self.schema).combine_chunks().take(pa.array(order))
+        order = bucket_order(tags)
+        table = pa.Table.from_batches(batches, schema=self.schema).take(pa.array(order))
         return table, tags[order]
 
     def _write(self, batches: list[pa.RecordBatch], tags: np.ndarray, run: Run) -> None:
@@ -269,6 +278,8 @@ def _bounds(w: Window) -> tuple[np.uint64, np.uint64 | None]:
 
 
 def _cut(tags: np.ndarray, lo: np.uint64, hi: np.uint64 | None) -> tuple[int, int]:
+    # tags grouped by bucket and lo, hi bucket starts: "tag < lo" is "bucket < b0", which never
+    # goes from false back to true along the array, so a binary search finds the cut exactly
     s = int(np.searchsorted(tags, lo, side="left"))
     e = len(tags) if hi is None else int(np.searchsorted(tags, hi, side="left"))
     return s, e
@@ -293,8 +304,12 @@ def read_window(runs: Runs, w: Window, schema: pa.Schema, rebuild: frozenset[str
                 tag_parts.append(run.tags[s:e])
             continue
         assert run.path is not None and run.firsts is not None
-        i0 = max(0, int(np.searchsorted(run.firsts, lo, side="right")) - 1)
-        i1 = len(run.firsts) if hi is None else int(np.searchsorted(run.firsts, hi, side="left"))
+        # chunks are in bucket order (not tag order within a bucket): cut by the first rows' buckets.
+        # Rows of bucket b0 start in the chunk before the first chunk that starts at b0 or later
+        # (or at that chunk's start); none is left from the first chunk that starts at b1 or later.
+        first_buckets = run.firsts >> _BUCKET_SHIFT
+        i0 = max(0, int(np.searchsorted(first_buckets, np.uint64(w.b0), side="left")) - 1)
+        i1 = len(run.firsts) if hi is None else int(np.searchsorted(first_buckets, np.uint64(w.b1), side="left"))
         if i1 <= i0:
             continue
         reader = run.reader()
@@ -313,10 +328,10 @@ def read_window(runs: Runs, w: Window, schema: pa.Schema, rebuild: frozenset[str
     if not pieces:
         return schema.empty_table()
     tags = np.concatenate(tag_parts)
-    # the pieces are sorted runs in input-row order: a stable merge sort (numpy's timsort finds the
-    # runs) merges them in O(n log runs), equal tags in input-row order
-    order = np.argsort(tags, kind="stable")
-    table = pa.concat_tables(pieces).combine_chunks().take(pa.array(order))
+    # the pieces are in input-row order (runs in order, each grouped by bucket with equal buckets
+    # in input order): sorting by the full tag puts equal tags in input-row order
+    order = tag_order(tags)
+    table = pa.concat_tables(pieces).take(pa.array(order))
     del pieces
     if table.num_rows != w.rows:
         raise AssertionError(f"window of tag buckets [{w.b0}, {w.b1}) read {table.num_rows} rows, not {w.rows}")
