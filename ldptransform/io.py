@@ -19,7 +19,9 @@ import secrets
 import shutil
 import signal
 import stat
+import threading
 from collections.abc import Callable, Iterator
+from queue import Empty, Full, Queue
 from concurrent.futures import Future, ThreadPoolExecutor
 from pathlib import Path
 from typing import Any, Literal
@@ -136,7 +138,12 @@ class TableSource:
         """
         if batch_rows < 1:
             raise UsageError("--batch-rows must be a positive number of rows")
-        return _rebatch(self._raw_batches(columns, batch_rows, csv_types or {}, dictionary or []), batch_rows)
+        batches = _rebatch(self._raw_batches(columns, batch_rows, csv_types or {}, dictionary or []), batch_rows)
+        # Parquet is read one batch ahead in a thread (decoding overlaps the caller's work).  Not
+        # CSV: its streaming reader already parses blocks ahead in its own threads, and reading
+        # ahead on top of it raised the peak memory of a CSV release with the rows (measured:
+        # 1.13x -> 1.29x from 200,000 to 2,000,000 rows)
+        return prefetched(batches) if self.format == "parquet" else batches
 
     def dictionary_columns(self, names: list[str]) -> list[str]:
         """Those of ``names`` that a Parquet input stores as text (the ones read_dictionary applies to)."""
@@ -185,6 +192,75 @@ def _clean_arrow_message(err: Exception) -> str:
     msg = re.sub(r":\s*'[^']*'.*$", "", msg)
     msg = re.sub(r"\"[^\"]{20,}\"", "<...>", msg)
     return msg[:200]
+
+
+class _Failed:
+    def __init__(self, err: BaseException) -> None:
+        self.err = err
+
+
+_DONE = object()
+
+
+class _ReadAhead:
+    """The background half of ``prefetched``: reads the source into a bounded queue."""
+
+    def __init__(self, source: Iterator[Any], depth: int) -> None:
+        self.source = source
+        self.queue: Queue[Any] = Queue(maxsize=depth)
+        self.stop = threading.Event()
+        self.thread = threading.Thread(target=self._read, name="ldpt-reader", daemon=True)
+        self.thread.start()
+
+    def _put(self, item: Any) -> bool:
+        while not self.stop.is_set():
+            try:
+                self.queue.put(item, timeout=0.05)
+                return True
+            except Full:
+                continue
+        return False
+
+    def _read(self) -> None:
+        try:
+            for item in self.source:
+                if not self._put(item):
+                    return
+            self._put(_DONE)
+        except BaseException as err:  # handed to the caller, which raises it
+            self._put(_Failed(err))
+        finally:
+            close = getattr(self.source, "close", None)
+            if close is not None:
+                close()
+
+    def get(self) -> Any:
+        while True:
+            try:
+                return self.queue.get(timeout=0.5)
+            except Empty:
+                if not self.thread.is_alive() and self.queue.empty():
+                    raise AssertionError("the input reader stopped without a word (a bug)") from None
+
+    def close(self) -> None:
+        self.stop.set()
+        self.thread.join()
+
+
+def prefetched(source: Iterator[Any], depth: int = 1) -> Iterator[Any]:
+    """``source``'s items, read ahead in a background thread (at most ``depth`` items waiting),
+    so that reading and decoding the next batch overlaps the caller's work on this one (pyarrow
+    releases the GIL while it reads).  An error of the source is raised here, to the caller, as
+    it was raised; a caller that stops early (or is closed) stops the reader, which closes the
+    source, before this generator returns."""
+    ahead = _ReadAhead(source, depth)
+    try:
+        while (item := ahead.get()) is not _DONE:
+            if isinstance(item, _Failed):
+                raise item.err
+            yield item
+    finally:
+        ahead.close()
 
 
 def _concat(parts: list[pa.RecordBatch]) -> pa.RecordBatch:

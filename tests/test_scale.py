@@ -10,6 +10,7 @@ from __future__ import annotations
 import csv
 import hashlib
 import importlib.util
+import threading
 import os
 import subprocess
 import sys
@@ -184,3 +185,41 @@ def test_rebatch_cuts_exact_batches_in_order() -> None:
             table = pa.Table.from_batches(out)
             assert table.column("n").to_pylist() == list(range(total))
             assert table.column("s").to_pylist() == [f"v{v}" for v in range(total)]
+
+
+def test_prefetched_reads_ahead_in_order_raises_the_source_error_and_stops_early() -> None:
+    """The read-ahead thread: same items in the same order; the source's own error reaches the
+    caller as raised; a caller that stops early stops the reader and the source is closed."""
+    from ldptransform.errors import DataError
+    from ldptransform.io import prefetched
+
+    assert list(prefetched(iter(range(1000)))) == list(range(1000))
+
+    def failing():
+        yield 1
+        yield 2
+        raise DataError("input file x.csv could not be read after data row 2")
+
+    got = []
+    with pytest.raises(DataError, match="after data row 2"):
+        for item in prefetched(failing()):
+            got.append(item)
+    assert got == [1, 2]
+
+    closed = []
+
+    def endless():
+        try:
+            i = 0
+            while True:
+                yield i
+                i += 1
+        finally:
+            closed.append(True)
+
+    before = {t for t in threading.enumerate() if t.name == "ldpt-reader"}
+    gen = prefetched(endless(), depth=2)
+    assert [next(gen) for _ in range(5)] == [0, 1, 2, 3, 4]
+    gen.close()  # type: ignore[attr-defined]
+    assert closed == [True]
+    assert {t for t in threading.enumerate() if t.name == "ldpt-reader"} <= before
