@@ -6,12 +6,24 @@ CDF, quantiles, range shares and the mean, and gives intervals for quantiles and
 shares whose construction is stated in each ``Interval.method``.  Three sources make one:
 
 * ``hierarchy`` reports (``mechanisms.distribution.Hierarchy``): unbiased, consistent leaf
-  shares with their exact covariance matrix (``cov``).  Range shares get estimate +- z SE;
-  quantile intervals invert the CDF test: {x : |F(x) - q| <= z se(F(x))}.
+  shares with their exact covariance matrix (``cov``).
+* a numeric column released with ``bins:`` through a frequency oracle:
+  ``binned_distribution`` (unbiased bin shares and their covariance, or the SE of each prefix
+  sum).
 * ``square-wave`` reports (``mechanisms.distribution.SquareWave``): a smoothed, non-negative
   EMS reconstruction; intervals by parametric bootstrap (``replicates``).
-* a numeric column released with ``bins:`` through a frequency oracle:
-  ``binned_distribution`` (cumulative frequency estimates and the SE of each prefix sum).
+
+The first two estimate the share of rows in each bucket and nothing about where the rows sit
+inside a bucket (``within="unknown"``, the default).  Their intervals hold whatever that shape
+is: the CDF is unbiased at the bucket edges only, so a quantile's interval runs from the last
+edge whose CDF is significantly below q to the first edge whose CDF is significantly above it,
+a range share's interval from the lower bound of the buckets inside the range to the upper bound
+of the buckets it touches, and the mean's from the mean with every row at its bucket's lower
+edge to the mean with every row at its upper edge (each bound +- z SE, exact from ``cov``).
+The point estimates read the histogram linearly within buckets.  Reading the CDF linearly
+within buckets for the intervals too (``within="linear"``: the test inversion
+{x : |F(x) - q| <= z se(F(x))}) assumes rows spread evenly inside each bucket, which skewed,
+spiky and discrete columns break: its intervals then miss the truth far more often than stated.
 
 Estimates from the unbiased routes may be negative in some buckets, so the estimated CDF need
 not be monotone.  Quantiles are read off its monotone rearrangement: the q-quantile is
@@ -146,6 +158,10 @@ class Distribution:
         Bootstrap replicates of ``mass`` (computed on first use, then kept).
     replicate_method : str
         How the replicates were made (for the method string of bootstrap intervals).
+    within : {"unknown", "linear"}
+        What is known of the rows inside a bucket: "unknown" (default; the intervals reach the
+        bucket edges, valid for any shape) or "linear" (spread evenly: intervals read the CDF
+        linearly within buckets, valid only if that holds).  Bootstrap intervals ignore it.
     bootstrap_interval : {"bias-aware", "percentile", "basic"}
         Interval read off the replicates: "bias-aware" (default) is the union of the
         percentile interval and the same interval shifted by -2 x the bootstrap bias estimate
@@ -158,7 +174,8 @@ class Distribution:
                  cov: np.ndarray | None = None, cdf_se: np.ndarray | None = None,
                  centers: np.ndarray | None = None,
                  replicates: Callable[[], np.ndarray] | np.ndarray | None = None,
-                 replicate_method: str = "", bootstrap_interval: str = "bias-aware") -> None:
+                 replicate_method: str = "", bootstrap_interval: str = "bias-aware",
+                 within: str = "unknown") -> None:
         self.edges = np.asarray(edges, dtype=float)
         self.mass = np.asarray(mass, dtype=float)
         K = self.mass.shape[0]
@@ -178,6 +195,9 @@ class Distribution:
         if bootstrap_interval not in ("bias-aware", "percentile", "basic"):
             raise ValueError("bootstrap_interval must be 'bias-aware', 'percentile' or 'basic'")
         self.bootstrap_interval = bootstrap_interval
+        if within not in ("unknown", "linear"):
+            raise ValueError("within must be 'unknown' or 'linear'")
+        self.within = within
         self._F = _cum(self.mass)
 
     # -- basic answers --------------------------------------------------------------------
@@ -301,6 +321,30 @@ class Distribution:
         return f"parametric bootstrap, {kind}; {self.replicate_method}"
 
     # -- intervals --------------------------------------------------------------------------
+    def _edge_index(self, x: float) -> int | None:
+        """Index of the edge at x (or of the bound x lies beyond); None inside a bucket."""
+        if x <= self.lo:
+            return 0
+        if x >= self.hi:
+            return len(self.edges) - 1
+        hit = np.flatnonzero(np.abs(self.edges - x) <= 1e-12 * (self.hi - self.lo))
+        return int(hit[0]) if hit.size else None
+
+    def _edge_se(self) -> np.ndarray | None:
+        """SE of the CDF at every edge (K+1 values), or None for a bootstrap-only distribution."""
+        if self.cov is not None:
+            P = np.cumsum(np.cumsum(self.cov, axis=0), axis=1)
+            return np.concatenate([[0.0], np.sqrt(np.maximum(np.diag(P), 0.0))])
+        return self.cdf_se_edges
+
+    def _edges_range_se(self, i: int, j: int) -> float:
+        """SE of the share between edges i <= j (exact from ``cov``, else bounded)."""
+        if i >= j:
+            return 0.0
+        se, _ = self._range_se(float(self.edges[i]), float(self.edges[j]))
+        assert se is not None
+        return se
+
     def range_ci(self, a: float, b: float, confidence: float = 0.95) -> Interval:
         """Share of rows in [a, b) with a confidence interval."""
         _check_range(a, b)
@@ -313,7 +357,25 @@ class Distribution:
             how = ("exact SE from the covariance of the bucket estimates" if kind == "exact" else
                    "SE bounded from the SEs of the cumulative shares at the edges: their sum for a range "
                    "inside the bounds, interpolated within a bucket (conservative)")
-            partial = not (self._on_edge(a) and self._on_edge(b))
+            ia, ib = self._edge_index(a), self._edge_index(b)
+            if self.within == "unknown" and (ia is None or ib is None):
+                e = self.edges
+                K = len(self.mass)
+                inner = (min(int(np.searchsorted(e, a, side="left")), K),
+                         max(int(np.searchsorted(e, b, side="right")) - 1, 0))
+                outer = (max(int(np.searchsorted(e, a, side="right")) - 1, 0),
+                         min(int(np.searchsorted(e, b, side="left")), K))
+                s_in = float(self._F[inner[1]] - self._F[inner[0]]) if inner[0] < inner[1] else 0.0
+                s_out = float(self._F[outer[1]] - self._F[outer[0]])
+                lo = min(est, s_in - z * self._edges_range_se(*inner))
+                hi = max(est, s_out + z * self._edges_range_se(*outer))
+                return Interval(est, lo, hi, confidence,
+                                f"an end of the range lies inside a bucket, where the estimates say nothing of "
+                                f"how the rows sit: the interval runs from the share of the buckets inside the "
+                                f"range - {z:.3f} SE to the share of the buckets it touches + {z:.3f} SE ({how}), "
+                                "so it holds whatever the shape inside a bucket; the estimate reads the "
+                                "histogram linearly within the bucket", se)
+            partial = not (ia is not None and ib is not None)
             note = "; an end inside a bucket is read off the linear interpolation within it" if partial else ""
             return Interval(est, est - z * se, est + z * se, confidence,
                             f"normal approximation, estimate +- {z:.3f} SE ({how}){note}", se)
@@ -329,18 +391,90 @@ class Distribution:
         if self.empty:
             return Interval(math.nan, math.nan, math.nan, confidence, "no rows")
         est = self.quantile(q)
-        if self.cov is not None or self.cdf_se_edges is not None:
+        s = self._edge_se()
+        if s is not None and self.within == "unknown":
+            lo, hi = self._edge_quantile_bounds(q, z, s)
+            src = ("the exact covariance of the bucket estimates" if self.cov is not None else
+                   "the SEs of the cumulative shares at the edges")
+            return Interval(est, min(lo, est), max(hi, est), confidence,
+                            f"from the last bucket edge whose CDF is below {q:g} by more than {z:.3f} SE to the "
+                            f"first edge whose CDF is above {q:g} by more than {z:.3f} SE (SEs from {src}): the "
+                            "CDF is unbiased at the edges only, so the interval holds whatever the shape inside a "
+                            "bucket; the estimate reads the CDF linearly within its bucket")
+        if s is not None:
             lo, hi = self._invert_cdf_test(q, z)
             src = ("exact covariance of the bucket estimates" if self.cov is not None else
                    "the SEs of the cumulative shares at the edges, interpolated within buckets (conservative)")
             return Interval(est, lo, hi, confidence,
                             f"test inversion: all x with |F(x) - {q:g}| <= {z:.3f} se(F(x)), F linear within "
-                            f"buckets, se(F(x)) from {src}")
+                            f"buckets (rows assumed spread evenly inside each), se(F(x)) from {src}")
         reps = self._replicate_masses()
         stat = _rearranged_quantile(_cum(reps), self.edges, q)
         lo, hi = self._bootstrap(stat, est, confidence)
         return Interval(est, float(max(lo, self.lo)), float(min(hi, self.hi)), confidence,
                         self._bootstrap_method("quantiles"), float(np.std(stat, ddof=1)))
+
+    def _edge_quantile_bounds(self, q: float, z: float, s: np.ndarray) -> tuple[float, float]:
+        """[e_lo, e_hi]: e_lo is the last edge of the leading run of edges whose CDF is below q
+        by more than z SE (the quantile is at or above it), e_hi the first edge of the trailing
+        run of edges whose CDF is above q by more than z SE (the quantile is below it)."""
+        below = self._F + z * s < q
+        above = self._F - z * s > q
+        n_lead = int(np.argmin(below)) if not below.all() else below.size
+        n_trail = int(np.argmin(above[::-1])) if not above.all() else above.size
+        lo = float(self.edges[n_lead - 1]) if n_lead > 0 else self.lo
+        hi = float(self.edges[above.size - n_trail]) if n_trail > 0 else self.hi
+        return lo, hi
+
+    def mean_ci(self, confidence: float = 0.95) -> Interval:
+        """The mean with a confidence interval.
+
+        With ``within="unknown"`` the mean of the rows lies between the mean with every row at
+        its bucket's lower edge and the mean with every row at its upper edge; the interval runs
+        from the first - z SE to the second + z SE (both linear in the masses: exact SEs from
+        ``cov``, bounded from the edge SEs otherwise).  With ``within="linear"`` (or buckets that
+        stand for grid points, as square wave's do: ``centers``) it is estimate +- z SE.  A
+        bootstrap-only distribution reads it off its replicates."""
+        z = z_value(confidence)
+        if self.empty:
+            return Interval(math.nan, math.nan, math.nan, confidence, "no rows")
+        est = self.mean()
+        mid = (self.lo + self.hi) / 2
+        if self.cov is None and self.cdf_se_edges is None:
+            reps = self._replicate_masses()
+            stat = mid + reps @ (self.centers - mid)
+            lo, hi = self._bootstrap(stat, est, confidence)
+            return Interval(est, lo, hi, confidence, self._bootstrap_method("means"), float(np.std(stat, ddof=1)))
+        se = self._linear_se(self.centers - mid)
+        mids = (self.edges[:-1] + self.edges[1:]) / 2
+        at_mids = np.allclose(self.centers, mids, rtol=0, atol=1e-12 * (self.hi - self.lo))
+        if self.within == "linear" or not at_mids:
+            return Interval(est, est - z * se, est + z * se, confidence,
+                            f"normal approximation, estimate +- {z:.3f} SE ({self._se_source()})", se)
+        low = mid + float(self.mass @ (self.edges[:-1] - mid))
+        high = mid + float(self.mass @ (self.edges[1:] - mid))
+        lo = low - z * self._linear_se(self.edges[:-1] - mid)
+        hi = high + z * self._linear_se(self.edges[1:] - mid)
+        return Interval(est, min(lo, est), max(hi, est), confidence,
+                        f"where a row sits inside its bucket is not known: the interval runs from the mean with "
+                        f"every row at its bucket's lower edge - {z:.3f} SE to the mean with every row at its upper "
+                        f"edge + {z:.3f} SE ({self._se_source()}); the estimate puts the rows at the bucket "
+                        "midpoints", se)
+
+    def _se_source(self) -> str:
+        return ("exact SE from the covariance of the bucket estimates" if self.cov is not None else
+                "SE bounded from the SEs of the cumulative shares at the edges (conservative)")
+
+    def _linear_se(self, c: np.ndarray) -> float:
+        """SE of c @ mass: exact from ``cov``; from the edge SEs, by writing c @ mass as a sum
+        over the cumulative shares at the edges and bounding its SE by the sum of theirs."""
+        if self.cov is not None:
+            return float(math.sqrt(max(c @ self.cov @ c, 0.0)))
+        s = self.cdf_se_edges
+        assert s is not None
+        # c @ mass = sum_j c_j (F_{j+1} - F_j) = c_{K-1} F_K - c_0 F_0 - sum_{j=1}^{K-1} F_j (c_j - c_{j-1})
+        inner = float(np.abs(np.diff(c)) @ s[1:-1])
+        return float(abs(c[-1]) * s[-1] + abs(c[0]) * s[0] + inner)
 
     def _invert_cdf_test(self, q: float, z: float) -> tuple[float, float]:
         """[min, max] of {x : (F(x) - q)^2 <= z^2 Var F(x)}, solved exactly bucket by bucket:
@@ -389,7 +523,8 @@ def _check_range(a: float, b: float) -> None:
 
 def binned_distribution(edges: ArrayLike, freq_estimates: ArrayLike, prefix_se: ArrayLike, *,
                         cov: np.ndarray | None = None, n: int | None = None,
-                        method: str = "frequency-oracle estimates of the bins") -> Distribution:
+                        method: str = "frequency-oracle estimates of the bins",
+                        within: str = "unknown") -> Distribution:
     """Distribution of a numeric column released with ``bins:`` through a frequency oracle.
 
     Parameters
@@ -409,14 +544,17 @@ def binned_distribution(edges: ArrayLike, freq_estimates: ArrayLike, prefix_se: 
         exact standard errors, also for ranges that do not start at the lower bound.
     n : int, optional
         Rows behind the estimates.
+    within : {"unknown", "linear"}
+        See ``Distribution``: "unknown" (default) for bins, whose values may sit anywhere inside.
 
     The CDF at the edges is the cumulative sum of the estimates (unbiased); within a bin it is
-    interpolated linearly, which is where a quantile's bias comes from (none at the edges).
+    interpolated linearly for the point estimates, which is where a quantile's bias comes from
+    (none at the edges).  The intervals reach the edges of the bins they end in (``within``
+    "unknown"), so they hold whatever the values inside a bin.
     """
     e = np.asarray(edges, dtype=float)
     f = np.asarray(freq_estimates, dtype=float)
     s = np.asarray(prefix_se, dtype=float)
     if s.shape == f.shape:
         s = np.concatenate([[0.0], s])
-    return Distribution(e, f, method=method + "; linear within bins", n=n,
-                        cov=cov, cdf_se=None if cov is not None else s)
+    return Distribution(e, f, method=method, n=n, cov=cov, cdf_se=None if cov is not None else s, within=within)

@@ -478,8 +478,8 @@ def test_cdf_test_inversion_solves_the_quadratic_exactly():
     prefix_se = np.sqrt(np.diag(np.cumsum(np.cumsum(cov, 0), 1)))
     z = NormalDist().inv_cdf(0.975)
     xs = np.linspace(edges[0], edges[-1], 200_001)
-    for d in (Distribution(edges, mass, method="t", n=5, cov=cov),
-              binned_distribution(edges, mass, prefix_se, n=5)):
+    for d in (Distribution(edges, mass, method="t", n=5, cov=cov, within="linear"),
+              binned_distribution(edges, mass, prefix_se, n=5, within="linear")):
         F = np.asarray(d.cdf(xs))
         se = np.array([d.cdf_se(v) for v in xs[::50]])
         inside = np.abs(F[::50] - 0.5) <= z * se
@@ -489,6 +489,73 @@ def test_cdf_test_inversion_solves_the_quadratic_exactly():
         assert iv.hi == pytest.approx(xs[::50][inside].max(), abs=step)
         assert iv.lo <= d.quantile(0.5) <= iv.hi
         assert "test inversion" in iv.method
+
+
+def _histogram_of(values: np.ndarray, edges: np.ndarray, se: float) -> Distribution:
+    """The exact bucket shares of ``values`` with a small diagonal covariance (se per bucket)."""
+    K = len(edges) - 1
+    j = np.clip(np.searchsorted(edges, values, side="right") - 1, 0, K - 1)
+    mass = np.bincount(j, minlength=K) / len(values)
+    return Distribution(edges, mass, method="t", n=len(values), cov=np.eye(K) * se * se)
+
+
+@pytest.mark.parametrize("place", ["low", "high", "spike"])
+def test_bucket_intervals_hold_whatever_the_shape_inside_a_bucket(place):
+    """Where the rows sit inside a bucket is unknown to a histogram estimate.  Three columns with
+    the same bucket shares (so the same estimates) but their values at the buckets' lower
+    edges, just under their upper edges, or on one point inside: the default intervals hold
+    the true quantiles, range shares and mean of each, while the linear reading (rows spread
+    evenly) misses some of them, so the check can fail."""
+    edges = np.array([0.0, 2.0, 4.0, 6.0, 8.0, 10.0])
+    base = np.repeat([0.0, 2.0, 4.0, 6.0, 8.0], [150, 250, 300, 200, 100])
+    x = {"low": base, "high": base + 1.999, "spike": base + 0.5}[place]
+    d = _histogram_of(x, edges, se=1e-4)
+    lin = Distribution(d.edges, d.mass, method="t", n=d.n, cov=d.cov, within="linear")
+    missed = 0
+    for q in (0.1, 0.25, 0.5, 0.75, 0.9):
+        truth = float(np.quantile(x, q, method="inverted_cdf"))
+        iv = d.quantile_ci(q)
+        assert iv.lo <= truth <= iv.hi, (q, truth, iv)
+        assert iv.lo <= iv.estimate <= iv.hi
+        li = lin.quantile_ci(q)
+        missed += not (li.lo <= truth <= li.hi)
+    for a, b in ((1.0, 5.0), (0.0, 3.0), (2.5, 9.5), (2.0, 6.0)):
+        truth = float(np.mean((x >= a) & (x < b)))
+        iv = d.range_ci(a, b)
+        assert iv.lo <= truth <= iv.hi, (a, b, truth, iv)
+        li = lin.range_ci(a, b)
+        missed += not (li.lo <= truth <= li.hi)
+    m = d.mean_ci()
+    assert m.lo <= float(x.mean()) <= m.hi, (x.mean(), m)
+    assert m.se == pytest.approx(math.sqrt(d.cov.diagonal() @ (d.centers - 5.0) ** 2))
+    lm = lin.mean_ci()
+    missed += not (lm.lo <= float(x.mean()) <= lm.hi)
+    assert missed >= 3, missed
+    # ranges with both ends on edges keep the exact normal interval
+    assert d.range_ci(2.0, 6.0).method.startswith("normal approximation")
+
+
+def test_bucket_quantile_interval_is_the_run_of_significant_edges():
+    """The quantile interval against a direct reading of its definition: from the last edge
+    of the leading run of edges whose CDF + z SE is below q to the first edge of the trailing
+    run whose CDF - z SE is above q (SEs at the edges from the covariance, and from prefix SEs)."""
+    rng = np.random.default_rng(5)
+    K = 16
+    mass = rng.dirichlet(np.ones(K) * 2)
+    G = rng.normal(0, 0.01, (K, K))
+    cov = G @ G.T
+    edges = np.cumsum(np.concatenate([[0.0], rng.uniform(0.5, 2, K)]))
+    F = np.concatenate([[0.0], np.cumsum(mass)])
+    s = np.concatenate([[0.0], np.sqrt(np.diag(np.cumsum(np.cumsum(cov, 0), 1)))])
+    z = NormalDist().inv_cdf(0.975)
+    for d in (Distribution(edges, mass, method="t", n=5, cov=cov), binned_distribution(edges, mass, s, n=5)):
+        for q in (0.05, 0.1, 0.3, 0.5, 0.77, 0.95):
+            iv = d.quantile_ci(q)
+            j_lo = max(j for j in range(K + 1) if all(F[: j + 1] + z * s[: j + 1] < q))
+            j_hi = min(j for j in range(K + 1) if all(F[j:] - z * s[j:] > q)) if F[-1] - z * s[-1] > q else K
+            assert iv.lo == pytest.approx(min(edges[j_lo], d.quantile(q)))
+            assert iv.hi == pytest.approx(max(edges[j_hi], d.quantile(q)))
+            assert "whatever the shape inside a bucket" in iv.method
 
 
 def test_binned_distribution_and_frequency_covariance():
@@ -595,11 +662,11 @@ def test_bins_interval_coverage():
         ivs_prefix_only.append((d2.quantile_ci(0.5), d2.range_ci(*COVER_RANGE)))
     truth = _cover_truth(x)
     cq, cr, half = _coverage(ivs, truth)
-    assert 0.90 <= cq <= 0.99, cq
+    assert cq >= 0.93, cq                     # the median's interval spans its bin: conservative
     assert 0.90 <= cr <= 0.99, cr
     assert half < 0.85, half
     cq2, cr2, _ = _coverage(ivs_prefix_only, truth)
-    assert 0.90 <= cq2 <= 0.995, cq2          # interpolated SEs within a bin: conservative
+    assert cq2 >= 0.93, cq2
     assert cr2 >= 0.95, cr2                   # the SE bound for an interior range: conservative
 
 
