@@ -552,6 +552,17 @@ def _resolve_categories(name: str, col: Any) -> ResolvedColumn:
     return rc
 
 
+def _refuse_fields_of_others(name: str, col: NumericColumn, chosen: str) -> None:
+    """A distribution field set for a column whose mechanism the tool chose, which does not take it."""
+    takes = mech.registry()[chosen].policy_fields()
+    for fieldname in _set_fields(col, "distribution"):
+        if fieldname not in takes:
+            raise PolicyError(f"{_where(name, fieldname)}: {fieldname} applies to mechanism "
+                              f"{_owners_text(fieldname, 'distribution')} only, and the automatic choice for "
+                              f"`needs: [quantiles]` is {chosen}. Add `mechanism: "
+                              f"{mech.field_owners(fieldname, 'distribution')[0]}` to use it, or remove {fieldname}")
+
+
 def _resolve_number(name: str, col: NumericColumn) -> ResolvedColumn:
     """A numeric column released as a number: a mean or distribution mechanism on its bounds."""
     rc = ResolvedColumn(name, "numeric", col)
@@ -563,6 +574,7 @@ def _resolve_number(name: str, col: NumericColumn) -> ResolvedColumn:
     if name_ == "auto" and "quantiles" in (col.needs or ()):
         name_ = mech.DEFAULT_DISTRIBUTION
         rc.chosen_because = mech.DEFAULT_DISTRIBUTION_REASON
+        _refuse_fields_of_others(name, col, name_)
     cls = mech.registry().get(name_)
     takes = cls.policy_fields() if cls is not None else mech.AUTO_NUMERIC_FIELDS if name_ == "auto" else ()
     params: dict[str, Any] = {}

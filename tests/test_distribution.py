@@ -682,7 +682,12 @@ def _policy(**pay) -> dict:
 def test_policy_resolves_the_distribution_mechanisms():
     rc = parse_policy(_policy(needs=["quantiles"]), "t").by_name["pay"]
     assert mechanism_of(rc).name == DEFAULT_DISTRIBUTION and "quantiles" in (rc.chosen_because or "")
-    rc = parse_policy(_policy(needs=["mean", "quantiles"], grid=128), "t").by_name["pay"]
+    rc = parse_policy(_policy(needs=["mean", "quantiles"], leaves=256), "t").by_name["pay"]
+    assert mechanism_of(rc).to_spec()["leaves"] == 256
+    with pytest.raises(PolicyError, match=r"grid applies to mechanism square-wave only.*automatic choice.*"
+                                          r"mechanism: square-wave"):
+        parse_policy(_policy(needs=["quantiles"], grid=128), "t")
+    rc = parse_policy(_policy(needs=["quantiles"], mechanism="square-wave", grid=128), "t").by_name["pay"]
     assert mechanism_of(rc).to_spec()["grid"] == 128
     assert mechanism_of(parse_policy(_policy(needs=["mean"]), "t").by_name["pay"]).name in NUMERIC
     assert mechanism_of(parse_policy(_policy(), "t").by_name["pay"]).name in NUMERIC

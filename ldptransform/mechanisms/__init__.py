@@ -102,11 +102,15 @@ def choose_numeric(epsilon: float, bounds: tuple[float, float], grid: int = DEFA
 
 
 # The tool's default for a numeric column whose policy says `needs: [..., quantiles]` and names
-# no mechanism: the one with the lowest median error in benchmarks/bench_quantiles.py (see
-# benchmarks/README.md for the measured figures).
-DEFAULT_DISTRIBUTION = "square-wave"
-DEFAULT_DISTRIBUTION_REASON = ("needs quantiles: square-wave, the distribution mechanism with the lowest median error "
-                               "in the tool's benchmark (benchmarks/bench_quantiles.py)")
+# no mechanism: the route with the lowest error among those whose intervals hold at their stated
+# rate on skewed, spiky and discrete data (tests/test_coverage.py, benchmarks/bench_coverage.py).
+# Square wave has a lower median error on smooth data (benchmarks/bench_quantiles.py), but its
+# EMS smoothing bias has no bound, and its intervals miss on a point mass or a heavy tail.
+DEFAULT_DISTRIBUTION = "hierarchy"
+DEFAULT_DISTRIBUTION_REASON = ("needs quantiles: hierarchy, whose unbiased estimates give quantile, range and mean "
+                               "intervals that hold whatever the column's shape (square-wave can have a lower median "
+                               "error on smooth data, but its smoothing bias has no bound and its intervals miss on "
+                               "skewed and spiky columns; name it with `mechanism: square-wave` to use it anyway)")
 
 
 def default_distribution(epsilon: float, bounds: tuple[float, float]) -> tuple[Mechanism, str]:
