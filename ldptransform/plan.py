@@ -16,7 +16,12 @@ values):
   predicted (docs/formulas.md sections 0.3 and 0.4).
 * means: the SE of the mean, worst case over data (data split evenly between the two
   bounds, which maximizes the spread of the reports for every mean mechanism of the tool:
-  each one's second moment grows with |value - middle|).
+  each one's second moment grows with |value - middle|).  A distribution mechanism's mean
+  (needs: [mean, quantiles]; estimate reads it off the decoded distribution with
+  ``Distribution.mean_ci``): exact from the covariance of the decoded bucket estimates where the
+  decoder gives one (the mean is linear in them), else the simulated root mean squared error of
+  the mean, as for medians below (``distribution_mean_se``); both on the skewed reference data,
+  not a worst case.
 * medians (needs: quantiles): no closed form; predicted by simulating releases of skewed
   reference data (the Beta(2, 5) shape stretched over the bounds) under a fixed public
   planning key and decoding them as ``ldpt estimate`` does, at min(N, 20000) rows: the root
@@ -109,16 +114,15 @@ def mean_row_variance_bound(epsilon: float, lo: float, hi: float) -> float:
 _PLAN_KEY = bytes(range(32))  # public: planning simulates noise on invented, evenly spread values only
 
 
-def simulated_median_se(m: mech.Mechanism, rc: ResolvedColumn, rows: float) -> float | None:
-    """SE of the median estimate at ``rows`` rows, by simulation (see module docstring)."""
+def _simulate(m: mech.Mechanism, rc: ResolvedColumn, rows: float, releases: int) -> tuple[np.ndarray, list[Any]]:
+    """``releases`` simulated releases of the skewed reference data (see module docstring) at
+    min(rows, SIM_ROWS) rows under the public planning key, each decoded as ``ldpt estimate``
+    decodes it: (the reference values, the decoded distributions)."""
     from .distribution import binned_distribution
     from .keys import SecretKey
     from .mechanisms.decoders import DistributionDecoder, FrequencyDecoder
     from .random import KeyedStream
     from .random.variates import to_unit
-
-    if rows < 2:
-        return None
     from scipy.stats import beta
 
     n = int(min(rows, SIM_ROWS))
@@ -127,15 +131,14 @@ def simulated_median_se(m: mech.Mechanism, rc: ResolvedColumn, rows: float) -> f
     # skewed reference data: the Beta(2, 5) shape on the bounds (median at about 26% of the
     # width), so that an estimator pulled toward the middle of the range shows its bias
     x = lo + beta.ppf((np.arange(n) + 0.5) / n, 2, 5) * (hi - lo)
-    true_median = float(np.median(x))
     key = SecretKey(_PLAN_KEY)
     if rc.memoize and rc.memo_grid and rc.type == "numeric":  # the memo grid's rounding, as release applies it
         g = rc.memo_grid
         u = to_unit(KeyedStream(key, "0" * 32, "plan-memo", rc.name).words(0, n, 1)[:, 0])
         j = np.clip(np.floor((x - lo) * (g / (hi - lo)) + u), 0, g)
         x = np.minimum(lo + j * ((hi - lo) / g), hi)
-    meds = []
-    for r in range(SIM_RELEASES):
+    dists = []
+    for r in range(releases):
         words = KeyedStream(key, f"{r:032x}", "plan", rc.name).words(0, n, m.words_per_row)
         if rc.type == "binned":
             edges = np.asarray(cfg.bins, dtype=float)
@@ -143,15 +146,65 @@ def simulated_median_se(m: mech.Mechanism, rc: ResolvedColumn, rows: float) -> f
             cst = cast(FrequencyDecoder, m.decoder(joint=True)).add(m.randomize(codes, words))
             cov = cst.covariance()
             prefix_se = np.sqrt(np.maximum(np.diag(np.cumsum(np.cumsum(cov, axis=0), axis=1)), 0.0))
-            dist = binned_distribution(edges, np.asarray(cst.estimates()[0]), prefix_se, cov=cov, n=cst.n)
+            dists.append(binned_distribution(edges, np.asarray(cst.estimates()[0]), prefix_se, cov=cov, n=cst.n))
         else:
-            dist = cast(DistributionDecoder, m.decoder()).add(m.randomize(x, words)).distribution()
-        meds.append(dist.quantile(0.5))
-    meds_a = np.asarray(meds, dtype=float)
-    bias = float(meds_a.mean() - true_median)
-    # root mean squared error: the spread shrinks like 1/sqrt(rows); the bias is kept as it is
-    # (it shrinks more slowly, if at all, for a smoothing decoder)
-    return float(math.sqrt(bias * bias + np.var(meds_a, ddof=1) * n / rows))
+            dists.append(cast(DistributionDecoder, m.decoder()).add(m.randomize(x, words)).distribution())
+    return x, dists
+
+
+def _rmse(estimates: list[float], truth: float, n: int, rows: float) -> float:
+    """Root mean squared error at ``rows`` rows of estimates simulated at ``n`` rows: the spread
+    shrinks like 1/sqrt(rows); the bias is kept as it is (it shrinks more slowly, if at all,
+    for a smoothing decoder)."""
+    a = np.asarray(estimates, dtype=float)
+    bias = float(a.mean() - truth)
+    return float(math.sqrt(bias * bias + np.var(a, ddof=1) * n / rows))
+
+
+def simulated_median_se(m: mech.Mechanism, rc: ResolvedColumn, rows: float) -> float | None:
+    """SE of the median estimate at ``rows`` rows, by simulation (see module docstring)."""
+    if rows < 2:
+        return None
+    x, dists = _simulate(m, rc, rows, SIM_RELEASES)
+    return _rmse([d.quantile(0.5) for d in dists], float(np.median(x)), len(x), rows)
+
+
+@dataclass(frozen=True)
+class DistributionMeanSE:
+    """The predicted SE of the mean a distribution mechanism's decoded distribution gives, and how."""
+
+    se: float
+    exact: bool      # True: from the decoded bucket covariance (linear in the masses); False: simulated RMSE
+    meaning: str
+
+
+def distribution_mean_se(m: mech.Mechanism, rc: ResolvedColumn, rows: float) -> DistributionMeanSE | None:
+    """SE at ``rows`` rows of the mean read off a decoded distribution (``Distribution.mean_ci``,
+    what ``ldpt estimate`` reports).  Where the decoder gives the exact covariance of its bucket
+    estimates (unbiased level or bin estimates), the mean is linear in them and its SE is exact:
+    sqrt(c' Cov c) of one simulated release of the reference data, scaled by sqrt(rows simulated
+    / rows).  Where it does not (a smoothing decoder, whose estimate is biased and whose SE comes
+    from a bootstrap), no formula holds: the root mean squared error around the reference data's
+    true mean over SIM_RELEASES simulated releases, spread scaled and bias kept, as for the
+    median.  None below 2 rows."""
+    if rows < 2:
+        return None
+    x, dists = _simulate(m, rc, rows, 1)
+    n = len(x)
+    if dists[0].cov is not None:
+        iv = dists[0].mean_ci(0.95)
+        if iv.se is not None and math.isfinite(iv.se):
+            return DistributionMeanSE(
+                float(iv.se) * math.sqrt(n / rows), True,
+                "SE of the mean read off the decoded distribution, exact from the covariance of its bucket estimates "
+                f"(one simulated release of skewed reference data, Beta(2, 5) shape, at min(N, {SIM_ROWS}) rows, "
+                "scaled by sqrt(rows)); the reported interval also spans where rows sit inside their buckets")
+    x, dists = _simulate(m, rc, rows, SIM_RELEASES)
+    return DistributionMeanSE(
+        _rmse([d.mean() for d in dists], float(np.mean(x)), n, rows), False,
+        f"root mean squared error of the mean read off the decoded distribution over {SIM_RELEASES} simulated "
+        f"releases of skewed reference data (Beta(2, 5) shape) at min(N, {SIM_ROWS}) rows, spread scaled by "
+        "sqrt(rows), bias kept: the decoder smooths, so no exact formula holds; an approximation")
 
 
 # -- typed results ----------------------------------------------------------------------------
@@ -284,6 +337,37 @@ def _stat(name: str, se: float | None, target: float | None, bound_se: float | N
     return out
 
 
+def _mean_stat(se: float | None, v: float | None, vb: float, width: float, rows: int, rate: float,
+               q: Quality | None, default: Quality | None, meaning: str, note: str | None = None,
+               worst_case: bool = True) -> dict[str, Any]:
+    """A mean's entry: its predicted ``se`` (n * Var ``v``), the lower bound ``vb`` any eps-LDP
+    mean estimate has (worst case over data), and the policy's targets (max_se of the column;
+    max_relative_se of the column, else of the policy).  ``worst_case`` False: ``se`` is for
+    reference data, not a worst case, so no efficiency (the bound's ratio to it) is given."""
+    n = rows * rate
+    target = q.max_se if q is not None else None
+    rel = (q.max_relative_se if q is not None and q.max_relative_se is not None
+           else default.max_relative_se if default is not None else None)
+    bse = math.sqrt(vb / n) if n > 0 else None
+    extra: dict[str, Any] = {"relative_se": se / width if se is not None else None,
+                             "efficiency": vb / v if v and worst_case else None, "se_meaning": meaning}
+    if note is not None:
+        extra["note"] = note
+    stat = _stat("mean", se, target, bse, v, vb, rows, rate, **extra)
+    if rel is not None:
+        stat["target_relative_se"] = rel
+    if rel is not None and se is not None and v is not None:
+        ok_rel = se / width <= rel * (1 + 1e-12)
+        stat["meets_target"] = bool(stat.get("meets_target", True) and ok_rel)
+        need_rel = int(math.ceil(v / (rel * width) ** 2 / rate))
+        stat["rows_needed"] = max(stat.get("rows_needed", 0), need_rel)
+        need_b = int(math.ceil(vb / (rel * width) ** 2 / rate))
+        stat["rows_needed_best_possible"] = max(stat.get("rows_needed_best_possible", 0), need_b)
+        stat["impossible_at_rows"] = bool(stat.get("impossible_at_rows", False) or
+                                          (bse is not None and bse / width > rel * (1 + 1e-12)))
+    return stat
+
+
 def column_statistics(rc: ResolvedColumn, rows: int, rate: float, default: Quality | None,
                       simulate: bool = True) -> list[PlanStatistic]:
     """Predicted statistics of one resolved (privatized) column at ``rows`` table rows, of
@@ -310,38 +394,28 @@ def _column_statistics(rc: ResolvedColumn, rows: int, rate: float, default: Qual
                              se_meaning="root mean square over values of each share's SE (equal shares: worst case)"))
         elif need == "mean" and m.mean_row_variance() is None:
             # a distribution mechanism (needs mean and quantiles): estimate reads the mean off the
-            # decoded distribution and gives no SE for it, so there is nothing to predict
-            out.append({"statistic": "mean", "se": None, "target_se": None, "best_possible_se": None,
-                        "se_meaning": "no prediction",
-                        "note": f"{m.name} decodes a distribution; the mean is read off it without an SE. Name "
-                                "a mean mechanism (or leave needs at [mean]) for a predicted and reported SE"})
+            # decoded distribution (Distribution.mean_ci); its SE is predicted from the decoder
+            lo, hi = rc.config.domain
+            pred = distribution_mean_se(m, rc, n) if simulate else None
+            vb = mean_row_variance_bound(m.epsilon, lo, hi)
+            if pred is None:
+                out.append(_mean_stat(None, None, vb, hi - lo, rows, rate, q, default,
+                                      "no prediction (not simulated)" if not simulate else "no prediction",
+                                      note=f"{m.name} decodes a distribution; its mean's SE is predicted by "
+                                           "simulation, which this call skips" if not simulate else
+                                           "too few rows to predict the mean's SE", worst_case=False))
+            else:
+                out.append(_mean_stat(pred.se, pred.se * pred.se * n, vb, hi - lo, rows, rate, q, default,
+                                      pred.meaning, worst_case=False))
         elif need == "mean":
             mm = cast(mech.MeanMechanism, m)   # a mean mechanism: mean_row_variance() is not None
-            width = mm.hi - mm.lo
             v = mean_row_variance(m) + memo_rounding_variance(rc)
             vb = mean_row_variance_bound(mm.epsilon, mm.lo, mm.hi)
-            target = q.max_se if q is not None else None
-            rel = (q.max_relative_se if q is not None and q.max_relative_se is not None
-                   else default.max_relative_se if default is not None else None)
             se = math.sqrt(v / n) if n > 0 else None
-            bse = math.sqrt(vb / n) if n > 0 else None
-            stat = _stat("mean", se, target, bse, v, vb, rows, rate,
-                         relative_se=se / width if se is not None else None,
-                         efficiency=vb / v,
-                         se_meaning="SE of the mean in column units, worst case over data"
-                                    + (" (memoized: includes the memo grid's rounding, <= step^2/4 per row)"
-                                       if memo_rounding_variance(rc) else ""))
-            if rel is not None and se is not None:
-                stat["target_relative_se"] = rel
-                ok_rel = se / width <= rel * (1 + 1e-12)
-                stat["meets_target"] = bool(stat.get("meets_target", True) and ok_rel)
-                need_rel = int(math.ceil(v / (rel * width) ** 2 / rate))
-                stat["rows_needed"] = max(stat.get("rows_needed", 0), need_rel)
-                need_b = int(math.ceil(vb / (rel * width) ** 2 / rate))
-                stat["rows_needed_best_possible"] = max(stat.get("rows_needed_best_possible", 0), need_b)
-                stat["impossible_at_rows"] = bool(stat.get("impossible_at_rows", False) or
-                                                  (bse is not None and bse / width > rel * (1 + 1e-12)))
-            out.append(stat)
+            out.append(_mean_stat(se, v, vb, mm.hi - mm.lo, rows, rate, q, default,
+                                  "SE of the mean in column units, worst case over data"
+                                  + (" (memoized: includes the memo grid's rounding, <= step^2/4 per row)"
+                                     if memo_rounding_variance(rc) else "")))
         elif need == "quantiles":
             target = q.median_max_se if q is not None else None
             se = simulated_median_se(m, rc, n) if simulate else None
@@ -551,5 +625,6 @@ def suggest(policy: LoadedPolicy, rows: int) -> dict[str, Any]:
 
 __all__ = ["plan", "suggest", "PlanResult", "PlanColumn", "PlanStatistic", "column_statistics", "min_epsilon",
            "frequency_row_variance", "mean_row_variance", "memo_rounding_variance",
-           "frequency_row_variance_bound", "mean_row_variance_bound", "simulated_median_se", "sample_size",
+           "frequency_row_variance_bound", "mean_row_variance_bound", "simulated_median_se", "distribution_mean_se",
+           "DistributionMeanSE", "sample_size",
            "CategoricalColumn", "NumericColumn"]

@@ -354,3 +354,82 @@ def test_memoized_mean_adds_the_grid_rounding_and_stays_an_upper_bound():
     measured = float(np.std(means, ddof=1))
     assert abs(measured / expected - 1) < 0.10, (measured, expected)
     assert expected <= stat["se"]  # this data's exact SE is within the planned worst case
+
+
+def _distribution_policy(mechanism: str, quality: dict[str, Any] | None = None) -> Any:
+    col: dict[str, Any] = {"type": "numeric", "bounds": [0, 100], "epsilon": 1.0, "mechanism": mechanism,
+                           "needs": ["mean", "quantiles"]}
+    if quality:
+        col["quality"] = quality
+    return parse_policy({"budget": {"epsilon_per_row": 1.0}, "columns": {"pay": col}}, "test")
+
+
+def _reference_means(m: Any, n: int, releases: int) -> np.ndarray:
+    """The mean read off the decoded distribution in ``releases`` releases of the planner's
+    reference data (the Beta(2, 5) shape on the bounds), under this file's fixed key (not the
+    planner's), each with its own nonce."""
+    from scipy.stats import beta
+
+    x = beta.ppf((np.arange(n) + 0.5) / n, 2, 5) * 100
+    return np.array([m.decoder().add(m.randomize(x, _words(m, n, r, "dist-mean"))).distribution().mean()
+                     for r in range(releases)])
+
+
+def test_a_hierarchy_mean_has_an_exact_predicted_se():
+    """needs: [mean, quantiles] on a distribution mechanism whose decoder gives the covariance of
+    its bucket estimates: the mean's SE is exact.  Against the spread of 100 releases at 5000 rows
+    (fixed keys): the sample SD of 100 draws is within about 7% of the truth (one SD), so 20%."""
+    from ldptransform.plan import distribution_mean_se
+
+    lp = _distribution_policy("hierarchy")
+    rc = lp.by_name["pay"]
+    pred = distribution_mean_se(mechanism_of(rc), rc, 5000)
+    assert pred is not None and pred.exact
+    measured = float(np.std(_reference_means(mechanism_of(rc), 5000, 100), ddof=1))
+    assert pred.se == pytest.approx(measured, rel=0.20), (pred.se, measured)
+    (mean,) = [s for s in plan(lp, 5000)["columns"][0]["statistics"] if s["statistic"] == "mean"]
+    assert mean["se"] == pytest.approx(pred.se) and "exact" in mean["se_meaning"]
+    assert mean["best_possible_se"] is not None and mean["efficiency"] is None  # se is not a worst case
+
+
+def test_a_square_wave_mean_is_simulated_and_says_so():
+    """A smoothing decoder (no bucket covariance): the mean's SE is the simulated root mean squared
+    error, bias kept.  Against 30 releases under another key at 5000 rows: within a factor 1.5
+    (the planner's own estimate rests on 24 releases)."""
+    from ldptransform.plan import distribution_mean_se
+
+    lp = _distribution_policy("square-wave")
+    rc = lp.by_name["pay"]
+    pred = distribution_mean_se(mechanism_of(rc), rc, 5000)
+    assert pred is not None and not pred.exact and "no exact formula" in pred.meaning
+    from scipy.stats import beta
+
+    truth = float(beta.mean(2, 5) * 100)
+    means = _reference_means(mechanism_of(rc), 5000, 30)
+    measured = math.sqrt(float(np.mean((means - truth) ** 2)))
+    assert measured / 1.5 <= pred.se <= measured * 1.5, (pred.se, measured)
+
+
+def test_a_distribution_mean_target_is_checked_by_plan_and_validate(tmp_path):
+    """A target on a distribution column's mean: plan predicts it and says whether it is met (not
+    "-"), and validate's quality check judges it; without the simulation (plan(simulate=False))
+    the target is marked unchecked, never met."""
+    lp = _distribution_policy("hierarchy", {"max_se": 0.5})
+    (mean,) = [s for s in plan(lp, 5000)["columns"][0]["statistics"] if s["statistic"] == "mean"]
+    assert mean["se"] > 0.5 and mean["meets_target"] is False and mean["rows_needed"] > 5000
+    lp_ok = _distribution_policy("hierarchy", {"max_relative_se": 0.05})
+    (ok,) = [s for s in plan(lp_ok, 5000)["columns"][0]["statistics"] if s["statistic"] == "mean"]
+    assert ok["meets_target"] is True and ok["target_relative_se"] == 0.05
+    (skipped,) = [s for s in plan(lp, 5000, simulate=False)["columns"][0]["statistics"] if s["statistic"] == "mean"]
+    assert skipped["se"] is None and skipped.get("meets_target") is None and skipped["target_se"] == 0.5
+
+    from ldptransform import validate
+
+    rng = np.random.default_rng(8)  # invented test data
+    raw = tmp_path / "raw.parquet"
+    pd.DataFrame({"pay": rng.beta(2, 5, 5000) * 100}).to_parquet(raw, index=False)
+    for policy, status in ((lp, False), (lp_ok, True)):
+        out = tmp_path / f"x{status}.parquet"
+        privatize(raw, policy, KEY, out)
+        quality = validate(out).check("quality")
+        assert quality is not None and quality.ok is status and "pay mean" in quality.detail, quality
