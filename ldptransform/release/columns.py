@@ -30,6 +30,60 @@ class ColumnDiagnostics:
         return {k: v for k, v in self.__dict__.items()}
 
 
+WARN_SHARE = 0.01  # the steward is warned when more than this share of a column's rows was changed before randomizing
+
+
+def _share(count: int, rows: int) -> str:
+    return f"{count} of {rows} rows ({count / max(rows, 1):.1%})"
+
+
+def counts_text(plan: ColumnPlan, rows: int) -> str | None:
+    """How many of the column's values were changed before randomizing (steward-only: these
+    counts depend on the data), e.g. ``age: 1500 clipped high (15.0%)``; None when none was."""
+    d, rc = plan.diag, plan.rc
+    parts = []
+    for count, what, note in ((d.clipped_low, "clipped low", ""), (d.clipped_high, "clipped high", ""),
+                              (d.filled, "missing and filled", ""),
+                              (d.unknown_as_other, "unknown", ", released as <other>"),
+                              (d.missing_as_category, "missing", ", released as <missing>")):
+        if count:
+            parts.append(f"{count} {what} ({count / max(rows, 1):.1%}{note})")
+    return f"{rc.name}: " + ", ".join(parts) if parts else None
+
+
+def column_warnings(plan: ColumnPlan, rows: int) -> list[str]:
+    """The steward's warnings for a column whose estimand the encoding changed for more than
+    WARN_SHARE of the rows (clipped into the bounds, missing values filled, categories not in
+    the domain), each saying what to do.  Only counts and the policy's own values (bounds, fill,
+    category names) appear, never a value of the data."""
+    d, rc, name = plan.diag, plan.rc, plan.rc.name
+    limit = WARN_SHARE * rows
+    out = []
+    if rc.type in ("numeric", "binned"):
+        lo, hi = rc.config.domain
+        field = "bins" if rc.type == "binned" else "bounds"
+        for count, side, edge in ((d.clipped_low, "below", lo), (d.clipped_high, "above", hi)):
+            if count > limit:
+                out.append(f"column {name!r}: {_share(count, rows)} were {side} its bounds [{lo:g}, {hi:g}] and were "
+                           f"released as {edge:g}, so every statistic of {name!r} describes the clipped values (a "
+                           f"mean or share near that end is pulled toward {edge:g}). If such values are real, widen "
+                           f"the column's {field} in the policy; otherwise check the input.")
+        if d.filled > limit:
+            fill = getattr(rc.config.missing, "fill", None)
+            fill_text = f"{fill:g} (missing: {{fill: {fill:g}}})" if isinstance(fill, (int, float)) else "the fill"
+            out.append(f"column {name!r}: {_share(d.filled, rows)} were missing and were released as "
+                       f"{fill_text}, so every statistic of {name!r} describes the column "
+                       "with missing values replaced by the fill, not the rows that have a value. Fill the input "
+                       "where the value is known, choose a fill that suits the analysis, or release the missingness "
+                       "as its own answer where the policy allows it; tell partners what the fill does (the manifest "
+                       "records it).")
+    if d.unknown_as_other > limit:
+        out.append(f"column {name!r}: {_share(d.unknown_as_other, rows)} held a category not among its declared "
+                   "categories and were released as '<other>', which partners cannot tell apart. If those categories "
+                   f"matter, declare them in the policy's categories of {name!r}.")
+    return out
+
+
 @dataclass
 class ColumnPlan:
     rc: ResolvedColumn

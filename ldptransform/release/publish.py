@@ -19,7 +19,7 @@ from ..manifest import CAUTIONS, Manifest, Privacy, now_utc
 from ..policy import LoadedPolicy
 from ..random.bits import PRF_VERSION
 from .central import central_entry
-from .columns import ColumnPlan, column_entries
+from .columns import ColumnPlan, column_entries, column_warnings
 from .memo import memo_composition_text
 from .options import ReleaseOptions
 from .parts import Written
@@ -142,6 +142,7 @@ def diagnostics(plans: list[ColumnPlan], written: Written, opts: ReleaseOptions,
         "input_rows": written.input_rows, "engine": opts.engine,
         "seconds": round(seconds, 3), "batch_rows": opts.batch_rows, "input": opts.input_text,
         "columns": {p.rc.name: p.diag.as_dict() for p in plans if p.rc.mechanism is not None},
+        "warnings": release_warnings(plans, written.input_rows),
     }
     if sampled:
         diag["reported_cells"] = {p.rc.name: p.reported for p in plans if p.rc.mechanism is not None}
@@ -153,6 +154,11 @@ def diagnostics(plans: list[ColumnPlan], written: Written, opts: ReleaseOptions,
             "eps_charged_max": float(charges.eps[charges.within].max()) if charges.within.any() else 0.0,
         }
     return diag
+
+
+def release_warnings(plans: list[ColumnPlan], rows: int) -> list[str]:
+    """The steward's warnings of the release (``columns.column_warnings`` of every privatized column)."""
+    return [w for p in plans if p.rc.mechanism is not None for w in column_warnings(p, rows)]
 
 
 def stage_text(staged: StagedFiles, dest: Path, text: str, mode: int = 0o644) -> None:

@@ -22,6 +22,7 @@ from .charges import precharge, record_release, rows_held
 from .columns import (
     ColumnPlan,
     attach_randomness,
+    counts_text,
     output_schema,
     plan_columns,
     read_columns,
@@ -58,6 +59,10 @@ class ReleaseResult:
     ledger_release_id: int | None = None
     held_back_subjects: int = 0  # --allow-partial: data-dependent, steward's stderr and diagnostics only
     held_back_rows: int = 0
+    # steward-only (data-dependent): per column, the values changed before randomizing
+    # (columns.counts_text), and the warnings above columns.WARN_SHARE of the rows
+    column_counts: tuple[str, ...] = ()
+    warnings: tuple[str, ...] = ()
 
 
 def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey, out: Path | str, *,
@@ -113,8 +118,11 @@ def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey
         release_id = _record(staged, charges, plans, manifest, opts)
         move_into_place(staged, opts, release_id)
     counts = (0, 0) if charges is None else (int((~charges.within).sum()), int((~charges.row_within).sum()))
+    changed = tuple(t for p in plans if p.rc.mechanism is not None
+                    for t in [counts_text(p, written.input_rows)] if t is not None)
     return ReleaseResult(manifest, opts.out, opts.manifest_path, diag_path, time.perf_counter() - t0,
-                         opts.ledger_path if charges is not None else None, release_id, *counts)
+                         opts.ledger_path if charges is not None else None, release_id, *counts,
+                         column_counts=changed, warnings=tuple(diag["warnings"]))
 
 
 def _record(staged: StagedFiles, charges: LedgerCharges | None, plans: list[ColumnPlan], manifest: Manifest,
