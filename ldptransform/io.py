@@ -310,13 +310,16 @@ def private_dir() -> Path:
     $LDPT_PRIVATE_DIR if set, else $XDG_STATE_HOME/ldptransform, else ~/.local/state/ldptransform.
     Created with mode 0700; refused (``private_folder``) when group or others may use it.
     """
+    return private_folder(private_dir_location(), "private folder", "$LDPT_PRIVATE_DIR")
+
+
+def private_dir_location() -> Path:
+    """Where the steward's private folder is (``private_dir``), without creating or checking it."""
     env = os.environ.get("LDPT_PRIVATE_DIR")
     if env:
-        d = Path(env)
-    else:
-        base = os.environ.get("XDG_STATE_HOME") or str(Path.home() / ".local" / "state")
-        d = Path(base) / "ldptransform"
-    return private_folder(d, "private folder", "$LDPT_PRIVATE_DIR")
+        return Path(env)
+    base = os.environ.get("XDG_STATE_HOME") or str(Path.home() / ".local" / "state")
+    return Path(base) / "ldptransform"
 
 
 def private_folder(folder: Path, role: str = "private folder", named_by: str | None = None) -> Path:
