@@ -239,6 +239,8 @@ def _column_tables(name: str, col: ColumnResult) -> None:
             t.add_row(escape(f"share in [{r.low:g}, {r.high:g})"), _num(r.estimate, ".4f"), _num(r.ci_low, ".4f"),
                       _num(r.ci_high, ".4f"))
         _print(t)
+    if col.estimand:  # once per column: what its values are, as the release encoded them
+        _print(escape(f"{name} estimand: {col.estimand}"))
 
 
 def _span(m: MeanResult) -> str:
@@ -248,24 +250,25 @@ def _span(m: MeanResult) -> str:
 def _crosstab_table(x: CrossTabResult) -> None:
     t = Table(title=escape(f"cross-tab {x.rows} x {x.columns} ({x.rows_used} rows): joint share "
                            f"(consistent {x.consistent_method}), unbiased with CI, and share of "
-                           f"{x.columns} within {x.rows}"), title_justify="left")
+                           f"{x.columns} within {x.rows} (from the consistent joint shares, with the CI of the "
+                           "unbiased one)"), title_justify="left")
     for h in (x.rows, x.columns, "joint", "unbiased", "interval", "within row", "interval "):
         t.add_column(escape(h), justify="left" if h in (x.rows, x.columns) else "right")
     for c in x.cells:
         t.add_row(escape(c.row), escape(c.column), _num(c.consistent, ".3f"), _num(c.joint.estimate, ".3f"),
-                  _span(c.joint), _num(c.within.estimate, ".3f"), _span(c.within))
+                  _span(c.joint), _num(c.within_consistent, ".3f"), _span(c.within))
     _print(t)
 
 
 def _grouped_mean_table(g: GroupedMeanResult) -> None:
-    t = Table(title=escape(f"mean of {g.column} by {g.by} ({g.rows_used} rows; delta-method SE)"),
-              title_justify="left")
-    for h in (g.by, "mean", "se", "ci_low", "ci_high", "group share"):
+    t = Table(title=escape(f"mean of {g.column} by {g.by} ({g.rows_used} rows; delta-method SE; consistent: the "
+                           f"mean clipped into the bounds of {g.column})"), title_justify="left")
+    for h in (g.by, "mean", "se", "ci_low", "ci_high", "consistent", "group share"):
         t.add_column(escape(h), justify="left" if h == g.by else "right")
     for row in g.groups:
         m = row.mean
         t.add_row(escape(row.group), _num(m.estimate, ".6g"), _num(m.se, ".4g"), _num(m.ci_low, ".6g"),
-                  _num(m.ci_high, ".6g"), _num(row.share, ".4f"))
+                  _num(m.ci_high, ".6g"), _num(row.consistent, ".6g"), _num(row.share, ".4f"))
     _print(t)
 
 

@@ -141,13 +141,19 @@ class CrossStats:
         for name in ("S", "SS", "T", "SA", "SAA"):
             setattr(self, name, getattr(self, name) + getattr(o, name))
 
-    def report(self, z: float, method: str, rows: str = "", columns: str = "") -> CrossTabResult:
+    def report(self, z: float, method: str, rows: str = "", columns: str = "",
+               encoding: Sequence[str] = ()) -> CrossTabResult:
+        """The cells; ``encoding`` holds the encoding clauses of both columns (``handling``), added
+        to every estimand.  Beside the raw estimates: the joint shares made consistent (``method``,
+        as the frequencies: non-negative, summing to 1) and the within-row shares computed from
+        them (each row's consistent shares divided by their sum; None where that sum is 0)."""
         n = self.n
         if n < 2:
             return CrossTabResult(rows, columns, n, (), method)
         joint, joint_se = _moments(self.S, self.SS, n)
         marg, marg_se = _moments(self.SA, self.SAA, n)
         cons = consistent(joint.ravel(), method).reshape(joint.shape)
+        cons_rows = cons.sum(axis=1)
         # conditional share of b within a: R = joint / marginal_a, delta method
         cov = (self.T - self.S * self.SA[:, None] / n) / (n - 1) / n
         var_j, var_m = joint_se ** 2, (marg_se ** 2)[:, None]
@@ -158,12 +164,13 @@ class CrossStats:
         for i, la in enumerate(self.a.categories):
             for j, lb in enumerate(self.b.categories):
                 ok = marg[i] > 0 and np.isfinite(var_R[i, j])
-                jt = _mean(joint[i, j], joint_se[i, j], z, f"share of rows with {_is(rows, la)} and "
-                           f"{_is(columns, lb)} among all rows")
+                jt = _mean(joint[i, j], joint_se[i, j], z, _with(f"share of rows with {_is(rows, la)} and "
+                           f"{_is(columns, lb)} among all rows", *encoding))
                 r_est, r_se = (R[i, j], math.sqrt(max(var_R[i, j], 0.0))) if ok else (None, None)
-                within = _mean(r_est, r_se, z,
-                               f"share of rows with {_is(columns, lb)} among rows with {_is(rows, la)}")
-                cells.append(CrossTabCell(la, lb, jt, float(cons[i, j]), within))
+                within = _mean(r_est, r_se, z, _with(f"share of rows with {_is(columns, lb)} among rows with "
+                                                     f"{_is(rows, la)}", *encoding))
+                w_cons = float(cons[i, j] / cons_rows[i]) if cons_rows[i] > 0 else None
+                cells.append(CrossTabCell(la, lb, jt, float(cons[i, j]), within, w_cons))
         return CrossTabResult(rows, columns, n, tuple(cells), method)
 
 
@@ -202,14 +209,17 @@ class GroupMeanStats:
         for name in ("A", "AA", "C", "SA", "SAA"):
             setattr(self, name, getattr(self, name) + getattr(o, name))
 
-    def report(self, z: float, what: str = "", by: str = "") -> tuple[GroupMean, ...]:
-        """Per group: the mean of the numeric column among its rows (``what`` describes the
-        column's values, ``by`` names the grouping column)."""
+    def report(self, z: float, what: str = "", by: str = "", bounds: tuple[float, float] | None = None,
+               encoding: Sequence[str] = ()) -> tuple[GroupMean, ...]:
+        """Per group: the mean of the numeric column ``what`` among the rows of the group (``by``
+        names the grouping column; ``encoding`` holds both columns' encoding clauses).  Beside
+        each raw ratio, its consistent version: the ratio clipped into the column's ``bounds``
+        (a mean of values within the bounds lies within them)."""
         n = self.n
         cats = self.group.categories
 
         def estimand(g: str) -> str:
-            return f"{what} among rows with {_is(by, g)}"
+            return _with(f"mean of {what} among rows with {_is(by, g)}", *encoding)
 
         if n < 2:
             return tuple(GroupMean(g, _mean(None, None, z, estimand(g)), None) for g in cats)
@@ -226,17 +236,40 @@ class GroupMeanStats:
             var = (num_se[i] ** 2 - 2 * R * cov[i] + R ** 2 * den_se[i] ** 2) / den[i] ** 2
             note = ("the group's share is not clearly above 0: the ratio and its SE are unreliable"
                     if den[i] - z * den_se[i] <= 0 else None)
-            out.append(GroupMean(g, _mean(self.shift + R, math.sqrt(max(var, 0.0)), z, estimand(g)), float(den[i]),
-                                 note))
+            est = float(self.shift + R)
+            cons = est if bounds is None else float(min(max(est, bounds[0]), bounds[1]))
+            out.append(GroupMean(g, _mean(est, math.sqrt(max(var, 0.0)), z, estimand(g)), float(den[i]),
+                                 note, cons))
         return tuple(out)
 
 
 # -- reading ---------------------------------------------------------------------------------
 
-def open_extract(extract: Path, manifest_path: Path | None) -> tuple[Manifest, TableSource, Path]:
+def check_integrity(extract: Path, mpath: Path, manifest: Manifest) -> None:
+    """Refuse an extract whose bytes are not the ones its manifest describes (hash and size; of
+    every part, for a dataset extract): decoded with another release's manifest (another eps,
+    categories or bounds) its estimates and intervals would be wrong without any sign."""
+    from .integrity import check_extract
+
+    res = check_extract(extract, manifest)
+    if not res.ok:
+        raise ManifestError(f"extract {extract} does not match manifest {mpath}: {res.detail}. Decoded with "
+                            "the wrong manifest (another release's eps, categories or bounds) or from altered bytes, "
+                            "its estimates and intervals would be wrong, so estimate refuses the pair. Use the "
+                            "manifest written with this extract (by default beside it, named "
+                            f"{default_manifest_path(extract).name}), or ask the data steward for an intact copy of "
+                            f"both; `ldpt validate {extract} --manifest {mpath}` lists what differs.")
+
+
+def open_extract(extract: Path, manifest_path: Path | None, *,
+                 verify: bool = False) -> tuple[Manifest, TableSource, Path]:
+    """The manifest, a reader of the extract and the manifest's path; with ``verify``, first
+    refuse an extract whose hash or size disagrees with the manifest (``check_integrity``)."""
     extract = Path(extract)
     mpath = Path(manifest_path) if manifest_path else default_manifest_path(extract)
     manifest = load_manifest(mpath)
+    if verify:
+        check_integrity(extract, mpath, manifest)
     src = TableSource(extract)
     missing = [c for c in manifest.extract.columns if c not in src.column_names]
     if missing:
@@ -416,8 +449,9 @@ def accumulate_fragment(manifest: Manifest, an: Analyses, fs: Any, frag: Any, ba
 
 
 def _accumulate_one(extract: Path, manifest_path: Path | None, an: Analyses, batch_rows: int,
-                    check_alphabet: bool, engine: str = "local", scheduler: str | None = None) -> Accumulated:
-    manifest, src, mpath = open_extract(extract, manifest_path)
+                    check_alphabet: bool, engine: str = "local", scheduler: str | None = None,
+                    verify: bool = True) -> Accumulated:
+    manifest, src, mpath = open_extract(extract, manifest_path, verify=verify)
     _check_analyses(manifest, an)
     acc = _empty_stats(manifest, an)
     where = f"extract {extract} (manifest {mpath})"
@@ -446,33 +480,74 @@ def _both(a: np.ndarray | None, b: np.ndarray | None, n: int) -> np.ndarray | No
     return (np.ones(n, bool) if a is None else a) & (np.ones(n, bool) if b is None else b)
 
 
+def memoized_columns(manifest: Manifest) -> list[str]:
+    """Privatized columns whose reports are memoized (``memoize: true`` in the embedded policy,
+    or a manifest note saying so): the same person sends the same report in every release."""
+    return [c.name for c in manifest.columns if c.mechanism is not None and
+            (_policy_column(manifest, c.name).get("memoize") is True or (c.note or "").startswith("memoized"))]
+
+
+def _same_people(a: Manifest, b: Manifest) -> bool:
+    """Releases of the same people, as far as the manifests tell: the same key (fingerprint) and
+    the same subject_key column, with memoized columns (whose reports repeat across releases)."""
+    sk_a, sk_b = (a.policy or {}).get("subject_key"), (b.policy or {}).get("subject_key")
+    return (a.key_fingerprint == b.key_fingerprint and sk_a is not None and sk_a == sk_b
+            and bool(memoized_columns(a)) and bool(memoized_columns(b)))
+
+
+def _check_merge(extracts: list[Path], manifests: list[Path | None]) -> None:
+    """Before decoding anything: several extracts merge only if they are different releases
+    with identical specs, and not releases of the same people with memoized columns."""
+    seen: list[tuple[Path, Manifest]] = []
+    for ex, mp in zip(extracts, manifests):
+        m = load_manifest(Path(mp) if mp else default_manifest_path(ex))
+        for _, m0 in seen:
+            if m.nonce == m0.nonce or m.extract.sha256 == m0.extract.sha256:
+                raise UsageError(f"{ex} is the same release as an extract given before it (same nonce or same "
+                                 "file): merging a release with itself would count its rows twice. Give each "
+                                 "release once.")
+        if seen and _spec_signature(m) != _spec_signature(seen[0][1]):
+            raise UsageError(f"cannot merge {ex} with {seen[0][0]}: their manifests describe different columns "
+                             "or mechanism specs (names, eps, categories, bounds, output columns must all be equal; "
+                             "only the nonce, time and hashes may differ). Estimate them separately.")
+        for ex0, m0 in seen:
+            if _same_people(m, m0):
+                cols = ", ".join(map(repr, memoized_columns(m)))
+                raise UsageError(
+                    f"cannot merge {ex} with {ex0}: both are releases of the same people (the same key, fingerprint "
+                    f"{m.key_fingerprint}, and the same subject_key {(m.policy or {}).get('subject_key')!r}) with "
+                    f"memoized column(s) {cols}. A person whose value did not change sends the same memoized report "
+                    "in every release, so the rows of the two releases are not independent and the merged standard "
+                    "errors would be too small (for unchanged values, by about the square root of the number of "
+                    "releases). Estimate each release on its own (one `ldpt estimate` per extract), or merge only "
+                    "releases of different people (released under different keys).")
+        seen.append((ex, m))
+
+
 def accumulate_many(extracts: list[Path], manifests: list[Path | None] | None = None, *,
                     analyses: Analyses | None = None, batch_rows: int = DECODE_BATCH_ROWS,
                     check_alphabet: bool = True, engine: str = "local",
-                    scheduler: str | None = None) -> Accumulated:
-    """Accumulate one or more extracts; extracts must share their mechanism specs."""
+                    scheduler: str | None = None, verify: bool = True) -> Accumulated:
+    """Accumulate one or more extracts; extracts must share their mechanism specs, be different
+    releases and not releases of the same people with memoized columns (``_check_merge``).  With
+    ``verify`` (the default) an extract whose hash or size disagrees with its manifest is
+    refused (``check_integrity``)."""
     an = analyses or Analyses()
     if not extracts:
         raise UsageError("give at least one extract")
     manifests = manifests or [None] * len(extracts)
     if len(manifests) != len(extracts):
         raise UsageError("give one --manifest per extract (or none, to use the default beside each extract)")
+    paths = [Path(ex) for ex in extracts]
+    if len(paths) > 1:
+        _check_merge(paths, manifests)
     total: Accumulated | None = None
-    for ex, mp in zip(extracts, manifests):
-        acc = _accumulate_one(Path(ex), Path(mp) if mp else None, an, batch_rows, check_alphabet, engine, scheduler)
+    for ex, mp in zip(paths, manifests):
+        acc = _accumulate_one(ex, Path(mp) if mp else None, an, batch_rows, check_alphabet, engine, scheduler,
+                              verify)
         if total is None:
             total = acc
-            seen_nonces, seen_hashes = {acc.manifest.nonce}, {acc.manifest.extract.sha256}
             continue
-        if acc.manifest.nonce in seen_nonces or acc.manifest.extract.sha256 in seen_hashes:
-            raise UsageError(f"{ex} is the same release as an extract given before it (same nonce or same file): "
-                             "merging a release with itself would count its rows twice. Give each release once.")
-        seen_nonces.add(acc.manifest.nonce)
-        seen_hashes.add(acc.manifest.extract.sha256)
-        if _spec_signature(acc.manifest) != _spec_signature(total.manifest):
-            raise UsageError(f"cannot merge {ex} with {total.extracts[0]}: their manifests describe different columns "
-                             "or mechanism specs (names, eps, categories, bounds, output columns must all be equal; "
-                             "only the nonce, time and hashes may differ). Estimate them separately.")
         _merge_into(total, acc)
         total.extracts.append(str(ex))
     assert total is not None
@@ -480,9 +555,11 @@ def accumulate_many(extracts: list[Path], manifests: list[Path | None] | None = 
 
 
 def accumulate(extract: Path, manifest_path: Path | None = None, *, batch_rows: int = DECODE_BATCH_ROWS,
-               check_alphabet: bool = True) -> tuple[Manifest, dict[str, Any], int]:
-    """One extract, one-column statistics only (used by validate)."""
-    acc = accumulate_many([extract], [manifest_path], batch_rows=batch_rows, check_alphabet=check_alphabet)
+               check_alphabet: bool = True, verify: bool = False) -> tuple[Manifest, dict[str, Any], int]:
+    """One extract, one-column statistics only (used by validate, which checks the extract's
+    hash itself and reports it: so no refusal here unless ``verify``)."""
+    acc = accumulate_many([extract], [manifest_path], batch_rows=batch_rows, check_alphabet=check_alphabet,
+                          verify=verify)
     return acc.manifest, acc.columns, acc.rows
 
 
@@ -517,38 +594,77 @@ def _policy_column(manifest: Manifest, name: str) -> dict[str, Any]:
     return c if isinstance(c, dict) else {}
 
 
-def describe_values(manifest: Manifest, entry: ColumnEntry) -> str:
-    """The values a numeric column's statistics are about, as the release encoded them: clipped
-    to the bounds (unless the policy refused values outside them), missing values filled."""
-    bounds = (entry.mechanism or {}).get("bounds")
-    if bounds is None and entry.bins:
-        bounds = (entry.bins[0], entry.bins[-1])
+def _num_text(v: Any) -> str:
+    return f"{v:g}" if isinstance(v, (int, float)) else str(v)
+
+
+def _missing_clause(name: str, missing: Any, as_category: str) -> str:
+    """How the release handled a missing value of column ``name`` (the policy's ``missing``)."""
+    if missing in (None, "error"):
+        return f"no {name} missing (the release refuses missing values)"
+    if missing == "as-category":
+        return f"missing {name} counted as {as_category}"
+    if isinstance(missing, dict) and "fill" in missing:
+        return f"missing {name} replaced by {_num_text(missing['fill'])}"
+    shown = ", ".join(f"{k}: {_num_text(v)}" for k, v in missing.items()) if isinstance(missing, dict) else missing
+    return f"missing {name} handled as the policy says (missing: {shown})"
+
+
+def handling(manifest: Manifest, entry: ColumnEntry) -> list[str]:
+    """What the release did to a privatized column's values before randomizing them, read from
+    the manifest (its mechanism spec, bins and embedded policy): clipping to the bounds, the
+    bins, missing and unknown values.  One clause each; every statistic of the column is about
+    the values so encoded."""
+    from .policy import MISSING_LABEL, OTHER_LABEL
+
     cfg = _policy_column(manifest, entry.name)
-    text = entry.name
-    if bounds is not None:
-        lo, hi = bounds
-        text = (f"{entry.name} clipped to [{lo:g}, {hi:g}]" if cfg.get("out_of_bounds", "clip") == "clip"
-                else f"{entry.name} (every value within [{lo:g}, {hi:g}])")
-    fill = cfg.get("missing")
-    if isinstance(fill, dict) and "fill" in fill:
-        text += f", missing values counted as {fill['fill']:g}"
-    return text
+    name = entry.name
+    out: list[str] = []
+    if entry.type in ("numeric", "binned"):
+        bounds = (entry.mechanism or {}).get("bounds")
+        if entry.bins:
+            bounds = (entry.bins[0], entry.bins[-1])
+        if bounds is not None:
+            lo, hi = bounds
+            out.append(f"{name} clipped to [{lo:g}, {hi:g}]" if cfg.get("out_of_bounds", "clip") == "clip"
+                       else f"every {name} within [{lo:g}, {hi:g}] (the release refuses values outside)")
+        if entry.bins:
+            out.append(f"{name} in {len(entry.bins) - 1} bins with edges {', '.join(f'{e:g}' for e in entry.bins)} "
+                       "(the last bin includes its upper edge)")
+        out.append(_missing_clause(name, cfg.get("missing"), MISSING_LABEL))
+    else:
+        out.append(_missing_clause(name, cfg.get("missing"), MISSING_LABEL))
+        unknown = cfg.get("unknown")
+        out.append(f"{name} values not among its listed categories counted as {OTHER_LABEL}" if unknown ==
+                   "as-category" else f"every {name} among its listed categories (the release refuses others)")
+    return out
+
+
+def column_estimand(manifest: Manifest, entry: ColumnEntry) -> str:
+    """The column's clauses joined: what its values are, as the release encoded them."""
+    return "; ".join(handling(manifest, entry))
+
+
+def _with(text: str, *clauses: str) -> str:
+    """A statistic's estimand: what it is, then the encoding clauses of the columns it reads."""
+    return "; ".join([text, *[c for c in clauses if c]])
 
 
 def _frequency_estimands(manifest: Manifest, entry: ColumnEntry, labels: list[str]) -> list[str]:
+    enc = column_estimand(manifest, entry)
     if entry.type == "binned":
-        what = describe_values(manifest, entry)
-        return [f"share of rows with {what} in bin {lab} among all rows" for lab in labels]
-    return [f"share of rows with {_is(entry.name, lab)} among all rows" for lab in labels]
+        return [_with(f"share of rows with {entry.name} in bin {lab} among all rows", enc) for lab in labels]
+    return [_with(f"share of rows with {_is(entry.name, lab)} among all rows", enc) for lab in labels]
 
 
-def _distribution_result(dist: Any, an: Analyses, col: str, confidence: float, what: str) -> DistributionResult:
+def _distribution_result(dist: Any, an: Analyses, col: str, confidence: float, enc: str) -> DistributionResult:
     buckets = f"read off its histogram over {len(dist.mass)} buckets, linear within each"
     qs = tuple(QuantileResult(q, *_interval_fields(dist.quantile_ci(q, confidence)),
-                              estimand=f"{q:g}-quantile of {what} ({buckets})") for q in an.quantiles)
+                              estimand=_with(f"{q:g}-quantile of {col} among all rows ({buckets})", enc))
+               for q in an.quantiles)
     rngs = tuple(RangeResult(lo, hi, *_interval_fields(dist.range_ci(lo, hi, confidence)),
-                             estimand=f"share of rows with {col} in [{lo:g}, {hi:g}) among all rows "
-                                      f"({what}; {buckets})")
+                             estimand=_with(f"share of rows with {col} in [{lo:g}, {hi:g}) among all rows ({buckets})",
+                                            enc))
                  for c, lo, hi in an.ranges if c == col)
     hist = dist.histogram()
     cdf = [float(v) for v in np.atleast_1d(dist.cdf(np.asarray(hist["edges"])))]
@@ -556,11 +672,23 @@ def _distribution_result(dist: Any, an: Analyses, col: str, confidence: float, w
                               tuple(cdf), source=dist)
 
 
+def _distribution_mean(d: Any, confidence: float, estimand: str) -> MeanResult:
+    """The mean of a decoded distribution with its SE and interval (``Distribution.mean_ci``)."""
+    iv = d.mean_ci(confidence)
+    if iv.se is None or not math.isfinite(iv.estimate):
+        return MeanResult(float(d.mean()), note=f"mean of the estimated distribution; no interval ({iv.method})",
+                          estimand=estimand)
+    return MeanResult(float(iv.estimate), float(iv.se), float(iv.lo), float(iv.hi),
+                      note=f"mean of the estimated distribution; interval: {iv.method}", estimand=estimand)
+
+
 def _column_result(entry: ColumnEntry, st: decoders.Decoder, manifest: Manifest, rows: int, confidence: float, z: float,
                    an: Analyses) -> ColumnResult:
     spec = entry.mechanism or {}
+    enc = column_estimand(manifest, entry)
     head: dict[str, Any] = {"name": entry.name, "type": entry.type, "mechanism": spec.get("mechanism"),
-                            "epsilon": spec.get("epsilon"), "rows_reported": st.n if st.n != rows else None}
+                            "epsilon": spec.get("epsilon"), "rows_reported": st.n if st.n != rows else None,
+                            "estimand": enc}
     bounds = spec.get("bounds")
     bounds = None if bounds is None else tuple(bounds)
     if isinstance(st, decoders.FrequencyDecoder):
@@ -575,22 +703,26 @@ def _column_result(entry: ColumnEntry, st: decoders.Decoder, manifest: Manifest,
             shares = st.estimates()[0]
             assert shares is not None  # st.n > 1
             d = binned_distribution(np.asarray(entry.bins, float), shares, prefix_se, cov=cov, n=st.n)
-            dist = _distribution_result(d, an, entry.name, confidence, describe_values(manifest, entry))
+            dist = _distribution_result(d, an, entry.name, confidence, enc)
         return ColumnResult(**head, family="frequency", frequencies=freqs,
                             consistent_method=f"{an.consistency} (post-processed to a valid distribution; biased, "
                                               "for display)", distribution=dist)
-    what = describe_values(manifest, entry)
     if isinstance(st, decoders.DistributionDecoder):
         mean = dist = None
         if st.n > 1:
             d = st.distribution()
-            mean = MeanResult(float(d.mean()), note="mean of the estimated distribution (no SE: use a mean mechanism "
-                                                    "such as hybrid when the mean matters)",
-                              estimand=f"mean of {what}, from the estimated distribution")
-            dist = _distribution_result(d, an, entry.name, confidence, what)
+            mean = _distribution_mean(d, confidence, _with(f"mean of {entry.name} among all rows (from the estimated "
+                                                           "distribution)", enc))
+            dist = _distribution_result(d, an, entry.name, confidence, enc)
         return ColumnResult(**head, family="distribution", bounds=bounds, mean=mean, distribution=dist)
     assert isinstance(st, decoders.MeanDecoder)
-    return ColumnResult(**head, family="mean", bounds=bounds, mean=st.mean(z, f"mean of {what} among all rows"))
+    return ColumnResult(**head, family="mean", bounds=bounds,
+                        mean=st.mean(z, _with(f"mean of {entry.name} among all rows", enc)))
+
+
+def _bounds(entry: ColumnEntry) -> tuple[float, float] | None:
+    b = (entry.mechanism or {}).get("bounds")
+    return None if b is None else (float(b[0]), float(b[1]))
 
 
 SE_METHOD = ("sample standard deviation of the per-row unbiased estimates / sqrt(rows); normal-approximation "
@@ -610,9 +742,11 @@ def report(manifest: Manifest, stats: dict[str, Any], rows: int, confidence: flo
     grouped: tuple[GroupedMeanResult, ...] = ()
     extracts: tuple[str, ...] = ()
     if acc is not None:
-        crosstabs = tuple(st.report(z, an.consistency, a, b) for (a, b), st in acc.crosstabs.items())
-        grouped = tuple(GroupedMeanResult(y, g, st.n, st.report(z, f"mean of {describe_values(manifest, entries[y])}",
-                                                                g))
+        crosstabs = tuple(st.report(z, an.consistency, a, b, handling(manifest, entries[a]) +
+                                    handling(manifest, entries[b])) for (a, b), st in acc.crosstabs.items())
+        grouped = tuple(GroupedMeanResult(y, g, st.n, st.report(z, y, g, _bounds(entries[y]),
+                                                                handling(manifest, entries[y]) +
+                                                                handling(manifest, entries[g])))
                         for (y, g), st in acc.mean_by.items())
         extracts = tuple(acc.extracts)
     public = tuple(c.name for c in manifest.columns if c.type == "public")

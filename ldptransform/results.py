@@ -211,6 +211,9 @@ class ColumnResult(_Subscript):
     bounds: tuple[float, float] | None = None
     mean: MeanResult | None = None
     distribution: DistributionResult | None = None
+    # what the column's values are, as the release encoded them (clipping, bins, missing and
+    # unknown values), from the manifest; every statistic's own estimand ends with it
+    estimand: str = field(default="", compare=False)
 
     def to_dict(self) -> dict[str, Any]:
         d: dict[str, Any] = {"type": self.type, "mechanism": self.mechanism, "epsilon": self.epsilon}
@@ -225,6 +228,8 @@ class ColumnResult(_Subscript):
                 d["mean"] = self.mean.to_dict()
         if self.distribution is not None:
             d["distribution"] = self.distribution.to_dict()
+        if self.estimand:
+            d["estimand"] = self.estimand
         return d
 
     def frame_rows(self) -> list[dict[str, Any]]:
@@ -245,13 +250,17 @@ class ColumnResult(_Subscript):
 @dataclass(frozen=True)
 class CrossTabCell:
     """One cell of a cross-tab: the joint share (``joint``) of row value and column value among
-    all rows, and the share of the column value among rows with the row value (``within``)."""
+    all rows, and the share of the column value among rows with the row value (``within``).
+    ``consistent`` is the joint share post-processed with the other cells into a valid
+    distribution (non-negative, summing to 1), ``within_consistent`` the within-row share
+    computed from those (None where the row's consistent shares are all 0)."""
 
     row: str
     column: str
     joint: MeanResult
     consistent: float
     within: MeanResult
+    within_consistent: float | None = None
 
 
 @dataclass(frozen=True)
@@ -269,7 +278,8 @@ class CrossTabResult(_Subscript):
         return {"rows": self.rows, "columns": self.columns, "rows_used": self.rows_used,
                 "cells": [{"row": c.row, "column": c.column, **iv(c.joint), "consistent": c.consistent}
                           for c in self.cells],
-                "row_shares": [{"row": c.row, "column": c.column, **iv(c.within)} for c in self.cells],
+                "row_shares": [{"row": c.row, "column": c.column, **iv(c.within), "consistent": c.within_consistent}
+                               for c in self.cells],
                 "consistent_method": self.consistent_method}
 
     def frame_rows(self) -> list[dict[str, Any]]:
@@ -278,21 +288,26 @@ class CrossTabResult(_Subscript):
         for c in self.cells:
             v = f"{c.row}|{c.column}"
             out.append(_row(name, "crosstab", None, None, "joint share", v, c.joint, c.joint.estimand, c.consistent))
-            out.append(_row(name, "crosstab", None, None, "share within row", v, c.within, c.within.estimand))
+            out.append(_row(name, "crosstab", None, None, "share within row", v, c.within, c.within.estimand,
+                            c.within_consistent))
         return out
 
 
 @dataclass(frozen=True)
 class GroupMean(_Subscript):
+    """The mean of a numeric column within one group; ``consistent``: the raw mean clipped
+    into the column's bounds (None when there is no mean)."""
+
     group: str
     mean: MeanResult
     share: float | None
     note: str | None = None
+    consistent: float | None = None
 
     def to_dict(self) -> dict[str, Any]:
         m = self.mean
         d: dict[str, Any] = {"group": self.group, "mean": _interval(m.estimate, m.se, m.ci_low, m.ci_high),
-                             "share": self.share}
+                             "share": self.share, "consistent": self.consistent}
         if self.note is not None:
             d["note"] = self.note
         return d
@@ -311,7 +326,7 @@ class GroupedMeanResult(_Subscript):
 
     def frame_rows(self) -> list[dict[str, Any]]:
         name = f"{self.column}:{self.by}"
-        return [_row(name, "grouped mean", None, None, "mean", g.group, g.mean, g.mean.estimand)
+        return [_row(name, "grouped mean", None, None, "mean", g.group, g.mean, g.mean.estimand, g.consistent)
                 for g in self.groups]
 
 

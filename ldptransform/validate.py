@@ -23,7 +23,8 @@ from . import mechanisms as mech
 from .distribution import Distribution
 from .errors import LdptError, UsageError
 from .estimate import Analyses, accumulate, report, z_value
-from .io import TableSource, sha256_file
+from .integrity import check_extract
+from .io import TableSource
 from .keys import SecretKey
 from .manifest import Manifest, default_manifest_path, load_manifest
 from .policy import EPS_TOLERANCE, parse_policy
@@ -307,14 +308,8 @@ def _check_calibration_options(raw: Path | str | None, quantiles: list[float] | 
 
 def _check_hash(extract: Path, manifest: Manifest, rep: _Checks) -> None:
     """The extract's bytes (or every part of a dataset) against the manifest, and its file name."""
-    if manifest.extract.format == "parquet-dataset":
-        _check_dataset_hash(extract, manifest, rep)
-    else:
-        digest, size = sha256_file(extract)
-        rep.add("extract hash", digest == manifest.extract.sha256 and size == manifest.extract.bytes,
-                f"sha256 {digest[:16]}... and {size} bytes match the manifest" if digest == manifest.extract.sha256
-                else f"sha256 of the file ({digest[:16]}...) differs from the manifest "
-                     f"({manifest.extract.sha256[:16]}...): the extract was changed or is not this manifest's")
+    res = check_extract(extract, manifest)  # integrity.py: shared with estimate
+    rep.add("extract hash", res.ok, res.detail)
     if extract.name != manifest.extract.file:
         rep.add("file name", None,
                 f"the manifest describes {manifest.extract.file!r}; this file is named {extract.name!r}")
@@ -449,36 +444,6 @@ def _scan(extract: Path, mpath: Path, manifest: Manifest) -> tuple[dict[str, int
                          "columns")
                 bad[label] = bad.get(label, 0) + k
     return bad, fits
-
-
-def _check_dataset_hash(folder: Path, manifest: Manifest, rep: _Checks) -> None:
-    """A dataset extract: every part listed, no other Parquet file, each part's SHA-256 and size,
-    and the digest over the parts (dataset.dataset_digest) as the manifest records them."""
-    from .dataset import dataset_digest
-
-    parts = manifest.extract.parts or []
-    if not folder.is_dir():
-        rep.add("extract hash", False, f"the manifest describes a dataset folder, but {folder} is not a folder")
-        return
-    listed = {p.file for p in parts}
-    extra = sorted(p.name for p in folder.iterdir() if p.name not in listed and not p.name.startswith(("_", ".")))
-    problems = []
-    for p in parts:
-        f = folder / p.file
-        if not f.is_file():
-            problems.append(f"{p.file} is missing")
-            continue
-        digest, size = sha256_file(f)
-        if digest != p.sha256 or size != p.bytes:
-            problems.append(f"{p.file} differs from the manifest (sha256 {digest[:16]}...)")
-    if extra:
-        problems.append(f"files not in the manifest: {', '.join(extra[:3])}{', ...' if len(extra) > 3 else ''}")
-    total = dataset_digest([p.model_dump() for p in parts])
-    if total != manifest.extract.sha256:
-        problems.append("the digest over the listed parts differs from the manifest's sha256")
-    rep.add("extract hash", not problems,
-            f"all {len(parts)} parts match the manifest (sha256 and bytes), and so does the digest over them"
-            if not problems else "; ".join(problems[:4]) + ": the extract was changed or is not this manifest's")
 
 
 def _reproduce(raw: Path, extract: Path, manifest: Manifest, key: SecretKey, rep: _Checks) -> None:

@@ -44,7 +44,9 @@ def release(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     raw = d / "raw.parquet"
     df.to_parquet(raw, index=False)
     out = d / "x.parquet"
-    privatize(raw, parse_policy(POLICY, "results policy"), KEY, out, nonce="7" * 32)
+    with pytest.MonkeyPatch.context() as mp:  # module fixtures run before the per-test private folder is set
+        mp.setenv("LDPT_PRIVATE_DIR", str(tmp_path_factory.mktemp("ldpt-private-module")))
+        privatize(raw, parse_policy(POLICY, "results policy"), KEY, out, nonce="7" * 32)
     return {"raw": raw, "out": out, "dir": d}
 
 
@@ -64,7 +66,11 @@ def test_estimate_is_typed_and_frozen(release: dict[str, Path]) -> None:
     assert isinstance(pay.mean, MeanResult) and pay.mean.se is not None and pay.mean.se > 0
     assert pay.distribution is None
     assert isinstance(years.distribution, DistributionResult) and len(years.distribution.quantiles) == 2
-    assert hours.mean is not None and hours.mean.se is None and hours.distribution is not None
+    # a distribution column's mean has its SE and interval (Distribution.mean_ci)
+    assert hours.mean is not None and hours.mean.se is not None and hours.mean.se > 0
+    lo, est, hi = hours.mean.ci_low, hours.mean.estimate, hours.mean.ci_high
+    assert lo is not None and est is not None and hi is not None
+    assert lo < est < hi and hours.distribution is not None
     assert [r.low for r in hours.distribution.ranges] == [20.0]
     assert isinstance(res.crosstabs[0], CrossTabResult) and isinstance(res.grouped_means[0], GroupedMeanResult)
     with pytest.raises(dataclasses.FrozenInstanceError):
@@ -78,16 +84,21 @@ def test_to_dict_is_the_json_shape(release: dict[str, Path]) -> None:
     d = res.to_dict()
     assert json.loads(json.dumps(d)) == d
     assert list(d) == ["rows", "confidence", "columns", "crosstabs", "grouped_means", "se_method"]
-    assert list(d["columns"]["site"]) == ["type", "mechanism", "epsilon", "frequencies", "consistent_method"]
-    assert list(d["columns"]["pay"]) == ["type", "mechanism", "epsilon", "bounds", "mean"]
+    assert list(d["columns"]["site"]) == ["type", "mechanism", "epsilon", "frequencies", "consistent_method",
+                                          "estimand"]
+    assert list(d["columns"]["pay"]) == ["type", "mechanism", "epsilon", "bounds", "mean", "estimand"]
     assert list(d["columns"]["years"]) == ["type", "mechanism", "epsilon", "frequencies", "consistent_method",
-                                           "distribution"]
-    assert list(d["columns"]["hours"]) == ["type", "mechanism", "epsilon", "bounds", "mean", "distribution"]
+                                           "distribution", "estimand"]
+    assert list(d["columns"]["hours"]) == ["type", "mechanism", "epsilon", "bounds", "mean", "distribution",
+                                           "estimand"]
+    assert d["columns"]["pay"]["estimand"] == "pay clipped to [0, 100]; missing pay replaced by 50"
     assert list(d["columns"]["hours"]["distribution"]) == ["method", "quantiles", "ranges", "histogram", "cdf"]
     assert set(d["columns"]["site"]["frequencies"][0]) == {"value", "estimate", "se", "ci_low", "ci_high",
                                                           "count_estimate", "consistent"}
     assert set(d["crosstabs"][0]) == {"rows", "columns", "rows_used", "cells", "row_shares", "consistent_method"}
-    assert set(d["grouped_means"][0]["groups"][0]) >= {"group", "mean", "share"}
+    assert set(d["crosstabs"][0]["row_shares"][0]) == {"row", "column", "estimate", "se", "ci_low", "ci_high",
+                                                       "consistent"}
+    assert set(d["grouped_means"][0]["groups"][0]) >= {"group", "mean", "share", "consistent"}
     # the typed fields and the dict agree, and the dict view reads like the dict
     pay_mean = res.columns["pay"].mean
     assert pay_mean is not None and d["columns"]["pay"]["mean"]["estimate"] == pay_mean.estimate
@@ -105,12 +116,20 @@ def test_to_frame_has_one_row_per_statistic_with_its_estimand(release: dict[str,
                       ("hours", "range share"): 1, ("site:years", "joint share"): 16,
                       ("site:years", "share within row"): 16, ("pay:site", "mean"): 4}
     est = dict(zip(zip(f["column"], f["statistic"], f["value"].fillna("")), f["estimand"]))
-    assert est[("site", "frequency", "a")] == "share of rows with site = a among all rows"
-    assert est[("site", "frequency", "<missing>")] == "share of rows with site missing among all rows"
-    assert est[("pay", "mean", "")] == "mean of pay clipped to [0, 100], missing values counted as 50 among all rows"
-    assert est[("pay:site", "mean", "b")].endswith("among rows with site = b")
+    site_enc = "missing site counted as <missing>; every site among its listed categories (the release refuses others)"
+    years_enc = ("years clipped to [0, 40]; years in 4 bins with edges 0, 2, 5, 10, 40 (the last bin includes its "
+                 "upper edge); no years missing (the release refuses missing values)")
+    pay_enc = "pay clipped to [0, 100]; missing pay replaced by 50"
+    assert est[("site", "frequency", "a")] == f"share of rows with site = a among all rows; {site_enc}"
+    assert est[("site", "frequency", "<missing>")] == f"share of rows with site missing among all rows; {site_enc}"
+    assert est[("years", "frequency", "[2, 5)")] == \
+        f"share of rows with years in bin [2, 5) among all rows; {years_enc}"
+    assert est[("pay", "mean", "")] == f"mean of pay among all rows; {pay_enc}"
+    assert est[("pay:site", "mean", "b")] == f"mean of pay among rows with site = b; {pay_enc}; {site_enc}"
     assert est[("site:years", "share within row", "a|[2, 5)")] == \
-        "share of rows with years = [2, 5) among rows with site = a"
+        f"share of rows with years = [2, 5) among rows with site = a; {site_enc}; {years_enc}"
+    assert est[("years", "quantile", "0.25")].startswith("0.25-quantile of years among all rows (")
+    assert est[("years", "quantile", "0.25")].endswith(years_enc)
     assert "from the estimated distribution" in est[("hours", "mean", "")]
     assert est[("hours", "range share", "20..30")].startswith("share of rows with hours in [20, 30) among all rows")
     row = f[(f["column"] == "pay") & (f["statistic"] == "mean")].iloc[0]
@@ -148,9 +167,9 @@ def test_validation_report_is_typed(release: dict[str, Path], tmp_path: Path) ->
     assert list(frame.columns) == ["check", "status", "ok", "detail"] and len(frame) == len(rep.checks)
     assert rep.calibration is not None
     cal = rep.calibration.to_frame()
-    # 4 + 4 frequencies, 1 mean; years: 3 quantiles and 4 ranges; hours: the same, and its mean (no interval)
+    # 4 + 4 frequencies, 1 mean; years: 3 quantiles and 4 ranges; hours: the same, and its mean (with an interval)
     assert cal.groupby("statistic").size().to_dict() == {"frequency": 8, "mean": 2, "quantile": 6, "range share": 8}
-    assert cal["score"].isna().sum() == 1 and rep.calibration.statistics == 23
+    assert cal["score"].isna().sum() == 0 and rep.calibration.statistics == 24
     key = write_fixed_key(tmp_path / "k.key")
     r = CliRunner().invoke(app, ["validate", str(release["out"]), "--raw", str(release["raw"]), "--key", str(key),
                                  "--format", "json"])

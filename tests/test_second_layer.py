@@ -234,7 +234,7 @@ def test_the_refusal_names_the_mechanisms_from_the_contract() -> None:
 def nights(tmp_path_factory: pytest.TempPathFactory) -> dict[Any, Any]:
     tmp = tmp_path_factory.mktemp("layer")
     df = people(20000)
-    out: dict[Any, Any] = {"df": df}
+    out: dict[Any, Any] = {"df": df, "tmp": tmp}
     for layer in (True, False):
         for nonce in (NIGHT_1, NIGHT_2):
             out[layer, nonce] = release(df, layered_policy(layer), tmp, nonce if layer else PLAIN[nonce],
@@ -246,10 +246,7 @@ def test_frequencies_and_means_decode_unbiasedly(nights: dict[Any, Any], tmp_pat
     """Each layered column decoded by its family decoder from the manifest's composite spec: every
     share within 4.5 SE of the truth, the mean too (20000 rows, fixed key and nonce)."""
     df = nights["df"]
-    ext, _ = nights[True, NIGHT_1]
-    path = tmp_path / "e.parquet"
-    ext.to_parquet(path)
-    (tmp_path / "e.manifest.json").write_text(json.dumps(nights[True, NIGHT_1][1]))
+    path = nights["tmp"] / "pub" / f"l1_{NIGHT_1[-3:]}.parquet"  # as released, beside its manifest
     res = estimate(path).to_dict()["columns"]
     for col in ("colour", "shade", "tone"):
         truth = df[col].value_counts(normalize=True)

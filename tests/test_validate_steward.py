@@ -93,7 +93,7 @@ MECHANISMS: dict[str, tuple[str, dict[str, Any]]] = {
     "hierarchy": ("pay", {**PAY, "mechanism": "hierarchy"}),
     "bins": ("hours", {"type": "numeric", "bins": [0, 30, 36, 40, 45, 70], "epsilon": 1.5}),
 }
-EXPECTED = {"frequency": {"frequency"}, "mean": {"mean"}, "distribution": {"quantile", "range share"},
+EXPECTED = {"frequency": {"frequency"}, "mean": {"mean"}, "distribution": {"mean", "quantile", "range share"},
             "binned": {"frequency", "quantile", "range share"}}
 FAMILY = {**{m: "frequency" for m in ("grr", "oue", "sue", "olh", "hadamard", "subset", "matrix")},
           **{m: "mean" for m in ("two-point", "piecewise", "hybrid", "discrete-laplace")},
