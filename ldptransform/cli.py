@@ -189,9 +189,14 @@ def privatize(
     if res.manifest.privacy.row_order == "as-input":
         caution += ("; CAUTION: the rows keep the input's order (policy output.row_order: as-input): if the input "
                     "is sorted or grouped by anything, a row's neighbours tell about it")
+    # steward-only counts of the values changed before randomizing (the diagnostics file has them too)
+    changed = "; values changed before randomizing (steward-only): " + "; ".join(res.column_counts) \
+        if res.column_counts else ""
     err_console.print(f"privatized {res.manifest.rows} rows into {res.extract_path} (manifest {res.manifest_path}; "
                       f"steward-only diagnostics {res.diagnostics_path}) in {res.seconds:.1f} s, "
-                      f"eps {res.manifest.privacy.epsilon_per_row_used:g} per row{caution}", markup=False)
+                      f"eps {res.manifest.privacy.epsilon_per_row_used:g} per row{caution}{changed}", markup=False)
+    for w in res.warnings:  # above 1% of a column's rows changed before randomizing: what to do
+        err_console.print(f"WARNING: {w}", markup=False)
     if res.ledger_release_id is not None:
         held = (f"; held back (steward-only, do not publish): {res.held_back_subjects} subject(s) past the lifetime "
                 f"budget, {res.held_back_rows} row(s), released as placeholder rows (reports of random values, none "
