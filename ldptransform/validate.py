@@ -40,6 +40,7 @@ from .results import (
     CalibrationResult,
     Check,
     EstimateResult,
+    MeanResult,
     RangeResult,
     ValidationReport,
 )
@@ -339,7 +340,7 @@ def _check_quality(manifest: Manifest, rows: int, rep: _Checks) -> None:
     configs = lp.by_name
     rate = (manifest.privacy.reported_columns or 0) / manifest.privacy.privatized_columns \
         if manifest.privacy.strategy == "sample" and manifest.privacy.privatized_columns else 1.0
-    missed, met, lines = [], 0, []
+    missed, met, lines, unchecked = [], 0, [], []
     for c in manifest.columns:
         if c.mechanism is None or c.name not in configs:
             continue
@@ -354,7 +355,10 @@ def _check_quality(manifest: Manifest, rows: int, rep: _Checks) -> None:
             se = st.get("se")
             text = f"{c.name} {st['statistic']}: predicted SE {se:.4g} (target {want})" if se is not None else \
                 f"{c.name} {st['statistic']}: no prediction"
-            if st.get("meets_target") is False:
+            if se is None:  # a target with no prediction is not checked, and never passed
+                why = st.get("note") or st.get("se_meaning") or "no prediction"
+                unchecked.append(f"{c.name} {st['statistic']}: target {want} not checked ({why})")
+            elif st.get("meets_target") is False:
                 needed = st.get("rows_needed")
                 missed.append(text + (f", needs about {needed} rows" if needed else "") +
                               (" (no eps-LDP mechanism could meet it at this row count)"
@@ -362,14 +366,20 @@ def _check_quality(manifest: Manifest, rows: int, rep: _Checks) -> None:
             else:
                 met += 1
                 lines.append(text)
-    if not missed and not met:
+    tail = ("; " + "; ".join(unchecked)) if unchecked else ""
+    basis = ("predicted: worst case over data, for medians and the means of distribution mechanisms on skewed "
+             "reference data")
+    if not missed and not met and not unchecked:
         rep.add("quality", True, "the policy sets no quality targets (quality: {max_se: ...}); nothing to check")
     elif missed:
         rep.add("quality", False, f"{len(missed)} statistic(s) miss their policy target at {rows} rows: " +
-                "; ".join(missed))
+                "; ".join(missed) + tail)
+    elif unchecked:
+        rep.add("quality", None, f"{len(unchecked)} targeted statistic(s) could not be checked at {rows} rows"
+                + (f", {met} meet their targets ({basis}): " + "; ".join(lines) if met else "") + tail)
     else:
         rep.add("quality", True, f"all {met} targeted statistic(s) meet their policy targets at {rows} rows "
-                "(predicted worst case over data): " + "; ".join(lines))
+                f"({basis}): " + "; ".join(lines))
 
 
 FIT_ALPHA = 0.001  # family-wise false-alarm rate of the fit check, over all its tests (Bonferroni)
@@ -450,22 +460,34 @@ def _reproduce(raw: Path, extract: Path, manifest: Manifest, key: SecretKey, rep
     """Re-derive the extract from the raw data, the key and the manifest's nonce, into a fresh
     folder of the steward's private folder (mode 0700, removed afterwards; never beside the
     extract), with a throwaway ledger if the policy has a lifetime budget (the steward's ledger
-    is not charged again), outside the record of release nonces (release/nonces.py)."""
-    from .io import private_dir
+    is neither charged again nor read: a release re-checks the same after any number of later
+    releases), outside the record of release nonces (release/nonces.py).  Without a private
+    folder yet, the scratch folder is a fresh 0700 one in the system's temporary folder, so the
+    check creates no steward state either."""
+    from .io import private_dir, private_dir_location
+    from .ledger import BudgetExhaustedError
     from .release.nonces import rederiving
 
     policy = dict(manifest.policy)
     if "output" not in policy and manifest.privacy.row_order == "as-input":
         policy["output"] = {"row_order": "as-input"}  # a manifest from before the row shuffle: input order
     lp = parse_policy(policy, "embedded in the manifest")
-    with tempfile.TemporaryDirectory(prefix="ldpt-validate-", dir=private_dir()) as tmp, rederiving():
+    scratch = private_dir() if private_dir_location().exists() else None
+    with tempfile.TemporaryDirectory(prefix="ldpt-validate-", dir=scratch) as tmp, rederiving():
         Path(tmp).chmod(0o700)
         (Path(tmp) / "out").mkdir(mode=0o700)
         out = Path(tmp) / "out" / manifest.extract.file
         ledger = Path(tmp) / "ledger.sqlite3" if lp.policy.budget.lifetime_epsilon is not None else None
-        res = privatize(raw, lp, key, out, manifest_path=Path(tmp) / "out" / "m.json",
-                        diagnostics_path=Path(tmp) / "d.json", nonce=manifest.nonce,
-                        fragment_rows=manifest.extract.part_rows, ledger_path=ledger)
+        try:
+            res = privatize(raw, lp, key, out, manifest_path=Path(tmp) / "out" / "m.json",
+                            diagnostics_path=Path(tmp) / "d.json", nonce=manifest.nonce,
+                            fragment_rows=manifest.extract.part_rows, ledger_path=ledger,
+                            allow_partial=ledger is not None and manifest.privacy.placeholder_rows is not None)
+        except BudgetExhaustedError:
+            rep.add("reproduced", None, "not checked: re-derived with an empty ledger, the raw data's own rows take "
+                    "some people past the policy's lifetime_epsilon, so this raw data cannot be the release's "
+                    "input as released (or the release held people back); nothing was charged or written")
+            return
         digest = res.manifest.extract.sha256
         specs_same = [c.mechanism for c in res.manifest.columns] == [c.mechanism for c in manifest.columns]
         if digest == manifest.extract.sha256 and specs_same:
@@ -538,9 +560,17 @@ def _calibration_entries(est: EstimateResult, truth: _Truth, z: float, confidenc
     for name, col in est.columns.items():
         for f, t in zip(col.frequencies, truth.shares.get(name, ())):
             out.append(_entry(name, "frequency", f.value, t, f, z, f.estimand))
-        if col.mean is not None and name in truth.means:
-            out.append(_entry(name, "mean", None, truth.means[name], col.mean, z, col.mean.estimand))
         d = col.distribution
+        mean = col.mean
+        if (d is not None and d.source is not None and name in truth.means
+                and (mean is None or mean.ci_low is None or mean.ci_high is None)):
+            # a distribution column's mean, with the interval of Distribution.mean_ci
+            iv = d.source.mean_ci(confidence)
+            mean = MeanResult(iv.estimate, iv.se, iv.lo, iv.hi, note=iv.method,
+                              estimand=mean.estimand if mean is not None else f"mean of {name} among all rows, from "
+                              "the estimated distribution")
+        if mean is not None and name in truth.means:
+            out.append(_entry(name, "mean", None, truth.means[name], mean, z, mean.estimand))
         if d is not None and d.source is not None and name in truth.masses:
             src = d.source
             true_dist = Distribution(src.edges, truth.masses[name], method="raw data", n=truth.rows,

@@ -61,7 +61,7 @@ def test_every_example_policy_passes_steward_validation(path: Path, tmp_path: Pa
     assert "frequency" in kinds
     if path.name == "staff_survey_planned.yaml":  # square-wave pay and binned tenure: their quantiles and ranges
         cols = {(e.column, e.statistic) for e in cal.entries if e.inside is not None}
-        assert {("pay", "quantile"), ("pay", "range share"), ("tenure_years", "quantile"),
+        assert {("pay", "mean"), ("pay", "quantile"), ("pay", "range share"), ("tenure_years", "quantile"),
                 ("tenure_years", "range share"), ("weekly_hours", "mean")} <= cols
 
 
@@ -98,6 +98,14 @@ EXPECTED = {"frequency": {"frequency"}, "mean": {"mean"}, "distribution": {"mean
 FAMILY = {**{m: "frequency" for m in ("grr", "oue", "sue", "olh", "hadamard", "subset", "matrix")},
           **{m: "mean" for m in ("two-point", "piecewise", "hybrid", "discrete-laplace")},
           "square-wave": "distribution", "hierarchy": "distribution", "bins": "binned"}
+
+
+def test_every_registered_mechanism_has_a_steward_release_here() -> None:
+    """The per-mechanism test below covers the registry: a mechanism added to it without a
+    steward-side release here fails this test."""
+    from ldptransform import mechanisms as mech
+
+    assert set(mech.registry()) <= set(MECHANISMS), sorted(set(mech.registry()) - set(MECHANISMS))
 
 
 @pytest.fixture(scope="module")
@@ -185,3 +193,27 @@ def test_the_calibration_checks_the_quantiles_and_ranges_asked_for(tmp_path: Pat
     assert bad.exit_code == 2 and "'site' has no distribution" in bad.output and "Traceback" not in bad.output
     no_raw = runner.invoke(app, ["validate", str(out), "--quantiles", "0.5"])
     assert no_raw.exit_code == 2 and "--raw" in no_raw.output
+
+
+def test_a_target_without_a_prediction_is_not_passed(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """validate's quality check never passes a target it could not check: a targeted statistic
+    without a predicted SE makes the check a warning that names it and says why."""
+    import ldptransform.plan as plan_module
+    from ldptransform.plan import PlanStatistic
+
+    raw, out = _planned_release(tmp_path)
+    assert validate(out).check("quality").ok is True  # type: ignore[union-attr]
+    real = plan_module.column_statistics
+
+    def without_mean_prediction(rc: Any, *args: Any, **kw: Any) -> list[PlanStatistic]:
+        stats = real(rc, *args, **kw)
+        if rc.name != "pay":
+            return stats
+        return [PlanStatistic.from_dict({"statistic": "mean", "se": None, "target_se": None,
+                                         "target_relative_se": 0.05, "note": "the reason given"})
+                if s.statistic == "mean" else s for s in stats]
+
+    monkeypatch.setattr(plan_module, "column_statistics", without_mean_prediction)
+    quality = validate(out).check("quality")
+    assert quality is not None and quality.ok is None, quality
+    assert "pay mean: target SE/width <= 0.05 not checked (the reason given)" in quality.detail
