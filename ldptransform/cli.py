@@ -327,13 +327,17 @@ def _estimate_csv(result: EstimateResult) -> str:
 
 def _check_estimate_out(out: Path, extracts: list[Path], manifests: list[Path] | None, overwrite: bool) -> None:
     """``estimate --out``: never an extract or manifest it reads (nor inside a dataset extract),
-    and not an existing file without --overwrite."""
+    nor the steward's default ledger or nonce record, and not an existing file without --overwrite."""
+    from .io import private_dir_location
+    from .ledger.store import DEFAULT_NAME
     from .manifest import default_manifest_path
-    from .outputs import ESTIMATES, MANIFEST, check_outputs
+    from .outputs import ESTIMATES, LEDGER, MANIFEST, check_outputs
+    from .release.nonces import STATE_NAME
 
     known: list[tuple[str, Path | None]] = [("extract", Path(e)) for e in extracts]
     known += [(MANIFEST, Path(m)) for m in manifests] if manifests else \
         [(MANIFEST, default_manifest_path(Path(e))) for e in extracts]
+    known += [(LEDGER, private_dir_location() / DEFAULT_NAME), ("nonce record", private_dir_location() / STATE_NAME)]
     check_outputs([(ESTIMATES, out)], known, overwrite=overwrite)
 
 

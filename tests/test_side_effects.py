@@ -148,3 +148,19 @@ def test_validate_creates_no_private_folder(tmp_path: Path, monkeypatch: pytest.
     assert rep.ok and _reproduced(rep).ok is True
     assert not elsewhere.exists()
     assert listing(tmp_path / "pub") == ["x.manifest.json", "x.parquet"]
+
+
+def test_estimate_out_never_replaces_the_stewards_state(tmp_path: Path, private_dir: Path, ldpt) -> None:
+    """``estimate --out`` (even with --overwrite) refuses the steward's default ledger and nonce
+    record, with exit 2 and the file untouched."""
+    key = write_fixed_key(tmp_path / "k.key")
+    raw = _raw(tmp_path / "raw.csv")
+    pol = write_policy(tmp_path / "p.yaml", _policy())
+    (tmp_path / "pub").mkdir()
+    out = tmp_path / "pub" / "x.parquet"
+    assert ldpt("privatize", raw, "--policy", pol, "--key", key, "--out", out).returncode == 0
+    before = _state(private_dir)
+    for name, role in (("ledger.sqlite3", "ledger"), ("nonces.jsonl", "nonce record")):
+        res = ldpt("estimate", out, "--out", private_dir / name, "--overwrite")
+        assert res.returncode == 2 and f"is the {role}" in res.stderr and "Traceback" not in res.stderr, res.stderr
+    assert _state(private_dir) == before
