@@ -25,6 +25,14 @@ sample``) are left out of that column's statistics: which rows report a column i
 by the keyed PRF independently of the data, so the reporting rows are a random sample of
 all rows and their average is unbiased for the whole table.
 
+Nothing is decoded from an extract whose bytes are not the ones its manifest describes (hash
+and size, part by part for a dataset: ``check_integrity``, the check validate reports too), and
+several extracts merge only when they are different releases with identical specs that are not
+releases of the same people with memoized columns (``_check_merge``: their reports repeat, so their
+rows are not independent).  Every statistic names its estimand: what it is, then how the release
+encoded the values of the columns it reads (``handling``: clipping, bins, missing and unknown
+values, from the manifest and its embedded policy).
+
 The standard error is the sample standard deviation of the per-row estimates over
 sqrt(n).  For rows drawn at random from a population it is the usual SE of a mean; for
 the fixed set of rows in the extract it is slightly conservative (it also counts the
@@ -595,7 +603,7 @@ def _policy_column(manifest: Manifest, name: str) -> dict[str, Any]:
 
 
 def _num_text(v: Any) -> str:
-    return f"{v:g}" if isinstance(v, (int, float)) else str(v)
+    return f"{v:g}" if isinstance(v, (int, float)) and not isinstance(v, bool) else str(v)
 
 
 def _missing_clause(name: str, missing: Any, as_category: str) -> str:

@@ -11,6 +11,7 @@ nonce are fixed, so every check is deterministic.  Tolerance for estimates again
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -168,3 +169,24 @@ def test_the_text_output_shows_each_column_estimand_once(release: dict[str, Any]
     text = " ".join(r.stdout.split())  # the console may wrap long lines
     for name, enc in (("site", SITE), ("pay", PAY), ("age", AGE), ("tenure", TENURE), ("grade", GRADE)):
         assert text.count(f"{name} estimand: {enc}") == 1, name
+
+
+def test_the_encoding_clauses_follow_the_manifest(release: dict[str, Any]) -> None:
+    """The clauses come from the manifest's embedded policy: values refused outside the bounds
+    are said to be within them, and a missing-value handling this version does not know is
+    quoted as the policy gives it rather than left out."""
+    import copy
+
+    from ldptransform.estimate import column_estimand
+    from ldptransform.manifest import load_manifest
+
+    out: Path = release["out"]
+    m = load_manifest(out.with_name(out.stem + ".manifest.json"))
+    pol = copy.deepcopy(m.policy)
+    pol["columns"]["pay"]["out_of_bounds"] = "error"
+    pol["columns"]["pay"]["missing"] = {"as_answer": True}
+    changed = m.model_copy(update={"policy": pol})
+    assert column_estimand(changed, changed.column("pay")) == \
+        "every pay within [0, 150000] (the release refuses values outside); missing pay handled as the policy " \
+        "says (missing: as_answer: True)"
+    assert column_estimand(m, m.column("pay")) == PAY

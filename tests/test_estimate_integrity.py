@@ -87,9 +87,12 @@ def pair(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
 
 # -- a mismatched extract and manifest ------------------------------------------------------------
 
-def test_the_right_pair_is_decoded(pair: dict[str, Path]) -> None:
+def test_the_right_pair_is_decoded(pair: dict[str, Path], tmp_path: Path) -> None:
     res = estimate(pair["one"], _manifest(pair["one"]))
     assert res.rows == ROWS and res.columns["score"].epsilon == 1.0
+    renamed = tmp_path / "renamed.parquet"  # a renamed copy still holds the manifest's bytes
+    shutil.copy(pair["one"], renamed)
+    assert estimate(renamed, _manifest(pair["one"])) == res
 
 
 def test_the_manifest_of_another_release_is_refused(pair: dict[str, Path], ldpt: Any) -> None:
