@@ -553,8 +553,8 @@ def _plan_row(c: dict, s: dict) -> tuple[str, ...]:
 
 
 def _plan_table(result: dict) -> None:
-    t = Table(title=f"Predicted precision at {result['rows']} rows (worst case over data; SE as `ldpt estimate` "
-                    "reports it)", title_justify="left")
+    t = Table(title=f"Predicted precision at {result['rows']} rows (worst case over data, medians and distribution "
+                    "means on skewed reference data; SE as `ldpt estimate` reports it)", title_justify="left")
     for h in ("column", "mechanism", "eps", "statistic", "SE", "best possible", "target", "meets", "rows needed",
               "efficiency"):
         t.add_column(h)
