@@ -527,7 +527,7 @@ def test_bucket_intervals_hold_whatever_the_shape_inside_a_bucket(place):
         missed += not (li.lo <= truth <= li.hi)
     m = d.mean_ci()
     assert m.lo <= float(x.mean()) <= m.hi, (x.mean(), m)
-    assert m.se == pytest.approx(math.sqrt(d.cov.diagonal() @ (d.centers - 5.0) ** 2))
+    assert d.cov is not None and m.se == pytest.approx(math.sqrt(d.cov.diagonal() @ (d.centers - 5.0) ** 2))
     lm = lin.mean_ci()
     missed += not (lm.lo <= float(x.mean()) <= lm.hi)
     assert missed >= 3, missed
@@ -741,7 +741,8 @@ def test_release_writes_reports_that_decode_to_the_same_statistics(tmp_path, fmt
     df.to_csv(raw, index=False)
     pol = {"budget": {"epsilon_per_row": 2.0}, "columns": {
         "pay": {"type": "numeric", "bounds": list(PAY), "epsilon": 1.0, "mechanism": "hierarchy", "leaves": 64},
-        "hours": {"type": "numeric", "bounds": [0, 70], "epsilon": 1.0, "needs": ["quantiles"]}}}
+        "hours": {"type": "numeric", "bounds": [0, 70], "epsilon": 1.0, "needs": ["quantiles"],
+                  "mechanism": "square-wave"}}}
     (tmp_path / "p.json").write_text(json.dumps(pol))
     out = tmp_path / f"x.{fmt}"
     res = privatize(raw, load_policy(tmp_path / "p.json"), KEY, out, nonce=NONCE)
