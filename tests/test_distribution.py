@@ -4,10 +4,8 @@ intervals of ``ldptransform.distribution``.
 Release noise comes only from the keyed PRF under FIXED test keys and nonces, so every Monte
 Carlo check is deterministic (it passes or fails the same way on every run).  numpy's
 generator makes synthetic input data only (fixed seeds).  Tolerances are stated next to each
-check.  Coverage checks repeat a release with different nonces over the same synthetic rows
-and count how often the 95% interval holds the truth of those rows; the accepted band is 90%
-to 99%, and each coverage test also shows that a wrong interval (half as wide) falls outside
-that band, so the test can fail.
+check.  The coverage studies of the intervals over repeated releases are in
+tests/test_coverage.py.
 """
 
 from __future__ import annotations
@@ -604,73 +602,6 @@ def test_square_wave_bootstrap_is_reproducible_and_stated():
 
 
 # --------------------------------------------------------------------------------------
-# coverage of the 95% intervals over repeated releases
-# --------------------------------------------------------------------------------------
-
-COVER_N = 20_000
-COVER_RANGE = (42500.0, 65000.0)      # edges of the 16 bins and of the 64 leaves alike
-
-
-def _cover_truth(x: np.ndarray) -> tuple[float, float]:
-    return float(np.median(x)), float(np.mean((x >= COVER_RANGE[0]) & (x < COVER_RANGE[1])))
-
-
-def _coverage(intervals: list[tuple[Interval, Interval]], truth: tuple[float, float]) -> tuple[float, float, float]:
-    """(median coverage, range coverage, coverage of the range interval made half as wide)."""
-    med, share = truth
-    cq = np.mean([iq.lo <= med <= iq.hi for iq, _ in intervals])
-    cr = np.mean([ir.lo <= share <= ir.hi for _, ir in intervals])
-    half = np.mean([abs(ir.estimate - share) <= (ir.hi - ir.lo) / 4 for _, ir in intervals])
-    return float(cq), float(cr), float(half)
-
-
-def test_hierarchy_interval_coverage():
-    """300 releases of 20000 pay rows, hierarchy B = 4, 64 leaves, eps = 1."""
-    m = Hierarchy(1.0, PAY, 4, 64)
-    x = pay_data(COVER_N, 11)
-    ivs = []
-    for r in range(300):
-        d = m.decode(release_stats(m, x, "cover-h", f"{r:032x}"), COVER_N)
-        ivs.append((d.quantile_ci(0.5), d.range_ci(*COVER_RANGE)))
-    cq, cr, half = _coverage(ivs, _cover_truth(x))
-    assert 0.90 <= cq <= 0.99, cq
-    assert 0.90 <= cr <= 0.99, cr
-    assert half < 0.85, half
-
-
-def test_bins_interval_coverage():
-    """200 releases of the same rows cut into 16 equal bins and released through the
-    categorical oracle the tool picks (subset selection at eps = 1, k = 16); prefix SEs and covariance from
-    the per-row co-support counts, as binned_distribution's docstring describes."""
-    k = 16
-    edges = np.linspace(*PAY, k + 1)
-    m = choose_categorical(1.0, [str(i) for i in range(k)])[0]
-    x = pay_data(COVER_N, 11)
-    codes = np.clip(np.searchsorted(edges, x, side="right") - 1, 0, k - 1)
-    ivs, ivs_prefix_only = [], []
-    for r in range(200):
-        arrays = m.randomize(codes, prf_words("cover-bins", COVER_N, m.words_per_row, f"{r:032x}"))
-        S = m.support(arrays)
-        s = S.sum(axis=0)
-        co = S.T.astype(float) @ S.astype(float)
-        f = (s / COVER_N - m.q_star) / (m.p_star - m.q_star)
-        cov = frequency_covariance(m.p_star, m.q_star, COVER_N, s, co)
-        prefix_se = np.sqrt(np.maximum(np.diag(np.cumsum(np.cumsum(cov, 0), 1)), 0.0))
-        d = binned_distribution(edges, f, prefix_se, cov=cov, n=COVER_N)
-        d2 = binned_distribution(edges, f, prefix_se, n=COVER_N)
-        ivs.append((d.quantile_ci(0.5), d.range_ci(*COVER_RANGE)))
-        ivs_prefix_only.append((d2.quantile_ci(0.5), d2.range_ci(*COVER_RANGE)))
-    truth = _cover_truth(x)
-    cq, cr, half = _coverage(ivs, truth)
-    assert cq >= 0.93, cq                     # the median's interval spans its bin: conservative
-    assert 0.90 <= cr <= 0.99, cr
-    assert half < 0.85, half
-    cq2, cr2, _ = _coverage(ivs_prefix_only, truth)
-    assert cq2 >= 0.93, cq2
-    assert cr2 >= 0.95, cr2                   # the SE bound for an interior range: conservative
-
-
-# --------------------------------------------------------------------------------------
 # policy and release
 # --------------------------------------------------------------------------------------
 
@@ -770,36 +701,3 @@ def test_release_writes_reports_that_decode_to_the_same_statistics(tmp_path, fmt
         m.add_stats(want, m.randomize(x, words))
         assert np.array_equal(got, want), name
         assert m.decode(got, n).quantile(0.5) > 0
-
-
-def _square_wave_coverage(n: int, releases: int) -> tuple[float, float, float]:
-    m = SquareWave(1.0, PAY)
-    x = pay_data(n, 11)
-    ivs = []
-    for r in range(releases):
-        d = m.decode(release_stats(m, x, "cover-sw", f"{r:032x}"), n, replicates=200)
-        ivs.append((d.quantile_ci(0.5), d.range_ci(*COVER_RANGE)))
-    return _coverage(ivs, _cover_truth(x))
-
-
-@pytest.mark.slow
-def test_square_wave_bootstrap_coverage_at_20000_rows():
-    """60 releases of 20000 pay rows, square wave (grid 256, eps 1), 200 bootstrap redraws,
-    bias-aware intervals: in the band (measured: median 0.95, range 0.967; over 100 releases
-    0.96 and 0.98: cut to 60 to keep the suite under 10 minutes).  About 45 s."""
-    cq, cr, half = _square_wave_coverage(20_000, 60)
-    assert 0.90 <= cq <= 0.99, cq
-    assert 0.90 <= cr <= 0.99, cr
-    assert half < 0.85, half
-
-
-@pytest.mark.slow
-def test_square_wave_bootstrap_coverage_at_100000_rows():
-    """With 100000 rows EMS's smoothing bias of the median (measured about 330 against a
-    spread of 460) is no longer small against the noise: the plain percentile interval held
-    the true median in only 86% of these releases (0.845 over 200).  The default bias-aware
-    interval (percentile interval joined with its copy shifted by -2 x the bootstrap bias
-    estimate) is in the band: measured median 0.92, range 0.98.  About 90 s."""
-    cq, cr, _ = _square_wave_coverage(100_000, 100)
-    assert 0.90 <= cq <= 0.99, cq
-    assert 0.90 <= cr <= 0.99, cr
