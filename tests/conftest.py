@@ -93,6 +93,24 @@ def _deadline() -> Any:
     faulthandler.cancel_dump_traceback_later()
 
 
+def pytest_configure(config: pytest.Config) -> None:
+    """Module- and session-scoped fixtures run before the per-test folder below is set: give the
+    whole run (each xdist worker) a private folder of its own first, so that nothing a test does
+    reaches the real ~/.local/state."""
+    import tempfile
+
+    os.environ["LDPT_PRIVATE_DIR"] = tempfile.mkdtemp(prefix="ldpt-test-private-")
+    config._ldpt_private = os.environ["LDPT_PRIVATE_DIR"]  # type: ignore[attr-defined]
+
+
+def pytest_unconfigure(config: pytest.Config) -> None:
+    import shutil
+
+    folder = getattr(config, "_ldpt_private", None)
+    if folder:
+        shutil.rmtree(folder, ignore_errors=True)
+
+
 @pytest.fixture(autouse=True)
 def private_dir(tmp_path_factory: pytest.TempPathFactory, monkeypatch: pytest.MonkeyPatch) -> Path:
     """A fresh steward-private folder for this test, also for in-process calls."""
