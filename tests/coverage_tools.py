@@ -174,13 +174,23 @@ def binned_release(m: FrequencyOracle, codes: np.ndarray, edges: np.ndarray, w: 
     return binned_distribution(edges, f, prefix_se, cov=cov, n=n)
 
 
+def route_mechanism(route: str, eps: float, bounds: tuple[float, float]) -> Hierarchy | SquareWave:
+    """The mechanism of a distribution route as studied here: its default parameters."""
+    if route == "hierarchy":
+        return Hierarchy(eps, bounds)
+    if route == "square-wave":
+        return SquareWave(eps, bounds)
+    raise ValueError(f"{route!r} is not a distribution mechanism route")
+
+
 def releaser(route: str, shape: Shape, x: np.ndarray, eps: float, *, sw_replicates: int = SW_REPLICATES
              ) -> Callable[[int], Distribution]:
     """release number -> decoded Distribution of one release of the rows ``x`` on ``route``."""
     n = len(x)
     label = f"{route}/{shape.name}/{n}/{eps:g}"
     if route == "hierarchy":
-        h = Hierarchy(eps, shape.bounds)
+        h = route_mechanism(route, eps, shape.bounds)
+        assert isinstance(h, Hierarchy)
 
         def release_h(r: int) -> Distribution:
             arrays = h.randomize(x, words(label, r, n, h.words_per_row))
@@ -189,7 +199,8 @@ def releaser(route: str, shape: Shape, x: np.ndarray, eps: float, *, sw_replicat
             return h.decode(st, n)
         return release_h
     if route == "square-wave":
-        sw = SquareWave(eps, shape.bounds)
+        sw = route_mechanism(route, eps, shape.bounds)
+        assert isinstance(sw, SquareWave)
 
         def release_sw(r: int) -> Distribution:
             arrays = sw.randomize(x, words(label, r, n, sw.words_per_row))

@@ -27,6 +27,7 @@ from scipy import stats
 import coverage_tools as ct
 from coverage_tools import Coverage
 from ldptransform.distribution import Distribution, binned_distribution
+from ldptransform.mechanisms import DEFAULT_DISTRIBUTION, default_distribution
 
 EPS = (0.5, 1.0, 2.0, 4.0)
 BAND_LOW = 0.93
@@ -226,3 +227,13 @@ def test_square_wave_under_covers_spiky_and_discrete_data():
     assert q < BAND_LOW - ct.tolerance(rel), q
     zeros = res[0]
     assert zeros.quantiles[0] == 0.1 and zeros.q_cover[0] <= 0.2, zeros.q_cover
+
+
+def test_quantiles_default_to_the_route_whose_intervals_hold():
+    """`needs: [quantiles]` without a mechanism gets hierarchy, with the parameters studied above
+    (square-wave's smoothing bias has no bound: see the test before), and its reason says why."""
+    assert DEFAULT_DISTRIBUTION == "hierarchy"
+    for eps, bounds in ((0.5, (0.0, 64.0)), (4.0, (20000.0, 200000.0))):
+        m, why = default_distribution(eps, bounds)
+        assert m.to_spec() == ct.route_mechanism("hierarchy", eps, bounds).to_spec()
+        assert "square-wave" in why and "hierarchy" in why
