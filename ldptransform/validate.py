@@ -2,6 +2,11 @@
 data and the key) bit-for-bit reproduction and calibration of the estimates.
 
 Each check ends as pass, warn or fail; ``ok`` is False when any check fails.
+
+Validation has no side effects: it reads the extract, the manifest and the raw data, and the
+re-derivation writes only into a scratch folder it removes (``_reproduce``); the steward's
+ledger, the record of release nonces and every release destination stay as they were, so a
+release can be re-checked at any later time (tests/test_side_effects.py).
 """
 
 from __future__ import annotations
