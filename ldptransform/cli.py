@@ -218,7 +218,7 @@ def _print(*args: object) -> None:
 def _column_tables(name: str, col: ColumnResult) -> None:
     title = escape(f"{name}: {col.type}, {col.mechanism}, eps {col.epsilon:g}" +
                    (f", {col.rows_reported} rows reported" if col.rows_reported is not None else ""))
-    if col.family == "frequency":
+    if col.family == "frequency" or col.frequencies:   # a numeric column's frequencies: its share missing
         t = Table(title=title, title_justify="left")
         for h in ("value", "share", "unbiased", "se", "ci_low", "ci_high"):
             t.add_column(h, justify="left" if h == "value" else "right")

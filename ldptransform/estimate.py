@@ -612,6 +612,8 @@ def _missing_clause(name: str, missing: Any, as_category: str) -> str:
         return f"no {name} missing (the release refuses missing values)"
     if missing == "as-category":
         return f"missing {name} counted as {as_category}"
+    if missing == "as-answer":
+        return f"missing {name} kept as its own answer ({as_category})"
     if isinstance(missing, dict) and "fill" in missing:
         return f"missing {name} replaced by {_num_text(missing['fill'])}"
     shown = ", ".join(f"{k}: {_num_text(v)}" for k, v in missing.items()) if isinstance(missing, dict) else missing
@@ -639,7 +641,8 @@ def handling(manifest: Manifest, entry: ColumnEntry) -> list[str]:
         if entry.bins:
             out.append(f"{name} in {len(entry.bins) - 1} bins with edges {', '.join(f'{e:g}' for e in entry.bins)} "
                        "(the last bin includes its upper edge)")
-        out.append(_missing_clause(name, cfg.get("missing"), MISSING_LABEL))
+        out.append(_missing_clause(name, cfg.get("missing"), f"the bin {MISSING_LABEL}" if entry.bins
+                                   else "a randomized missing flag"))
     else:
         out.append(_missing_clause(name, cfg.get("missing"), MISSING_LABEL))
         unknown = cfg.get("unknown")
@@ -659,19 +662,23 @@ def _with(text: str, *clauses: str) -> str:
 
 
 def _frequency_estimands(manifest: Manifest, entry: ColumnEntry, labels: list[str]) -> list[str]:
+    from .policy import MISSING_LABEL
+
     enc = column_estimand(manifest, entry)
     if entry.type == "binned":
-        return [_with(f"share of rows with {entry.name} in bin {lab} among all rows", enc) for lab in labels]
+        return [_with(f"share of rows with {entry.name} {'missing' if lab == MISSING_LABEL else 'in bin ' + lab} "
+                      "among all rows", enc) for lab in labels]
     return [_with(f"share of rows with {_is(entry.name, lab)} among all rows", enc) for lab in labels]
 
 
-def _distribution_result(dist: Any, an: Analyses, col: str, confidence: float, enc: str) -> DistributionResult:
+def _distribution_result(dist: Any, an: Analyses, col: str, confidence: float, enc: str,
+                         among: str = "all rows") -> DistributionResult:
     buckets = f"read off its histogram over {len(dist.mass)} buckets, linear within each"
     qs = tuple(QuantileResult(q, *_interval_fields(dist.quantile_ci(q, confidence)),
-                              estimand=_with(f"{q:g}-quantile of {col} among all rows ({buckets})", enc))
+                              estimand=_with(f"{q:g}-quantile of {col} among {among} ({buckets})", enc))
                for q in an.quantiles)
     rngs = tuple(RangeResult(lo, hi, *_interval_fields(dist.range_ci(lo, hi, confidence)),
-                             estimand=_with(f"share of rows with {col} in [{lo:g}, {hi:g}) among all rows ({buckets})",
+                             estimand=_with(f"share of rows with {col} in [{lo:g}, {hi:g}) among {among} ({buckets})",
                                             enc))
                  for c, lo, hi in an.ranges if c == col)
     hist = dist.histogram()
@@ -705,13 +712,19 @@ def _column_result(entry: ColumnEntry, st: decoders.Decoder, manifest: Manifest,
         dist = None
         if entry.type == "binned" and entry.bins is not None and st.n > 1:
             from .distribution import binned_distribution
+            from .policy import MISSING_LABEL
 
-            cov = st.covariance()
-            prefix_se = np.sqrt(np.maximum(np.diag(np.cumsum(np.cumsum(cov, axis=0), axis=1)), 0.0))
+            cov: np.ndarray | None = st.covariance()
             shares = st.estimates()[0]
-            assert shares is not None  # st.n > 1
-            d = binned_distribution(np.asarray(entry.bins, float), shares, prefix_se, cov=cov, n=st.n)
-            dist = _distribution_result(d, an, entry.name, confidence, enc)
+            assert shares is not None and cov is not None  # st.n > 1
+            among = "all rows"
+            if MISSING_LABEL in labels:   # missing: as-answer: the distribution among rows with a value
+                shares, cov = decoders.shares_without(shares, cov, labels.index(MISSING_LABEL))
+                among = "rows with a value"
+            if shares is not None and cov is not None:
+                prefix_se = np.sqrt(np.maximum(np.diag(np.cumsum(np.cumsum(cov, axis=0), axis=1)), 0.0))
+                d = binned_distribution(np.asarray(entry.bins, float), shares, prefix_se, cov=cov, n=st.n)
+                dist = _distribution_result(d, an, entry.name, confidence, enc, among)
         return ColumnResult(**head, family="frequency", frequencies=freqs,
                             consistent_method=f"{an.consistency} (post-processed to a valid distribution; biased, "
                                               "for display)", distribution=dist)
@@ -723,6 +736,10 @@ def _column_result(entry: ColumnEntry, st: decoders.Decoder, manifest: Manifest,
                                                            "distribution)", enc))
             dist = _distribution_result(d, an, entry.name, confidence, enc)
         return ColumnResult(**head, family="distribution", bounds=bounds, mean=mean, distribution=dist)
+    if isinstance(st, decoders.MissingAnswerDecoder):   # missing: as-answer without bins
+        share = st.missing_share(z, rows, _with(f"share of rows with {entry.name} missing among all rows", enc))
+        return ColumnResult(**head, family="mean", bounds=bounds, frequencies=(share,),
+                            mean=st.mean(z, _with(f"mean of {entry.name} among rows with a value", enc)))
     assert isinstance(st, decoders.MeanDecoder)
     return ColumnResult(**head, family="mean", bounds=bounds,
                         mean=st.mean(z, _with(f"mean of {entry.name} among all rows", enc)))

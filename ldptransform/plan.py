@@ -144,9 +144,15 @@ def _simulate(m: mech.Mechanism, rc: ResolvedColumn, rows: float, releases: int)
             edges = np.asarray(cfg.bins, dtype=float)
             codes = np.clip(np.searchsorted(edges, x, side="right") - 1, 0, len(edges) - 2)
             cst = cast(FrequencyDecoder, m.decoder(joint=True)).add(m.randomize(codes, words))
-            cov = cst.covariance()
+            cov, shares = cst.covariance(), np.asarray(cst.estimates()[0])
+            if rc.missing_code is not None:   # missing: as-answer: the bins among rows with a value, as estimate
+                from .mechanisms.decoders import shares_without
+
+                kept, kept_cov = shares_without(shares, cov, rc.missing_code)
+                assert kept is not None and kept_cov is not None   # the reference data has no missing value
+                shares, cov = kept, kept_cov
             prefix_se = np.sqrt(np.maximum(np.diag(np.cumsum(np.cumsum(cov, axis=0), axis=1)), 0.0))
-            dists.append(binned_distribution(edges, np.asarray(cst.estimates()[0]), prefix_se, cov=cov, n=cst.n))
+            dists.append(binned_distribution(edges, shares, prefix_se, cov=cov, n=cst.n))
         else:
             dists.append(cast(DistributionDecoder, m.decoder()).add(m.randomize(x, words)).distribution())
     return x, dists
@@ -430,7 +436,22 @@ def _column_statistics(rc: ResolvedColumn, rows: int, rate: float, default: Qual
                 stat["rows_needed"] = int(math.ceil(se * se * n / (target * target) / rate)) if sim_n else None
                 stat["impossible_at_rows"] = None
             out.append(stat)
+    if getattr(rc.config, "missing", None) == "as-answer":   # missingness released as its own answer
+        out.append(_missing_share_stat(m, rc, n))
     return out
+
+
+def _missing_share_stat(m: mech.Mechanism, rc: ResolvedColumn, n: float) -> dict[str, Any]:
+    """missing: as-answer: the share missing's predicted SE, worst case over data; the statistics
+    among rows with a value (mean, quantiles) are predicted above as if every row had one: with a
+    share s of rows having a value, their SE is about 1/s times larger (1/sqrt(s) for bins)."""
+    v = m.missing_share_row_variance(rc.missing_code)
+    se = math.sqrt(v / n) if v is not None and n > 0 else None
+    return {"statistic": "share missing", "se": se,
+            "se_meaning": "SE of the share of rows with a missing value, worst case over data; the statistics among "
+                          "rows with a value are predicted as if every row had one (with a share s of rows having a "
+                          "value, a mean's SE is about 1/s times larger)",
+            "target_se": None, "best_possible_se": None}
 
 
 def plan(policy: LoadedPolicy, rows: int, *, simulate: bool = True) -> PlanResult:

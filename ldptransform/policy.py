@@ -159,7 +159,15 @@ class NumericColumn(_Strict):
     mechanism: str | None = Field(None, description=", ".join(mech.names_of("mean")) + " (means); "
                                   + ", ".join(mech.names_of("distribution")) + " (distributions: quantiles, range "
                                   "shares); with bins, a categorical one.")
-    missing: Literal["error"] | Fill = "error"
+    missing: Literal["error", "as-answer"] | Fill = Field(
+        "error", description="error (the default): refuse a missing value; {fill: V}: replace it by V (every statistic "
+                             "then describes the filled column); as-answer: keep 'missing' as its own answer, so "
+                             "partners estimate the share missing and the mean or distribution among rows with a "
+                             "value (with bins: one more bin, <missing>, at the column's eps; without bins: a "
+                             "missing flag at missing_epsilon beside the value at the rest of the column's eps).")
+    missing_epsilon: Epsilon | None = Field(
+        None, description="missing: as-answer without bins only: the part of the column's epsilon spent on the "
+                          "randomized missing flag (default a quarter of it); the value gets the rest.")
     out_of_bounds: Literal["clip", "error"] = "clip"
     grid: StrictInt | None = Field(None, ge=1, le=4096, description=_field_doc("grid", "mean", "distribution"))
     hash_range: StrictInt | None = Field(None, description="/".join(mech.field_owners("hash_range", "frequency"))
@@ -191,6 +199,7 @@ class NumericColumn(_Strict):
         self._check_needs()
         self._check_memo_grid()
         _check_rerandomize(self)
+        self._check_missing_answer()
         if isinstance(self.missing, Fill):
             lo, hi = self.domain
             if not lo <= self.missing.fill <= hi:
@@ -223,6 +232,29 @@ class NumericColumn(_Strict):
             raise ValueError("needs: mean is not available for a column released as bins (a bin's values are not "
                              "known); remove bins to release the value with a mean mechanism, or ask for "
                              "frequencies / quantiles")
+
+    def _check_missing_answer(self) -> None:
+        if self.missing_epsilon is not None and self.missing != "as-answer":
+            raise ValueError("missing_epsilon applies only with missing: as-answer (it is the eps of the randomized "
+                             "missing flag); set missing: as-answer or remove missing_epsilon")
+        if self.missing != "as-answer":
+            return
+        if self.bins is not None and self.missing_epsilon is not None:
+            raise ValueError("missing_epsilon does not apply to a column released as bins: with bins, missing is one "
+                             "more bin (<missing>) randomized with the others at the column's epsilon; remove "
+                             "missing_epsilon")
+        if (self.missing_epsilon is not None and self.epsilon is not None
+                and self.missing_epsilon >= self.epsilon):
+            raise ValueError(f"missing_epsilon ({self.missing_epsilon:g}) must be below the column's epsilon "
+                             f"({self.epsilon:g}): the value gets epsilon - missing_epsilon; lower missing_epsilon "
+                             "or leave it out (default: a quarter of the column's epsilon)")
+        if self.bins is None and self.memoize:
+            raise ValueError("missing: as-answer on a numeric column without bins does not combine with memoize; "
+                             "add bins: [edges] (a memoized <missing> bin), or remove memoize")
+        if self.bins is None and self.needs is not None and "quantiles" in self.needs:
+            raise ValueError("missing: as-answer without bins gives a mean among rows with a value, not quantiles; "
+                             "add bins: [edges] for the distribution among rows with a value (quantiles and ranges "
+                             "read off the bins), or ask only for the mean")
 
     def _check_memo_grid(self) -> None:
         if self.memo_grid is not None and not self.memoize:
@@ -513,7 +545,7 @@ def _resolve_categories(name: str, col: Any) -> ResolvedColumn:
         kind = "binned"
     domain = list(labels)
     rc = ResolvedColumn(name, kind, col, labels=labels)
-    if getattr(col, "missing", None) == "as-category":
+    if getattr(col, "missing", None) in ("as-category", "as-answer"):   # binned: as-answer is a <missing> bin
         rc.missing_code = len(domain)
         domain.append(MISSING_LABEL)
     if getattr(col, "unknown", None) == "as-category":
@@ -614,7 +646,30 @@ def resolve_column(name: str, col: Any) -> ResolvedColumn:
     if isinstance(col, CategoricalColumn) or (isinstance(col, NumericColumn) and col.bins is not None):
         return _resolve_categories(name, col)
     assert isinstance(col, NumericColumn)
+    if col.missing == "as-answer":
+        return _resolve_with_missing_flag(name, col)
     return _resolve_number(name, col)
+
+
+def _resolve_with_missing_flag(name: str, col: NumericColumn) -> ResolvedColumn:
+    """missing: as-answer without bins: the value through the column's mean mechanism at the column's
+    eps minus missing_epsilon, beside a randomized missing flag at missing_epsilon (one mechanism,
+    mechanisms/missing.py)."""
+    eps = col.epsilon
+    assert eps is not None   # under sample, resolve gives every column its eps first
+    flag_eps = col.missing_epsilon if col.missing_epsilon is not None else mech.DEFAULT_FLAG_SHARE * eps
+    if flag_eps >= eps:
+        raise PolicyError(f"{_where(name, 'missing_epsilon')}: missing_epsilon ({flag_eps:g}) must be below the "
+                          f"column's epsilon ({eps:g}); lower missing_epsilon or leave it out (default: a quarter of "
+                          "the column's epsilon)")
+    rc = _resolve_number(name, col.model_copy(update={"epsilon": round(eps - flag_eps, 12)}))
+    rc.config = col
+    assert rc.mechanism is not None
+    try:
+        rc.mechanism = mech.with_missing_flag(rc.mechanism, flag_eps, eps)
+    except PolicyError as err:
+        raise PolicyError(f"{_where(name, 'missing')}: {err}") from None
+    return rc
 
 
 @dataclass

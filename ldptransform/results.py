@@ -198,7 +198,8 @@ class DistributionResult(_Subscript):
 class ColumnResult(_Subscript):
     """Everything estimated for one privatized column.  ``family`` says which statistics it
     has: "frequency" (``frequencies``, and ``distribution`` for a binned numeric column),
-    "mean" (``mean``) or "distribution" (``distribution`` and its ``mean``)."""
+    "mean" (``mean``; with ``missing: as-answer``, the mean among rows with a value and, in
+    ``frequencies``, the share missing) or "distribution" (``distribution`` and its ``mean``)."""
 
     name: str
     type: str
@@ -223,6 +224,8 @@ class ColumnResult(_Subscript):
             d["frequencies"] = [f.to_dict() for f in self.frequencies]
             d["consistent_method"] = self.consistent_method
         else:
+            if self.frequencies:   # a numeric column with missing: as-answer: the share missing
+                d["frequencies"] = [f.to_dict() for f in self.frequencies]
             d["bounds"] = None if self.bounds is None else list(self.bounds)
             if self.mean is not None:
                 d["mean"] = self.mean.to_dict()

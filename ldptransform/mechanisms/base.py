@@ -90,12 +90,17 @@ def registry() -> dict[str, type[Mechanism]]:
 
 def build(spec: dict[str, Any]) -> Mechanism:
     """Instantiate a mechanism from its spec (as written in the manifest).  A spec with a
+    ``missing_answer`` entry is a value report with a missing flag (mechanisms/missing.py).  A spec with a
     ``second_layer`` entry is the composite channel of a memoized column re-randomized in each
     release (``Mechanism.with_second_layer``): it is rebuilt from its two layers, and its stated
     epsilon must be the composite's."""
     name = spec.get("mechanism")
     if name not in _REGISTRY:
         raise PolicyError(f"unknown mechanism {name!r}; known: {', '.join(sorted(_REGISTRY))}")
+    if "missing_answer" in spec:   # a value with a missing flag (missing: as-answer; mechanisms/missing.py)
+        from .missing import MissingFlag
+
+        return MissingFlag.from_spec(spec)
     if "second_layer" not in spec:
         return _REGISTRY[name].from_spec(spec)
     layer = spec["second_layer"]
@@ -443,6 +448,12 @@ class Mechanism(ABC):
     def efficiency(self) -> float | None:
         """The lower bound (mechanisms/bounds.py) over this mechanism's own variance (1 = as good as
         possible); None where no bound applies."""
+        return None
+
+    def missing_share_row_variance(self, missing_code: int | None) -> float | None:
+        """n * Var of the share missing as ``ldpt estimate`` reports it, worst case over data, for a
+        column with ``missing: as-answer`` (``missing_code``: the code of its <missing> category, for
+        a column released as categories); None for a mechanism that releases no such share."""
         return None
 
     # -- empirical audit (audit.py) --------------------------------------------------

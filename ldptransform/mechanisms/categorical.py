@@ -183,6 +183,17 @@ class FrequencyOracle(Mechanism):
         k = self.k
         return (self.total_variance() + 1.0 - 1.0 / k) / k
 
+    def missing_share_row_variance(self, missing_code: int | None) -> float | None:
+        """Worst case over data of n * Var of one share as ``ldpt estimate`` reports it (the <missing>
+        category's): the exact noise variance, linear in the share f (``variance``), plus the spread
+        f (1 - f), maximized over f in [0, 1]."""
+        if missing_code is None:
+            return None
+        a = float(self.variance(0.0))
+        b = float(self.variance(1.0)) - a
+        f = min(max((b + 1.0) / 2.0, 0.0), 1.0)
+        return a + b * f + f * (1.0 - f)
+
     def efficiency(self) -> float:
         """Lower bound on the total variance of any eps-LDP frequency estimator over this one's
         (mechanisms/bounds.py)."""

@@ -16,6 +16,9 @@ method:
   n, sum and sum of squares around the middle of the bounds (numerical accuracy).  ``mean``.
 * ``DistributionDecoder`` (distribution mechanisms): the mechanism's additive count vector;
   ``distribution`` decodes it (CDF, quantiles, range shares).
+* ``MissingAnswerDecoder`` (a value with a missing flag, mechanisms/missing.py; family mean):
+  the additive sums behind the share missing (``missing_share``) and the mean among rows with
+  a value (``mean``, a ratio of two unbiased sums with a delta-method SE).
 
 The standard error of an average of per-row estimates is their sample standard deviation over
 sqrt(n) (``moments``).  Decoders hold only numpy arrays, numbers and their mechanism, so they
@@ -41,6 +44,7 @@ if TYPE_CHECKING:
 
     from .base import DistributionMechanism, MeanMechanism
     from .categorical import FrequencyOracle
+    from .missing import MissingFlag
 
 CONSISTENCY_METHODS = ("norm-sub", "norm-mul", "norm")
 
@@ -114,6 +118,22 @@ def numeric_values(arrays: list[pa.Array]) -> np.ndarray:
     """The written values of a numeric report column as float64."""
     arr = arrays[0]
     return np.asarray(pc.cast(arr, pa.float64()).to_numpy(zero_copy_only=False), dtype=float)
+
+
+def shares_without(shares: np.ndarray, cov: np.ndarray, drop: int) -> tuple[np.ndarray | None, np.ndarray | None]:
+    """The shares of the other values among the rows not in value ``drop`` (a binned column's bins
+    among rows with a value, ``drop`` its <missing> code), g = s / sum(s) over the kept values s,
+    with the delta-method covariance J Cov J' (J = (I - g 1') / sum(s)).  (None, None) when the
+    kept shares do not sum to a positive number."""
+    keep = np.array([i for i in range(len(shares)) if i != drop])
+    s = np.asarray(shares, dtype=float)[keep]
+    c = np.asarray(cov, dtype=float)[np.ix_(keep, keep)]
+    total = float(s.sum())
+    if not total > 0:
+        return None, None
+    g = s / total
+    J = (np.eye(len(s)) - np.outer(g, np.ones(len(s)))) / total
+    return g, J @ c @ J.T
 
 
 # -- the decoders -------------------------------------------------------------------------------
@@ -261,3 +281,92 @@ class DistributionDecoder(Decoder):
     def distribution(self) -> Any:
         """The decoded ``ldptransform.distribution.Distribution`` of the reports added."""
         return self.mechanism.decode(self.stats, self.n)
+
+
+@dataclass
+class MissingAnswerDecoder(Decoder):
+    """A value report with a missing flag (mechanisms/missing.py): with a_i the value report minus
+    the middle of the bounds m (a missing row's value is randomized as m) and u_i the row's
+    unbiased present indicator, the sums n, sum a, sum a^2, sum u, sum u^2, sum a u (additive:
+    batches, files and workers merge by addition)."""
+
+    family: ClassVar[str] = "mean"
+    mechanism: MissingFlag
+    n: int = 0
+    sa: float = 0.0
+    saa: float = 0.0
+    su: float = 0.0
+    suu: float = 0.0
+    sau: float = 0.0
+
+    @property
+    def shift(self) -> float:
+        return self.mechanism.fill
+
+    def add(self, arrays: list[pa.Array]) -> Self:
+        a = self.mechanism.value_estimates(arrays) - self.shift
+        u = self.mechanism.flag_estimates(arrays)
+        self.n += a.size
+        self.sa += float(a.sum())
+        self.saa += float(np.dot(a, a))
+        self.su += float(u.sum())
+        self.suu += float(np.dot(u, u))
+        self.sau += float(np.dot(a, u))
+        return self
+
+    def merge(self, other: Self) -> Self:
+        self.n += other.n
+        for k in ("sa", "saa", "su", "suu", "sau"):
+            setattr(self, k, getattr(self, k) + getattr(other, k))
+        return self
+
+    def present_share(self) -> tuple[float | None, float | None]:
+        """(unbiased share of rows with a value, its SE); (None, None) before two reports."""
+        if self.n < 2:
+            return None, None
+        est, se = moments(self.su, self.suu, self.n)
+        return float(est), float(se)
+
+    def missing_share(self, z: float, rows: int | None = None, estimand: str = "",
+                      label: str = "<missing>") -> FrequencyResult:
+        """The share of rows whose value is missing (1 - the present share), with its SE and interval,
+        the estimated count (share x ``rows``) and the share clipped into [0, 1]."""
+        est, se = self.present_share()
+        rows = self.n if rows is None else rows
+        if est is None:
+            return FrequencyResult(label, None, None, None, None, 0.0, None, estimand)
+        miss = 1.0 - est
+        return FrequencyResult(label, *interval(miss, se, z), float(miss * rows), float(min(max(miss, 0.0), 1.0)),
+                               estimand)
+
+    def ratio(self) -> tuple[float | None, float | None, float | None]:
+        """(mean among rows with a value, its delta-method SE, the present share's estimate):
+        m + sum a / sum u, Var = (Var(a bar) - 2 R Cov(a bar, u bar) + R^2 Var(u bar)) / u bar^2
+        with R = a bar / u bar.  (None, None, share) when the present share is not positive."""
+        n = self.n
+        if n < 2:
+            return None, None, None
+        abar, ase = moments(self.sa, self.saa, n)
+        ubar, use = moments(self.su, self.suu, n)
+        if ubar <= 0:
+            return None, None, float(ubar)
+        cov = (self.sau - self.sa * self.su / n) / (n - 1) / n
+        R = float(abar / ubar)
+        var = (float(ase) ** 2 - 2 * R * cov + R * R * float(use) ** 2) / float(ubar) ** 2
+        return self.shift + R, float(np.sqrt(max(var, 0.0))), float(ubar)
+
+    def mean(self, z: float, estimand: str = "") -> MeanResult:
+        """The mean among rows with a value, with its delta-method SE and interval (all None before two
+        reports or when the estimated share with a value is not positive)."""
+        est, se, share = self.ratio()
+        if est is None:
+            note = None if share is None else "the estimated share of rows with a value is not positive: no mean"
+            return MeanResult(None, None, None, None, note=note, estimand=estimand)
+        assert se is not None and share is not None
+        res = mean_result(est, se, z, estimand)
+        _, share_se = self.present_share()
+        if share_se is not None and share - z * share_se <= 0:
+            return MeanResult(res.estimate, res.se, res.ci_low, res.ci_high,
+                              note="the share of rows with a value is not clearly above 0: the ratio and its SE "
+                                   "are unreliable", estimand=estimand)
+        return res

@@ -369,6 +369,14 @@ class Matrix(FrequencyOracle):
                              f"{self.k}), got shape {f.shape}")
         return f @ self.second_moments - f
 
+    def missing_share_row_variance(self, missing_code: int | None) -> float | None:
+        """An upper bound over data sets of n * Var of the <missing> share as ``ldpt estimate`` reports
+        it: sum_x f_x M2[x, v] - f_v^2 <= max over x of M2[x, v] (the variance depends on the whole
+        frequency vector here, see ``variance``)."""
+        if missing_code is None:
+            return None
+        return float(np.max(self.second_moments[:, missing_code]))
+
     def total_variance(self) -> float:
         """Worst case over data sets of n * sum_v Var(f_v) (expected squared L2 error of the frequency
         vector, times n).  It is linear in the true frequencies, so the worst case is all rows in one

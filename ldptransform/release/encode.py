@@ -124,10 +124,15 @@ def encode_numeric(values: pa.Array, plan: ColumnPlan, row0: int) -> np.ndarray:
         plan.diag.missing += int(missing.sum())
         if col.missing == "error":
             raise DataError(f"column {name!r} has missing values ({_rows_text(missing, row0)}) and the policy says "
-                            f"missing: error. Fill them in the input, or set missing: {{fill: VALUE}} for {name!r} "
-                            "(a value within the bounds).")
-        x[missing] = col.missing.fill
-        plan.diag.filled += int(missing.sum())
+                            f"missing: error. Fill them in the input, set missing: as-answer for {name!r} to "
+                            "release missingness as its own answer (partners then estimate the share missing and "
+                            "the statistics among rows with a value), or set missing: {fill: VALUE} (a value within "
+                            "the bounds).")
+        if col.missing == "as-answer":   # the mechanism randomizes 'missing' as its own answer (NaN here)
+            plan.diag.missing_as_category += int(missing.sum())
+        else:
+            x[missing] = col.missing.fill
+            plan.diag.filled += int(missing.sum())
     lo, hi = col.domain
     low, high = x < lo, x > hi
     if low.any() or high.any():
@@ -146,8 +151,10 @@ def encode_binned(values: pa.Array, plan: ColumnPlan, row0: int) -> np.ndarray:
     col: NumericColumn = plan.rc.config
     x = encode_numeric(values, plan, row0)
     edges = np.asarray(col.bins, dtype=float)
-    codes = np.searchsorted(edges, x, side="right") - 1
-    return np.clip(codes, 0, len(edges) - 2).astype(np.int64)
+    codes = np.clip(np.searchsorted(edges, x, side="right") - 1, 0, len(edges) - 2).astype(np.int64)
+    if plan.rc.missing_code is not None:   # missing: as-answer (encode_numeric left them NaN)
+        codes[np.isnan(x)] = plan.rc.missing_code
+    return codes
 
 
 def encode(values: pa.Array, plan: ColumnPlan, row0: int) -> np.ndarray:
