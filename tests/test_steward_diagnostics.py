@@ -66,7 +66,8 @@ def test_summary_and_diagnostics_count_and_warn(tmp_path: Path, private_dir: Pat
     assert len(warnings) == 3, warnings  # age high, pay filled, site unknown; not age low nor satisfaction
     assert any("'age'" in w and "101 of 2000 rows (5.1%)" in w and "above its bounds [18, 65]" in w
                and "widen" in w for w in warnings)
-    assert any("'pay'" in w and "400 of 2000 rows (20.0%)" in w and "fill: 0" in w for w in warnings)
+    assert any("'pay'" in w and "400 of 2000 rows (20.0%)" in w and "fill: 0" in w and "missing: as-answer" in w
+               for w in warnings)
     assert any("'site'" in w and "60 of 2000 rows (3.0%)" in w and "declare them" in w for w in warnings)
     assert not any("below its bounds" in w or "'satisfaction'" in w for w in warnings)
     diag_files = [p for p in private_dir.iterdir() if p.name.endswith(".PRIVATE-diagnostics.json")]

@@ -45,7 +45,8 @@ def counts_text(plan: ColumnPlan, rows: int) -> str | None:
     for count, what, note in ((d.clipped_low, "clipped low", ""), (d.clipped_high, "clipped high", ""),
                               (d.filled, "missing and filled", ""),
                               (d.unknown_as_other, "unknown", ", released as <other>"),
-                              (d.missing_as_category, "missing", ", released as <missing>")):
+                              (d.missing_as_category, "missing", ", released as <missing>"
+                               if rc.type == "categorical" else ", released as its own answer")):
         if count:
             parts.append(f"{count} {what} ({count / max(rows, 1):.1%}{note})")
     return f"{rc.name}: " + ", ".join(parts) if parts else None
@@ -73,10 +74,10 @@ def column_warnings(plan: ColumnPlan, rows: int) -> list[str]:
             fill_text = f"{fill:g} (missing: {{fill: {fill:g}}})" if isinstance(fill, (int, float)) else "the fill"
             out.append(f"column {name!r}: {_share(d.filled, rows)} were missing and were released as "
                        f"{fill_text}, so every statistic of {name!r} describes the column "
-                       "with missing values replaced by the fill, not the rows that have a value. Fill the input "
-                       "where the value is known, choose a fill that suits the analysis, or release the missingness "
-                       "as its own answer where the policy allows it; tell partners what the fill does (the manifest "
-                       "records it).")
+                       "with missing values replaced by the fill, not the rows that have a value. To release the "
+                       f"share missing and the statistics among rows with a value, set missing: as-answer for {name!r} "
+                       "in the policy; otherwise fill the input where the value is known, or choose a fill that suits "
+                       "the analysis and tell partners what it does (the manifest records it).")
     if d.unknown_as_other > limit:
         out.append(f"column {name!r}: {_share(d.unknown_as_other, rows)} held a category not among its declared "
                    "categories and were released as '<other>', which partners cannot tell apart. If those categories "
