@@ -372,10 +372,7 @@ def _check_analyses(manifest: Manifest, an: Analyses) -> None:
         if a == b:
             raise UsageError("--crosstab needs two different columns")
     for y, g in an.mean_by:
-        spec = need(y, "--mean-by", ("numeric",)).mechanism or {}
-        if is_distribution(mech.build(spec)):
-            raise UsageError(f"--mean-by: column {y!r} uses {spec['mechanism']}, which estimates distributions; "
-                             "its mean comes from the distribution (see its 'distribution' entry), not per row.")
+        _check_mean_by(y, need(y, "--mean-by", ("numeric",)).mechanism or {})
         need(g, "--mean-by", ("categorical",))
     for col, _, _ in an.ranges:
         e = by.get(col)
@@ -385,6 +382,18 @@ def _check_analyses(manifest: Manifest, an: Analyses) -> None:
                              "hierarchy).")
     if an.consistency not in CONSISTENCY_METHODS:
         raise UsageError(f"--consistency must be one of {', '.join(CONSISTENCY_METHODS)}, got {an.consistency!r}")
+
+
+def _check_mean_by(y: str, spec: dict[str, Any]) -> None:
+    """--mean-by reads the per-row value reports of ``y``: refused for a distribution mechanism and for
+    a mechanism whose value reports are not the rows' values (``grouped_mean_refusal``)."""
+    m = mech.build(spec)
+    if is_distribution(m):
+        raise UsageError(f"--mean-by: column {y!r} uses {spec['mechanism']}, which estimates distributions; "
+                         "its mean comes from the distribution (see its 'distribution' entry), not per row.")
+    why = m.grouped_mean_refusal()
+    if why:
+        raise UsageError(f"--mean-by: column {y!r} cannot be averaged within groups: {why}.")
 
 
 @dataclass

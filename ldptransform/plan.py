@@ -145,10 +145,11 @@ def _simulate(m: mech.Mechanism, rc: ResolvedColumn, rows: float, releases: int)
             codes = np.clip(np.searchsorted(edges, x, side="right") - 1, 0, len(edges) - 2)
             cst = cast(FrequencyDecoder, m.decoder(joint=True)).add(m.randomize(codes, words))
             cov, shares = cst.covariance(), np.asarray(cst.estimates()[0])
-            if rc.missing_code is not None:   # missing: as-answer: the bins among rows with a value, as estimate
+            code = _missing_code(rc)
+            if code is not None:   # missing: as-answer: the bins among rows with a value, as estimate
                 from .mechanisms.decoders import shares_without
 
-                kept, kept_cov = shares_without(shares, cov, rc.missing_code)
+                kept, kept_cov = shares_without(shares, cov, code)
                 assert kept is not None and kept_cov is not None   # the reference data has no missing value
                 shares, cov = kept, kept_cov
             prefix_se = np.sqrt(np.maximum(np.diag(np.cumsum(np.cumsum(cov, axis=0), axis=1)), 0.0))
@@ -156,6 +157,15 @@ def _simulate(m: mech.Mechanism, rc: ResolvedColumn, rows: float, releases: int)
         else:
             dists.append(cast(DistributionDecoder, m.decoder()).add(m.randomize(x, words)).distribution())
     return x, dists
+
+
+def _missing_code(rc: ResolvedColumn) -> int | None:
+    """The code of a binned column's <missing> bin (missing: as-answer), None without one: the
+    resolved column's, or for a column rebuilt from a manifest the code after the last bin."""
+    if rc.missing_code is not None or rc.type != "binned":
+        return rc.missing_code
+    bins = len(rc.config.bins) - 1
+    return bins if cast(mech.FrequencyOracle, rc.mechanism).k > bins else None   # a binned column: a frequency oracle
 
 
 def _rmse(estimates: list[float], truth: float, n: int, rows: float) -> float:
@@ -445,7 +455,7 @@ def _missing_share_stat(m: mech.Mechanism, rc: ResolvedColumn, n: float) -> dict
     """missing: as-answer: the share missing's predicted SE, worst case over data; the statistics
     among rows with a value (mean, quantiles) are predicted above as if every row had one: with a
     share s of rows having a value, their SE is about 1/s times larger (1/sqrt(s) for bins)."""
-    v = m.missing_share_row_variance(rc.missing_code)
+    v = m.missing_share_row_variance(_missing_code(rc))
     se = math.sqrt(v / n) if v is not None and n > 0 else None
     return {"statistic": "share missing", "se": se,
             "se_meaning": "SE of the share of rows with a missing value, worst case over data; the statistics among "

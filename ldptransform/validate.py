@@ -225,6 +225,8 @@ def _true_stats(raw: Path, manifest: Manifest, dists: dict[str, Distribution] | 
     counts = {p.rc.name: np.zeros(_codes(p), dtype=np.int64) for p in plans if p.rc.type != "numeric"}
     sums = {p.rc.name: 0.0 for p in plans if p.rc.type == "numeric"}
     masses = {name: np.zeros(len(d.mass)) for name, d in dists.items()}
+    # missing: as-answer leaves a missing value NaN: means and distributions are among rows with a value
+    present = {p.rc.name: 0 for p in plans if p.rc.type != "categorical"}
     n = 0
     for batch in src.batches([p.rc.name for p in plans], 65536):
         for p in plans:
@@ -233,16 +235,20 @@ def _true_stats(raw: Path, manifest: Manifest, dists: dict[str, Distribution] | 
                 counts[name] += np.bincount(encode_categorical(v, p, n), minlength=counts[name].size)
                 continue
             x = encode_numeric(v, p, n)
+            has = ~np.isnan(x)
+            present[name] += int(has.sum())
             if p.rc.type == "binned":
                 counts[name] += np.bincount(encode_binned(v, p, n), minlength=counts[name].size)
             else:
-                sums[name] += float(x.sum())
+                sums[name] += float(x[has].sum())
             if name in dists:
-                masses[name] += dists[name].bucket_counts(x)
+                masses[name] += dists[name].bucket_counts(x[has])
         n += batch.num_rows
     d = max(n, 1)
-    return _Truth(n, {k: c / d for k, c in counts.items()}, {k: v / d for k, v in sums.items()},
-                  {k: m / d for k, m in masses.items()})
+    shares = {k: c / d for k, c in counts.items()}
+    shares.update({k: np.array([1.0 - present[k] / d]) for k in sums if present[k] < n})   # the share missing
+    return _Truth(n, shares, {k: v / max(present[k], 1) for k, v in sums.items()},
+                  {k: m / max(present[k], 1) for k, m in masses.items()})
 
 
 def validate(extract: Path | str, manifest_path: Path | str | None = None, *, raw: Path | str | None = None,

@@ -240,17 +240,19 @@ def _raw_with_blanks(path: Path, n: int = 4000) -> tuple[Path, np.ndarray, np.nd
     rng = np.random.default_rng(15)
     age = rng.integers(18, 70, n).astype(float)
     age_missing = rng.random(n) < 0.2
-    df = pd.DataFrame({"pay": np.where(missing, np.nan, np.round(x, 2)), "age": np.where(age_missing, np.nan, age)})
+    df = pd.DataFrame({"pay": np.where(missing, np.nan, np.round(x, 2)), "age": np.where(age_missing, np.nan, age),
+                       "site": rng.choice(["north", "south"], n)})
     df.to_csv(path, index=False)   # missing values are blank cells
     assert ",," in path.read_text() or "\n," in path.read_text()
     return path, np.round(x, 2), missing, age_missing
 
 
-CLI_POLICY = {"budget": {"epsilon_per_row": 4.0},
+CLI_POLICY = {"budget": {"epsilon_per_row": 4.5},
               "columns": {"pay": {"type": "numeric", "bounds": [0, 100], "epsilon": 2.0, "missing": "as-answer",
                                   "missing_epsilon": 0.5},
                           "age": {"type": "numeric", "bins": [18, 30, 45, 60, 70], "epsilon": 2.0,
-                                  "missing": "as-answer", "needs": ["frequencies", "quantiles"]}}}
+                                  "missing": "as-answer", "needs": ["frequencies", "quantiles"]},
+                          "site": {"type": "categorical", "categories": ["north", "south"], "epsilon": 0.5}}}
 
 
 def test_privatize_and_estimate_through_the_cli(ldpt, tmp_path: Path) -> None:
@@ -296,8 +298,18 @@ def test_privatize_and_estimate_through_the_cli(ldpt, tmp_path: Path) -> None:
     assert "0.5-quantile of age among rows with a value" in texts
     assert "share of rows with age missing among all rows" in texts
 
+    refused = ldpt("estimate", out, "--mean-by", "pay:site")
+    assert_user_error(refused, ["--mean-by", "pay", "middle of the bounds"])
+
     table = ldpt("estimate", out)
     assert table.returncode == 0 and MISSING_LABEL in table.stdout.split("pay: numeric")[1].split("estimand")[0]
+
+    checked = ldpt("validate", out, "--raw", raw, "--key", key, "--format", "json")
+    assert checked.returncode == 0, checked.stdout + checked.stderr
+    report = json.loads(checked.stdout)
+    assert report["ok"] and report["calibration"]["share_inside"] >= 0.8, report["calibration"]
+    status = {c["check"]: c["status"] for c in report["checks"]}
+    assert status["calibration"] == "pass" and status["reproduced"] == "pass" and status["privacy budget"] == "pass"
 
     plan = ldpt("plan", "--policy", pol, "--rows", "4000", "--format", "json")
     assert plan.returncode == 0, plan.stderr
@@ -311,7 +323,7 @@ def test_blank_refused_under_missing_error_names_as_answer(ldpt, tmp_path: Path)
     pol = write_policy(tmp_path / "policy.yaml", {"budget": {"epsilon_per_row": 2.0},
                                                  "columns": {"pay": {"type": "numeric", "bounds": [0, 100],
                                                                      "epsilon": 1.0},
-                                                             "age": {"type": "drop"}}})
+                                                             "age": {"type": "drop"}, "site": {"type": "drop"}}})
     key = write_fixed_key(tmp_path / "release.key")
     res = ldpt("privatize", raw, "--policy", pol, "--key", key, "--out", tmp_path / "x.parquet")
     assert_user_error(res, ["pay", "missing: as-answer", "{fill: VALUE}"])

@@ -450,6 +450,11 @@ class Mechanism(ABC):
         possible); None where no bound applies."""
         return None
 
+    def grouped_mean_refusal(self) -> str:
+        """Why this mechanism's per-row value reports cannot be averaged within the groups of another
+        column (``ldpt estimate --mean-by``); '' when they can."""
+        return ""
+
     def missing_share_row_variance(self, missing_code: int | None) -> float | None:
         """n * Var of the share missing as ``ldpt estimate`` reports it, worst case over data, for a
         column with ``missing: as-answer`` (``missing_code``: the code of its <missing> category, for

@@ -30,6 +30,8 @@ unbiased present indicator):
 
 The spec of the pair is the value mechanism's spec at the column's eps with one more entry,
 ``missing_answer``: {value_epsilon, flag_epsilon, fill}; ``base.build`` rebuilds the pair from it.
+The formulas, and the coverage measured by tests/test_missing_answer.py, are in docs/formulas.md
+section 18.
 """
 
 from __future__ import annotations
@@ -182,6 +184,11 @@ class MissingFlag(Mechanism):
         from .decoders import MissingAnswerDecoder
 
         return MissingAnswerDecoder(self)
+
+    def grouped_mean_refusal(self) -> str:
+        return ("its value reports count a missing value as the middle of the bounds, so a mean of them within a "
+                "group is not the mean among rows with a value; the column's own estimate gives the mean among rows "
+                "with a value and the share missing")
 
     def no_fit_reason(self) -> str:
         return ("no goodness-of-fit test for a value with a missing flag: the two reports of a row are tested by "
