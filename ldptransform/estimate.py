@@ -737,6 +737,16 @@ def _column_result(entry: ColumnEntry, st: decoders.Decoder, manifest: Manifest,
         return ColumnResult(**head, family="frequency", frequencies=freqs,
                             consistent_method=f"{an.consistency} (post-processed to a valid distribution; biased, "
                                               "for display)", distribution=dist)
+    if isinstance(st, decoders.MissingDistributionDecoder):   # missing: as-answer, a distribution mechanism
+        share = st.missing_share(z, rows, _with(f"share of rows with {entry.name} missing among all rows", enc))
+        mean = dist = None
+        if st.n > 1:
+            d = st.distribution()
+            mean = _distribution_mean(d, confidence, _with(f"mean of {entry.name} among rows with a value (from the "
+                                                           "estimated distribution)", enc))
+            dist = _distribution_result(d, an, entry.name, confidence, enc, "rows with a value")
+        return ColumnResult(**head, family="distribution", bounds=bounds, frequencies=(share,), mean=mean,
+                            distribution=dist)
     if isinstance(st, decoders.DistributionDecoder):
         mean = dist = None
         if st.n > 1:

@@ -164,7 +164,8 @@ class NumericColumn(_Strict):
                              "then describes the filled column); as-answer: keep 'missing' as its own answer, so "
                              "partners estimate the share missing and the mean or distribution among rows with a "
                              "value (with bins: one more bin, <missing>, at the column's eps; without bins: a "
-                             "missing flag at missing_epsilon beside the value at the rest of the column's eps).")
+                             "missing flag at missing_epsilon beside the value at the rest of the column's eps, "
+                             "through a mean mechanism or, for quantiles, hierarchy).")
     missing_epsilon: Epsilon | None = Field(
         None, description="missing: as-answer without bins only: the part of the column's epsilon spent on the "
                           "randomized missing flag (default a quarter of it); the value gets the rest.")
@@ -251,10 +252,6 @@ class NumericColumn(_Strict):
         if self.bins is None and self.memoize:
             raise ValueError("missing: as-answer on a numeric column without bins does not combine with memoize; "
                              "add bins: [edges] (a memoized <missing> bin), or remove memoize")
-        if self.bins is None and self.needs is not None and "quantiles" in self.needs:
-            raise ValueError("missing: as-answer without bins gives a mean among rows with a value, not quantiles; "
-                             "add bins: [edges] for the distribution among rows with a value (quantiles and ranges "
-                             "read off the bins), or ask only for the mean")
 
     def _check_memo_grid(self) -> None:
         if self.memo_grid is not None and not self.memoize:
@@ -651,6 +648,9 @@ def resolve_column(name: str, col: Any) -> ResolvedColumn:
     return _resolve_number(name, col)
 
 
+VALUE_EPS_MARGIN = 1e-12
+
+
 def _resolve_with_missing_flag(name: str, col: NumericColumn) -> ResolvedColumn:
     """missing: as-answer without bins: the value through the column's mean mechanism at the column's
     eps minus missing_epsilon, beside a randomized missing flag at missing_epsilon (one mechanism,
@@ -662,7 +662,9 @@ def _resolve_with_missing_flag(name: str, col: NumericColumn) -> ResolvedColumn:
         raise PolicyError(f"{_where(name, 'missing_epsilon')}: missing_epsilon ({flag_eps:g}) must be below the "
                           f"column's epsilon ({eps:g}); lower missing_epsilon or leave it out (default: a quarter of "
                           "the column's epsilon)")
-    rc = _resolve_number(name, col.model_copy(update={"epsilon": round(eps - flag_eps, 12)}))
+    # the value gets the rest less 1e-12, so that the product of the two realized ratios (each at most a
+    # certified lower bound of e^its eps) stays below the certified lower bound of e^eps, whatever the rounding
+    rc = _resolve_number(name, col.model_copy(update={"epsilon": round(eps - flag_eps, 12) - VALUE_EPS_MARGIN}))
     rc.config = col
     assert rc.mechanism is not None
     try:

@@ -28,7 +28,7 @@ from .discrete_laplace import DiscreteLaplace
 from .distribution import Hierarchy, SquareWave
 from .hadamard import HadamardResponse
 from .matrix import Matrix
-from .missing import DEFAULT_FLAG_SHARE, MissingFlag, with_missing_flag
+from .missing import DEFAULT_FLAG_SHARE, MissingFlag, MissingFlagDistribution, with_missing_flag
 from .numeric import DEFAULT_GRID, GridMechanism, Hybrid, Piecewise, TwoPoint
 from .subset import SubsetSelection
 
@@ -59,7 +59,8 @@ __all__ = ["Mechanism", "FrequencyOracle", "MeanMechanism", "DistributionMechani
            "OUE", "OLH", "TwoPoint", "Piecewise", "Hybrid", "DiscreteLaplace", "HadamardResponse", "SubsetSelection",
            "Matrix", "SquareWave", "Hierarchy", "build", "registry", "choose_categorical", "choose_numeric",
            "categorical_candidates", "AUTO_CATEGORICAL", "default_distribution", "make", "DEFAULT_DISTRIBUTION",
-           "CATEGORICAL", "NUMERIC", "DISTRIBUTION", "MissingFlag", "with_missing_flag", "DEFAULT_FLAG_SHARE"]
+           "CATEGORICAL", "NUMERIC", "DISTRIBUTION", "MissingFlag", "MissingFlagDistribution", "with_missing_flag",
+           "DEFAULT_FLAG_SHARE"]
 
 
 # Candidates for `mechanism: auto` on a categorical column, in order of preference on a tie

@@ -561,6 +561,23 @@ class DistributionMechanism(Mechanism):
         """The additive count statistics (``new_stats``), decoded by ``decode``."""
         return DistributionDecoder(self)
 
+    #: True for a mechanism that can carry a missing flag (``missing: as-answer`` without bins,
+    #: mechanisms/missing.py): its decoded bucket shares are linear in per-row unbiased estimates, so
+    #: their covariance with the flag's present share follows from its statistics split by the flag
+    #: (``flag_cross_covariance``) and ``bucket_of`` says which bucket holds a value.
+    supports_missing_flag: ClassVar[bool] = False
+    missing_flag_reason: ClassVar[str] = ""
+
+    def bucket_of(self, x: np.ndarray) -> np.ndarray:
+        """The decoded distribution's bucket of each value (mechanisms with ``supports_missing_flag``)."""
+        raise NotImplementedError(self.missing_flag_reason)
+
+    def flag_cross_covariance(self, groups: list[tuple[np.ndarray, float]], n: int) -> np.ndarray:
+        """Cov(decoded bucket shares, mean of u) where u is a per-row estimate taking the value u_g on
+        the rows whose statistics are ``groups`` [(stats_g, u_g)] (mechanisms with
+        ``supports_missing_flag``): the rows' sample covariance, as the SEs of the tool are."""
+        raise NotImplementedError(self.missing_flag_reason)
+
     def audit_pairs(self) -> list[tuple[Any, Any]]:
         """The two bounds: the inputs furthest apart (a report's distribution moves most between them)."""
         return [(self.lo, self.hi)]

@@ -19,6 +19,9 @@ method:
 * ``MissingAnswerDecoder`` (a value with a missing flag, mechanisms/missing.py; family mean):
   the additive sums behind the share missing (``missing_share``) and the mean among rows with
   a value (``mean``, a ratio of two unbiased sums with a delta-method SE).
+* ``MissingDistributionDecoder`` (a distribution mechanism's value with a missing flag; family
+  distribution): the value mechanism's count statistics kept apart by the flag's report, and
+  the flag's sums; ``missing_share`` and ``distribution`` (among rows with a value).
 
 The standard error of an average of per-row estimates is their sample standard deviation over
 sqrt(n) (``moments``).  Decoders hold only numpy arrays, numbers and their mechanism, so they
@@ -44,7 +47,7 @@ if TYPE_CHECKING:
 
     from .base import DistributionMechanism, MeanMechanism
     from .categorical import FrequencyOracle
-    from .missing import MissingFlag
+    from .missing import MissingFlag, MissingFlagDistribution
 
 CONSISTENCY_METHODS = ("norm-sub", "norm-mul", "norm")
 
@@ -283,8 +286,36 @@ class DistributionDecoder(Decoder):
         return self.mechanism.decode(self.stats, self.n)
 
 
+class _FlagShare:
+    """The share missing of a value with a missing flag, from the sums of the rows' unbiased present
+    indicators u: n, sum u, sum u^2."""
+
+    n: int
+    su: float
+    suu: float
+
+    def present_share(self) -> tuple[float | None, float | None]:
+        """(unbiased share of rows with a value, its SE); (None, None) before two reports."""
+        if self.n < 2:
+            return None, None
+        est, se = moments(self.su, self.suu, self.n)
+        return float(est), float(se)
+
+    def missing_share(self, z: float, rows: int | None = None, estimand: str = "",
+                      label: str = "<missing>") -> FrequencyResult:
+        """The share of rows whose value is missing (1 - the present share), with its SE and interval,
+        the estimated count (share x ``rows``) and the share clipped into [0, 1]."""
+        est, se = self.present_share()
+        rows = self.n if rows is None else rows
+        if est is None:
+            return FrequencyResult(label, None, None, None, None, 0.0, None, estimand)
+        miss = 1.0 - est
+        return FrequencyResult(label, *interval(miss, se, z), float(miss * rows), float(min(max(miss, 0.0), 1.0)),
+                               estimand)
+
+
 @dataclass
-class MissingAnswerDecoder(Decoder):
+class MissingAnswerDecoder(_FlagShare, Decoder):
     """A value report with a missing flag (mechanisms/missing.py): with a_i the value report minus
     the middle of the bounds m (a missing row's value is randomized as m) and u_i the row's
     unbiased present indicator, the sums n, sum a, sum a^2, sum u, sum u^2, sum a u (additive:
@@ -320,25 +351,6 @@ class MissingAnswerDecoder(Decoder):
             setattr(self, k, getattr(self, k) + getattr(other, k))
         return self
 
-    def present_share(self) -> tuple[float | None, float | None]:
-        """(unbiased share of rows with a value, its SE); (None, None) before two reports."""
-        if self.n < 2:
-            return None, None
-        est, se = moments(self.su, self.suu, self.n)
-        return float(est), float(se)
-
-    def missing_share(self, z: float, rows: int | None = None, estimand: str = "",
-                      label: str = "<missing>") -> FrequencyResult:
-        """The share of rows whose value is missing (1 - the present share), with its SE and interval,
-        the estimated count (share x ``rows``) and the share clipped into [0, 1]."""
-        est, se = self.present_share()
-        rows = self.n if rows is None else rows
-        if est is None:
-            return FrequencyResult(label, None, None, None, None, 0.0, None, estimand)
-        miss = 1.0 - est
-        return FrequencyResult(label, *interval(miss, se, z), float(miss * rows), float(min(max(miss, 0.0), 1.0)),
-                               estimand)
-
     def ratio(self) -> tuple[float | None, float | None, float | None]:
         """(mean among rows with a value, its delta-method SE, the present share's estimate):
         m + sum a / sum u, Var = (Var(a bar) - 2 R Cov(a bar, u bar) + R^2 Var(u bar)) / u bar^2
@@ -370,3 +382,80 @@ class MissingAnswerDecoder(Decoder):
                               note="the share of rows with a value is not clearly above 0: the ratio and its SE "
                                    "are unreliable", estimand=estimand)
         return res
+
+
+@dataclass
+class MissingDistributionDecoder(_FlagShare, Decoder):
+    """A distribution mechanism's value report with a missing flag (mechanisms/missing.py): the value
+    mechanism's additive count statistics of the rows whose flag reads present (``stats_present``)
+    and missing (``stats_missing``), and the sums of the rows' unbiased present indicators u.
+
+    The distribution among rows with a value: with m the decoded bucket shares of all rows (a missing
+    row's value is randomized as the middle of the bounds, whose bucket is j), u bar the present
+    share and e_j the unit vector of bucket j, g = (m - (1 - u bar) e_j) / u bar, unbiased to first
+    order, with the delta-method covariance (C_m - w c' - c w' + w w' Var(u bar)) / u bar^2, w = g - e_j
+    and c = Cov(m, u bar) (``flag_cross_covariance`` of the value mechanism)."""
+
+    family: ClassVar[str] = "distribution"
+    mechanism: MissingFlagDistribution
+    n: int = 0
+    su: float = 0.0
+    suu: float = 0.0
+    stats_present: Any = None
+    stats_missing: Any = None
+
+    def __post_init__(self) -> None:
+        if self.stats_present is None:
+            self.stats_present = self.mechanism.value.new_stats()
+        if self.stats_missing is None:
+            self.stats_missing = self.mechanism.value.new_stats()
+
+    def _u_values(self) -> tuple[float, float]:
+        """u on a row whose flag reads present, and on one whose flag reads missing."""
+        p, q = self.mechanism.flag.p_star, self.mechanism.flag.q_star
+        return (1.0 - q) / (p - q), -q / (p - q)
+
+    def add(self, arrays: list[pa.Array]) -> Self:
+        u = self.mechanism.flag_estimates(arrays)
+        reads_present = u > 0
+        self.n += u.size
+        self.su += float(u.sum())
+        self.suu += float(np.dot(u, u))
+        value = arrays[:-1]
+        for mask, stats in ((reads_present, self.stats_present), (~reads_present, self.stats_missing)):
+            if mask.any():
+                keep = pa.array(mask)
+                self.mechanism.value.add_stats(stats, [a.filter(keep) for a in value])
+        return self
+
+    def merge(self, other: Self) -> Self:
+        self.n += other.n
+        self.su += other.su
+        self.suu += other.suu
+        self.stats_present += other.stats_present
+        self.stats_missing += other.stats_missing
+        return self
+
+    def distribution(self) -> Any:
+        """The decoded ``Distribution`` among rows with a value (see the class docstring); the value
+        mechanism's own (of all rows) when its decode gives no covariance or the present share is not
+        positive, with the method saying so."""
+        from ..distribution import Distribution
+
+        m = self.mechanism
+        d = m.value.decode(self.stats_present + self.stats_missing, self.n)
+        share, share_se = self.present_share()
+        if d.cov is None or share is None or share_se is None or not share > 0 or not np.all(np.isfinite(d.mass)):
+            d.method += "; NOT corrected for the rows without a value (too few rows, or no positive present share)"
+            return d
+        up, um = self._u_values()
+        c = m.value.flag_cross_covariance([(self.stats_present, up), (self.stats_missing, um)], self.n)
+        e = np.zeros(len(d.mass))
+        e[m.fill_bucket()] = 1.0
+        g = (d.mass - (1.0 - share) * e) / share
+        w = g - e
+        cov = (d.cov - np.outer(w, c) - np.outer(c, w) + np.outer(w, w) * share_se ** 2) / share ** 2
+        return Distribution(d.edges, g, method=d.method + f"; among rows with a value: the bucket of {m.fill:g} (where "
+                            "a missing row's value is randomized) less the estimated share missing, all divided by the "
+                            "estimated share with a value (delta-method covariance)", n=self.n, cov=cov,
+                            centers=d.centers, within=d.within)

@@ -476,6 +476,38 @@ class Hierarchy(DistributionMechanism):
         s = np.floor((np.asarray(x, dtype=float) - self.lo) * (self.leaves / (self.hi - self.lo)))
         return np.clip(s, 0, self.leaves - 1).astype(np.int64)
 
+    # a missing flag beside the value (missing: as-answer; mechanisms/missing.py) -----------------
+    supports_missing_flag: ClassVar[bool] = True
+
+    def bucket_of(self, x: np.ndarray) -> np.ndarray:
+        return self.leaf_of(x)
+
+    def flag_cross_covariance(self, groups: list[tuple[np.ndarray, float]], n: int) -> np.ndarray:
+        """Cov(decoded leaves, mean of u) (base.DistributionMechanism).  The leaves are linear in
+        the level estimates, est_l = mean over the level's rows of w_i = (S_i - q*)/(p* - q*), with
+        the data-independent maps d leaves / d est_l of ``decode``; rows are independent, so
+        Cov(est_l, mean u) = (the sample covariance of w_i and u_i over the level's rows) / n, and
+        the sums it needs are the support counts of the rows of each group times u_g."""
+        total = sum(st for st, _ in groups)
+        counts = [int(c) for c in np.asarray(total)[: self.height]]
+        prec = self.level_weights(counts)
+        out = np.zeros(self.leaves)
+        for lvl, (o, (soff, k, _, _)) in enumerate(zip(self.oracles, self._layout)):
+            nl = counts[lvl]
+            if nl < 2:
+                continue
+            p, q = o.p_star, o.q_star
+            sw, swu, su = np.zeros(k), np.zeros(k), 0.0
+            for st, u in groups:
+                w_sum = (np.asarray(st[soff: soff + k], dtype=float) - q * float(st[lvl])) / (p - q)
+                sw += w_sum
+                swu += u * w_sum
+                su += u * float(st[lvl])
+            cov_l = (swu - sw * su / nl) / (nl - 1)
+            basis = [np.eye(k) if j == lvl else np.zeros((kj, k)) for j, kj in enumerate(self.nodes)]
+            out += self.consistent(basis, np.zeros(k), prec) @ cov_l / n
+        return out
+
     def assign_levels(self, words: np.ndarray) -> np.ndarray:
         """Level (1..h) of each row, from its first PRF word only: independent of the data."""
         return to_below(words[:, 0], self.height) + 1

@@ -28,6 +28,13 @@ unbiased present indicator):
   (its numerator's per-row variance is about E[v^2] E[u^2]), while here the flag's noise enters
   only through the denominator, scaled by the distance of the mean from m.
 
+With a distribution mechanism for the value (``MissingFlagDistribution``; one whose decoded buckets
+are linear in per-row unbiased estimates, ``supports_missing_flag``): the value's statistics are
+kept apart by the flag's report, and the distribution among rows with a value is the decoded one
+less the share missing at the bucket of the middle of the bounds, divided by the present share
+(``decoders.MissingDistributionDecoder``, delta-method covariance with the value mechanism's
+``flag_cross_covariance``).
+
 The spec of the pair is the value mechanism's spec at the column's eps with one more entry,
 ``missing_answer``: {value_epsilon, flag_epsilon, fill}; ``base.build`` rebuilds the pair from it.
 The formulas, and the coverage measured by tests/test_missing_answer.py, are in docs/formulas.md
@@ -44,11 +51,11 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from ..errors import PolicyError
-from .base import MeanMechanism, Mechanism, check_epsilon
+from .base import DistributionMechanism, MeanMechanism, Mechanism, check_epsilon, registry
 
 if TYPE_CHECKING:
     from .categorical import GRR
-    from .decoders import MissingAnswerDecoder
+    from .decoders import MissingAnswerDecoder, MissingDistributionDecoder
 
 #: The labels of the missing flag's two answers (code 0: the row has a value; code 1: missing).
 FLAG_LABELS = ("present", "missing")
@@ -74,10 +81,17 @@ class MissingFlag(Mechanism):
     def __init__(self, value: Mechanism, flag_epsilon: float, epsilon: float | None = None) -> None:
         from .categorical import GRR
 
-        if not isinstance(value, MeanMechanism):
-            raise PolicyError(f"missing: as-answer on a numeric column released as a number needs a mean mechanism for "
-                              f"the value; {value.name} decodes a distribution. Leave mechanism out (or name a mean "
-                              "mechanism), or add bins: [edges] to release the column as bins with a <missing> bin")
+        if not isinstance(value, (MeanMechanism, DistributionMechanism)):
+            raise PolicyError(f"missing: as-answer on a numeric column needs a mean or distribution mechanism for the "
+                              f"value, not {value.name}")
+        if isinstance(value, DistributionMechanism) and not value.supports_missing_flag:
+            takers = [n for n, c in registry().items()
+                      if issubclass(c, DistributionMechanism) and c.supports_missing_flag]
+            raise PolicyError(f"missing: as-answer without bins needs a value mechanism whose decoded distribution can "
+                              f"be corrected for the rows without a value; {value.name} cannot (its decoder smooths, "
+                              f"so its estimates are not linear in the reports). Use mechanism "
+                              f"{' or '.join(takers) or 'a mean mechanism'}, or add bins: [edges] to release the "
+                              "column as bins with a <missing> bin")
         if value.variable_draws:
             raise PolicyError(f"missing: as-answer needs a value mechanism with a fixed number of random words per "
                               f"row; {value.name} draws a variable number. Leave mechanism out, or name another "
@@ -114,7 +128,7 @@ class MissingFlag(Mechanism):
                               f"flag_epsilon and fill, got {layer!r}")
         inner = {k: v for k, v in spec.items() if k != "missing_answer"}
         inner["epsilon"] = layer["value_epsilon"]
-        built = cls(build(inner), layer["flag_epsilon"], spec.get("epsilon"))
+        built = with_missing_flag(build(inner), layer["flag_epsilon"], spec.get("epsilon"))
         if built.fill != layer["fill"]:
             raise PolicyError(f"mechanism {spec.get('mechanism')}: missing_answer fill {layer['fill']!r} is not the "
                               f"middle of the bounds ({built.fill!r})")
@@ -209,7 +223,7 @@ class MissingFlag(Mechanism):
         and sd_u^2 the flag's noise.  With a share s of rows having a value it is about 1/s^2 times
         this (the ratio's denominator)."""
         p, q = self.flag.p_star, self.flag.q_star
-        sd_a = float(np.sqrt(self.value.mean_row_variance()))
+        sd_a = float(np.sqrt(float(self.value.mean_row_variance() or 0.0)))
         sd_u = float(np.sqrt(p * (1 - p))) / (p - q)
         return (sd_a + (self.hi - self.lo) / 2.0 * sd_u) ** 2
 
@@ -223,6 +237,32 @@ class MissingFlag(Mechanism):
         return False
 
 
+class MissingFlagDistribution(MissingFlag):
+    """A distribution mechanism's value report plus the missing flag (``family`` distribution): decoded
+    as the share missing and the distribution among rows with a value (``MissingDistributionDecoder``),
+    the value mechanism's statistics kept apart by the flag's report so that the covariance of its
+    decoded buckets with the present share is known (``flag_cross_covariance``)."""
+
+    kind: ClassVar[str] = "distribution"
+    family: ClassVar[str] = "distribution"
+    value: DistributionMechanism
+
+    def decoder(self, *, joint: bool = False) -> MissingDistributionDecoder:  # type: ignore[override]
+        from .decoders import MissingDistributionDecoder
+
+        return MissingDistributionDecoder(self)
+
+    def mean_row_variance(self) -> float | None:   # type: ignore[override]
+        return None   # the mean is read off the decoded distribution (plan simulates it)
+
+    def fill_bucket(self) -> int:
+        """The bucket of the decoded distribution that holds the middle of the bounds."""
+        return int(self.value.bucket_of(np.array([self.fill]))[0])
+
+
 def with_missing_flag(value: Mechanism, flag_epsilon: float, epsilon: float | None = None) -> MissingFlag:
-    """The pair of ``value`` (a mean mechanism at its own eps) and a missing flag at ``flag_epsilon``."""
+    """The pair of ``value`` (a mean or distribution mechanism at its own eps) and a missing flag at
+    ``flag_epsilon``."""
+    if isinstance(value, DistributionMechanism):
+        return MissingFlagDistribution(value, flag_epsilon, epsilon)
     return MissingFlag(value, flag_epsilon, epsilon)
