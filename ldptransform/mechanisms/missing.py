@@ -236,6 +236,14 @@ class MissingFlag(Mechanism):
     def audit_ordered(self) -> bool:
         return False
 
+    def audit_outcomes(self, arrays: list[pa.Array], pair: tuple[Any, Any]) -> np.ndarray:
+        """What the value report says about the pair (the value mechanism's own outcome, a missing
+        input read as the middle of the bounds), joined with the flag's report."""
+        inner = tuple(self.fill if isinstance(v, float) and np.isnan(v) else v for v in pair)
+        value = self.value.audit_outcomes(arrays[:-1], (inner[0], inner[1]))
+        flag = self.flag.reported_codes(arrays[-1:])
+        return np.char.add(np.char.add(value.astype(str), "|"), np.asarray(flag).astype(str)).astype(object)
+
 
 class MissingFlagDistribution(MissingFlag):
     """A distribution mechanism's value report plus the missing flag (``family`` distribution): decoded
