@@ -394,3 +394,38 @@ def test_empirical_audit_finds_no_violation() -> None:
     for c in by.values():
         assert c["status"] == "pass" and 0 < c["epsilon_lower"] <= c["epsilon"], c
     assert by["hours"]["epsilon_lower"] > 0.6      # the reduced outcomes keep what tells the pair apart
+
+
+def test_sampled_and_memoized_releases(tmp_path: Path, private_dir: Path) -> None:
+    """Under budget.strategy sample (rows that do not report a column leave all its fields empty) and
+    for a memoized binned column, the share missing and the mean among rows with a value come within 4
+    SE of the truth, and steward-side validate passes."""
+    from ldptransform import estimate, privatize, validate
+    from ldptransform.keys import SecretKey
+
+    n = 20000
+    x, missing = _skewed_pay(n, seed=31)
+    rng = np.random.default_rng(32)
+    raw = tmp_path / "people.csv"
+    pd.DataFrame({"pid": np.arange(n), "pay": np.where(missing, np.nan, np.round(x, 2)),
+                  "g": rng.choice(["a", "b"], n)}).to_csv(raw, index=False)
+    key = SecretKey(bytes(range(140, 172)))
+    sampled = parse_policy({"budget": {"epsilon_per_row": 4.0, "strategy": "sample", "sample_columns": 1},
+                            "columns": {"pid": {"type": "drop"}, "g": {"type": "categorical", "categories": ["a", "b"]},
+                                        "pay": {"type": "numeric", "bounds": [0, 100], "missing": "as-answer"}}},
+                           "sampled")
+    memo = parse_policy({"budget": {"epsilon_per_row": 1.0}, "subject_key": "pid",
+                         "columns": {"pid": {"type": "drop"}, "g": {"type": "drop"},
+                                     "pay": {"type": "numeric", "bins": [0, 20, 50, 100], "epsilon": 1.0,
+                                             "missing": "as-answer", "memoize": True}}}, "memoized")
+    for name, lp in (("sampled", sampled), ("memoized", memo)):
+        out = tmp_path / f"{name}.parquet"
+        privatize(raw, lp, key, out)
+        col = estimate(out).to_dict()["columns"]["pay"]
+        share = next(f for f in col["frequencies"] if f["value"] == MISSING_LABEL)
+        assert abs(share["estimate"] - missing.mean()) <= 4 * share["se"], (name, share)
+        if name == "sampled":
+            assert 0.4 * n < col["rows_reported"] < 0.6 * n
+            assert abs(col["mean"]["estimate"] - x[~missing].mean()) <= 4 * col["mean"]["se"], col["mean"]
+        rep = validate(out, raw=raw, key=key)
+        assert rep.ok, [c.as_dict() for c in rep.checks if c.status == "fail"]
