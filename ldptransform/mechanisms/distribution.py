@@ -348,10 +348,13 @@ class SquareWave(DistributionMechanism):
 
         rep = (f"{replicates} redraws of the output counts as multinomial(n, channel x estimate), each "
                "re-decoded by EMS; analysis randomness from numpy's Philox keyed by a SHA-256 hash of the "
-               "statistics and the spec, so the same extract always gives the same interval. EMS's smoothing "
-               "bias is not corrected: where it is large against the noise (many rows) the interval holds the "
-               "truth less often than stated (95% intervals in the tool's tests on skewed pay at eps 1: about "
-               "96% at 20000 rows, but 85% for the median at 100000 rows)")
+               "statistics and the spec, so the same extract always gives the same interval. CAUTION: EMS's "
+               "smoothing bias is not corrected and cannot be bounded from the reports, so these intervals hold "
+               "the truth less often than stated wherever the column is not smooth (measured coverage of 95% "
+               "intervals of the quantiles 0.1-0.9, pooled over 20,000 and 200,000 rows and eps 0.5-4: 94% on "
+               "smooth skewed pay, but as low as 10% at the 10th percentile of a heavy tail; 47% on a column "
+               "with 40% zeros, 33% on counts, 28% on a survey's visit counts; 0% for a quantile on a spike). "
+               "For intervals that hold whatever the shape, release the column with hierarchy or bins")
         return Distribution(edges, x, method=how, n=n, centers=self.inputs, replicates=draw, replicate_method=rep)
 
 
@@ -705,7 +708,10 @@ class Hierarchy(DistributionMechanism):
         how = (f"hierarchy reports (eps {self.epsilon:g}, branching {self.branching}, {self.leaves} leaves, "
                f"{self.height} levels, oracles {'/'.join(o.name for o in self.oracles)}): unbiased node shares per "
                "level, then weighted constrained inference (consistent tree, root = 1); unbiased, may be "
-               "negative in places")
+               "negative in places; intervals hold whatever the shape inside a leaf (measured coverage of "
+               "95% intervals on skewed, zero-spiked and count data, 20,000 and 200,000 rows, eps 0.5-4: "
+               "99-100% for quantiles and for ranges with an end inside a leaf, which are conservative, and "
+               "95-96% for ranges between leaf edges)")
         if min(counts) < 2:
             # a level with (almost) no rows leaves part of the tree unestimated: no answer
             return Distribution(edges, np.full(self.leaves, np.nan), method=how + "; too few rows on some level",
