@@ -733,6 +733,9 @@ def _column_result(entry: ColumnEntry, st: decoders.Decoder, manifest: Manifest,
             if shares is not None and cov is not None:
                 prefix_se = np.sqrt(np.maximum(np.diag(np.cumsum(np.cumsum(cov, axis=0), axis=1)), 0.0))
                 d = binned_distribution(np.asarray(entry.bins, float), shares, prefix_se, cov=cov, n=st.n)
+                if among != "all rows":
+                    d.method += ("; among rows with a value: the bin shares divided by their sum (delta-method "
+                                 "covariance)")
                 dist = _distribution_result(d, an, entry.name, confidence, enc, among)
         return ColumnResult(**head, family="frequency", frequencies=freqs,
                             consistent_method=f"{an.consistency} (post-processed to a valid distribution; biased, "

@@ -327,6 +327,7 @@ def test_privatize_and_estimate_through_the_cli(ldpt, tmp_path: Path) -> None:
     age_share = next(f for f in age["frequencies"] if f["value"] == MISSING_LABEL)
     assert abs(age_share["estimate"] - age_missing.mean()) <= 4 * age_share["se"]
     assert abs(sum(age["distribution"]["histogram"]["mass"]) - 1) < 1e-9
+    assert "among rows with a value" in age["distribution"]["method"]
     hours = cols["hours"]
     assert hours["frequencies"][0]["value"] == MISSING_LABEL and hours["mean"]["se"] > 0
     assert abs(sum(hours["distribution"]["histogram"]["mass"]) - 1) < 1e-9
