@@ -10,6 +10,7 @@ from __future__ import annotations
 import functools
 import io
 import json
+import pickle
 from pathlib import Path
 from typing import Any
 
@@ -266,6 +267,17 @@ def test_decoders_merge_by_addition() -> None:
     assert isinstance(whole, MissingAnswerDecoder) and parts.n == whole.n
     for k in ("sa", "saa", "su", "suu", "sau"):
         assert getattr(parts, k) == pytest.approx(getattr(whole, k), rel=1e-12, abs=1e-9)
+    # a distribution mechanism's value: the count statistics split by the flag merge exactly, and the
+    # decoders and mechanisms pickle (the dask engine ships them)
+    md = _resolve(_numeric(2.0, needs=["quantiles"])).mechanism
+    arrays = md.randomize(np.where(missing, np.nan, x), words("merge-distribution", 3000, md.words_per_row))
+    whole_d = md.decoder().add(arrays)
+    parts_d = pickle.loads(pickle.dumps(md.decoder().add([a.slice(0, 999) for a in arrays]))).merge(
+        md.decoder().add([a.slice(999) for a in arrays]))
+    assert np.array_equal(parts_d.stats_present, whole_d.stats_present)
+    assert np.array_equal(parts_d.stats_missing, whole_d.stats_missing)
+    assert np.allclose(parts_d.distribution().mass, whole_d.distribution().mass, rtol=0, atol=1e-12)
+    assert pickle.loads(pickle.dumps(md)).to_spec() == md.to_spec()
 
 
 # -- end to end through the command line ---------------------------------------------------------
