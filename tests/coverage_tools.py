@@ -231,7 +231,8 @@ class Coverage:
     ``q_hits[i]`` counts releases whose interval for ``quantiles[i]`` held the truth,
     ``q_half[i]`` those whose interval made half as wide (each side halved around the estimate)
     still did: the same for ranges.  ``r_edges[j]``: both ends of range j on bucket edges of this
-    route's histogram.  ``q_methods``/``r_methods``: the distinct method texts of the intervals."""
+    route's histogram.  ``q_methods``/``r_methods``: the distinct method texts of the intervals,
+    ``d_methods`` those of the decoded distributions."""
 
     route: str
     shape: str
@@ -248,6 +249,7 @@ class Coverage:
     q_width: np.ndarray                      # mean interval width per quantile (column units)
     q_methods: set[str] = field(default_factory=set)
     r_methods: set[str] = field(default_factory=set)
+    d_methods: set[str] = field(default_factory=set)
     seconds: float = 0.0
 
     @property
@@ -301,6 +303,7 @@ def measure(route: str, shape: Shape | str, n: int, eps: float, releases: int, *
         d = release(r)
         if reread is not None:
             d = reread(d)
+        cov.d_methods.add(d.method)
         for i, q in enumerate(quantiles):
             iv = d.quantile_ci(q, CONFIDENCE)
             full, half = _held(iv.lo, iv.hi, iv.estimate, tq[i])
