@@ -81,7 +81,8 @@ def hierarchy_results() -> list[Coverage]:
 
 def test_hierarchy_intervals_cover_on_skewed_spiky_and_discrete_data(hierarchy_results):
     """Quantiles 0.1, 0.25, 0.5, 0.75, 0.9 and four range shares per shape (two with both ends on
-    leaf edges, two with ends inside leaves), 380 releases in all (about 8 s)."""
+    leaf edges, two with ends inside leaves), 300 releases in all (about 8 s).  Measured: pooled
+    quantile coverage 0.993, ranges 0.965; half as wide 0.54 and 0.64."""
     got = assert_covers(hierarchy_results)
     assert got["q"] >= 0.97 and got["r"] >= 0.95, got   # measured: conservative (intervals reach leaf edges)
     # what the tool says of them (it quotes 99-100% for quantiles, 95-96% for ranges between leaf edges)
@@ -93,8 +94,8 @@ def test_hierarchy_intervals_cover_on_skewed_spiky_and_discrete_data(hierarchy_r
 
 def test_hierarchy_linear_reading_would_under_cover_discrete_data():
     """The same releases with the intervals read linearly within leaves (rows assumed spread
-    evenly, the old default) miss the truth of integer counts far more often than 5%: what the
-    edge-reaching intervals repair."""
+    evenly, the old default) miss the truth of integer counts far more often than 5% (measured:
+    pooled quantile coverage 0.48): what the edge-reaching intervals repair."""
     res = [ct.measure("hierarchy", s, n, e, 30, reread=linear_reading)
            for s, n, e in (("counts", 20000, 1.0), ("randhie", 20190, 2.0))]
     q, rel = ct.pooled(res, "q")
@@ -115,7 +116,9 @@ def test_bins_intervals_cover_through_each_oracle(oracle):
     """Every shape at 20000 rows (randhie at its 20190) and one at 200000, each oracle on its own
     rotation of eps over the grid; 40 releases (12 at 200000 rows), under 2 s per oracle.  Bins
     are the ones a steward would give each shape (``coverage_tools.SHAPES``): integers sit on
-    the lower edges of theirs, zeros at the lower edge of the first."""
+    the lower edges of theirs, zeros at the lower edge of the first.  Measured: pooled quantile
+    coverage 0.997-0.999, ranges 0.974-0.987 over the oracles; read linearly within bins, the
+    quantiles of the zeros and the counts 0.34-0.57."""
     i = ct.binned_oracles().index(oracle)
     grid = [(s, n, EPS[(i + j) % 4], R) for j, (s, n, R) in enumerate(
         [("heavy-tail", 20000, 40), ("zeros", 20000, 40), ("counts", 20000, 40), ("randhie", 20190, 40),
