@@ -9,6 +9,7 @@ test writes diagnostics into the real ~/.local/state.
 
 from __future__ import annotations
 
+import contextlib
 import copy
 import hashlib
 import os
@@ -16,7 +17,7 @@ import subprocess
 import sys
 import traceback
 from pathlib import Path
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from typing import TYPE_CHECKING, Any
 
 import pytest
@@ -109,6 +110,17 @@ def pytest_unconfigure(config: pytest.Config) -> None:
     folder = getattr(config, "_ldpt_private", None)
     if folder:
         shutil.rmtree(folder, ignore_errors=True)
+
+
+@contextlib.contextmanager
+def module_private_dir(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Path]:
+    """For a module-scoped fixture that releases (it runs before the per-test folder below is
+    set): a steward-private folder of its own while the block runs, so that its nonce records
+    and diagnostics stay apart from every other module's."""
+    d = tmp_path_factory.mktemp("ldpt-private-module")
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setenv("LDPT_PRIVATE_DIR", str(d))
+        yield d
 
 
 @pytest.fixture(autouse=True)

@@ -188,26 +188,17 @@ def releaser(route: str, shape: Shape, x: np.ndarray, eps: float, *, sw_replicat
     """release number -> decoded Distribution of one release of the rows ``x`` on ``route``."""
     n = len(x)
     label = f"{route}/{shape.name}/{n}/{eps:g}"
-    if route == "hierarchy":
-        h = route_mechanism(route, eps, shape.bounds)
-        assert isinstance(h, Hierarchy)
+    if route in ("hierarchy", "square-wave"):
+        dm = route_mechanism(route, eps, shape.bounds)
+        assert isinstance(dm, (Hierarchy, SquareWave))
+        opts: dict[str, Any] = {"replicates": sw_replicates} if isinstance(dm, SquareWave) else {}
 
-        def release_h(r: int) -> Distribution:
-            arrays = h.randomize(x, words(label, r, n, h.words_per_row))
-            st = h.new_stats()
-            h.add_stats(st, arrays)
-            return h.decode(st, n)
-        return release_h
-    if route == "square-wave":
-        sw = route_mechanism(route, eps, shape.bounds)
-        assert isinstance(sw, SquareWave)
-
-        def release_sw(r: int) -> Distribution:
-            arrays = sw.randomize(x, words(label, r, n, sw.words_per_row))
-            st = sw.new_stats()
-            sw.add_stats(st, arrays)
-            return sw.decode(st, n, replicates=sw_replicates)
-        return release_sw
+        def release_d(r: int) -> Distribution:
+            arrays = dm.randomize(x, words(label, r, n, dm.words_per_row))
+            st = dm.new_stats()
+            dm.add_stats(st, arrays)
+            return dm.decode(st, n, **opts)
+        return release_d
     if route.startswith("bins:"):
         edges = np.asarray(shape.bins, dtype=float)
         codes = bin_codes(x, edges)

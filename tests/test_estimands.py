@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 import pytest
-from conftest import FIXED_KEY_BYTES
+from conftest import FIXED_KEY_BYTES, module_private_dir
 
 from ldptransform import estimate, parse_policy, privatize
 from ldptransform.keys import SecretKey
@@ -68,8 +68,7 @@ def release(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
     raw = d / "raw.parquet"
     df.to_parquet(raw, index=False)
     out = d / "x.parquet"
-    with pytest.MonkeyPatch.context() as mp:  # module fixtures run before the per-test private folder is set
-        mp.setenv("LDPT_PRIVATE_DIR", str(tmp_path_factory.mktemp("ldpt-private-module")))
+    with module_private_dir(tmp_path_factory):
         privatize(raw, parse_policy(POLICY, "estimands.yaml"), KEY, out, nonce="e" * 32)
     return {"df": df, "out": out}
 

@@ -15,7 +15,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 import pytest
-from conftest import FIXED_KEY_BYTES, assert_user_error
+from conftest import FIXED_KEY_BYTES, assert_user_error, module_private_dir
 
 from ldptransform import estimate, parse_policy, privatize
 from ldptransform.errors import DataError, ManifestError, UsageError
@@ -59,14 +59,6 @@ def _release(raw: Path, out: Path, policy: dict[str, Any], nonce: str, key: Secr
     return out
 
 
-def _releases_in_private(tmp_path_factory: pytest.TempPathFactory) -> pytest.MonkeyPatch:
-    """Module fixtures run before the per-test private folder is set: give them their own (so
-    that their nonce records and diagnostics never go to the real steward's folder)."""
-    mp = pytest.MonkeyPatch()
-    mp.setenv("LDPT_PRIVATE_DIR", str(tmp_path_factory.mktemp("ldpt-private-module")))
-    return mp
-
-
 def _manifest(extract: Path) -> Path:
     return extract.with_name(extract.stem + ".manifest.json")
 
@@ -76,12 +68,9 @@ def pair(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     """The same rows released at eps 1 and at eps 3 (a single-file extract each)."""
     d = tmp_path_factory.mktemp("integrity")
     raw = _raw(d)
-    mp = _releases_in_private(tmp_path_factory)
-    try:
+    with module_private_dir(tmp_path_factory):
         one = _release(raw, d / "eps1.parquet", _policy(1.0), "1" * 32)
         three = _release(raw, d / "eps3.parquet", _policy(3.0), "3" * 32)
-    finally:
-        mp.undo()
     return {"dir": d, "raw": raw, "one": one, "three": three}
 
 
@@ -188,8 +177,7 @@ def nights(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     d = tmp_path_factory.mktemp("nights")
     raw = _raw(d)
     pol = _policy(memoize=True)
-    mp = _releases_in_private(tmp_path_factory)
-    try:
+    with module_private_dir(tmp_path_factory):
         return {
             "a": _release(raw, d / "night1.parquet", pol, "a1" * 16),
             "b": _release(raw, d / "night2.parquet", pol, "a2" * 16),
@@ -197,8 +185,6 @@ def nights(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
             "plain1": _release(raw, d / "plain1.parquet", _policy(), "b1" * 16),
             "plain2": _release(raw, d / "plain2.parquet", _policy(), "b2" * 16),
         }
-    finally:
-        mp.undo()
 
 
 def test_memoized_releases_of_the_same_people_are_not_merged(nights: dict[str, Path], ldpt: Any) -> None:

@@ -11,7 +11,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-from conftest import FIXED_KEY_BYTES, write_fixed_key
+from conftest import FIXED_KEY_BYTES, module_private_dir, write_fixed_key
 from typer.testing import CliRunner
 
 from ldptransform import estimate, parse_policy, privatize, validate
@@ -44,8 +44,7 @@ def release(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     raw = d / "raw.parquet"
     df.to_parquet(raw, index=False)
     out = d / "x.parquet"
-    with pytest.MonkeyPatch.context() as mp:  # module fixtures run before the per-test private folder is set
-        mp.setenv("LDPT_PRIVATE_DIR", str(tmp_path_factory.mktemp("ldpt-private-module")))
+    with module_private_dir(tmp_path_factory):
         privatize(raw, parse_policy(POLICY, "results policy"), KEY, out, nonce="7" * 32)
     return {"raw": raw, "out": out, "dir": d}
 
