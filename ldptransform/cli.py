@@ -489,7 +489,7 @@ def policy_check(policy: Path = typer.Argument(..., help="Policy file to check."
             dom = f"[{rc.config.domain[0]:g}, {rc.config.domain[1]:g}]"
         else:
             dom = "released in the clear (NOT protected)" if rc.type == "public" else "not released"
-        mname = (m.name + (" (auto)" if rc.chosen_because else "")) if m else "-"
+        mname = (m.label + (" (auto)" if rc.chosen_because else "")) if m else "-"
         memo = ("-" if not rc.memoize else f"yes (grid {rc.memo_grid})" if rc.memo_grid else "yes")
         if rc.memoize and rc.rerandomize_epsilon is not None:
             memo += f", second layer eps {rc.rerandomize_epsilon:g} (permanent eps {rc.permanent_epsilon:g})"

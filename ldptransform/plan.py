@@ -475,7 +475,7 @@ def plan(policy: LoadedPolicy, rows: int, *, simulate: bool = True) -> PlanResul
             if rc.type == "public":
                 cols.append(PlanColumn(rc.name, "public", note="released in the clear: NOT protected"))
             continue
-        cols.append(PlanColumn(rc.name, rc.type, rc.mechanism.name, rc.mechanism.epsilon, rc.chosen_because,
+        cols.append(PlanColumn(rc.name, rc.type, rc.mechanism.label, rc.mechanism.epsilon, rc.chosen_because,
                                rows * rate, tuple(column_statistics(rc, rows, rate, default, simulate))))
     stats = [(c.name, st) for c in cols for st in c.statistics or ()]
     missed = tuple(f"{name}: {st.statistic}" for name, st in stats if st.get("meets_target") is False)

@@ -375,6 +375,12 @@ def test_privatize_and_estimate_through_the_cli(ldpt, tmp_path: Path) -> None:
     stats = {c["name"]: {s["statistic"]: s for s in c["statistics"]} for c in json.loads(plan.stdout)["columns"]}
     assert stats["pay"]["share missing"]["se"] >= share["se"] * 0.9      # worst case over data
     assert stats["pay"]["mean"]["se"] > 0 and stats["age"]["share missing"]["se"] > 0
+    # plan and policy check name the value's mechanism, as the manifest and estimate do, with the flag
+    value_mech = pay_entry["mechanism"]["mechanism"]
+    plan_cols = {c["name"]: c for c in json.loads(plan.stdout)["columns"]}
+    assert plan_cols["pay"]["mechanism"] == f"{value_mech} + missing flag"
+    check = ldpt("policy", "check", pol)
+    assert check.returncode == 0 and f"{value_mech} + missing flag" in check.stdout, check.stdout
 
 
 def test_blank_refused_under_missing_error_names_as_answer(ldpt, tmp_path: Path) -> None:

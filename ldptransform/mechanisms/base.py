@@ -300,6 +300,12 @@ class Mechanism(ABC):
     def describe(self) -> str:
         return self.name
 
+    @property
+    def label(self) -> str:
+        """The short name people see in tables (plan, policy check): the registered name, or for
+        a composite its value mechanism and what it adds."""
+        return self.name
+
     # -- decoding (mechanisms/decoders.py) ---------------------------------------------
     @abstractmethod
     def decoder(self, *, joint: bool = False) -> Decoder:

@@ -134,6 +134,10 @@ class MissingFlag(Mechanism):
                               f"middle of the bounds ({built.fill!r})")
         return built
 
+    @property
+    def label(self) -> str:
+        return f"{self.value.name} + missing flag"
+
     def describe(self) -> str:
         return f"{self.value.name} (eps {self.value.epsilon:g}) with a missing flag (grr, eps {self.flag.epsilon:g})"
 
