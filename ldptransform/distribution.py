@@ -11,7 +11,8 @@ shares whose construction is stated in each ``Interval.method``.  Three sources 
   ``binned_distribution`` (unbiased bin shares and their covariance, or the SE of each prefix
   sum).
 * ``square-wave`` reports (``mechanisms.distribution.SquareWave``): a smoothed, non-negative
-  EMS reconstruction; intervals by parametric bootstrap (``replicates``).
+  EMS reconstruction whose bias has no bound, so it states no interval (``no_interval``); the
+  parametric bootstrap (``replicates``) is kept for the coverage study that showed why.
 
 The first two estimate the share of rows in each bucket and nothing about where the rows sit
 inside a bucket (``within="unknown"``, the default).  Their intervals hold whatever that shape
@@ -168,6 +169,10 @@ class Distribution:
         (mean of the replicates minus the estimate), so that it also holds when the
         reconstruction's smoothing bias is not small against the noise; "percentile" is the
         replicates' quantiles; "basic" is 2 x estimate minus their quantiles.
+    no_interval : str, optional
+        Why no interval can be stated for this distribution (a decoder whose bias cannot be
+        bounded): quantile_ci, range_ci and mean_ci then give the estimate with NaN bounds, no
+        SE and this text as their method, rather than an interval that would not hold.
     """
 
     def __init__(self, edges: ArrayLike, mass: ArrayLike, *, method: str, n: int | None,
@@ -175,7 +180,7 @@ class Distribution:
                  centers: np.ndarray | None = None,
                  replicates: Callable[[], np.ndarray] | np.ndarray | None = None,
                  replicate_method: str = "", bootstrap_interval: str = "bias-aware",
-                 within: str = "unknown") -> None:
+                 within: str = "unknown", no_interval: str | None = None) -> None:
         self.edges = np.asarray(edges, dtype=float)
         self.mass = np.asarray(mass, dtype=float)
         K = self.mass.shape[0]
@@ -198,6 +203,7 @@ class Distribution:
         if within not in ("unknown", "linear"):
             raise ValueError("within must be 'unknown' or 'linear'")
         self.within = within
+        self.no_interval = no_interval
         self._F = _cum(self.mass)
 
     # -- basic answers --------------------------------------------------------------------
@@ -352,6 +358,8 @@ class Distribution:
         if self.empty:
             return Interval(math.nan, math.nan, math.nan, confidence, "no rows")
         est = self.range_share(a, b)
+        if self.no_interval is not None:
+            return Interval(est, math.nan, math.nan, confidence, self.no_interval)
         se, kind = self._range_se(a, b)
         if se is not None:
             how = ("exact SE from the covariance of the bucket estimates" if kind == "exact" else
@@ -391,6 +399,8 @@ class Distribution:
         if self.empty:
             return Interval(math.nan, math.nan, math.nan, confidence, "no rows")
         est = self.quantile(q)
+        if self.no_interval is not None:
+            return Interval(est, math.nan, math.nan, confidence, self.no_interval)
         s = self._edge_se()
         if s is not None and self.within == "unknown":
             lo, hi = self._edge_quantile_bounds(q, z, s)
@@ -439,6 +449,8 @@ class Distribution:
         if self.empty:
             return Interval(math.nan, math.nan, math.nan, confidence, "no rows")
         est = self.mean()
+        if self.no_interval is not None:
+            return Interval(est, math.nan, math.nan, confidence, self.no_interval)
         mid = (self.lo + self.hi) / 2
         if self.cov is None and self.cdf_se_edges is None:
             reps = self._replicate_masses()

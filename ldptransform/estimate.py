@@ -589,8 +589,11 @@ def z_value(confidence: float) -> float:
 
 
 def _interval_fields(iv: Any) -> tuple[Any, Any, Any, Any, Any]:
-    """distribution.Interval -> (estimate, se, ci_low, ci_high, method)."""
-    return iv.estimate, iv.se, iv.lo, iv.hi, iv.method
+    """distribution.Interval -> (estimate, se, ci_low, ci_high, method); bounds that are not
+    numbers (no interval can be stated, or no rows) become None."""
+    lo = iv.lo if iv.lo is not None and math.isfinite(iv.lo) else None
+    hi = iv.hi if iv.hi is not None and math.isfinite(iv.hi) else None
+    return iv.estimate, iv.se, lo, hi, iv.method
 
 
 # -- what each statistic estimates (from the manifest and its embedded policy) ----------------
@@ -692,8 +695,10 @@ def _distribution_result(dist: Any, an: Analyses, col: str, confidence: float, e
                  for c, lo, hi in an.ranges if c == col)
     hist = dist.histogram()
     cdf = [float(v) for v in np.atleast_1d(dist.cdf(np.asarray(hist["edges"])))]
-    return DistributionResult(getattr(dist, "method", ""), qs, rngs, tuple(hist["edges"]), tuple(hist["mass"]),
-                              tuple(cdf), source=dist)
+    method = getattr(dist, "method", "")
+    if getattr(dist, "no_interval", None):
+        method = f"{method}; {dist.no_interval}"
+    return DistributionResult(method, qs, rngs, tuple(hist["edges"]), tuple(hist["mass"]), tuple(cdf), source=dist)
 
 
 def _distribution_mean(d: Any, confidence: float, estimand: str) -> MeanResult:

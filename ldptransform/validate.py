@@ -623,8 +623,9 @@ def _calibrate(raw: Path, manifest: Manifest, stats: dict[str, Any], rows: int, 
     ok: bool | None = max_z <= crit
     share = inside / total if total else float("nan")
     small = rows < MIN_CALIBRATION_ROWS
-    if small:
-        ok = None  # the normal approximation is not trustworthy on so few rows: report, do not judge
+    if small or not judged:
+        # too few rows for the normal approximation, or no statistic with an interval: report, do not judge
+        ok = None
     plural = {"frequency": "frequencies", "mean": "means", "quantile": "quantiles", "range share": "range shares"}
     tally = {k: sum(e.statistic == k for e in with_interval) for k in plural}
     covered = ", ".join(f"{v} {plural[k] if v != 1 else k}" for k, v in tally.items() if v)
@@ -633,6 +634,7 @@ def _calibrate(raw: Path, manifest: Manifest, stats: dict[str, Any], rows: int, 
         f"{e.column} {e.statistic}" for e in unjudged[:6]) + (", ..." if len(unjudged) > 6 else "")) if unjudged else ""
     rep.add("calibration", ok, (f"only {rows} rows, too few to judge calibration (needs {MIN_CALIBRATION_ROWS}); "
                                 if small else "") +
+            ("no statistic of the release has an interval, so calibration is not judged; " if not judged else "") +
             f"{inside} of {total} true values ({share:.1%}) lie inside their {confidence:.0%} intervals ({covered}; "
             "quantiles and range shares against the raw column's histogram over the release's buckets); largest "
             f"|z| {max_z:.2f} ({worst_at}), limit {crit:.2f} (family-wise {FAMILY_ALPHA:g}, Bonferroni over "

@@ -191,7 +191,7 @@ def releaser(route: str, shape: Shape, x: np.ndarray, eps: float, *, sw_replicat
     if route in ("hierarchy", "square-wave"):
         dm = route_mechanism(route, eps, shape.bounds)
         assert isinstance(dm, (Hierarchy, SquareWave))
-        opts: dict[str, Any] = {"replicates": sw_replicates} if isinstance(dm, SquareWave) else {}
+        opts: dict[str, Any] = {"study_replicates": sw_replicates} if isinstance(dm, SquareWave) else {}
 
         def release_d(r: int) -> Distribution:
             arrays = dm.randomize(x, words(label, r, n, dm.words_per_row))

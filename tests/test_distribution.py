@@ -585,19 +585,32 @@ def test_binned_distribution_and_frequency_covariance():
     assert isinstance(c.range_ci(1, 3), Interval) and set(c.range_ci(1, 3).as_dict()) >= {"estimate", "lo", "hi"}
 
 
-def test_square_wave_bootstrap_is_reproducible_and_stated():
+def test_square_wave_states_no_interval_and_says_why():
+    """EMS's smoothing bias has no bound, so the decoded distribution gives point estimates
+    only: every interval is NaN, with no SE, and its method says why and what to use instead."""
+    m = SquareWave(1.0, PAY, 64)
+    n = 5000
+    d = m.decode(release_stats(m, pay_data(n, 10), "boot"), n)
+    for iv in (d.quantile_ci(0.5), d.range_ci(40000, 60000), d.mean_ci()):
+        assert math.isfinite(iv.estimate) and math.isnan(iv.lo) and math.isnan(iv.hi) and iv.se is None
+        assert iv.method.startswith("no interval") and "cannot be bounded" in iv.method
+        assert "release the column with hierarchy or bins" in iv.method
+    assert d.quantile_ci(0.5).estimate == d.quantile(0.5)
+
+
+def test_square_wave_study_bootstrap_is_reproducible():
+    """The bootstrap kept for the coverage study: the same statistics give the same interval."""
     m = SquareWave(1.0, PAY, 64)
     n = 5000
     st = release_stats(m, pay_data(n, 10), "boot")
-    a = m.decode(st, n, replicates=40).quantile_ci(0.5)
-    b = m.decode(st.copy(), n, replicates=40).quantile_ci(0.5)
+    a = m.decode(st, n, study_replicates=40).quantile_ci(0.5)
+    b = m.decode(st.copy(), n, study_replicates=40).quantile_ci(0.5)
     assert (a.lo, a.hi) == (b.lo, b.hi) and a.lo < a.estimate < a.hi
-    assert "Philox" in a.method and "same extract always gives the same interval" in a.method
-    assert "bias" in a.method and "less often than stated" in a.method
+    assert "Philox" in a.method and "coverage study only" in a.method
     st2 = st.copy()
     st2[0] += 1
     st2[-1] -= 1
-    c = m.decode(st2, n, replicates=40).quantile_ci(0.5)
+    c = m.decode(st2, n, study_replicates=40).quantile_ci(0.5)
     assert (c.lo, c.hi) != (a.lo, a.hi)                              # other statistics, other draws
 
 
