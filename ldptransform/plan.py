@@ -439,7 +439,9 @@ def _column_statistics(rc: ResolvedColumn, rows: int, rate: float, default: Qual
                     "se_meaning": (f"root mean squared error of the median over {SIM_RELEASES} simulated releases of "
                                    f"skewed reference data (Beta(2, 5) shape) at min(N, {SIM_ROWS}) rows, spread "
                                    "scaled by sqrt(rows), bias kept; an approximation"),
-                    "note": "no lower bound known to the tool for quantiles"}
+                    "note": "no lower bound known to the tool for quantiles" + (
+                        f"; the release will state no interval for this column's quantiles, ranges or mean "
+                        f"({why})" if (why := getattr(m, "no_interval", None)) else "")}
             if target is not None and se is not None:
                 stat["meets_target"] = bool(se <= target)
                 sim_n = min(n, SIM_ROWS)

@@ -410,6 +410,18 @@ def test_a_square_wave_mean_is_simulated_and_says_so():
     assert measured / 1.5 <= pred.se <= measured * 1.5, (pred.se, measured)
 
 
+def test_plan_says_before_a_release_when_a_column_will_state_no_interval():
+    """A distribution route whose decoder states no interval (its bias has no bound): plan's
+    quantile row says so and why, for the steward to choose another route before releasing; a
+    route whose intervals hold carries no such note."""
+    (med,) = [s for s in plan(_distribution_policy("square-wave"), 5000, simulate=False)["columns"][0]["statistics"]
+              if s["statistic"] == "median"]
+    assert "will state no interval" in med["note"] and "cannot be bounded" in med["note"], med["note"]
+    (med,) = [s for s in plan(_distribution_policy("hierarchy"), 5000, simulate=False)["columns"][0]["statistics"]
+              if s["statistic"] == "median"]
+    assert "no interval" not in med["note"], med["note"]
+
+
 def test_a_distribution_mean_target_is_checked_by_plan_and_validate(tmp_path):
     """A target on a distribution column's mean: plan predicts it and says whether it is met (not
     "-"), and validate's quality check judges it; without the simulation (plan(simulate=False))

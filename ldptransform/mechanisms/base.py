@@ -548,6 +548,9 @@ class DistributionMechanism(Mechanism):
 
     kind: ClassVar[str] = "distribution"
     family: ClassVar[str] = "distribution"
+    #: Why the decoded distribution states no interval (None: its intervals hold).  A decoder
+    #: whose bias cannot be bounded sets it; ``plan`` shows it before a release.
+    no_interval: ClassVar[str | None] = None
     lo: float
     hi: float
 

@@ -206,6 +206,7 @@ class SquareWave(DistributionMechanism):
 
     name: ClassVar[str] = "square-wave"
     Params: ClassVar[type[BaseModel]] = GridMechanismParams
+    no_interval: ClassVar[str | None] = SW_NO_INTERVAL
 
     def __init__(self, epsilon: float, bounds: Any, grid: int = DEFAULT_SW_GRID) -> None:
         self.epsilon = check_epsilon(epsilon, f"mechanism {self.name}")
@@ -349,7 +350,7 @@ class SquareWave(DistributionMechanism):
         chan = self._chan
         x = ems(chan, counts[None, :])[0]
         if study_replicates is None:
-            return Distribution(edges, x, method=how, n=n, centers=self.inputs, no_interval=SW_NO_INTERVAL)
+            return Distribution(edges, x, method=how, n=n, centers=self.inputs, no_interval=self.no_interval)
         spec = json.dumps(self.to_spec(), sort_keys=True).encode()
         digest = hashlib.sha256(BOOTSTRAP_LABEL + spec + counts.astype("<i8").tobytes()).digest()
         seed = int.from_bytes(digest[:16], "big")
