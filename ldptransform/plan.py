@@ -441,7 +441,7 @@ def _column_statistics(rc: ResolvedColumn, rows: int, rate: float, default: Qual
                                    "scaled by sqrt(rows), bias kept; an approximation"),
                     "note": "no lower bound known to the tool for quantiles" + (
                         f"; the release will state no interval for this column's quantiles, ranges or mean "
-                        f"({why})" if (why := getattr(m, "no_interval", None)) else "")}
+                        f"({m.no_interval})" if m.no_interval else "")}
             if target is not None and se is not None:
                 stat["meets_target"] = bool(se <= target)
                 sim_n = min(n, SIM_ROWS)

@@ -166,6 +166,9 @@ class Mechanism(ABC):
     #: Policy fields this mechanism refuses with a reason of its own (field -> message), when
     #: the field belongs to other mechanisms or to the automatic choice (two-point: no grid).
     field_refusals: ClassVar[dict[str, str]] = {}
+    #: Why this mechanism's decoded statistics state no interval (None: its intervals hold).  A
+    #: decoder whose bias cannot be bounded sets it; ``plan`` shows it before a release.
+    no_interval: str | None = None
     epsilon: float
 
     # -- construction and spec ------------------------------------------------------
@@ -548,9 +551,6 @@ class DistributionMechanism(Mechanism):
 
     kind: ClassVar[str] = "distribution"
     family: ClassVar[str] = "distribution"
-    #: Why the decoded distribution states no interval (None: its intervals hold).  A decoder
-    #: whose bias cannot be bounded sets it; ``plan`` shows it before a release.
-    no_interval: ClassVar[str | None] = None
     lo: float
     hi: float
 

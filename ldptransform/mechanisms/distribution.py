@@ -206,7 +206,7 @@ class SquareWave(DistributionMechanism):
 
     name: ClassVar[str] = "square-wave"
     Params: ClassVar[type[BaseModel]] = GridMechanismParams
-    no_interval: ClassVar[str | None] = SW_NO_INTERVAL
+    no_interval: str | None = SW_NO_INTERVAL
 
     def __init__(self, epsilon: float, bounds: Any, grid: int = DEFAULT_SW_GRID) -> None:
         self.epsilon = check_epsilon(epsilon, f"mechanism {self.name}")

@@ -101,6 +101,7 @@ class MissingFlag(Mechanism):
                               "rerandomize_epsilon")
         fe = check_epsilon(flag_epsilon, "missing flag")
         self.value = value
+        self.no_interval = value.no_interval
         self.flag: GRR = GRR(fe, list(FLAG_LABELS))
         self.lo, self.hi = float(value.lo), float(value.hi)
         self.fill = (self.lo + self.hi) / 2.0
