@@ -79,16 +79,23 @@ class TableSource:
             raise InputFileError(f"input {self.path} is not a file or a folder of Parquet files. Check the path.")
         if not os.access(self.path, os.R_OK):
             raise InputFileError(f"input file {self.path} is not readable by this user. Check its permissions.")
-        self.size_bytes = self.path.stat().st_size
+        self._stat0 = file_state(self.path)
+        self.size_bytes = self._stat0[0]
         try:
             if self.format == "parquet":
                 self._pf = pq.ParquetFile(self.path)
                 self.schema = self._pf.schema_arrow
                 self.num_rows = self._pf.metadata.num_rows
             else:
+                sniff_csv_encoding(self.path)
                 with self._open_csv(None, {}) as reader:
                     self.schema = reader.schema
+                    self.schema.names  # noqa: B018  (names are decoded here: a header that is not UTF-8 fails now)
+        except UnicodeDecodeError:
+            raise DataError(encoding_message(self.path, 1, None, None)) from None
         except (pa.ArrowInvalid, pa.ArrowIOError, OSError) as err:
+            if self.format == "csv":
+                raise DataError(self._csv_error(err, 0, None)) from None
             raise InputFileError(f"input file {self.path} cannot be read as {self.format.upper()}: "
                                  f"{_clean_arrow_message(err)}. Check that the file is complete and really "
                                  f"is {self.format.upper()}.") from None
@@ -119,13 +126,38 @@ class TableSource:
     def column_names(self) -> list[str]:
         return list(self.schema.names)
 
-    def _open_csv(self, columns: list[str] | None, types: dict[str, pa.DataType]) -> Any:
+    def _open_csv(self, columns: list[str] | None, types: dict[str, pa.DataType],
+                  file: Any = None) -> Any:
         read = pacsv.ReadOptions(block_size=CSV_BLOCK_BYTES, use_threads=True)
         parse = pacsv.ParseOptions(delimiter=self._delim, newlines_in_values=True)
         conv = pacsv.ConvertOptions(include_columns=columns, column_types=types, null_values=self._nulls,
                                     strings_can_be_null=True, quoted_strings_can_be_null=True)
-        return contextlib.closing(pacsv.open_csv(self.path, read_options=read, parse_options=parse,
-                                                 convert_options=conv))
+        return contextlib.closing(pacsv.open_csv(self.path if file is None else file, read_options=read,
+                                                 parse_options=parse, convert_options=conv))
+
+    def _csv_error(self, err: Exception, rows_done: int, columns: list[str] | None) -> str:
+        """The message for a CSV the reader refused: an encoding problem and a cell too large for
+        the reader are located in the file (line, data row, column); anything else keeps the
+        reader's diagnosis (without the data it quotes)."""
+        text = str(err).lower()
+        if "utf8" in text or "utf-8" in text:
+            return encoding_message(self.path, *find_invalid_utf8(self.path, self._delim, columns))
+        if "straddl" in text or "block size" in text:
+            return large_cell_message(self.path, self._delim, rows_done)
+        return (f"input file {self.path} could not be read after data row {rows_done}: "
+                f"{_clean_arrow_message(err)}. Fix that part of the file (for CSV: every row needs the same number "
+                "of fields, quotes must be closed).")
+
+    def check_unchanged(self, bytes_read: int | None = None) -> None:
+        """Refuse (a DataError) if the input file changed since it was opened: its size or
+        modification time differs, or (``bytes_read``) the reader did not stop where the file ended
+        when it was opened.  Called after every full pass over the input, so that a release (and
+        the ledger's pre-pass before it) is of the rows of one file, all of them."""
+        if self.dataset is not None or not hasattr(self, "_stat0"):
+            return
+        now = file_state(self.path, missing_ok=True)
+        if now != self._stat0 or (bytes_read is not None and bytes_read != self._stat0[0]):
+            raise DataError(changed_message(self.location, self._stat0, now, bytes_read))
 
     def batches(self, columns: list[str], batch_rows: int,
                 csv_types: dict[str, pa.DataType] | None = None,
@@ -168,17 +200,210 @@ class TableSource:
             ds = self.parquet_dataset(DEFAULT_FRAGMENT_ROWS)
             for frag in ds.fragments:
                 yield from ds.read(frag, columns, batch_rows, dictionary)
+            self.check_unchanged()
             return
         try:
             types = {c: csv_types.get(c, pa.string()) for c in columns}
-            with self._open_csv(columns, types) as reader:
+            with pa.OSFile(str(self.path), "rb") as f, self._open_csv(columns, types, f) as reader:
                 for b in reader:
                     rows_done += b.num_rows
                     yield b
+                bytes_read = f.tell()
         except (pa.ArrowInvalid, pa.ArrowIOError, OSError) as err:
-            raise DataError(f"input file {self.path} could not be read after data row {rows_done}: "
-                            f"{_clean_arrow_message(err)}. Fix that part of the file (for CSV: every row needs "
-                            "the same number of fields, quotes must be closed).") from None
+            raise DataError(self._csv_error(err, rows_done, columns)) from None
+        self.check_unchanged(bytes_read)
+
+
+def file_state(path: Path, missing_ok: bool = False) -> tuple[int, int]:
+    """(size in bytes, modification time in ns) of a file; (-1, -1) for a file gone (``missing_ok``)."""
+    try:
+        st = os.stat(path)
+    except FileNotFoundError:
+        if not missing_ok:
+            raise
+        return (-1, -1)
+    return (st.st_size, st.st_mtime_ns)
+
+
+def changed_message(location: str, before: tuple[int, int], after: tuple[int, int] | None,
+                    bytes_read: int | None = None) -> str:
+    """The refusal of an input that changed while a release read it (nothing is written)."""
+    if after is not None and after[0] < 0:
+        what = "it was removed or renamed"
+    elif after is not None and after[0] != before[0]:
+        what = f"its size went from {before[0]} to {after[0]} bytes"
+    elif after is not None and after[1] != before[1]:
+        what = "its modification time changed"
+    else:
+        what = f"the reader stopped after {bytes_read} of its {before[0]} bytes"
+    return (f"input {location} changed while the release was reading it ({what}), so the rows read are not one "
+            "consistent table (some could be missing or be read twice). Nothing was written. Let whatever writes the "
+            "file finish (or release a copy that nothing writes to) and run the release again.")
+
+
+_UTF16_HINT = ("CSV input must be UTF-8: convert it (for example save it as \"CSV UTF-8\" from a spreadsheet program, "
+               "or run `iconv -f {enc} -t UTF-8 {path} > converted.csv`) and release the converted file.")
+
+
+def sniff_csv_encoding(path: Path, size: int = 4096) -> None:
+    """Refuse a CSV file that is not UTF-8 text by its first ``size`` bytes: a UTF-16 or UTF-32
+    byte-order mark, or the zero bytes between characters of UTF-16 text without a mark."""
+    with open(path, "rb") as f:
+        head = f.read(size)
+    boms = ((b"\xff\xfe\x00\x00", "UTF-32"), (b"\x00\x00\xfe\xff", "UTF-32"), (b"\xff\xfe", "UTF-16"),
+            (b"\xfe\xff", "UTF-16"))
+    enc = next((e for bom, e in boms if head.startswith(bom)), None)
+    how = "it starts with a {enc} byte-order mark"
+    if enc is None and b"\x00" in head:
+        even, odd = head[0::2], head[1::2]
+        zeros_even, zeros_odd = even.count(0) / max(len(even), 1), odd.count(0) / max(len(odd), 1)
+        if max(zeros_even, zeros_odd) > 0.3 and min(zeros_even, zeros_odd) < 0.05:
+            enc, how = "UTF-16", "every other byte of its text is zero"
+        else:
+            raise DataError(f"input file {path} holds zero bytes near its start: it is not a text CSV file (perhaps "
+                            "another format saved under a .csv name, or text in an encoding other than UTF-8). Export "
+                            "the table as CSV in UTF-8 and release that file.")
+    if enc is not None:
+        raise DataError(f"input file {path} looks {enc} encoded ({how.format(enc=enc)}), not UTF-8. "
+                        + _UTF16_HINT.format(enc=enc, path=path))
+
+
+def find_invalid_utf8(path: Path, delimiter: str, columns: list[str] | None,
+                      chunk: int = 1 << 22) -> tuple[int, int | None, str | None]:
+    """Where a CSV file first holds bytes that are not UTF-8 in a column the reader reads
+    (``columns``; None: any): (line number, data row or None when a quoted cell above may hold a
+    line break, column name or None); line 0 when none is found.  Streams the file in chunks
+    (the error path only); each chunk is decoded by the codec, in C."""
+    header = _header(path, delimiter)
+    line, quotes, carry = 1, 0, b""
+    with open(path, "rb") as f:
+        while True:
+            block = f.read(chunk)
+            data = carry + block  # starts at the beginning of a line
+            start = 0
+            while True:
+                try:
+                    data[start:].decode("utf-8")
+                    break
+                except UnicodeDecodeError as err:
+                    pos = start + err.start
+                    if block and err.reason == "unexpected end of data":
+                        break  # a character cut by the chunk's end: read on
+                    line_no = line + data.count(b"\n", 0, pos)
+                    if line_no == 1:
+                        return 1, None, None
+                    line_start = data.rfind(b"\n", 0, pos) + 1
+                    field = _field_index(data[line_start:pos].decode("utf-8", errors="replace"), delimiter)
+                    name = header[field] if header is not None and field < len(header) else None
+                    if columns is None or name is None or name in columns:
+                        exact = quotes + data.count(b'"', 0, pos) == 0  # no quoted cell above: lines are rows
+                        return line_no, (line_no - 1 if exact else None), name
+                    start = pos + 1  # in a column the release does not read: look further
+            if not block:
+                return 0, None, None
+            cut = data.rfind(b"\n") + 1
+            line += data.count(b"\n", 0, cut)
+            quotes += data.count(b'"', 0, cut)
+            carry = data[cut:]
+
+
+def _header(path: Path, delimiter: str) -> list[str] | None:
+    import csv
+
+    with open(path, "rb") as f:
+        first = f.readline(CSV_BLOCK_BYTES)
+    try:
+        return next(csv.reader([first.decode("utf-8-sig").rstrip("\r\n")], delimiter=delimiter))
+    except (UnicodeDecodeError, StopIteration, csv.Error):
+        return None
+
+
+def _field_index(prefix: str, delimiter: str) -> int:
+    """The 0-based field a position is in, given the text of its line before it."""
+    import csv
+
+    try:
+        return len(next(csv.reader([prefix + "x"], delimiter=delimiter))) - 1
+    except (StopIteration, csv.Error):
+        return prefix.count(delimiter)
+
+
+def encoding_message(path: Path, line: int, row: int | None, column: str | None) -> str:
+    where = "it" if line == 0 else "its header (line 1)" if line == 1 else (
+        f"line {line}" + (f" (data row {row})" if row is not None else "")
+        + (f", column {column!r}" if column is not None else ""))
+    return (f"input file {path} is not valid UTF-8 text: {where} holds bytes that are not UTF-8 (an encoding problem: "
+            "the file, or that cell, was saved in another encoding such as Latin-1 or Windows-1252). CSV input must "
+            "be UTF-8: convert the file (for example `iconv -f WINDOWS-1252 -t UTF-8 FILE > converted.csv`, or save it "
+            "as \"CSV UTF-8\" from a spreadsheet program) and release the converted file.")
+
+
+def _long_line(f: Any, limit: int, chunk: int) -> tuple[int, int] | None:
+    """(line number, offset of its first byte) of the first line longer than ``limit`` bytes."""
+    import numpy as np
+
+    pos, line, last_nl = 0, 1, -1
+    while block := f.read(chunk):
+        nls = np.flatnonzero(np.frombuffer(block, dtype=np.uint8) == 10) + pos
+        ends = np.concatenate([[last_nl], nls])
+        over = np.flatnonzero(np.diff(ends) - 1 > limit)
+        if over.size:
+            k = int(over[0])
+            return line + k, int(ends[k]) + 1
+        if nls.size:
+            line += int(nls.size)
+            last_nl = int(nls[-1])
+        pos += len(block)
+        if pos - last_nl - 1 > limit:  # the line being read is already too long
+            return line, last_nl + 1
+    return None
+
+
+def _longest_field(f: Any, begin: int, delimiter: str, chunk: int) -> int:
+    """The 0-based index of the longest field of the line starting at ``begin`` (quotes ignored)."""
+    import numpy as np
+
+    f.seek(begin)
+    pos, prev, field, best, best_field = begin, begin - 1, 0, -1, 0
+    while block := f.read(chunk):
+        a = np.frombuffer(block, dtype=np.uint8)
+        nl = np.flatnonzero(a == 10)
+        if nl.size:
+            a = a[: int(nl[0])]
+        seps = np.flatnonzero(a == ord(delimiter)) + pos
+        if seps.size:
+            lengths = np.diff(np.concatenate([[prev], seps])) - 1
+            j = int(np.argmax(lengths))
+            if lengths[j] > best:
+                best, best_field = int(lengths[j]), field + j
+            prev, field = int(seps[-1]), field + int(seps.size)
+        pos += len(a)
+        if nl.size:
+            break
+    if pos - prev - 1 > best:
+        best_field = field
+    return best_field
+
+
+def large_cell_message(path: Path, delimiter: str, rows_done: int, chunk: int = 1 << 22) -> str:
+    """A CSV row larger than the reader's block (CSV_BLOCK_BYTES): names the first line that long
+    and its longest field, found by streaming the file (numpy over each chunk; the error path)."""
+    limit = CSV_BLOCK_BYTES
+    mib = f"{limit / (1 << 20):g} MiB"
+    with open(path, "rb") as f:
+        found = _long_line(f, limit, chunk)
+        if found is None:
+            return (f"input file {path}: after data row {rows_done} a quoted value runs on for more than {mib} (the "
+                    "largest row the CSV reader takes). A quote that is opened and never closed makes the rest of the "
+                    "file one cell: check the quotes after that row, and run the release again.")
+        line, begin = found
+        field = _longest_field(f, begin, delimiter, chunk)
+    header = _header(path, delimiter)
+    column = f"column {header[field]!r}" if header is not None and field < len(header) else f"field {field + 1}"
+    return (f"input file {path}: line {line}, {column}, holds a cell too large for a release (its row is larger than "
+            f"{mib}, the largest row the CSV reader takes). Cells of a release are categories, numbers or short "
+            "text: shorten or empty that cell (or remove that column from the file), or look for a quote that is "
+            "opened and never closed, and run the release again.")
 
 
 def _clean_arrow_message(err: Exception) -> str:

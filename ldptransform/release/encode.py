@@ -25,14 +25,55 @@ def _rows_text(mask: np.ndarray, row0: int) -> str:
     return f"{idx.size} value(s) in this batch, the first at data row {first}"
 
 
-def _as_string_array(values: pa.Array) -> pa.Array:
+def _as_string_array(values: pa.Array, name: str | None = None, row0: int = 0) -> pa.Array:
+    """A column's values as text (numbers as their decimal text).  Text stored as bytes (or as
+    text) that is not valid UTF-8 is a ``DataError`` naming the column ``name`` and the first such
+    row; the cells are never shown."""
     if isinstance(values, pa.ChunkedArray):
         values = values.combine_chunks()
     if pa.types.is_dictionary(values.type):
         values = values.dictionary_decode()
     if pa.types.is_string(values.type) or pa.types.is_large_string(values.type):
+        if pa.types.is_string(values.type) and name is not None:
+            _check_utf8(values, name, row0)  # a Parquet writer may have stored any bytes as text
         return values
-    return pc.cast(values, pa.string())
+    try:
+        return pc.cast(values, pa.string())
+    except pa.ArrowInvalid:
+        if not (pa.types.is_binary(values.type) or pa.types.is_large_binary(values.type)
+                or pa.types.is_fixed_size_binary(values.type)):
+            raise
+        _check_utf8(values, name or "?", row0)
+        raise
+
+
+def _utf8_ok(values: pa.Array) -> bool:
+    try:
+        if pa.types.is_string(values.type) or pa.types.is_large_string(values.type):
+            values.validate(full=True)
+        else:
+            pc.cast(values, pa.string())
+        return True
+    except pa.ArrowInvalid:
+        return False
+
+
+def _check_utf8(values: pa.Array, name: str, row0: int) -> None:
+    """Raise a DataError at the first row of ``values`` that is not valid UTF-8 (if any), found by
+    halving: about log2(n) validations of slices, each vectorized."""
+    if _utf8_ok(values):
+        return
+    lo, hi = 0, len(values)  # the first bad row is in [lo, hi)
+    while hi - lo > 1:
+        mid = (lo + hi) // 2
+        if _utf8_ok(values.slice(lo, mid - lo)):
+            lo = mid
+        else:
+            hi = mid
+    raise DataError(f"column {name!r} holds text that is not valid UTF-8 (an encoding problem), the first at data row "
+                    f"{row0 + lo + 1}. Re-encode that column's text as UTF-8 in the input (for example decode it "
+                    "from the encoding it was written in, such as Latin-1, and write it again as text), or drop the "
+                    "column in the policy.")
 
 
 def _label_codes(strings: pa.Array, labels: list[str]) -> tuple[np.ndarray, np.ndarray]:
@@ -53,6 +94,8 @@ def encode_categorical(values: pa.Array, plan: ColumnPlan, row0: int) -> np.ndar
         raise AssertionError("binned columns use encode_binned")
     if isinstance(values, pa.ChunkedArray):
         values = values.combine_chunks()
+    if pa.types.is_dictionary(values.type) and not _utf8_ok(values.dictionary):
+        values = values.dictionary_decode()  # its rows are checked below (a bad entry may be in no row here)
     if pa.types.is_dictionary(values.type):
         # look up each distinct value once, then index by the row's dictionary index (same codes)
         d_codes, d_missing = _label_codes(_as_string_array(values.dictionary), rc.labels)
@@ -63,7 +106,7 @@ def encode_categorical(values: pa.Array, plan: ColumnPlan, row0: int) -> np.ndar
         else:  # an empty dictionary: every row is missing
             codes, missing = np.full(len(values), -1, dtype=np.int64), row_null
     else:
-        codes, missing = _label_codes(_as_string_array(values), rc.labels)
+        codes, missing = _label_codes(_as_string_array(values, name, row0), rc.labels)
     codes = codes.copy()
     unknown = (codes < 0) & ~missing
     if missing.any():

@@ -50,7 +50,7 @@ def memo_streams(key: SecretKey, rc: ResolvedColumn) -> tuple[SubjectPRF, Subjec
 def subject_bytes(values: pa.Array, name: str, row0: int) -> tuple[np.ndarray, np.ndarray]:
     """The subject column as (concatenated UTF-8 bytes, n + 1 offsets): text as written (numbers
     as their decimal text), surrounding spaces removed.  A missing or over-long subject is an error."""
-    strings = _as_string_array(values)
+    strings = _as_string_array(values, name, row0)
     strings = pc.utf8_trim_whitespace(strings)
     missing = np.asarray(pc.is_null(strings).to_numpy(zero_copy_only=False))
     if missing.any():
@@ -141,7 +141,7 @@ def subject_text(values: pa.Array, name: str, row0: int) -> pa.Array:
     """The subject column as trimmed text, checked as ``subject_bytes`` checks it (the same identity
     memoization uses, so the ledger and the memoized reports agree on who a person is)."""
     subject_bytes(values, name, row0)  # missing / over-long identifiers: a DataError naming the rows
-    return pc.utf8_trim_whitespace(_as_string_array(values))
+    return pc.utf8_trim_whitespace(_as_string_array(values, name, row0))
 
 
 def memo_composition_text(policy: LoadedPolicy) -> str:

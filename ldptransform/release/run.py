@@ -41,6 +41,7 @@ from .publish import (
 )
 from .source import (
     check_csv_markers,
+    check_input_types,
     check_not_the_input,
     dictionary_columns,
     open_source,
@@ -96,6 +97,7 @@ def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey
     check_paths_apart(opts, policy, key, diag_path)
     plans = plan_columns(policy, src.column_names, source_location(src, opts))
     check_csv_markers(policy, src, plans)
+    check_input_types(src, plans, policy, opts)
     check_one_row_per_person(src, policy, opts.batch_rows, source_location(src, opts))
     schema = output_schema(plans, src.schema, src.format)
     sampler = attach_randomness(plans, policy, key, opts.nonce)

@@ -6,7 +6,9 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any
 
-from ..errors import PolicyError, UsageError
+import pyarrow as pa
+
+from ..errors import DataError, PolicyError, UsageError
 from ..io import TableSource
 from ..policy import LoadedPolicy
 from .columns import ColumnPlan
@@ -62,3 +64,52 @@ def dictionary_columns(src: Any, plans: list[ColumnPlan]) -> list[str]:
     """Categorical text columns read dictionary-encoded (Parquet), so each label is looked up once."""
     names = [p.rc.name for p in plans if p.rc.type == "categorical"]
     return src.dictionary_columns(names) if hasattr(src, "dictionary_columns") else []
+
+
+def _nested(t: pa.DataType) -> bool:
+    """A type holding several values per cell (list, struct, map, union, or a dictionary of one)."""
+    if pa.types.is_dictionary(t):
+        return _nested(t.value_type)
+    return pa.types.is_nested(t)
+
+
+def _cell_kind(t: pa.DataType) -> str:
+    if pa.types.is_dictionary(t):
+        return _cell_kind(t.value_type)
+    if pa.types.is_struct(t):
+        return "a structure of named fields in each cell"
+    if pa.types.is_map(t):
+        return "a map of keys to values in each cell"
+    if pa.types.is_union(t):
+        return "a value of one of several types in each cell"
+    return "a list of values in each cell"
+
+
+def check_input_types(src: Any, plans: list[ColumnPlan], policy: LoadedPolicy, opts: ReleaseOptions) -> None:
+    """Refuse, before anything is read or written, an input column whose stored type a release
+    cannot take: a privatized column or the subject column holding several values per cell
+    (list, struct, map...), and such a public column in a CSV extract (CSV has no place for it)."""
+    schema = getattr(src, "schema", None)
+    if schema is None or getattr(src, "format", None) != "parquet":
+        return  # CSV input is read as text
+    location = source_location(src, opts)
+    subject = policy.policy.subject_key
+    names = [(p.rc.name, p.rc.type) for p in plans] + ([(subject, "subject")] if subject else [])
+    for name, kind in names:
+        if name not in schema.names:
+            continue
+        t = schema.field(name).type
+        if not _nested(t):
+            continue
+        role = {"public": "public", "subject": "subject_key"}.get(kind, kind)
+        if kind == "public" and opts.fmt_out != "csv":
+            continue
+        if kind == "public":
+            raise DataError(f"input {location} stores the public column {name!r} as {t} ({_cell_kind(t)}), which a "
+                            f"CSV extract cannot hold; nothing was written. Write the extract as Parquet (--out "
+                            f"{opts.out.with_suffix('.parquet').name}), flatten the column to text in the input, or "
+                            "drop it in the policy (type: drop).")
+        raise DataError(f"input {location} stores the {role} column {name!r} as {t} ({_cell_kind(t)}), but a "
+                        f"{role} column takes one value per cell (text or a number); nothing was written. Flatten "
+                        "the column to one value per row (for example its text) in the input, or drop it in the "
+                        "policy (type: drop).")

@@ -1,0 +1,213 @@
+"""Hostile input files and a failing machine during a release: Parquet columns of a type a release
+cannot take, text that is not UTF-8, a cell too large for the CSV reader, an input that changes
+while it is read, a full disk, outputs aimed at the steward's own files, a killed run's leftovers
+and a stop signal during the ledger's pre-pass.  Each ends with exit code 2 (130 for a stop) and
+one paragraph naming the file, column or row and the fix, never a traceback, nothing at the
+destination, the inputs untouched.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import pyarrow as pa
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+import pytest
+
+from conftest import DEMO_CSV, assert_user_error, listing, partials, sha256
+
+
+class Work:
+    """A release's paths in a work folder, and the checks that nothing was written."""
+
+    def __init__(self, survey: dict[str, Path], private_dir: Path) -> None:
+        self.dir, self.key, self.private = survey["dir"], survey["key"], private_dir
+        self.policy = survey["policy"]
+        self.out = self.dir / "extract.parquet"
+
+    def run(self, ldpt: Any, input: Path, *extra: Any, out: Path | None = None) -> Any:
+        return ldpt("privatize", input, "--policy", self.policy, "--key", self.key, "--out", out or self.out, *extra)
+
+    def refused(self, res: Any, names: list[str], before: list[str], forbidden: list[str] | tuple[str, ...] = (),
+                inputs: dict[Path, str] | None = None) -> str:
+        text = assert_user_error(res, names, forbidden)
+        assert listing(self.dir) == before, f"the folder changed: {before} -> {listing(self.dir)}"
+        assert partials(self.dir) == []
+        assert listing(self.private) == [], "steward diagnostics were written for a failed run"
+        for p, h in (inputs or {}).items():
+            assert sha256(p) == h, f"{p} was modified"
+        return text
+
+
+@pytest.fixture
+def work(survey: dict[str, Path], private_dir: Path) -> Work:
+    return Work(survey, private_dir)
+
+
+def _survey_table() -> pa.Table:
+    return pacsv.read_csv(DEMO_CSV)
+
+
+def _replace(table: pa.Table, name: str, values: pa.Array) -> pa.Table:
+    return table.set_column(table.schema.get_field_index(name), name, values)
+
+
+# -- Parquet columns a release cannot take --------------------------------------------------
+
+def _nested(table: pa.Table, name: str, kind: str) -> pa.Array:
+    col = table[name].combine_chunks()
+    if kind == "list":
+        return pa.ListArray.from_arrays(pa.array(range(len(col) + 1), pa.int32()), col)
+    if kind == "large_list":
+        return pa.LargeListArray.from_arrays(pa.array(range(len(col) + 1), pa.int64()), col)
+    if kind == "struct":
+        return pa.StructArray.from_arrays([col], names=["answer"])
+    if kind == "map":
+        keys = pa.array(["answer"] * len(col))
+        return pa.MapArray.from_arrays(pa.array(range(len(col) + 1), pa.int32()), keys, col.cast(pa.string()))
+    if kind == "fixed_size_list":
+        return pa.FixedSizeListArray.from_arrays(col, 1)
+    raise AssertionError(kind)
+
+
+KINDS = ["list", "large_list", "fixed_size_list", "struct", "map"]  # Parquet cannot store a dictionary of lists
+
+
+@pytest.mark.parametrize("kind", KINDS)
+@pytest.mark.parametrize("column", ["site", "pay"])
+def test_parquet_column_of_several_values_per_cell(kind: str, column: str, work: Work, ldpt) -> None:
+    """A categorical or numeric column stored as a list, struct or map: a
+    clear refusal naming the file, the column and the stored type (it was a traceback)."""
+    table = _replace(_survey_table(), column, _nested(_survey_table(), column, kind))
+    raw = work.dir / "survey.parquet"
+    pq.write_table(table, raw)
+    stored = str(pq.read_schema(raw).field(column).type)
+    before, inputs = listing(work.dir), {raw: sha256(raw)}
+    text = work.refused(work.run(ldpt, raw), [raw.name, repr(column), stored, "Flatten"], before, inputs=inputs)
+    assert "one value per cell" in text
+
+
+def test_public_list_column_in_a_csv_extract(work: Work, ldpt) -> None:
+    """A public column stored as lists cannot go into a CSV extract: refused before anything is
+    written, naming the column and its type, suggesting Parquet or dropping it."""
+    table = _replace(_survey_table(), "survey_wave", _nested(_survey_table(), "survey_wave", "list"))
+    raw = work.dir / "survey.parquet"
+    pq.write_table(table, raw)
+    before = listing(work.dir)
+    res = work.run(ldpt, raw, out=work.dir / "extract.csv")
+    work.refused(res, ["'survey_wave'", "list<", "CSV", "Parquet", "drop"], before, inputs={raw: sha256(raw)})
+    # in a Parquet extract the same column travels as it is
+    ok = work.run(ldpt, raw)
+    assert ok.returncode == 0, ok.stderr
+    assert pq.read_schema(work.out).field("survey_wave").type == table.schema.field("survey_wave").type
+
+
+SECRET_BYTES = b"Quill\xff\xfe\xe9"
+
+
+@pytest.mark.parametrize("stored", ["binary", "string", "dictionary"])
+def test_parquet_text_that_is_not_utf8(stored: str, work: Work, ldpt) -> None:
+    """A categorical column stored as bytes (or as text) that are not valid UTF-8 at data row 4321:
+    the column, that row and the word encoding; the bytes are never shown."""
+    table = _survey_table()
+    cells = [s.encode() for s in table["site"].to_pylist()]
+    cells[4320] = SECRET_BYTES
+    raw = work.dir / "survey.parquet"
+    binary = pa.array(cells, pa.binary())
+    if stored == "binary":
+        pq.write_table(_replace(table, "site", binary), raw)
+    else:  # a writer that did not check its text: the same bytes stored as a string column
+        pq.write_table(_replace(table, "site", binary.view(pa.string())), raw, use_dictionary=stored == "dictionary")
+    before = listing(work.dir)
+    res = work.run(ldpt, raw, "--batch-rows", "1000")
+    work.refused(res, ["'site'", "4321", "encoding", "UTF-8"], before, forbidden=["Quill"], inputs={raw: sha256(raw)})
+
+
+# -- CSV input that misleads the reader -----------------------------------------------------
+
+@pytest.mark.parametrize("encoding", ["utf-16", "utf-16-le", "utf-16-be"])
+def test_csv_in_utf16(encoding: str, work: Work, ldpt) -> None:
+    """UTF-16 (with a byte-order mark or without) is named as such, not as a field-count problem."""
+    raw = work.dir / "survey.csv"
+    raw.write_bytes(DEMO_CSV.read_text(encoding="utf-8").encode(encoding))
+    before = listing(work.dir)
+    text = work.refused(work.run(ldpt, raw), [raw.name, "UTF-16", "UTF-8", "convert"], before,
+                        inputs={raw: sha256(raw)})
+    assert "field" not in text and "\\x00" not in text
+
+
+def _latin1_at(path: Path, data_row: int, column: str) -> None:
+    lines = DEMO_CSV.read_bytes().split(b"\n")
+    header = lines[0].decode().split(",")
+    cells = lines[data_row].split(b",")
+    cells[header.index(column)] = "Café Lindqvist".encode("latin-1")
+    lines[data_row] = b",".join(cells)
+    path.write_bytes(b"\n".join(lines))
+
+
+@pytest.mark.parametrize("data_row", [7, 5000, 11990])
+def test_csv_latin1_byte(data_row: int, work: Work, ldpt) -> None:
+    """A Latin-1 byte deep in the file: the word encoding, its line and data row, and its column."""
+    raw = work.dir / "survey.csv"
+    _latin1_at(raw, data_row, "role")
+    before = listing(work.dir)
+    res = work.run(ldpt, raw, "--batch-rows", "1000")
+    work.refused(res, [raw.name, "encoding", f"line {data_row + 1}", f"data row {data_row}", "'role'", "UTF-8"],
+                 before, forbidden=["Lindqvist", "Caf"], inputs={raw: sha256(raw)})
+
+
+def test_csv_latin1_byte_in_the_header(work: Work, ldpt) -> None:
+    raw = work.dir / "survey.csv"
+    raw.write_bytes(DEMO_CSV.read_bytes().replace(b"weekly_hours", b"weekly_h\xf6urs", 1))
+    before = listing(work.dir)
+    work.refused(work.run(ldpt, raw), [raw.name, "encoding", "header"], before)
+
+
+def test_csv_latin1_byte_in_a_dropped_column_is_not_blamed(work: Work, ldpt) -> None:
+    """The release reads only the columns it releases: a bad byte in a dropped column alone does
+    not stop it, and beside one in a released column further down, the latter is the one named."""
+    raw = work.dir / "survey.csv"
+    lines = DEMO_CSV.read_bytes().split(b"\n")
+    lines[10] = lines[10].replace(b"AWC-", b"AWC\xe9", 1)  # staff_id: type drop
+    raw.write_bytes(b"\n".join(lines))
+    ok = work.run(ldpt, raw)
+    assert ok.returncode == 0, ok.stderr
+    cells = lines[900].split(b",")
+    cells[1] = b"Rivers\xe9de"
+    lines[900] = b",".join(cells)
+    raw.write_bytes(b"\n".join(lines))
+    before = listing(work.dir)
+    res = work.run(ldpt, raw, out=work.dir / "second.parquet")
+    text = assert_user_error(res, ["encoding", "line 901", "data row 900", "'site'"])
+    assert "staff_id" not in text and "line 11" not in text
+    assert listing(work.dir) == before
+
+
+def test_csv_cell_too_large(work: Work, ldpt) -> None:
+    """A 50 MB cell: said to be too large, with its line, column and the reader's limit, without the
+    reader's advice about block sizes."""
+    raw = work.dir / "survey.csv"
+    lines = DEMO_CSV.read_bytes().split(b"\n")
+    cells = lines[300].split(b",")
+    cells[-1] = b"w" * (50 << 20)
+    lines[300] = b",".join(cells)
+    raw.write_bytes(b"\n".join(lines))
+    before = listing(work.dir)
+    text = work.refused(work.run(ldpt, raw), [raw.name, "too large", "line 301", "'survey_wave'", "1 MiB"], before)
+    assert "block" not in text and "www" not in text
+
+
+def test_csv_quote_never_closed(work: Work, ldpt) -> None:
+    """A quote opened and never closed makes the rest of the file one cell: said so."""
+    raw = work.dir / "survey.csv"
+    body = DEMO_CSV.read_text(encoding="utf-8").splitlines()
+    body = body[:1] + body[1:] * 3
+    cells = body[4000].split(",")
+    cells[1] = '"' + cells[1]
+    body[4000] = ",".join(cells)
+    raw.write_text("\n".join(body) + "\n", encoding="utf-8")
+    before = listing(work.dir)
+    text = work.refused(work.run(ldpt, raw), [raw.name, "quote"], before)
+    assert "block" not in text
