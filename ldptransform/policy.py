@@ -10,6 +10,7 @@ from __future__ import annotations
 import hashlib
 import json
 import math
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Annotated, Any, Literal
@@ -27,6 +28,7 @@ from pydantic_core import InitErrorDetails, PydanticCustomError
 
 from . import mechanisms as mech
 from .errors import PolicyError
+from .safeload import LoadProblem, load_json, load_yaml
 
 EPS_TOLERANCE = 1e-9
 MISSING_LABEL = "<missing>"
@@ -144,6 +146,10 @@ class CategoricalColumn(_Strict):
         if "" in labels:
             raise ValueError("an empty category cannot be told apart from a missing value; use missing: "
                              "as-category instead")
+        padded = [x for x in labels if x != x.strip()]
+        if padded:
+            raise ValueError(f"category {padded[0]!r} has spaces at its start or end, but the data's values are "
+                             "trimmed before they are matched, so it could never match a row; remove the spaces")
         for special in (MISSING_LABEL, OTHER_LABEL):
             if special in labels:
                 raise ValueError(f"{special!r} is reserved for values the tool adds; rename that category")
@@ -776,23 +782,48 @@ def _sampled_exact_eps_message(policy: Policy, name: str, source: str, mechanism
 
 # -- loading ------------------------------------------------------------------------------
 
-class _UniqueKeyLoader(yaml.SafeLoader):
-    pass
+_PLAIN_INT = re.compile(r"-?(?:0|[1-9][0-9]*)")
 
 
-def _construct_mapping(loader: yaml.SafeLoader, node: yaml.MappingNode, deep: bool = False) -> dict:
-    seen: dict[Any, Any] = {}
-    for key_node, _ in node.value:
-        key = loader.construct_object(key_node, deep=deep)
-        if key in seen:
-            mark = key_node.start_mark
-            raise yaml.constructor.ConstructorError(
-                None, None, f"the key {key!r} appears twice in the same mapping (line {mark.line + 1})", mark)
-        seen[key] = True
-    return loader.construct_mapping(node, deep=deep)
+def _node_get(node: yaml.Node, key: str) -> yaml.Node | None:
+    if isinstance(node, yaml.MappingNode):
+        for k, v in node.value:
+            if isinstance(k, yaml.ScalarNode) and k.value == key:
+                return v
+    return None
 
 
-_UniqueKeyLoader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _construct_mapping)
+def _label_problem(item: yaml.ScalarNode) -> str | None:
+    """What YAML makes of an unquoted category that does not read as the text it shows: yes/no/on/off
+    and true/false become booleans, 010 the number 8, 1_000 the number 1000, 1.50 the number 1.5."""
+    tag, text = item.tag.rsplit(":", 1)[-1], item.value
+    if tag not in ("bool", "int", "float"):
+        return None
+    value = yaml.safe_load(text)
+    if tag == "bool":
+        return f"the unquoted {text} is read by YAML as the boolean {'true' if value else 'false'}, not as the text"
+    if (_PLAIN_INT.fullmatch(text) if tag == "int" else category_label(value) == text):
+        return None
+    return f"the unquoted {text} is read by YAML as the number {category_label(value)}, not as the text {text}"
+
+
+def _check_yaml_labels(root: yaml.Node) -> None:
+    """Categories that YAML would turn into something other than the text written (refused with
+    the column and entry, before anything is built: the label would never match the data)."""
+    columns = _node_get(root, "columns")
+    if not isinstance(columns, yaml.MappingNode):
+        return
+    for name_node, col in columns.value:
+        cats = _node_get(col, "categories")
+        if not isinstance(cats, yaml.SequenceNode) or not isinstance(name_node, yaml.ScalarNode):
+            continue
+        for i, item in enumerate(cats.value, 1):
+            if not isinstance(item, yaml.ScalarNode) or item.style is not None:
+                continue
+            problem = _label_problem(item)
+            if problem is not None:
+                raise LoadProblem(f"column {name_node.value!r}, categories entry {i}: {problem}; write it in quotes "
+                                  f"(\"{item.value}\") to keep it as written", item.start_mark.line + 1)
 
 
 def _format_loc(loc: tuple[Any, ...]) -> str:
@@ -851,24 +882,27 @@ def load_policy(path: Path | str) -> LoadedPolicy:
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError:
         raise PolicyError(f"policy file {path} does not exist. Check the path given to --policy.") from None
-    except (OSError, UnicodeDecodeError) as err:
-        raise PolicyError(f"policy file {path} cannot be read ({getattr(err, 'strerror', None) or err}). "
-                          "A policy is a UTF-8 YAML or JSON text file.") from None
-    if path.suffix.lower() == ".json":
-        try:
-            data = json.loads(text)
-        except json.JSONDecodeError as err:
-            raise PolicyError(f"policy file {path}: JSON syntax error at line {err.lineno}, column {err.colno}: "
-                              f"{err.msg}. Fix the syntax and try again.") from None
-    else:
-        try:
-            data = yaml.load(text, Loader=_UniqueKeyLoader)  # noqa: S506 - SafeLoader subclass
-        except yaml.YAMLError as err:
-            mark = getattr(err, "problem_mark", None)
-            where = f" at line {mark.line + 1}, column {mark.column + 1}" if mark is not None else ""
-            problem = getattr(err, "problem", None) or str(err)
-            raise PolicyError(f"policy file {path}: YAML syntax error{where}: {problem}. Fix the syntax "
-                              "(indentation, colons, brackets) and try again.") from None
+    except UnicodeDecodeError as err:
+        raise PolicyError(f"policy file {path} is not UTF-8 text (the byte at offset {err.start} is not valid "
+                          "UTF-8). A policy is a UTF-8 YAML or JSON text file: save it with that encoding.") from None
+    except OSError as err:
+        raise PolicyError(f"policy file {path} cannot be read ({getattr(err, 'strerror', None) or 'read error'}). "
+                          "Check the path and its permissions.") from None
+    try:
+        data = load_json(text) if path.suffix.lower() == ".json" else load_yaml(text, _check_yaml_labels)
+    except LoadProblem as err:
+        where = f" (line {err.line})" if err.line is not None else ""
+        raise PolicyError(f"policy file {path}{where}: {err.text}. Fix the policy and run `ldpt policy check` "
+                          "again.") from None
+    except json.JSONDecodeError as err:
+        raise PolicyError(f"policy file {path}: JSON syntax error at line {err.lineno}, column {err.colno}: "
+                          f"{err.msg}. Fix the syntax and try again.") from None
+    except yaml.YAMLError as err:
+        mark = getattr(err, "problem_mark", None)
+        where = f" at line {mark.line + 1}, column {mark.column + 1}" if mark is not None else ""
+        problem = getattr(err, "problem", None) or str(err)
+        raise PolicyError(f"policy file {path}: YAML syntax error{where}: {problem}. Fix the syntax "
+                          "(indentation, colons, brackets) and try again.") from None
     return parse_policy(data, str(path))
 
 
