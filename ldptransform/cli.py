@@ -109,6 +109,23 @@ def key_new(path: Path = typer.Argument(..., help="Where to write the key file (
                       "backed up: reproducing or auditing a release needs it.", markup=False)
 
 
+@key_app.command("new-signing")
+def key_new_signing(path: Path = typer.Argument(..., help="Where to write the private signing key (must not exist); "
+                                                "its public key goes to PATH.pub.")) -> None:
+    """Write a new Ed25519 signing key pair: PATH (private, mode 0600) and PATH.pub (for partners).
+
+    Example: ldpt key new-signing ~/private/steward-signing.key (see docs/signing.md)
+    """
+    from .signing import new_signing_key_file, public_key_path
+
+    with _user_errors():
+        key = new_signing_key_file(path)
+    err_console.print(f"wrote a new private signing key to {path} and its public key to {public_key_path(path)} "
+                      f"(fingerprint {key.fingerprint()}). Keep the private key with the steward, backed up; give "
+                      "partners the .pub once, over a channel you trust, and confirm the fingerprint with them.",
+                      markup=False)
+
+
 # -- privatize ------------------------------------------------------------------------------
 
 class Engine(StrEnum):
@@ -149,6 +166,8 @@ def privatize(
                                          "[default: a local cluster, one worker per core, at most 8]."),
     part_rows: int = typer.Option(1 << 20, "--part-rows", min=1, help="Dataset output: the most rows per "
                                   "part (Parquet input: whole row groups; never changes the rows' values)."),
+    signing_key: Path | None = typer.Option(None, "--signing-key", help="Private signing key (`ldpt key "
+                                            "new-signing`): sign the manifest, MANIFEST.sig (docs/signing.md)."),
 ) -> None:
     """Randomize INPUT column by column under POLICY into OUT, plus a public manifest.
 
@@ -162,6 +181,11 @@ def privatize(
     with _user_errors(_PRIVATIZE_FLAGS):
         lp = load_policy(policy)
         k = load_key(key)
+        from .signing import after_release, prepare_release_signing
+
+        sk = None if signing_key is None else prepare_release_signing(  # before anything is written
+            signing_key, out, manifest, overwrite=overwrite,
+            known=[("input", source if isinstance(source, Path) else None), ("policy file", policy), ("key file", key)])
         show = (not quiet) and sys.stderr.isatty()
         if show:
             from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
@@ -183,6 +207,7 @@ def privatize(
                       batch_rows=batch_rows, overwrite=overwrite, nonce=nonce, ledger_path=ledger,
                       allow_partial=allow_partial, engine=engine.value, scheduler=scheduler,
                       fragment_rows=part_rows)
+        signed = after_release(res.manifest_path, sk, overwrite=overwrite)
     public = res.manifest.privacy.public_columns
     caution = (f"; CAUTION: {len(public)} column(s) released in the clear, not protected: {', '.join(public)}"
                if public else "")
@@ -195,6 +220,8 @@ def privatize(
     err_console.print(f"privatized {res.manifest.rows} rows into {res.extract_path} (manifest {res.manifest_path}; "
                       f"steward-only diagnostics {res.diagnostics_path}) in {res.seconds:.1f} s, "
                       f"eps {res.manifest.privacy.epsilon_per_row_used:g} per row{caution}{changed}", markup=False)
+    if signed:  # the manifest's signature, or a stale one left beside it (signing.after_release)
+        err_console.print(signed, markup=False)
     for w in res.warnings:  # above 1% of a column's rows changed before randomizing: what to do
         err_console.print(f"WARNING: {w}", markup=False)
     if res.ledger_release_id is not None:
@@ -368,6 +395,8 @@ def estimate(
                                   "statistics merged (same estimates)."),
     scheduler: str | None = typer.Option(None, "--scheduler", help="With --engine dask: address of a running "
                                          "dask scheduler [default: a local cluster]."),
+    public_key: Path | None = typer.Option(None, "--public-key", help="The steward's public signing key (.pub): "
+                                           "decode only if every manifest's signature verifies (docs/signing.md)."),
 ) -> None:
     """Unbiased frequencies, means, cross-tabs, grouped means and quantiles with SEs and intervals.
 
@@ -381,6 +410,10 @@ def estimate(
     with _user_errors():
         if out is not None:
             _check_estimate_out(out, extracts, manifest, overwrite)
+        if public_key is not None:
+            from .signing import require_signatures
+
+            require_signatures(extracts, manifest, public_key)
         result = run(extracts, list(manifest) if manifest else None, confidence=confidence,
                      crosstabs=[parse_pair(x, "--crosstab") for x in crosstab or []],
                      mean_by=[parse_pair(x, "--mean-by") for x in mean_by or []],
@@ -430,6 +463,8 @@ def validate(
     range_: list[str] | None = typer.Option(None, "--range", help="With --raw: a range share the calibration "
                                             "checks, COLUMN:LOW..HIGH (repeatable) [default: each distribution "
                                             "column's bounds cut in four]."),
+    public_key: Path | None = typer.Option(None, "--public-key", help="The steward's public signing key (.pub): "
+                                           "check the manifest's signature (docs/signing.md)."),
 ) -> None:
     """Check a release; exit 0 if every check passes, 1 if one fails.
 
@@ -451,7 +486,7 @@ def validate(
         k = load_key(key) if key is not None else None
         rep = run(extract, manifest, raw=raw, key=k, confidence=confidence,
                   quantiles=parse_quantiles(quantiles) if quantiles else None,
-                  ranges=[parse_range(x) for x in range_ or []] or None)
+                  ranges=[parse_range(x) for x in range_ or []] or None, public_key=public_key)
     if format == TableJson.json:
         sys.stdout.write(json.dumps(rep.to_dict(), indent=2) + "\n")
     else:
@@ -465,6 +500,26 @@ def validate(
         out_console.print(t)
         out_console.print("result: " + ("[green]all checks passed[/]" if rep.ok else "[bold red]FAILED[/]"))
     raise typer.Exit(code=0 if rep.ok else 1)
+
+
+# -- sign -----------------------------------------------------------------------------------
+
+@app.command()
+def sign(
+    manifest: Path = typer.Argument(..., help="Manifest to sign (written by `ldpt privatize`)."),
+    signing_key: Path = typer.Option(..., "--signing-key", help="Private signing key made by `ldpt key new-signing`."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing signature file."),
+) -> None:
+    """Sign a manifest (steward only): write MANIFEST.sig, an Ed25519 signature over its exact bytes.
+
+    Partners check it with `ldpt validate EXTRACT --public-key KEY.pub` (see docs/signing.md).
+    Example: ldpt sign extract.manifest.json --signing-key ~/private/steward-signing.key
+    """
+    from .signing import load_signing_key, sign_manifest
+
+    with _user_errors():
+        sig = sign_manifest(manifest, load_signing_key(signing_key), overwrite=overwrite)
+    err_console.print(f"signed {manifest}: wrote {sig}; send it with the manifest and the extract", markup=False)
 
 
 # -- policy ---------------------------------------------------------------------------------

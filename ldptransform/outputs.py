@@ -109,6 +109,10 @@ def _secret_kind(path: Path) -> str | None:
         return None
     if head.startswith(KEY_HEADER.encode("ascii")):
         return "a secret key file"
+    from .signing import SIGNING_KEY_HEADER
+
+    if head.startswith(SIGNING_KEY_HEADER.encode("ascii")):
+        return "a private signing key file"
     if head.startswith(b"SQLite format 3\0"):
         return "a SQLite database (such as a privacy ledger)"
     return None

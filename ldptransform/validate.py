@@ -49,6 +49,7 @@ from .results import (
     RangeResult,
     ValidationReport,
 )
+from .signing import check_signature
 
 MIN_CALIBRATION_ROWS = 200  # common practice for a normal approximation of these means; no source
 FAMILY_ALPHA = 0.001  # calibration: chance of a false failure over all cells, for a correct release
@@ -253,12 +254,14 @@ def _true_stats(raw: Path, manifest: Manifest, dists: dict[str, Distribution] | 
 
 def validate(extract: Path | str, manifest_path: Path | str | None = None, *, raw: Path | str | None = None,
              key: SecretKey | None = None, confidence: float = 0.95, quantiles: list[float] | None = None,
-             ranges: list[tuple[str, float, float]] | None = None) -> ValidationReport:
+             ranges: list[tuple[str, float, float]] | None = None,
+             public_key: Path | str | None = None) -> ValidationReport:
     """Check a release (``ValidationReport``: ``ok``, ``checks``, and with ``raw`` and ``key``
     the calibration).  The calibration checks every statistic the columns give: frequencies,
     means, the ``quantiles`` (default CALIBRATION_QUANTILES) and, per column with a
     distribution, the ``ranges`` asked for it (COLUMN, LOW, HIGH), else its bounds cut into
-    CALIBRATION_RANGE_PARTS equal ranges."""
+    CALIBRATION_RANGE_PARTS equal ranges.  With ``public_key`` (the steward's public signing key
+    file) the "signature" check verifies the manifest's signature (signing.check_signature)."""
     _check_calibration_options(raw, quantiles, ranges)
     extract = Path(extract)
     mpath = Path(manifest_path) if manifest_path else default_manifest_path(extract)
@@ -266,6 +269,7 @@ def validate(extract: Path | str, manifest_path: Path | str | None = None, *, ra
     _check_ranges(manifest, ranges or [])
     text = mpath.read_text(encoding="utf-8")
     rep = _Checks(str(extract), str(mpath))
+    rep.add("signature", *check_signature(mpath, public_key))
     if not extract.exists():
         rep.add("extract present", False, f"{extract} does not exist")
         return rep.report()
