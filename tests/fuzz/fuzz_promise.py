@@ -1,0 +1,190 @@
+"""The promise every command keeps, whatever its input, as one assertion for the fuzz suite.
+
+For any input a command either succeeds (exit 0; `validate` and `ledger verify` may also exit 1,
+a check that ran and failed) or stops with exit 2 and one paragraph on stderr that starts with
+"Error:"; never a traceback, never the internal-error text, never exit 3. A failed run leaves
+nothing new anywhere in its workspace (no extract, manifest, estimates, partial or lock file,
+nothing in the steward-private folder), and no run changes an input (raw data, policy, key,
+ledger, extract, manifest) by a single byte. A successful run adds only the files it names.
+
+Each example gets a workspace of its own (a fresh temporary folder with ``in/``, ``out/`` and a
+private folder of mode 0700), so examples cannot see each other's nonce records or ledgers.
+
+The generators leave out, behind the flags below, the classes of input that still fail while
+they are being fixed: each flag names its class; set it to True to fuzz that class again.  Every
+failing example found is kept, with the smallest input hypothesis found, in
+test_fuzz_regressions.py.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import json
+import os
+import shutil
+import subprocess
+import sys
+import tempfile
+from collections.abc import Iterable, Iterator, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from hypothesis import HealthCheck, Phase, settings
+
+TESTS = Path(__file__).resolve().parent.parent
+if str(TESTS) not in sys.path:  # conftest.py of tests/ holds the CLI runner and the key writer
+    sys.path.insert(0, str(TESTS))
+
+from conftest import run_cli, write_fixed_key  # noqa: E402
+
+# Deterministic and bounded: the same examples on every run, no example database, no deadline
+# per example (a whole property is bounded by its max_examples instead).
+# LDPT_FUZZ_SCALE=k multiplies every property's number of examples (a longer local hunt);
+# LDPT_FUZZ_NO_SHRINK=1 reports a failing example as found, without minimizing it (faster).
+SCALE = max(1, int(os.environ.get("LDPT_FUZZ_SCALE", "1")))
+PHASES = [Phase.explicit, Phase.reuse, Phase.generate] + ([] if os.environ.get("LDPT_FUZZ_NO_SHRINK")
+                                                          else [Phase.shrink])
+
+
+def fuzz_settings(max_examples: int) -> settings:
+    return settings(derandomize=True, max_examples=max_examples * SCALE, deadline=None, database=None, phases=PHASES,
+                    suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large,
+                                           HealthCheck.filter_too_much, HealthCheck.large_base_example],
+                    print_blob=False)
+
+
+# What the CLI prints before a traceback (the in-process runner adds it for an escaped exception).
+FORBIDDEN_TEXT = ("Traceback", "internal error")
+PARTIAL_MARK = ".ldpt-partial-"
+LOCK_MARK = ".ldpt-lock"
+
+
+@dataclass
+class Workspace:
+    """A fresh folder per example: ``inp`` for the inputs, ``out`` for the destinations, ``priv``
+    (mode 0700) as $LDPT_PRIVATE_DIR, and the key."""
+
+    root: Path
+    inp: Path = field(init=False)
+    out: Path = field(init=False)
+    priv: Path = field(init=False)
+    key: Path = field(init=False)
+
+    def __post_init__(self) -> None:
+        self.inp = self.root / "in"
+        self.out = self.root / "out"
+        self.priv = self.root / "private"
+        self.inp.mkdir()
+        self.out.mkdir()
+        self.priv.mkdir(mode=0o700)
+        self.key = write_fixed_key(self.inp / "release.key")
+
+    def tree(self) -> set[str]:
+        """Every path under the workspace (hidden ones included), relative to it."""
+        found: set[str] = set()
+        for dirpath, dirnames, filenames in os.walk(self.root):
+            rel = Path(dirpath).relative_to(self.root)
+            for n in dirnames + filenames:
+                found.add(str(rel / n))
+        return found
+
+    def hashes(self, paths: Iterable[Path]) -> dict[Path, str | None]:
+        return {p: _digest(p) for p in paths}
+
+
+def _digest(p: Path) -> str | None:
+    if p.is_dir():
+        h = hashlib.sha256()
+        for q in sorted(p.rglob("*")):
+            if q.is_file():
+                h.update(str(q.relative_to(p)).encode() + b"\0" + q.read_bytes())
+        return h.hexdigest()
+    return hashlib.sha256(p.read_bytes()).hexdigest() if p.exists() else None
+
+
+@contextlib.contextmanager
+def workspace() -> Iterator[Workspace]:
+    root = Path(tempfile.mkdtemp(prefix="ldpt-fuzz-"))
+    try:
+        yield Workspace(root)
+    finally:
+        shutil.rmtree(root, ignore_errors=True)
+
+
+def run(ws: Workspace, *args: Any) -> subprocess.CompletedProcess:
+    """``ldpt ARGS...`` in this process, with the workspace's private folder."""
+    return run_cli(*args, private=ws.priv)
+
+
+def _show(res: subprocess.CompletedProcess) -> str:
+    return (f"`ldpt {' '.join(map(str, res.args[1:]))}` exit {res.returncode}\n--- stderr:\n{res.stderr[-3000:]}"
+            f"\n--- stdout:\n{res.stdout[-1500:]}")
+
+
+def assert_promise(ws: Workspace, res: subprocess.CompletedProcess, *, before: set[str],
+                   inputs: dict[Path, str | None], check_codes: Sequence[int] = (),
+                   may_add: Sequence[Path] = (), may_change: Sequence[Path] = (),
+                   json_stdout: bool = False) -> None:
+    """The promise (module docstring) for one run: ``before`` is ``ws.tree()`` and ``inputs`` the
+    hashes of the inputs, both taken just before the run; ``check_codes`` the exit codes of a
+    check that ran and failed (validate, ledger verify: 1); ``may_add`` the files (or folders) a
+    successful run writes; ``may_change`` inputs a successful run may update (a ledger it
+    charges).  ``json_stdout``: stdout of a run that did not stop with an error is strict JSON."""
+    code, err = res.returncode, res.stderr
+    shown = _show(res)
+    assert code != 3, "internal error:\n" + shown
+    for text in FORBIDDEN_TEXT:
+        assert text not in err and text not in res.stdout, f"{text!r} in the output:\n{shown}"
+    assert code in (0, 2, *check_codes), f"unexpected exit code:\n{shown}"
+    after = ws.tree()
+    leftovers = [p for p in after if PARTIAL_MARK in p or LOCK_MARK in p]
+    assert not leftovers, f"left behind {leftovers}:\n{shown}"
+    if code == 2:
+        text = err.strip()
+        assert text, f"no message on stderr:\n{shown}"
+        assert "\n\n" not in text, f"more than one paragraph:\n{shown}"
+        assert text.startswith("Error:"), f"the message does not start with 'Error:':\n{shown}"
+        changed = f"left {sorted(after - before)}, removed {sorted(before - after)}"
+        assert after == before, f"a failed run {changed}:\n{shown}"
+        changeable: set[Path] = set()
+    else:
+        allowed = {str(Path(p).relative_to(ws.root)) for p in may_add}
+        new = after - before
+        stray = {p for p in new if not any(p == a or p.startswith(a + os.sep) for a in allowed)
+                 and not p.startswith(str(ws.priv.relative_to(ws.root)) + os.sep)}
+        if code == 0 and may_add:  # the private folder takes a successful release's diagnostics
+            assert stray == set(), f"a successful run wrote {sorted(stray)} besides its outputs:\n{shown}"
+        else:
+            assert new == set(), f"the run wrote {sorted(new)}:\n{shown}"
+        assert before - after == set(), f"the run removed {sorted(before - after)}:\n{shown}"
+        changeable = set(may_change) if code == 0 else set()
+        if json_stdout:
+            assert_strict_json(res.stdout, shown)
+    for p, h in inputs.items():
+        if p not in changeable:
+            assert _digest(p) == h, f"the input {p.name} changed:\n{shown}"
+
+
+def _no_constant(name: str) -> Any:
+    raise ValueError(f"non-standard JSON constant {name}")
+
+
+def assert_strict_json(text: str, shown: str = "") -> None:
+    try:
+        json.loads(text, parse_constant=_no_constant)
+    except ValueError as err:
+        raise AssertionError(f"stdout is not strict JSON ({err}):\n{shown}") from None
+
+
+def promise_run(ws: Workspace, args: Sequence[Any], *, inputs: Sequence[Path], check_codes: Sequence[int] = (),
+                may_add: Sequence[Path] = (), may_change: Sequence[Path] = (),
+                json_stdout: bool = False) -> subprocess.CompletedProcess:
+    """Run ``ldpt ARGS`` in ``ws`` and assert the promise; returns the run."""
+    before = ws.tree()
+    hashes = ws.hashes(inputs)
+    res = run(ws, *args)
+    assert_promise(ws, res, before=before, inputs=hashes, check_codes=check_codes, may_add=may_add,
+                   may_change=may_change, json_stdout=json_stdout)
+    return res
