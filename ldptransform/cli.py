@@ -7,38 +7,144 @@ please report it with the traceback, which never shows local variables).
 
 from __future__ import annotations
 
+import contextlib
+import errno
 import json
 import math
+import signal
 import sys
 import traceback
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
 from contextlib import contextmanager
 from enum import StrEnum
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import typer
 from rich.console import Console
-from rich.markup import escape
+from rich.markup import escape as _markup_escape
+from rich.segment import Segment
 from rich.table import Table
+from typer.core import TyperGroup
 
 from . import __version__
-from .errors import LdptError
+from .errors import LdptError, one_paragraph, terminal_safe
 
 if TYPE_CHECKING:  # pragma: no cover
     import pandas as pd
 
     from .results import ColumnResult, CrossTabResult, EstimateResult, GroupedMeanResult, MeanResult
 
-app = typer.Typer(no_args_is_help=True, add_completion=False, pretty_exceptions_enable=False,
+INTERRUPTED = "interrupted: stopped before finishing; nothing was left at the destination."
+
+
+def escape(text: str) -> str:
+    """Text from data or files as a rich markup literal that cannot act on the terminal:
+    control characters made visible (errors.terminal_safe), markup brackets escaped."""
+    return _markup_escape(terminal_safe(text))
+
+
+class SafeConsole(Console):
+    """A rich console that never lets what it shows act on the terminal: the text of every
+    segment it writes (table cells, titles, messages, also a recorded export) has control
+    characters made visible (errors.terminal_safe; newlines and tabs kept), while its own
+    styles and cursor control stay as rich makes them.  Callers still escape data-derived
+    text first (``escape``), so that tables are laid out with the visible form."""
+
+    def print(self, *objects: Any, **kwargs: Any) -> None:  # text first (rich drops a few controls itself)
+        super().print(*(terminal_safe(o, keep_layout=True) if isinstance(o, str) else o for o in objects), **kwargs)
+
+    def _render_buffer(self, buffer: Iterable[Segment]) -> str:
+        return super()._render_buffer(seg if seg.control else Segment(terminal_safe(seg.text, keep_layout=True),
+                                                                          seg.style, seg.control) for seg in buffer)
+
+    def export_text(self, *, clear: bool = True, styles: bool = False) -> str:
+        return terminal_safe(super().export_text(clear=clear, styles=styles), keep_layout=True)
+
+
+_interrupt_told: list[bool] = [False]  # whether this run has printed its interrupted message
+
+
+def _tell_interrupted(text: str = "interrupted: stopped before finishing.") -> None:
+    _interrupt_told[0] = True
+    err_console.print(text, markup=False)
+
+
+def _raise_interrupt(signum: int, frame: Any) -> None:
+    raise KeyboardInterrupt(f"stopped by signal {signum}")
+
+
+@contextmanager
+def _sigterm_interrupts() -> Iterator[None]:
+    """While a command runs, SIGTERM ends it as Ctrl-C does (KeyboardInterrupt: cleanup, the
+    one-line interrupted message, exit 130) instead of killing the process silently.  Staged
+    outputs (io.StagedFiles) install their own handler meanwhile and restore this one."""
+    old: Any = None
+    with contextlib.suppress(ValueError, OSError):  # not in the main thread: leave signals alone
+        old = signal.signal(signal.SIGTERM, _raise_interrupt)
+    try:
+        yield
+    finally:
+        if old is not None:
+            with contextlib.suppress(ValueError, OSError):
+                signal.signal(signal.SIGTERM, old)
+
+
+# click's base error (typer's own copy of click): every usage error (unknown option, missing
+# argument, bad value) derives from it
+_ClickException: type[Exception] = next(c for c in typer.BadParameter.__mro__ if c.__name__ == "ClickException")
+
+
+def _usage_error(err: Any) -> None:
+    """click's own errors (unknown option, missing argument, bad value) as one paragraph."""
+    ctx = getattr(err, "ctx", None)
+    where = ctx.command_path if ctx is not None else "ldpt"
+    text = one_paragraph(err.format_message().replace("Value error, ", ""))
+    if not text.endswith("."):
+        text += "."
+    err_console.print(f"Error: {text} Run `{terminal_safe(where)} --help` to see how to use it.", markup=False)
+
+
+class _Commands(TyperGroup):
+    """The root command: click's usage errors as one paragraph on stderr (exit 2), SIGTERM as
+    an interrupt, and an interrupt anywhere in a command as the one-line message (exit 130)."""
+
+    def main(self, args: Any = None, prog_name: str | None = None, complete_var: str | None = None,
+             standalone_mode: bool = True, windows_expand_args: bool = True, **extra: Any) -> Any:
+        if not standalone_mode:
+            return super().main(args, prog_name, complete_var, standalone_mode, windows_expand_args, **extra)
+        _interrupt_told[0] = False
+        with _sigterm_interrupts():
+            try:
+                rv = super().main(args, prog_name, complete_var, False, windows_expand_args, **extra)
+            except _ClickException as err:
+                if type(err).__name__ != "NoArgsIsHelpError":  # that one: the help is already shown
+                    _usage_error(err)
+                sys.exit(2)
+            except (typer.Abort, KeyboardInterrupt):
+                _tell_interrupted()
+                sys.exit(130)
+        if rv == 130 and not _interrupt_told[0]:  # typer's own: an interrupt while it read the options
+            _tell_interrupted()
+        sys.exit(rv if isinstance(rv, int) else 0)
+
+    def invoke(self, ctx: Any) -> Any:
+        try:
+            return super().invoke(ctx)
+        except KeyboardInterrupt:  # outside a command's _user_errors block (those say more)
+            _tell_interrupted()
+            raise typer.Exit(code=130) from None
+
+
+app = typer.Typer(cls=_Commands, no_args_is_help=True, add_completion=False, pretty_exceptions_enable=False,
                   help="Release row-level extracts under local differential privacy, and decode them.")
 key_app = typer.Typer(no_args_is_help=True, help="Secret key files.")
 policy_app = typer.Typer(no_args_is_help=True, help="Policy files.")
 app.add_typer(key_app, name="key")
 app.add_typer(policy_app, name="policy")
 
-out_console = Console(highlight=False, soft_wrap=True)
-err_console = Console(stderr=True, highlight=False, soft_wrap=True)
+out_console: Console = SafeConsole(highlight=False, soft_wrap=True)
+err_console: Console = SafeConsole(stderr=True, highlight=False, soft_wrap=True)
 
 
 class TableJson(StrEnum):
@@ -58,25 +164,71 @@ _PRIVATIZE_FLAGS = {"batch_rows": "--batch-rows", "fragment_rows": "--part-rows"
                     "allow_partial": "--allow-partial"}
 
 
+# an operating-system error in plain words, and what to do about it
+_ERRNO_WORDS: dict[int, tuple[str, str]] = {
+    errno.ENOSPC: ("the disk is full", "free some space or write to another disk"),
+    errno.EDQUOT: ("the disk quota is used up", "free some space or write to another disk"),
+    errno.EACCES: ("permission denied", "check that you may read or write it"),
+    errno.EPERM: ("the operation is not permitted", "check that you may read or write it"),
+    errno.EROFS: ("the file system is read-only", "write to another folder"),
+    errno.ENOENT: ("no such file or folder", "check the path"),
+    errno.EISDIR: ("it is a folder", "give a file path"),
+    errno.ENOTDIR: ("a part of the path is not a folder", "check the path"),
+    errno.EEXIST: ("it already exists", "choose another path"),
+    errno.ENOTEMPTY: ("the folder is not empty", "choose another path"),
+    errno.EMFILE: ("too many open files", "raise the limit of open files (ulimit -n) or close other programs"),
+    errno.ENFILE: ("too many open files on this machine", "close other programs and try again"),
+    errno.ENAMETOOLONG: ("the file name is too long", "choose a shorter path"),
+    errno.ELOOP: ("too many symbolic links in the path", "check the path"),
+    errno.EXDEV: ("it cannot be moved to another file system", "write on the same disk"),
+    errno.EFBIG: ("the file is too large for this file system", "write to another disk"),
+    errno.EIO: ("the device failed to read or write", "check the disk, then try again"),
+    errno.EBUSY: ("the file or device is busy", "try again later"),
+    errno.ETXTBSY: ("the file is busy", "try again later"),
+    errno.ENXIO: ("no such device", "check the path"),
+    errno.ENODEV: ("no such device", "check the path"),
+    errno.ENOMEM: ("out of memory", "use a smaller --batch-rows or free memory"),
+}
+_ERRNO_OF_TYPE: tuple[tuple[type[OSError], int], ...] = (
+    (FileNotFoundError, errno.ENOENT), (IsADirectoryError, errno.EISDIR), (NotADirectoryError, errno.ENOTDIR),
+    (PermissionError, errno.EACCES), (FileExistsError, errno.EEXIST))
+
+
+def os_error_message(err: OSError) -> str:
+    """An OSError as one paragraph: what happened in plain words (never raw errno text such as
+    "[Errno 28]"), the path(s) it concerns, and what to do."""
+    import re
+
+    code = err.errno if isinstance(err.errno, int) else next(
+        (c for t, c in _ERRNO_OF_TYPE if isinstance(err, t)), None)
+    # a hidden partial file (io.partial_path) is named by the destination it was written for
+    paths = [re.sub(r"(^|/)\.([^/]+)\.ldpt-partial-[^/]*$", r"\1\2", str(p))
+             for p in (err.filename, getattr(err, "filename2", None)) if p not in (None, "")]
+    if not paths and err.errno is None and len(err.args) == 1 and isinstance(err, FileNotFoundError):
+        paths = [str(err.args[0])]  # some libraries give only the path
+    where = (" on " + " and ".join(paths)) if paths else ""
+    if code in _ERRNO_WORDS:
+        what, fix = _ERRNO_WORDS[code]
+        return one_paragraph(f"{what}{where}: {fix}.")
+    detail = err.strerror if err.strerror else (str(err.args[0]) if err.args and not paths else "")
+    detail = re.sub(r"\[errno \d+\]\s*", "", str(detail), flags=re.IGNORECASE).strip().rstrip(".")
+    text = f"{detail}{where}" if detail else f"the system refused a file operation{where}"
+    return one_paragraph(f"{text}. Check the path, free disk space and permissions.")
+
+
 @contextmanager
 def _user_errors(flags: dict[str, str] | None = None) -> Iterator[None]:
     try:
         yield
     except LdptError as err:
-        err_console.print(f"[bold red]Error:[/] {escape(err.message_for(flags))}", markup=True, highlight=False)
+        err_console.print(f"[bold red]Error:[/] {_markup_escape(one_paragraph(err.message_for(flags)))}",
+                          markup=True, highlight=False)
         raise typer.Exit(code=err.exit_code) from None
-    except PermissionError as err:
-        err_console.print(f"[bold red]Error:[/] permission denied on {escape(str(err.filename))}: check that you "
-                          "may read or write it.", markup=True)
-        raise typer.Exit(code=2) from None
     except OSError as err:
-        where = f" on {err.filename}" if getattr(err, "filename", None) else ""
-        err_console.print(f"[bold red]Error:[/] {escape(str(err.strerror or err) + where)}. Check the path, free "
-                          "disk space and permissions.", markup=True)
+        err_console.print(f"[bold red]Error:[/] {_markup_escape(os_error_message(err))}", markup=True)
         raise typer.Exit(code=2) from None
     except KeyboardInterrupt:
-        err_console.print("interrupted: stopped before finishing; nothing was left at the destination.",
-                          markup=False)
+        _tell_interrupted(INTERRUPTED)
         raise typer.Exit(code=130) from None
 
 
@@ -324,12 +476,34 @@ def _estimate_table(result: EstimateResult) -> None:
                           markup=False)
 
 
+def _finite(obj: Any) -> Any:
+    """``obj`` with every non-finite float (NaN, infinity) as None (JSON null)."""
+    if isinstance(obj, float):
+        return obj if math.isfinite(obj) else None
+    if isinstance(obj, dict):
+        return {k: _finite(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_finite(v) for v in obj]
+    return obj
+
+
+def json_text(obj: Any) -> str:
+    """Strict JSON, as every ``--format json`` writes it: a NaN or an infinity is null (never
+    the ``NaN``/``Infinity`` that strict JSON readers refuse)."""
+    return json.dumps(_finite(obj), indent=2, allow_nan=False) + "\n"
+
+
 def _csv_cell(v: object) -> str:
-    """A CSV cell: empty for a missing value, the shortest exact text (repr) for a float."""
+    """A CSV cell: empty for a missing value, the shortest exact text (repr) for a float, and
+    text that a spreadsheet would run as a formula neutralized (results.spreadsheet_safe)."""
+    from .results import spreadsheet_safe
+
     if v is None or (isinstance(v, float) and math.isnan(v)):
         return ""
     if isinstance(v, float):
         return repr(float(v))
+    if isinstance(v, str):
+        return spreadsheet_safe(v)
     return str(v)
 
 
@@ -350,6 +524,23 @@ def _frame_csv(frame: pd.DataFrame) -> str:
 
 def _estimate_csv(result: EstimateResult) -> str:
     return _frame_csv(result.to_frame())
+
+
+def _range(text: str) -> tuple[str, float, float]:
+    """``--range COLUMN:LOW..HIGH`` with finite bounds (an infinite or NaN bound is refused)."""
+    from .errors import UsageError
+    from .estimate import parse_range
+
+    lo_s, sep, hi_s = text.rpartition(":")[2].partition("..")
+    try:
+        bounds: tuple[float, ...] = (float(lo_s), float(hi_s)) if sep else ()
+    except ValueError:
+        bounds = ()
+    if not all(math.isfinite(b) for b in bounds):
+        raise UsageError(f"--range {text!r}: LOW and HIGH must be finite numbers, not inf or nan. For the share up "
+                         "to an end of the column, give that end of its bounds (listed in the manifest), e.g. "
+                         "--range pay:24000..60000.")
+    return parse_range(text)
 
 
 def _check_estimate_out(out: Path, extracts: list[Path], manifests: list[Path] | None, overwrite: bool) -> None:
@@ -403,7 +594,7 @@ def estimate(
     Example: ldpt estimate extract.parquet --crosstab site:role --mean-by pay:site --format json
     """
     from .estimate import estimate as run
-    from .estimate import parse_pair, parse_quantiles, parse_range
+    from .estimate import parse_pair, parse_quantiles
     from .io import write_text_atomic
 
     global out_console
@@ -418,10 +609,10 @@ def estimate(
                      crosstabs=[parse_pair(x, "--crosstab") for x in crosstab or []],
                      mean_by=[parse_pair(x, "--mean-by") for x in mean_by or []],
                      quantiles=parse_quantiles(quantiles) if quantiles else None,
-                     ranges=[parse_range(x) for x in range_ or []], consistency=consistency,
+                     ranges=[_range(x) for x in range_ or []], consistency=consistency,
                      engine=engine.value, scheduler=scheduler)
         if format == TableJsonCsv.json:
-            text = json.dumps(result.to_dict(), indent=2) + "\n"
+            text = json_text(result.to_dict())
         elif format == TableJsonCsv.csv:
             text = _estimate_csv(result)
         else:
@@ -430,7 +621,7 @@ def estimate(
                 return
             import io
 
-            rec = Console(record=True, width=120, file=io.StringIO())
+            rec = SafeConsole(record=True, width=120, file=io.StringIO())
             saved, out_console = out_console, rec
             try:
                 _estimate_table(result)
@@ -444,6 +635,8 @@ def estimate(
                 _check_estimate_out(out, extracts, manifest, overwrite)  # again: a job may have just written it
                 write_text_atomic(out, text)
             err_console.print(f"wrote estimates to {out}", markup=False)
+        elif format == TableJsonCsv.csv and sys.stdout.isatty():  # CSV on a terminal: nothing acts on it
+            sys.stdout.write(terminal_safe(text, keep_layout=True))
         else:
             sys.stdout.write(text)
 
@@ -473,7 +666,7 @@ def validate(
 
     Example: ldpt validate extract.parquet --raw survey.csv --key release.key
     """
-    from .estimate import parse_quantiles, parse_range
+    from .estimate import parse_quantiles
     from .keys import load_key
     from .validate import validate as run
 
@@ -486,9 +679,9 @@ def validate(
         k = load_key(key) if key is not None else None
         rep = run(extract, manifest, raw=raw, key=k, confidence=confidence,
                   quantiles=parse_quantiles(quantiles) if quantiles else None,
-                  ranges=[parse_range(x) for x in range_ or []] or None, public_key=public_key)
+                  ranges=[_range(x) for x in range_ or []] or None, public_key=public_key)
     if format == TableJson.json:
-        sys.stdout.write(json.dumps(rep.to_dict(), indent=2) + "\n")
+        sys.stdout.write(json_text(rep.to_dict()))
     else:
         t = Table(title=escape(f"validation of {rep.extract} (manifest {rep.manifest})"), title_justify="left")
         t.add_column("check")
@@ -577,7 +770,7 @@ def policy_schema() -> None:
     """Print the JSON Schema of policy files (for editors and linters)."""
     from .policy import policy_json_schema
 
-    sys.stdout.write(json.dumps(policy_json_schema(), indent=2) + "\n")
+    sys.stdout.write(json_text(policy_json_schema()))
 
 
 # -- plan -----------------------------------------------------------------------------------
@@ -621,7 +814,7 @@ def _plan_table(result: dict) -> None:
             t.add_row(*_plan_row(c, st))
     # ten columns do not fit 80 characters: print the table at least 150 wide rather than fold
     # every cell into ellipses (a narrow terminal wraps the lines instead)
-    Console(highlight=False, width=max(out_console.width, 150)).print(t)
+    SafeConsole(highlight=False, width=max(out_console.width, 150)).print(t)
     out_console.print(f"eps per row: {result['epsilon_per_row']:g} of the budget "
                       f"{result['epsilon_per_row_budget']:g} (strategy {result['strategy']})", markup=False)
     for item in result["impossible"]:
@@ -663,7 +856,7 @@ def plan(
         if suggest:
             result["suggestion"] = make_suggestion(lp, rows)
     if format == TableJson.json:
-        sys.stdout.write(json.dumps(result, indent=2) + "\n")
+        sys.stdout.write(json_text(result))
     else:
         _plan_table(result)
 
@@ -704,7 +897,7 @@ def audit(
             assert manifest is not None
             res = audit_manifest(manifest, rows=rows, confidence=confidence)
     if format == TableJson.json:
-        sys.stdout.write(json.dumps(res.to_dict(), indent=2) + "\n")
+        sys.stdout.write(json_text(res.to_dict()))
     else:
         t = Table(title=escape(f"audit of {res.policy}: {res.rows} rows per side, confidence {res.confidence:g}"),
                   title_justify="left")
@@ -785,7 +978,7 @@ def ledger_show(ledger: Path | None = typer.Option(None, "--ledger", help=_LEDGE
         with Ledger.open(_ledger_path(ledger), create=False) as led:
             summary = led.show()
     if format == TableJson.json:
-        sys.stdout.write(json.dumps(summary, indent=2) + "\n")
+        sys.stdout.write(json_text(summary))
         return
     t = Table(title=escape(f"ledger {summary['ledger']}: {summary['releases']} release(s)"), title_justify="left")
     for h in ("release", "time (UTC)", "eps per row", "subjects charged", "lifetime eps"):
@@ -833,7 +1026,7 @@ def main() -> None:
     except SystemExit:
         raise
     except KeyboardInterrupt:
-        sys.stderr.write("interrupted; nothing was left at the destination\n")
+        sys.stderr.write("interrupted: stopped before finishing.\n")
         sys.exit(130)
     except Exception:  # a bug: show where, never locals (they may hold key material)
         sys.stderr.write("ldpt: internal error (a bug). Please report it with this traceback:\n")

@@ -12,6 +12,33 @@ import re
 from collections.abc import Mapping
 from typing import ClassVar
 
+# Characters a terminal acts on instead of showing: C0 controls, DEL, C1 controls (8-bit CSI,
+# OSC ...), the bidirectional marks, embeddings, overrides and isolates that reorder what is
+# shown, and the Unicode line and paragraph separators.
+_UNSAFE = re.compile("[\x00-\x1f\x7f-\x9f\u061c\u200e\u200f\u2028-\u202e\u2066-\u2069]")
+_UNSAFE_KEEP_LAYOUT = re.compile("[\x00-\x08\x0b-\x1f\x7f-\x9f\u061c\u200e\u200f\u2028-\u202e\u2066-\u2069]")
+
+
+def _visible(m: re.Match[str]) -> str:
+    c = ord(m.group())
+    return f"\\x{c:02x}" if c < 0x100 else f"\\u{c:04x}"
+
+
+def terminal_safe(text: str, *, keep_layout: bool = False) -> str:
+    """``text`` with every character a terminal would act on (escape sequences that clear the
+    screen or set the window title, other control characters, bidi overrides) written as a
+    visible escape (``\\x1b``, ``\\u202e``); everything else is kept.  Use it on any text that
+    comes from data or files (column and category names, labels, paths, policy text) before it
+    is shown.  ``keep_layout``: keep newlines and tabs (for text already laid out for a terminal)."""
+    return (_UNSAFE_KEEP_LAYOUT if keep_layout else _UNSAFE).sub(_visible, text)
+
+
+def one_paragraph(text: str) -> str:
+    """A message as one paragraph on a terminal: line breaks and runs of white space (also
+    from upstream libraries' messages) collapsed into single spaces, control characters made
+    visible (``terminal_safe``)."""
+    return terminal_safe(" ".join(text.split()))
+
 
 class LdptError(Exception):
     """Base class for user-fixable errors (exit code 2)."""

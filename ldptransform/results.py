@@ -17,6 +17,7 @@ the decoder, the validator and the command line can all import it without cycles
 from __future__ import annotations
 
 import math
+import re
 from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
@@ -476,6 +477,21 @@ class ValidationReport(DictView):
                              for c in self.checks], columns=["check", "status", "ok", "detail"])
 
     __hash__ = None  # type: ignore[assignment]
+
+
+_FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+_PLAIN_NUMBER = re.compile(r"[-+]?(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?")
+
+
+def spreadsheet_safe(text: str) -> str:
+    """A text cell of a CSV file meant to be opened in a spreadsheet, made inert: text that
+    starts with ``=``, ``+``, ``-``, ``@``, a tab or a carriage return (which a spreadsheet
+    reads as a formula: ``=HYPERLINK(...)``, ``+cmd|...``) gets a leading apostrophe, the
+    common convention for "this is text".  A cell that is exactly a number (``-1``, ``+2.5``)
+    is kept: a spreadsheet reads it as that number, never as a formula."""
+    if text.startswith(_FORMULA_START) and not _PLAIN_NUMBER.fullmatch(text):
+        return "'" + text
+    return text
 
 
 def finite(v: float | None) -> bool:

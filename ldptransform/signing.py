@@ -431,13 +431,13 @@ def sign_manifest(manifest_path: Path | str, key: SigningKey, *, overwrite: bool
 
     mpath = Path(manifest_path)
     before = _read_manifest_bytes(mpath)
-    load_manifest(mpath)
+    extract = mpath.parent / load_manifest(mpath).extract.file  # where the manifest's extract goes along
     data = _read_manifest_bytes(mpath)
     if data != before:
         raise ManifestError(f"manifest {mpath} changed while it was being signed; nothing was signed. Sign it again "
                             "once no other job writes it.")
     dest = check_signature_destination(mpath, key, overwrite=overwrite, known=known)
-    check_key_apart(key, [mpath])
+    check_key_apart(key, [mpath, extract])
     text = json.dumps(signature_document(data, mpath.name, key), indent=2) + "\n"
     _write_atomic(dest, text)
     return dest

@@ -415,6 +415,31 @@ def test_sign_refuses_a_signing_key_beside_the_manifest(ldpt: Any, release: dict
     assert not files["sig"].exists()
 
 
+def test_a_dataset_extract_is_signed_and_its_parts_covered(ldpt: Any, release: dict[str, Path],
+                                                           tmp_path: Path) -> None:
+    pol = tmp_path / "policy.json"
+    pol.write_text(json.dumps(_policy()))
+    out = tmp_path / "out"
+    out.mkdir()
+    res = ldpt("privatize", release["raw"], "--policy", pol, "--key", release["release_key"], "--out",
+               out / "extract", "--part-rows", "1000", "--signing-key", release["signing"])
+    assert res.returncode == 0, res.stderr
+    manifest, sig = out / "extract.manifest.json", out / "extract.manifest.json.sig"
+    assert sig.is_file() and len(json.loads(manifest.read_text())["extract"]["parts"]) == 3
+    val = ldpt("validate", out / "extract", "--public-key", release["public"], "--format", "json")
+    assert val.returncode == 0 and _checks(val)["signature"]["status"] == "pass"
+    parts = sorted((out / "extract").glob("*.parquet"))
+    shutil.copy(parts[0], parts[1])  # a part replaced by another valid one
+    val = ldpt("validate", out / "extract", "--public-key", release["public"], "--format", "json")
+    assert val.returncode == 1 and _checks(val)["signature"]["status"] == "pass"
+    assert _checks(val)["extract hash"]["status"] == "fail"
+    # a signing key inside the dataset folder would go along with it
+    key = out / "extract" / "_steward-signing.key"
+    shutil.copy(release["signing"], key)
+    key.chmod(0o600)
+    assert_user_error(ldpt("sign", manifest, "--signing-key", key, "--overwrite"), [str(key), "what partners receive"])
+
+
 # -- the signing key is never overwritten ---------------------------------------------------------
 
 def test_no_command_overwrites_the_signing_key(ldpt: Any, release: dict[str, Path], files: dict[str, Path],
