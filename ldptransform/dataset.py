@@ -23,7 +23,7 @@ from __future__ import annotations
 
 import hashlib
 from collections.abc import Iterator
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -71,6 +71,8 @@ class Fragment:
     row_groups: tuple[int, ...]
     row0: int
     rows: int
+    size: int | None = None      # the file's size and modification time (ns) when the dataset was listed:
+    mtime_ns: int | None = None  # read_fragment refuses a file that changed since (None: not known)
 
     @property
     def part_name(self) -> str:
@@ -97,7 +99,10 @@ class ParquetDataset:
         for rel, path, _ in files:
             md = self._metadata(path)
             self._check_schema(md.schema.to_arrow_schema(), rel, files[0][0])
+            first = len(self.fragments)
             row0 = self._add_fragments(md, path, row0, fragment_rows)
+            size, mtime = self._states.get(path, (None, None))
+            self.fragments[first:] = [replace(f, size=size, mtime_ns=mtime) for f in self.fragments[first:]]
         assert self.schema is not None
         self.num_rows: int = row0
 
@@ -118,6 +123,8 @@ class ParquetDataset:
                                  "and its permissions.") from None
         root = self.root.rstrip("/")
         files = []
+        self._states: dict[str, tuple[int | None, int | None]] = {
+            i.path: (i.size, i.mtime_ns) for i in found}
         for i in found:
             rel = i.path[len(root):].lstrip("/") if i.path.startswith(root) else i.base_name
             if rel and _skipped(rel):
@@ -185,11 +192,30 @@ def read_fragment(fs: pafs.FileSystem, frag: Fragment, columns: list[str], batch
                 done += b.num_rows
                 yield b
     except (pa.ArrowInvalid, OSError) as err:
+        check_fragment_unchanged(fs, frag)  # a file changed meanwhile is said to have changed
         raise DataError(f"input file {frag.path} could not be read after row {frag.row0 + done} of the dataset "
                         f"({str(err).splitlines()[0][:200]}). Check that the file is complete and unchanged.") from None
     if done != frag.rows:
         raise DataError(f"input file {frag.path} changed while it was read ({done} rows where its footer said "
                         f"{frag.rows}). Run the release again on files that do not change meanwhile.")
+    check_fragment_unchanged(fs, frag)
+
+
+def check_fragment_unchanged(fs: pafs.FileSystem, frag: Fragment) -> None:
+    """Refuse a fragment whose file's size or modification time differs from when the dataset was
+    listed (a file rewritten or replaced while the release read the dataset)."""
+    if frag.size is None and frag.mtime_ns is None:
+        return
+    from .io import changed_message
+
+    try:
+        info = fs.get_file_info(frag.path)
+        now = (-1, -1) if info.type == pafs.FileType.NotFound else (info.size, info.mtime_ns)
+    except OSError:
+        now = (-1, -1)
+    before = (frag.size if frag.size is not None else now[0], frag.mtime_ns if frag.mtime_ns is not None else now[1])
+    if now != before:
+        raise DataError(changed_message(f"file {frag.path}", before, now))
 
 
 def _schema_difference(a: pa.Schema, b: pa.Schema) -> str:

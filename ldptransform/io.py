@@ -12,6 +12,7 @@ size either.
 from __future__ import annotations
 
 import contextlib
+import errno
 import hashlib
 import os
 import re
@@ -30,7 +31,7 @@ import pyarrow as pa
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
-from .errors import DataError, InputFileError, OutputExistsError, UsageError
+from .errors import DataError, InputFileError, OutputError, OutputExistsError, UsageError
 
 FileFormat = Literal["csv", "parquet"]
 FORMATS: dict[str, FileFormat] = {".csv": "csv", ".parquet": "parquet", ".pq": "parquet"}
@@ -210,6 +211,7 @@ class TableSource:
                     yield b
                 bytes_read = f.tell()
         except (pa.ArrowInvalid, pa.ArrowIOError, OSError) as err:
+            self.check_unchanged()  # a file changed meanwhile is said to have changed
             raise DataError(self._csv_error(err, rows_done, columns)) from None
         self.check_unchanged(bytes_read)
 
@@ -693,6 +695,14 @@ class StagedFiles:
                     signal.signal(sig, h)
         return False
 
+    def destination_of(self, path: Path | str) -> Path | None:
+        """The destination whose staged file (or folder) ``path`` is or lies in; None if none."""
+        path = Path(path)
+        for tmp, dest in self._items:
+            if path == tmp or tmp in path.parents:
+                return dest
+        return None
+
     def discard(self) -> None:
         for tmp, _ in self._items:
             with contextlib.suppress(OSError):
@@ -764,7 +774,10 @@ class BatchWriter:
     def _wait(self) -> None:
         if self._pending is not None:
             pending, self._pending = self._pending, None
-            pending.result()
+            try:
+                pending.result()
+            except Exception as err:
+                raise _named_os_error(err, self.path) from None
 
     def write(self, batch: pa.RecordBatch) -> None:
         self.rows += batch.num_rows
@@ -785,13 +798,62 @@ class BatchWriter:
         self._buffered = rest.num_rows
 
     def close(self) -> None:
+        """Write what is buffered and close the file.  The first error is the one raised (a failed
+        write leaves the writer unable to close, and that second error would hide the real one,
+        such as a full disk), as an OSError naming the file when it came from the system."""
         try:
             if self.format == "parquet" and self._buffered:
                 self._flush(self._buffered)
             self._wait()
-        finally:
+        except BaseException as err:
             self._pool.shutdown(wait=True)
+            with contextlib.suppress(Exception):
+                self._writer.close()
+            raise _named_os_error(err, self.path) from None
+        self._pool.shutdown(wait=True)
+        try:
             self._writer.close()
+        except Exception as err:
+            raise _named_os_error(err, self.path) from None
+
+
+DISK_FULL = frozenset({errno.ENOSPC, errno.EDQUOT, errno.EFBIG})
+
+
+def os_errno(err: BaseException) -> int | None:
+    """The system error number of an error, also when Arrow reports it only in its text
+    ("... Detail: [errno 28] No space left on device")."""
+    if isinstance(err, OSError) and err.errno:
+        return err.errno
+    text = str(err)
+    m = re.search(r"errno[ =:]*(\d+)", text, re.IGNORECASE)
+    if m:
+        return int(m.group(1))
+    if "no space left on device" in text.lower():
+        return errno.ENOSPC
+    return None
+
+
+def _named_os_error(err: BaseException, path: Path) -> BaseException:
+    """An error of a writer on ``path``: an OSError with its number and the file's name when it
+    came from the system (Arrow's own errors keep both only in their text); others as they are."""
+    code = os_errno(err)
+    if code is None or not isinstance(err, (OSError, pa.ArrowException)):
+        return err
+    if isinstance(err, OSError) and err.errno == code and err.filename:
+        return err
+    return OSError(code, os.strerror(code), str(path))
+
+
+def disk_full_error(err: BaseException, dest: Path, role: str) -> OutputError | None:
+    """The user error for a full disk (or quota) met while writing the ``role`` at ``dest``
+    (None when ``err`` is not that)."""
+    if os_errno(err) not in DISK_FULL:
+        return None
+    dest = Path(dest)
+    return OutputError(f"the disk is full: there was no space left on the device while writing the {role} {dest} "
+                       f"(in folder {dest.parent}). Nothing was written there (the partial files were removed). Free "
+                       "space on that disk, or choose a destination in another folder, and run the release again.")
 
 
 def sha256_stream(f: Any, chunk: int = 1 << 22) -> tuple[str, int]:

@@ -8,6 +8,9 @@ destination, the inputs untouched.
 
 from __future__ import annotations
 
+import errno
+import os
+import time
 from pathlib import Path
 from typing import Any
 
@@ -16,7 +19,7 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 import pytest
 
-from conftest import DEMO_CSV, assert_user_error, listing, partials, sha256
+from conftest import DEMO_CSV, assert_user_error, listing, partials, sha256, survey_policy, write_policy
 
 
 class Work:
@@ -211,3 +214,195 @@ def test_csv_quote_never_closed(work: Work, ldpt) -> None:
     before = listing(work.dir)
     text = work.refused(work.run(ldpt, raw), [raw.name, "quote"], before)
     assert "block" not in text
+
+
+# -- a full disk while writing -------------------------------------------------------------
+
+class _FullDiskWriter:
+    """Stands in for pyarrow's Parquet or CSV writer on a disk that fills up: the first write
+    fails with ENOSPC, and the writer, left broken, then fails to close with an error of its own
+    (the one that used to hide the real cause)."""
+
+    def __init__(self, where: Any, *args: Any, **kwargs: Any) -> None:
+        self.failed = False
+
+    def _write(self, *args: Any, **kwargs: Any) -> None:
+        self.failed = True
+        raise OSError(errno.ENOSPC, "Error writing bytes to file. Detail: [errno 28] No space left on device")
+
+    write_table = write_batch = _write
+
+    def close(self) -> None:
+        if self.failed:
+            raise pa.ArrowInvalid("Invalid operation on a closed file")
+
+
+@pytest.mark.parametrize("out_name", ["extract.parquet", "extract.csv", "parts"])
+@pytest.mark.parametrize("row_order", ["shuffled", "as-input"])
+def test_full_disk_while_writing_the_extract(out_name: str, row_order: str, work: Work, ldpt,
+                                             monkeypatch: pytest.MonkeyPatch) -> None:
+    import ldptransform.io as lio
+
+    monkeypatch.setattr(lio.pq, "ParquetWriter", _FullDiskWriter)
+    monkeypatch.setattr(lio.pacsv, "CSVWriter", _FullDiskWriter)
+    pol = survey_policy()
+    pol["output"] = {"row_order": row_order}
+    write_policy(work.policy, pol)
+    raw = work.dir / "survey.csv"
+    raw.write_bytes(DEMO_CSV.read_bytes())
+    before = listing(work.dir)
+    res = work.run(ldpt, raw, out=work.dir / out_name)
+    text = work.refused(res, [out_name, "disk is full", "Free space", "another folder"], before,
+                        inputs={raw: sha256(raw)})
+    assert "rrno" not in text and "closed file" not in text and ".ldpt-partial-" not in text
+
+
+def test_full_disk_while_writing_the_manifest(work: Work, ldpt, monkeypatch: pytest.MonkeyPatch) -> None:
+    import ldptransform.release.publish as publish
+
+    def full(tmp: Path, text: str, mode: int = 0o644) -> None:
+        Path(tmp).write_bytes(b"{")  # a partial file the release must remove
+        raise OSError(errno.ENOSPC, "No space left on device", str(tmp))
+
+    monkeypatch.setattr(publish, "write_text_atomic_into", full)
+    raw = work.dir / "survey.csv"
+    raw.write_bytes(DEMO_CSV.read_bytes())
+    before = listing(work.dir)
+    work.refused(work.run(ldpt, raw), ["the manifest", "extract.manifest.json", "disk is full"], before)
+
+
+def test_full_disk_with_a_real_device(work: Work, ldpt, monkeypatch: pytest.MonkeyPatch) -> None:
+    """The real writers on a device that is always full (/dev/full, where the system has one)."""
+    import stat
+
+    import ldptransform.io as lio
+
+    if not Path("/dev/full").exists() or not stat.S_ISCHR(Path("/dev/full").stat().st_mode):
+        pytest.skip("no /dev/full here")
+    real_pq, real_csv = lio.pq.ParquetWriter, lio.pacsv.CSVWriter
+    monkeypatch.setattr(lio.pq, "ParquetWriter", lambda where, *a, **k: real_pq("/dev/full", *a, **k))
+    monkeypatch.setattr(lio.pacsv, "CSVWriter", lambda where, *a, **k: real_csv("/dev/full", *a, **k))
+    raw = work.dir / "survey.csv"
+    raw.write_bytes(DEMO_CSV.read_bytes())
+    for out in ("extract.parquet", "extract.csv"):
+        before = listing(work.dir)
+        work.refused(work.run(ldpt, raw, out=work.dir / out), [out, "disk is full"], before)
+
+
+# -- an input that changes while it is read --------------------------------------------------
+
+def _change_during_read(monkeypatch: pytest.MonkeyPatch, change: Any, after_batches: int = 1) -> None:
+    """Call ``change()`` once, after the release privatized ``after_batches`` batches."""
+    import ldptransform.release.parts as parts
+
+    real = parts.privatize_batch
+    calls = {"n": 0}
+
+    def hooked(*args: Any, **kwargs: Any) -> Any:
+        calls["n"] += 1
+        if calls["n"] == after_batches:
+            change()
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(parts, "privatize_batch", hooked)
+
+
+def _long_survey(path: Path, copies: int = 4) -> bytes:
+    lines = DEMO_CSV.read_bytes().rstrip(b"\n").split(b"\n")
+    data = b"\n".join(lines[:1] + lines[1:] * copies) + b"\n"
+    path.write_bytes(data)
+    return data
+
+
+def _append(p: Path, data: bytes) -> None:
+    with p.open("ab") as f:
+        f.write(data.split(b"\n", 1)[1][:50000])
+
+
+def _rewrite(p: Path, data: bytes) -> None:
+    """The same size, other values, a new modification time."""
+    p.write_bytes(data.replace(b"Riverside", b"Riverbank"))
+    os.utime(p, ns=(time.time_ns(), time.time_ns() + 10**9))
+
+
+CHANGES: dict[str, Any] = {
+    "truncated": lambda p, data: os.truncate(p, len(data) // 3),
+    "truncated mid-line": lambda p, data: os.truncate(p, len(data) - 7),
+    "appended": _append,
+    "rewritten in place": _rewrite,
+}
+
+
+@pytest.mark.parametrize("change", list(CHANGES))
+@pytest.mark.parametrize("out_name", ["extract.parquet", "parts"])
+def test_csv_changed_while_read(change: str, out_name: str, work: Work, ldpt, monkeypatch: pytest.MonkeyPatch) -> None:
+    """A CSV truncated, appended to or rewritten while the release reads it is refused (it used to
+    give a release of the rows read so far), and nothing is left at the destination."""
+    raw = work.dir / "survey.csv"
+    data = _long_survey(raw)
+    _change_during_read(monkeypatch, lambda: CHANGES[change](raw, data))
+    before = listing(work.dir)
+    res = work.run(ldpt, raw, "--batch-rows", "2000", out=work.dir / out_name)
+    work.refused(res, [raw.name, "changed while the release was reading it", "Nothing was written"], before)
+
+
+def test_parquet_file_changed_while_read(work: Work, ldpt, monkeypatch: pytest.MonkeyPatch) -> None:
+    raw = work.dir / "survey.parquet"
+    table = pa.concat_tables([_survey_table()] * 3)
+    pq.write_table(table, raw, row_group_size=5000)
+    _change_during_read(monkeypatch, lambda: pq.write_table(table.slice(0, 20000), raw, row_group_size=5000))
+    before = listing(work.dir)
+    res = work.run(ldpt, raw, "--batch-rows", "2000")
+    work.refused(res, [raw.name, "changed while the release was reading it"], before)
+
+
+def test_parquet_dataset_file_changed_while_read(work: Work, ldpt, monkeypatch: pytest.MonkeyPatch) -> None:
+    folder = work.dir / "survey_parts"
+    folder.mkdir()
+    table = _survey_table()
+    for i in range(3):
+        pq.write_table(table.slice(i * 4000, 4000), folder / f"part-{i}.parquet")
+    second = folder / "part-1.parquet"
+
+    def rewrite() -> None:
+        data = second.read_bytes()
+        second.write_bytes(data)  # the same bytes, written again: a new modification time
+        os.utime(second, ns=(time.time_ns(), time.time_ns() + 10**9))
+
+    _change_during_read(monkeypatch, rewrite)
+    before = listing(work.dir)
+    res = work.run(ldpt, folder, "--batch-rows", "1000")
+    work.refused(res, ["part-1.parquet", "changed while the release was reading it"], before)
+
+
+def _ledger_policy(work: Work) -> None:
+    pol = survey_policy()
+    pol["subject_key"] = "staff_id"
+    del pol["columns"]["staff_id"]
+    pol["budget"]["lifetime_epsilon"] = 50.0
+    write_policy(work.policy, pol)
+
+
+def test_csv_changed_between_the_ledger_pre_pass_and_the_release(work: Work, ldpt,
+                                                                 monkeypatch: pytest.MonkeyPatch) -> None:
+    """With a ledger the input is read twice (the pre-pass works out each subject's charge first):
+    a change between the two passes is refused, and the ledger is not created."""
+    import ldptransform.release.run as run
+
+    _ledger_policy(work)
+    raw = work.dir / "survey.csv"
+    data = _long_survey(raw, 2)
+    real = run.precharge
+
+    def then_append(*args: Any, **kwargs: Any) -> Any:
+        charges = real(*args, **kwargs)
+        with raw.open("ab") as f:
+            f.write(data.split(b"\n", 1)[1][:20000])
+        return charges
+
+    monkeypatch.setattr(run, "precharge", then_append)
+    ledger = work.dir / "ledger.sqlite3"
+    before = listing(work.dir)
+    res = work.run(ldpt, raw, "--ledger", ledger)
+    work.refused(res, [raw.name, "changed while the release was reading it"], before)
+    assert not ledger.exists()

@@ -19,6 +19,7 @@ source: delta well below 1/n, so that the guarantee cannot be met by releasing o
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from typing import Any
 
 import numpy as np
@@ -74,9 +75,11 @@ def central_entry(policy: LoadedPolicy, plans: list[ColumnPlan], opts: ReleaseOp
     return {**base, **g.to_dict(), "statement": text}
 
 
-def check_one_row_per_person(src: Any, policy: LoadedPolicy, batch_rows: int, location: str) -> None:
+def check_one_row_per_person(src: Any, policy: LoadedPolicy, batch_rows: int, location: str, *,
+                             check: Callable[[], None] | None = None) -> None:
     """With ``output.one_row_per_person`` and a ``subject_key``: refuse a table where a subject
-    occurs more than once (steward-only message: how many, never which)."""
+    occurs more than once (steward-only message: how many, never which).  ``check`` is called
+    after every batch (a stop signal ends the pass there)."""
     subject = policy.policy.subject_key
     if not policy.policy.output.one_row_per_person or subject is None:
         return
@@ -90,6 +93,8 @@ def check_one_row_per_person(src: Any, policy: LoadedPolicy, batch_rows: int, lo
         # probability about n^2 / 2^65
         digests.append(pd.util.hash_array(np.asarray(pc.fill_null(text, "\x00<missing>").to_numpy(
             zero_copy_only=False), dtype=object)))
+        if check is not None:
+            check()
     if not digests:
         return
     values = np.concatenate(digests)

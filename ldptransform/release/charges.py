@@ -4,12 +4,14 @@ lifetime budget, and the record of the staged release in the ledger."""
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from ..errors import DataError
 from ..keys import SecretKey
 from ..ledger import (
     BudgetExhaustedError,
@@ -86,13 +88,14 @@ def _eps(p: ColumnPlan) -> float:
 
 def ledger_prepass(src: Any, plans: list[ColumnPlan], policy: LoadedPolicy, key: SecretKey,
                    batch_rows: int, sampler: ColumnSampler | None, ledger: Any | None,
-                   cap: float | None) -> LedgerCharges:
+                   cap: float | None, *, check: Callable[[], None] | None = None) -> LedgerCharges:
     """Read only the subject column and the memoized columns, in batches, and work out each
     subject's charge for this release.  Under split a row costs the eps of its non-memoized
     privatized columns, plus each memoized column's eps when the (subject, value) hash differs from
     the ledger's last recorded one for that column (first release: charged).  Under sample a row
     costs epsilon_per_row_used, memoized or not (simple and conservative).  Rows of one subject add
-    up.  ``ledger`` None: no ledger yet (nothing spent, no last values).  Nothing is written."""
+    up.  ``ledger`` None: no ledger yet (nothing spent, no last values).  Nothing is written.
+    ``check`` is called after every batch (a stop signal ends the pass there)."""
     subject = policy.policy.subject_key
     assert subject is not None
     memo_plans = [replace(p, diag=ColumnDiagnostics()) for p in plans if p.memo is not None]  # no double counts
@@ -109,6 +112,8 @@ def ledger_prepass(src: Any, plans: list[ColumnPlan], policy: LoadedPolicy, key:
         memo.append(m)
         same.append(s)
         row0 += batch.num_rows
+        if check is not None:
+            check()
     out = charges_of(hashes, charges, {p.rc.name: [m[p.rc.name] for m in memo] for p in memo_plans}, ledger, cap)
     out.memo_same = {p.rc.name: np.concatenate([s[p.rc.name] for s in same]) if same else np.zeros(0, dtype=bool)
                      for p in memo_plans}
@@ -116,16 +121,18 @@ def ledger_prepass(src: Any, plans: list[ColumnPlan], policy: LoadedPolicy, key:
 
 
 def precharge(src: Any, plans: list[ColumnPlan], policy: LoadedPolicy, key: SecretKey, sampler: ColumnSampler | None,
-              opts: ReleaseOptions) -> LedgerCharges | None:
+              opts: ReleaseOptions, *, check: Callable[[], None] | None = None) -> LedgerCharges | None:
     """With a ledger: the charges of this release, refused over the lifetime budget (unless
     ``allow_partial``); None without a ledger.  The ledger is only read (nothing is created)."""
     if opts.ledger_path is None:
         return None
-    led = Ledger.open(opts.ledger_path, create=False) if opts.ledger_path.exists() else None  # creates nothing
+    led = (Ledger.open(opts.ledger_path, create=False, readonly=True)  # read-only: creates and changes nothing
+           if opts.ledger_path.exists() else None)
     try:
         if led is not None:
             led.check_key(key.fingerprint())
-        charges = ledger_prepass(src, plans, policy, key, opts.batch_rows, sampler, led, opts.lifetime_epsilon)
+        charges = ledger_prepass(src, plans, policy, key, opts.batch_rows, sampler, led, opts.lifetime_epsilon,
+                                 check=check)
     finally:
         if led is not None:
             led.close()
@@ -146,6 +153,15 @@ def _refuse_over_budget(charges: LedgerCharges, opts: ReleaseOptions) -> None:
         raise BudgetExhaustedError(
             f"every subject of this release is past the lifetime budget (budget.lifetime_epsilon = {cap:g} in "
             f"ledger {opts.ledger_path}); nothing was written, as there is nothing left to release.")
+
+
+def check_same_rows(charges: LedgerCharges | None, rows: int, location: str) -> None:
+    """The release read as many rows as the ledger's pre-pass did (the input is read twice with a
+    ledger: each pass checks that the file did not change since it was opened; this is the last word)."""
+    if charges is not None and len(charges.row_within) != rows:
+        raise DataError(f"input {location} changed while the release was reading it (the ledger's pre-pass read "
+                        f"{len(charges.row_within)} rows, the release {rows}). Nothing was written. Let whatever "
+                        "writes the file finish (or release a copy that nothing writes to) and run the release again.")
 
 
 def rows_held(charges: LedgerCharges | None, plans: list[ColumnPlan]) -> Held | None:

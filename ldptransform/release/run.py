@@ -11,14 +11,14 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from ..io import StagedFiles
+from ..io import StagedFiles, disk_full_error
 from ..keys import SecretKey
 from ..ledger import LedgerCharges
 from ..manifest import Manifest
 from ..policy import LoadedPolicy
 from . import nonces
 from .central import check_one_row_per_person
-from .charges import precharge, record_release, rows_held
+from .charges import check_same_rows, precharge, record_release, rows_held
 from .columns import (
     ColumnPlan,
     attach_randomness,
@@ -91,6 +91,24 @@ def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey
                              batch_rows=batch_rows, overwrite=overwrite, nonce=nonce, ledger_path=ledger_path,
                              allow_partial=allow_partial, engine=engine, scheduler=scheduler,
                              fragment_rows=fragment_rows)
+    # the stop-signal guard covers the whole release, the passes over the input before anything is
+    # written (one row per person, the ledger's pre-pass) included: a stop ends it cleanly
+    staged = StagedFiles()
+    try:
+        with staged:
+            return _release(opts, policy, key, staged, on_progress, t0)
+    except OSError as err:
+        dest = staged.destination_of(err.filename) if err.filename else None
+        role = "manifest" if dest == opts.manifest_path else "extract" if dest in (None, opts.out) else \
+            "diagnostics file"
+        full = disk_full_error(err, dest or opts.out, role)
+        if full is None:
+            raise
+        raise full from None
+
+
+def _release(opts: ReleaseOptions, policy: LoadedPolicy, key: SecretKey, staged: StagedFiles,
+             on_progress: Callable[[int], None] | None, t0: float) -> ReleaseResult:
     src = open_source(opts, policy)
     check_not_the_input(opts)
     diag_path = check_destinations(opts)
@@ -98,7 +116,7 @@ def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey
     plans = plan_columns(policy, src.column_names, source_location(src, opts))
     check_csv_markers(policy, src, plans)
     check_input_types(src, plans, policy, opts)
-    check_one_row_per_person(src, policy, opts.batch_rows, source_location(src, opts))
+    check_one_row_per_person(src, policy, opts.batch_rows, source_location(src, opts), check=staged.check)
     schema = output_schema(plans, src.schema, src.format)
     sampler = attach_randomness(plans, policy, key, opts.nonce)
     read_cols, subject_key = read_columns(plans, policy)
@@ -106,19 +124,20 @@ def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey
                   order=tag_stream(key, opts.nonce) if policy.policy.output.row_order == "shuffled" else None,
                   public=frozenset(p.rc.name for p in plans if p.rc.type == "public"))
     nonce_use = nonces.check(opts, policy, key, src)  # a reused nonce is refused before anything is written
-    charges = precharge(src, plans, policy, key, sampler, opts)
+    charges = precharge(src, plans, policy, key, sampler, opts, check=staged.check)
     held = rows_held(charges, plans)
-    with StagedFiles() as staged:
-        hold_destinations(staged, opts, diag_path)
-        written = write_extract(job, src, held, opts, staged, on_progress)
-        manifest = build_manifest(policy, key, plans, written, opts)
-        stage_text(staged, opts.manifest_path, manifest.to_json())
-        diag = diagnostics(plans, written, opts, opts.manifest_path, charges, sampler is not None,
-                           time.perf_counter() - t0)
-        stage_text(staged, diag_path, json.dumps(diag, indent=2) + "\n", mode=0o600)
-        nonces.record(nonce_use)
-        release_id = _record(staged, charges, plans, manifest, opts)
-        move_into_place(staged, opts, release_id)
+    staged.check()
+    hold_destinations(staged, opts, diag_path)
+    written = write_extract(job, src, held, opts, staged, on_progress)
+    check_same_rows(charges, written.input_rows, source_location(src, opts))
+    manifest = build_manifest(policy, key, plans, written, opts)
+    stage_text(staged, opts.manifest_path, manifest.to_json())
+    diag = diagnostics(plans, written, opts, opts.manifest_path, charges, sampler is not None,
+                       time.perf_counter() - t0)
+    stage_text(staged, diag_path, json.dumps(diag, indent=2) + "\n", mode=0o600)
+    nonces.record(nonce_use)
+    release_id = _record(staged, charges, plans, manifest, opts)
+    move_into_place(staged, opts, release_id)
     counts = (0, 0) if charges is None else (int((~charges.within).sum()), int((~charges.row_within).sum()))
     changed = tuple(t for p in plans if p.rc.mechanism is not None
                     for t in [counts_text(p, written.input_rows)] if t is not None)
