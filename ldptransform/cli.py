@@ -975,7 +975,7 @@ def ledger_show(ledger: Path | None = typer.Option(None, "--ledger", help=_LEDGE
     from .ledger import Ledger
 
     with _user_errors():
-        with Ledger.open(_ledger_path(ledger), create=False) as led:
+        with Ledger.open(_ledger_path(ledger), create=False, readonly=True) as led:
             summary = led.show()
     if format == TableJson.json:
         sys.stdout.write(json_text(summary))
@@ -1003,15 +1003,19 @@ def ledger_show(ledger: Path | None = typer.Option(None, "--ledger", help=_LEDGE
 
 @ledger_app.command("verify")
 def ledger_verify(ledger: Path | None = typer.Option(None, "--ledger", help=_LEDGER_OPTION_HELP)) -> None:
-    """Recompute the ledger's hash chain; exit 0 if intact, 1 if broken (naming the first broken release).
+    """Recompute the ledger's hash chain; exit 0 if intact, 1 if broken (naming the first broken release) or damaged.
 
     Example: ldpt ledger verify --ledger ~/private/ledger.sqlite3
     """
-    from .ledger import Ledger
+    from .ledger import Ledger, LedgerDamagedError
 
     with _user_errors():
-        with Ledger.open(_ledger_path(ledger), create=False) as led:
-            res = led.verify()
+        try:
+            with Ledger.open(_ledger_path(ledger), create=False, readonly=True) as led:
+                res = led.verify()
+        except LedgerDamagedError as err:  # empty, not a ledger or damaged: a failed check, as a broken chain
+            out_console.print(str(err), markup=False)
+            raise typer.Exit(code=1) from None
     if res.ok:
         out_console.print(f"ledger {led.path}: {res.detail}; head {res.head}", markup=False)
     else:

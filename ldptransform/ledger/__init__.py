@@ -3,7 +3,7 @@
     store.py    the SQLite store: schema, columnar state, hash chain, record, verify, show
     charges.py  the charges of a release (per subject, against the lifetime budget)
     hashes.py   keyed digests of subjects and values (nothing raw goes in)
-    errors.py   LedgerError, BudgetExhaustedError
+    errors.py   LedgerError, BudgetExhaustedError, LedgerDamagedError
 """
 
 from .charges import (
@@ -15,7 +15,7 @@ from .charges import (
                     charges_of,
                     check_cap,
 )
-from .errors import BudgetExhaustedError, LedgerError
+from .errors import BudgetExhaustedError, LedgerDamagedError, LedgerError
 from .hashes import DIGEST, as_digests, memo_value_hashes, subject_hashes, value_hashes
 from .store import (
                     APPLICATION_ID,
@@ -36,6 +36,6 @@ from .store import (
 
 __all__ = ["APPLICATION_ID", "BUSY_TIMEOUT_S", "CAP_TOLERANCE", "DEFAULT_NAME", "DIGEST", "GENESIS", "PART_BYTES",
            "SCHEMA_VERSION", "SPEND_NOTE", "BudgetExhaustedError", "ChargePlan", "Ledger", "LedgerCharges",
-           "LedgerError", "ReleaseMeta", "VerifyResult", "_Index", "_decode_spend", "_encode_spend", "aggregate",
-           "as_digests", "cap_plan", "charges_of", "check_cap", "default_ledger_path", "memo_value_hashes",
-           "subject_hashes", "value_hashes"]
+           "LedgerDamagedError", "LedgerError", "ReleaseMeta", "VerifyResult", "_Index", "_decode_spend",
+           "_encode_spend", "aggregate", "as_digests", "cap_plan", "charges_of", "check_cap", "default_ledger_path",
+           "memo_value_hashes", "subject_hashes", "value_hashes"]

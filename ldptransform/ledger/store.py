@@ -41,14 +41,17 @@ a check and overspend, and a failure mid-record leaves nothing (rollback).
 
 from __future__ import annotations
 
+import contextlib
+import errno
 import hashlib
 import json
 import math
 import os
+import secrets
 import sqlite3
 import stat
 import zlib
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
@@ -61,9 +64,9 @@ from ..keys import check_nonce, shared_access
 from .charges import CAP_TOLERANCE, ChargePlan, aggregate, cap_plan, check_cap
 from .errors import BudgetExhaustedError, LedgerError
 from .hashes import DIGEST, as_digests
+from .schema import (APPLICATION_ID, READONLY_ROLLBACK, SCHEMA, SCHEMA_VERSION, check_header, check_schema, damaged,
+                     sqlite_failure)
 
-SCHEMA_VERSION = 2  # 2: subjects and values hashed with the AES-based keyed PRF (1: HMAC-SHA256)
-APPLICATION_ID = 0x4C445450  # "LDTP": marks a SQLite file as an ldptransform ledger
 DEFAULT_NAME = "ledger.sqlite3"
 BUSY_TIMEOUT_S = 30.0
 GENESIS = "0" * 64
@@ -71,34 +74,6 @@ _ROW_LABEL = b"ldptransform/ledger/release-row/v2\n"
 _SPEND_LABEL = b"ldptransform/ledger/subject-spend/v2\n"
 SPEND_NOTE = ("data-dependent (who appears in which release): steward-only, never publish or send to "
               "partners")
-
-_SCHEMA = [
-    "CREATE TABLE IF NOT EXISTS meta (name TEXT PRIMARY KEY, value TEXT NOT NULL)",
-    """CREATE TABLE IF NOT EXISTS releases (
-        id INTEGER PRIMARY KEY,
-        time TEXT NOT NULL,
-        policy_sha256 TEXT NOT NULL,
-        extract_sha256 TEXT NOT NULL,
-        nonce TEXT NOT NULL,
-        columns TEXT NOT NULL,
-        subjects_charged INTEGER NOT NULL,
-        lifetime_epsilon REAL,
-        state_sha256 TEXT NOT NULL,
-        prev_hash TEXT NOT NULL,
-        row_hash TEXT NOT NULL)""",
-    # a release's spend: registry indices (sorted, delta-coded, u64 LE) and eps (f64 LE), zlib
-    """CREATE TABLE IF NOT EXISTS release_spend (
-        release_id INTEGER PRIMARY KEY,
-        subject_ids BLOB NOT NULL,
-        eps BLOB NOT NULL)""",
-    # current state as arrays aligned by registry index: "subjects" (32-byte digests, appended
-    # one part per release), "totals" (f64 LE), "state:<column>" (32-byte last-value digests)
-    """CREATE TABLE IF NOT EXISTS arrays (
-        name TEXT NOT NULL,
-        part INTEGER NOT NULL,
-        data BLOB NOT NULL,
-        PRIMARY KEY (name, part))""",
-]
 
 
 PART_BYTES = 1 << 25  # largest blob part stored (32 MiB): far below SQLite's default 1e9-byte limit
@@ -263,6 +238,18 @@ class ReleaseMeta:
         return out
 
 
+_ROW_TYPES: dict[str, tuple[type, ...]] = {
+    "id": (int,), "time": (str,), "policy_sha256": (str,), "extract_sha256": (str,), "nonce": (str,),
+    "columns": (str,), "subjects_charged": (int,), "lifetime_epsilon": (float, int, type(None)),
+    "state_sha256": (str,), "prev_hash": (str,), "row_hash": (str,)}
+
+
+def _row_types_ok(row: Mapping[str, Any]) -> bool:
+    """The values of a release row (those given) have the types a ledger writes (SQLite keeps
+    whatever type a hand edit stores, whatever the column's declared type)."""
+    return all(isinstance(v, _ROW_TYPES[k]) and not isinstance(v, bool) for k, v in row.items())
+
+
 def _check_sha(v: str, what: str) -> str:
     if not isinstance(v, str) or len(v) != 64 or any(c not in "0123456789abcdef" for c in v.lower()):
         raise LedgerError(f"release meta: {what} must be 64 hex characters (the SHA-256 in the manifest).")
@@ -352,99 +339,184 @@ def _next_state(snap: _Snapshot, idx: np.ndarray, uniq: np.ndarray, eps: np.ndar
     return _Snapshot("", np.concatenate([snap.digests, added]), totals, states), ids, added
 
 
+def _init_file(path: Path) -> None:
+    """Write a new, empty ledger into the empty file ``path`` (one transaction)."""
+    conn = sqlite3.connect(str(path), timeout=BUSY_TIMEOUT_S, isolation_level=None)
+    try:
+        conn.execute("BEGIN IMMEDIATE")
+        for stmt in SCHEMA:
+            conn.execute(stmt)
+        conn.executemany("INSERT INTO meta VALUES (?, ?)", [
+            ("schema_version", str(SCHEMA_VERSION)), ("created", _utc_now()), ("head", GENESIS),
+            ("release_count", "0")])
+        conn.execute(f"PRAGMA application_id = {APPLICATION_ID}")
+        conn.execute(f"PRAGMA user_version = {SCHEMA_VERSION}")
+        conn.execute("COMMIT")
+    finally:
+        conn.close()
+
+
+_NO_HARD_LINKS = {errno.EPERM, errno.EOPNOTSUPP, errno.ENOTSUP, errno.ENOSYS}
+
+
+def _place(made: Path, path: Path) -> None:
+    """Put the complete ledger ``made`` at ``path`` unless a file is there by now (another job
+    made the ledger first: theirs is kept).  A hard link, so ``path`` appears complete at once;
+    on a file system without hard links, the bytes are written into a new file there."""
+    try:
+        os.link(made, path)
+        return
+    except FileExistsError:
+        return
+    except OSError as err:
+        if err.errno not in _NO_HARD_LINKS:
+            raise
+    data = made.read_bytes()
+    try:
+        fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+    except FileExistsError:
+        return
+    try:
+        with os.fdopen(fd, "wb") as f:
+            f.write(data)
+            f.flush()
+            os.fsync(f.fileno())
+    except BaseException:
+        path.unlink(missing_ok=True)  # made by this call a moment ago, and never a ledger: nothing is lost
+        raise
+
+
+def _create(path: Path) -> None:
+    """Make a new ledger at ``path``, where nothing existed a moment ago.  It is built in a hidden
+    file beside ``path`` and then put in place whole, so that nobody (another job, or anyone after
+    a crash) ever finds an empty or half-made ledger there; an existing file is never made into a
+    ledger (an empty one is reported as damaged: it may be a truncated ledger)."""
+    made = path.with_name(f".{path.name}.{os.getpid()}-{secrets.token_hex(4)}.new")
+    try:
+        os.close(os.open(made, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600))
+        try:
+            _init_file(made)
+            _place(made, path)
+        finally:
+            made.unlink(missing_ok=True)
+    except sqlite3.Error as err:
+        raise sqlite_failure(path, err, recording=True) from None
+    except OSError as err:
+        why = "permission denied" if isinstance(err, PermissionError) else (err.strerror or "failed").lower()
+        raise LedgerError(f"cannot create ledger {path} ({why}). Check that the steward's account may write to "
+                          f"folder {path.parent} and that its disk has space.") from None
+
+
+def _end_read(c: sqlite3.Connection) -> None:
+    if c.in_transaction:
+        with contextlib.suppress(sqlite3.Error):  # ends a read: nothing to lose
+            c.execute("COMMIT")
+
+
+def _uri(path: Path, mode: str) -> str:
+    return f"{path.resolve().as_uri()}?mode={mode}"
+
+
+def _undo_stopped_write(path: Path) -> None:
+    """SQLite's own recovery: a writer's connection that reads the ledger rolls back the write a
+    stopped job left in its journal, restoring the ledger as of its last recorded release."""
+    conn = sqlite3.connect(_uri(path, "rw"), uri=True, timeout=BUSY_TIMEOUT_S, isolation_level=None)
+    try:
+        conn.execute("SELECT count(*) FROM sqlite_master").fetchone()
+    finally:
+        conn.close()
+
+
 # -- the ledger ---------------------------------------------------------------------------
 
 class Ledger:
     """A steward's privacy ledger (one SQLite file).  Open with ``Ledger.open(path)``."""
 
-    def __init__(self, path: Path, conn: sqlite3.Connection) -> None:
+    def __init__(self, path: Path, conn: sqlite3.Connection, readonly: bool = False) -> None:
         self.path = path
+        self.readonly = readonly
         self._conn = conn
         self._snap: _Snapshot | None = None  # cached state, valid while the head is unchanged
 
     # opening ---------------------------------------------------------------------------
 
     @classmethod
-    def open(cls, path: Path | str, *, create: bool = True) -> Ledger:
+    def open(cls, path: Path | str, *, create: bool = True, readonly: bool = False) -> Ledger:
+        """The ledger at ``path``, checked before use (ledger/schema.py: a file that is empty, not
+        a ledger or damaged is a ``LedgerDamagedError``, and is left as it is).  ``create``: make a
+        new ledger if nothing exists at ``path`` (never in an existing file, even an empty one).
+        ``readonly``: for checks and summaries; SQLite opens the file read-only, so nothing (not
+        even a journal file) is written; implies no ``create``."""
         path = Path(path)
         try:
             st = path.stat()
         except FileNotFoundError:
-            if not create:
+            if path.is_symlink():
+                raise LedgerError(f"ledger {path} is a symbolic link to a file that does not exist. Point --ledger at "
+                                  "the ledger itself, or restore the file the link points to.") from None
+            if readonly or not create:
                 raise LedgerError(f"no ledger at {path}. A ledger is made by the first release that records "
                                   "to it; check --ledger (default: ledger.sqlite3 in the private folder, "
                                   "$LDPT_PRIVATE_DIR).") from None
             if not path.parent.is_dir():
                 raise LedgerError(f"cannot create ledger {path}: folder {path.parent} does not exist. Create it "
                                   "first (private to the steward, like the key).") from None
-            try:
-                os.close(os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600))
-            except FileExistsError:
-                pass  # another job created it at the same moment: fine, initialization is idempotent
+            _create(path)
             st = path.stat()
+        except OSError as err:  # a folder on the way that is a file, or that this account may not search
+            why = "permission denied" if isinstance(err, PermissionError) else (err.strerror or "failed").lower()
+            raise LedgerError(f"cannot look up ledger {path} ({why}). Check the path and that the steward's account "
+                              "may read its folder.") from None
         if not stat.S_ISREG(st.st_mode):
             raise LedgerError(f"ledger {path} is not a regular file. Point --ledger at a ledger file.")
+        check_header(path)  # before the permission hint: a file that is no ledger gets no chmod advice
         open_to = shared_access(st)
         if open_to:
             raise LedgerError(
                 f"ledger {path} can be read or written by other users ({open_to}). "
                 f"The ledger is steward-only data (per-subject spend depends on the data): run "
                 f"`chmod 600 {path}`.")
+        return cls._connect(path, readonly)
+
+    @classmethod
+    def _connect(cls, path: Path, readonly: bool) -> Ledger:
+        """Connect and check the schema.  A read-only connection that finds the journal of a write
+        that a stopped job left unfinished lets SQLite undo that write first (as the next writer's
+        connection would), then connects again."""
         try:
-            conn = sqlite3.connect(str(path), timeout=BUSY_TIMEOUT_S, isolation_level=None)
+            return cls._connect_once(path, readonly)
         except sqlite3.Error as err:
-            raise LedgerError(f"cannot open ledger {path}: {err}. Check the path and permissions.") from None
-        led = cls(path, conn)
+            if not (readonly and getattr(err, "sqlite_errorcode", None) == READONLY_ROLLBACK):
+                raise sqlite_failure(path, err) from None
         try:
-            led._init_or_check()
+            _undo_stopped_write(path)
+            return cls._connect_once(path, readonly)
+        except sqlite3.Error as err:
+            raise sqlite_failure(path, err) from None
+
+    @classmethod
+    def _connect_once(cls, path: Path, readonly: bool) -> Ledger:
+        # mode=rw: SQLite never creates the file (it may have gone since it was checked)
+        conn = sqlite3.connect(_uri(path, "ro" if readonly else "rw"), uri=True, timeout=BUSY_TIMEOUT_S,
+                               isolation_level=None)
+        led = cls(path, conn, readonly)
+        try:
+            led._check()
         except BaseException:
             conn.close()
             raise
         return led
 
-    def _init_or_check(self) -> None:
+    def _check(self) -> None:
         c = self._conn
-        not_ledger = (f"{self.path} is not an ldptransform ledger (it is not a SQLite file made by ldpt, or it "
-                      "was written by something else). Point --ledger at a ledger, or at a path that does not "
-                      "exist yet to start a new one; never reuse another file.")
+        c.execute(f"PRAGMA busy_timeout = {int(BUSY_TIMEOUT_S * 1000)}")
+        c.execute("PRAGMA cache_size = -131072")  # 128 MiB of page cache: 1M-subject releases
+        c.execute("PRAGMA temp_store = MEMORY")
+        c.execute("BEGIN")
         try:
-            c.execute(f"PRAGMA busy_timeout = {int(BUSY_TIMEOUT_S * 1000)}")
-            c.execute("PRAGMA cache_size = -131072")  # 128 MiB of page cache: 1M-subject releases
-            c.execute("PRAGMA temp_store = MEMORY")
-            app_id = c.execute("PRAGMA application_id").fetchone()[0]
-            version = c.execute("PRAGMA user_version").fetchone()[0]
-            if app_id == 0 and version == 0:
-                has_tables = c.execute("SELECT count(*) FROM sqlite_master").fetchone()[0]
-                if has_tables:
-                    raise LedgerError(not_ledger)
-                c.execute("BEGIN IMMEDIATE")
-                try:  # re-read under the write lock: another job may have initialized it meanwhile
-                    if c.execute("PRAGMA application_id").fetchone()[0] == 0:
-                        for stmt in _SCHEMA:
-                            c.execute(stmt)
-                        c.executemany("INSERT INTO meta VALUES (?, ?)", [
-                            ("schema_version", str(SCHEMA_VERSION)), ("created", _utc_now()),
-                            ("head", GENESIS), ("release_count", "0")])
-                        c.execute(f"PRAGMA application_id = {APPLICATION_ID}")
-                        c.execute(f"PRAGMA user_version = {SCHEMA_VERSION}")
-                    c.execute("COMMIT")
-                except BaseException:
-                    c.execute("ROLLBACK")
-                    raise
-                app_id, version = APPLICATION_ID, SCHEMA_VERSION
-        except sqlite3.OperationalError as err:
-            raise LedgerError(f"cannot open ledger {self.path}: {err}. If another job holds it for more than "
-                              f"{BUSY_TIMEOUT_S:g} s, try again when it has finished.") from None
-        except sqlite3.DatabaseError:
-            raise LedgerError(not_ledger) from None
-        if app_id != APPLICATION_ID:
-            raise LedgerError(not_ledger)
-        if version != SCHEMA_VERSION:
-            raise LedgerError(f"ledger {self.path} has schema version {version}; this ldptransform reads version "
-                              f"{SCHEMA_VERSION}. Use the ldptransform version that wrote it"
-                              + (" (version 1 ledgers hash subjects differently, so this version cannot match "
-                                 "them; start a new ledger only after your privacy officer has decided how to "
-                                 "account for the eps already spent)." if version == 1 else "."))
+            check_schema(c, self.path)
+        finally:
+            _end_read(c)
 
     def close(self) -> None:
         self._conn.close()
@@ -457,41 +529,59 @@ class Ledger:
 
     # reading ---------------------------------------------------------------------------
 
+    @contextlib.contextmanager
+    def _reading(self) -> Iterator[sqlite3.Connection]:
+        """One read transaction (a consistent view); SQLite's failures told in plain words."""
+        c = self._conn
+        try:
+            c.execute("BEGIN")
+            try:
+                yield c
+            finally:
+                _end_read(c)
+        except sqlite3.Error as err:
+            raise sqlite_failure(self.path, err) from None
+
     def _get(self, name: str) -> bytes:
-        return b"".join(r[0] for r in self._conn.execute(
-            "SELECT data FROM arrays WHERE name = ? ORDER BY part", (name,)))
+        parts = [r[0] for r in self._conn.execute("SELECT data FROM arrays WHERE name = ? ORDER BY part", (name,))]
+        if not all(isinstance(p, bytes) for p in parts):
+            raise damaged(self.path, "its current state (arrays) holds values that are not binary data")
+        return b"".join(parts)
+
+    def _head(self) -> str:
+        row = self._conn.execute("SELECT value FROM meta WHERE name = 'head'").fetchone()
+        if row is None or not isinstance(row[0], str):
+            raise damaged(self.path, "its header table (meta) has no head hash")
+        return str(row[0])
 
     def _load(self) -> _Snapshot:
         """The current state (call inside a transaction); cached while the head hash is unchanged."""
         c = self._conn
-        head = c.execute("SELECT value FROM meta WHERE name = 'head'").fetchone()[0]
+        head = self._head()
         if self._snap is not None and self._snap.head == head:
             return self._snap
         names = [r[0] for r in c.execute("SELECT DISTINCT name FROM arrays")]
+        if not all(isinstance(n, str) for n in names):
+            raise damaged(self.path, "its current state (arrays) holds an array whose name is not a text")
         reg, tot = self._get(_REGISTRY), self._get(_TOTALS)
         if len(reg) % 32 or len(tot) != len(reg) // 32 * 8:
-            raise LedgerError(f"ledger {self.path} is damaged: its subject registry and running totals do not fit "
-                              "together. Run `ldpt ledger verify` and restore the ledger from a backup.")
+            raise damaged(self.path, "its subject registry and running totals do not fit together (`ldpt ledger "
+                          "verify` says more)")
         states = {}
         for name in names:
             if name.startswith(_STATE_PREFIX):
                 data = self._get(name)
                 if len(data) % 32 or len(data) > len(reg):
-                    raise LedgerError(f"ledger {self.path} is damaged: the memo state of column "
-                                      f"{name[len(_STATE_PREFIX):]!r} does not fit the registry. Run `ldpt ledger "
-                                      "verify` and restore the ledger from a backup.")
+                    raise damaged(self.path, f"the memo state of column {name[len(_STATE_PREFIX):]!r} does not fit "
+                                  "the registry (`ldpt ledger verify` says more)")
                 states[name[len(_STATE_PREFIX):]] = np.frombuffer(data, dtype=DIGEST)
         self._snap = _Snapshot(head, np.frombuffer(reg, dtype=DIGEST), np.frombuffer(tot, dtype="<f8").astype(
             np.float64), states)
         return self._snap
 
     def _read(self) -> _Snapshot:
-        c = self._conn
-        c.execute("BEGIN")
-        try:
+        with self._reading():
             return self._load()
-        finally:
-            c.execute("COMMIT")
 
     def spent(self, subject_hashes: Any) -> np.ndarray:
         """Eps each subject has been charged so far (0 for subjects never charged)."""
@@ -520,17 +610,20 @@ class Ledger:
 
     def release_spend(self, release_id: int) -> tuple[np.ndarray, np.ndarray]:
         """(subject hashes, eps) charged by one release, in registry order (steward-only data)."""
-        c = self._conn
-        c.execute("BEGIN")
-        try:
+        with self._reading() as c:
             row = c.execute("SELECT subject_ids, eps FROM release_spend WHERE release_id = ?",
                             (int(release_id),)).fetchone()
             if row is None:
                 raise LedgerError(f"ledger {self.path} has no release {release_id}; `ldpt ledger show` lists them.")
-            ids, eps = _decode_spend(*row)
-            return self._load().digests[ids], eps
-        finally:
-            c.execute("COMMIT")
+            digests = self._load().digests
+            try:
+                ids, eps = _decode_spend(*row)
+                if len(ids) != len(eps) or (len(ids) and (ids.min() < 0 or ids.max() >= len(digests))):
+                    raise ValueError("the spend does not fit the registry")
+            except (ValueError, TypeError, zlib.error):
+                raise damaged(self.path, f"the spend of release {int(release_id)} is damaged (`ldpt ledger verify` "
+                              "says more)") from None
+            return digests[ids], eps
 
     def charge_plan(self, subject_hashes: Any, per_subject_eps: Any, lifetime_epsilon: float) -> ChargePlan:
         """What charging this release would do: (over_count, max_overshoot, within_mask).
@@ -557,7 +650,8 @@ class Ledger:
 
     def check_key(self, key_fingerprint: str) -> None:
         """Refuse a key other than the one this ledger's subjects are hashed under (read-only)."""
-        row = self._conn.execute("SELECT value FROM meta WHERE name = 'key_fingerprint'").fetchone()
+        with self._reading() as c:
+            row = c.execute("SELECT value FROM meta WHERE name = 'key_fingerprint'").fetchone()
         self._bind_key(row[0] if row else None, key_fingerprint)
 
     def record_release(self, meta: ReleaseMeta | Mapping[str, Any], subject_hashes: Any, per_subject_eps: Any,
@@ -573,24 +667,31 @@ class Ledger:
         check_cap(lifetime_epsilon)
         uniq, eps = aggregate(as_digests(subject_hashes), per_subject_eps)
         memo_pos = _memo_positions(cols, memo_updates, uniq)
+        if self.readonly:
+            raise LedgerError(f"ledger {self.path} was opened read-only (for a check); open it with "
+                              "Ledger.open(path) to record a release.")
         c = self._conn
-        self._begin_write()
         try:
-            snap = self._load()  # under the lock: nobody can record between this read and the commit
-            idx = snap.index.find(uniq)
-            self._check_cap_locked(snap, idx, eps, lifetime_epsilon)
-            head, rid = self._head_for(key_fingerprint)
-            new, ids, added = _next_state(snap, idx, uniq, eps, memo_pos)
-            arrays = new.arrays()
-            row = {**row, "id": rid, "time": row["time"] or _utc_now(), "subjects_charged": len(uniq),
-                   "state_sha256": _state_digest(arrays)}
-            row_hash = self._write_release(row, head, arrays, ids, eps, added, [col for col, _, _ in memo_pos])
-            c.execute("COMMIT")
-        except BaseException:
-            self._snap = None
-            if c.in_transaction:
-                c.execute("ROLLBACK")
-            raise
+            self._begin_write()
+            try:
+                snap = self._load()  # under the lock: nobody can record between this read and the commit
+                idx = snap.index.find(uniq)
+                self._check_cap_locked(snap, idx, eps, lifetime_epsilon)
+                head, rid = self._head_for(key_fingerprint)
+                new, ids, added = _next_state(snap, idx, uniq, eps, memo_pos)
+                arrays = new.arrays()
+                row = {**row, "id": rid, "time": row["time"] or _utc_now(), "subjects_charged": len(uniq),
+                       "state_sha256": _state_digest(arrays)}
+                row_hash = self._write_release(row, head, arrays, ids, eps, added, [col for col, _, _ in memo_pos])
+                c.execute("COMMIT")
+            except BaseException:
+                self._snap = None
+                if c.in_transaction:
+                    with contextlib.suppress(sqlite3.Error):  # SQLite undoes the write itself if this fails
+                        c.execute("ROLLBACK")
+                raise
+        except sqlite3.Error as err:
+            raise sqlite_failure(self.path, err, recording=True) from None
         new.head = row_hash
         self._snap = new
         return rid
@@ -599,9 +700,11 @@ class Ledger:
         try:
             self._conn.execute("BEGIN IMMEDIATE")  # the write lock: waits up to BUSY_TIMEOUT_S for another job
         except sqlite3.OperationalError as err:
-            raise LedgerError(f"ledger {self.path}: could not take the write lock ({err}) within "
-                              f"{BUSY_TIMEOUT_S:g} s; another job is recording. Nothing was recorded: run the "
-                              "release again when it has finished.") from None
+            if getattr(err, "sqlite_errorcode", 0) & 0xFF not in (5, 6):  # SQLITE_BUSY, SQLITE_LOCKED
+                raise
+            raise LedgerError(f"ledger {self.path}: could not take the write lock within {BUSY_TIMEOUT_S:g} s; "
+                              "another job is recording. Nothing was recorded: run the release again when it has "
+                              "finished.") from None
 
     def _check_cap_locked(self, snap: _Snapshot, idx: np.ndarray, eps: np.ndarray, cap: float | None) -> None:
         """Refuse the whole release if any subject would go over the lifetime eps (under the lock)."""
@@ -623,11 +726,16 @@ class Ledger:
         """The chain's head and the new release's id; binds the ledger to the key on first use."""
         c = self._conn
         meta_now = dict(c.execute("SELECT name, value FROM meta"))
+        head, count = meta_now.get("head"), meta_now.get("release_count")
+        last = c.execute("SELECT id, row_hash FROM releases ORDER BY id DESC LIMIT 1").fetchone()  # the last rowid
+        if (head, count) != ((GENESIS, "0") if last is None else (last[1], str(last[0]))):
+            raise damaged(self.path, "its head hash and release count do not match its last stored release (`ldpt "
+                          "ledger verify` says where its chain breaks)", recording=True)
         if key_fingerprint is not None:
             self._bind_key(meta_now.get("key_fingerprint"), key_fingerprint)
             if "key_fingerprint" not in meta_now:
                 c.execute("INSERT INTO meta VALUES ('key_fingerprint', ?)", (key_fingerprint,))
-        return meta_now["head"], int(meta_now["release_count"]) + 1
+        return str(head), int(str(count)) + 1
 
     def _write_release(self, row: dict[str, Any], head: str, arrays: dict[str, bytes], ids: np.ndarray,
                        eps: np.ndarray,
@@ -670,9 +778,7 @@ class Ledger:
     def verify(self) -> VerifyResult:
         """Recompute the hash chain, then check the current state against the last release's
         state digest and the totals against the sum of all spend; names the first broken release."""
-        c = self._conn
-        c.execute("BEGIN")
-        try:
+        with self._reading() as c:
             meta = dict(c.execute("SELECT name, value FROM meta"))
             names = ("id", "time", "policy_sha256", "extract_sha256", "nonce", "columns", "subjects_charged",
                      "lifetime_epsilon", "state_sha256", "prev_hash", "row_hash")
@@ -705,14 +811,14 @@ class Ledger:
                 return VerifyResult(False, len(rows), None, "the per-subject running totals do not match the sum of "
                                     "the recorded spend", prev)
             return VerifyResult(True, len(rows), None, f"chain intact over {len(rows)} release(s)", prev)
-        finally:
-            c.execute("COMMIT")
 
     def _check_link(self, r: dict[str, Any], n: int, prev: str, n_reg: int
                     ) -> tuple[tuple[int, str] | None, tuple[np.ndarray, np.ndarray]]:
         """Release ``n`` of the chain: ((its id, what is broken) or None, its spend (registry indices, eps))."""
         rid = r["id"]
         none = (np.zeros(0, dtype=np.int64), np.zeros(0))
+        if not _row_types_ok(r):
+            return (n, f"release {n}: its row holds a value of the wrong type (changed by hand)"), none
         if rid != n:
             return (n, f"release {n} is missing (the next stored id is {rid}): a release was deleted or inserted"), none
         if r["prev_hash"] != prev:
@@ -749,15 +855,16 @@ class Ledger:
 
     def show(self, lifetime_epsilon: float | None = None) -> dict[str, Any]:
         """A summary for the steward.  The spend figures depend on the data: steward-only."""
-        c = self._conn
-        c.execute("BEGIN")
-        try:
+        with self._reading() as c:
             rel = c.execute("SELECT id, time, columns, subjects_charged, lifetime_epsilon FROM releases "
                             "ORDER BY id").fetchall()
-            head = c.execute("SELECT value FROM meta WHERE name = 'head'").fetchone()[0]
+            head = self._head()
             totals = self._load().totals
-        finally:
-            c.execute("COMMIT")
+        for rid, t, cols, n, cap in rel:
+            if not _row_types_ok({"id": rid, "time": t, "columns": cols, "subjects_charged": n,
+                                  "lifetime_epsilon": cap}):
+                raise damaged(self.path, f"the row of release {rid} holds a value of the wrong type (`ldpt ledger "
+                              "verify` says more)")
         releases = []
         eps_sum = 0.0
         for rid, t, cols, n, cap in rel:
