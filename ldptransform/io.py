@@ -585,11 +585,23 @@ def _pid_alive(pid: int) -> bool:
 def remove_stale_partials(dest: Path) -> int:
     """Remove partial files left beside ``dest`` by runs that were killed."""
     dest = Path(dest)
+    return _remove_stale(dest.parent, lambda name: name == dest.name)
+
+
+def remove_stale_partials_in(folder: Path, suffix: str) -> int:
+    """Remove the partial files that killed runs left in ``folder`` for any destination whose
+    name ends in ``suffix`` (destinations with a fresh name each run, such as the default
+    diagnostics file in the private folder, which ``remove_stale_partials`` never meets again)."""
+    return _remove_stale(Path(folder), lambda name: name.endswith(suffix))
+
+
+def _remove_stale(folder: Path, wanted: Callable[[str], bool]) -> int:
+    """Remove the partial files in ``folder`` of destinations ``wanted`` names whose process is gone."""
     removed = 0
     with contextlib.suppress(OSError):
-        for p in dest.parent.iterdir():
+        for p in folder.iterdir():
             m = _PARTIAL.match(p.name)
-            if m and m.group("name") == dest.name and not _pid_alive(int(m.group("pid"))):
+            if m and wanted(m.group("name")) and not _pid_alive(int(m.group("pid"))):
                 with contextlib.suppress(OSError):
                     if p.is_dir() and not p.is_symlink():
                         shutil.rmtree(p)

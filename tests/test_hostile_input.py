@@ -406,3 +406,141 @@ def test_csv_changed_between_the_ledger_pre_pass_and_the_release(work: Work, ldp
     res = work.run(ldpt, raw, "--ledger", ledger)
     work.refused(res, [raw.name, "changed while the release was reading it"], before)
     assert not ledger.exists()
+
+
+# -- outputs aimed at the steward's own files ------------------------------------------------
+
+def test_manifest_aimed_at_the_input_names_the_input(work: Work, ldpt) -> None:
+    """`--manifest data.csv` (the input): the message names that conflict, not the output, and
+    nothing changes, with --overwrite too."""
+    raw = work.dir / "data.csv"
+    raw.write_bytes(DEMO_CSV.read_bytes())
+    h = sha256(raw)
+    for extra in ((), ("--overwrite",)):
+        before = listing(work.dir)
+        res = ldpt("privatize", "data.csv", "--policy", work.policy, "--key", work.key, "--out", "extract.parquet",
+                   "--manifest", "data.csv", *extra, cwd=work.dir)
+        text = work.refused(res, ["manifest", "data.csv", "is the input"], before, inputs={raw: h})
+        assert "--overwrite" not in text.split("input")[0] and "already exists" not in text
+
+
+@pytest.mark.parametrize("target", ["input", "key", "policy"])
+def test_ledger_aimed_at_a_source_file(target: str, work: Work, ldpt) -> None:
+    """`--ledger data.csv` (the raw data), the key or the policy: refused naming the conflict, never
+    a chmod hint on a source file, and the file is unchanged."""
+    _ledger_policy(work)
+    raw = work.dir / "data.csv"
+    raw.write_bytes(DEMO_CSV.read_bytes())
+    path = {"input": raw, "key": work.key, "policy": work.policy}[target]
+    hashes = {p: sha256(p) for p in (raw, work.key, work.policy)}
+    modes = {p: p.stat().st_mode for p in hashes}
+    before = listing(work.dir)
+    res = work.run(ldpt, raw, "--ledger", path)
+    text = work.refused(res, ["ledger", path.name, "a path of its own"], before, inputs=hashes)
+    assert "chmod" not in text
+    assert {p: p.stat().st_mode for p in hashes} == modes
+
+
+# -- a killed run's leftovers ----------------------------------------------------------------
+
+def _dead_pid() -> int:
+    import subprocess
+    import sys
+
+    proc = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True,
+                          check=True)
+    return int(proc.stdout)
+
+
+def test_killed_runs_partials_are_cleaned_by_the_next_run(work: Work, ldpt) -> None:
+    """A killed run leaves staged files: beside the extract and the manifest, and its steward-only
+    diagnostics in the private folder under a name no later run uses again.  The next release
+    removes all of them (a live run's are kept)."""
+    raw = work.dir / "survey.csv"
+    raw.write_bytes(DEMO_CSV.read_bytes())
+    dead, alive = _dead_pid(), os.getpid()
+    stale = [work.dir / f".extract.parquet.ldpt-partial-{dead}-0badc0de",
+             work.dir / f".extract.manifest.json.ldpt-partial-{dead}-0badc0de",
+             work.private / f".extract.0123456789ab.1a2b3c4d.PRIVATE-diagnostics.json.ldpt-partial-{dead}-0badc0de"]
+    live = work.private / f".extract.ba9876543210.4d3c2b1a.PRIVATE-diagnostics.json.ldpt-partial-{alive}-0badc0de"
+    for p in [*stale, live]:
+        p.write_text('{"PRIVATE": "counts of a killed run"}\n')
+    res = work.run(ldpt, raw)
+    assert res.returncode == 0, res.stderr
+    assert not any(p.exists() for p in stale), listing(work.private)
+    assert live.exists()
+    assert partials(work.dir) == []
+    assert [n for n in listing(work.private) if ".ldpt-partial-" in n] == [live.name]
+
+
+# -- a stop signal during the ledger's pre-pass ----------------------------------------------
+
+SLOW_PREPASS = '''
+import sys, time
+from pathlib import Path
+
+import ldptransform.release.charges as charges
+
+marker = Path(sys.argv[1])
+real = charges._PrePass.batch
+
+
+def slow(self, batch, row0):
+    marker.touch()  # the pre-pass has started
+    time.sleep(0.05)
+    return real(self, batch, row0)
+
+
+charges._PrePass.batch = slow
+from ldptransform.cli import main
+
+sys.argv = ["ldpt", *sys.argv[2:]]
+main()
+'''
+
+
+def test_sigterm_during_the_ledger_pre_pass(work: Work, ldpt, tmp_path: Path) -> None:
+    """SIGTERM while the ledger's pre-pass reads the input (made slow here: 50 ms a batch): the
+    one-line interrupted message and exit code 130 (it was killed by the signal, -15, without a
+    word), nothing at the destination, the ledger unchanged."""
+    import signal
+    import subprocess
+    import sys
+
+    from conftest import cli_env
+
+    _ledger_policy(work)
+    raw = work.dir / "survey.csv"
+    raw.write_bytes(DEMO_CSV.read_bytes())
+    ledger = work.dir / "ledger.sqlite3"
+    first = work.run(ldpt, raw, "--ledger", ledger, out=work.dir / "first.parquet")
+    assert first.returncode == 0, first.stderr
+    ledger_hash = sha256(ledger)
+    private_before = listing(work.private)
+    script, marker = tmp_path / "slow_prepass.py", tmp_path / "prepass-started"
+    script.write_text(SLOW_PREPASS, encoding="utf-8")
+    before = listing(work.dir)
+    proc = subprocess.Popen([sys.executable, str(script), str(marker), "privatize", str(raw), "--policy",
+                             str(work.policy), "--key", str(work.key), "--out", str(work.out), "--ledger", str(ledger),
+                             "--batch-rows", "100"],
+                            env=cli_env(work.private), stdin=subprocess.DEVNULL, stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True)
+    try:
+        deadline = time.monotonic() + 60
+        while not marker.exists():
+            assert proc.poll() is None, proc.communicate()
+            assert time.monotonic() < deadline, "the pre-pass did not start"
+            time.sleep(0.02)
+        proc.send_signal(signal.SIGTERM)
+        out, err = proc.communicate(timeout=30)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    assert proc.returncode == 130, (proc.returncode, err)
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and "interrupted" in lines[0] and "nothing was left" in lines[0], err
+    assert "Traceback" not in err + out
+    assert listing(work.dir) == before and partials(work.dir) == []
+    assert sha256(ledger) == ledger_hash
+    assert listing(work.private) == private_before

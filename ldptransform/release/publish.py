@@ -12,7 +12,7 @@ from typing import Any
 from .. import outputs
 from .._version import __version__
 from ..errors import OutputError
-from ..io import StagedFiles, check_dataset_destination, private_dir
+from ..io import StagedFiles, check_dataset_destination, private_dir, remove_stale_partials_in
 from ..keys import SecretKey
 from ..ledger import LedgerCharges
 from ..manifest import CAUTIONS, Manifest, Privacy, now_utc
@@ -25,6 +25,9 @@ from .options import ReleaseOptions
 from .parts import Written
 
 
+DIAGNOSTICS_SUFFIX = ".PRIVATE-diagnostics.json"
+
+
 def check_destinations(opts: ReleaseOptions) -> Path:
     """The destinations' folders exist (a dataset output: see ``io.check_dataset_destination``);
     returns the diagnostics file's path (by default a fresh name in the private folder:
@@ -34,7 +37,7 @@ def check_destinations(opts: ReleaseOptions) -> Path:
         check_dataset_destination(opts.out, opts.overwrite)
     path = opts.diagnostics_path
     if path is None:
-        path = private_dir() / f"{opts.out.stem}.{opts.nonce[:12]}.{secrets.token_hex(4)}.PRIVATE-diagnostics.json"
+        path = private_dir() / f"{opts.out.stem}.{opts.nonce[:12]}.{secrets.token_hex(4)}{DIAGNOSTICS_SUFFIX}"
     return path
 
 
@@ -50,15 +53,19 @@ def _locked(opts: ReleaseOptions, diag_path: Path) -> list[tuple[str, Path | Non
 
 
 def check_paths_apart(opts: ReleaseOptions, policy: LoadedPolicy, key: SecretKey, diag_path: Path) -> None:
-    """Refuse, whatever ``overwrite`` says, an output (extract, manifest, diagnostics) that is the
+    """Refuse, whatever ``overwrite`` says, a ledger that is the input, the policy or the key file,
+    and an output (extract, manifest, diagnostics) that is the
     input, the policy, the key file, the ledger or another of the outputs, or lies inside the input
     folder (paths compared after resolving symlinks); then an existing output without
     ``overwrite``; diagnostics in the folder of the extract or the manifest (what partners
     receive); and a destination another job is writing (``outputs.DestinationLock``)."""
-    known: list[tuple[str, Path | None]] = [
+    sources: list[tuple[str, Path | None]] = [
         (outputs.INPUT, opts.input if isinstance(opts.input, Path) else None),
         (outputs.POLICY, Path(policy.source) if Path(policy.source).is_file() else None),
-        (outputs.KEY, key.path), (outputs.LEDGER, opts.ledger_path)]
+        (outputs.KEY, key.path)]
+    # the ledger is written too (the release is recorded in it): never over what the release reads
+    outputs.check_apart([(outputs.LEDGER, opts.ledger_path)], sources)
+    known = [*sources, (outputs.LEDGER, opts.ledger_path)]
     dests = _outputs(opts, diag_path)
     outputs.check_apart(dests, known, folders=[(outputs.EXTRACT, opts.out)] if opts.dataset_out else [])
     outputs.check_new(dests[1:] if opts.dataset_out else dests, opts.overwrite)
@@ -73,6 +80,7 @@ def hold_destinations(staged: StagedFiles, opts: ReleaseOptions, diag_path: Path
     dests = _outputs(opts, diag_path)
     lock = outputs.DestinationLock(_locked(opts, diag_path)).acquire()
     staged.on_exit(lock.release)
+    remove_stale_partials_in(diag_path.parent, DIAGNOSTICS_SUFFIX)  # a killed run's diagnostics, whatever its name
     if opts.dataset_out:
         check_dataset_destination(opts.out, opts.overwrite)
     outputs.check_new(dests[1:] if opts.dataset_out else dests, opts.overwrite)
