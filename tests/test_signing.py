@@ -545,3 +545,28 @@ def test_library_errors_are_user_errors(release: dict[str, Path], tmp_path: Path
     assert signature_path(tmp_path / "m.manifest.json") == tmp_path / "m.manifest.json.sig"
     assert isinstance(SigningKey.generate().public_key().fingerprint(), str)
     assert check_signature(tmp_path / "absent.manifest.json", None)[0] is None
+
+
+def test_sign_signs_only_a_manifest(ldpt: Any, release: dict[str, Path], tmp_path: Path) -> None:
+    other = tmp_path / "notes.json"
+    other.write_text('{"format": "something else"}\n')
+    assert_user_error(ldpt("sign", other, "--signing-key", release["signing"]), [str(other), "manifest"])
+    assert_user_error(ldpt("sign", tmp_path / "absent.manifest.json", "--signing-key", release["signing"]),
+                      ["absent.manifest.json", "does not exist"])
+    assert listing(tmp_path) == ["notes.json"]
+
+
+def test_estimate_of_merged_extracts_needs_every_signature(ldpt: Any, release: dict[str, Path],
+                                                           files: dict[str, Path], tmp_path: Path) -> None:
+    second = tmp_path / "second"
+    second.mkdir()
+    privatize(release["raw"], parse_policy(_policy(), "signing.yaml"), SecretKey(FIXED_KEY_BYTES),
+              second / "extract.parquet", nonce="9c" * 16)
+    both = (files["extract"], second / "extract.parquet")
+    res = ldpt("estimate", *both, "--public-key", release["public"])
+    assert_user_error(res, [str(second / "extract.manifest.json"), "no signature file"])
+    assert res.stdout == ""
+    sign_manifest(second / "extract.manifest.json", load_signing_key(release["signing"]))
+    res = ldpt("estimate", *both, "--public-key", release["public"], "--format", "json")
+    assert res.returncode == 0, res.stderr
+    assert json.loads(res.stdout)["rows"] == 2 * ROWS
