@@ -1034,7 +1034,7 @@ def main() -> None:
         sys.exit(130)
     except Exception:  # a bug: show where, never locals (they may hold key material)
         sys.stderr.write("ldpt: internal error (a bug). Please report it with this traceback:\n")
-        traceback.print_exc(limit=20)
+        sys.stderr.write(terminal_safe(traceback.format_exc(limit=20), keep_layout=True))  # data-derived text too
         sys.exit(3)
 
 

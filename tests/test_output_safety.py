@@ -401,3 +401,17 @@ def test_in_process_runs_restore_the_sigterm_handler(ldpt) -> None:
     assert ldpt("--version").returncode == 0
     assert ldpt("estimate", "--formt").returncode == 2
     assert signal.getsignal(signal.SIGTERM) is before
+
+
+def test_internal_error_traceback_escapes_control_characters(monkeypatch: pytest.MonkeyPatch,
+                                                             capsys: pytest.CaptureFixture[str]) -> None:
+    def broken() -> None:
+        raise RuntimeError("a bug naming column 'x\x1b]0;owned\x07'")
+
+    monkeypatch.setattr(cli, "app", broken)
+    with pytest.raises(SystemExit) as exc:
+        cli.main()
+    assert exc.value.code == 3
+    err = capsys.readouterr().err
+    assert "internal error" in err and "Traceback" in err and "x\\x1b]0;owned\\x07" in err
+    assert CONTROL.search(err) is None
