@@ -489,6 +489,8 @@ def read_signature(path: Path) -> tuple[bytes, dict[str, Any]]:
     """The 64-byte signature of a signature file and its other fields; a SignatureFileError
     (exit 2) for a file that is unreadable, not strict JSON, or not of this tool's form."""
     try:
+        if not stat.S_ISREG(path.stat().st_mode):  # a folder, a pipe or a device is never read (nor waited on)
+            raise _garbled(path, "it is not a regular file")
         with open(path, "rb") as f:
             data = f.read(_MAX_SIGNATURE_FILE + 1)
     except OSError as err:

@@ -508,7 +508,7 @@ def test_bad_public_key_files(ldpt: Any, release: dict[str, Path], files: dict[s
 
 
 @pytest.mark.parametrize("kind", ["not json", "duplicate field", "other format", "short signature", "not base64",
-                                  "other algorithm", "binary", "huge", "nan"])
+                                  "other algorithm", "binary", "huge", "nan", "deep", "folder", "pipe"])
 def test_garbled_signature_files_are_user_errors(ldpt: Any, release: dict[str, Path], files: dict[str, Path],
                                                  kind: str) -> None:
     good = files["sig"].read_text()
@@ -522,15 +522,22 @@ def test_garbled_signature_files_are_user_errors(ldpt: Any, release: dict[str, P
         "other algorithm": json.dumps({**doc, "algorithm": "rsa-pss"}),
         "huge": json.dumps({**doc, "padding": "x" * 100_000}),
         "nan": good.replace('"signed_bytes": ', '"signed_bytes": NaN, "x": '),
-        "binary": None,
+        "deep": "[" * 30_000 + "]" * 30_000,
+        "binary": None, "folder": None, "pipe": None,
     }[kind]
-    if text is None:
+    if kind == "folder":
+        files["sig"].unlink()
+        files["sig"].mkdir()
+    elif kind == "pipe":  # never read: reading a pipe would wait for a writer forever
+        files["sig"].unlink()
+        os.mkfifo(files["sig"])
+    elif text is None:
         files["sig"].write_bytes(b"\xff\xfe\x00\x01")
     else:
         files["sig"].write_text(text)
     for cmd in ("validate", "estimate"):
         res = ldpt(cmd, files["extract"], "--public-key", release["public"])
-        assert_user_error(res, [str(files["sig"]), "ldpt sign" if kind != "binary" else "signature"])
+        assert_user_error(res, [str(files["sig"]), "ldpt sign"])
         assert res.stdout == ""
     with pytest.raises(SignatureFileError):
         check_signature(files["manifest"], release["public"])
