@@ -221,7 +221,9 @@ def _user_errors(flags: dict[str, str] | None = None) -> Iterator[None]:
     try:
         yield
     except LdptError as err:
-        err_console.print(f"[bold red]Error:[/] {_markup_escape(one_paragraph(err.message_for(flags)))}",
+        # options by their flags, never as a Python call (the demo also passes --nonce on to the release)
+        named = err.message_for(flags if flags is not None else _PRIVATIZE_FLAGS)
+        err_console.print(f"[bold red]Error:[/] {_markup_escape(one_paragraph(named))}",
                           markup=True, highlight=False)
         raise typer.Exit(code=err.exit_code) from None
     except OSError as err:

@@ -415,3 +415,9 @@ def test_internal_error_traceback_escapes_control_characters(monkeypatch: pytest
     err = capsys.readouterr().err
     assert "internal error" in err and "Traceback" in err and "x\\x1b]0;owned\\x07" in err
     assert CONTROL.search(err) is None
+
+
+def test_option_errors_name_flags_never_a_python_call(ldpt, tmp_path: Path) -> None:
+    res = ldpt("demo", "--dir", tmp_path / "demo", "--nonce", "zz")
+    text = assert_user_error(res, ["--nonce", "32 hex"])
+    assert "privatize(" not in text and "nonce=" not in text
