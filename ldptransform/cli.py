@@ -188,6 +188,8 @@ _ERRNO_WORDS: dict[int, tuple[str, str]] = {
     errno.ENXIO: ("no such device", "check the path"),
     errno.ENODEV: ("no such device", "check the path"),
     errno.ENOMEM: ("out of memory", "use a smaller --batch-rows or free memory"),
+    errno.EPIPE: ("the output was closed before everything was written (the program reading it stopped)",
+                  "let it read to the end, or write to a file (--out where the command has it)"),
 }
 _ERRNO_OF_TYPE: tuple[tuple[type[OSError], int], ...] = (
     (FileNotFoundError, errno.ENOENT), (IsADirectoryError, errno.EISDIR), (NotADirectoryError, errno.ENOTDIR),

@@ -338,8 +338,9 @@ def test_help_and_version_still_work(ldpt) -> None:
     (OSError(errno.ENOSPC, "No space left on device", "/out/.extract.csv.ldpt-partial-12-ab12cd34"),
      ["disk is full", "/out/extract.csv"]),
     (OSError("Expected file path, but /root/ is a directory [errno 21]"), ["/root/ is a directory"]),
+    (BrokenPipeError(errno.EPIPE, "Broken pipe"), ["output was closed"]),
 ], ids=["enospc", "enospc-library", "eacces", "erofs", "enoent", "enoent-library", "eisdir", "emfile",
-        "enametoolong", "partial-file", "no-errno"])
+        "enametoolong", "partial-file", "no-errno", "epipe"])
 def test_os_errors_in_plain_words(err: OSError, words: list[str]) -> None:
     text = cli.os_error_message(err)
     for w in words:
