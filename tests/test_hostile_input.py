@@ -92,6 +92,27 @@ def test_parquet_column_of_several_values_per_cell(kind: str, column: str, work:
     assert "one value per cell" in text
 
 
+def test_dictionary_of_lists_is_refused_too(tmp_path: Path) -> None:
+    """Parquet cannot store a dictionary of lists, but a source that has one (an Arrow table in
+    memory) is refused the same way, before any row is read."""
+    from types import SimpleNamespace
+
+    from ldptransform.errors import DataError
+    from ldptransform.policy import parse_policy
+    from ldptransform.release.columns import plan_columns
+    from ldptransform.release.source import check_input_types
+
+    lp = parse_policy(survey_policy(), "survey_policy.yaml")
+    schema = _survey_table().schema
+    schema = schema.set(schema.get_field_index("role"), pa.field("role", pa.dictionary(pa.int32(),
+                                                                                     pa.list_(pa.string()))))
+    src = SimpleNamespace(schema=schema, format="parquet", location="memory-table")
+    plans = plan_columns(lp, schema.names, "memory-table")
+    opts = SimpleNamespace(out=tmp_path / "extract.parquet", fmt_out="parquet", input=None)
+    with pytest.raises(DataError, match=r"categorical column 'role' as dictionary<values=list"):
+        check_input_types(src, plans, lp, opts)  # type: ignore[arg-type]
+
+
 def test_public_list_column_in_a_csv_extract(work: Work, ldpt) -> None:
     """A public column stored as lists cannot go into a CSV extract: refused before anything is
     written, naming the column and its type, suggesting Parquet or dropping it."""
@@ -126,6 +147,36 @@ def test_parquet_text_that_is_not_utf8(stored: str, work: Work, ldpt) -> None:
     before = listing(work.dir)
     res = work.run(ldpt, raw, "--batch-rows", "1000")
     work.refused(res, ["'site'", "4321", "encoding", "UTF-8"], before, forbidden=["Quill"], inputs={raw: sha256(raw)})
+
+
+@pytest.mark.parametrize("case", ["public to parquet", "public to csv", "subject, one row per person",
+                                  "subject, ledger"])
+def test_parquet_text_that_is_not_utf8_in_a_copied_or_subject_column(case: str, work: Work, ldpt) -> None:
+    """A public column (copied into the extract as it is) or the subject column holding bytes that
+    are not UTF-8: refused naming the column and the row, never copied into an extract."""
+    table = _survey_table()
+    column = "survey_wave" if case.startswith("public") else "staff_id"
+    cells = [s.encode() for s in table[column].to_pylist()]
+    cells[70] = SECRET_BYTES
+    table = _replace(table, column, pa.array(cells, pa.binary()).view(pa.string()))
+    raw = work.dir / "survey.parquet"
+    pq.write_table(table, raw)
+    extra: list[Any] = []
+    if case.startswith("subject"):
+        pol = survey_policy()
+        pol["subject_key"] = "staff_id"
+        del pol["columns"]["staff_id"]
+        if case.endswith("ledger"):
+            pol["budget"]["lifetime_epsilon"] = 50.0
+            extra = ["--ledger", work.dir / "ledger.sqlite3"]
+        else:
+            pol["output"] = {"one_row_per_person": True}
+        write_policy(work.policy, pol)
+    out = work.dir / ("extract.csv" if case.endswith("csv") else "extract.parquet")
+    before = listing(work.dir)
+    res = work.run(ldpt, raw, *extra, out=out)
+    work.refused(res, [repr(column), "data row 71", "encoding"], before, forbidden=["Quill"],
+                 inputs={raw: sha256(raw)})
 
 
 # -- CSV input that misleads the reader -----------------------------------------------------

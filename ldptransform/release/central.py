@@ -85,10 +85,13 @@ def check_one_row_per_person(src: Any, policy: LoadedPolicy, batch_rows: int, lo
         return
     import pyarrow.compute as pc
 
+    from .encode import _as_string_array
+
     digests = []
+    row0 = 0
     for batch in src.batches([subject], batch_rows):
-        col = batch.column(subject)
-        text = pc.cast(col, "string") if not (col.type == "string" or col.type == "large_string") else col
+        text = _as_string_array(batch.column(subject), subject, row0)  # not UTF-8: a DataError naming the row
+        row0 += batch.num_rows
         # pandas' vectorized 64-bit hash of each value (8 bytes a row in memory): a false repeat has
         # probability about n^2 / 2^65
         digests.append(pd.util.hash_array(np.asarray(pc.fill_null(text, "\x00<missing>").to_numpy(

@@ -47,6 +47,21 @@ def _as_string_array(values: pa.Array, name: str | None = None, row0: int = 0) -
         raise
 
 
+def check_text(values: pa.Array, name: str, row0: int) -> None:
+    """A column copied as it is (a public column): text that is not valid UTF-8 is a DataError
+    naming the column and its first such row (it would break every reader of the extract)."""
+    if isinstance(values, pa.ChunkedArray):
+        values = values.combine_chunks()
+    t = values.type.value_type if pa.types.is_dictionary(values.type) else values.type
+    if not (pa.types.is_string(t) or pa.types.is_large_string(t)):
+        return
+    if pa.types.is_dictionary(values.type):
+        if _utf8_ok(values.dictionary):
+            return
+        values = values.dictionary_decode()
+    _check_utf8(values, name, row0)
+
+
 def _utf8_ok(values: pa.Array) -> bool:
     try:
         if pa.types.is_string(values.type) or pa.types.is_large_string(values.type):
@@ -72,8 +87,8 @@ def _check_utf8(values: pa.Array, name: str, row0: int) -> None:
             hi = mid
     raise DataError(f"column {name!r} holds text that is not valid UTF-8 (an encoding problem), the first at data row "
                     f"{row0 + lo + 1}. Re-encode that column's text as UTF-8 in the input (for example decode it "
-                    "from the encoding it was written in, such as Latin-1, and write it again as text), or drop the "
-                    "column in the policy.")
+                    "from the encoding it was written in, such as Latin-1, and write it again as text) and run the "
+                    "release again.")
 
 
 def _label_codes(strings: pa.Array, labels: list[str]) -> tuple[np.ndarray, np.ndarray]:

@@ -22,7 +22,7 @@ import pyarrow.compute as pc
 
 from ..random.bits import BitSource, KeyedStream
 from ..random.variates import choose_m_of_d
-from .encode import encode
+from .encode import check_text, encode
 from .memo import memo_round, rerandomize_rows, subject_bytes
 
 if TYPE_CHECKING:
@@ -92,6 +92,7 @@ def privatize_batch(batch: pa.RecordBatch, row0: int, plans: list[ColumnPlan], s
         values = batch.column(p.rc.name)
         if p.rc.type == "public":
             values = rebuild_dictionary(values)
+            check_text(values, p.rc.name, row0)
             arrays.append(values if values.type == p.fields[0].type else pc.cast(values, p.fields[0].type))
             continue
         out = privatize_column(p, values, row0, subjects, None if held is None else held.get(p.rc.name))
