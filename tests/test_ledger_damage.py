@@ -442,3 +442,14 @@ def test_a_link_to_nowhere_is_not_followed_to_make_a_ledger(tmp_path: Path) -> N
     with pytest.raises(LedgerError, match="symbolic link to a file that does not exist"):
         Ledger.open(link)
     assert listing(tmp_path) == ["ledger.sqlite3"] and os.path.islink(link)
+
+
+def test_release_meta_with_missing_or_unknown_fields_is_named_in_plain_words(tmp_path: Path) -> None:
+    h = subject_hashes(KEY, pa.array(["staff-00001"]))
+    with Ledger.open(tmp_path / "ledger.sqlite3") as led:
+        with pytest.raises(LedgerError) as err:
+            led.record_release({"policy_sha256": "a" * 64, "nonce": "b" * 32, "colums": {"site": 1.0}}, h, 1.0)
+        assert led.show()["releases"] == 0
+    text = str(err.value)
+    assert "unknown field(s) colums; missing field(s) extract_sha256, columns" in text
+    assert "__init__" not in text and "keyword argument" not in text

@@ -277,11 +277,16 @@ def _release_row(meta: ReleaseMeta | Mapping[str, Any], lifetime_epsilon: float 
                  ) -> tuple[dict[str, Any], dict[str, dict[str, Any]]]:
     """A release's row (all but id, subjects_charged and state digest), checked; and its columns."""
     if not isinstance(meta, ReleaseMeta):
-        try:
-            meta = ReleaseMeta(**dict(meta))
-        except TypeError as err:
-            raise LedgerError(f"release meta: {err}. Give policy_sha256, extract_sha256, nonce, columns "
-                              "(and optionally time).") from None
+        given = {str(k): v for k, v in dict(meta).items()}
+        needed = ("policy_sha256", "extract_sha256", "nonce", "columns")
+        unknown = sorted(set(given) - {*needed, "time"})
+        missing = [n for n in needed if n not in given]
+        if unknown or missing:
+            wrong = ([f"unknown field(s) {', '.join(unknown)}"] if unknown else []) + (
+                [f"missing field(s) {', '.join(missing)}"] if missing else [])
+            raise LedgerError(f"release meta: {'; '.join(wrong)}. Give policy_sha256, extract_sha256, nonce, "
+                              "columns (and optionally time).")
+        meta = ReleaseMeta(**given)
     cols = meta.normalized_columns()
     row = {"policy_sha256": _check_sha(meta.policy_sha256, "policy_sha256"),
            "extract_sha256": _check_sha(meta.extract_sha256, "extract_sha256"),
