@@ -17,6 +17,7 @@ from typing import Any, Final, Literal
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
 from .errors import ManifestError
+from .safeload import LoadProblem, load_json
 
 FORMAT: Final = "ldptransform-manifest"
 FORMAT_VERSION = 1
@@ -140,40 +141,111 @@ def default_manifest_path(extract: Path) -> Path:
     return extract.with_name(extract.stem + ".manifest.json")
 
 
-def load_manifest(path: Path) -> Manifest:
-    path = Path(path)
+class DamagedManifest(ManifestError):
+    """The manifest file was read, but its content is not a valid manifest (syntax, strict JSON,
+    a missing or mistyped field, a mechanism spec that cannot be rebuilt).  ``validate`` reports
+    it as a failed check; every other command stops with it (exit 2)."""
+
+
+_AGAIN = "Ask the data steward for an intact copy."
+
+
+def _field_path(loc: tuple[Any, ...]) -> str:
+    """A pydantic location as the field path of the file: columns[1].mechanism.epsilon."""
+    out = ""
+    for part in loc:
+        out += f"[{part}]" if isinstance(part, int) else (f".{part}" if out else str(part))
+    return out or "top level"
+
+
+def _column_of(data: Any, loc: tuple[Any, ...]) -> str:
+    """`` (column 'name')`` for a location inside a column entry, if the entry names one."""
+    if len(loc) >= 2 and loc[0] == "columns" and isinstance(loc[1], int) and isinstance(data, dict):
+        cols = data.get("columns")
+        if isinstance(cols, list) and loc[1] < len(cols) and isinstance(cols[loc[1]], dict):
+            name = cols[loc[1]].get("name")
+            if isinstance(name, str):
+                return f" (column {name!r})"
+    return ""
+
+
+def _read_json(path: Path) -> Any:
     try:
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError:
         raise ManifestError(f"manifest {path} does not exist. Give its path with --manifest (by default it is "
                             "the extract's name with .manifest.json in place of the extension).") from None
-    except (OSError, UnicodeDecodeError) as err:
-        raise ManifestError(f"manifest {path} cannot be read ({err}).") from None
+    except UnicodeDecodeError as err:
+        raise DamagedManifest(f"manifest {path} is not UTF-8 text (the byte at offset {err.start} is not valid "
+                              f"UTF-8), so it is not a manifest. {_AGAIN}") from None
+    except OSError as err:
+        raise ManifestError(f"manifest {path} cannot be read ({err.strerror or 'read error'}). Check the path "
+                            "given to --manifest and its permissions.") from None
     try:
-        data = json.loads(text)
+        return load_json(text)
+    except LoadProblem as err:
+        where = f" (line {err.line})" if err.line is not None else ""
+        raise DamagedManifest(f"manifest {path}{where}: {err.text}. {_AGAIN}") from None
     except json.JSONDecodeError as err:
-        raise ManifestError(f"manifest {path} is not valid JSON (line {err.lineno}, column {err.colno}: "
-                            f"{err.msg}). Ask the data steward for an intact copy.") from None
+        raise DamagedManifest(f"manifest {path} is not valid JSON (line {err.lineno}, column {err.colno}: "
+                              f"{err.msg}). {_AGAIN}") from None
+
+
+def load_manifest(path: Path) -> Manifest:
+    """Read and check a manifest: strict JSON (safeload.load_json), the model, and every column's
+    mechanism spec rebuilt (``DamagedManifest`` naming the file and the field path otherwise)."""
+    path = Path(path)
+    data = _read_json(path)
     if not isinstance(data, dict) or data.get("format") != FORMAT:
-        raise ManifestError(f"{path} is not an ldptransform manifest (its 'format' field is not {FORMAT!r}).")
+        raise DamagedManifest(f"{path} is not an ldptransform manifest (its 'format' field is not {FORMAT!r}). "
+                              "Check the path given to --manifest.")
     if data.get("format_version") != FORMAT_VERSION:
-        raise ManifestError(f"manifest {path} has format_version {data.get('format_version')!r}; this ldpt reads "
-                            f"version {FORMAT_VERSION}. Use a matching ldptransform version.")
+        raise DamagedManifest(f"manifest {path} has format_version {data.get('format_version')!r}; this ldpt reads "
+                              f"version {FORMAT_VERSION}. Use a matching ldptransform version.")
     try:
         m = Manifest.model_validate(data)
     except ValidationError as err:
         first = err.errors()[0]
-        loc = ".".join(str(p) for p in first.get("loc", ()))
-        raise ManifestError(f"manifest {path} is malformed: field '{loc}': {first.get('msg')} "
-                            f"({err.error_count()} problem(s) in all). Ask the data steward for an intact "
-                            "copy.") from None
+        loc = tuple(first.get("loc", ()))
+        what = "is missing" if first.get("type") == "missing" else f"{first.get('msg')}"
+        raise DamagedManifest(f"manifest {path} is malformed: field '{_field_path(loc)}'{_column_of(data, loc)} "
+                              f"{what} ({err.error_count()} problem(s) in all). {_AGAIN}") from None
     _check_finite(data, path)
+    for i, c in enumerate(m.columns):
+        if c.mechanism is not None:
+            _check_spec(path, i, c)
     return m
+
+
+def _check_spec(path: Path, i: int, c: ColumnEntry) -> None:
+    """A column's mechanism spec: a positive finite epsilon, and rebuildable (mechanisms.build)."""
+    from . import mechanisms as mech
+    from .errors import LdptError
+
+    spec = c.mechanism or {}
+    where = f"manifest {path} is malformed: field 'columns[{i}].mechanism"
+    eps = spec.get("epsilon")
+    if not isinstance(spec.get("mechanism"), str):
+        raise DamagedManifest(f"{where}.mechanism' (column {c.name!r}) is missing or not a name. {_AGAIN}")
+    if "epsilon" not in spec:
+        raise DamagedManifest(f"{where}.epsilon' (column {c.name!r}) is missing. {_AGAIN}")
+    if isinstance(eps, bool) or not isinstance(eps, (int, float)) or not math.isfinite(eps) or eps <= 0:
+        raise DamagedManifest(f"{where}.epsilon' (column {c.name!r}) must be a positive number. {_AGAIN}")
+    try:
+        mech.build(spec)
+    except KeyError as err:
+        raise DamagedManifest(f"{where}.{err.args[0] if err.args else ''}' (column {c.name!r}) is missing. "
+                              f"{_AGAIN}") from None
+    except LdptError as err:
+        raise DamagedManifest(f"{where}' (column {c.name!r}): the spec cannot be rebuilt: {err}. {_AGAIN}") from None
+    except (TypeError, ValueError, IndexError, ArithmeticError, AttributeError):
+        raise DamagedManifest(f"{where}' (column {c.name!r}): the spec cannot be rebuilt (a field of it has the "
+                              f"wrong type or value). {_AGAIN}") from None
 
 
 def _check_finite(obj: Any, path: Path) -> None:
     if isinstance(obj, float) and not math.isfinite(obj):
-        raise ManifestError(f"manifest {path} contains a non-finite number.")
+        raise DamagedManifest(f"manifest {path} contains a non-finite number. {_AGAIN}")
     if isinstance(obj, dict):
         for v in obj.values():
             _check_finite(v, path)

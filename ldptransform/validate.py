@@ -31,7 +31,7 @@ from .estimate import Analyses, accumulate, report, z_value
 from .integrity import check_extract
 from .io import TableSource
 from .keys import SecretKey
-from .manifest import Manifest, default_manifest_path, load_manifest
+from .manifest import CAUTIONS, DamagedManifest, Manifest, default_manifest_path, load_manifest
 from .policy import EPS_TOLERANCE, parse_policy
 from .release import (
     encode_binned,
@@ -192,10 +192,6 @@ def _check_privacy(manifest: Manifest, rep: _Checks) -> None:
     _policy_issues(manifest, issues)
     rep.add("privacy budget", not issues,
             f"every channel meets its eps exactly; {summary}" if not issues else "; ".join(issues))
-    public = manifest.privacy.public_columns
-    if public:
-        rep.add("public columns", None, f"{', '.join(public)} copied in the clear: NOT protected by local DP "
-                "(they may identify people, alone or linked to other data)")
 
 
 @dataclass(frozen=True)
@@ -265,16 +261,24 @@ def validate(extract: Path | str, manifest_path: Path | str | None = None, *, ra
     _check_calibration_options(raw, quantiles, ranges)
     extract = Path(extract)
     mpath = Path(manifest_path) if manifest_path else default_manifest_path(extract)
-    manifest = load_manifest(mpath)
+    rep = _Checks(str(extract), str(mpath))
+    try:
+        manifest = load_manifest(mpath)
+    except DamagedManifest as err:  # the manifest itself is what failed: a failed check (exit 1)
+        rep.add("manifest", False, str(err))
+        _check_origin(rep, raw is not None)
+        return rep.report()
     _check_ranges(manifest, ranges or [])
     text = mpath.read_text(encoding="utf-8")
-    rep = _Checks(str(extract), str(mpath))
     rep.add("signature", *check_signature(mpath, public_key))
     if not extract.exists():
         rep.add("extract present", False, f"{extract} does not exist")
+        _check_origin(rep, raw is not None)
         return rep.report()
     _check_hash(extract, manifest, rep)
     _check_privacy(manifest, rep)
+    _check_public(extract, manifest, rep)
+    _check_cautions(manifest, rep)
     _check_secrets(manifest, text, key, rep)
 
     stats: dict[str, Any] | None = None
@@ -310,7 +314,82 @@ def validate(extract: Path | str, manifest_path: Path | str | None = None, *, ra
         _reproduce(Path(raw), extract, manifest, key, rep)
         if stats is not None:
             rep.calibration = _calibrate(Path(raw), manifest, stats, rows, confidence, rep, quantiles, ranges)
+    _check_origin(rep, raw is not None)
     return rep.report()
+
+
+PARTNER_SIDE_SCOPE = (
+    "not proved by these checks: without the raw data and the key they test only that the extract and the "
+    "manifest are consistent with each other (hashes, sizes, columns, mechanism specs, budget arithmetic, output "
+    "alphabet, fit). Anyone can write such a pair, so a consistent forgery of the eps, the labels or the values "
+    "passes them. Only the steward side (validate with --raw and --key: the extract re-derives bit for bit) or a "
+    "signature verified with the steward's public key proves that the files are the steward's")
+
+
+def _check_origin(rep: _Checks, steward: bool) -> None:
+    """The "origin" check: what the checks made prove about where the files come from (pass only
+    when the re-derivation or a verified signature, with the extract matching the manifest, proves it)."""
+    status = {c.name: c.ok for c in rep.checks}
+    if status.get("reproduced") is True:
+        rep.add("origin", True, "proved on the steward side: the extract re-derives bit for bit from the raw data, "
+                "the key and the manifest's nonce, so these are the steward's release of this raw data")
+    elif status.get("signature") is True and status.get("extract hash") is True:
+        rep.add("origin", True, "the manifest's signature verifies with the steward's public key and the extract "
+                "matches the manifest's hashes: these are the files the steward signed (the statistical checks "
+                "still test only their consistency)")
+    else:
+        rep.add("origin", None, PARTNER_SIDE_SCOPE + ("; here the re-derivation did not prove it" if steward else ""))
+
+
+def _check_public(extract: Path, manifest: Manifest, rep: _Checks) -> None:
+    """The columns released in the clear: the ones privacy.public_columns lists must be those the
+    manifest's columns describe as public, those the embedded policy releases as public, and those
+    of the extract that no privatized column's outputs account for."""
+    listed = list(manifest.privacy.public_columns)
+    views = {"the manifest's column entries": [c.name for c in manifest.columns if c.type == "public"]}
+    try:
+        lp = parse_policy(manifest.policy, "embedded in the manifest")
+        views["the embedded policy"] = [rc.name for rc in lp.columns if rc.type == "public"
+                                        and rc.name != lp.policy.subject_key]
+    except LdptError:
+        pass  # the privacy budget check reports an invalid embedded policy
+    try:
+        privatized = {o.name for c in manifest.columns if c.type != "public" for o in c.outputs}
+        views["the extract's columns outside every privatized column's outputs"] = [
+            n for n in TableSource(extract).column_names if n not in privatized]
+    except LdptError:
+        pass  # the columns check reports an unreadable extract
+
+    def names(xs: list[str]) -> str:
+        return ", ".join(map(repr, sorted(xs))) if xs else "none"
+
+    problems = [f"privacy.public_columns lists {names(listed)}, {where}: {names(xs)}"
+                for where, xs in views.items() if sorted(set(xs)) != sorted(set(listed))]
+    if len(set(listed)) != len(listed):
+        problems.append("privacy.public_columns lists a column twice")
+    if problems:
+        rep.add("public columns", False, "the columns released in the clear are not the ones the manifest announces: "
+                + "; ".join(problems) + ". A column in the clear is NOT protected by local DP; the manifest was "
+                "changed or is not this extract's")
+    elif listed:
+        rep.add("public columns", None, f"{', '.join(listed)} copied in the clear: NOT protected by local DP "
+                "(they may identify people, alone or linked to other data)")
+
+
+def _check_cautions(manifest: Manifest, rep: _Checks) -> None:
+    """Every caution the tool writes into a manifest (manifest.CAUTIONS, as release/publish.py
+    writes them) is there, word for word."""
+    missing = [c for c in CAUTIONS if c not in manifest.cautions]
+    extra = [c for c in manifest.cautions if c not in CAUTIONS]
+    if missing:
+        rep.add("cautions", False, f"{len(missing)} of the {len(CAUTIONS)} cautions the tool writes into every "
+                f"manifest are missing or changed (the first: \"{missing[0][:70]}...\"): the manifest was edited; "
+                "ask the data steward for the original")
+    elif extra:
+        rep.add("cautions", None, f"the {len(CAUTIONS)} standard cautions are there, and {len(extra)} more that the "
+                "tool does not write (added after the release)")
+    else:
+        rep.add("cautions", True, f"the manifest carries the {len(CAUTIONS)} cautions the tool writes")
 
 
 def _check_calibration_options(raw: Path | str | None, quantiles: list[float] | None,
@@ -350,7 +429,11 @@ def _check_quality(manifest: Manifest, rows: int, rep: _Checks) -> None:
     from .plan import column_statistics
     from .policy import ResolvedColumn
 
-    lp = parse_policy(manifest.policy, "embedded in the manifest")
+    try:
+        lp = parse_policy(manifest.policy, "embedded in the manifest")
+    except LdptError:
+        rep.add("quality", None, "not checked: the embedded policy is invalid (see the privacy budget check)")
+        return
     default = lp.policy.quality
     configs = lp.by_name
     rate = (manifest.privacy.reported_columns or 0) / manifest.privacy.privatized_columns \

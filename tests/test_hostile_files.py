@@ -179,3 +179,196 @@ def test_json_policy_that_is_not_utf8_names_the_encoding(tmp_path: Path, ldpt: A
     path.write_bytes(json.dumps(survey_policy()).replace("Riverside", "Rivers\xefde").encode("latin-1"))
     msg = assert_user_error(ldpt("policy", "check", path), [str(path), "UTF-8"])
     assert "codec" not in msg
+
+
+# -- manifests: damaged, forged, or edited ---------------------------------------------------------
+
+@pytest.fixture(scope="module")
+def released(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
+    """One release of the survey under the tests' policy (fixed key and nonce; a public column)."""
+    from conftest import DEMO_CSV, FIXED_KEY_BYTES, FIXED_NONCE, module_private_dir, write_fixed_key
+
+    from ldptransform import parse_policy, privatize
+    from ldptransform.keys import SecretKey
+
+    d = tmp_path_factory.mktemp("hostile-release")
+    out = d / "extract.parquet"
+    with module_private_dir(tmp_path_factory):
+        privatize(DEMO_CSV, parse_policy(survey_policy(), "survey.yaml"), SecretKey(FIXED_KEY_BYTES), out,
+                  nonce=FIXED_NONCE)
+    return {"out": out, "manifest": out.with_name("extract.manifest.json"), "raw": DEMO_CSV,
+            "key": write_fixed_key(d / "release.key")}
+
+
+def _copy_with_manifest(released: dict[str, Path], tmp_path: Path, edit: Any) -> tuple[Path, Path]:
+    """The extract beside a manifest changed by ``edit`` (a function of the parsed manifest, or the
+    manifest's new text)."""
+    out = tmp_path / "extract.parquet"
+    out.write_bytes(released["out"].read_bytes())
+    mpath = tmp_path / "extract.manifest.json"
+    if callable(edit):
+        m = json.loads(released["manifest"].read_text(encoding="utf-8"))
+        edit(m)
+        mpath.write_text(json.dumps(m, indent=2), encoding="utf-8")
+    else:
+        mpath.write_text(edit, encoding="utf-8")
+    return out, mpath
+
+
+def _role(m: dict[str, Any]) -> tuple[int, dict[str, Any]]:
+    i = next(i for i, c in enumerate(m["columns"]) if c["name"] == "role")
+    return i, m["columns"][i]
+
+
+def _eps_text(m: dict[str, Any]) -> None:
+    _role(m)[1]["mechanism"]["epsilon"] = "abc"
+
+
+def _no_eps(m: dict[str, Any]) -> None:
+    del _role(m)[1]["mechanism"]["epsilon"]
+
+
+def _no_rows(m: dict[str, Any]) -> None:
+    del m["rows"]
+
+
+def _no_name(m: dict[str, Any]) -> None:
+    del _role(m)[1]["mechanism"]["mechanism"]
+
+
+MANIFEST_CASES: dict[str, tuple[Any, list[str]]] = {
+    "epsilon not a number": (_eps_text, ["columns[", "].mechanism.epsilon", "'role'", "positive number"]),
+    "epsilon missing": (_no_eps, ["].mechanism.epsilon", "'role'", "missing"]),
+    "rows missing": (_no_rows, ["'rows'", "missing"]),
+    "mechanism name missing": (_no_name, ["].mechanism.mechanism", "'role'", "missing"]),
+    "absurd nesting": (None, ["nested more than 64 deep"]),   # text edits: see _damaged
+    "duplicate key": (None, ["'rows'", "twice"]),
+}
+
+
+def _damaged(released: dict[str, Path], tmp_path: Path, case: str) -> tuple[Path, Path]:
+    edit, _ = MANIFEST_CASES[case]
+    if case == "absurd nesting":
+        text = released["manifest"].read_text(encoding="utf-8")
+        text = text.replace('"categories": [', '"categories": [' + "[" * DEEP + "]" * DEEP + ", ", 1)
+        return _copy_with_manifest(released, tmp_path, text)
+    if case == "duplicate key":
+        text = released["manifest"].read_text(encoding="utf-8").replace('"rows": ', '"rows": 5,\n  "rows": ', 1)
+        return _copy_with_manifest(released, tmp_path, text)
+    return _copy_with_manifest(released, tmp_path, edit)
+
+
+@pytest.mark.parametrize("case", list(MANIFEST_CASES))
+def test_estimate_refuses_a_damaged_manifest(released: dict[str, Path], tmp_path: Path, ldpt: Any,
+                                              case: str) -> None:
+    """Before: a traceback (exit 3) for a non-numeric or missing epsilon and for deep nesting, and a
+    duplicate 'rows' read silently."""
+    out, mpath = _damaged(released, tmp_path, case)
+    assert_user_error(ldpt("estimate", out), [str(mpath), *MANIFEST_CASES[case][1]])
+
+
+@pytest.mark.parametrize("case", list(MANIFEST_CASES))
+def test_validate_fails_a_damaged_manifest_as_a_check(released: dict[str, Path], tmp_path: Path, ldpt: Any,
+                                                      case: str) -> None:
+    out, mpath = _damaged(released, tmp_path, case)
+    res = ldpt("validate", out, "--format", "json")
+    assert res.returncode == 1, res.stdout + res.stderr
+    assert "Traceback" not in res.stderr and res.stderr == ""
+    report = json.loads(res.stdout)
+    assert set(report) == {"extract", "manifest", "ok", "checks"} and report["ok"] is False
+    check = {c["check"]: c for c in report["checks"]}["manifest"]
+    assert check["status"] == "fail" and str(mpath) in check["detail"]
+    for name in MANIFEST_CASES[case][1]:
+        assert name in check["detail"], check["detail"]
+    table = ldpt("validate", out)
+    assert table.returncode == 1 and "FAILED" in table.stdout and "Traceback" not in table.stderr
+
+
+def _drop_public(m: dict[str, Any]) -> None:
+    m["privacy"]["public_columns"] = []
+
+
+def _drop_public_everywhere(m: dict[str, Any]) -> None:
+    """The column left out of the public list and of the column entries (its bytes still in the extract)."""
+    m["privacy"]["public_columns"] = []
+    m["columns"] = [c for c in m["columns"] if c["type"] != "public"]
+
+
+def _no_cautions(m: dict[str, Any]) -> None:
+    m["cautions"] = []
+
+
+def _one_caution_changed(m: dict[str, Any]) -> None:
+    m["cautions"][1] = "Every column of this extract is protected."
+
+
+EDITS: dict[str, tuple[Any, str, list[str]]] = {
+    "public column unlisted": (_drop_public, "public columns", ["survey_wave", "embedded policy"]),
+    "public column gone from every list": (_drop_public_everywhere, "public columns", ["survey_wave", "extract"]),
+    "cautions emptied": (_no_cautions, "cautions", ["4 of the 4 cautions"]),
+    "a caution reworded": (_one_caution_changed, "cautions", ["1 of the 4 cautions"]),
+}
+
+
+@pytest.mark.parametrize("side", ["partner", "steward"])
+@pytest.mark.parametrize("case", list(EDITS))
+def test_validate_catches_an_edited_public_list_or_cautions(released: dict[str, Path], tmp_path: Path, ldpt: Any,
+                                                            case: str, side: str) -> None:
+    """Before: both sides passed (the extract's bytes are untouched, so the hashes match)."""
+    edit, name, words = EDITS[case]
+    out, _ = _copy_with_manifest(released, tmp_path, edit)
+    steward = ["--raw", released["raw"], "--key", released["key"]] if side == "steward" else []
+    res = ldpt("validate", out, *steward, "--format", "json")
+    assert res.returncode == 1, res.stdout + res.stderr
+    check = {c["check"]: c for c in json.loads(res.stdout)["checks"]}[name]
+    assert check["status"] == "fail", check
+    for w in words:
+        assert w in check["detail"], check["detail"]
+
+
+def test_an_intact_release_passes_the_public_and_cautions_checks(released: dict[str, Path], ldpt: Any) -> None:
+    res = ldpt("validate", released["out"], "--format", "json")
+    assert res.returncode == 0, res.stdout + res.stderr
+    checks = {c["check"]: c for c in json.loads(res.stdout)["checks"]}
+    assert checks["cautions"]["status"] == "pass"
+    assert checks["public columns"]["status"] == "warn" and "survey_wave" in checks["public columns"]["detail"]
+
+
+# -- what validate proves ---------------------------------------------------------------------------
+
+def _forge_eps(m: dict[str, Any]) -> None:
+    """A consistent forgery: the role column claims eps 0.5 everywhere the manifest states it."""
+    from ldptransform.policy import parse_policy
+
+    _, role = _role(m)
+    role["mechanism"]["epsilon"] = 0.5
+    m["policy"]["columns"]["role"]["epsilon"] = 0.5
+    m["privacy"]["epsilon_per_row_used"] -= 0.5
+    m["policy_sha256"] = parse_policy(m["policy"], "forged").policy.sha256()
+
+
+def test_partner_side_validate_says_what_it_cannot_prove(released: dict[str, Path], tmp_path: Path,
+                                                         ldpt: Any) -> None:
+    """A consistent forgery of eps passes the partner-side checks; the "origin" check says so, in the
+    table and in the JSON, and the steward side catches it."""
+    out, _ = _copy_with_manifest(released, tmp_path, _forge_eps)
+    res = ldpt("validate", out, "--format", "json")
+    report = json.loads(res.stdout)
+    checks = {c["check"]: c for c in report["checks"]}
+    origin = checks["origin"]
+    assert origin["status"] == "warn", origin
+    for words in ("consistent with each other", "forgery", "--raw and --key", "public key"):
+        assert words in origin["detail"], origin["detail"]
+    assert checks["privacy budget"]["status"] == "pass", checks["privacy budget"]
+    assert "origin" in ldpt("validate", out).stdout
+    steward = ldpt("validate", out, "--raw", released["raw"], "--key", released["key"], "--format", "json")
+    assert steward.returncode == 1
+    s_checks = {c["check"]: c for c in json.loads(steward.stdout)["checks"]}
+    assert s_checks["reproduced"]["status"] == "fail" and s_checks["origin"]["status"] == "warn"
+
+
+def test_steward_side_validate_proves_the_origin(released: dict[str, Path], ldpt: Any) -> None:
+    res = ldpt("validate", released["out"], "--raw", released["raw"], "--key", released["key"], "--format", "json")
+    assert res.returncode == 0, res.stdout
+    origin = {c["check"]: c for c in json.loads(res.stdout)["checks"]}["origin"]
+    assert origin["status"] == "pass" and "re-derives bit for bit" in origin["detail"]
