@@ -5,11 +5,11 @@ by all three (exit 2), never half accepted."""
 from __future__ import annotations
 
 import pytest
-from hypothesis import event, given
+from hypothesis import given
 from hypothesis import strategies as st
 
 from fuzz_policies import TABLE, PolicyCase, policy_cases
-from fuzz_promise import Workspace, fuzz_settings, promise_run, workspace
+from fuzz_promise import note, Workspace, fuzz_settings, promise_run, workspace
 
 pytestmark = pytest.mark.fuzz
 
@@ -29,7 +29,7 @@ def check_policy_commands(case: PolicyCase, fmt: str, suggest: bool) -> None:
         res = promise_run(ws, ["policy", "check", policy], inputs=inputs)
         assert not (case.invalid and res.returncode == 0), f"an invalid policy passed `policy check`: {case!r}"
         checked = res.returncode
-        event(f"policy check exit {checked}")
+        note(f"policy check exit {checked}")
         args = ["plan", "--policy", policy, "--rows", "1000", "--format", "json" if fmt == "json" else "table"]
         args += ["--suggest"] if suggest else []
         res = promise_run(ws, args, inputs=inputs, json_stdout=fmt == "json")
@@ -40,7 +40,7 @@ def check_policy_commands(case: PolicyCase, fmt: str, suggest: bool) -> None:
                           inputs=inputs, may_add=[out, ws.out / "extract.manifest.json"])
         assert not (case.invalid and res.returncode == 0), f"an invalid policy was used for a release: {case!r}"
         assert not (checked == 2 and res.returncode == 0), f"privatize took a policy `policy check` refused: {case!r}"
-        event(f"privatize exit {res.returncode}")
+        note(f"privatize exit {res.returncode}")
         if res.returncode == 0:
             manifest = ws.out / "extract.manifest.json"
             assert out.is_file() and manifest.is_file()
@@ -50,7 +50,7 @@ def check_policy_commands(case: PolicyCase, fmt: str, suggest: bool) -> None:
             res = promise_run(ws, ["validate", out, "--format", "json" if fmt == "json" else "table"],
                               inputs=released, check_codes=[1],
                               json_stdout=fmt == "json")
-            event(f"validate exit {res.returncode}")
+            note(f"validate exit {res.returncode}")
 
 
 @fuzz_settings(max_examples=70)
