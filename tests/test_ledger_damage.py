@@ -244,12 +244,13 @@ def test_privatize_makes_a_new_ledger_only_where_no_file_exists(tmp_path: Path, 
 # -- read-only checks -------------------------------------------------------------------------
 
 def _spy_connect(monkeypatch: pytest.MonkeyPatch) -> list[str]:
-    """Record the database names every SQLite connection is opened with."""
+    """Record the database names every SQLite connection to a file is opened with."""
     opened: list[str] = []
     real = sqlite3.connect
 
     def connect(database: Any, *args: Any, **kwargs: Any) -> sqlite3.Connection:
-        opened.append(str(database))
+        if database != ":memory:":  # the expected schema, read once from an in-memory database
+            opened.append(str(database))
         return real(database, *args, **kwargs)
 
     monkeypatch.setattr(sqlite3, "connect", connect)
@@ -453,3 +454,21 @@ def test_release_meta_with_missing_or_unknown_fields_is_named_in_plain_words(tmp
     text = str(err.value)
     assert "unknown field(s) colums; missing field(s) extract_sha256, columns" in text
     assert "__init__" not in text and "keyword argument" not in text
+
+
+def test_a_ledger_switched_to_write_ahead_logging_is_refused_without_writing_beside_it(tmp_path: Path,
+                                                                                       ldpt) -> None:
+    path = good_ledger(tmp_path / "ledger.sqlite3")
+    con = sqlite3.connect(path)
+    assert con.execute("PRAGMA journal_mode = WAL").fetchone() == ("wal",)
+    con.close()
+    before = _state(path)
+    for command in ("verify", "show"):
+        text = assert_user_error(ldpt("ledger", command, "--ledger", path), [str(path), "journal_mode=DELETE"])
+        _one_paragraph(text, path)
+    assert _state(path) == before  # no -wal or -shm file beside it
+    con = sqlite3.connect(path)
+    con.execute("PRAGMA journal_mode = DELETE")
+    con.close()
+    with Ledger.open(path, readonly=True) as led:
+        assert led.verify().ok

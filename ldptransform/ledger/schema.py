@@ -131,6 +131,10 @@ def check_header(path: Path) -> None:
                            "does not carry ldptransform's application id)")
     if version < 1:
         raise damaged(path, "its schema version is missing from the database's header")
+    if 2 in (data[18], data[19]):  # the file format's write and read versions: 2 is write-ahead logging
+        raise LedgerError(f"ledger {path} was switched to SQLite's write-ahead log (journal mode WAL), which ldpt does "
+                          "not use: in that mode even reading it writes files beside it. Switch it back, as the "
+                          f"steward, with `sqlite3 {path} 'PRAGMA journal_mode=DELETE'` while no job uses it.")
     if version != SCHEMA_VERSION:
         raise LedgerError(f"ledger {path} has schema version {version}; this ldptransform reads version "
                           f"{SCHEMA_VERSION}. Use the ldptransform version that wrote it"
