@@ -868,8 +868,9 @@ def disk_full_error(err: BaseException, dest: Path, role: str) -> OutputError | 
                        "space on that disk, or choose a destination in another folder, and run the release again.")
 
 
-def sha256_stream(f: Any, chunk: int = 1 << 22) -> tuple[str, int]:
-    """(SHA-256 hex digest, bytes) of what a readable binary stream holds, read in chunks."""
+def sha256_stream(f: Any, chunk: int = 1 << 22, stop: Callable[[], None] | None = None) -> tuple[str, int]:
+    """(SHA-256 hex digest, bytes) of what a readable binary stream holds, read in chunks
+    (``stop`` is called after each one: a stop signal ends a long digest there)."""
     h = hashlib.sha256()
     size = 0
     while True:
@@ -878,6 +879,8 @@ def sha256_stream(f: Any, chunk: int = 1 << 22) -> tuple[str, int]:
             break
         h.update(b)
         size += len(b)
+        if stop is not None:
+            stop()
     return h.hexdigest(), size
 
 

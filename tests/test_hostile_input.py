@@ -18,6 +18,7 @@ import pyarrow as pa
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 import pytest
+import yaml
 
 from conftest import DEMO_CSV, assert_user_error, listing, partials, sha256, survey_policy, write_policy
 
@@ -526,34 +527,46 @@ def test_killed_runs_partials_are_cleaned_by_the_next_run(work: Work, ldpt) -> N
 
 # -- a stop signal during the ledger's pre-pass ----------------------------------------------
 
-SLOW_PREPASS = '''
+SLOW_PASS = '''
 import sys, time
 from pathlib import Path
 
+import ldptransform.release.central as central
 import ldptransform.release.charges as charges
+import ldptransform.release.nonces as nonces
 
-marker = Path(sys.argv[1])
-real = charges._PrePass.batch
-
-
-def slow(self, batch, row0):
-    marker.touch()  # the pre-pass has started
-    time.sleep(0.05)
-    return real(self, batch, row0)
+marker, which = Path(sys.argv[1]), sys.argv[2]
 
 
-charges._PrePass.batch = slow
+def slowly(real):
+    def slow(*args, **kwargs):
+        marker.touch()  # the pass has started
+        time.sleep(0.05)
+        return real(*args, **kwargs)
+    return slow
+
+
+if which == "ledger pre-pass":
+    charges._PrePass.batch = slowly(charges._PrePass.batch)
+elif which == "one row per person":
+    central.pd = type("pd", (), {"util": type("util", (), {"hash_array": staticmethod(
+        slowly(central.pd.util.hash_array))})})
+else:  # the input's digest for the nonce record, in small chunks
+    real_stream = nonces.sha256_stream
+    nonces.sha256_stream = lambda f, chunk, stop=None: real_stream(f, 4096, slowly(stop) if stop else None)
 from ldptransform.cli import main
 
-sys.argv = ["ldpt", *sys.argv[2:]]
+sys.argv = ["ldpt", *sys.argv[3:]]
 main()
 '''
 
 
-def test_sigterm_during_the_ledger_pre_pass(work: Work, ldpt, tmp_path: Path) -> None:
-    """SIGTERM while the ledger's pre-pass reads the input (made slow here: 50 ms a batch): the
-    one-line interrupted message and exit code 130 (it was killed by the signal, -15, without a
-    word), nothing at the destination, the ledger unchanged."""
+@pytest.mark.parametrize("which", ["ledger pre-pass", "one row per person", "input digest"])
+def test_sigterm_during_a_pass_before_writing(which: str, work: Work, ldpt, tmp_path: Path) -> None:
+    """SIGTERM while a pass over the input before anything is written runs (the ledger's pre-pass,
+    the one-row-per-person check, the input's digest; made slow here, 50 ms a step): the one-line
+    interrupted message and exit code 130 (during the pre-pass it was killed by the signal, -15,
+    without a word), nothing at the destination, the ledger unchanged."""
     import signal
     import subprocess
     import sys
@@ -561,6 +574,10 @@ def test_sigterm_during_the_ledger_pre_pass(work: Work, ldpt, tmp_path: Path) ->
     from conftest import cli_env
 
     _ledger_policy(work)
+    if which == "one row per person":
+        pol = yaml.safe_load(work.policy.read_text(encoding="utf-8"))
+        pol["output"] = {"one_row_per_person": True}
+        write_policy(work.policy, pol)
     raw = work.dir / "survey.csv"
     raw.write_bytes(DEMO_CSV.read_bytes())
     ledger = work.dir / "ledger.sqlite3"
@@ -568,10 +585,10 @@ def test_sigterm_during_the_ledger_pre_pass(work: Work, ldpt, tmp_path: Path) ->
     assert first.returncode == 0, first.stderr
     ledger_hash = sha256(ledger)
     private_before = listing(work.private)
-    script, marker = tmp_path / "slow_prepass.py", tmp_path / "prepass-started"
-    script.write_text(SLOW_PREPASS, encoding="utf-8")
+    script, marker = tmp_path / "slow_pass.py", tmp_path / "pass-started"
+    script.write_text(SLOW_PASS, encoding="utf-8")
     before = listing(work.dir)
-    proc = subprocess.Popen([sys.executable, str(script), str(marker), "privatize", str(raw), "--policy",
+    proc = subprocess.Popen([sys.executable, str(script), str(marker), which, "privatize", str(raw), "--policy",
                              str(work.policy), "--key", str(work.key), "--out", str(work.out), "--ledger", str(ledger),
                              "--batch-rows", "100"],
                             env=cli_env(work.private), stdin=subprocess.DEVNULL, stdout=subprocess.PIPE,
@@ -580,15 +597,18 @@ def test_sigterm_during_the_ledger_pre_pass(work: Work, ldpt, tmp_path: Path) ->
         deadline = time.monotonic() + 60
         while not marker.exists():
             assert proc.poll() is None, proc.communicate()
-            assert time.monotonic() < deadline, "the pre-pass did not start"
+            assert time.monotonic() < deadline, "the pass did not start"
             time.sleep(0.02)
         proc.send_signal(signal.SIGTERM)
+        signalled = time.monotonic()
         out, err = proc.communicate(timeout=30)
+        took = time.monotonic() - signalled
     finally:
         if proc.poll() is None:
             proc.kill()
             proc.wait()
     assert proc.returncode == 130, (proc.returncode, err)
+    assert took < 4, f"the run went on for {took:.1f} s after the signal (the pass does not stop between steps)"
     lines = err.strip().splitlines()
     assert len(lines) == 1 and "interrupted" in lines[0] and "nothing was left" in lines[0], err
     assert "Traceback" not in err + out

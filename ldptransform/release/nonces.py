@@ -31,7 +31,7 @@ import fcntl
 import hashlib
 import json
 import os
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -73,8 +73,9 @@ class NonceUse:
     entry: dict[str, Any]
 
 
-def input_digest(src: Any, opts: ReleaseOptions) -> dict[str, Any]:
-    """The ``input`` entry of a release: kind and digest (None for a dask DataFrame)."""
+def input_digest(src: Any, opts: ReleaseOptions, stop: Callable[[], None] | None = None) -> dict[str, Any]:
+    """The ``input`` entry of a release: kind and digest (None for a dask DataFrame).  ``stop`` is
+    called between chunks (a stop signal ends the digest there)."""
     if opts.frame_input:
         return {"kind": "dask-dataframe", "sha256": None}
     ds = getattr(src, "dataset", None)
@@ -83,14 +84,14 @@ def input_digest(src: Any, opts: ReleaseOptions) -> dict[str, Any]:
         root = ds.root.rstrip("/")
         for path in ds.files:
             with ds.fs.open_input_stream(path) as f:
-                digest, size = sha256_stream(f, CHUNK_BYTES)
+                digest, size = sha256_stream(f, CHUNK_BYTES, stop)
             files.append([path[len(root):].lstrip("/") if path.startswith(root) else path, digest, size])
         h = hashlib.sha256(_DATASET_LABEL)
         for name, digest, size in files:
             h.update(f"{name} {digest} {size}\n".encode())
         return {"kind": "dataset", "sha256": h.hexdigest(), "files": files}
     with open(src.path, "rb") as f:
-        digest, size = sha256_stream(f, CHUNK_BYTES)
+        digest, size = sha256_stream(f, CHUNK_BYTES, stop)
     return {"kind": "file", "sha256": digest, "bytes": size}
 
 
@@ -153,12 +154,13 @@ def _conflict(entry: dict[str, Any], records: list[dict[str, Any]]) -> None:
             f"{state_path()}).")
 
 
-def check(opts: ReleaseOptions, policy: LoadedPolicy, key: SecretKey, src: Any) -> NonceUse | None:
+def check(opts: ReleaseOptions, policy: LoadedPolicy, key: SecretKey, src: Any, *,
+          stop: Callable[[], None] | None = None) -> NonceUse | None:
     """Before anything is written: digest the input and refuse a reused nonce (module docstring).
-    Returns what ``record`` appends (None inside ``rederiving()``)."""
+    Returns what ``record`` appends (None inside ``rederiving()``); ``stop``: as ``input_digest``."""
     if _rederiving.get():
         return None
-    entry = {"nonce": opts.nonce, "key_fingerprint": key.fingerprint(), "input": input_digest(src, opts),
+    entry = {"nonce": opts.nonce, "key_fingerprint": key.fingerprint(), "input": input_digest(src, opts, stop),
              "policy_sha256": policy.policy.sha256(), "extract": str(opts.out), "input_location": opts.input_text}
     path = state_path()
     _conflict(entry, _read(path))

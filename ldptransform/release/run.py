@@ -123,7 +123,7 @@ def _release(opts: ReleaseOptions, policy: LoadedPolicy, key: SecretKey, staged:
     job = PartJob(read_cols, opts.batch_rows, plans, schema, sampler, subject_key, dictionary_columns(src, plans),
                   order=tag_stream(key, opts.nonce) if policy.policy.output.row_order == "shuffled" else None,
                   public=frozenset(p.rc.name for p in plans if p.rc.type == "public"))
-    nonce_use = nonces.check(opts, policy, key, src)  # a reused nonce is refused before anything is written
+    nonce_use = nonces.check(opts, policy, key, src, stop=staged.check)  # a reused nonce: refused before writing
     charges = precharge(src, plans, policy, key, sampler, opts, check=staged.check)
     held = rows_held(charges, plans)
     staged.check()
