@@ -1,6 +1,8 @@
 """The privacy ledger (steward only): how much eps each subject has spent over all releases.
 
-    store.py    the SQLite store: schema, columnar state, hash chain, record, verify, show
+    store.py    the SQLite store: opening, columnar state, hash chain, record, verify, show
+    schema.py   the file's layout and its checks before use (empty, not a ledger, damaged), SQLite's
+                failures in plain words
     charges.py  the charges of a release (per subject, against the lifetime budget)
     hashes.py   keyed digests of subjects and values (nothing raw goes in)
     errors.py   LedgerError, BudgetExhaustedError, LedgerDamagedError

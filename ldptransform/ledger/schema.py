@@ -75,7 +75,7 @@ _PERM, _AUTH = 3, 23
 _CORRUPT, _NOTADB = 11, 26
 READONLY_ROLLBACK = _READONLY | (3 << 8)  # a read-only connection found a journal left by a stopped writer
 
-_RESTORE = ("Restore the ledger from a backup (kept with the key); do not delete it or start a new ledger in its "
+_RESTORE = ("Restore the ledger from a backup; do not delete it or start a new ledger in its "
             "place, as a new ledger would forget the eps everyone has already spent.")
 
 
@@ -117,8 +117,9 @@ def check_header(path: Path) -> None:
     this schema version.  Reads the bytes only (SQLite never opens a file that fails)."""
     data = _header(path)
     if not data:
-        raise damaged(path, "it is empty (0 bytes): it was truncated or overwritten, or a release was stopped "
-                      "while it made the ledger (ldpt makes a new ledger only at a path where no file exists)")
+        raise damaged(path, "it is empty (0 bytes): it was truncated or overwritten, or an earlier ldptransform "
+                      "was stopped while making it (ldpt makes a new ledger whole, and only at a path where no file "
+                      "exists)")
     if not data.startswith(_MAGIC[:len(data)]):
         raise not_a_ledger(path, "it is a text file, not a database" if _looks_like_text(data) else
                            "its first bytes are not those of a SQLite database")

@@ -37,6 +37,11 @@ head hash (``show`` prints it) somewhere else to anchor it.
 Concurrency and crashes: ``record_release`` runs in one ``BEGIN IMMEDIATE`` transaction
 (busy timeout 30 s) and re-checks the lifetime cap inside it, so two jobs cannot both pass
 a check and overspend, and a failure mid-record leaves nothing (rollback).
+
+Damage: every file is checked before use (``schema.py``); one that is empty, not a ledger or
+damaged is a ``LedgerDamagedError`` and is never re-created or changed.  A new ledger is built in
+a hidden file beside its path and linked into place whole, only where no file exists.  Checks
+and summaries (``readonly``) open the file read-only, so they write nothing.
 """
 
 from __future__ import annotations
