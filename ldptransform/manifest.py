@@ -212,13 +212,54 @@ def load_manifest(path: Path) -> Manifest:
                               f"{what} ({err.error_count()} problem(s) in all). {_AGAIN}") from None
     _check_finite(data, path)
     for i, c in enumerate(m.columns):
-        if c.mechanism is not None:
-            _check_spec(path, i, c)
+        _check_entry(path, i, c)
     return m
 
 
-def _check_spec(path: Path, i: int, c: ColumnEntry) -> None:
-    """A column's mechanism spec: a positive finite epsilon, and rebuildable (mechanisms.build)."""
+MAX_SPEC_EPSILON = 100.0  # a column's eps is at most 50 (policy.MAX_COLUMN_EPSILON); a composite of two layers 100
+
+
+def _check_entry(path: Path, i: int, c: ColumnEntry) -> None:
+    """A column entry that decoding can rely on: a public column has no mechanism and one output of
+    its name; a privatized one a mechanism spec that rebuilds (``_check_spec``), of the family its
+    type says, writing the outputs the entry lists, and for a binned column one edge more than bins."""
+    where = f"manifest {path} is malformed: field 'columns[{i}]"
+    col = f"(column {c.name!r})"
+    if c.type == "public":
+        if c.mechanism is not None:
+            raise DamagedManifest(f"{where}.mechanism' {col}: a public column has no mechanism. {_AGAIN}")
+        if [o.name for o in c.outputs] != [c.name]:
+            raise DamagedManifest(f"{where}.outputs' {col}: a public column has one output, of its own name. "
+                                  f"{_AGAIN}")
+        return
+    if c.mechanism is None:
+        raise DamagedManifest(f"{where}.mechanism' {col} is missing: a {c.type} column needs its mechanism spec. "
+                              f"{_AGAIN}")
+    built = _check_spec(path, i, c)
+    if (built.family == "frequency") != (c.type in ("categorical", "binned")):
+        raise DamagedManifest(f"{where}.type' {col}: {c.type!r} does not fit its mechanism {built.name} "
+                              f"({built.family}). {_AGAIN}")
+    want = [f.name for f in built.output_fields(c.name)]
+    if [o.name for o in c.outputs] != want:
+        raise DamagedManifest(f"{where}.outputs' {col}: its mechanism writes the extract column(s) "
+                              f"{', '.join(map(repr, want))}, the entry lists others. {_AGAIN}")
+    if c.type == "binned":
+        from .policy import MISSING_LABEL
+
+        cats = list(getattr(built, "categories", ()))
+        k = len(cats) - (MISSING_LABEL in cats)
+        b = c.bins or []
+        if (len(b) != k + 1 or not all(math.isfinite(x) for x in b)
+                or any(hi <= lo for lo, hi in zip(b, b[1:]))):
+            raise DamagedManifest(f"{where}.bins' {col}: a binned column of {k} bins needs {k + 1} strictly "
+                                  f"increasing finite edges. {_AGAIN}")
+    elif c.bins is not None:
+        raise DamagedManifest(f"{where}.bins' {col}: only a binned column has bins. {_AGAIN}")
+
+
+def _check_spec(path: Path, i: int, c: ColumnEntry) -> Any:
+    """A column's mechanism spec: a positive finite epsilon, and rebuildable (mechanisms.build);
+    returns the mechanism."""
     from . import mechanisms as mech
     from .errors import LdptError
 
@@ -229,10 +270,12 @@ def _check_spec(path: Path, i: int, c: ColumnEntry) -> None:
         raise DamagedManifest(f"{where}.mechanism' (column {c.name!r}) is missing or not a name. {_AGAIN}")
     if "epsilon" not in spec:
         raise DamagedManifest(f"{where}.epsilon' (column {c.name!r}) is missing. {_AGAIN}")
-    if isinstance(eps, bool) or not isinstance(eps, (int, float)) or not math.isfinite(eps) or eps <= 0:
-        raise DamagedManifest(f"{where}.epsilon' (column {c.name!r}) must be a positive number. {_AGAIN}")
+    if (isinstance(eps, bool) or not isinstance(eps, (int, float)) or not math.isfinite(eps) or eps <= 0
+            or eps > MAX_SPEC_EPSILON):
+        raise DamagedManifest(f"{where}.epsilon' (column {c.name!r}) must be a positive number of at most "
+                              f"{MAX_SPEC_EPSILON:g}. {_AGAIN}")
     try:
-        mech.build(spec)
+        return mech.build(spec)
     except KeyError as err:
         raise DamagedManifest(f"{where}.{err.args[0] if err.args else ''}' (column {c.name!r}) is missing. "
                               f"{_AGAIN}") from None

@@ -236,7 +236,38 @@ def _no_name(m: dict[str, Any]) -> None:
     del _role(m)[1]["mechanism"]["mechanism"]
 
 
+def _outputs_renamed(m: dict[str, Any]) -> None:
+    _role(m)[1]["outputs"][0]["name"] = "elsewhere"
+
+
+def _outputs_emptied(m: dict[str, Any]) -> None:
+    _role(m)[1]["outputs"] = []
+
+
+def _role_as_numeric(m: dict[str, Any]) -> None:
+    _role(m)[1]["type"] = "numeric"
+
+
+def _role_as_public(m: dict[str, Any]) -> None:
+    _role(m)[1]["type"] = "public"
+
+
+def _bins_cut(m: dict[str, Any]) -> None:
+    next(c for c in m["columns"] if c["name"] == "tenure_years")["bins"] = [0, 1]
+
+
+def _eps_huge(m: dict[str, Any]) -> None:
+    _role(m)[1]["mechanism"]["epsilon"] = 1e308
+
+
 MANIFEST_CASES: dict[str, tuple[Any, list[str]]] = {
+    # before: KeyError, IndexError, AttributeError, ValueError and OverflowError tracebacks (exit 3)
+    "an output renamed": (_outputs_renamed, ["].outputs", "'role'"]),
+    "outputs emptied": (_outputs_emptied, ["].outputs", "'role'"]),
+    "a categorical column typed numeric": (_role_as_numeric, ["].type", "'role'", "'numeric'"]),
+    "a privatized column typed public": (_role_as_public, ["].mechanism", "'role'", "public column"]),
+    "bins cut short": (_bins_cut, ["].bins", "'tenure_years'", "6 strictly increasing"]),
+    "epsilon huge": (_eps_huge, ["].mechanism.epsilon", "'role'", "at most 100"]),
     "epsilon not a number": (_eps_text, ["columns[", "].mechanism.epsilon", "'role'", "positive number"]),
     "epsilon missing": (_no_eps, ["].mechanism.epsilon", "'role'", "missing"]),
     "rows missing": (_no_rows, ["'rows'", "missing"]),
