@@ -28,6 +28,7 @@ from hypothesis import strategies as st
 FUZZ_PARQUET_NESTED_CATEGORICAL = True   # list/struct columns declared categorical
 FUZZ_PARQUET_BINARY = True               # binary columns (invalid UTF-8) declared categorical or public
 FUZZ_CSV_ENCODINGS = True                # UTF-16 and latin-1 CSV files
+FUZZ_BINARY_PUBLIC = False               # binary columns released in the clear (into a CSV extract: exit 3)
 
 TEXT = st.one_of(
     st.sampled_from(["a", "b", "c", "", " a ", "yes", "no", "NA", "null", "1", "1.0", "=1+1", "+cmd", "@x", "-2",
@@ -149,7 +150,7 @@ def column_policy(draw: st.DrawFn, kind: str, values: list[Any]) -> dict[str, An
             or (kind in ("list", "struct") and FUZZ_PARQUET_NESTED_CATEGORICAL) \
             or (kind == "binary" and FUZZ_PARQUET_BINARY):
         choices += ["categorical", "categorical"]
-    if kind == "binary" and not FUZZ_PARQUET_BINARY:
+    if kind == "binary" and not (FUZZ_PARQUET_BINARY and FUZZ_BINARY_PUBLIC):
         choices.remove("public")
     pick = draw(st.sampled_from(choices))
     missing_ok = draw(st.integers(0, 4)) > 0

@@ -45,7 +45,8 @@ def check_policy_commands(case: PolicyCase, fmt: str, suggest: bool) -> None:
             manifest = ws.out / "extract.manifest.json"
             assert out.is_file() and manifest.is_file()
             released = [*inputs, out, manifest]
-            res = promise_run(ws, ["estimate", out, "--format", fmt], inputs=released, json_stdout=fmt == "json")
+            res = promise_run(ws, ["estimate", out, "--format", fmt], inputs=released, json_stdout=fmt == "json",
+                              csv_stdout=fmt == "csv")
             assert res.returncode == 0, f"estimate refused a fresh release:\n{res.stderr}"
             res = promise_run(ws, ["validate", out, "--format", "json" if fmt == "json" else "table"],
                               inputs=released, check_codes=[1],

@@ -47,7 +47,8 @@ def check_table(case: TableCase, out_name: str, fmt: str) -> None:
         if res.returncode in (0, 1):
             checks = {c["check"]: c["status"] for c in json.loads(res.stdout)["checks"]}
             assert checks.get("reproduced") != "fail", f"a fresh release does not re-derive:\n{res.stdout}"
-        promise_run(ws, ["estimate", out, "--format", fmt], inputs=inputs, json_stdout=fmt == "json")
+        promise_run(ws, ["estimate", out, "--format", fmt], inputs=inputs, json_stdout=fmt == "json",
+                    csv_stdout=fmt == "csv")
 
 
 @fuzz_settings(max_examples=90)
