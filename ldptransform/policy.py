@@ -783,6 +783,7 @@ def _sampled_exact_eps_message(policy: Policy, name: str, source: str, mechanism
 # -- loading ------------------------------------------------------------------------------
 
 _PLAIN_INT = re.compile(r"-?(?:0|[1-9][0-9]*)")
+MAX_POLICY_VALUES = 2_000_000  # a 1024 x 1024 matrix (the matrix mechanism's largest) and 100k categories fit
 
 
 def _node_get(node: yaml.Node, key: str) -> yaml.Node | None:
@@ -889,7 +890,8 @@ def load_policy(path: Path | str) -> LoadedPolicy:
         raise PolicyError(f"policy file {path} cannot be read ({getattr(err, 'strerror', None) or 'read error'}). "
                           "Check the path and its permissions.") from None
     try:
-        data = load_json(text) if path.suffix.lower() == ".json" else load_yaml(text, _check_yaml_labels)
+        data = (load_json(text, MAX_POLICY_VALUES) if path.suffix.lower() == ".json"
+                else load_yaml(text, _check_yaml_labels, MAX_POLICY_VALUES))
     except LoadProblem as err:
         where = f" (line {err.line})" if err.line is not None else ""
         raise PolicyError(f"policy file {path}{where}: {err.text}. Fix the policy and run `ldpt policy check` "

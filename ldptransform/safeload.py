@@ -30,7 +30,7 @@ import yaml
 __all__ = ["MAX_DEPTH", "MAX_NODES", "LoadProblem", "load_json", "load_yaml"]
 
 MAX_DEPTH = 64                # lists/objects inside each other: a policy needs 5, a manifest 8
-MAX_NODES = 10_000_000        # values in all (a 1024 x 1024 matrix in a manifest is about 2 million)
+MAX_NODES = 10_000_000        # values in all (a manifest holds a 1024 x 1024 matrix twice: about 2 million)
 ALIAS_FLOOR = 100_000         # YAML: aliases may always expand to this many values ...
 ALIAS_PER_BYTE = 2            # ... or to this many per byte of the file, whichever is more
 
@@ -61,7 +61,7 @@ def _line_at(data: bytes, pos: int) -> int:
     return data.count(b"\n", 0, pos) + 1
 
 
-def _scan_json(data: bytes) -> None:
+def _scan_json(data: bytes, max_nodes: int) -> None:
     """Depth and value count of a JSON text (strings blanked), chunk by chunk: flat memory."""
     depth = 0
     values = 1
@@ -77,8 +77,8 @@ def _scan_json(data: bytes) -> None:
                               "many levels", _line_at(data, at))
         if running.size:
             depth = int(running[-1])
-    if values > MAX_NODES:
-        raise LoadProblem(f"it holds more than {MAX_NODES:,} values, more than any valid file needs")
+    if values > max_nodes:
+        raise LoadProblem(f"it holds more than {max_nodes:,} values, more than any valid file needs")
 
 
 _JSON_OBJECT: Any = vars(json.decoder)["JSONObject"]  # the pure-Python object parser (not in the type stubs)
@@ -137,11 +137,11 @@ def _duplicate_line(text: str, key: str) -> int | None:
     return text.count("\n", 0, at) + 1
 
 
-def load_json(text: str) -> Any:
-    """Strict JSON: no duplicate keys, no NaN/Infinity, depth and size limited (``LoadProblem``);
-    a syntax error is the standard ``json.JSONDecodeError``."""
+def load_json(text: str, max_nodes: int = MAX_NODES) -> Any:
+    """Strict JSON: no duplicate keys, no NaN/Infinity, depth and number of values (at most
+    ``max_nodes``) limited (``LoadProblem``); a syntax error is the standard ``json.JSONDecodeError``."""
     data = _blank_strings(text)
-    _scan_json(data)
+    _scan_json(data, max_nodes)
     try:
         return json.loads(text, object_pairs_hook=_unique, parse_constant=_refuse_constant)
     except _Duplicate as dup:
@@ -164,10 +164,11 @@ def load_json(text: str) -> Any:
 class _Loader(yaml.SafeLoader):
     """PyYAML's safe loader with a depth and node limit while composing, and unique mapping keys."""
 
-    def __init__(self, stream: str) -> None:
+    def __init__(self, stream: str, max_nodes: int = MAX_NODES) -> None:
         super().__init__(stream)
         self._depth = 0
         self._nodes = 0
+        self._max_nodes = max_nodes
 
     def compose_node(self, parent: Any, index: Any) -> Any:
         self._depth += 1
@@ -176,8 +177,8 @@ class _Loader(yaml.SafeLoader):
             mark = self.peek_event().start_mark
             raise LoadProblem(f"lists and mappings are nested more than {MAX_DEPTH} deep; no valid file needs that "
                               "many levels", mark.line + 1)
-        if self._nodes > MAX_NODES:
-            raise LoadProblem(f"it holds more than {MAX_NODES:,} values, more than any valid file needs",
+        if self._nodes > self._max_nodes:
+            raise LoadProblem(f"it holds more than {self._max_nodes:,} values, more than any valid file needs",
                               self.peek_event().start_mark.line + 1)
         try:
             return super().compose_node(parent, index)
@@ -212,10 +213,10 @@ def _children(node: yaml.Node) -> list[yaml.Node]:
     return []
 
 
-def _check_expansion(root: yaml.Node, size: int) -> None:
+def _check_expansion(root: yaml.Node, size: int, max_nodes: int) -> None:
     """The number of values the node graph stands for once every alias is expanded (one count per
     distinct node, memoized: linear in the file), refused past the limit; a cycle is refused."""
-    limit = min(MAX_NODES, max(ALIAS_FLOOR, ALIAS_PER_BYTE * size))
+    limit = min(max_nodes, max(ALIAS_FLOOR, ALIAS_PER_BYTE * size))
     total: dict[int, int] = {}
     on_path: set[int] = set()
     stack: list[tuple[yaml.Node, bool]] = [(root, False)]
@@ -240,16 +241,17 @@ def _check_expansion(root: yaml.Node, size: int) -> None:
         stack.extend((c, False) for c in _children(node) if id(c) not in total)
 
 
-def load_yaml(text: str, inspect: Callable[[yaml.Node], None] | None = None) -> Any:
-    """Safe YAML with unique keys, depth, size and alias expansion limited (``LoadProblem``);
+def load_yaml(text: str, inspect: Callable[[yaml.Node], None] | None = None, max_nodes: int = MAX_NODES) -> Any:
+    """Safe YAML with unique keys, depth, number of values (at most ``max_nodes``) and alias
+    expansion limited (``LoadProblem``);
     ``inspect`` sees the composed node graph before anything is built (it may raise
     ``LoadProblem`` too).  A syntax error is the standard ``yaml.YAMLError``."""
-    loader = _Loader(text)
+    loader = _Loader(text, max_nodes)
     try:
         node = loader.get_single_node()
         if node is None:
             return None
-        _check_expansion(node, len(text.encode("utf-8")))
+        _check_expansion(node, len(text.encode("utf-8")), max_nodes)
         if inspect is not None:
             inspect(node)
         try:

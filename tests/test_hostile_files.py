@@ -403,3 +403,18 @@ def test_steward_side_validate_proves_the_origin(released: dict[str, Path], ldpt
     assert res.returncode == 0, res.stdout
     origin = {c["check"]: c for c in json.loads(res.stdout)["checks"]}["origin"]
     assert origin["status"] == "pass" and "re-derives bit for bit" in origin["detail"]
+
+
+def test_a_policy_of_too_many_values_is_refused(tmp_path: Path, ldpt: Any, monkeypatch: pytest.MonkeyPatch) -> None:
+    """JSON: counted from the file's commas and brackets before it is parsed (the real limit);
+    YAML: while its nodes are composed (a smaller limit here, so that the test stays quick)."""
+    from ldptransform import policy
+
+    path = _json_policy(tmp_path, '{"budget": [' + "0," * policy.MAX_POLICY_VALUES + "0]}")
+    t0 = time.perf_counter()
+    assert_user_error(ldpt("policy", "check", path), [str(path), f"{policy.MAX_POLICY_VALUES:,} values"])
+    assert time.perf_counter() - t0 < 10
+    monkeypatch.setattr(policy, "MAX_POLICY_VALUES", 1000)
+    yml = tmp_path / "policy.yaml"
+    yml.write_text("budget: [" + "0, " * 1000 + "0]\n", encoding="utf-8")
+    assert_user_error(ldpt("policy", "check", yml), [str(yml), "1,000 values"])
