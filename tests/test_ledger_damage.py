@@ -133,6 +133,7 @@ DAMAGED: dict[str, tuple[Callable[[Path], object], str]] = {
     "spend columns retyped": (_retype_spend, "columns, types and keys"),
     "a column added": (_sql("ALTER TABLE releases ADD COLUMN note TEXT"), "columns, types and keys"),
     "state stored as text": (_sql("UPDATE arrays SET data = 'abc' WHERE name = 'totals'"), "not binary data"),
+    "an array named in binary": (_sql("INSERT INTO arrays VALUES (x'35', 0, x'00')"), "name is not a text"),
     "release row of another type": (_sql("UPDATE releases SET subjects_charged = 'many' WHERE id = 1"),
                                     "wrong type"),
 }

@@ -793,7 +793,10 @@ class Ledger:
             names = ("id", "time", "policy_sha256", "extract_sha256", "nonce", "columns", "subjects_charged",
                      "lifetime_epsilon", "state_sha256", "prev_hash", "row_hash")
             rows = c.execute(f"SELECT {', '.join(names)} FROM releases ORDER BY id").fetchall()
-            arrays = {name: self._get(name) for (name,) in c.execute("SELECT DISTINCT name FROM arrays")}
+            names_stored = [name for (name,) in c.execute("SELECT DISTINCT name FROM arrays")]
+            if not all(isinstance(name, str) for name in names_stored):
+                raise damaged(self.path, "its current state (arrays) holds an array whose name is not a text")
+            arrays = {name: self._get(name) for name in names_stored}
             n_reg = len(arrays.get(_REGISTRY, b"")) // 32
             acc = np.zeros(n_reg)
             prev = GENESIS
