@@ -418,3 +418,15 @@ def test_a_policy_of_too_many_values_is_refused(tmp_path: Path, ldpt: Any, monke
     yml = tmp_path / "policy.yaml"
     yml.write_text("budget: [" + "0, " * 1000 + "0]\n", encoding="utf-8")
     assert_user_error(ldpt("policy", "check", yml), [str(yml), "1,000 values"])
+
+
+def test_validate_with_an_invalid_embedded_policy_fails_its_checks(released: dict[str, Path], tmp_path: Path,
+                                                                   ldpt: Any) -> None:
+    """Before: the quality check read the embedded policy unguarded (a PolicyError, exit 2)."""
+    out, _ = _copy_with_manifest(released, tmp_path, lambda m: m.__setitem__("policy", {"columns": []}))
+    res = ldpt("validate", out, "--format", "json")
+    assert res.returncode == 1 and res.stderr == "", res.stdout + res.stderr
+    checks = {c["check"]: c for c in json.loads(res.stdout)["checks"]}
+    assert checks["privacy budget"]["status"] == "fail" and "embedded policy is invalid" in \
+        checks["privacy budget"]["detail"]
+    assert checks["quality"]["status"] == "warn" and "not checked" in checks["quality"]["detail"]
