@@ -41,7 +41,7 @@ TESTS = Path(__file__).resolve().parent.parent
 if str(TESTS) not in sys.path:  # conftest.py of tests/ holds the CLI runner and the key writer
     sys.path.insert(0, str(TESTS))
 
-from conftest import run_cli, write_fixed_key  # noqa: E402
+from conftest import run_cli, run_process, write_fixed_key  # noqa: E402
 
 # Deterministic and bounded: the same examples on every run, no example database, no deadline
 # per example (a whole property is bounded by its max_examples instead).
@@ -158,6 +158,11 @@ def run(ws: Workspace, *args: Any) -> subprocess.CompletedProcess:
     return run_cli(*args, private=ws.priv)
 
 
+def run_real(ws: Workspace, *args: Any) -> subprocess.CompletedProcess:
+    """``python -m ldptransform ARGS...`` in a real process, with the workspace's private folder."""
+    return run_process(*args, private=ws.priv, timeout=120)
+
+
 def _show(res: subprocess.CompletedProcess) -> str:
     return (f"`ldpt {' '.join(map(str, res.args[1:]))}` exit {res.returncode}\n--- stderr:\n{res.stderr[-3000:]}"
             f"\n--- stdout:\n{res.stdout[-1500:]}")
@@ -227,11 +232,12 @@ def assert_strict_json(text: str, shown: str = "") -> None:
 def promise_run(ws: Workspace, args: Sequence[Any], *, inputs: Sequence[Path], check_codes: Sequence[int] = (),
                 may_add: Sequence[Path] = (), may_change: Sequence[Path] = (),
                 json_stdout: bool = False, csv_stdout: bool = False,
-                tolerate: Sequence[Path] = ()) -> subprocess.CompletedProcess:
-    """Run ``ldpt ARGS`` in ``ws`` and assert the promise; returns the run."""
+                tolerate: Sequence[Path] = (), real_process: bool = False) -> subprocess.CompletedProcess:
+    """Run ``ldpt ARGS`` in ``ws`` (in this process, or with ``real_process`` as a program) and
+    assert the promise; returns the run."""
     before = ws.tree()
     hashes = ws.hashes(inputs)
-    res = run(ws, *args)
+    res = (run_real if real_process else run)(ws, *args)
     assert_promise(ws, res, before=before, inputs=hashes, check_codes=check_codes, may_add=may_add,
                    may_change=may_change, json_stdout=json_stdout, csv_stdout=csv_stdout, tolerate=tolerate)
     return res

@@ -50,7 +50,7 @@ def check_ledger(release: Release, case: LedgerCase, fmt: str,
         assert not (case.unusable and res.returncode == 0), f"a release used a damaged ledger: {case!r}\n{res.stderr}"
 
 
-@fuzz_settings(max_examples=60)
+@fuzz_settings(max_examples=80)
 @given(data=st.data(), fmt=st.sampled_from(["table", "json"]))
 def test_ledger_commands_keep_the_promise_on_a_damaged_ledger(release: Release, data: st.DataObject,
                                                                fmt: str) -> None:

@@ -48,7 +48,7 @@ def check_manifest(release: Release, case: ManifestCase, fmt: str, steward: bool
             note(f"steward validate exit {res.returncode}")
 
 
-@fuzz_settings(max_examples=80)
+@fuzz_settings(max_examples=100)
 @given(data=st.data(), fmt=st.sampled_from(["table", "json", "csv"]), steward=st.integers(0, 2).map(lambda i: i == 0))
 def test_estimate_and_validate_keep_the_promise_on_a_damaged_manifest(release: Release, data: st.DataObject,
                                                                       fmt: str, steward: bool) -> None:
@@ -86,7 +86,7 @@ def estimate_options(draw: st.DrawFn, ws_out: Path, extract: Path, manifest: Pat
     return args
 
 
-@fuzz_settings(max_examples=60)
+@fuzz_settings(max_examples=80)
 @given(data=st.data(), fmt=st.sampled_from(["table", "json", "csv"]))
 def test_estimate_options_keep_the_promise(release: Release, data: st.DataObject, fmt: str) -> None:
     with workspace() as ws:

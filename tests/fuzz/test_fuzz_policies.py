@@ -54,7 +54,7 @@ def check_policy_commands(case: PolicyCase, fmt: str, suggest: bool) -> None:
             note(f"validate exit {res.returncode}")
 
 
-@fuzz_settings(max_examples=70)
+@fuzz_settings(max_examples=80)
 @given(case=policy_cases(), fmt=st.sampled_from(["table", "json", "csv"]),
        suggest=st.integers(0, 9).map(lambda i: i == 0))
 def test_policy_commands_keep_the_promise(case: PolicyCase, fmt: str, suggest: bool) -> None:

@@ -92,3 +92,33 @@ def test_regression_manifest_hiding_a_clear_column_fails_validate(release: Relea
         args = ["validate", paths["extract"]] + (["--raw", paths["raw"], "--key", ws.key] if steward else [])
         res = promise_run(ws, args, inputs=[paths["raw"], paths["extract"], manifest], check_codes=[1])
         assert res.returncode == 1, f"validate passed a manifest that hides a column in the clear:\n{res.stdout}"
+
+
+# -- the same promise from a real process (main()'s own exit codes, not the in-process runner's) --
+
+def _deep_policy(ws: fuzz_promise.Workspace, r: Release) -> tuple[list, list]:
+    policy = ws.inp / "policy.json"
+    policy.write_text('{"quality": ' + "[" * 5000 + "]" * 5000 + ', "budget": {"epsilon_per_row": 1}, "columns": {}}')
+    return ["policy", "check", policy], [policy]
+
+
+def _cut_manifest(ws: fuzz_promise.Workspace, r: Release) -> tuple[list, list]:
+    paths = r.copy_into(ws)
+    manifest = ws.out / MANIFEST
+    manifest.write_bytes(r.manifest.read_bytes()[:700])
+    return ["estimate", paths["extract"], "--format", "json"], [paths["extract"], manifest]
+
+
+def _empty_ledger(ws: fuzz_promise.Workspace, r: Release) -> tuple[list, list]:
+    paths = r.copy_into(ws, extract=False)
+    paths["ledger"].write_bytes(b"")
+    return ["ledger", "verify", "--ledger", paths["ledger"]], [paths["ledger"]]
+
+
+@pytest.mark.parametrize("build", [_deep_policy, _cut_manifest, _empty_ledger],
+                         ids=["policy nested 5000 deep", "manifest cut short", "ledger of 0 bytes"])
+def test_promise_in_a_real_process(build: Callable, release: Release) -> None:
+    with workspace() as ws:
+        args, inputs = build(ws, release)
+        res = promise_run(ws, args, inputs=inputs, check_codes=[1], real_process=True)
+        assert res.returncode in (1, 2), f"exit {res.returncode}: hostile input accepted\n{res.stdout}{res.stderr}"

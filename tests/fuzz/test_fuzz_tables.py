@@ -51,7 +51,7 @@ def check_table(case: TableCase, out_name: str, fmt: str) -> None:
                     csv_stdout=fmt == "csv")
 
 
-@fuzz_settings(max_examples=90)
+@fuzz_settings(max_examples=120)
 @given(case=table_cases(), out_name=st.sampled_from(["extract.parquet", "extract.csv"]),
        fmt=st.sampled_from(["table", "json", "csv"]))
 def test_privatize_keeps_the_promise_on_any_table(case: TableCase, out_name: str, fmt: str) -> None:
