@@ -46,14 +46,17 @@ from conftest import run_cli, run_process, write_fixed_key  # noqa: E402
 # Deterministic and bounded: the same examples on every run, no example database, no deadline
 # per example (a whole property is bounded by its max_examples instead).
 # LDPT_FUZZ_SCALE=k multiplies every property's number of examples (a longer local hunt);
-# LDPT_FUZZ_NO_SHRINK=1 reports a failing example as found, without minimizing it (faster).
+# LDPT_FUZZ_NO_SHRINK=1 reports a failing example as found, without minimizing it (faster);
+# LDPT_FUZZ_RANDOM=1 draws fresh examples on every run (a hunt; CI keeps the fixed ones).
+RANDOM = bool(os.environ.get("LDPT_FUZZ_RANDOM"))
 SCALE = max(1, int(os.environ.get("LDPT_FUZZ_SCALE", "1")))
 PHASES = [Phase.explicit, Phase.reuse, Phase.generate] + ([] if os.environ.get("LDPT_FUZZ_NO_SHRINK")
                                                           else [Phase.shrink])
 
 
 def fuzz_settings(max_examples: int) -> settings:
-    return settings(derandomize=True, max_examples=max_examples * SCALE, deadline=None, database=None, phases=PHASES,
+    return settings(derandomize=not RANDOM, max_examples=max_examples * SCALE, deadline=None, database=None,
+                    phases=PHASES,
                     suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large,
                                            HealthCheck.filter_too_much, HealthCheck.large_base_example],
                     print_blob=False)
