@@ -21,6 +21,7 @@ from fuzz_promise import Workspace, run
 # fuzz_promise's docstring): True fuzzes the class again.
 FUZZ_MANIFEST_NUMBER_AS_TEXT = False   # a number of the manifest written as text: estimate exit 3 (F4)
 FUZZ_LEDGER_STATE_DELETED = False      # every array of the ledger deleted: privatize starts from zero (F7)
+FUZZ_MANIFEST_HUGE_INTEGERS = False    # an integer beyond any float (10**400) in the manifest: exit 3 (F9)
 
 ROWS = 40
 RAW = "cat,num,hours,binned,pub,sid\n" + "".join(
@@ -103,8 +104,9 @@ def make_release(ws: Workspace) -> Release:
 
 # -- manifests ---------------------------------------------------------------------------------
 
-JUNK: list[Any] = [None, True, False, 0, -1, 1e308, -1e308, 10**400, "", "x", "1.0", "NaN", [], {}, [[[]]],
+JUNK: list[Any] = [None, True, False, 0, -1, 1e308, -1e308, "", "x", "1.0", "NaN", [], {}, [[[]]],
                    {"a": {"b": {"c": None}}}, [1, "a", None], math.nan, math.inf, -math.inf, "\x1b[2J", "=1+1"]
+JUNK += [10**400] if FUZZ_MANIFEST_HUGE_INTEGERS else []
 
 
 def tree_paths(obj: Any, prefix: tuple = ()) -> list[tuple]:
