@@ -169,7 +169,7 @@ class ParquetDataset:
         try:
             with self.fs.open_input_file(path) as f:
                 return pq.ParquetFile(f).metadata
-        except (pa.ArrowInvalid, OSError) as err:
+        except (pa.ArrowException, OSError) as err:
             raise InputFileError(f"input {self.location}: file {path} cannot be read as Parquet "
                                  f"({str(err).splitlines()[0][:200]}). Check that it is complete.") from None
 
@@ -191,7 +191,7 @@ def read_fragment(fs: pafs.FileSystem, frag: Fragment, columns: list[str], batch
                                      use_threads=True):
                 done += b.num_rows
                 yield b
-    except (pa.ArrowInvalid, OSError) as err:
+    except (pa.ArrowException, OSError) as err:
         check_fragment_unchanged(fs, frag)  # a file changed meanwhile is said to have changed
         raise DataError(f"input file {frag.path} could not be read after row {frag.row0 + done} of the dataset "
                         f"({str(err).splitlines()[0][:200]}). Check that the file is complete and unchanged.") from None

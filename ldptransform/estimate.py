@@ -54,7 +54,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from . import mechanisms as mech
-from .errors import DataError, ManifestError, UsageError
+from .errors import DataError, LdptError, ManifestError, UsageError
 from .mechanisms import decoders
 from .mechanisms.decoders import CONSISTENCY_METHODS, consistent, norm_additive, norm_mul, norm_sub  # noqa: F401
 from .mechanisms.decoders import mean_result as _mean
@@ -472,6 +472,24 @@ def _accumulate_one(extract: Path, manifest_path: Path | None, an: Analyses, bat
     _check_analyses(manifest, an)
     acc = _empty_stats(manifest, an)
     where = f"extract {extract} (manifest {mpath})"
+    try:
+        _read_into(acc, manifest, an, src, batch_rows, check_alphabet, where, engine, scheduler, extract)
+    except LdptError:
+        raise
+    except (pa.ArrowException, IndexError, OverflowError, ValueError) as err:
+        # the bytes decode to values no release writes (a damaged page, an index out of range)
+        raise DataError(f"{where}: the extract's data is damaged and cannot be decoded (read stopped near data row "
+                        f"{acc.rows + 1}: {type(err).__name__.removeprefix('Arrow')}). Use an intact copy of the "
+                        "release; `ldpt validate` compares it with the hash in its manifest.") from None
+    acc.extracts = [str(extract)]
+    if acc.rows != manifest.rows:
+        raise ManifestError(f"extract {extract} has {acc.rows} rows but manifest {mpath} says {manifest.rows}. The "
+                            "files do not belong together, or the extract is incomplete; run `ldpt validate`.")
+    return acc
+
+
+def _read_into(acc: Accumulated, manifest: Manifest, an: Analyses, src: TableSource, batch_rows: int,
+               check_alphabet: bool, where: str, engine: str, scheduler: str | None, extract: Any) -> None:
     if engine == "dask":
         if src.dataset is None:
             raise UsageError(f"--engine dask reads a Parquet dataset extract (a folder of parts); {extract} is one "
@@ -484,11 +502,6 @@ def _accumulate_one(extract: Path, manifest_path: Path | None, an: Analyses, bat
             _merge_into(acc, part)
     else:
         _add_batches(acc, iter_column_arrays(manifest, src, batch_rows), check_alphabet, where)
-    acc.extracts = [str(extract)]
-    if acc.rows != manifest.rows:
-        raise ManifestError(f"extract {extract} has {acc.rows} rows but manifest {mpath} says {manifest.rows}. The "
-                            "files do not belong together, or the extract is incomplete; run `ldpt validate`.")
-    return acc
 
 
 def _both(a: np.ndarray | None, b: np.ndarray | None, n: int) -> np.ndarray | None:

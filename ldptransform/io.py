@@ -94,7 +94,7 @@ class TableSource:
                     self.schema.names  # noqa: B018  (names are decoded here: a header that is not UTF-8 fails now)
         except UnicodeDecodeError:
             raise DataError(encoding_message(self.path, 1, None, None)) from None
-        except (pa.ArrowInvalid, pa.ArrowIOError, OSError) as err:
+        except (pa.ArrowException, OSError) as err:
             if self.format == "csv":
                 raise DataError(self._csv_error(err, 0, None)) from None
             raise InputFileError(f"input file {self.path} cannot be read as {self.format.upper()}: "
