@@ -138,9 +138,23 @@ DAMAGED: dict[str, tuple[Callable[[Path], object], str]] = {
                                     "wrong type"),
 }
 
+# damage only a read of the current state shows (verify names it as a broken chain or damage)
+STATE_DAMAGED: dict[str, tuple[Callable[[Path], object], str]] = {
+    "state deleted": (_sql("DELETE FROM arrays"), "current state (subject registry, running totals, memo state) "
+                      "is gone"),
+    "state of a column deleted": (_sql("DELETE FROM arrays WHERE name = 'state:site'"), "not the one its last "
+                                  "release recorded"),
+    "totals edited": (_sql("UPDATE arrays SET data = zeroblob(length(data)) WHERE name = 'totals'"),
+                      "not the one its last release recorded"),
+    "state zeroed": (_sql("UPDATE arrays SET data = x'00'"), "do not fit together"),
+    "a text of invalid UTF-8": (_sql("UPDATE meta SET value = CAST(x'ebba25a51b' AS TEXT) WHERE name = 'created'"),
+                                "not valid UTF-8"),
+}
+DAMAGED_ALL = {**DAMAGED, **STATE_DAMAGED}
+
 
 def _make(tmp_path: Path, name: str) -> tuple[Path, str]:
-    make, words = DAMAGED[name]
+    make, words = DAMAGED_ALL[name]
     folder = tmp_path / "steward"
     folder.mkdir()
     path = folder / "ledger.sqlite3"
@@ -473,3 +487,41 @@ def test_a_ledger_switched_to_write_ahead_logging_is_refused_without_writing_bes
     con.close()
     with Ledger.open(path, readonly=True) as led:
         assert led.verify().ok
+
+
+@pytest.mark.parametrize("name", list(STATE_DAMAGED))
+def test_a_state_that_does_not_fit_the_history_is_refused_by_show_and_privatize(tmp_path: Path, ldpt,
+                                                                               private_dir: Path, name: str) -> None:
+    """The current state deleted, shortened or edited after the last release (or a text that is
+    not UTF-8): verify fails (exit 1), show and privatize refuse it (exit 2) in one paragraph that
+    names the ledger and says to restore it, and a refused release leaves nothing behind, not even
+    its nonce record in the private folder."""
+    path, words = _make(tmp_path, name)
+    before = _state(path)
+    res = ldpt("ledger", "verify", "--ledger", path)
+    assert res.returncode == 1, (res.returncode, res.stdout, res.stderr)
+    _one_paragraph(res.stdout, path)
+    text = assert_user_error(ldpt("ledger", "show", "--ledger", path), [str(path), "damaged", words])
+    assert "from a backup" in _one_paragraph(text, path) and "do not delete" in text
+    work, raw, policy, key = _release_inputs(tmp_path)
+    private_before = listing(private_dir)
+    work_before = listing(work)
+    res = ldpt("privatize", raw, "--policy", policy, "--key", key, "--out", work / "extract.parquet",
+               "--ledger", path)
+    text = assert_user_error(res, [str(path), "damaged", words])
+    assert "Nothing was recorded" in text or "left as it is" in text, text
+    _one_paragraph(text, path)
+    assert listing(work) == work_before and partials(work) == [] and listing(private_dir) == private_before
+    assert _state(path) == before
+
+
+def test_a_valid_ledger_whose_release_charged_nobody_is_still_usable(tmp_path: Path) -> None:
+    path = tmp_path / "ledger.sqlite3"
+    with Ledger.open(path) as led:
+        led.record_release(meta(1), subject_hashes(KEY, pa.array([], type=pa.string())), 1.0)
+    with Ledger.open(path, create=False) as led:
+        led.check_state()
+        assert led.verify().ok and led.show()["subjects"] == 0
+        led.record_release(meta(2), subject_hashes(KEY, pa.array(["staff-00001"])), 1.0)
+        led.check_state()
+        assert led.verify().ok and led.show()["subjects"] == 1

@@ -79,6 +79,9 @@ _RESTORE = ("Restore the ledger from a backup; do not delete it or start a new l
             "place, as a new ledger would forget the eps everyone has already spent.")
 
 
+NOT_UTF8 = "a text stored in it is not valid UTF-8 (its bytes were changed on disk or by another program)"
+
+
 def damaged(path: Path, what: str, *, recording: bool = False) -> LedgerDamagedError:
     """The error for a damaged ledger file: names it, says what is wrong and how to recover."""
     done = "Nothing was recorded and the file was left as it is." if recording else "The file was left as it is."
@@ -251,6 +254,8 @@ def sqlite_failure(path: Path, err: sqlite3.Error, *, recording: bool = False) -
         return LedgerError(f"ran out of memory while using ledger {path}{nothing}. Free memory and run again.")
     if primary == _INTERRUPT:
         return LedgerError(f"the use of ledger {path} was interrupted{nothing}.")
+    if code is None and "decode" in str(err).lower():  # Python's sqlite3: a text cell that is not UTF-8
+        return damaged(path, NOT_UTF8, recording=recording)
     what = _truncation(path) or ("SQLite cannot read parts of it (damaged pages)" if primary in (_CORRUPT, _NOTADB)
                                  else "its tables do not hold what a ledger's hold")
     return damaged(path, what, recording=recording)

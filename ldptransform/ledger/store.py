@@ -31,7 +31,10 @@ also kept in ``meta``, so deleting the last release is caught too.  ``verify`` r
 the chain and names the first broken release.  The chain catches edits that do not
 recompute it (mistakes, naive edits); the current registry, totals and memo state are
 checked against the last release's ``state_sha256`` and the totals against the sum of all
-spend.  Someone who can write the file can rebuild the whole chain, so keep a copy of the
+spend.  Every read of the current state (the release's pre-pass, its record, ``show``) checks
+it against the last release's ``state_sha256`` (one digest of the arrays it reads anyway), so a
+state deleted, shortened or edited after the last release is refused as damage rather than
+starting people from the wrong spend.  Someone who can write the file can rebuild the whole chain, so keep a copy of the
 head hash (``show`` prints it) somewhere else to anchor it.
 
 Concurrency and crashes: ``record_release`` runs in one ``BEGIN IMMEDIATE`` transaction
@@ -69,8 +72,8 @@ from ..keys import check_nonce, shared_access
 from .charges import CAP_TOLERANCE, ChargePlan, aggregate, cap_plan, check_cap
 from .errors import BudgetExhaustedError, LedgerError
 from .hashes import DIGEST, as_digests
-from .schema import (APPLICATION_ID, READONLY_ROLLBACK, SCHEMA, SCHEMA_VERSION, check_header, check_schema, damaged,
-                     sqlite_failure)
+from .schema import (APPLICATION_ID, NOT_UTF8, READONLY_ROLLBACK, SCHEMA, SCHEMA_VERSION, check_header, check_schema,
+                     damaged, sqlite_failure)
 
 DEFAULT_NAME = "ledger.sqlite3"
 BUSY_TIMEOUT_S = 30.0
@@ -197,6 +200,12 @@ def _state_digest(arrays: Mapping[str, bytes]) -> str:
         h.update(name.encode("utf-8") + b"\0" + len(data).to_bytes(8, "big"))
         h.update(data)
     return h.hexdigest()
+
+
+def _state_fits(stored: Mapping[str, bytes], expected: str) -> bool:
+    """The stored arrays are the state of digest ``expected`` (a release that charged nobody
+    stores its empty registry and totals as no parts at all: either form fits)."""
+    return expected in (_state_digest(stored), _state_digest({_REGISTRY: b"", _TOTALS: b"", **stored}))
 
 
 def _row_hash(row: Mapping[str, Any], prev_hash: str, spend_digest: bytes) -> str:
@@ -417,6 +426,10 @@ def _create(path: Path) -> None:
                           f"folder {path.parent} and that its disk has space.") from None
 
 
+def _not_text(path: Path, *, recording: bool = False) -> LedgerError:
+    return damaged(path, NOT_UTF8, recording=recording)
+
+
 def _end_read(c: sqlite3.Connection) -> None:
     if c.in_transaction:
         with contextlib.suppress(sqlite3.Error):  # ends a read: nothing to lose
@@ -519,14 +532,17 @@ class Ledger:
 
     def _check(self) -> None:
         c = self._conn
-        c.execute(f"PRAGMA busy_timeout = {int(BUSY_TIMEOUT_S * 1000)}")
-        c.execute("PRAGMA cache_size = -131072")  # 128 MiB of page cache: 1M-subject releases
-        c.execute("PRAGMA temp_store = MEMORY")
-        c.execute("BEGIN")
-        try:
-            check_schema(c, self.path)
-        finally:
-            _end_read(c)
+        try:  # a text SQLite hands back (the schema's own included) may hold bytes changed on disk
+            c.execute(f"PRAGMA busy_timeout = {int(BUSY_TIMEOUT_S * 1000)}")
+            c.execute("PRAGMA cache_size = -131072")  # 128 MiB of page cache: 1M-subject releases
+            c.execute("PRAGMA temp_store = MEMORY")
+            c.execute("BEGIN")
+            try:
+                check_schema(c, self.path)
+            finally:
+                _end_read(c)
+        except UnicodeDecodeError:
+            raise _not_text(self.path) from None
 
     def close(self) -> None:
         self._conn.close()
@@ -551,6 +567,8 @@ class Ledger:
                 _end_read(c)
         except sqlite3.Error as err:
             raise sqlite_failure(self.path, err) from None
+        except UnicodeDecodeError:
+            raise _not_text(self.path) from None
 
     def _get(self, name: str) -> bytes:
         parts = [r[0] for r in self._conn.execute("SELECT data FROM arrays WHERE name = ? ORDER BY part", (name,))]
@@ -578,6 +596,7 @@ class Ledger:
             raise damaged(self.path, "its subject registry and running totals do not fit together (`ldpt ledger "
                           "verify` says more)")
         states = {}
+        stored = {n: v for n, v in ((_REGISTRY, reg), (_TOTALS, tot)) if n in names}
         for name in names:
             if name.startswith(_STATE_PREFIX):
                 data = self._get(name)
@@ -585,13 +604,40 @@ class Ledger:
                     raise damaged(self.path, f"the memo state of column {name[len(_STATE_PREFIX):]!r} does not fit "
                                   "the registry (`ldpt ledger verify` says more)")
                 states[name[len(_STATE_PREFIX):]] = np.frombuffer(data, dtype=DIGEST)
+                stored[name] = data
+            if name not in stored:
+                stored[name] = self._get(name)
+        self._check_state_fits(stored)
         self._snap = _Snapshot(head, np.frombuffer(reg, dtype=DIGEST), np.frombuffer(tot, dtype="<f8").astype(
             np.float64), states)
         return self._snap
 
+    def _check_state_fits(self, stored: Mapping[str, bytes]) -> None:
+        """The current state is the one the last stored release recorded (its ``state_sha256``; no
+        release: the empty state): a state deleted, shortened or edited after it would start people
+        from the wrong spend.  One query and one digest of the arrays just read."""
+        last = self._conn.execute("SELECT id, state_sha256 FROM releases ORDER BY id DESC LIMIT 1").fetchone()
+        if last is not None and not isinstance(last[1], str):
+            raise damaged(self.path, f"the row of release {last[0]} holds a value of the wrong type (`ldpt ledger "
+                          "verify` says more)")
+        if _state_fits(stored, _state_digest({}) if last is None else last[1]):
+            return
+        if last is not None and not stored:
+            what = (f"its current state (subject registry, running totals, memo state) is gone, although it records "
+                    f"{last[0]} release(s): it was deleted after the last release")
+        else:
+            what = ("its current state (subject registry, running totals, memo state) is not the one its last "
+                    "release recorded: it was changed, shortened or deleted after it")
+        raise damaged(self.path, what + " (`ldpt ledger verify` says more)")
+
     def _read(self) -> _Snapshot:
         with self._reading():
             return self._load()
+
+    def check_state(self) -> None:
+        """Read the current state and check that it is the one the last release recorded (a
+        ``LedgerDamagedError`` if not); a release calls this before it charges anyone."""
+        self._read()
 
     def spent(self, subject_hashes: Any) -> np.ndarray:
         """Eps each subject has been charged so far (0 for subjects never charged)."""
@@ -702,6 +748,8 @@ class Ledger:
                 raise
         except sqlite3.Error as err:
             raise sqlite_failure(self.path, err, recording=True) from None
+        except UnicodeDecodeError:
+            raise _not_text(self.path, recording=True) from None
         new.head = row_hash
         self._snap = new
         return rid
@@ -816,7 +864,7 @@ class Ledger:
             if orphans:
                 return VerifyResult(False, len(rows), None, f"{orphans} spend record(s) belong to no release", prev)
             expected_state = rows[-1][names.index("state_sha256")] if rows else _state_digest({})
-            if _state_digest(arrays) != expected_state:
+            if not _state_fits(arrays, expected_state):
                 return VerifyResult(False, len(rows), None, "the subject registry, running totals or memo state "
                                     "differ from what the last release recorded (edited after it)", prev)
             totals = np.frombuffer(arrays.get(_TOTALS, b""), dtype="<f8")

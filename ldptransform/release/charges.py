@@ -131,6 +131,7 @@ def precharge(src: Any, plans: list[ColumnPlan], policy: LoadedPolicy, key: Secr
     try:
         if led is not None:
             led.check_key(key.fingerprint())
+            led.check_state()  # a state deleted or edited after the last release: refused before anything is written
         charges = ledger_prepass(src, plans, policy, key, opts.batch_rows, sampler, led, opts.lifetime_epsilon,
                                  check=check)
     finally:

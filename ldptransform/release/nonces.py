@@ -15,7 +15,8 @@ line per release, appended under an exclusive ``fcntl.flock`` of the file, holdi
 ``check`` runs before anything is written: a nonce already recorded with the same key is
 refused unless the input and policy digests are both identical (a true reproduction, which
 gives the same extract bit for bit and discloses nothing new).  ``record`` runs once the
-release's files are staged, before they are moved into place; it checks again under the lock
+release's files are staged and the ledger (if any) has recorded it, before they are moved into
+place (a release the ledger refuses leaves no record); it checks again under the lock
 (two jobs started at once with one nonce) and appends.  A refused or failed release records
 nothing.  The steward's re-derivation in ``validate`` runs inside ``rederiving()``: it is
 neither refused by nor recorded in this state.

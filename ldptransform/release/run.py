@@ -135,8 +135,8 @@ def _release(opts: ReleaseOptions, policy: LoadedPolicy, key: SecretKey, staged:
     diag = diagnostics(plans, written, opts, opts.manifest_path, charges, sampler is not None,
                        time.perf_counter() - t0)
     stage_text(staged, diag_path, json.dumps(diag, indent=2) + "\n", mode=0o600)
-    nonces.record(nonce_use)
     release_id = _record(staged, charges, plans, manifest, opts)
+    nonces.record(nonce_use)  # after the ledger: a release the ledger refuses leaves no nonce record
     move_into_place(staged, opts, release_id)
     counts = (0, 0) if charges is None else (int((~charges.within).sum()), int((~charges.row_within).sum()))
     changed = tuple(t for p in plans if p.rc.mechanism is not None

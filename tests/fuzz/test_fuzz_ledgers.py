@@ -19,7 +19,7 @@ pytestmark = pytest.mark.fuzz
 
 # Known failure of issue 15 tolerated by the property until it is fixed (True checks it again): a
 # release refused for a damaged ledger leaves the steward's nonce record behind in the private folder.
-STRICT_NONCE_RECORD_ON_LEDGER_REFUSAL = False
+STRICT_NONCE_RECORD_ON_LEDGER_REFUSAL = True
 
 
 @pytest.fixture(scope="module")

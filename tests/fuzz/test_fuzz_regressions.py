@@ -63,16 +63,16 @@ REGRESSIONS: list[tuple[str, Case, list[pytest.MarkDecorator]]] = [
     ("ledger arrays zeroed, privatize",
      lambda r: check_ledger(r, LedgerCase("sql", "UPDATE arrays SET data = X'00';", True, True), "table",
                              strict_nonce=True),
-     [_being_fixed("ledger damage")]),
+     []),
     # privatize on a ledger whose registry, totals and memo state were all deleted: released and recorded
     # (exit 0) as if nobody had spent anything, while `ledger verify` reports it broken
     ("ledger arrays deleted, privatize",
      lambda r: check_ledger(r, LedgerCase("sql", "DELETE FROM arrays;", True, True), "json"),
-     [_being_fixed("ledger damage")]),
+     []),
     # junk bytes inside a text cell of the ledger: `ledger verify` fails to decode it (UnicodeDecodeError, exit 3)
     ("ledger text cell with invalid UTF-8, verify",
      lambda r: check_ledger(r, LedgerCase("garbage", (3391, b"\xeb\xba%\xa5\x1b"), False, False), "table"),
-     [_being_fixed("ledger damage")]),
+     []),
 ]
 
 
