@@ -274,6 +274,10 @@ def _check_spec(path: Path, i: int, c: ColumnEntry) -> Any:
             or eps > MAX_SPEC_EPSILON):
         raise DamagedManifest(f"{where}.epsilon' (column {c.name!r}) must be a positive number of at most "
                               f"{MAX_SPEC_EPSILON:g}. {_AGAIN}")
+    bounds = spec.get("bounds")
+    if "bounds" in spec and not (isinstance(bounds, list) and len(bounds) == 2 and all(
+            isinstance(b, (int, float)) and not isinstance(b, bool) and math.isfinite(b) for b in bounds)):
+        raise DamagedManifest(f"{where}.bounds' (column {c.name!r}) must be two finite numbers. {_AGAIN}")
     try:
         return mech.build(spec)
     except KeyError as err:
@@ -286,9 +290,15 @@ def _check_spec(path: Path, i: int, c: ColumnEntry) -> Any:
                               f"wrong type or value). {_AGAIN}") from None
 
 
+MAX_MANIFEST_INT = 2 ** 128  # far above any whole number a manifest holds (counts, sizes, integer masses)
+
+
 def _check_finite(obj: Any, path: Path) -> None:
     if isinstance(obj, float) and not math.isfinite(obj):
         raise DamagedManifest(f"manifest {path} contains a non-finite number. {_AGAIN}")
+    if isinstance(obj, int) and not isinstance(obj, bool) and abs(obj) > MAX_MANIFEST_INT:
+        raise DamagedManifest(f"manifest {path} contains a whole number too large for any field "
+                              f"(more than {len(str(MAX_MANIFEST_INT))} digits). {_AGAIN}")
     if isinstance(obj, dict):
         for v in obj.values():
             _check_finite(v, path)

@@ -488,10 +488,14 @@ def spreadsheet_safe(text: str) -> str:
     starts with ``=``, ``+``, ``-``, ``@``, a tab or a carriage return (which a spreadsheet
     reads as a formula: ``=HYPERLINK(...)``, ``+cmd|...``) gets a leading apostrophe, the
     common convention for "this is text".  A cell that is exactly a number (``-1``, ``+2.5``)
-    is kept: a spreadsheet reads it as that number, never as a formula."""
+    is kept: a spreadsheet reads it as that number, never as a formula.  Control characters
+    (escape sequences, bidi overrides) are written as visible escapes (errors.terminal_safe), so
+    the CSV cannot act on a terminal it is printed to either."""
+    from .errors import terminal_safe
+
     if text.startswith(_FORMULA_START) and not _PLAIN_NUMBER.fullmatch(text):
-        return "'" + text
-    return text
+        text = "'" + text
+    return terminal_safe(text, keep_layout=True)
 
 
 def finite(v: float | None) -> bool:

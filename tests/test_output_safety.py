@@ -94,7 +94,7 @@ def strict_json(text: str) -> Any:
 
 @pytest.mark.parametrize("text,expected", [
     ("=SUM(A1)", "'=SUM(A1)"), ("+cmd|x", "'+cmd|x"), ("-1+1", "'-1+1"), ("@SUM(1)", "'@SUM(1)"),
-    ("\tx", "'\tx"), ("\rx", "'\rx"), ("-", "'-"), ("-10..5", "'-10..5"),
+    ("\tx", "'\tx"), ("\rx", "'\\x0dx"), ("-", "'-"), ("-10..5", "'-10..5"),
     ("-1", "-1"), ("+2.5", "+2.5"), ("-3e-4", "-3e-4"), ("-.5", "-.5"),
     ("plain", "plain"), ("a=b", "a=b"), ("", ""), ("'=x", "'=x")])
 def test_spreadsheet_safe_neutralizes_formula_text_only(text: str, expected: str) -> None:
@@ -110,7 +110,8 @@ def test_estimate_csv_neutralizes_formulas(hostile: dict[str, Any], ldpt) -> Non
     assert res.returncode == 0, res.stderr
     rows = _csv_rows(res.stdout)
     values = [r["value"] for r in rows if r["column"] == "dept" and r["statistic"] == "frequency"]
-    assert values == ["'" + v for v in FORMULAS] + [*ESCAPES, "plain", "-5"]
+    # control characters written as visible escapes (errors.terminal_safe), also in CSV
+    assert values == ["'" + v for v in FORMULAS] + [terminal_safe(v) for v in ESCAPES] + ["plain", "-5"]
     for r in rows:
         for k, v in r.items():
             assert not v.startswith(("=", "+", "@", "\t", "\r")), (k, v)

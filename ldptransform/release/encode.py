@@ -49,11 +49,15 @@ def _as_string_array(values: pa.Array, name: str | None = None, row0: int = 0) -
 
 def check_text(values: pa.Array, name: str, row0: int) -> None:
     """A column copied as it is (a public column): text that is not valid UTF-8 is a DataError
-    naming the column and its first such row (it would break every reader of the extract)."""
+    naming the column and its first such row (it would break every reader of the extract).
+    Binary cells count as text here: a CSV extract can only hold them as text, and bytes that
+    are not text in the clear are refused in a Parquet extract too (encode them, e.g. as hex,
+    or drop the column)."""
     if isinstance(values, pa.ChunkedArray):
         values = values.combine_chunks()
     t = values.type.value_type if pa.types.is_dictionary(values.type) else values.type
-    if not (pa.types.is_string(t) or pa.types.is_large_string(t)):
+    if not (pa.types.is_string(t) or pa.types.is_large_string(t) or pa.types.is_binary(t)
+            or pa.types.is_large_binary(t) or pa.types.is_fixed_size_binary(t)):
         return
     if pa.types.is_dictionary(values.type):
         if _utf8_ok(values.dictionary):

@@ -73,7 +73,7 @@ def note(what: str) -> None:
 # its class is being fixed.
 CHECK_TERMINAL_ESCAPES = True   # no raw control character (ESC, BEL, NUL, ...) in stdout or stderr
 CHECK_CSV_FORMULAS = True       # no CSV cell that a spreadsheet would run as a formula
-CHECK_CSV_CONTROLS = False      # the terminal check also on CSV written to stdout (estimate --format csv)
+CHECK_CSV_CONTROLS = True       # the terminal check also on CSV written to stdout (estimate --format csv)
 CONTROL = re.compile(r"[\x00-\x08\x0b-\x1f\x7f-\x9f]")  # C0 and C1 controls but tab and newline
 FORMULA_START = tuple("=+-@\t\r")
 

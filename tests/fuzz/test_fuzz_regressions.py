@@ -49,16 +49,16 @@ REGRESSIONS: list[tuple[str, Case, list[pytest.MarkDecorator]]] = [
          {"x": ("binary", [b"\xff", b"a", b"\xc3"]), "y": ("text", ["a", "b", "a"])},
          {**V5, "columns": {"x": {"type": "public"},
                             "y": {"type": "categorical", "categories": ["a", "b"], "epsilon": 1}}},
-         "parquet", "utf-8", "plain", 3), "extract.csv", "json"), [_being_fixed("output safety")]),
+         "parquet", "utf-8", "plain", 3), "extract.csv", "json"), []),
     # a manifest bound given as text: estimate formats it as a number (ValueError, exit 3)
     ("manifest bound as text, estimate",
      lambda r: check_manifest(r, ManifestCase("number to text", ("columns", 1, "mechanism", "bounds", 1)),
-                              "json", True), [_being_fixed("manifest parsing")]),
+                              "json", True), []),
     # a manifest eps replaced by an integer beyond any float: OverflowError in the manifest's checks (exit 3)
     ("manifest eps 10**400, estimate and validate",
      lambda r: check_manifest(r, ManifestCase("replace", ("columns", 3, "mechanism", "epsilon"), 10**400), "json",
                               True),
-     [_being_fixed("manifest parsing")]),
+     []),
     # privatize on a ledger whose arrays were zeroed: refused, but the nonce record was written (exit 2)
     ("ledger arrays zeroed, privatize",
      lambda r: check_ledger(r, LedgerCase("sql", "UPDATE arrays SET data = X'00';", True, True), "table",
@@ -81,7 +81,6 @@ def test_regression(run: Case, release: Release) -> None:
     run(release)
 
 
-@_being_fixed("terminal escapes in CSV output")
 def test_regression_csv_output_holds_no_control_characters(monkeypatch: pytest.MonkeyPatch) -> None:
     """A category with an escape sequence, decoded with `estimate --format csv` to stdout: the
     terminal check of the promise, also on CSV (fuzz_promise.CHECK_CSV_CONTROLS)."""
