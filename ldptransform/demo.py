@@ -97,9 +97,9 @@ def run_demo(folder: Path, out: Console, err: Console, nonce: str | None = None,
         show_estimates(result)
     else:
         out.print(result.to_frame().drop(columns=["estimand"]).to_string(index=False), markup=False)
-    import json
+    from .cli import json_text  # strict JSON, as every --format json output
 
-    (partner / "estimates.json").write_text(json.dumps(result.to_dict(), indent=2) + "\n")
+    (partner / "estimates.json").write_text(json_text(result.to_dict()))
     out.print("3. the steward's validation, with the raw data and the key:", markup=False)
     rep = validate(extract, raw=raw, key=key)
     for c in rep.checks:
