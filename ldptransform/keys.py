@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import hashlib
 import hmac
+import contextlib
 import os
 import secrets
 import stat
@@ -91,17 +92,27 @@ def new_key_file(path: Path) -> SecretKey:
     key = SecretKey.generate()
     text = f"{KEY_HEADER}\n{key._raw.hex()}\n"
     try:
-        fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+        write_new_file(path, text, 0o600)
     except OSError as err:
-        raise KeyFileError(f"cannot create key file {path}: {err.strerror}. "
-                           "Check that the folder is writable.") from None
+        raise KeyFileError(f"cannot create key file {path}: {err.strerror or 'the system refused'}. Nothing was "
+                           "kept; check that the folder is writable and has free space.") from None
+    return key
+
+
+def write_new_file(path: Path, text: str, mode: int) -> None:
+    """Write ``text`` (ASCII) into a new file created exclusively with ``mode``, synced to disk; a
+    half-written file is removed.  Raises OSError (FileExistsError if ``path`` exists)."""
+    fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, mode)
     try:
-        os.fchmod(fd, 0o600)
+        os.fchmod(fd, mode)
         os.write(fd, text.encode("ascii"))
         os.fsync(fd)
-    finally:
+    except OSError:
         os.close(fd)
-    return key
+        with contextlib.suppress(OSError):
+            path.unlink()
+        raise
+    os.close(fd)
 
 
 def shared_access(st: os.stat_result) -> str | None:

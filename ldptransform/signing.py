@@ -39,7 +39,7 @@ from cryptography.exceptions import InvalidSignature
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey, Ed25519PublicKey
 
 from .errors import KeyFileError, LdptError, ManifestError, OutputError
-from .keys import KEY_HEADER, shared_access
+from .keys import KEY_HEADER, shared_access, write_new_file
 
 SIGNING_KEY_HEADER = "ldptransform signing key v1"
 PUBLIC_KEY_HEADER = "ldptransform public signing key v1"
@@ -156,26 +156,16 @@ def public_key_path(path: Path) -> Path:
 
 
 def _create(path: Path, text: str, mode: int) -> None:
-    """Write ``text`` into a new file (exclusive create, ``mode``), synced; a half-written file is removed."""
+    """Write ``text`` into a new file (keys.write_new_file: exclusive create, ``mode``, synced; a
+    half-written file is removed)."""
     try:
-        fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, mode)
+        write_new_file(path, text, mode)
     except FileExistsError:
         raise SigningKeyError(f"{path} already exists; ldpt never overwrites a signing key or its public key. "
                               "Choose another path.") from None
     except OSError as err:
-        raise SigningKeyError(f"cannot create {path}: {err.strerror or 'the system refused'}. Check that the folder "
-                              "exists and is writable.") from None
-    try:
-        os.fchmod(fd, mode)
-        os.write(fd, text.encode("ascii"))
-        os.fsync(fd)
-    except OSError as err:
-        os.close(fd)
-        with contextlib.suppress(OSError):
-            path.unlink()
-        raise SigningKeyError(f"cannot write {path}: {err.strerror or 'the system refused'}. Nothing was kept; free "
-                              "disk space or choose another folder.") from None
-    os.close(fd)
+        raise SigningKeyError(f"cannot write {path}: {err.strerror or 'the system refused'}. Nothing was kept; check "
+                              "that the folder exists and is writable, and free disk space.") from None
 
 
 def new_signing_key_file(path: Path) -> SigningKey:
