@@ -73,6 +73,7 @@ class Fragment:
     rows: int
     size: int | None = None      # the file's size and modification time (ns) when the dataset was listed:
     mtime_ns: int | None = None  # read_fragment refuses a file that changed since (None: not known)
+    local_state: tuple[int, ...] | None = None  # a local file: its io.FileState then (status-change time, inode)
 
     @property
     def part_name(self) -> str:
@@ -102,9 +103,30 @@ class ParquetDataset:
             first = len(self.fragments)
             row0 = self._add_fragments(md, path, row0, fragment_rows)
             size, mtime = self._states.get(path, (None, None))
-            self.fragments[first:] = [replace(f, size=size, mtime_ns=mtime) for f in self.fragments[first:]]
+            local = self._local_state(path)
+            self.fragments[first:] = [replace(f, size=size, mtime_ns=mtime, local_state=local)
+                                      for f in self.fragments[first:]]
         assert self.schema is not None
         self.num_rows: int = row0
+
+    def _local_state(self, path: str) -> tuple[int, ...] | None:
+        """A local file's full state (io.FileState) as listed; None on other file systems."""
+        if not isinstance(self.fs, pafs.LocalFileSystem):
+            return None
+        from .io import file_state
+
+        state = file_state(Path(path), missing_ok=True)
+        size, mtime = self._states.get(path, (None, None))
+        return tuple(state) if (state.size, state.mtime_ns) == (size, mtime) else None
+
+    def check_unchanged(self) -> None:
+        """Refuse (a DataError) if any file of the dataset changed since it was listed (run after
+        every pass is done, before a release is published)."""
+        seen: set[str] = set()
+        for frag in self.fragments:
+            if frag.path not in seen:
+                seen.add(frag.path)
+                check_fragment_unchanged(self.fs, frag)
 
     def _list_files(self) -> list[tuple[str, str, int | None]]:
         """(path relative to the root, full path, size) of every Parquet file, in name order."""
@@ -202,11 +224,18 @@ def read_fragment(fs: pafs.FileSystem, frag: Fragment, columns: list[str], batch
 
 
 def check_fragment_unchanged(fs: pafs.FileSystem, frag: Fragment) -> None:
-    """Refuse a fragment whose file's size or modification time differs from when the dataset was
-    listed (a file rewritten or replaced while the release read the dataset)."""
+    """Refuse a fragment whose file's size or modification time (for a local file: also its
+    status-change time and inode, io.FileState) differs from when the dataset was listed (a file
+    rewritten or replaced while the release read the dataset)."""
+    from .io import changed_message, file_state
+
+    if frag.local_state is not None:
+        state = file_state(Path(frag.path), missing_ok=True)
+        if tuple(state) != frag.local_state:
+            raise DataError(changed_message(f"file {frag.path}", frag.local_state, state))
+        return
     if frag.size is None and frag.mtime_ns is None:
         return
-    from .io import changed_message
 
     try:
         info = fs.get_file_info(frag.path)

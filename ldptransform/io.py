@@ -14,6 +14,7 @@ from __future__ import annotations
 import contextlib
 import errno
 import hashlib
+import io
 import os
 import re
 import secrets
@@ -25,7 +26,7 @@ from collections.abc import Callable, Iterator
 from queue import Empty, Full, Queue
 from concurrent.futures import Future, ThreadPoolExecutor
 from pathlib import Path
-from typing import Any, Literal
+from typing import Any, Literal, NamedTuple
 
 import pyarrow as pa
 import pyarrow.csv as pacsv
@@ -64,6 +65,7 @@ class TableSource:
         self._delim = csv_delimiter
         self.dataset: ParquetDataset | None = None
         self.num_rows: int | None = None
+        self.content_sha256: str | None = None  # CSV: SHA-256 of the bytes its first full pass read
         self.schema: pa.Schema  # every file and dataset has one (a dataset's is its first file's)
         if is_uri(path) or self.path.is_dir():
             self.format = "parquet"
@@ -154,11 +156,28 @@ class TableSource:
         modification time differs, or (``bytes_read``) the reader did not stop where the file ended
         when it was opened.  Called after every full pass over the input, so that a release (and
         the ledger's pre-pass before it) is of the rows of one file, all of them."""
-        if self.dataset is not None or not hasattr(self, "_stat0"):
+        if self.dataset is not None:
+            self.dataset.check_unchanged()
+            return
+        if not hasattr(self, "_stat0"):
             return
         now = file_state(self.path, missing_ok=True)
-        if now != self._stat0 or (bytes_read is not None and bytes_read != self._stat0[0]):
+        if now != self._stat0 or (bytes_read is not None and bytes_read != self._stat0.size):
             raise DataError(changed_message(self.location, self._stat0, now, bytes_read))
+
+    @property
+    def digests_while_reading(self) -> bool:
+        """A CSV file: every full pass digests the bytes it parses (``content_sha256``)."""
+        return self.format == "csv" and self.dataset is None
+
+    def _passed(self, digest: str) -> None:
+        """A full CSV pass read bytes with this SHA-256: the first one is the input's digest, every
+        later pass must have read the very same bytes."""
+        if self.content_sha256 is None:
+            self.content_sha256 = digest
+        elif digest != self.content_sha256:
+            raise DataError(changed_message(self.location, self._stat0, file_state(self.path, missing_ok=True),
+                                            contents=True))
 
     def batches(self, columns: list[str], batch_rows: int,
                 csv_types: dict[str, pa.DataType] | None = None,
@@ -205,37 +224,104 @@ class TableSource:
             return
         try:
             types = {c: csv_types.get(c, pa.string()) for c in columns}
-            with pa.OSFile(str(self.path), "rb") as f, self._open_csv(columns, types, f) as reader:
+            with DigestingFile(self.path) as raw, pa.PythonFile(raw, mode="r") as f, \
+                    self._open_csv(columns, types, f) as reader:
                 for b in reader:
                     rows_done += b.num_rows
                     yield b
-                bytes_read = f.tell()
+                bytes_read = raw.tell()
+                digest = raw.hexdigest()
         except (pa.ArrowInvalid, pa.ArrowIOError, OSError) as err:
             self.check_unchanged()  # a file changed meanwhile is said to have changed
             raise DataError(self._csv_error(err, rows_done, columns)) from None
         self.check_unchanged(bytes_read)
+        self._passed(digest)
 
 
-def file_state(path: Path, missing_ok: bool = False) -> tuple[int, int]:
-    """(size in bytes, modification time in ns) of a file; (-1, -1) for a file gone (``missing_ok``)."""
+class DigestingFile(io.RawIOBase):
+    """A file read front to back whose bytes are hashed (SHA-256) as they are read: the CSV
+    reader's only way into a CSV input, so that a pass knows the exact bytes it parsed."""
+
+    def __init__(self, path: Path) -> None:
+        self._f = open(path, "rb")  # noqa: SIM115 (closed by close())
+        self._h = hashlib.sha256()
+        self._pos = 0
+
+    def readable(self) -> bool:
+        return True
+
+    def readinto(self, buf: Any) -> int:
+        n = self._f.readinto(buf) or 0
+        if n:
+            self._h.update(memoryview(buf)[:n])
+            self._pos += n
+        return n
+
+    def read(self, size: int | None = -1) -> bytes:
+        data = self._f.read(-1 if size is None else size)
+        self._h.update(data)
+        self._pos += len(data)
+        return data
+
+    def tell(self) -> int:
+        return self._pos
+
+    def hexdigest(self) -> str:
+        return self._h.hexdigest()
+
+    def close(self) -> None:
+        self._f.close()
+        super().close()
+
+
+class FileState(NamedTuple):
+    """What a release records of an input file when it opens it; ``GONE`` for a file removed or
+    renamed.
+
+    The status-change time (ctime) moves with every write, truncation or change of attributes and
+    cannot be set back by a user (unlike the modification time, which ``touch -r`` restores), so a
+    rewrite that keeps the size and the modification time still shows; device and inode show a
+    file replaced by another one under the same name."""
+
+    size: int
+    mtime_ns: int
+    ctime_ns: int = -1
+    dev: int = -1
+    ino: int = -1
+
+
+GONE = FileState(-1, -1)
+
+
+def file_state(path: Path, missing_ok: bool = False) -> FileState:
+    """The ``FileState`` of a file; ``GONE`` for a file that is not there (``missing_ok``)."""
     try:
         st = os.stat(path)
     except FileNotFoundError:
         if not missing_ok:
             raise
-        return (-1, -1)
-    return (st.st_size, st.st_mtime_ns)
+        return GONE
+    return FileState(st.st_size, st.st_mtime_ns, st.st_ctime_ns, st.st_dev, st.st_ino)
 
 
-def changed_message(location: str, before: tuple[int, int], after: tuple[int, int] | None,
-                    bytes_read: int | None = None) -> str:
-    """The refusal of an input that changed while a release read it (nothing is written)."""
+def changed_message(location: str, before: tuple[int, ...], after: tuple[int, ...] | None,
+                    bytes_read: int | None = None, *, contents: bool = False) -> str:
+    """The refusal of an input that changed while a release read it (nothing is written).
+    ``before``/``after``: ``FileState`` (or the (size, mtime) of a dataset's file); ``contents``:
+    two passes over the file read different bytes."""
     if after is not None and after[0] < 0:
         what = "it was removed or renamed"
+    elif after is not None and len(after) > 4 and len(before) > 4 and after[3:5] != before[3:5]:
+        what = "it was replaced by another file of the same name"
     elif after is not None and after[0] != before[0]:
         what = f"its size went from {before[0]} to {after[0]} bytes"
     elif after is not None and after[1] != before[1]:
         what = "its modification time changed"
+    elif after is not None and len(after) > 2 and len(before) > 2 and after[2] != before[2]:
+        what = ("it was written to or its attributes were changed (its status-change time moved, although its size "
+                "and modification time are as before)")
+    elif contents:
+        what = "two passes over it read different bytes"
     else:
         what = f"the reader stopped after {bytes_read} of its {before[0]} bytes"
     return (f"input {location} changed while the release was reading it ({what}), so the rows read are not one "

@@ -101,9 +101,14 @@ def check_one_row_per_person(src: Any, policy: LoadedPolicy, batch_rows: int, lo
     if not digests:
         return
     values = np.concatenate(digests)
-    uniq = np.unique(values)
-    repeats = len(values) - len(uniq)
-    if repeats:
+    check_repeats(len(values) - len(np.unique(values)), policy, location)
+
+
+def check_repeats(repeats: int, policy: LoadedPolicy, location: str) -> None:
+    """Refuse ``repeats`` rows whose subject another row has, when the policy declares one row per
+    person (the ledger's pre-pass counts them from its distinct subjects, without a pass of its own)."""
+    subject = policy.policy.subject_key
+    if repeats and policy.policy.output.one_row_per_person:
         raise DataError(f"policy {policy.source} declares output.one_row_per_person: true, but in input {location} "
                         f"{repeats} row(s) repeat a subject_key ({subject!r}) value that another row has (steward-"
                         "only figure). Give each person one row (aggregate or pick one row per person), or set "

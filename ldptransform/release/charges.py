@@ -158,7 +158,8 @@ def _refuse_over_budget(charges: LedgerCharges, opts: ReleaseOptions) -> None:
 
 def check_same_rows(charges: LedgerCharges | None, rows: int, location: str) -> None:
     """The release read as many rows as the ledger's pre-pass did (the input is read twice with a
-    ledger: each pass checks that the file did not change since it was opened; this is the last word)."""
+    ledger: each pass checks that the file did not change since it was opened, and a CSV's two
+    passes must read bytes of one digest; this also covers inputs that have no file state)."""
     if charges is not None and len(charges.row_within) != rows:
         raise DataError(f"input {location} changed while the release was reading it (the ledger's pre-pass read "
                         f"{len(charges.row_within)} rows, the release {rows}). Nothing was written. Let whatever "

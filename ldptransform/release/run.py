@@ -17,7 +17,7 @@ from ..ledger import LedgerCharges
 from ..manifest import Manifest
 from ..policy import LoadedPolicy
 from . import nonces
-from .central import check_one_row_per_person
+from .central import check_one_row_per_person, check_repeats
 from .charges import check_same_rows, precharge, record_release, rows_held
 from .columns import (
     ColumnPlan,
@@ -116,25 +116,40 @@ def _release(opts: ReleaseOptions, policy: LoadedPolicy, key: SecretKey, staged:
     plans = plan_columns(policy, src.column_names, source_location(src, opts))
     check_csv_markers(policy, src, plans)
     check_input_types(src, plans, policy, opts)
-    check_one_row_per_person(src, policy, opts.batch_rows, source_location(src, opts), check=staged.check)
+    if opts.ledger_path is None:  # with a ledger its pre-pass reads the subjects and checks this too
+        check_one_row_per_person(src, policy, opts.batch_rows, source_location(src, opts), check=staged.check)
     schema = output_schema(plans, src.schema, src.format)
     sampler = attach_randomness(plans, policy, key, opts.nonce)
     read_cols, subject_key = read_columns(plans, policy)
     job = PartJob(read_cols, opts.batch_rows, plans, schema, sampler, subject_key, dictionary_columns(src, plans),
                   order=tag_stream(key, opts.nonce) if policy.policy.output.row_order == "shuffled" else None,
                   public=frozenset(p.rc.name for p in plans if p.rc.type == "public"))
-    nonce_use = nonces.check(opts, policy, key, src, stop=staged.check)  # a reused nonce: refused before writing
+    # a reused nonce is refused before writing where the input's digest is known by then: a CSV
+    # file digests the bytes of every pass it is read in (the first pass gives the digest, every
+    # later one must read the same bytes), Parquet is digested in a pass of its own here
+    nonce_use: nonces.NonceUse | None = None
+    nonce_done = False
+    if not getattr(src, "digests_while_reading", False):
+        nonce_use, nonce_done = nonces.check(opts, policy, key, src, stop=staged.check), True
     charges = precharge(src, plans, policy, key, sampler, opts, check=staged.check)
+    if charges is not None:
+        check_repeats(len(charges.row_within) - len(charges.subjects), policy, source_location(src, opts))
+    if not nonce_done and getattr(src, "content_sha256", None) is not None:
+        nonce_use, nonce_done = nonces.check(opts, policy, key, src, stop=staged.check), True
     held = rows_held(charges, plans)
     staged.check()
     hold_destinations(staged, opts, diag_path)
     written = write_extract(job, src, held, opts, staged, on_progress)
     check_same_rows(charges, written.input_rows, source_location(src, opts))
+    if not nonce_done:  # a CSV read once: its digest is that of the bytes the extract was made from
+        nonce_use = nonces.check(opts, policy, key, src, stop=staged.check)
     manifest = build_manifest(policy, key, plans, written, opts)
     stage_text(staged, opts.manifest_path, manifest.to_json())
     diag = diagnostics(plans, written, opts, opts.manifest_path, charges, sampler is not None,
                        time.perf_counter() - t0)
     stage_text(staged, diag_path, json.dumps(diag, indent=2) + "\n", mode=0o600)
+    if hasattr(src, "check_unchanged"):
+        src.check_unchanged()  # the last word, after every pass: the input is still the file first opened
     release_id = _record(staged, charges, plans, manifest, opts)
     nonces.record(nonce_use)  # after the ledger: a release the ledger refuses leaves no nonce record
     move_into_place(staged, opts, release_id)
