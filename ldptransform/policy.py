@@ -827,6 +827,31 @@ def _check_yaml_labels(root: yaml.Node) -> None:
                                   f"(\"{item.value}\") to keep it as written", item.start_mark.line + 1)
 
 
+class _NumberText(str):
+    """A JSON number's text as written (``_check_json_labels``)."""
+
+
+def _check_json_labels(text: str) -> None:
+    """Categories written as JSON numbers whose text the policy cannot keep: 1.50 is the number 1.5
+    and 1e3 the number 1000, so the label would be 1.5 or 1000 and never match the data's 1.50 or
+    1e3 (refused with the column and entry, as YAML's are)."""
+    data = json.loads(text, parse_float=_NumberText)
+    columns = data.get("columns") if isinstance(data, dict) else None
+    if not isinstance(columns, dict):
+        return
+    for name, col in columns.items():
+        cats = col.get("categories") if isinstance(col, dict) else None
+        if not isinstance(cats, list):
+            continue
+        for i, item in enumerate(cats, 1):
+            if isinstance(item, _NumberText) and category_label(float(item)) != item:
+                at = re.search(r"(?<![0-9.eE+-])" + re.escape(item) + r"(?![0-9.eE+-])", text)
+                raise LoadProblem(f"column {name!r}, categories entry {i}: the JSON number {item} is the number "
+                                  f"{category_label(float(item))}, not the text {item}; write it as a string "
+                                  f"(\"{item}\") to keep it as written",
+                                  None if at is None else text.count("\n", 0, at.start()) + 1)
+
+
 def _format_loc(loc: tuple[Any, ...]) -> str:
     parts = [str(p) for p in loc]
     if len(parts) >= 2 and parts[0] == "columns":
@@ -890,8 +915,11 @@ def load_policy(path: Path | str) -> LoadedPolicy:
         raise PolicyError(f"policy file {path} cannot be read ({getattr(err, 'strerror', None) or 'read error'}). "
                           "Check the path and its permissions.") from None
     try:
-        data = (load_json(text, MAX_POLICY_VALUES) if path.suffix.lower() == ".json"
-                else load_yaml(text, _check_yaml_labels, MAX_POLICY_VALUES))
+        if path.suffix.lower() == ".json":
+            data = load_json(text, MAX_POLICY_VALUES)
+            _check_json_labels(text)
+        else:
+            data = load_yaml(text, _check_yaml_labels, MAX_POLICY_VALUES)
     except LoadProblem as err:
         where = f" (line {err.line})" if err.line is not None else ""
         raise PolicyError(f"policy file {path}{where}: {err.text}. Fix the policy and run `ldpt policy check` "

@@ -163,6 +163,22 @@ def test_quoted_and_plain_categories_are_accepted(tmp_path: Path, ldpt: Any) -> 
     assert ldpt("policy", "check", path).returncode == 0
 
 
+@pytest.mark.parametrize(("written", "becomes"), [("1.50", "number 1.5"), ("2.0", "number 2"),
+                                                  ("1e3", "number 1000"), ("-0.0", "number 0")])
+def test_json_number_category_that_changes_is_refused(tmp_path: Path, ldpt: Any, written: str,
+                                                      becomes: str) -> None:
+    """A JSON category written as a number whose text is not the label it becomes (1.50 is 1.5) is
+    refused like YAML's, naming the line; 3.5, 7 and strings are kept."""
+    path = tmp_path / "policy.json"
+    path.write_text('{"budget": {"epsilon_per_row": 1},\n "columns": {\n  "c": {"type": "categorical", "epsilon": 1,\n'
+                    f'   "categories": [3.5, 7, "x", {written}]}}}}}}\n', encoding="utf-8")
+    msg = assert_user_error(ldpt("policy", "check", path),
+                            [str(path), "(line 4)", "'c'", "categories entry 4", becomes, "string"])
+    assert f'"{written}"' in msg
+    path.write_text(path.read_text(encoding="utf-8").replace(f", {written}]", f', "{written}"]'), encoding="utf-8")
+    assert ldpt("policy", "check", path).returncode == 0
+
+
 @pytest.mark.parametrize("label", ["North Works ", " North Works", "North Works\t"])
 def test_padded_category_is_refused(survey: dict[str, Path], ldpt: Any, label: str) -> None:
     """The data's values are trimmed before they are matched (release/encode.py), so a padded
