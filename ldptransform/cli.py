@@ -289,6 +289,26 @@ class Engine(StrEnum):
     dask = "dask"
 
 
+def _csv_extract_caution(manifest: Any) -> str:
+    """A CSV extract that a spreadsheet could act on: labels from the policy that read as formulas,
+    and public columns, whose values are written as they are (their cells may hold such text)."""
+    if manifest.extract.format != "csv":
+        return ""
+    from .results import formula_like
+
+    odd = [f"{c.name} ({lab!r})" for c in manifest.columns for lab in (c.labels or []) if formula_like(lab)]
+    public = list(manifest.privacy.public_columns)
+    if not odd and not public:
+        return ""
+    what = []
+    if odd:
+        what.append("labels that start like a formula: " + ", ".join(odd[:5]) + (" ..." if len(odd) > 5 else ""))
+    if public:
+        what.append("public column(s) written as they are, so any of their cells may: " + ", ".join(public))
+    return ("; CAUTION: the CSV extract holds " + "; and ".join(what) + ". A spreadsheet runs a cell that starts "
+            "with =, +, - or @ as a formula: tell partners to import it as text, or release the extract as Parquet")
+
+
 @app.command()
 def privatize(
     input: str = typer.Argument(..., help="Raw table: a .csv or .parquet file, or a Parquet dataset (a folder, "
@@ -370,6 +390,7 @@ def privatize(
     if res.manifest.privacy.row_order == "as-input":
         caution += ("; CAUTION: the rows keep the input's order (policy output.row_order: as-input): if the input "
                     "is sorted or grouped by anything, a row's neighbours tell about it")
+    caution += _csv_extract_caution(res.manifest)
     # steward-only counts of the values changed before randomizing (the diagnostics file has them too)
     changed = "; values changed before randomizing (steward-only): " + "; ".join(res.column_counts) \
         if res.column_counts else ""

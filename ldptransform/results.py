@@ -483,6 +483,11 @@ _FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
 _PLAIN_NUMBER = re.compile(r"[-+]?(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?")
 
 
+def formula_like(text: str) -> bool:
+    """Text a spreadsheet would read as a formula (``spreadsheet_safe`` makes it inert)."""
+    return text.startswith(_FORMULA_START) and not _PLAIN_NUMBER.fullmatch(text)
+
+
 def spreadsheet_safe(text: str) -> str:
     """A text cell of a CSV file meant to be opened in a spreadsheet, made inert: text that
     starts with ``=``, ``+``, ``-``, ``@``, a tab or a carriage return (which a spreadsheet
@@ -493,7 +498,7 @@ def spreadsheet_safe(text: str) -> str:
     the CSV cannot act on a terminal it is printed to either."""
     from .errors import terminal_safe
 
-    if text.startswith(_FORMULA_START) and not _PLAIN_NUMBER.fullmatch(text):
+    if formula_like(text):
         text = "'" + text
     return terminal_safe(text, keep_layout=True)
 

@@ -163,6 +163,24 @@ def test_privatize_summary_escapes_paths_and_column_names(hostile: dict[str, Any
     assert "extract\\x1b[2J.parquet" in res.stderr and terminal_safe(NOTE) in res.stderr
 
 
+def test_csv_extract_with_formula_text_is_cautioned(hostile: dict[str, Any], tmp_path: Path,
+                                                    private_dir: Path) -> None:
+    """A CSV extract whose policy labels start like a formula, or that holds public columns (their
+    cells are written as they are), gets a caution on the steward's summary; a Parquet one does not."""
+    out = tmp_path / "extract.csv"
+    res = run_cli("privatize", hostile["raw"], "--policy", hostile["policy"], "--key", hostile["key"], "--out", out,
+                  private=private_dir)
+    assert res.returncode == 0, res.stderr
+    assert_terminal_safe(res)
+    text = " ".join(res.stderr.split())
+    assert "CAUTION: the CSV extract holds labels that start like a formula" in text
+    assert "dept ('=HYPERLINK" in text and "grade ('=1+1')" in text
+    assert "'-5'" not in text  # a number is read as a number, never as a formula
+    assert f"public column(s) written as they are, so any of their cells may: {terminal_safe(NOTE)}" in text
+    assert "import it as text" in text
+    assert "CSV extract holds" not in hostile["privatize"].stderr
+
+
 @pytest.mark.parametrize("args", [
     ["estimate", "{out}"],
     ["estimate", "{out}", "--crosstab", "dept:grade", "--mean-by", PAY + ":dept", "--range", "score:2..5",
