@@ -41,13 +41,15 @@ spread of the true values).  Intervals use the normal approximation.
 
 from __future__ import annotations
 
+import contextlib
+import contextvars
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
 from statistics import NormalDist
 from collections.abc import Sequence
 from typing import Any
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 
 import numpy as np
 import pyarrow as pa
@@ -414,10 +416,26 @@ def _empty_stats(manifest: Manifest, an: Analyses) -> Accumulated:
     return Accumulated(manifest, 0, cols, xt, mb, [])
 
 
+# Told the rows decoded, batch by batch (``on_progress`` of estimate and validate; rows_told)
+_rows_told: contextvars.ContextVar[Callable[[int], None] | None] = contextvars.ContextVar("ldpt_rows_told",
+                                                                                          default=None)
+
+
+@contextlib.contextmanager
+def rows_told(on_progress: Callable[[int], None] | None) -> Iterator[None]:
+    """Inside this block every batch of rows decoded is told to ``on_progress`` (its row count)."""
+    token = _rows_told.set(on_progress)
+    try:
+        yield
+    finally:
+        _rows_told.reset(token)
+
+
 def _add_batches(acc: Accumulated, batches: Iterator[tuple[pa.RecordBatch, dict[str, list]]], check_alphabet: bool,
                  where: str, row0: int = 0) -> None:
     """Add decoded batches to ``acc`` (``where`` names the extract and manifest in errors)."""
     entries = {c.name: c for c in acc.manifest.columns if c.mechanism is not None}
+    tell = _rows_told.get()
     for batch, arrays in batches:
         masks = {name: reported_mask(a) for name, a in arrays.items()}
         for name, arrs in arrays.items():
@@ -438,6 +456,8 @@ def _add_batches(acc: Accumulated, batches: Iterator[tuple[pa.RecordBatch, dict[
             both = _both(masks[y], masks[g], batch.num_rows)
             st.add(_take(arrays[y], both), _take(arrays[g], both))
         acc.rows += batch.num_rows
+        if tell is not None:
+            tell(batch.num_rows)
 
 
 def _merge_into(total: Accumulated, acc: Accumulated) -> None:
@@ -498,8 +518,11 @@ def _read_into(acc: Accumulated, manifest: Manifest, an: Analyses, src: TableSou
 
         parts = map_fragments(accumulate_fragment, manifest, an, src.dataset, batch_rows, check_alphabet, where,
                               scheduler)
+        tell = _rows_told.get()
         for part in parts:
             _merge_into(acc, part)
+            if tell is not None:
+                tell(part.rows)
     else:
         _add_batches(acc, iter_column_arrays(manifest, src, batch_rows), check_alphabet, where)
 
@@ -822,12 +845,13 @@ def estimate(extract: Path | str | Sequence[Path | str], manifest_path: Path | s
              confidence: float = 0.95, batch_rows: int = DECODE_BATCH_ROWS,
              crosstabs: list[tuple[str, str]] | None = None, mean_by: list[tuple[str, str]] | None = None,
              quantiles: list[float] | None = None, ranges: list[tuple[str, float, float]] | None = None,
-             consistency: str = "norm-sub", engine: str = "local", scheduler: str | None = None) -> EstimateResult:
+             consistency: str = "norm-sub", engine: str = "local", scheduler: str | None = None,
+             on_progress: Callable[[int], None] | None = None) -> EstimateResult:
     """Unbiased frequencies and means (and the requested joint analyses, quantiles and
     ranges) with SE and CI, as an ``EstimateResult`` (``to_dict()``: the JSON shape of
     ``ldpt estimate --format json``; ``to_frame()``: one row per statistic).  ``extract`` may
     be a list: extracts with identical mechanism specs are merged by adding their sufficient
-    statistics."""
+    statistics.  ``on_progress`` is told the rows decoded, batch by batch (a count each time)."""
     z_value(confidence)
     extracts: list[Any] = list(extract) if isinstance(extract, (list, tuple)) else [extract]
     manifests: list[Any] | None
@@ -843,6 +867,7 @@ def estimate(extract: Path | str | Sequence[Path | str], manifest_path: Path | s
                   consistency=consistency)
     if engine not in ("local", "dask"):
         raise UsageError(f"--engine {engine!r} is not known; use local or dask.")
-    acc = accumulate_many([Path(e) for e in extracts], manifests, analyses=an, batch_rows=batch_rows,
-                          engine=engine, scheduler=scheduler)
+    with rows_told(on_progress):
+        acc = accumulate_many([Path(e) for e in extracts], manifests, analyses=an, batch_rows=batch_rows,
+                              engine=engine, scheduler=scheduler)
     return report(acc.manifest, acc.columns, acc.rows, confidence, an, acc)

@@ -12,6 +12,7 @@ size either.
 from __future__ import annotations
 
 import contextlib
+import contextvars
 import errno
 import hashlib
 import io
@@ -238,6 +239,12 @@ class TableSource:
         self._passed(digest)
 
 
+# Told the bytes read so far by each pass over a CSV input (the command line's progress); called
+# from the CSV reader's threads, once per block
+csv_bytes_read: contextvars.ContextVar[Callable[[int], None] | None] = contextvars.ContextVar(
+    "ldpt_csv_bytes_read", default=None)
+
+
 class DigestingFile(io.RawIOBase):
     """A file read front to back whose bytes are hashed (SHA-256) as they are read: the CSV
     reader's only way into a CSV input, so that a pass knows the exact bytes it parsed."""
@@ -246,6 +253,7 @@ class DigestingFile(io.RawIOBase):
         self._f = open(path, "rb")  # noqa: SIM115 (closed by close())
         self._h = hashlib.sha256()
         self._pos = 0
+        self._told = csv_bytes_read.get()  # the command line's progress, told the bytes read so far
 
     def readable(self) -> bool:
         return True
@@ -255,12 +263,16 @@ class DigestingFile(io.RawIOBase):
         if n:
             self._h.update(memoryview(buf)[:n])
             self._pos += n
+            if self._told is not None:
+                self._told(self._pos)
         return n
 
     def read(self, size: int | None = -1) -> bytes:
         data = self._f.read(-1 if size is None else size)
         self._h.update(data)
         self._pos += len(data)
+        if data and self._told is not None:
+            self._told(self._pos)
         return data
 
     def tell(self) -> int:

@@ -15,6 +15,7 @@ import json
 import math
 import re
 import tempfile
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 from statistics import NormalDist
@@ -27,7 +28,7 @@ import pyarrow.compute as pc
 from . import mechanisms as mech
 from .distribution import Distribution
 from .errors import LdptError, UsageError
-from .estimate import Analyses, accumulate, report, z_value
+from .estimate import Analyses, accumulate, report, rows_told, z_value
 from .integrity import check_extract
 from .io import TableSource
 from .keys import SecretKey
@@ -251,13 +252,15 @@ def _true_stats(raw: Path, manifest: Manifest, dists: dict[str, Distribution] | 
 def validate(extract: Path | str, manifest_path: Path | str | None = None, *, raw: Path | str | None = None,
              key: SecretKey | None = None, confidence: float = 0.95, quantiles: list[float] | None = None,
              ranges: list[tuple[str, float, float]] | None = None,
-             public_key: Path | str | None = None) -> ValidationReport:
+             public_key: Path | str | None = None,
+             on_progress: Callable[[int], None] | None = None) -> ValidationReport:
     """Check a release (``ValidationReport``: ``ok``, ``checks``, and with ``raw`` and ``key``
     the calibration).  The calibration checks every statistic the columns give: frequencies,
     means, the ``quantiles`` (default CALIBRATION_QUANTILES) and, per column with a
     distribution, the ``ranges`` asked for it (COLUMN, LOW, HIGH), else its bounds cut into
     CALIBRATION_RANGE_PARTS equal ranges.  With ``public_key`` (the steward's public signing key
-    file) the "signature" check verifies the manifest's signature (signing.check_signature)."""
+    file) the "signature" check verifies the manifest's signature (signing.check_signature).
+    ``on_progress`` is told the extract's rows as they are decoded, batch by batch (a count each time)."""
     _check_calibration_options(raw, quantiles, ranges)
     extract = Path(extract)
     mpath = Path(manifest_path) if manifest_path else default_manifest_path(extract)
@@ -287,7 +290,8 @@ def validate(extract: Path | str, manifest_path: Path | str | None = None, *, ra
         cols_ok = src.column_names == manifest.extract.columns
         rep.add("columns", cols_ok, "the extract has exactly the columns the manifest lists" if cols_ok else
                 f"extract columns {src.column_names} differ from the manifest's {manifest.extract.columns}")
-        _, stats, rows = accumulate(extract, mpath, check_alphabet=False)
+        with rows_told(on_progress):
+            _, stats, rows = accumulate(extract, mpath, check_alphabet=False)
     except LdptError as err:
         if "rows but manifest" in str(err):
             rep.add("row count", False, str(err))
