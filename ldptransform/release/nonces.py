@@ -7,9 +7,11 @@ folder, in ``nonces.jsonl`` (``io.private_dir()``, mode 0700; the file itself 06
 line per release, appended under an exclusive ``fcntl.flock`` of the file, holding
 
 * ``nonce`` and ``key_fingerprint`` (a nonce is only reused if the key is the same too),
-* ``input``: its ``kind`` (``file``, ``dataset`` or ``dask-dataframe``) and ``sha256``: of the
-  file's bytes; for a Parquet dataset, of the lines ``NAME SHA256 BYTES`` of its files in
-  sorted order (``files`` lists them); a dask DataFrame cannot be digested (``sha256`` null),
+* ``input``: its ``kind`` (``file``, ``dataset``, ``pandas-dataframe``, ``arrow-table``,
+  ``arrow-stream`` or ``dask-dataframe``) and ``sha256``: of the file's bytes; for a Parquet
+  dataset, of the lines ``NAME SHA256 BYTES`` of its files in sorted order (``files`` lists
+  them); for a table in memory, of the Arrow IPC stream of its rows as read (memory.py); a dask
+  DataFrame cannot be digested (``sha256`` null),
 * ``policy_sha256`` (``Policy.sha256()``, as in the manifest), ``extract`` and ``time_utc``.
 
 ``check`` runs before anything is written: a nonce already recorded with the same key is
@@ -23,8 +25,10 @@ neither refused by nor recorded in this state.
 
 Cost: a CSV file costs no pass of its own: the reader digests the bytes of every pass it makes
 (``io.DigestingFile``), and the record takes the digest of the bytes the extract was made from
-(checked then, after the extract is staged, when no earlier pass was made).  A Parquet file or
-dataset is read once more, through hashlib in 8 MiB chunks (measured in README.md).
+(checked then, after the extract is staged, when no earlier pass was made); so does a table in
+memory (``memory.MemorySource``).  A Parquet file or dataset is read once more, through hashlib
+in 8 MiB chunks (measured in README.md).  The digest never leaves the steward's record: a digest
+of the raw data would let a partner confirm a guessed table.
 """
 
 from __future__ import annotations
@@ -80,6 +84,9 @@ class NonceUse:
 def input_digest(src: Any, opts: ReleaseOptions, stop: Callable[[], None] | None = None) -> dict[str, Any]:
     """The ``input`` entry of a release: kind and digest (None for a dask DataFrame).  ``stop`` is
     called between chunks (a stop signal ends the digest there)."""
+    if opts.memory_kind is not None:  # memory.MemorySource: digested in its first full pass
+        digest = src.digest(stop)
+        return {"kind": src.kind, "sha256": digest, "rows": src.num_rows}
     if opts.frame_input:
         return {"kind": "dask-dataframe", "sha256": None}
     ds = getattr(src, "dataset", None)
@@ -168,10 +175,17 @@ def check(opts: ReleaseOptions, policy: LoadedPolicy, key: SecretKey, src: Any, 
     if _rederiving.get():
         return None
     entry = {"nonce": opts.nonce, "key_fingerprint": key.fingerprint(), "input": input_digest(src, opts, stop),
-             "policy_sha256": policy.policy.sha256(), "extract": str(opts.out), "input_location": opts.input_text}
+             "policy_sha256": policy.policy.sha256(), "extract": opts.out_text, "input_location": opts.input_text}
     path = state_path()
     _conflict(entry, _read(path))
     return NonceUse(path, entry)
+
+
+def records_of(nonce: str, key_fingerprint: str, policy_sha256: str) -> list[dict[str, Any]]:
+    """The recorded releases of ``nonce`` under this key and this policy (what an idempotent rerun
+    compares the current input's digest with)."""
+    return [r for r in _read(state_path()) if r.get("nonce") == nonce and r.get("key_fingerprint") == key_fingerprint
+            and r.get("policy_sha256") == policy_sha256]
 
 
 def record(use: NonceUse | None) -> None:

@@ -40,21 +40,43 @@ class ReleaseOptions:
     scheduler: str | None
     dataset_out: bool             # ``out`` names a folder: a Parquet dataset of parts
     fmt_out: FileFormat
+    idempotent: bool = False      # an identical release already published is a no-op (release/rerun.py)
+    nonce_given: bool = False     # the caller chose the nonce (a rerun must then be of that nonce)
+    extract_text: str | None = None  # how the nonce record names the extract (None: its path)
+
+    @property
+    def memory_kind(self) -> str | None:
+        """The kind of an in-memory input (memory.KINDS: a pandas DataFrame, a pyarrow Table or
+        RecordBatchReader); None for a path, a URI or a dask DataFrame."""
+        if isinstance(self.input, (str, Path)):
+            return None
+        from ..memory import input_kind
+
+        return input_kind(self.input)
 
     @property
     def frame_input(self) -> bool:
         """The input is a dask DataFrame (``engine_dask.privatize_frame``)."""
-        return not isinstance(self.input, (str, Path))
+        return not isinstance(self.input, (str, Path)) and self.memory_kind is None
 
     @property
     def input_text(self) -> str:
+        if self.memory_kind is not None:
+            from ..memory import KINDS
+
+            return KINDS[self.memory_kind]
         return "a dask DataFrame" if self.frame_input else str(self.input)
+
+    @property
+    def out_text(self) -> str:
+        """How the steward's records name the extract."""
+        return self.extract_text if self.extract_text is not None else str(self.out)
 
     @classmethod
     def of(cls, input_path: Any, policy: LoadedPolicy, out: Path | str, *, manifest_path: Path | str | None,
            diagnostics_path: Path | str | None, batch_rows: int, overwrite: bool, nonce: str | None,
            ledger_path: Path | str | None, allow_partial: bool, engine: str, scheduler: str | None,
-           fragment_rows: int | None) -> ReleaseOptions:
+           fragment_rows: int | None, idempotent: bool = False) -> ReleaseOptions:
         from ..dataset import DEFAULT_FRAGMENT_ROWS, is_uri
 
         if isinstance(input_path, (str, Path)) and not is_uri(input_path):
@@ -65,6 +87,11 @@ class ReleaseOptions:
         fragment_rows = DEFAULT_FRAGMENT_ROWS if fragment_rows is None else int(fragment_rows)
         _check_sizes(batch_rows, fragment_rows)
         _check_engine(engine, scheduler, out, dataset_out)
+        if idempotent and overwrite:
+            raise OptionError("privatize(idempotent=True, overwrite=True)",
+                              "{idempotent} and {overwrite} ask for opposite things: {idempotent} keeps an identical "
+                              "release already published (and refuses a different one), {overwrite} replaces "
+                              "whatever is there with a new release. Give one of them.")
         cap = policy.policy.budget.lifetime_epsilon
         return cls(input=input_path, out=out,
                    manifest_path=Path(manifest_path) if manifest_path else default_manifest_path(out),
@@ -72,7 +99,7 @@ class ReleaseOptions:
                    batch_rows=batch_rows, fragment_rows=fragment_rows, overwrite=overwrite,
                    nonce=_nonce(nonce), ledger_path=_ledger(policy, ledger_path, allow_partial, cap),
                    lifetime_epsilon=cap, allow_partial=allow_partial, engine=engine, scheduler=scheduler,
-                   dataset_out=dataset_out, fmt_out=fmt_out)
+                   dataset_out=dataset_out, fmt_out=fmt_out, idempotent=idempotent, nonce_given=bool(nonce))
 
 
 def _check_sizes(batch_rows: int, fragment_rows: int) -> None:

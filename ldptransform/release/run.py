@@ -11,12 +11,12 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from ..io import StagedFiles, disk_full_error
+from ..io import StagedFiles, disk_full_error, private_dir
 from ..keys import SecretKey
 from ..ledger import LedgerCharges
 from ..manifest import Manifest
 from ..policy import LoadedPolicy
-from . import nonces
+from . import nonces, rerun
 from .central import check_one_row_per_person, check_repeats
 from .charges import check_same_rows, precharge, record_release, rows_held
 from .columns import (
@@ -64,6 +64,10 @@ class ReleaseResult:
     # (columns.counts_text), and the warnings above columns.WARN_SHARE of the rows
     column_counts: tuple[str, ...] = ()
     warnings: tuple[str, ...] = ()
+    # idempotent=True found this very release already published: nothing was written, charged or
+    # recorded; ``manifest`` is the published one, and ``diagnostics_path`` the diagnostics path given
+    # (else the steward's private folder, where the published release's diagnostics are by default)
+    already_published: bool = False
 
 
 def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey, out: Path | str, *,
@@ -71,7 +75,7 @@ def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey
               batch_rows: int = DEFAULT_BATCH_ROWS, overwrite: bool = False, nonce: str | None = None,
               on_progress: Callable[[int], None] | None = None, ledger_path: Path | str | None = None,
               allow_partial: bool = False, engine: str = "local", scheduler: str | None = None,
-              fragment_rows: int | None = None) -> ReleaseResult:
+              fragment_rows: int | None = None, idempotent: bool = False) -> ReleaseResult:
     """Privatize ``input_path`` under ``policy`` into ``out`` (+ manifest, + private diagnostics).
 
     With a ledger (``ledger_path``, or the default path when the policy sets
@@ -81,8 +85,13 @@ def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey
     and manifest are staged and before they are renamed into place: a refused record leaves
     nothing; a crash between the ledger commit and the rename leaves an over-count (safe side).
 
-    ``input_path`` may be a file, a Parquet dataset (folder or URI; dataset.py) or, through
-    ``engine_dask.privatize_frame``, a dask DataFrame.  An ``out`` without a file extension
+    ``input_path`` may be a file, a Parquet dataset (folder or URI; dataset.py), a pandas
+    DataFrame, a pyarrow Table or RecordBatchReader (memory.py: typed columns, the index only
+    where the policy names it, a reader streamed) or, through ``engine_dask.privatize_frame``, a
+    dask DataFrame.  ``idempotent``: when the destination already holds this very release (same
+    key, policy, nonce record entry and input digest; release/rerun.py) return it without writing,
+    charging or recording anything (``ReleaseResult.already_published``); a different release
+    there is refused (``OutputExistsError``); not with ``overwrite``.  An ``out`` without a file extension
     writes a Parquet dataset of parts of at most ``fragment_rows`` rows; ``engine="dask"``
     writes those parts on dask workers (``scheduler``: a running cluster's address; None: a
     local cluster), byte for byte as the local engine does."""
@@ -90,7 +99,14 @@ def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey
     opts = ReleaseOptions.of(input_path, policy, out, manifest_path=manifest_path, diagnostics_path=diagnostics_path,
                              batch_rows=batch_rows, overwrite=overwrite, nonce=nonce, ledger_path=ledger_path,
                              allow_partial=allow_partial, engine=engine, scheduler=scheduler,
-                             fragment_rows=fragment_rows)
+                             fragment_rows=fragment_rows, idempotent=idempotent)
+    return run_release(opts, policy, key, on_progress, t0)
+
+
+def run_release(opts: ReleaseOptions, policy: LoadedPolicy, key: SecretKey,
+                on_progress: Callable[[int], None] | None = None, t0: float | None = None) -> ReleaseResult:
+    """The release ``opts`` describes (``privatize`` once its options are checked)."""
+    t0 = time.perf_counter() if t0 is None else t0
     # the stop-signal guard covers the whole release, the passes over the input before anything is
     # written (one row per person, the ledger's pre-pass) included: a stop ends it cleanly
     staged = StagedFiles()
@@ -110,12 +126,20 @@ def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey
 def _release(opts: ReleaseOptions, policy: LoadedPolicy, key: SecretKey, staged: StagedFiles,
              on_progress: Callable[[int], None] | None, t0: float) -> ReleaseResult:
     src = open_source(opts, policy)
+    if hasattr(src, "close"):
+        staged.on_exit(src.close)  # a spooled copy of a streamed input is removed however the release ends
     check_not_the_input(opts)
+    if opts.idempotent and rerun.published(opts):
+        manifest = rerun.published_release(opts, policy, key, src, stop=staged.check)
+        return ReleaseResult(manifest, opts.out, opts.manifest_path, opts.diagnostics_path or private_dir(),
+                             time.perf_counter() - t0, already_published=True)
     diag_path = check_destinations(opts)
     check_paths_apart(opts, policy, key, diag_path)
     plans = plan_columns(policy, src.column_names, source_location(src, opts))
     check_csv_markers(policy, src, plans)
     check_input_types(src, plans, policy, opts)
+    if hasattr(src, "prepare"):  # a streamed input read more than once is spooled privately first
+        src.prepare(_passes(opts, policy), stop=staged.check)
     if opts.ledger_path is None:  # with a ledger its pre-pass reads the subjects and checks this too
         check_one_row_per_person(src, policy, opts.batch_rows, source_location(src, opts), check=staged.check)
     schema = output_schema(plans, src.schema, src.format)
@@ -170,3 +194,11 @@ def _record(staged: StagedFiles, charges: LedgerCharges | None, plans: list[Colu
     staged.check()
     assert opts.ledger_path is not None
     return record_release(opts.ledger_path, charges, plans, manifest, opts.lifetime_epsilon)
+
+
+def _passes(opts: ReleaseOptions, policy: LoadedPolicy) -> int:
+    """How many times the release reads its input: the extract's pass, and before it the ledger's
+    pre-pass or (without a ledger) the one-row-per-person check."""
+    extra = opts.ledger_path is not None or (policy.policy.output.one_row_per_person and
+                                             policy.policy.subject_key is not None)
+    return 2 if extra else 1

@@ -1,5 +1,6 @@
-"""Where a release's rows come from: a file or Parquet dataset (``io.TableSource``) or a dask
-DataFrame (``engine_dask.FrameSource``), and the checks that need the input's layout."""
+"""Where a release's rows come from: a file or Parquet dataset (``io.TableSource``), a pandas
+DataFrame, pyarrow Table or RecordBatchReader (``memory.MemorySource``) or a dask DataFrame
+(``engine_dask.FrameSource``), and the checks that need the input's layout."""
 
 from __future__ import annotations
 
@@ -17,6 +18,13 @@ from .options import ReleaseOptions
 
 def open_source(opts: ReleaseOptions, policy: LoadedPolicy) -> Any:
     """The input as a source of record batches (``batches``, ``schema``, ``column_names``...)."""
+    if opts.memory_kind is not None:
+        from ..memory import MemorySource
+
+        names = set(policy.by_name)
+        if policy.policy.subject_key is not None:
+            names.add(policy.policy.subject_key)
+        return MemorySource(opts.input, index_columns=frozenset(names))
     if opts.frame_input:
         from ..engine_dask import FrameSource
 
