@@ -5,7 +5,9 @@ Public Python API::
     from ldptransform import load_policy, load_key, privatize, estimate, validate
     policy = load_policy("policy.yaml")
     key = load_key("release.key")
-    result = privatize("survey.csv", policy, key, "extract.parquet")
+    result = privatize("survey.csv", policy, key, "extract.parquet")   # or a pandas DataFrame, a pyarrow
+                                                    # Table or RecordBatchReader; idempotent=True for nightly jobs
+    frame, manifest = privatize_to_memory(df, policy, key)  # the privatized table in memory (docs/python-api.md)
     figures = estimate("extract.parquet")          # EstimateResult: .to_dict() as `--format json`, .to_frame()
     report = validate("extract.parquet")           # report.ok, report.checks
 """
@@ -14,11 +16,13 @@ from ._version import __version__
 from .errors import LdptError
 from .estimate import estimate
 from .keys import SecretKey, load_key, new_key_file
+from .memory import InMemoryRelease, privatize_to_memory
 from .policy import load_policy, parse_policy
 from .release import privatize
 from .validate import validate
 
 __all__ = [
+           "InMemoryRelease",
            "LdptError",
            "SecretKey",
            "__version__",
@@ -28,5 +32,6 @@ __all__ = [
            "new_key_file",
            "parse_policy",
            "privatize",
+           "privatize_to_memory",
            "validate",
 ]

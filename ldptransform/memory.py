@@ -21,8 +21,10 @@ DataFrame is never copied whole.  Column types are normalized once, for the whol
 
 The input's digest for the steward's nonce record (release/nonces.py) is the SHA-256 of the
 Arrow IPC stream of the normalized chunks (schema without metadata, then the chunks of
-``CHUNK_ROWS`` rows), computed during the first full pass a release makes, so it costs no pass of
-its own.  A RecordBatchReader can be read only once: when a release needs more than one pass (a
+``CHUNK_ROWS`` rows, each column copied afresh so that only its values count, not its buffers'
+layout), computed during the first full pass a release makes, so it costs no pass of its own:
+the same rows with the same column types have one digest whether they come as a DataFrame, a
+Table or a reader, in any chunks.  A RecordBatchReader can be read only once: when a release needs more than one pass (a
 ledger's pre-pass, the one-row-per-person check), it is first spooled, in that same single pass,
 to a private Arrow IPC file in the steward's private folder (mode 0600, removed when the release
 ends, on error or stop signal too), and every pass reads that file.
@@ -116,7 +118,10 @@ class _StreamDigest:
         self._writer = pa.ipc.new_stream(self._file, schema)
 
     def add(self, batch: pa.RecordBatch) -> None:
-        self._writer.write_batch(batch)
+        # each column copied afresh first: its IPC bytes then depend only on its values, not on how
+        # its buffers were laid out (a slice of a longer array, a validity bitmap without nulls)
+        self._writer.write_batch(pa.RecordBatch.from_arrays([pa.concat_arrays([c]) for c in batch.columns],
+                                                            schema=batch.schema))
 
     def hexdigest(self) -> str:
         self._writer.close()

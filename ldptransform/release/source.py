@@ -26,6 +26,11 @@ def open_source(opts: ReleaseOptions, policy: LoadedPolicy) -> Any:
             names.add(policy.policy.subject_key)
         return MemorySource(opts.input, index_columns=frozenset(names))
     if opts.frame_input:
+        if type(opts.input).__module__.split(".")[0] != "dask":
+            raise UsageError("privatize: the input must be a path to a CSV or Parquet file or a Parquet dataset, a "
+                             "dataset URI, a pandas DataFrame, a pyarrow Table, a pyarrow RecordBatchReader or a "
+                             "dask DataFrame; the input given is none of these. Pass one of them (for a list of "
+                             "rows, build a pandas DataFrame from it first).")
         from ..engine_dask import FrameSource
 
         return FrameSource(opts.input)
