@@ -31,8 +31,6 @@ from . import __version__
 from .errors import LdptError, one_paragraph, terminal_safe
 
 if TYPE_CHECKING:  # pragma: no cover
-    import pandas as pd
-
     from .results import ColumnResult, CrossTabResult, EstimateResult, GroupedMeanResult, MeanResult
 
 INTERRUPTED = "interrupted: stopped before finishing; nothing was left at the destination."
@@ -518,37 +516,9 @@ def json_text(obj: Any) -> str:
     return json.dumps(_finite(obj), indent=2, allow_nan=False) + "\n"
 
 
-def _csv_cell(v: object) -> str:
-    """A CSV cell: empty for a missing value, the shortest exact text (repr) for a float, and
-    text that a spreadsheet would run as a formula neutralized (results.spreadsheet_safe)."""
-    from .results import spreadsheet_safe
-
-    if v is None or (isinstance(v, float) and math.isnan(v)):
-        return ""
-    if isinstance(v, float):
-        return repr(float(v))
-    if isinstance(v, str):
-        return spreadsheet_safe(v)
-    return str(v)
-
-
-def _frame_csv(frame: pd.DataFrame) -> str:
-    """A long result frame (``to_frame()``) as CSV text, floats written exactly."""
-    import csv
-    import io
-
-    import numpy as np
-
-    buf = io.StringIO()
-    w = csv.writer(buf, lineterminator="\n")
-    w.writerow(list(frame.columns))
-    for row in frame.itertuples(index=False, name=None):
-        w.writerow([_csv_cell(float(v) if isinstance(v, np.floating) else v) for v in row])
-    return buf.getvalue()
-
-
 def _estimate_csv(result: EstimateResult) -> str:
-    return _frame_csv(result.to_frame())
+    """``--format csv``: the result's frame written out (``EstimateResult.to_csv``)."""
+    return result.to_csv()
 
 
 def _range(text: str) -> tuple[str, float, float]:

@@ -734,7 +734,8 @@ def _distribution_result(dist: Any, an: Analyses, col: str, confidence: float, e
     method = getattr(dist, "method", "")
     if getattr(dist, "no_interval", None):
         method = f"{method}; {dist.no_interval}"
-    return DistributionResult(method, qs, rngs, tuple(hist["edges"]), tuple(hist["mass"]), tuple(cdf), source=dist)
+    return DistributionResult(method, qs, rngs, tuple(hist["edges"]), tuple(hist["mass"]), tuple(cdf), source=dist,
+                              among=among)
 
 
 def _distribution_mean(d: Any, confidence: float, estimand: str) -> MeanResult:

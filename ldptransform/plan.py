@@ -38,7 +38,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping
-from dataclasses import dataclass, field, fields
+from dataclasses import dataclass, field, fields, replace
 from typing import TYPE_CHECKING, Any, cast
 
 import numpy as np
@@ -281,7 +281,15 @@ class PlanColumn(DictView):
 
 PLAN_FRAME_COLUMNS = ("column", "type", "mechanism", "epsilon", "rows_reporting", "statistic", "se", "relative_se",
                       "target_se", "target_relative_se", "best_possible_se", "meets_target", "rows_needed",
-                      "rows_needed_best_possible", "impossible_at_rows", "efficiency", "se_meaning", "note")
+                      "rows_needed_best_possible", "impossible_at_rows", "efficiency", "se_meaning", "note",
+                      "chosen_because", "fields", "rows", "strategy", "epsilon_per_row", "epsilon_per_row_budget",
+                      "report_rate")
+"""The columns of ``PlanResult.to_frame()``, in order."""
+
+_PLAN_FLOATS = ("epsilon", "rows_reporting", "se", "relative_se", "target_se", "target_relative_se",
+                "best_possible_se", "efficiency", "epsilon_per_row", "epsilon_per_row_budget", "report_rate")
+_PLAN_INTS = ("rows_needed", "rows_needed_best_possible", "rows")
+_PLAN_BOOLS = ("meets_target", "impossible_at_rows")
 
 
 @dataclass(frozen=True)
@@ -304,26 +312,78 @@ class PlanResult(DictView):
                 "impossible": list(self.impossible)}
 
     def to_frame(self) -> pd.DataFrame:
-        """Long table: one row per (column, statistic); a public column is one row with its note."""
+        """Long table (``PLAN_FRAME_COLUMNS``): one row per (column, statistic), the column's
+        figures repeated on each; a public column is one row with its note.  ``fields`` lists the
+        statistic's fields in the order of its JSON (a field not listed is absent from it, which
+        is not the same as present and null); the plan's own figures (rows, strategy, eps, report
+        rate) are repeated on every row (a plan without columns is one row of them).  A missing
+        figure is NaN (or NA for whole numbers), a missing text or flag None.
+        ``PlanResult.from_frame`` reads it back."""
         import pandas as pd
 
+        from .results import _typed
+
+        plan = {"rows": self.rows, "strategy": self.strategy, "epsilon_per_row": self.epsilon_per_row,
+                "epsilon_per_row_budget": self.epsilon_per_row_budget, "report_rate": self.report_rate}
         out = []
         for c in self.columns:
-            base = {"column": c.name, "type": c.type, "mechanism": c.mechanism, "epsilon": c.epsilon,
-                    "rows_reporting": c.rows_reporting}
+            base = {**dict.fromkeys(PLAN_FRAME_COLUMNS), **plan, "column": c.name, "type": c.type,
+                    "mechanism": c.mechanism, "epsilon": c.epsilon, "rows_reporting": c.rows_reporting,
+                    "chosen_because": c.chosen_because}
             if c.statistics is None:
                 out.append({**base, "note": c.note})
                 continue
             for st in c.statistics:
                 d = st.to_dict()
-                out.append({**base, **{k: d.get(k) for k in PLAN_FRAME_COLUMNS[5:]}})
-        frame = pd.DataFrame(out, columns=list(PLAN_FRAME_COLUMNS))
-        for k in ("epsilon", "rows_reporting", "se", "relative_se", "target_se", "target_relative_se",
-                  "best_possible_se", "efficiency"):
-            frame[k] = pd.to_numeric(frame[k], errors="coerce").astype("float64")
-        for k in ("rows_needed", "rows_needed_best_possible"):
-            frame[k] = pd.array(frame[k].tolist(), dtype="Int64")
-        return frame
+                out.append({**base, **{k: d.get(k) for k in PLAN_FRAME_COLUMNS[5:18]}, "fields": ",".join(d)})
+            if not c.statistics:
+                out.append({**base, "fields": ""})
+        if not out:
+            out.append({**dict.fromkeys(PLAN_FRAME_COLUMNS), **plan})
+        frame = pd.DataFrame(out, columns=list(PLAN_FRAME_COLUMNS), dtype=object)
+        return _typed(frame, _PLAN_FLOATS, _PLAN_INTS)
+
+    @classmethod
+    def from_frame(cls, frame: pd.DataFrame) -> PlanResult:
+        """The plan a frame of ``to_frame()`` holds: its ``to_dict()`` is the original's with every
+        non-finite figure as None (what the strict JSON of ``--format json`` holds);
+        ``targets_missed`` and ``impossible`` are read off the statistics, as ``plan`` makes them."""
+        from .results import _int, _num, _records, _text
+
+        recs = _records(frame, PLAN_FRAME_COLUMNS)
+        if not recs:
+            raise ValueError("the frame has no rows: give a frame made by PlanResult.to_frame()")
+
+        def value(k: str, v: Any) -> Any:
+            if k in _PLAN_FLOATS:
+                return _num(v)
+            if k in _PLAN_INTS:
+                return _int(v)
+            if k in _PLAN_BOOLS:
+                return None if v is None else bool(v)
+            return _text(v)
+
+        cols: list[PlanColumn] = []
+        stats: dict[int, list[PlanStatistic]] = {}
+        for r in recs:
+            if r["column"] is None:
+                continue
+            if not cols or cols[-1].name != r["column"]:
+                public = r["fields"] is None
+                cols.append(PlanColumn(str(r["column"]), str(r["type"]), _text(r["mechanism"]), _num(r["epsilon"]),
+                                       _text(r["chosen_because"]), _num(r["rows_reporting"]),
+                                       None if public else (), _text(r["note"]) if public else None))
+                stats[len(cols) - 1] = []
+            if r["fields"]:
+                stats[len(cols) - 1].append(PlanStatistic.from_dict(
+                    {k: value(k, r[k]) for k in str(r["fields"]).split(",")}))
+        cols = [c if c.statistics is None else replace(c, statistics=tuple(stats[i])) for i, c in enumerate(cols)]
+        named = [(c.name, st) for c in cols for st in c.statistics or ()]
+        head = recs[0]
+        return cls(int(head["rows"]), str(head["strategy"]), float(head["epsilon_per_row"]),
+                   float(head["epsilon_per_row_budget"]), float(head["report_rate"]), tuple(cols),
+                   tuple(f"{n}: {st.statistic}" for n, st in named if st.meets_target is False),
+                   tuple(f"{n}: {st.statistic}" for n, st in named if st.impossible_at_rows))
 
 
 # -- the plan ---------------------------------------------------------------------------------

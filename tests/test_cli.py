@@ -378,8 +378,8 @@ def test_estimate_csv_matches_json(released: dict[str, Path], ldpt) -> None:
         return None if v == "" else float(v)
 
     got = [(r["column"], r["statistic"], r["value"], num(r["estimate"]), num(r["se"]), num(r["ci_low"]),
-            num(r["ci_high"])) for r in rows]
-    assert got == expected
+            num(r["ci_high"])) for r in rows if r["statistic"] in ("frequency", "mean", "quantile")]
+    assert got == expected  # the CSV's other rows (descriptors, histograms, CDFs): tests/test_frames.py
 
 
 @pytest.mark.parametrize("fmt", ["json", "csv", "table"])

@@ -17,8 +17,9 @@ from typer.testing import CliRunner
 from ldptransform import estimate, parse_policy, privatize, validate
 from ldptransform.cli import app
 from ldptransform.keys import SecretKey
-from ldptransform.results import (FRAME_COLUMNS, ColumnResult, CrossTabResult, DistributionResult, EstimateResult,
-                                  FrequencyResult, GroupedMeanResult, MeanResult, ValidationReport)
+from ldptransform.results import (FRAME_COLUMNS, VALIDATION_FRAME_COLUMNS, ColumnResult, CrossTabResult,
+                                  DistributionResult, EstimateResult, FrequencyResult, GroupedMeanResult, MeanResult,
+                                  ValidationReport, frame_csv, spreadsheet_safe)
 
 KEY = SecretKey(FIXED_KEY_BYTES)
 ROWS = 3000
@@ -109,11 +110,22 @@ def test_to_frame_has_one_row_per_statistic_with_its_estimand(release: dict[str,
     res = _estimate(release)
     f = res.to_frame()
     assert tuple(f.columns) == FRAME_COLUMNS
+    assert tuple(f.columns[:12]) == ("column", "type", "mechanism", "epsilon", "statistic", "value", "estimate", "se",
+                                     "ci_low", "ci_high", "consistent", "estimand")
     counts = f.groupby(["column", "statistic"]).size().to_dict()
-    assert counts == {("site", "frequency"): 4, ("pay", "mean"): 1, ("years", "frequency"): 4,
-                      ("years", "quantile"): 2, ("hours", "mean"): 1, ("hours", "quantile"): 2,
-                      ("hours", "range share"): 1, ("site:years", "joint share"): 16,
+    hours = res.columns["hours"].distribution
+    assert hours is not None
+    buckets = len(hours.mass)
+    assert counts == {("site", "column"): 1, ("site", "frequency"): 4, ("pay", "column"): 1, ("pay", "mean"): 1,
+                      ("years", "column"): 1, ("years", "frequency"): 4, ("years", "distribution"): 1,
+                      ("years", "quantile"): 2, ("years", "histogram"): 4, ("years", "cdf"): 5,
+                      ("hours", "column"): 1, ("hours", "mean"): 1, ("hours", "distribution"): 1,
+                      ("hours", "quantile"): 2, ("hours", "range share"): 1, ("hours", "histogram"): buckets,
+                      ("hours", "cdf"): buckets + 1, ("site:years", "joint share"): 16,
                       ("site:years", "share within row"): 16, ("pay:site", "mean"): 4}
+    table = f[f["column"].isna()]
+    assert list(table["statistic"]) == ["rows"] and table["rows_used"].iloc[0] == ROWS
+    assert table["method"].iloc[0] == res.se_method and (f["confidence"] == 0.95).all()
     est = dict(zip(zip(f["column"], f["statistic"], f["value"].fillna("")), f["estimand"]))
     site_enc = "missing site counted as <missing>; every site among its listed categories (the release refuses others)"
     years_enc = ("years clipped to [0, 40]; years in 4 bins with edges 0, 2, 5, 10, 40 (the last bin includes its "
@@ -143,13 +155,16 @@ def test_cli_csv_is_the_frame(release: dict[str, Path]) -> None:
     r = CliRunner().invoke(app, ["estimate", str(release["out"]), "--format", "csv", "--crosstab", "site:years",
                                  "--mean-by", "pay:site", "--quantiles", "0.25,0.5", "--range", "hours:20..30"])
     assert r.exit_code == 0, r.output
-    got = pd.read_csv(io.StringIO(r.stdout), keep_default_na=False)
+    assert r.stdout == res.to_csv() == frame_csv(res.to_frame())
+    got = pd.read_csv(io.StringIO(r.stdout), keep_default_na=False, dtype=str)
     want = res.to_frame()
     assert list(got.columns) == list(want.columns) and len(got) == len(want)
-    for c in ("estimate", "se", "ci_low", "ci_high", "consistent"):
+    for c in ("estimate", "se", "ci_low", "ci_high", "consistent", "count_estimate", "low", "high", "share"):
         g = pd.to_numeric(got[c].replace("", np.nan))
         assert np.array_equal(g.to_numpy(float), want[c].to_numpy(float), equal_nan=True), c  # exact: repr floats
-    assert list(got["estimand"]) == list(want["estimand"])
+    assert list(got["rows_used"]) == ["" if pd.isna(v) else str(v) for v in want["rows_used"]]
+    for c in ("column", "statistic", "value", "estimand", "method", "note", "first_value", "second_value"):
+        assert list(got[c]) == ["" if v is None else spreadsheet_safe(v) for v in want[c]], c
     js = CliRunner().invoke(app, ["estimate", str(release["out"]), "--format", "json"])
     assert json.loads(js.stdout) == estimate(release["out"]).to_dict()
 
@@ -163,7 +178,8 @@ def test_validation_report_is_typed(release: dict[str, Path], tmp_path: Path) ->
     check = rep.check("calibration")
     assert check is not None and check.ok is True and rep.check("no such check") is None
     frame = rep.to_frame()
-    assert list(frame.columns) == ["check", "status", "ok", "detail"] and len(frame) == len(rep.checks)
+    assert list(frame.columns) == list(VALIDATION_FRAME_COLUMNS) and len(frame) == len(rep.checks)
+    assert list(frame["check"]) == [c.name for c in rep.checks] and list(frame["ok"]) == [c.ok for c in rep.checks]
     assert rep.calibration is not None
     cal = rep.calibration.to_frame()
     # 4 + 4 frequencies, 1 mean; years: 3 quantiles and 4 ranges; hours: the same, and its mean (with an interval)
