@@ -326,11 +326,13 @@ def realized_channel(randomize_index, xs: np.ndarray, M: int) -> np.ndarray:
     return (nxt - first) / float(1 << 53)
 
 
-def assert_user_error(res: subprocess.CompletedProcess, names: list[str], forbidden: Sequence[str] = ()) -> str:
-    """Exit 2, one paragraph on stderr naming every item of ``names``, no traceback, and none
-    of ``forbidden`` (raw values, key material) anywhere in the output."""
+def assert_user_error(res: subprocess.CompletedProcess, names: list[str], forbidden: Sequence[str] = (),
+                      code: int = 2) -> str:
+    """Exit ``code`` (2: bad input; 4 refused for privacy, 5 output exists, 6 environment:
+    errors.ExitCode), one paragraph on stderr naming every item of ``names``, no traceback, and
+    none of ``forbidden`` (raw values, key material) anywhere in the output."""
     err = res.stderr
-    assert res.returncode == 2, f"exit {res.returncode}, stderr:\n{err}"
+    assert res.returncode == code, f"exit {res.returncode}, stderr:\n{err}"
     assert "Traceback" not in err and "Traceback" not in res.stdout
     text = err.strip()
     assert text, "no message on stderr"

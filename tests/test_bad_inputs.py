@@ -470,7 +470,7 @@ def test_output_exists_without_overwrite(release: Release, ldpt) -> None:
     release.remember(release.out)
     before = listing(release.dir)
     res = ldpt(*release.args())
-    assert_user_error(res, [release.out.name, "--overwrite"])
+    assert_user_error(res, [release.out.name, "--overwrite"], code=5)
     assert listing(release.dir) == before
     assert not release.manifest.exists()
     assert partials(release.dir) == []
@@ -484,7 +484,7 @@ def test_manifest_exists_without_overwrite(release: Release, ldpt) -> None:
     release.remember(release.manifest)
     before = listing(release.dir)
     res = ldpt(*release.args())
-    assert_user_error(res, [release.manifest.name, "--overwrite"])
+    assert_user_error(res, [release.manifest.name, "--overwrite"], code=5)
     assert listing(release.dir) == before
     assert not release.out.exists()
     assert listing(release.private) == []

@@ -179,7 +179,7 @@ def test_privatize_overwrite_replaces_extract_and_manifest(survey: dict[str, Pat
     out = survey["dir"] / "extract.parquet"
     ok(privatize(ldpt, survey, out))
     first, m1 = sha256(out), manifest_of(out)
-    assert privatize(ldpt, survey, out).returncode == 2
+    assert privatize(ldpt, survey, out).returncode == 5  # the output exists
     assert sha256(out) == first
     ok(privatize(ldpt, survey, out, "--overwrite"))
     m2 = manifest_of(out)

@@ -36,8 +36,8 @@ class Work:
         return ldpt("privatize", input, "--policy", self.policy, "--key", self.key, "--out", out or self.out, *extra)
 
     def refused(self, res: Any, names: list[str], before: list[str], forbidden: list[str] | tuple[str, ...] = (),
-                inputs: dict[Path, str] | None = None) -> str:
-        text = assert_user_error(res, names, forbidden)
+                inputs: dict[Path, str] | None = None, code: int = 2) -> str:
+        text = assert_user_error(res, names, forbidden, code=code)
         assert listing(self.dir) == before, f"the folder changed: {before} -> {listing(self.dir)}"
         assert partials(self.dir) == []
         assert listing(self.private) == [], "steward diagnostics were written for a failed run"
@@ -306,7 +306,7 @@ def test_full_disk_while_writing_the_extract(out_name: str, row_order: str, work
     before = listing(work.dir)
     res = work.run(ldpt, raw, out=work.dir / out_name)
     text = work.refused(res, [out_name, "disk is full", "Free space", "another folder"], before,
-                        inputs={raw: sha256(raw)})
+                        inputs={raw: sha256(raw)}, code=6)
     assert "rrno" not in text and "closed file" not in text and ".ldpt-partial-" not in text
 
 
@@ -321,7 +321,7 @@ def test_full_disk_while_writing_the_manifest(work: Work, ldpt, monkeypatch: pyt
     raw = work.dir / "survey.csv"
     raw.write_bytes(DEMO_CSV.read_bytes())
     before = listing(work.dir)
-    work.refused(work.run(ldpt, raw), ["the manifest", "extract.manifest.json", "disk is full"], before)
+    work.refused(work.run(ldpt, raw), ["the manifest", "extract.manifest.json", "disk is full"], before, code=6)
 
 
 def test_full_disk_with_a_real_device(work: Work, ldpt, monkeypatch: pytest.MonkeyPatch) -> None:
@@ -339,7 +339,7 @@ def test_full_disk_with_a_real_device(work: Work, ldpt, monkeypatch: pytest.Monk
     raw.write_bytes(DEMO_CSV.read_bytes())
     for out in ("extract.parquet", "extract.csv"):
         before = listing(work.dir)
-        work.refused(work.run(ldpt, raw, out=work.dir / out), [out, "disk is full"], before)
+        work.refused(work.run(ldpt, raw, out=work.dir / out), [out, "disk is full"], before, code=6)
 
 
 # -- an input that changes while it is read --------------------------------------------------

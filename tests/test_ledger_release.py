@@ -303,7 +303,7 @@ def test_cli_ledger_options(tmp_path: Path, ldpt, private_dir: Path) -> None:
     df2.to_csv(raw, index=False)
     r = ldpt("privatize", raw, "--policy", capped, "--key", key, "--out", tmp_path / "b.parquet", "--ledger", led,
              "--nonce", NIGHT2)
-    assert r.returncode == 2 and "3 subject(s)" in r.stderr and "Traceback" not in r.stderr
+    assert r.returncode == 4 and "3 subject(s)" in r.stderr and "Traceback" not in r.stderr  # refused for privacy
     assert not (tmp_path / "b.parquet").exists()
     r = ldpt("privatize", raw, "--policy", capped, "--key", key, "--out", tmp_path / "b.parquet", "--ledger", led,
              "--nonce", NIGHT2, "--allow-partial")
@@ -409,8 +409,8 @@ def test_two_privatize_jobs_against_one_ledger(tmp_path: Path, private_dir: Path
     jobs = [start(capped, led, f"cap{i}.parquet", n) for i, n in enumerate(fresh)]
     res = [finish(j) for j in jobs]
     codes = sorted(r[0] for r in res)
-    assert codes == [0, 2], res
-    loser = [i for i, r in enumerate(res) if r[0] == 2][0]
+    assert codes == [0, 4], res  # 4: refused for privacy
+    loser = [i for i, r in enumerate(res) if r[0] == 4][0]
     assert "Traceback" not in res[loser][1] and "lifetime" in res[loser][1]
     assert not (tmp_path / f"cap{loser}.parquet").exists() and not (tmp_path / f"cap{loser}.manifest.json").exists()
     assert (tmp_path / f"cap{1 - loser}.parquet").exists()

@@ -92,7 +92,7 @@ def test_a_nonce_reused_on_changed_data_or_policy_is_refused(change: str, survey
     before, private_before = listing(survey["dir"]), listing(private_dir)
     res = ldpt(*privatize_args(survey, survey["dir"] / "night2.parquet", "--nonce", FIXED_NONCE))
     text = assert_user_error(res, ["--nonce", FIXED_NONCE, str(first), "Leave out --nonce",
-                                   "different input data" if change == "input" else "a different policy"])
+                                   "different input data" if change == "input" else "a different policy"], code=4)
     assert "which cells changed" in text
     nothing_new(survey["dir"], before)
     assert listing(private_dir) == private_before and (private_dir / STATE).read_bytes() == state
@@ -140,7 +140,7 @@ def test_a_dataset_input_is_digested_file_by_file(survey: dict[str, Path], ldpt,
                                                       ["b.parquet", sha256(folder / "b.parquet")]]
     pq.write_table(table.slice(6000, 10), folder / "a.parquet")  # one part changed
     res = ldpt(*privatize_args(survey, survey["dir"] / "ds2.parquet", "--nonce", FIXED_NONCE, input=folder))
-    assert_user_error(res, ["--nonce", "different input data"])
+    assert_user_error(res, ["--nonce", "different input data"], code=4)
 
 
 def test_a_nonce_of_a_dask_dataframe_release_is_never_reused(survey: dict[str, Path], ldpt,
@@ -156,7 +156,7 @@ def test_a_nonce_of_a_dask_dataframe_release_is_never_reused(survey: dict[str, P
            "time_utc": "2026-01-01T00:00:00Z"}
     (private_dir / STATE).write_text(json.dumps(rec) + "\n")
     res = ldpt(*privatize_args(survey, survey["dir"] / "x.parquet", "--nonce", FIXED_NONCE))
-    assert_user_error(res, ["--nonce", "dask DataFrame", "/srv/frame"])
+    assert_user_error(res, ["--nonce", "dask DataFrame", "/srv/frame"], code=4)
 
 
 def test_a_refused_release_records_no_nonce(survey: dict[str, Path], ldpt, private_dir: Path) -> None:
@@ -210,7 +210,7 @@ def test_a_reused_nonce_charges_no_ledger(tmp_path: Path, ldpt, private_dir: Pat
     assert ldpt(*args, "--out", tmp_path / "a.parquet").returncode == 0
     people.loc[3, "colour"] = "red" if people.loc[3, "colour"] == "blue" else "blue"
     people.to_csv(raw, index=False)
-    assert_user_error(ldpt(*args, "--out", tmp_path / "b.parquet"), ["--nonce"])
+    assert_user_error(ldpt(*args, "--out", tmp_path / "b.parquet"), ["--nonce"], code=4)
     assert sqlite3.connect(led).execute("SELECT COUNT(*) FROM releases").fetchone()[0] == 1
     assert not (tmp_path / "b.parquet").exists()
 
@@ -357,7 +357,7 @@ def test_estimate_out_never_replaces_what_it_reads_nor_a_file_without_overwrite(
     # a file that exists: not without --overwrite (the issue: estimate --out KEYFILE), and a secret
     # key or a ledger never, even with it
     res = ldpt("estimate", out, "--format", "json", "--out", survey["key"])
-    assert_user_error(res, [survey["key"].name, "--overwrite"], forbidden=[key_hex])
+    assert_user_error(res, [survey["key"].name, "--overwrite"], forbidden=[key_hex], code=5)
     res = ldpt("estimate", out, "--format", "json", "--out", survey["key"], "--overwrite")
     assert_user_error(res, [survey["key"].name, "secret key"], forbidden=[key_hex])
     # what estimate reads: never, even with --overwrite (also through a symlink)
@@ -370,7 +370,8 @@ def test_estimate_out_never_replaces_what_it_reads_nor_a_file_without_overwrite(
     # an ordinary file: replaced with --overwrite only
     est = survey["dir"] / "estimates.json"
     est.write_text("old\n")
-    assert_user_error(ldpt("estimate", out, "--format", "json", "--out", est), ["estimates.json", "--overwrite"])
+    assert_user_error(ldpt("estimate", out, "--format", "json", "--out", est), ["estimates.json", "--overwrite"],
+                      code=5)
     assert est.read_text() == "old\n"
     res = ldpt("estimate", out, "--format", "json", "--out", est, "--overwrite")
     assert res.returncode == 0, res.stderr
@@ -392,7 +393,7 @@ def test_demo_needs_overwrite_to_run_again(tmp_path: Path, ldpt) -> None:
     key = folder / "steward-private" / "demo.key"
     kept = {p: sha256(p) for p in folder.rglob("*") if p.is_file()}
     res = ldpt("demo", "--dir", folder)
-    assert_user_error(res, ["--overwrite", "staff_survey"])
+    assert_user_error(res, ["--overwrite", "staff_survey"], code=5)
     assert {p: sha256(p) for p in folder.rglob("*") if p.is_file()} == kept
     res = ldpt("demo", "--dir", folder, "--overwrite")
     assert res.returncode == 0, res.stderr
@@ -435,7 +436,7 @@ def test_a_second_job_on_the_same_destination_exits_2_and_changes_nothing(survey
         assert holder.stdout is not None and holder.stdout.readline().strip() == "held"
         before = listing(pub)
         res = ldpt_process("privatize", raw, "--policy", pol, "--key", key, "--out", out, "--ledger", led)
-        assert_user_error(res, [str(out), "another job"])
+        assert_user_error(res, [str(out), "another job"], code=6)
         assert listing(pub) == before and not led.exists() and listing(private_dir) == []
     finally:
         assert holder.stdin is not None
@@ -464,9 +465,9 @@ def test_two_jobs_at_once_on_one_destination(survey: dict[str, Path], tmp_path: 
     jobs = [start(), start()]
     done = [(j.wait(timeout=300), j.stderr.read() if j.stderr else "") for j in jobs]
     codes = sorted(c for c, _ in done)
-    assert codes in ([0, 0], [0, 2]), done
+    assert codes in ([0, 0], [0, 6]), done  # 6: the environment (another job holds the destination)
     for code, err in done:
-        if code == 2:
+        if code == 6:
             assert "another job" in err and "Traceback" not in err
     manifest = json.loads(out.with_name("extract.manifest.json").read_text())
     assert manifest["extract"]["sha256"] == sha256(out)  # extract and manifest of one and the same job
@@ -477,7 +478,7 @@ def test_two_jobs_at_once_on_one_destination(survey: dict[str, Path], tmp_path: 
 def test_the_lock_is_free_again_after_a_refused_release(survey: dict[str, Path], ldpt) -> None:
     out = survey["dir"] / "extract.parquet"
     assert ldpt(*privatize_args(survey, out)).returncode == 0
-    assert_user_error(ldpt(*privatize_args(survey, out)), ["extract.parquet", "--overwrite"])
+    assert_user_error(ldpt(*privatize_args(survey, out)), ["extract.parquet", "--overwrite"], code=5)
     assert ldpt(*privatize_args(survey, out, "--overwrite")).returncode == 0
     assert [n for n in listing(survey["dir"]) if "ldpt-lock" in n] == []
     assert os.path.exists(out)

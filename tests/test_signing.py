@@ -210,7 +210,7 @@ def test_sign_refuses_an_existing_signature_without_overwrite(ldpt: Any, release
                                                               files: dict[str, Path]) -> None:
     before = files["sig"].read_bytes()
     assert_user_error(ldpt("sign", files["manifest"], "--signing-key", release["signing"]),
-                      [str(files["sig"]), "--overwrite"])
+                      [str(files["sig"]), "--overwrite"], code=5)
     assert files["sig"].read_bytes() == before
     assert ldpt("sign", files["manifest"], "--signing-key", release["signing"], "--overwrite").returncode == 0
 

@@ -2,15 +2,22 @@
 
 from __future__ import annotations
 
-from ..errors import LdptError
+from typing import ClassVar
+
+from ..errors import ExitCode, LdptError
 
 
 class LedgerError(LdptError):
     """The ledger file is missing, not a ledger, unsafe, or the call does not fit it."""
 
+    kind: ClassVar[str] = "bad_ledger"
+
 
 class BudgetExhaustedError(LedgerError):
-    """Recording a release would take some subjects over their lifetime eps."""
+    """Recording a release would take some subjects over their lifetime eps: refused for privacy."""
+
+    exit_code: ClassVar[int] = ExitCode.PRIVACY_REFUSED
+    kind: ClassVar[str] = "budget_refused"
 
 
 class LedgerDamagedError(LedgerError):
@@ -19,3 +26,5 @@ class LedgerDamagedError(LedgerError):
     re-created nor changed: a new ledger in its place would forget everyone's spent eps.
     `ldpt ledger verify` reports it as a failed check (exit 1); every other command as a user
     error (exit 2)."""
+
+    kind: ClassVar[str] = "ledger_damaged"

@@ -44,7 +44,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from ..errors import OptionError, UsageError
+from ..errors import NonceReusedError, UsageError
 from ..io import private_dir, sha256_stream
 from ..keys import SecretKey
 from ..manifest import now_utc
@@ -158,7 +158,7 @@ def _conflict(entry: dict[str, Any], records: list[dict[str, Any]]) -> None:
             what.append("this release has different input data")
         if not same_policy:
             what.append("this release has a different policy")
-        raise OptionError(
+        raise NonceReusedError(
             f"privatize(nonce={entry['nonce']!r})",
             f"{{nonce}} {entry['nonce']} was already used with this key (fingerprint {entry['key_fingerprint']}) by "
             f"the release into {rec.get('extract')} at {rec.get('time_utc')}, and "
