@@ -20,6 +20,7 @@ from .base import (
     MeanMechanism,
     Mechanism,
     MechanismParamError,
+    PerRowColumn,
     build,
     registry,
 )
@@ -60,7 +61,7 @@ __all__ = ["Mechanism", "FrequencyOracle", "MeanMechanism", "DistributionMechani
            "Matrix", "SquareWave", "Hierarchy", "build", "registry", "choose_categorical", "choose_numeric",
            "categorical_candidates", "AUTO_CATEGORICAL", "default_distribution", "make", "DEFAULT_DISTRIBUTION",
            "CATEGORICAL", "NUMERIC", "DISTRIBUTION", "MissingFlag", "MissingFlagDistribution", "with_missing_flag",
-           "DEFAULT_FLAG_SHARE"]
+           "DEFAULT_FLAG_SHARE", "PerRowColumn"]
 
 
 # Candidates for `mechanism: auto` on a categorical column, in order of preference on a tie

@@ -25,6 +25,9 @@ fill small hooks), never decided by the mechanism's name or by probing its attri
 * the second layer of a memoized column (``rerandomize_epsilon``): ``supports_second_layer`` /
   ``second_layer_refusal``, ``second_layer_words_per_row``, ``rerandomize``,
   ``composite_epsilon``, ``with_second_layer`` (the composite, same class) and ``permanent``;
+* per-row estimates (the partner's reader, perrow.py): ``per_row_columns`` (the frame columns
+  of one input column), ``per_row_values`` (their values, whose means over the reporting rows are
+  the decoder's point estimates), ``per_row_reason`` / ``per_row_note`` (why there are none);
 * the empirical audit (audit.py, ``ldpt audit``): ``audit_pairs`` (worst-case inputs),
   ``audit_outcomes`` / ``audit_ordered`` (what a report says about them); ``worst_channel_pairs``
   reads the pairs off an exact channel.
@@ -55,6 +58,7 @@ from __future__ import annotations
 
 import math
 from abc import ABC, abstractmethod
+from dataclasses import dataclass
 from fractions import Fraction
 from typing import TYPE_CHECKING, Any, ClassVar
 from collections.abc import Mapping, Sequence
@@ -65,7 +69,7 @@ import pyarrow.compute as pc
 from pydantic import BaseModel, ConfigDict, ValidationError
 
 from ..errors import PolicyError
-from .decoders import Decoder, DistributionDecoder, MeanDecoder
+from .decoders import Decoder, DistributionDecoder, MeanDecoder, numeric_values
 
 if TYPE_CHECKING:
     from .fit import FitStats
@@ -116,6 +120,15 @@ def build(spec: dict[str, Any]) -> Mechanism:
                           f"{layer['permanent_epsilon']!r}, then eps {layer['epsilon']!r}) compose to "
                           f"{composite.epsilon!r}")
     return composite
+
+
+@dataclass(frozen=True)
+class PerRowColumn:
+    """One column of the partner's per-row reader (``Mechanism.per_row_columns``): its name in the
+    frame and what its mean over rows estimates, in plain words."""
+
+    name: str
+    meaning: str
 
 
 class NoParams(BaseModel):
@@ -318,6 +331,32 @@ class Mechanism(ABC):
         ``joint``: also keep what the covariance of the frequency estimates needs (co-support
         counts; frequency oracles only, the other families keep all they need anyway).
         Implemented once by each family base."""
+
+    # -- per-row estimates (the partner's reader, ldptransform/perrow.py) ---------------
+    #: Why this mechanism's reports give no per-row unbiased estimate ('' when they do): its
+    #: decoder is not an average of per-row values (a smoothing reconstruction, a combination of
+    #: subsets of the rows with weights that depend on their sizes).
+    per_row_reason: ClassVar[str] = ""
+
+    def per_row_columns(self, column: str) -> list[PerRowColumn]:
+        """The per-row unbiased estimates that the reports of input column ``column`` give, one
+        frame column each (its name and meaning), in the order of ``per_row_values``.  The mean of
+        a column's values over the rows that reported is exactly the decoder's point estimate of
+        it (the decoder adds these very values), and each value is unbiased for its row's true
+        quantity.  [] when there is none (``per_row_reason``); the family bases fill this."""
+        return []
+
+    def per_row_values(self, arrays: list[pa.Array]) -> np.ndarray:
+        """The per-row unbiased estimates of the reports in ``arrays`` (rows that did not report
+        removed), float64 of shape (rows, len(per_row_columns)), vectorized over rows."""
+        raise NotImplementedError(self.per_row_reason or f"mechanism {self.name} gives no per-row estimates")
+
+    def per_row_note(self, column: str) -> str:
+        """What of input column ``column`` the reader leaves out, and why ('' when nothing)."""
+        if self.per_row_columns(column):
+            return ""
+        reason = self.per_row_reason or f"mechanism {self.name} gives no per-row unbiased estimate"
+        return f"{column}: left out: {reason}; its estimates come from ldpt estimate"
 
     # -- memoized randomness ---------------------------------------------------------
     @property
@@ -523,6 +562,15 @@ class MeanMechanism(Mechanism):
         """n, sum and sum of squares of the written values (each a row's unbiased estimate)."""
         return MeanDecoder(self)
 
+    def per_row_columns(self, column: str) -> list[PerRowColumn]:
+        """One column of the input's name: the written value, the row's unbiased estimate."""
+        return [PerRowColumn(column, f"unbiased estimate of the row's {column} (column units, as the release "
+                                     f"encoded it): its mean over rows estimates the mean of {column}")]
+
+    def per_row_values(self, arrays: list[pa.Array]) -> np.ndarray:
+        """The written values (what ``MeanDecoder`` sums)."""
+        return numeric_values(arrays)[:, None]
+
     def mean_row_variance(self) -> float:
         """Worst case over data of n * Var of the mean as ``ldpt estimate`` reports it (the spread of
         the per-row estimates, which also counts the spread of the true values): data split evenly
@@ -553,6 +601,9 @@ class DistributionMechanism(Mechanism):
     family: ClassVar[str] = "distribution"
     lo: float
     hi: float
+    #: (``Mechanism.per_row_reason``) a whole distribution is decoded, not an average of per-row values
+    per_row_reason: ClassVar[str] = ("its reports are decoded as a whole distribution, not as an average of "
+                                     "per-row values")
 
     @abstractmethod
     def new_stats(self) -> np.ndarray:

@@ -35,7 +35,7 @@ from ..random.variates import (
     to_below,
     words_below,
 )
-from .base import Mechanism, certified_epsilon, check_epsilon, register
+from .base import Mechanism, PerRowColumn, certified_epsilon, check_epsilon, register
 from .decoders import FrequencyDecoder
 from .bounds import frequency_lower_bound
 from .fit import (
@@ -153,6 +153,17 @@ class FrequencyOracle(Mechanism):
         s = self.support(arrays)
         p, q = self.p_star, self.q_star
         return (s - q) / (p - q)
+
+    def per_row_columns(self, column: str) -> list[PerRowColumn]:
+        """One column per category, ``<column>=<category>``: the row's unbiased indicator estimate."""
+        return [PerRowColumn(f"{column}={c}", f"unbiased estimate of 1[{_value_text(column, c)}] for the row: its "
+                                              f"mean over rows estimates the share of rows with "
+                                              f"{_value_text(column, c)}")
+                for c in self.categories]
+
+    def per_row_values(self, arrays: list[pa.Array]) -> np.ndarray:
+        """``row_estimates``: the per-row values whose sums the decoder keeps (``decode_sums``)."""
+        return np.asarray(self.row_estimates(arrays), dtype=float)
 
     def variance(self, freq: np.ndarray | float) -> np.ndarray:
         """Exact n*Var of each frequency estimate for a fixed data set with frequencies ``freq``.
@@ -660,6 +671,15 @@ class OLH(FrequencyOracle):
     def fit_test(self) -> SupportSizeFit:
         """The support size's mean and the reported buckets' distribution are data-independent."""
         return SupportSizeFit(self)
+
+
+def _value_text(column: str, label: str) -> str:
+    """``column = label`` in words (the labels the policy adds: a missing value, another category)."""
+    if label == "<missing>":
+        return f"{column} missing"
+    if label == "<other>":
+        return f"{column} not one of its listed categories"
+    return f"{column} = {label}"
 
 
 def _as_strings(arr: pa.Array) -> pa.Array:

@@ -207,6 +207,9 @@ class SquareWave(DistributionMechanism):
     name: ClassVar[str] = "square-wave"
     Params: ClassVar[type[BaseModel]] = GridMechanismParams
     no_interval: str | None = SW_NO_INTERVAL
+    per_row_reason: ClassVar[str] = (
+        "square-wave's reports are decoded by EMS, a smoothing reconstruction of the whole distribution that is "
+        "not an average of per-row values, so no per-row column would be unbiased")
 
     def __init__(self, epsilon: float, bounds: Any, grid: int = DEFAULT_SW_GRID) -> None:
         self.epsilon = check_epsilon(epsilon, f"mechanism {self.name}")
@@ -413,6 +416,10 @@ class Hierarchy(DistributionMechanism):
 
     name: ClassVar[str] = "hierarchy"
     Params: ClassVar[type[BaseModel]] = HierarchyParams
+    per_row_reason: ClassVar[str] = (
+        "hierarchy's reports are decoded level by level (each row reports one level of the tree) and then made "
+        "consistent across the levels with weights that depend on how many rows each level got, so its "
+        "estimates are not averages of one value per row")
     field_refusals: ClassVar[dict[str, str]] = {
         "grid": "grid does not apply to mechanism hierarchy (its buckets are set by leaves)"}
 

@@ -51,7 +51,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from ..errors import PolicyError
-from .base import DistributionMechanism, MeanMechanism, Mechanism, check_epsilon, registry
+from .base import DistributionMechanism, MeanMechanism, Mechanism, PerRowColumn, check_epsilon, registry
 
 if TYPE_CHECKING:
     from .categorical import GRR
@@ -61,6 +61,10 @@ if TYPE_CHECKING:
 FLAG_LABELS = ("present", "missing")
 #: The suffix of the flag's extract column (``<column>__missing``).
 FLAG_SUFFIX = "__missing"
+#: The per-row reader's columns of a value with a missing flag: ``<column>=<missing>`` (the label of
+#: the share missing in ``ldpt estimate``, the policy's missing label) and ``<column>*present``.
+MISSING_SHARE_LABEL = "<missing>"
+PRESENT_SUFFIX = "*present"
 #: The share of the column's eps the flag gets when the policy gives no missing_epsilon: a rule
 #: of thumb of ours (common practice, no source).  With the ratio estimator above, the flag's noise
 #: enters the mean among rows with a value only through the share present, so most of the eps
@@ -204,6 +208,31 @@ class MissingFlag(Mechanism):
 
         return MissingAnswerDecoder(self)
 
+    # -- per-row estimates (the partner's reader) -------------------------------------------
+    def per_row_columns(self, column: str) -> list[PerRowColumn]:
+        """``<column>=<missing>``: the row's unbiased missing indicator 1 - u, whose mean is the share
+        missing; ``<column>*present``: the row's value times its present indicator (0 without a value),
+        (a - m) + m u with a the value report and m the fill, unbiased because the flag is randomized
+        apart from the value; its mean over that of 1 - ``<column>=<missing>`` is the decoder's mean
+        among rows with a value, m + sum(a - m) / sum(u)."""
+        return [*self._missing_column(column),
+                PerRowColumn(f"{column}{PRESENT_SUFFIX}",
+                             f"unbiased estimate of the row's {column} times 1[{column} present] (0 for a row "
+                             f"without a value): its mean estimates the sum of {column} over rows with a value "
+                             f"divided by all rows; divided by 1 minus the mean of {column}={MISSING_SHARE_LABEL} it "
+                             f"gives the mean of {column} among rows with a value (a ratio, as ldpt estimate "
+                             "computes it)")]
+
+    def _missing_column(self, column: str) -> list[PerRowColumn]:
+        return [PerRowColumn(f"{column}={MISSING_SHARE_LABEL}",
+                             f"unbiased estimate of 1[{column} missing] for the row (from its randomized flag): its "
+                             f"mean over rows estimates the share of rows with {column} missing")]
+
+    def per_row_values(self, arrays: list[pa.Array]) -> np.ndarray:
+        u = self.flag_estimates(arrays)
+        a = self.value_estimates(arrays)
+        return np.column_stack([1.0 - u, (a - self.fill) + self.fill * u])
+
     def grouped_mean_refusal(self) -> str:
         return ("its value reports count a missing value as the middle of the bounds, so a mean of them within a "
                 "group is not the mean among rows with a value; the column's own estimate gives the mean among rows "
@@ -267,6 +296,17 @@ class MissingFlagDistribution(MissingFlag):
 
     def mean_row_variance(self) -> float | None:   # type: ignore[override]
         return None   # the mean is read off the decoded distribution (plan simulates it)
+
+    def per_row_columns(self, column: str) -> list[PerRowColumn]:
+        """Only the share missing: the value's distribution has no per-row estimate."""
+        return self._missing_column(column)
+
+    def per_row_values(self, arrays: list[pa.Array]) -> np.ndarray:
+        return (1.0 - self.flag_estimates(arrays))[:, None]
+
+    def per_row_note(self, column: str) -> str:
+        return (f"{column}: its values are left out (the share missing is given): {self.value.per_row_reason}; the "
+                "distribution among rows with a value comes from ldpt estimate")
 
     def fill_bucket(self) -> int:
         """The bucket of the decoded distribution that holds the middle of the bounds."""
