@@ -222,6 +222,10 @@ class MemorySource:
     def column_names(self) -> list[str]:
         return list(self.schema.names)
 
+    def parquet_dataset(self, fragment_rows: int) -> None:
+        """Not a Parquet input: dataset parts are cut from the rows as they are read."""
+        return None
+
     def dictionary_columns(self, names: list[str]) -> list[str]:
         return []  # dictionary columns are read as their values (module docstring)
 
