@@ -17,6 +17,7 @@ from .errors import LdptError
 from .estimate import estimate
 from .keys import SecretKey, load_key, new_key_file
 from .memory import InMemoryRelease, privatize_to_memory
+from .perrow import read_estimates
 from .policy import load_policy, parse_policy
 from .release import privatize
 from .validate import validate
@@ -33,5 +34,6 @@ __all__ = [
            "parse_policy",
            "privatize",
            "privatize_to_memory",
+           "read_estimates",
            "validate",
 ]

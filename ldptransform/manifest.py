@@ -136,6 +136,90 @@ def now_utc() -> str:
     return datetime.now(UTC).replace(microsecond=0).isoformat().replace("+00:00", "Z")
 
 
+# -- what each extract field says about itself (Arrow field metadata; docs/extract-format.md) ------
+
+#: The prefix of every field metadata key a Parquet extract's columns carry.
+FIELD_PREFIX = "ldpt."
+#: The version of the field metadata's layout (key ``ldpt.format``).
+FIELD_FORMAT = "1"
+#: The keys, without the prefix, in the order they are written (those after ``meaning`` only where
+#: the column entry has them).
+FIELD_KEYS = ("format", "column", "type", "privatized", "mechanism", "meaning", "spec", "labels", "bins", "note")
+
+
+def _compact(value: Any) -> str:
+    return json.dumps(value, separators=(",", ":"), ensure_ascii=False, allow_nan=False)
+
+
+def field_metadata(entry: ColumnEntry, output: OutputColumn) -> dict[bytes, bytes]:
+    """The Arrow field metadata of the extract column ``output`` of the manifest column entry
+    ``entry``: the entry's own text (input column, type, mechanism name and spec as compact JSON,
+    labels, bins, note) and the output's meaning, so the extract explains itself without its
+    manifest.  Only what the entry states, which comes from the policy: never a count, a digest
+    or a value of the data."""
+    spec = entry.mechanism
+    md: dict[str, str] = {"format": FIELD_FORMAT, "column": entry.name, "type": entry.type,
+                          "privatized": "false" if spec is None else "true",
+                          "mechanism": "none" if spec is None else str(spec.get("mechanism")),
+                          "meaning": output.meaning}
+    if spec is not None:
+        md["spec"] = _compact(spec)
+    if entry.labels is not None:
+        md["labels"] = _compact(entry.labels)
+    if entry.bins is not None:
+        md["bins"] = _compact(entry.bins)
+    if entry.note is not None:
+        md["note"] = entry.note
+    return {(FIELD_PREFIX + k).encode(): v.encode("utf-8") for k, v in md.items()}
+
+
+def entries_from_fields(fields: list[Any], where: str) -> list[ColumnEntry] | None:
+    """The column entries that the field metadata of an extract's Arrow ``fields`` states (consecutive
+    fields of one input column make one entry), or None when no field carries any (an extract
+    written before extracts described themselves, or not by ldptransform).  ``where`` names the
+    extract in the ``DataError`` raised for metadata that is partial or not ldptransform's."""
+    from .errors import DataError
+
+    def meta(f: Any) -> dict[str, str]:
+        raw = f.metadata or {}
+        try:
+            return {k.decode()[len(FIELD_PREFIX):]: v.decode("utf-8") for k, v in raw.items()
+                    if k.startswith(FIELD_PREFIX.encode())}
+        except UnicodeDecodeError:
+            raise DataError(f"{where}: the metadata of field {f.name!r} is not UTF-8 text. Give the release's "
+                            "manifest (manifest=...), or ask the data steward for an intact copy.") from None
+
+    metas = [meta(f) for f in fields]
+    if not any(metas):
+        return None
+    entries: list[ColumnEntry] = []
+    groups: list[tuple[dict[str, str], list[OutputColumn]]] = []
+    for f, md in zip(fields, metas):
+        if md.get("format") != FIELD_FORMAT or not {"column", "type", "meaning"} <= set(md):
+            raise DataError(f"{where}: field {f.name!r} does not carry the column metadata of this version "
+                            f"({FIELD_PREFIX}format {FIELD_FORMAT} with column, type and meaning), though other "
+                            "fields do. Give the release's manifest (manifest=...), or ask the data steward for "
+                            "an intact copy.")
+        out = OutputColumn(name=f.name, dtype=str(f.type), meaning=md["meaning"])
+        if groups and groups[-1][0]["column"] == md["column"]:
+            groups[-1][1].append(out)
+        else:
+            groups.append((md, [out]))
+    for md, outs in groups:
+        try:
+            entries.append(ColumnEntry(
+                name=md["column"], type=md["type"],  # type: ignore[arg-type]  # checked by the model
+                mechanism=json.loads(md["spec"]) if "spec" in md else None,
+                labels=json.loads(md["labels"]) if "labels" in md else None,
+                bins=json.loads(md["bins"]) if "bins" in md else None, outputs=outs, note=md.get("note")))
+        except (ValueError, ValidationError):
+            raise DataError(f"{where}: the metadata of the field(s) of column {md['column']!r} cannot be read "
+                            "(a type, spec, labels or bins that is not what ldptransform writes). Give the "
+                            "release's manifest (manifest=...), or ask the data steward for an intact "
+                            "copy.") from None
+    return entries
+
+
 def default_manifest_path(extract: Path) -> Path:
     extract = Path(extract)
     return extract.with_name(extract.stem + ".manifest.json")

@@ -9,7 +9,7 @@ import pyarrow as pa
 
 from ..errors import DataError, PolicyError
 from ..keys import SecretKey
-from ..manifest import ColumnEntry, OutputColumn
+from ..manifest import ColumnEntry, OutputColumn, field_metadata
 from ..policy import LoadedPolicy, ResolvedColumn
 from ..random.bits import KeyedStream, SubjectPRF
 from .kernel import ColumnSampler
@@ -141,6 +141,7 @@ def output_schema(plans: list[ColumnPlan], input_schema: pa.Schema, fmt_in: str)
             t = pa.string() if fmt_in == "csv" else input_schema.field(p.rc.name).type
             p.fields = [pa.field(p.rc.name, t)]
         fields.extend(p.fields)
+    fields = described_fields(plans)
     names = [f.name for f in fields]
     clash = sorted({n for n in names if names.count(n) > 1})
     if clash:
@@ -148,6 +149,20 @@ def output_schema(plans: list[ColumnPlan], input_schema: pa.Schema, fmt_in: str)
                         "column has the same name as a column another mechanism adds, such as NAME__hash). "
                         "Rename the input column.")
     return pa.schema(fields)
+
+
+def described_fields(plans: list[ColumnPlan]) -> list[pa.Field]:
+    """Every output field with the Arrow field metadata of its manifest column entry
+    (``manifest.field_metadata``: meaning, mechanism, spec; a public column says it is released in
+    the clear), so that a Parquet extract explains itself.  The text is the manifest's own, made
+    from the policy only, and the same on every route that writes the extract (one file, dataset
+    parts, either engine: they all write this schema).  ``plans`` keep their fields so described."""
+    out: list[pa.Field] = []
+    for p, entry in zip(plans, column_entries(plans)):
+        p.fields = [f.with_metadata(field_metadata(entry, o)) for f, o in zip(p.fields, entry.outputs)]
+        out.extend(p.fields)
+    return out
+
 
 def attach_randomness(plans: list[ColumnPlan], policy: LoadedPolicy, key: SecretKey,
                       nonce: str) -> ColumnSampler | None:
