@@ -390,3 +390,21 @@ def test_privatize_to_memory_options_are_checked() -> None:
         privatize_to_memory(rows(), policy(), KEY, as_="polars")  # type: ignore[arg-type]
     with pytest.raises(OptionError, match="file_name"):
         privatize_to_memory(rows(), policy(), KEY, file_name="sub/extract.parquet")
+
+
+def test_a_stop_removes_the_spooled_copy_and_the_in_memory_folder(tmp_path: Path) -> None:
+    df = rows()
+    pol = policy(cap=10.0)
+
+    def stop(_: int) -> None:  # a stop signal arriving during the extract's pass (after the spooling pass)
+        assert _spool_files()
+        raise KeyboardInterrupt
+
+    with pytest.raises(KeyboardInterrupt):
+        release(as_input(df, "reader"), pol, tmp_path, "mem/out.parquet", ledger_path=tmp_path / "mem.ledger",
+                on_progress=stop)
+    assert _spool_files() == [] and os.listdir(tmp_path / "mem") == []
+    assert not (tmp_path / "mem.ledger").exists() and not nonces.state_path().exists()
+    with pytest.raises(KeyboardInterrupt):
+        privatize_to_memory(as_input(df, "reader"), pol, KEY, ledger_path=tmp_path / "mem.ledger", on_progress=stop)
+    assert os.listdir(nonces.state_path().parent) == []
