@@ -118,6 +118,11 @@ class PairTest:
                 "ratio_lower": self.ratio_lower, "epsilon_lower": self.epsilon_lower}
 
 
+AUDIT_TEST_COLUMNS = ("column", "mechanism", "epsilon", "channel_epsilon", "first", "second", "event",
+                      "first_in_event", "first_rows", "second_in_event", "second_rows", "ratio_lower", "epsilon_lower",
+                      "status", "column_epsilon_lower")
+
+
 @dataclass(frozen=True)
 class ColumnAudit:
     """The audit of one privatized column: the largest lower bound on eps over its tests, against
@@ -146,6 +151,19 @@ class ColumnAudit:
                 "channel_epsilon": self.channel_epsilon, "epsilon_lower": self.epsilon_lower,
                 "status": "pass" if self.ok else "fail", "worst": w.to_dict() if w is not None else None,
                 "tests": [t.to_dict() for t in self.tests], "seconds": self.seconds}
+
+    def frame_rows(self) -> list[dict[str, Any]]:
+        return [{"column": self.column, "mechanism": self.mechanism, "epsilon": self.epsilon,
+                 "channel_epsilon": self.channel_epsilon, **t.to_dict(),
+                 "status": "pass" if not t.epsilon_lower > self.epsilon else "fail",
+                 "column_epsilon_lower": self.epsilon_lower} for t in self.tests]
+
+    def to_frame(self) -> pd.DataFrame:
+        """One row per test of this column (the rows of ``AuditResult.to_frame()`` without the
+        audit's own figures)."""
+        import pandas as pd
+
+        return pd.DataFrame(self.frame_rows(), columns=list(AUDIT_TEST_COLUMNS))
 
 
 @dataclass(frozen=True, eq=False)
@@ -176,14 +194,16 @@ class AuditResult(DictView):
                 "ok": self.ok, "columns": [c.to_dict() for c in self.columns], "seconds": self.seconds}
 
     def to_frame(self) -> pd.DataFrame:
-        """One row per test: column, mechanism, eps, first, second, event, counts, bounds, status."""
+        """One row per test: column, mechanism, eps (stated), channel_epsilon (the mechanism's
+        exact eps), first, second, event, counts, bounds, status; then the audit's own figures,
+        the same on every row (policy, rows_per_side, confidence, test_confidence, and the
+        column's largest lower bound as column_epsilon_lower)."""
         import pandas as pd
 
-        cols = ["column", "mechanism", "epsilon", "first", "second", "event", "first_in_event", "first_rows",
-                "second_in_event", "second_rows", "ratio_lower", "epsilon_lower", "status"]
-        rows = [{"column": c.column, "mechanism": c.mechanism, "epsilon": c.epsilon, **t.to_dict(),
-                 "status": "pass" if not t.epsilon_lower > c.epsilon else "fail"}
-                for c in self.columns for t in c.tests]
+        cols = [*AUDIT_TEST_COLUMNS, "policy", "rows_per_side", "confidence", "test_confidence"]
+        run = {"policy": self.policy, "rows_per_side": self.rows, "confidence": self.confidence,
+               "test_confidence": self.test_confidence}
+        rows = [{**r, **run} for c in self.columns for r in c.frame_rows()]
         return pd.DataFrame(rows, columns=cols)
 
     __hash__ = None  # type: ignore[assignment]

@@ -362,3 +362,33 @@ def test_the_plan_frame_reads_back(tmp_path: Path) -> None:
     r = CliRunner().invoke(app, ["plan", "--policy", str(path), "--rows", "3000", "--format", "json"])
     assert r.exit_code == 0, r.output
     assert json.loads(r.stdout) == PlanResult.from_frame(frame).to_dict()
+
+
+# -- fit tests and audits ----------------------------------------------------------------------
+
+def test_fit_and_audit_frames_hold_their_figures() -> None:
+    from ldptransform.audit import AUDIT_TEST_COLUMNS, audit
+    from ldptransform.gof import FitResult
+
+    hull = FitResult("hull fit", "hull-lr", 3.5, 4, "chi-square with 4 df", 0.48, 0.01, True, 900, 0, "fits",
+                     {"cells": 5, "fit_gap": 0.002})
+    bad = FitResult("valid reports", "support-bounds", math.inf, None, "exact", 0.0, 0.01, False, 900, 3,
+                    "3 impossible reports", {"level": 2})
+    verdict = dataclasses.replace(hull, tests=(hull, bad))
+    f = verdict.to_frame()
+    assert list(f.columns) == ["test", "kind", "statistic", "df", "p_value", "alpha", "passed", "tested", "rows",
+                               "impossible", "detail", "reference", "cells", "fit_gap", "level"]
+    assert list(f["reference"]) == ["chi-square with 4 df", "exact"] and f["cells"].iloc[0] == 5
+    assert f["level"].iloc[1] == 2 and pd.isna(f["level"].iloc[0])
+    assert f["statistic"].iloc[0] == 3.5 and math.isnan(f["statistic"].iloc[1])   # inf: null in the JSON
+    assert strict(bad.to_dict())["statistic"] is None
+    lp = parse_policy({"budget": {"epsilon_per_row": 1.0},
+                       "columns": {"x": {"type": "categorical", "categories": ["a", "b"], "epsilon": 1.0}}}, "t")
+    a = audit(lp, rows=2000, key=KEY, seed="frames")
+    frame = a.to_frame()
+    assert len(frame) == len(a.columns[0].tests) == 2
+    assert list(frame.columns[:len(AUDIT_TEST_COLUMNS)]) == list(AUDIT_TEST_COLUMNS)
+    assert (frame["channel_epsilon"] == a.columns[0].channel_epsilon).all()
+    assert (frame["column_epsilon_lower"] == a.columns[0].epsilon_lower).all()
+    assert (frame["rows_per_side"] == a.to_dict()["rows_per_side"]).all() and (frame["policy"] == "t").all()
+    pd.testing.assert_frame_equal(a.columns[0].to_frame(), frame[list(AUDIT_TEST_COLUMNS)])

@@ -201,11 +201,18 @@ class FitResult(DictView):
 
     def to_frame(self) -> pd.DataFrame:
         """One row per test (this result's own ``tests`` if it combines several, else itself):
-        test, kind, statistic, df, p_value, alpha, passed, tested, rows, impossible, detail."""
+        test, kind, statistic, df, p_value, alpha, passed, tested, rows, impossible, detail,
+        reference, then each of the tests' own figures (``extra``: observed, expected, cells,
+        fit_gap, level ...) as a column of its own (missing where a test has no such figure).  A
+        statistic that is not finite (reports no mechanism can send: null in the JSON) is NaN."""
+        from ..results import _typed
+
         cols = ["test", "kind", "statistic", "df", "p_value", "alpha", "passed", "tested", "rows", "impossible",
-                "detail"]
-        rows = [{c: getattr(t, c) for c in cols} for t in (self.tests if self.tests is not None else (self,))]
-        return pd.DataFrame(rows, columns=cols)
+                "detail", "reference"]
+        tests = self.tests if self.tests is not None else (self,)
+        extra = list(dict.fromkeys(k for t in tests for k in t.extra if k not in cols))
+        rows = [{**{c: getattr(t, c) for c in cols}, **{k: t.extra.get(k) for k in extra}} for t in tests]
+        return _typed(pd.DataFrame(rows, columns=cols + extra), ("statistic", "p_value", "alpha"))
 
     def __iter__(self) -> Iterator[str]:
         return iter(self.to_dict())
