@@ -1,8 +1,13 @@
 """The `ldpt` command line.  Thin: every command calls the Python API and prints.
 
-Exit codes: 0 success; 1 a validation ran and failed; 2 an error you can fix (bad policy,
-data, key, paths or options; the message says what and how); 3 an internal error (a bug:
-please report it with the traceback, which never shows local variables).
+Exit codes (errors.ExitCode; README.md and docs/pipelines.md list them): 0 success; 1 a check
+ran and failed (validate, ledger verify, audit); 2 an error you can fix (bad policy, data, key,
+paths or options; the message says what and how); 3 an internal error (a bug: please report it
+with the traceback, which never shows local variables); 4 refused for privacy (lifetime budget
+exhausted, a nonce reused); 5 the output already exists; 6 the environment failed (disk full,
+permission denied writing an output); 130 interrupted.  Each error class carries its code
+(``exit_code``) and a stable ``kind`` for the JSON log (``--log-format json``: JSON lines on
+stderr instead of the usual lines; docs/pipelines.md).
 """
 
 from __future__ import annotations
@@ -11,8 +16,11 @@ import contextlib
 import errno
 import json
 import math
+import os
 import signal
 import sys
+import threading
+import time
 import traceback
 from collections.abc import Iterable, Iterator
 from contextlib import contextmanager
@@ -28,7 +36,7 @@ from rich.table import Table
 from typer.core import TyperGroup
 
 from . import __version__
-from .errors import LdptError, one_paragraph, terminal_safe
+from .errors import EXIT_CODE_MEANINGS, ExitCode, LdptError, OutputError, one_paragraph, terminal_safe
 
 if TYPE_CHECKING:  # pragma: no cover
     from .results import ColumnResult, CrossTabResult, EstimateResult, GroupedMeanResult, MeanResult
@@ -65,7 +73,253 @@ _interrupt_told: list[bool] = [False]  # whether this run has printed its interr
 
 def _tell_interrupted(text: str = "interrupted: stopped before finishing.") -> None:
     _interrupt_told[0] = True
-    err_console.print(text, markup=False)
+    _report_error(ExitCode.INTERRUPTED, "interrupted", text)
+
+
+# -- the JSON log (--log-format json) ---------------------------------------------------------
+
+class LogFormat(StrEnum):
+    text = "text"
+    json = "json"
+
+
+_LOG_OPTION = "--log-format"
+_LOG_HELP = ("text: the usual lines on stderr; json: JSON lines on stderr instead, one object per line (start, "
+             "progress, per-column summaries, then a result or an error record with its exit code; see "
+             "docs/pipelines.md). Records may hold steward-only counts, marked steward_only.")
+
+
+def json_line(obj: Any) -> str:
+    """One strict JSON object on one line (a NaN or an infinity is null; non-ASCII escaped)."""
+    return json.dumps(_finite(obj), allow_nan=False, separators=(",", ":")) + "\n"
+
+
+def _utc_now() -> str:
+    from datetime import UTC, datetime
+
+    return datetime.now(UTC).isoformat(timespec="milliseconds").replace("+00:00", "Z")
+
+
+class RunLog:
+    """The records of one command run.  In JSON mode each ``record`` is a line on stderr:
+    ``{"event": ..., "command": ..., "time": ..., ...}``; in text mode records are not written."""
+
+    def __init__(self, command: str, json_mode: bool) -> None:
+        self.command, self.json = command, json_mode
+        self.t0 = time.monotonic()
+        self.ended = False  # a result or error record was written
+        self.result: dict[str, Any] = {}  # fields of the result record, filled in by the command
+        self._lock = threading.Lock()
+
+    def seconds(self) -> float:
+        return round(time.monotonic() - self.t0, 3)
+
+    def record(self, event: str, **fields: Any) -> None:
+        if not self.json:
+            return
+        line = json_line({"event": event, "command": self.command, "time": _utc_now(), **fields})
+        with self._lock:  # progress may be told from a reader's thread
+            sys.stderr.write(line)
+            sys.stderr.flush()
+
+
+_log: list[RunLog | None] = [None]  # the run log of the command running now
+_json_requested: list[bool] = [False]  # the command line asks for --log-format json (for usage errors)
+
+
+def _wants_json_log(argv: list[str]) -> bool:
+    return f"{_LOG_OPTION}=json" in argv or any(a == _LOG_OPTION and b == "json" for a, b in zip(argv, argv[1:]))
+
+
+def _report_error(code: int, kind: str, message: str, **extra: Any) -> None:
+    """An error as the run tells it: an ``error`` record in JSON mode, else the usual line."""
+    log = _log[0]
+    if log is None and _json_requested[0]:
+        log = RunLog("ldpt", True)
+    if log is not None and log.json:
+        log.record("error", exit_code=int(code), kind=kind, message=message, seconds=log.seconds(), **extra)
+        log.ended = True
+        return
+    if code == ExitCode.INTERRUPTED:
+        err_console.print(message, markup=False)
+    else:
+        err_console.print(f"[bold red]Error:[/] {_markup_escape(message)}", markup=True, highlight=False)
+
+
+class _LogConsole(SafeConsole):
+    """stderr in JSON mode: every line a command would print there becomes a ``message`` record."""
+
+    def __init__(self, log: RunLog) -> None:
+        import io
+
+        super().__init__(file=io.StringIO(), highlight=False, soft_wrap=True, width=400)
+        self._run_log = log
+
+    def print(self, *objects: Any, **kwargs: Any) -> None:
+        with self.capture() as cap:
+            super().print(*objects, **kwargs)
+        text = cap.get().strip("\n")
+        if text:
+            self._run_log.record("message", text=text)
+
+
+def _path_text(v: Any) -> Any:
+    if isinstance(v, (list, tuple)):
+        return [_path_text(x) for x in v]
+    return v if isinstance(v, (int, float, bool)) or v is None else str(v)
+
+
+@contextmanager
+def _run_log(command: str, fmt: LogFormat, inputs: dict[str, Any]) -> Iterator[RunLog]:
+    """The run of ``command``: in JSON mode a ``start`` record first (command, version, time, the
+    inputs as paths), stderr's usual lines as ``message`` records meanwhile, and a ``result`` record
+    at the end (exit code, seconds, what the command put in ``log.result``) unless an ``error``
+    record ended it.  An internal error (a bug) is an ``error`` record with its traceback."""
+    global err_console
+    log = RunLog(command, fmt == LogFormat.json)
+    saved_console, saved_log = err_console, _log[0]
+    _log[0] = log
+    if log.json:
+        err_console = _LogConsole(log)
+    code: int | None = None
+    try:
+        log.record("start", version=__version__, pid=os.getpid(),
+                   inputs={k: _path_text(v) for k, v in inputs.items() if v not in (None, [], ())})
+        yield log
+        code = ExitCode.OK
+    except typer.Exit as ex:
+        code = ex.exit_code
+        raise
+    except KeyboardInterrupt:
+        _tell_interrupted(INTERRUPTED)
+        raise typer.Exit(code=ExitCode.INTERRUPTED) from None
+    except Exception:
+        if not log.json:
+            raise
+        _report_error(ExitCode.INTERNAL, "internal", "internal error (a bug); please report it with the traceback",
+                      traceback=terminal_safe(traceback.format_exc(limit=20), keep_layout=True))
+        raise typer.Exit(code=ExitCode.INTERNAL) from None
+    finally:
+        if code is not None and not log.ended:
+            log.record("result", exit_code=int(code), seconds=log.seconds(), **log.result)
+            log.ended = True
+        err_console, _log[0] = saved_console, saved_log
+
+
+class _Progress:
+    """Progress of a long step: a bar on stderr when it is a terminal (not with ``show=False``),
+    ``progress`` records in JSON mode (at most every EVERY seconds, and when a pass ends),
+    nothing otherwise.  ``unit`` rows or bytes; ``total`` None when not known."""
+
+    EVERY = 0.5
+
+    def __init__(self, log: RunLog, stage: str, total: int | None, unit: str = "rows", show: bool = True) -> None:
+        self.log, self.stage, self.total, self.unit = log, stage, total, unit
+        self.done, self.rows, self.passes = 0, 0, 1
+        self.bar: Any = None
+        self.show = show and not log.json and sys.stderr.isatty()
+        self._t0 = self._pass_t0 = time.monotonic()
+        self._last = 0.0
+        self._told: tuple[int, int] = (-1, -1)  # (done, rows) of the last record
+        self._lock = threading.Lock()
+
+    def __enter__(self) -> _Progress:
+        if self.show:
+            from rich.progress import (BarColumn, DownloadColumn, MofNCompleteColumn, Progress, TextColumn,
+                                       TimeElapsedColumn, TimeRemainingColumn)
+
+            count = DownloadColumn() if self.unit == "bytes" else MofNCompleteColumn()
+            self.bar = Progress(TextColumn("{task.description}"), BarColumn(), count, TimeElapsedColumn(),
+                                TextColumn("left"), TimeRemainingColumn(), console=err_console, transient=True)
+            self.bar.start()
+            self._task = self.bar.add_task(self.stage, total=self.total)
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        if self.bar is not None:
+            self.bar.stop()
+        elif exc[0] is None and (self.done, self.rows) != self._told and (self.done or self.rows):
+            self._tell(force=True)
+
+    def add(self, n: int) -> None:
+        """``n`` more units done (rows: also counted as rows)."""
+        with self._lock:
+            self.done += n
+            if self.unit == "rows":
+                self.rows = self.done
+            self._tell()
+
+    def add_rows(self, n: int) -> None:
+        """``n`` more rows written while the progress counts bytes."""
+        if self.unit == "rows":
+            self.add(n)
+            return
+        with self._lock:
+            self.rows += n
+
+    def at(self, done: int) -> None:
+        """The position in this pass (bytes read so far); a position not past the last one starts a new pass."""
+        with self._lock:
+            if done <= self.done:
+                self.passes += 1
+                self._pass_t0 = time.monotonic()
+            self.done = done
+            self._tell()
+
+    def _tell(self, force: bool = False) -> None:
+        if self.bar is not None:
+            self.bar.update(self._task, completed=self.done, total=self.total, description=self.stage if
+                            self.passes == 1 else f"{self.stage} (pass {self.passes})")
+            return
+        if not self.log.json:
+            return
+        now = time.monotonic()
+        finished = self.total is not None and self.done >= self.total
+        if not (force or finished or now - self._last >= self.EVERY) or (self.done, self.rows) == self._told:
+            return
+        self._last, self._told = now, (self.done, self.rows)
+        spent = now - self._pass_t0
+        left = (spent * (self.total - self.done) / self.done if self.total is not None and self.done > 0
+                else None)
+        extra: dict[str, Any] = {"pass": self.passes, "rows_done": self.rows} if self.unit == "bytes" else {}
+        self.log.record("progress", stage=self.stage, unit=self.unit, done=self.done, total=self.total,
+                        seconds=round(now - self._t0, 3), eta_seconds=None if left is None else round(max(left, 0), 3),
+                        **extra)
+
+
+@contextmanager
+def _status(log: RunLog, stage: str, show: bool = True) -> Iterator[None]:
+    """A step whose length is not known: a status line with the time spent on a terminal,
+    ``progress`` records (seconds so far) every second in JSON mode, nothing otherwise."""
+    stop = threading.Event()
+    t0 = time.monotonic()
+    if log.json:
+        def tick() -> None:
+            while not stop.wait(1.0):
+                log.record("progress", stage=stage, unit="seconds", done=None, total=None,
+                           seconds=round(time.monotonic() - t0, 3), eta_seconds=None)
+        th = threading.Thread(target=tick, daemon=True)
+        th.start()
+        try:
+            yield
+        finally:
+            stop.set()
+            th.join()
+        return
+    if not (show and sys.stderr.isatty()):
+        yield
+        return
+    with err_console.status(f"{stage} ...") as st:
+        def tick_status() -> None:
+            while not stop.wait(1.0):
+                st.update(f"{stage} ... {time.monotonic() - t0:.0f} s")
+        th = threading.Thread(target=tick_status, daemon=True)
+        th.start()
+        try:
+            yield
+        finally:
+            stop.set()
+            th.join()
 
 
 def _raise_interrupt(signum: int, frame: Any) -> None:
@@ -100,7 +354,46 @@ def _usage_error(err: Any) -> None:
     text = one_paragraph(err.format_message().replace("Value error, ", ""))
     if not text.endswith("."):
         text += "."
-    err_console.print(f"Error: {text} Run `{terminal_safe(where)} --help` to see how to use it.", markup=False)
+    text = f"{text} Run `{terminal_safe(where)} --help` to see how to use it."
+    if _json_requested[0]:
+        _report_error(ExitCode.BAD_INPUT, "bad_usage", text)
+    else:
+        err_console.print(f"Error: {text}", markup=False)
+
+
+def _tidy_help(cmd: Any) -> None:
+    """Help that shows what it says: markup brackets in help texts escaped (so that
+    ``[default: ...]`` and ``'ldptransform[dask]'`` are shown, never taken as styles), and flags
+    shown as flags (no value type)."""
+    import click
+
+    if getattr(cmd, "_ldpt_tidy", False):
+        return
+    cmd._ldpt_tidy = True
+    if cmd.help:
+        cmd.help = _markup_escape(cmd.help)
+    helper = cmd.get_help_option(click.Context(cmd))
+    for param in [*cmd.params, *([helper] if helper is not None else [])]:
+        if getattr(param, "help", None):
+            param.help = _markup_escape(param.help)
+        if getattr(param, "is_flag", False) and not getattr(param, "count", False):
+            param.metavar = ""
+    for sub in getattr(cmd, "commands", {}).values():
+        _tidy_help(sub)
+
+
+@contextmanager
+def _help_width() -> Iterator[None]:
+    """Help written to a file or a pipe: laid out 120 wide (never cut at 80 into ellipses)."""
+    from typer import rich_utils
+
+    saved = rich_utils.MAX_WIDTH
+    if saved is None and not sys.stdout.isatty() and "COLUMNS" not in os.environ:
+        rich_utils.MAX_WIDTH = 120
+    try:
+        yield
+    finally:
+        rich_utils.MAX_WIDTH = saved
 
 
 class _Commands(TyperGroup):
@@ -109,29 +402,33 @@ class _Commands(TyperGroup):
 
     def main(self, args: Any = None, prog_name: str | None = None, complete_var: str | None = None,
              standalone_mode: bool = True, windows_expand_args: bool = True, **extra: Any) -> Any:
+        _tidy_help(self)
         if not standalone_mode:
             return super().main(args, prog_name, complete_var, standalone_mode, windows_expand_args, **extra)
         _interrupt_told[0] = False
-        with _sigterm_interrupts():
+        _json_requested[0] = _wants_json_log([str(a) for a in (sys.argv[1:] if args is None else args)])
+        with _sigterm_interrupts(), _help_width():
             try:
                 rv = super().main(args, prog_name, complete_var, False, windows_expand_args, **extra)
             except _ClickException as err:
                 if type(err).__name__ != "NoArgsIsHelpError":  # that one: the help is already shown
                     _usage_error(err)
-                sys.exit(2)
+                sys.exit(int(ExitCode.BAD_INPUT))
             except (typer.Abort, KeyboardInterrupt):
                 _tell_interrupted()
-                sys.exit(130)
-        if rv == 130 and not _interrupt_told[0]:  # typer's own: an interrupt while it read the options
+                sys.exit(int(ExitCode.INTERRUPTED))
+            finally:
+                _json_requested[0] = False
+        if rv == ExitCode.INTERRUPTED and not _interrupt_told[0]:  # typer's own: an interrupt while it read options
             _tell_interrupted()
-        sys.exit(rv if isinstance(rv, int) else 0)
+        sys.exit(int(rv) if isinstance(rv, int) else 0)
 
     def invoke(self, ctx: Any) -> Any:
         try:
             return super().invoke(ctx)
         except KeyboardInterrupt:  # outside a command's _user_errors block (those say more)
             _tell_interrupted()
-            raise typer.Exit(code=130) from None
+            raise typer.Exit(code=ExitCode.INTERRUPTED) from None
 
 
 app = typer.Typer(cls=_Commands, no_args_is_help=True, add_completion=False, pretty_exceptions_enable=False,
@@ -159,7 +456,7 @@ class TableJsonCsv(StrEnum):
 # the library names its options as Python parameters; these commands name them by their flags
 _PRIVATIZE_FLAGS = {"batch_rows": "--batch-rows", "fragment_rows": "--part-rows", "engine": "--engine",
                     "scheduler": "--scheduler", "nonce": "--nonce", "out": "--out", "ledger_path": "--ledger",
-                    "allow_partial": "--allow-partial"}
+                    "allow_partial": "--allow-partial", "idempotent": "--idempotent", "overwrite": "--overwrite"}
 
 
 # an operating-system error in plain words, and what to do about it
@@ -216,6 +513,27 @@ def os_error_message(err: OSError) -> str:
     return one_paragraph(f"{text}. Check the path, free disk space and permissions.")
 
 
+# an operating-system error that says the environment failed (exit 6), not the paths given (exit 2);
+# one that says a destination is taken is exit 5
+_ENVIRONMENT_ERRNOS = frozenset({errno.ENOSPC, errno.EDQUOT, errno.EACCES, errno.EPERM, errno.EROFS, errno.EIO,
+                                 errno.EFBIG, errno.EMFILE, errno.ENFILE, errno.ENOMEM, errno.EBUSY, errno.ETXTBSY,
+                                 errno.EXDEV, errno.EPIPE})
+_EXISTS_ERRNOS = frozenset({errno.EEXIST, errno.ENOTEMPTY})
+
+
+def os_error_code(err: OSError) -> tuple[int, str]:
+    """The exit code and the log's kind of an OSError that reached the command line."""
+    from .errors import OutputExistsError
+
+    code = err.errno if isinstance(err.errno, int) else next(
+        (c for t, c in _ERRNO_OF_TYPE if isinstance(err, t)), None)
+    if code in _ENVIRONMENT_ERRNOS:
+        return OutputError.exit_code, OutputError.kind
+    if code in _EXISTS_ERRNOS:
+        return OutputExistsError.exit_code, OutputExistsError.kind
+    return LdptError.exit_code, "bad_path"
+
+
 @contextmanager
 def _user_errors(flags: dict[str, str] | None = None) -> Iterator[None]:
     try:
@@ -223,15 +541,33 @@ def _user_errors(flags: dict[str, str] | None = None) -> Iterator[None]:
     except LdptError as err:
         # options by their flags, never as a Python call (the demo also passes --nonce on to the release)
         named = err.message_for(flags if flags is not None else _PRIVATIZE_FLAGS)
-        err_console.print(f"[bold red]Error:[/] {_markup_escape(one_paragraph(named))}",
-                          markup=True, highlight=False)
-        raise typer.Exit(code=err.exit_code) from None
+        _report_error(err.exit_code, err.kind, one_paragraph(named))
+        raise typer.Exit(code=int(err.exit_code)) from None
     except OSError as err:
-        err_console.print(f"[bold red]Error:[/] {_markup_escape(os_error_message(err))}", markup=True)
-        raise typer.Exit(code=2) from None
+        code, kind = os_error_code(err)
+        _report_error(code, kind, os_error_message(err))
+        raise typer.Exit(code=code) from None
     except KeyboardInterrupt:
         _tell_interrupted(INTERRUPTED)
-        raise typer.Exit(code=130) from None
+        raise typer.Exit(code=ExitCode.INTERRUPTED) from None
+
+
+def _show_table(t: Table, console: Console | None = None) -> None:
+    """A table shown whole: no cell is ever cut into an ellipsis (long cells wrap on a terminal);
+    written to a file or a pipe, it is laid out as wide as its widest row, so nothing wraps either."""
+    console = console if console is not None else out_console
+    for col in t.columns:
+        col.overflow = "fold"
+        col.no_wrap = False
+    if console.is_terminal:
+        console.print(t)
+        return
+    saved = console.width
+    console.width = max(saved, console.measure(t).maximum)
+    try:
+        console.print(t)
+    finally:
+        console.width = saved
 
 
 def _version(value: bool) -> None:
@@ -324,7 +660,7 @@ def privatize(
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing extract and manifest."),
     nonce: str | None = typer.Option(None, "--nonce", help="Reuse a release nonce (from a manifest) to "
                                      "reproduce that release bit for bit."),
-    quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar; only the summary line."),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar on a terminal; only the summary line."),
     ledger: Path | None = typer.Option(
         None, "--ledger", help="Privacy ledger to charge this release to (needs the policy's subject_key) "
         "[default: none, unless the policy sets budget.lifetime_epsilon: then ledger.sqlite3 in the private "
@@ -342,6 +678,11 @@ def privatize(
                                   "part (Parquet input: whole row groups; never changes the rows' values)."),
     signing_key: Path | None = typer.Option(None, "--signing-key", help="Private signing key (`ldpt key "
                                             "new-signing`): sign the manifest, MANIFEST.sig (docs/signing.md)."),
+    idempotent: bool = typer.Option(False, "--idempotent", help="For nightly reruns: an identical release already "
+                                    "at OUT (same input, policy, key and nonce record) is a no-op, exit 0, nothing "
+                                    "charged or written; a different one there is refused, exit 5. Not with "
+                                    "--overwrite."),
+    log_format: LogFormat = typer.Option(LogFormat.text, _LOG_OPTION, help=_LOG_HELP),
 ) -> None:
     """Randomize INPUT column by column under POLICY into OUT, plus a public manifest.
 
@@ -352,7 +693,9 @@ def privatize(
     from .release import privatize as run
 
     source: str | Path = input if "://" in input else Path(input)
-    with _user_errors(_PRIVATIZE_FLAGS):
+    inputs = {"input": input, "policy": policy, "key": key, "out": out, "manifest": manifest, "ledger": ledger,
+              "nonce": nonce}
+    with _run_log("privatize", log_format, inputs) as log, _user_errors(_PRIVATIZE_FLAGS):
         lp = load_policy(policy)
         k = load_key(key)
         from .signing import after_release, prepare_release_signing
@@ -360,41 +703,116 @@ def privatize(
         sk = None if signing_key is None else prepare_release_signing(  # before anything is written
             signing_key, out, manifest, overwrite=overwrite,
             known=[("input", source if isinstance(source, Path) else None), ("policy file", policy), ("key file", key)])
-        show = (not quiet) and sys.stderr.isatty()
-        if show:
-            from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+        extra: dict[str, Any] = {}
+        if idempotent:
+            import inspect
 
-            from .io import TableSource
+            if "idempotent" not in inspect.signature(run).parameters:
+                from .errors import UsageError
 
+                raise UsageError("--idempotent is not available in this installation of ldptransform (its release "
+                                 "has no idempotent mode). Update ldptransform, or run without --idempotent.")
+            extra["idempotent"] = True
+        prog = _release_progress(log, source, lp, show=not quiet)
+        from .io import csv_bytes_read
+
+        token = csv_bytes_read.set(prog.at if prog.unit == "bytes" else None)
+        try:
+            with prog:
+                res = run(source, lp, k, out, manifest_path=manifest, diagnostics_path=diagnostics,
+                          batch_rows=batch_rows, overwrite=overwrite, nonce=nonce, on_progress=prog.add_rows,
+                          ledger_path=ledger, allow_partial=allow_partial, engine=engine.value, scheduler=scheduler,
+                          fragment_rows=part_rows, **extra)
+        finally:
+            csv_bytes_read.reset(token)
+        already = bool(getattr(res, "already_published", False))
+        signed = "" if already else after_release(res.manifest_path, sk, overwrite=overwrite)
+        _privatize_summary(log, res, already, signed)
+
+
+def _release_progress(log: RunLog, source: str | Path, lp: Any, show: bool) -> _Progress:
+    """The release's progress: a CSV file by the bytes read in each pass (its size known), a
+    Parquet file or dataset by the rows written (its row count known), else by rows."""
+    from .io import TableSource
+
+    if isinstance(source, Path) and source.suffix.lower() == ".csv" and source.is_file():
+        return _Progress(log, "privatizing", source.stat().st_size, "bytes", show=show)
+    total = None
+    if (show and sys.stderr.isatty()) or log.json:
+        try:  # only for the total: the release itself names any problem with the input
             total = TableSource(source, csv_null_values=lp.policy.input.csv_null_values,
                                 csv_delimiter=lp.policy.input.csv_delimiter).num_rows
-            with Progress(TextColumn("privatizing"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
-                          console=err_console, transient=True) as prog:
-                task = prog.add_task("rows", total=total)
-                res = run(source, lp, k, out, manifest_path=manifest, diagnostics_path=diagnostics,
-                          batch_rows=batch_rows, overwrite=overwrite, nonce=nonce,
-                          on_progress=lambda n: prog.advance(task, n), ledger_path=ledger,
-                          allow_partial=allow_partial, engine=engine.value, scheduler=scheduler,
-                          fragment_rows=part_rows)
-        else:
-            res = run(source, lp, k, out, manifest_path=manifest, diagnostics_path=diagnostics,
-                      batch_rows=batch_rows, overwrite=overwrite, nonce=nonce, ledger_path=ledger,
-                      allow_partial=allow_partial, engine=engine.value, scheduler=scheduler,
-                      fragment_rows=part_rows)
-        signed = after_release(res.manifest_path, sk, overwrite=overwrite)
-    public = res.manifest.privacy.public_columns
-    caution = (f"; CAUTION: {len(public)} column(s) released in the clear, not protected: {', '.join(public)}"
-               if public else "")
-    if res.manifest.privacy.row_order == "as-input":
-        caution += ("; CAUTION: the rows keep the input's order (policy output.row_order: as-input): if the input "
-                    "is sorted or grouped by anything, a row's neighbours tell about it")
-    caution += _csv_extract_caution(res.manifest)
+        except (LdptError, OSError, ValueError):
+            total = None
+    return _Progress(log, "privatizing", total, "rows", show=show)
+
+
+def _column_summaries(res: Any) -> list[dict[str, Any]]:
+    """Per privatized column: mechanism and eps, with the steward-only counts of the values
+    changed before randomizing (from the release's private diagnostics file)."""
+    counts: dict[str, Any] = {}
+    try:
+        counts = json.loads(Path(res.diagnostics_path).read_text(encoding="utf-8")).get("columns") or {}
+    except (OSError, ValueError, AttributeError):
+        counts = {}
+    out = []
+    for c in res.manifest.columns:
+        if c.mechanism is None:
+            continue
+        spec = c.mechanism
+        out.append({"column": c.name, "type": c.type, "mechanism": spec.get("mechanism"),
+                    "eps": spec.get("epsilon"),
+                    "steward_only": counts.get(c.name) if isinstance(counts.get(c.name), dict) else None})
+    return out
+
+
+def _release_cautions(manifest: Any) -> list[str]:
+    """The cautions of a release: columns in the clear, the input's row order, CSV cells a spreadsheet runs."""
+    public = manifest.privacy.public_columns
+    cautions = []
+    if public:
+        cautions.append(f"{len(public)} column(s) released in the clear, not protected: {', '.join(public)}")
+    if manifest.privacy.row_order == "as-input":
+        cautions.append("the rows keep the input's order (policy output.row_order: as-input): if the input is "
+                        "sorted or grouped by anything, a row's neighbours tell about it")
+    csv_caution = _csv_extract_caution(manifest)
+    if csv_caution:
+        cautions.append(csv_caution.removeprefix("; CAUTION: "))
+    return cautions
+
+
+def _privatize_summary(log: RunLog, res: Any, already: bool, signed: str) -> None:
+    """What privatize tells the steward: records in JSON mode, else the summary lines."""
+    eps = res.manifest.privacy.epsilon_per_row_used
+    outputs = {"extract": str(res.extract_path), "manifest": str(res.manifest_path)}
+    if not already:
+        outputs["diagnostics"] = str(res.diagnostics_path)  # steward-only
+    cautions = _release_cautions(res.manifest)
+    if log.json:
+        if not already:
+            for col in _column_summaries(res):
+                log.record("column", **col)
+        log.result.update(outputs=outputs, rows=res.manifest.rows, eps=eps, release_id=res.ledger_release_id,
+                          ledger=None if res.ledger_path is None else str(res.ledger_path),
+                          nonce=res.manifest.nonce, already_published=already, cautions=cautions,
+                          steward_only={"values_changed": list(res.column_counts), "warnings": list(res.warnings),
+                                        "held_back_subjects": res.held_back_subjects,
+                                        "held_back_rows": res.held_back_rows})
+        if signed:
+            log.result["signature"] = signed
+        return
+    if already:
+        err_console.print(f"already published: {res.extract_path} (manifest {res.manifest_path}) is this very release "
+                          f"(nonce {res.manifest.nonce}, eps {eps:g} per row); nothing was written, charged or "
+                          "recorded", markup=False)
+        return
+    caution = "".join(f"; CAUTION: {c}" for c in cautions)
     # steward-only counts of the values changed before randomizing (the diagnostics file has them too)
     changed = "; values changed before randomizing (steward-only): " + "; ".join(res.column_counts) \
         if res.column_counts else ""
     err_console.print(f"privatized {res.manifest.rows} rows into {res.extract_path} (manifest {res.manifest_path}; "
                       f"steward-only diagnostics {res.diagnostics_path}) in {res.seconds:.1f} s, "
-                      f"eps {res.manifest.privacy.epsilon_per_row_used:g} per row{caution}{changed}", markup=False)
+                      f"eps {eps:g} per row{caution}{changed}", markup=False)
     if signed:  # the manifest's signature, or a stale one left beside it (signing.after_release)
         err_console.print(signed, markup=False)
     for w in res.warnings:  # above 1% of a column's rows changed before randomizing: what to do
@@ -427,14 +845,14 @@ def _column_tables(name: str, col: ColumnResult) -> None:
         for f in col.frequencies:
             t.add_row(escape(f.value), *(_num(v, ".4f") for v in (f.consistent, f.estimate, f.se, f.ci_low,
                                                                   f.ci_high)))
-        _print(t)
+        _show_table(t)
     if col.mean is not None:
         t = Table(title=title, title_justify="left")
         for h in ("statistic", "estimate", "se", "ci_low", "ci_high"):
             t.add_column(h, justify="left" if h == "statistic" else "right")
         m = col.mean
         t.add_row("mean", _num(m.estimate, ".6g"), _num(m.se, ".4g"), _num(m.ci_low, ".6g"), _num(m.ci_high, ".6g"))
-        _print(t)
+        _show_table(t)
     if col.distribution is not None:
         d = col.distribution
         t = Table(title=escape(f"{name}: quantiles and ranges ({d.method})"), title_justify="left")
@@ -445,7 +863,7 @@ def _column_tables(name: str, col: ColumnResult) -> None:
         for r in d.ranges:
             t.add_row(escape(f"share in [{r.low:g}, {r.high:g})"), _num(r.estimate, ".4f"), _num(r.ci_low, ".4f"),
                       _num(r.ci_high, ".4f"))
-        _print(t)
+        _show_table(t)
     if col.estimand:  # once per column: what its values are, as the release encoded them
         _print(escape(f"{name} estimand: {col.estimand}"))
 
@@ -464,7 +882,7 @@ def _crosstab_table(x: CrossTabResult) -> None:
     for c in x.cells:
         t.add_row(escape(c.row), escape(c.column), _num(c.consistent, ".3f"), _num(c.joint.estimate, ".3f"),
                   _span(c.joint), _num(c.within_consistent, ".3f"), _span(c.within))
-    _print(t)
+    _show_table(t)
 
 
 def _grouped_mean_table(g: GroupedMeanResult) -> None:
@@ -476,7 +894,7 @@ def _grouped_mean_table(g: GroupedMeanResult) -> None:
         m = row.mean
         t.add_row(escape(row.group), _num(m.estimate, ".6g"), _num(m.se, ".4g"), _num(m.ci_low, ".6g"),
                   _num(m.ci_high, ".6g"), _num(row.consistent, ".6g"), _num(row.share, ".4f"))
-    _print(t)
+    _show_table(t)
 
 
 def _estimate_table(result: EstimateResult) -> None:
@@ -538,6 +956,18 @@ def _range(text: str) -> tuple[str, float, float]:
     return parse_range(text)
 
 
+def _rows_of(extracts: list[Path], manifests: list[Path] | None) -> int | None:
+    """The rows of the extracts as their manifests say (for the progress; None if one cannot be read:
+    the command itself names the problem)."""
+    from .manifest import default_manifest_path, load_manifest
+
+    paths = list(manifests) if manifests else [default_manifest_path(Path(e)) for e in extracts]
+    try:
+        return sum(load_manifest(Path(m)).rows for m in paths)
+    except (LdptError, OSError, ValueError):
+        return None
+
+
 def _check_estimate_out(out: Path, extracts: list[Path], manifests: list[Path] | None, overwrite: bool) -> None:
     """``estimate --out``: never an extract or manifest it reads (nor inside a dataset extract),
     nor the steward's default ledger or nonce record, and not an existing file without --overwrite."""
@@ -583,6 +1013,7 @@ def estimate(
                                          "dask scheduler [default: a local cluster]."),
     public_key: Path | None = typer.Option(None, "--public-key", help="The steward's public signing key (.pub): "
                                            "decode only if every manifest's signature verifies (docs/signing.md)."),
+    log_format: LogFormat = typer.Option(LogFormat.text, _LOG_OPTION, help=_LOG_HELP),
 ) -> None:
     """Unbiased frequencies, means, cross-tabs, grouped means and quantiles with SEs and intervals.
 
@@ -593,19 +1024,23 @@ def estimate(
     from .io import write_text_atomic
 
     global out_console
-    with _user_errors():
+    inputs = {"extracts": list(extracts), "manifests": list(manifest or []), "out": out, "public_key": public_key}
+    with _run_log("estimate", log_format, inputs) as log, _user_errors():
         if out is not None:
             _check_estimate_out(out, extracts, manifest, overwrite)
         if public_key is not None:
             from .signing import require_signatures
 
             require_signatures(extracts, manifest, public_key)
-        result = run(extracts, list(manifest) if manifest else None, confidence=confidence,
-                     crosstabs=[parse_pair(x, "--crosstab") for x in crosstab or []],
-                     mean_by=[parse_pair(x, "--mean-by") for x in mean_by or []],
-                     quantiles=parse_quantiles(quantiles) if quantiles else None,
-                     ranges=[_range(x) for x in range_ or []], consistency=consistency,
-                     engine=engine.value, scheduler=scheduler)
+        with _Progress(log, "decoding", _rows_of(extracts, manifest)) as prog:
+            result = run(extracts, list(manifest) if manifest else None, confidence=confidence,
+                         crosstabs=[parse_pair(x, "--crosstab") for x in crosstab or []],
+                         mean_by=[parse_pair(x, "--mean-by") for x in mean_by or []],
+                         quantiles=parse_quantiles(quantiles) if quantiles else None,
+                         ranges=[_range(x) for x in range_ or []], consistency=consistency,
+                         engine=engine.value, scheduler=scheduler, on_progress=prog.add)
+        log.result.update(rows=result.rows, outputs={"estimates": "stdout" if out is None else str(out)},
+                          format=format.value)
         if format == TableJsonCsv.json:
             text = json_text(result.to_dict())
         elif format == TableJsonCsv.csv:
@@ -653,6 +1088,7 @@ def validate(
                                             "column's bounds cut in four]."),
     public_key: Path | None = typer.Option(None, "--public-key", help="The steward's public signing key (.pub): "
                                            "check the manifest's signature (docs/signing.md)."),
+    log_format: LogFormat = typer.Option(LogFormat.text, _LOG_OPTION, help=_LOG_HELP),
 ) -> None:
     """Check a release; exit 0 if every check passes, 1 if one fails.
 
@@ -665,29 +1101,35 @@ def validate(
     from .keys import load_key
     from .validate import validate as run
 
-    with _user_errors():
-        if (raw is None) != (key is None):
-            from .errors import UsageError
+    inputs = {"extract": extract, "manifest": manifest, "raw": raw, "key": key, "public_key": public_key}
+    with _run_log("validate", log_format, inputs) as log:
+        with _user_errors():
+            if (raw is None) != (key is None):
+                from .errors import UsageError
 
-            raise UsageError("--raw and --key go together: re-deriving a release needs both the raw input and the "
-                             "secret key (steward only).")
-        k = load_key(key) if key is not None else None
-        rep = run(extract, manifest, raw=raw, key=k, confidence=confidence,
-                  quantiles=parse_quantiles(quantiles) if quantiles else None,
-                  ranges=[_range(x) for x in range_ or []] or None, public_key=public_key)
-    if format == TableJson.json:
-        sys.stdout.write(json_text(rep.to_dict()))
-    else:
-        t = Table(title=escape(f"validation of {rep.extract} (manifest {rep.manifest})"), title_justify="left")
-        t.add_column("check")
-        t.add_column("status")
-        t.add_column("detail", overflow="fold")
-        colors = {"pass": "green", "warn": "yellow", "fail": "bold red"}
-        for c in rep.checks:
-            t.add_row(escape(c.name), f"[{colors[c.status]}]{c.status}[/]", escape(c.detail))
-        out_console.print(t)
-        out_console.print("result: " + ("[green]all checks passed[/]" if rep.ok else "[bold red]FAILED[/]"))
-    raise typer.Exit(code=0 if rep.ok else 1)
+                raise UsageError("--raw and --key go together: re-deriving a release needs both the raw input and "
+                                 "the secret key (steward only).")
+            k = load_key(key) if key is not None else None
+            with _Progress(log, "decoding", _rows_of([extract], [manifest] if manifest else None)) as prog:
+                rep = run(extract, manifest, raw=raw, key=k, confidence=confidence,
+                          quantiles=parse_quantiles(quantiles) if quantiles else None,
+                          ranges=[_range(x) for x in range_ or []] or None, public_key=public_key,
+                          on_progress=prog.add)
+        log.result.update(ok=rep.ok, failed=[c.name for c in rep.checks if c.status == "fail"],
+                          warned=[c.name for c in rep.checks if c.status == "warn"])
+        if format == TableJson.json:
+            sys.stdout.write(json_text(rep.to_dict()))
+        else:
+            t = Table(title=escape(f"validation of {rep.extract} (manifest {rep.manifest})"), title_justify="left")
+            t.add_column("check")
+            t.add_column("status")
+            t.add_column("detail", overflow="fold")
+            colors = {"pass": "green", "warn": "yellow", "fail": "bold red"}
+            for c in rep.checks:
+                t.add_row(escape(c.name), f"[{colors[c.status]}]{c.status}[/]", escape(c.detail))
+            _show_table(t)
+            out_console.print("result: " + ("[green]all checks passed[/]" if rep.ok else "[bold red]FAILED[/]"))
+        raise typer.Exit(code=ExitCode.OK if rep.ok else ExitCode.CHECK_FAILED)
 
 
 # -- sign -----------------------------------------------------------------------------------
@@ -738,7 +1180,7 @@ def policy_check(policy: Path = typer.Argument(..., help="Policy file to check."
             memo += f", second layer eps {rc.rerandomize_epsilon:g} (permanent eps {rc.permanent_epsilon:g})"
         t.add_row(escape(rc.name), rc.type, mname, f"{m.epsilon:g}" if m else "-", escape(dom),
                   *((memo,) if any_memo else ()))
-    out_console.print(t)
+    _show_table(t)
     pol = lp.policy
     if pol.subject_key is not None:
         out_console.print(f"subject_key: {pol.subject_key} (identifies a person for memoized columns and the "
@@ -807,9 +1249,7 @@ def _plan_table(result: dict) -> None:
             continue
         for st in c["statistics"]:
             t.add_row(*_plan_row(c, st))
-    # ten columns do not fit 80 characters: print the table at least 150 wide rather than fold
-    # every cell into ellipses (a narrow terminal wraps the lines instead)
-    SafeConsole(highlight=False, width=max(out_console.width, 150)).print(t)
+    _show_table(t)
     out_console.print(f"eps per row: {result['epsilon_per_row']:g} of the budget "
                       f"{result['epsilon_per_row_budget']:g} (strategy {result['strategy']})", markup=False)
     for item in result["impossible"]:
@@ -837,23 +1277,31 @@ def plan(
     rows: int = typer.Option(..., "--rows", help="Number of table rows the release will have."),
     format: TableJson = typer.Option(TableJson.table, "--format", help="Output format."),
     suggest: bool = typer.Option(False, "--suggest", help="Also suggest the smallest eps per column that meets the "
-                                 "policy's quality targets, and compare with budget.strategy sample."),
+                                 "policy's quality targets, and compare with budget.strategy sample (a search: "
+                                 "it may take minutes; a status line on a terminal shows the time spent)."),
+    log_format: LogFormat = typer.Option(LogFormat.text, _LOG_OPTION, help=_LOG_HELP),
 ) -> None:
     """Predict each statistic's standard error before a release, against the policy's quality targets.
-    Example: ldpt plan --policy policy.yaml --rows 20000 --suggest"""
+
+    Example: ldpt plan --policy policy.yaml --rows 20000 --suggest
+    """
     from .plan import plan as make_plan
     from .plan import suggest as make_suggestion
     from .policy import load_policy
 
-    with _user_errors():
-        lp = load_policy(policy)
-        result = make_plan(lp, rows).to_dict()
-        if suggest:
-            result["suggestion"] = make_suggestion(lp, rows)
-    if format == TableJson.json:
-        sys.stdout.write(json_text(result))
-    else:
-        _plan_table(result)
+    with _run_log("plan", log_format, {"policy": policy, "rows": rows}) as log:
+        with _user_errors():
+            lp = load_policy(policy)
+            result = make_plan(lp, rows).to_dict()
+            if suggest:
+                with _status(log, "suggesting an eps split (searching)"):
+                    result["suggestion"] = make_suggestion(lp, rows)
+        log.result.update(targets_missed=list(result.get("targets_missed", [])),
+                          impossible=list(result.get("impossible", [])))
+        if format == TableJson.json:
+            sys.stdout.write(json_text(result))
+        else:
+            _plan_table(result)
 
 
 # -- audit ----------------------------------------------------------------------------------
@@ -903,11 +1351,11 @@ def audit(
             where = f"{w.first} over {w.second}: {w.event}" if w is not None else ""
             t.add_row(escape(c.column), escape(c.mechanism), f"{c.epsilon:.4g}", f"{c.epsilon_lower:.4f}",
                       "[green]pass[/]" if c.ok else "[bold red]fail[/]", escape(where))
-        out_console.print(t)
+        _show_table(t)
         out_console.print(f"{res.seconds:.1f} s. A lower bound at or below eps does not prove a release private; "
                           "one above eps shows a violation.", markup=False)
         out_console.print("result: " + ("[green]no violation found[/]" if res.ok else "[bold red]VIOLATION[/]"))
-    raise typer.Exit(code=0 if res.ok else 1)
+    raise typer.Exit(code=ExitCode.OK if res.ok else ExitCode.CHECK_FAILED)
 
 
 # -- demo -----------------------------------------------------------------------------------
@@ -962,61 +1410,87 @@ _LEDGER_OPTION_HELP = "Ledger file [default: ledger.sqlite3 in the private folde
 
 @ledger_app.command("show")
 def ledger_show(ledger: Path | None = typer.Option(None, "--ledger", help=_LEDGER_OPTION_HELP),
-                format: TableJson = typer.Option(TableJson.table, "--format", help="Output format.")) -> None:
+                format: TableJson = typer.Option(TableJson.table, "--format", help="Output format."),
+                log_format: LogFormat = typer.Option(LogFormat.text, _LOG_OPTION, help=_LOG_HELP)) -> None:
     """Summarize the ledger: releases, eps recorded, per-subject spend (steward only: it depends on the data).
 
     Example: ldpt ledger show --format json
     """
-    from .ledger import Ledger
+    from .ledger.report import ledger_summary
 
-    with _user_errors():
-        with Ledger.open(_ledger_path(ledger), create=False, readonly=True) as led:
-            summary = led.show()
-    if format == TableJson.json:
-        sys.stdout.write(json_text(summary))
-        return
-    t = Table(title=escape(f"ledger {summary['ledger']}: {summary['releases']} release(s)"), title_justify="left")
+    with _run_log("ledger show", log_format, {"ledger": ledger}) as log:
+        with _user_errors():
+            summary = ledger_summary(_ledger_path(ledger))
+        log.result.update(ledger=summary.ledger, releases=summary.releases, head=summary.head)
+        if format == TableJson.json:
+            sys.stdout.write(json_text(summary.to_dict()))
+            return
+        _ledger_show_table(summary)
+
+
+def _ledger_show_table(summary: Any) -> None:
+    t = Table(title=escape(f"ledger {summary.ledger}: {summary.releases} release(s)"), title_justify="left")
     for h in ("release", "time (UTC)", "eps per row", "subjects charged", "lifetime eps"):
         t.add_column(h)
-    for r in summary["release_list"]:
-        cap = r["lifetime_epsilon"]
-        t.add_row(str(r["id"]), escape(str(r["time"])), f"{r['eps_per_row']:g}", str(r["subjects_charged"]),
+    for r in summary.release_list:
+        cap = r.lifetime_epsilon
+        t.add_row(str(r.id), escape(str(r.time)), f"{r.eps_per_row:g}", str(r.subjects_charged),
                   "-" if cap is None else f"{cap:g}")
-    out_console.print(t)
-    out_console.print(f"eps per row summed over releases: {summary['eps_per_row_summed_over_releases']:g}; "
-                      f"head hash {summary['head']} (keep a copy elsewhere to anchor the chain)", markup=False)
-    out_console.print(f"STEWARD ONLY, {summary['steward_only']}:", markup=False)
-    out_console.print(f"  subjects in the ledger: {summary['subjects']}", markup=False)
-    if "spend_quantiles" in summary:
-        q = ", ".join(f"q{k} {v:g}" for k, v in summary["spend_quantiles"].items())
+    _show_table(t)
+    out_console.print(f"eps per row summed over releases: {summary.eps_per_row_summed_over_releases:g}; "
+                      f"head hash {summary.head} (keep a copy elsewhere to anchor the chain)", markup=False)
+    out_console.print(f"STEWARD ONLY, {summary.steward_only}:", markup=False)
+    out_console.print(f"  subjects in the ledger: {summary.subjects}", markup=False)
+    if summary.spend_quantiles is not None:
+        q = ", ".join(f"q{k} {v:g}" for k, v in summary.spend_quantiles.items())
         out_console.print(f"  eps spent per subject: {q}", markup=False)
-    if "near_cap" in summary:
-        near = ", ".join(f"{k} of the cap: {v}" for k, v in summary["near_cap"].items())
-        out_console.print(f"  subjects near the lifetime eps {summary['lifetime_epsilon']:g} (counts): {near}; "
-                          f"least remaining eps {summary['least_remaining_eps']:g}", markup=False)
+    if summary.near_cap is not None:
+        near = ", ".join(f"{k} of the cap: {v}" for k, v in summary.near_cap.items())
+        out_console.print(f"  subjects near the lifetime eps {summary.lifetime_epsilon:g} (counts): {near}; "
+                          f"least remaining eps {summary.least_remaining_eps:g}", markup=False)
 
 
 @ledger_app.command("verify")
-def ledger_verify(ledger: Path | None = typer.Option(None, "--ledger", help=_LEDGER_OPTION_HELP)) -> None:
+def ledger_verify(ledger: Path | None = typer.Option(None, "--ledger", help=_LEDGER_OPTION_HELP),
+                  format: TableJson = typer.Option(TableJson.table, "--format", help="Output format: table (one "
+                                                   "line) or json (ok, releases, first_broken, detail, head, "
+                                                   "damaged)."),
+                  log_format: LogFormat = typer.Option(LogFormat.text, _LOG_OPTION, help=_LOG_HELP)) -> None:
     """Recompute the ledger's hash chain; exit 0 if intact, 1 if broken (naming the first broken release) or damaged.
 
     Example: ldpt ledger verify --ledger ~/private/ledger.sqlite3
     """
-    from .ledger import Ledger, LedgerDamagedError
+    from .ledger.report import ledger_check
 
-    with _user_errors():
-        try:
-            with Ledger.open(_ledger_path(ledger), create=False, readonly=True) as led:
-                res = led.verify()
-        except LedgerDamagedError as err:  # empty, not a ledger or damaged: a failed check, as a broken chain
-            out_console.print(str(err), markup=False)
-            raise typer.Exit(code=1) from None
-    if res.ok:
-        out_console.print(f"ledger {led.path}: {res.detail}; head {res.head}", markup=False)
-    else:
-        where = f"release {res.first_broken}" if res.first_broken is not None else "the ledger"
-        out_console.print(f"ledger {led.path}: BROKEN at {where}: {res.detail}", markup=False)
-    raise typer.Exit(code=0 if res.ok else 1)
+    with _run_log("ledger verify", log_format, {"ledger": ledger}) as log:
+        with _user_errors():
+            res = ledger_check(_ledger_path(ledger))
+        log.result.update(ok=res.ok, releases=res.releases, first_broken=res.first_broken, damaged=res.damaged)
+        if format == TableJson.json:
+            sys.stdout.write(json_text(res.to_dict()))
+        elif res.damaged:  # empty, not a ledger or damaged: a failed check, as a broken chain
+            out_console.print(res.detail, markup=False)
+        elif res.ok:
+            out_console.print(f"ledger {res.ledger}: {res.detail}; head {res.head}", markup=False)
+        else:
+            where = f"release {res.first_broken}" if res.first_broken is not None else "the ledger"
+            out_console.print(f"ledger {res.ledger}: BROKEN at {where}: {res.detail}", markup=False)
+        raise typer.Exit(code=ExitCode.OK if res.ok else ExitCode.CHECK_FAILED)
+
+
+@app.command("exit-codes")
+def exit_codes(format: TableJson = typer.Option(TableJson.table, "--format", help="Output format.")) -> None:
+    """List ldpt's exit codes and what each means (also in README.md and docs/pipelines.md)."""
+    if format == TableJson.json:
+        sys.stdout.write(json_text([{"code": int(c), "name": c.name.lower(), "meaning": m}
+                                    for c, m in EXIT_CODE_MEANINGS.items()]))
+        return
+    t = Table(title="exit codes of ldpt", title_justify="left")
+    t.add_column("code", justify="right")
+    t.add_column("meaning")
+    for c, m in EXIT_CODE_MEANINGS.items():
+        t.add_row(str(int(c)), escape(m))
+    _show_table(t)
 
 
 def main() -> None:
@@ -1026,11 +1500,11 @@ def main() -> None:
         raise
     except KeyboardInterrupt:
         sys.stderr.write("interrupted: stopped before finishing.\n")
-        sys.exit(130)
+        sys.exit(int(ExitCode.INTERRUPTED))
     except Exception:  # a bug: show where, never locals (they may hold key material)
         sys.stderr.write("ldpt: internal error (a bug). Please report it with this traceback:\n")
         sys.stderr.write(terminal_safe(traceback.format_exc(limit=20), keep_layout=True))  # data-derived text too
-        sys.exit(3)
+        sys.exit(int(ExitCode.INTERNAL))
 
 
 if __name__ == "__main__":
