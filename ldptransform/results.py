@@ -4,13 +4,18 @@ Every result is a frozen dataclass with two views:
 
 * ``to_dict()``: the JSON shape of ``ldpt estimate --format json`` / ``ldpt validate --format
   json`` (stable: scripts and tests read it);
-* ``to_frame()``: a long pandas DataFrame, one row per statistic (what ``--format csv`` writes).
+* ``to_frame()``: a long pandas DataFrame holding everything ``to_dict()`` holds: for an
+  estimate, one row per statistic and per descriptor (columns ``FRAME_COLUMNS``; what ``--format
+  csv`` writes, through ``frame_csv``); for a report, one row per check.  ``from_frame`` reads a
+  frame back (``EstimateResult.from_frame``, ``ValidationReport.from_frame``): its ``to_dict()``
+  is the original's with every non-finite figure as None, as strict JSON writes it.
 
 For scripts written against the earlier dict results, the top-level results also read like a
 read-only mapping of their ``to_dict()`` (``result["columns"]["site"]``); new code should use
 the typed fields.
 
-This module imports nothing else of the package but ``distribution`` (for type hints only), so
+This module imports nothing else of the package but ``distribution`` (for type hints only) and
+``errors`` (inside ``spreadsheet_safe``), and pandas only inside the functions that need it, so
 the decoder, the validator and the command line can all import it without cycles.
 """
 
