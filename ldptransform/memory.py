@@ -346,7 +346,7 @@ def _kind_of(name: Any) -> str:
     if isinstance(name, (int, float, np.number)):
         return "a number"
     if isinstance(name, tuple):
-        return "a tuple: the frame has several levels of column names"
+        return "a name of several parts: the frame has several levels of column names"
     return "not text"
 
 
