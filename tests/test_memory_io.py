@@ -304,6 +304,8 @@ def test_a_float_column_with_missing_values_equals_its_nullable_integer_twin(tmp
 
 @pytest.mark.parametrize(("make", "names"), [
     (lambda df: df.rename(columns={"wave": 7}), ["7", "number", "text"]),
+    (lambda df: df.set_axis(pd.MultiIndex.from_tuples([(c, "x") for c in df.columns]), axis=1),
+     ["'person'", "several levels of column names"]),
     (lambda df: df.set_axis([*df.columns[:-1], "colour"], axis=1), ["duplicate", "'colour'"]),
     (lambda df: df.assign(wave=[1 if i % 2 else "x" for i in range(len(df))]), ["'wave'", "several types"]),
     (lambda df: df.assign(wave=[b"x" if i % 2 else "x" for i in range(len(df))]), ["'wave'", "several types"]),
