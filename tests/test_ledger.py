@@ -23,7 +23,7 @@ from conftest import FIXED_KEY_BYTES, cli_env
 from ldptransform.errors import LdptError
 from ldptransform.keys import SecretKey
 from ldptransform.ledger import (DIGEST, BudgetExhaustedError, Ledger, LedgerError, ReleaseMeta, _decode_spend,
-                                 _encode_spend, _Index, subject_hashes, value_hashes)
+                                 _encode_spend, _Index, distinct, memo_value_hashes, subject_hashes, value_hashes)
 
 KEY = SecretKey(FIXED_KEY_BYTES)
 OTHER_KEY = SecretKey(bytes(range(32)))
@@ -59,40 +59,80 @@ def _aes(key: bytes, block: bytes) -> bytes:
     return enc.update(block) + enc.finalize()
 
 
-def _one_digest(labels: tuple, message: bytes, code: int = 0) -> bytes:
+def _one_digest(labels: tuple, message: bytes) -> bytes:
     """The keyed digest of one message computed on its own, block by block (the encrypted
-    CBC-MAC of [u64 length || u64 code] + message zero-padded, expanded by AES of the seed
-    with a block counter in its low half): the reference the vectorized digests must equal."""
-    chain, final, expand = (KEY.subkey("memoized/v1", *labels, part) for part in ("chain", "final", "expand"))
-    state = _aes(chain, len(message).to_bytes(8, "big") + code.to_bytes(8, "big"))
+    CBC-MAC of [u64 length || eight zero bytes] + message zero-padded): the reference the
+    vectorized digests must equal."""
+    chain, final = (KEY.subkey("ledger/v3", *labels, part) for part in ("chain", "final"))
+    state = _aes(chain, len(message).to_bytes(8, "big") + bytes(8))
     padded = message + bytes(-len(message) % 16)
     for b in range(0, len(padded), 16):
         state = _aes(chain, bytes(x ^ y for x, y in zip(state, padded[b:b + 16])))
-    seed = _aes(final, state)
-    return b"".join(_aes(expand, seed[:8] + bytes(x ^ y for x, y in zip(seed[8:], i.to_bytes(8, "big"))))
-                    for i in range(2))
+    return _aes(final, state)
+
+
+def _one_memo_digest(column: str, context: bytes, subject: bytes, code: int) -> bytes:
+    """The keyed digest of one (subject digest, value code) pair on its own: the CBC-MAC of the
+    two blocks (eight zero bytes || big-endian i64 code, subject digest)."""
+    k = KEY.subkey("ledger/v3", "memo-value", column, b"memo-context", context)
+    first = _aes(k, bytes(8) + code.to_bytes(8, "big", signed=True))
+    return _aes(k, bytes(x ^ y for x, y in zip(first, subject)))
 
 
 def test_subject_hashes_are_keyed_digests_with_their_own_label() -> None:
-    ids_ = ["42", "7", "", "person-0000000000000017", "n\u00e9e"]
+    ids_ = ["42", "7", "", "person-0000000000000017", "n\u00e9e", "a-subject-of-exactly-32-bytes-..."]
     h = subject_hashes(KEY, pa.array(ids_))
-    assert h.dtype == DIGEST and h.shape == (5,)
+    assert h.dtype == DIGEST and h.shape == (6,) and DIGEST.itemsize == 16
     raw = h.tobytes()
     for i, s in enumerate(ids_):
-        assert raw[32 * i:32 * i + 32] == _one_digest(("ledger", "subject-hash/v2"), s.encode())
+        assert raw[16 * i:16 * i + 16] == _one_digest(("subject",), s.encode())
+    # identifiers of one length (the matrix path) hash as they do among others
+    same_len = ["staff-00001", "staff-00002", "staff-00003"]
+    for i, d in enumerate(np.frombuffer(subject_hashes(KEY, pa.array(same_len)).tobytes(), dtype="V16")):
+        assert d.tobytes() == _one_digest(("subject",), same_len[i].encode())
     # the same identifier read as text or as a number is the same subject; a slice of a larger
     # array (non-zero Arrow offset) and a chunked array hash the same
-    assert subject_hashes(KEY, pa.array([42, 7])).tobytes() == raw[:64]
-    assert subject_hashes(KEY, np.array(["42", "7"])).tobytes() == raw[:64]
-    assert subject_hashes(KEY, pa.array(ids_).slice(1, 3)).tobytes() == raw[32:128]
+    assert subject_hashes(KEY, pa.array([42, 7])).tobytes() == raw[:32]
+    assert subject_hashes(KEY, np.array(["42", "7"])).tobytes() == raw[:32]
+    assert subject_hashes(KEY, pa.array(ids_).slice(1, 3)).tobytes() == raw[16:64]
     assert subject_hashes(KEY, pa.chunked_array([ids_[:2], ids_[2:]])).tobytes() == raw
     assert subject_hashes(KEY, pa.array([], pa.string())).shape == (0,)
     # another key, or the value hash of a column, gives other digests (domain separation)
-    assert subject_hashes(OTHER_KEY, pa.array([42])).tobytes() != raw[:32]
+    assert subject_hashes(OTHER_KEY, pa.array([42])).tobytes() != raw[:16]
     v_site = value_hashes(KEY, "site", pa.array([42]))
     v_pay = value_hashes(KEY, "pay", pa.array([42]))
-    assert v_site.tobytes() == _one_digest(("ledger", "value-hash/v2", "site"), b"42")
-    assert len({raw[:32], v_site.tobytes(), v_pay.tobytes()}) == 3
+    assert v_site.tobytes() == _one_digest(("value", "site"), b"42")
+    assert len({raw[:16], v_site.tobytes(), v_pay.tobytes()}) == 3
+
+
+def test_memo_value_hashes_bind_subject_code_column_and_context() -> None:
+    h = subject_hashes(KEY, ids(0, 4))
+    codes = np.array([3, 3, -1, 2**40], dtype=np.int64)
+    got = memo_value_hashes(KEY, "site", b"ctx", h, codes).tobytes()
+    for i in range(4):
+        assert got[16 * i:16 * i + 16] == _one_memo_digest("site", b"ctx", h.tobytes()[16 * i:16 * i + 16],
+                                                           int(codes[i]))
+    # two subjects with one value do not share a digest; another column or context gives others
+    assert got[:16] != got[16:32]
+    assert memo_value_hashes(KEY, "pay", b"ctx", h, codes).tobytes()[:16] != got[:16]
+    assert memo_value_hashes(KEY, "site", b"other", h, codes).tobytes()[:16] != got[:16]
+    assert memo_value_hashes(KEY, "site", b"ctx", h[:0], codes[:0]).shape == (0,)
+
+
+def test_distinct_is_unique_with_inverse_also_for_shared_prefixes() -> None:
+    h = subject_hashes(KEY, ids(0, 500))
+    rep = np.concatenate([h[::-1], h[100:300], h[:5]])
+    for arr in (rep, h, h[::-1]):
+        uniq, inv = distinct(arr)
+        want_u, want_inv = np.unique(arr, return_inverse=True)
+        assert uniq.tobytes() == want_u.tobytes()
+        np.testing.assert_array_equal(inv, want_inv.reshape(-1))
+    raw = bytearray(h.tobytes())
+    raw[16 * 7:16 * 7 + 8] = raw[16 * 3:16 * 3 + 8]  # subject 7 shares subject 3's prefix
+    twins = np.frombuffer(bytes(raw), dtype=DIGEST)
+    arr = np.concatenate([twins, twins[[3, 7, 3]]])
+    uniq, inv = distinct(arr)
+    assert len(uniq) == 500 and (uniq[inv] == arr).all()
 
 
 def test_subject_hashes_refuse_missing_and_float_identifiers() -> None:
@@ -111,13 +151,13 @@ def test_index_finds_digests_also_when_two_share_a_64_bit_prefix() -> None:
     np.testing.assert_array_equal(idx.find(h[::-1]), np.arange(1000)[::-1])
     assert (idx.find(subject_hashes(KEY, ids(1000, 1100))) == -1).all()
     raw = bytearray(h.tobytes())
-    raw[32 * 7:32 * 7 + 8] = raw[32 * 3:32 * 3 + 8]  # subject 7 now shares subject 3's prefix
+    raw[16 * 7:16 * 7 + 8] = raw[16 * 3:16 * 3 + 8]  # subject 7 now shares subject 3's prefix
     twins = np.frombuffer(bytes(raw), dtype=DIGEST)
     idx = _Index(twins)
     assert idx.exact
     np.testing.assert_array_equal(idx.find(twins), np.arange(1000))
-    fake = bytearray(raw[32 * 3:32 * 3 + 32])
-    fake[31] ^= 0xFF  # same prefix as both, another digest
+    fake = bytearray(raw[16 * 3:16 * 3 + 16])
+    fake[15] ^= 0xFF  # same prefix as both, another digest
     assert idx.find(np.frombuffer(bytes(fake), dtype=DIGEST))[0] == -1
 
 
@@ -159,20 +199,75 @@ def test_open_creates_a_private_file_and_refuses_other_files(tmp_path: Path) -> 
     with pytest.raises(LedgerError, match="is not an ldptransform ledger"):
         Ledger.open(other)
     assert dump(other) == ["BEGIN TRANSACTION;", "CREATE TABLE t (x);", "COMMIT;"]  # left untouched
-    old = tmp_path / "old.sqlite3"  # a ledger of schema 1 hashed subjects otherwise: never mixed
-    Ledger.open(old).close()
-    con = sqlite3.connect(old)
-    con.execute("PRAGMA user_version = 1")
-    con.close()
-    with pytest.raises(LedgerError, match="schema version 1; this ldptransform reads version 2\\. .*hash subjects "
-                                          "differently"):
-        Ledger.open(old)
+    for version in (1, 2):  # ledgers of schemas 1 and 2 hashed subjects otherwise: never mixed
+        old = tmp_path / f"old{version}.sqlite3"
+        Ledger.open(old).close()
+        con = sqlite3.connect(old)
+        con.execute(f"PRAGMA user_version = {version}")
+        con.close()
+        before = old.read_bytes()
+        with pytest.raises(LedgerError, match=f"schema version {version}; this ldptransform reads version 3\\. "
+                                              ".*hash subjects differently"):
+            Ledger.open(old)
+        with pytest.raises(LedgerError, match=f"schema version {version}"):
+            Ledger.open(old, readonly=True)
+        assert old.read_bytes() == before  # refused before SQLite opens it: left as it is
     p.chmod(0o644)
     with pytest.raises(LedgerError, match="chmod 600"):
         Ledger.open(p)
 
 
 # -- spend, cap, state --------------------------------------------------------------------------
+
+def counted(fn, calls: list):
+    def call():
+        calls.append(1)
+        return fn()
+    return call
+
+
+def test_a_record_uses_the_checked_state_only_while_nobody_has_written(tmp_path: Path, monkeypatch) -> None:
+    """``record_release(checked=...)`` takes the state a read-only ledger read (the pre-pass's)
+    instead of reading it again under the lock, but only while the file is the same one and no
+    job has committed to it since: a stale state would hide the other job's spend from the cap."""
+    path = tmp_path / "ledger.sqlite3"
+    h = subject_hashes(KEY, ids(0, 50))
+    with Ledger.open(path) as led:
+        led.record_release(meta(1), h, 1.0, lifetime_epsilon=2.0)
+    ro = Ledger.open(path, readonly=True)
+    ro.check_state()
+    with Ledger.open(path) as other:  # another job records after the pre-pass read the state
+        other.record_release(meta(2), h[:10], 1.0, lifetime_epsilon=2.0)
+    loads: list[int] = []
+    with Ledger.open(path) as led:
+        real = led._load
+        monkeypatch.setattr(led, "_load", counted(real, loads))
+        with pytest.raises(BudgetExhaustedError, match="take 10 subject\\(s\\) over"):
+            led.record_release(meta(3), h, 0.5, lifetime_epsilon=2.0, checked=ro)
+        assert loads  # the stale state was not used: read again under the lock
+        ro.check_state()  # read again: nobody has written since
+        loads.clear()
+        assert led.record_release(meta(3), h[10:], 0.5, lifetime_epsilon=2.0, checked=ro) == 3
+        assert not loads  # the checked state was used, not read again
+    ro.close()
+    with Ledger.open(path, readonly=True) as check:
+        assert check.verify().ok
+        np.testing.assert_allclose(check.spent(h), [2.0] * 10 + [1.5] * 40)
+    # a file put in place of the one read (same bytes, another file) is read again
+    ro = Ledger.open(path, readonly=True)
+    ro.check_state()
+    copy = tmp_path / "copy.sqlite3"
+    copy.write_bytes(path.read_bytes())
+    copy.chmod(0o600)
+    os.replace(copy, path)
+    loads.clear()
+    with Ledger.open(path) as led:
+        real = led._load
+        monkeypatch.setattr(led, "_load", counted(real, loads))
+        led.record_release(meta(4), h[10:20], 0.5, lifetime_epsilon=2.0, checked=ro)
+    assert loads
+    ro.close()
+
 
 def test_record_spent_and_charge_plan(led: Ledger) -> None:
     a = subject_hashes(KEY, ids(0, 100))
@@ -219,7 +314,7 @@ def test_memoized_state_and_no_raw_values_in_the_file(led: Ledger, key_hex: str)
     got = led.last_values("site", subject_hashes(KEY, ids(0, 21)))
     np.testing.assert_array_equal(got[:5], vh2)
     np.testing.assert_array_equal(got[5:20], vh[5:])
-    assert got[20:].tobytes() == bytes(32)  # never seen: all-zero digest
+    assert got[20:].tobytes() == bytes(16)  # never seen: all-zero digest
     with pytest.raises(LedgerError, match="does not mark as memoized"):
         led.record_release(meta(3), h, 1.0, {"site": (h, vh)})
     with pytest.raises(LedgerError, match="policy_sha256 must be 64 hex"):
@@ -305,7 +400,7 @@ def _set_first_eps(ids, eps):
 
 
 def _swap_registry(data: bytearray) -> None:
-    data[0:32], data[32:64] = data[32:64], data[0:32]
+    data[0:16], data[16:32] = data[16:32], data[0:16]
 
 
 def _zero_total(data: bytearray) -> None:

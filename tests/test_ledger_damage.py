@@ -111,7 +111,8 @@ DAMAGED: dict[str, tuple[Callable[[Path], object], str]] = {
     "an empty database": (_empty_database, "not an ldptransform ledger"),
     "truncated to half": (_cut(lambda n: n // 2), "truncated"),
     "truncated in its header": (_cut(lambda n: 60), "truncated"),
-    "one page cut off": (_cut(lambda n: n - 4096), "truncated"),
+    "one page cut off": (_cut(lambda n: n - 65536), "truncated"),  # a ledger's pages are of 64 KiB
+    "part of a page cut off": (_cut(lambda n: n - 4096), "truncated"),
     "releases table dropped": (_sql("DROP TABLE releases"), "table of releases (releases) is missing"),
     "spend table dropped": (_sql("DROP TABLE release_spend"), "(release_spend) is missing"),
     "state table dropped": (_sql("DROP TABLE arrays"), "(arrays) is missing"),
@@ -342,7 +343,8 @@ def test_an_overwritten_page_anywhere_is_damage_or_a_broken_chain_never_a_crash(
     good = good_ledger(tmp_path / "good.sqlite3", releases=2, people=1500)
     data = good.read_bytes()
     page = int.from_bytes(data[16:18], "big")
-    assert len(data) // page >= 10
+    page = 65536 if page == 1 else page  # how SQLite's header writes its largest page size
+    assert len(data) // page >= 5
     h = subject_hashes(KEY, pa.array(["staff-00020"]))
     for n in range(len(data) // page):
         bad = tmp_path / f"page{n}.sqlite3"

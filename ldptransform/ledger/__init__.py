@@ -12,13 +12,15 @@ from .charges import (
                     CAP_TOLERANCE,
                     ChargePlan,
                     LedgerCharges,
+                    MemoColumn,
                     aggregate,
                     cap_plan,
                     charges_of,
                     check_cap,
 )
 from .errors import BudgetExhaustedError, LedgerDamagedError, LedgerError
-from .hashes import DIGEST, as_digests, memo_value_hashes, subject_hashes, value_hashes
+from .hashes import (DIGEST, DIGEST_BYTES, as_digests, distinct, memo_value_hashes, subject_digests, subject_hashes,
+                     value_hashes)
 from .store import (
                     APPLICATION_ID,
                     BUSY_TIMEOUT_S,
@@ -38,6 +40,6 @@ from .store import (
 
 __all__ = ["APPLICATION_ID", "BUSY_TIMEOUT_S", "CAP_TOLERANCE", "DEFAULT_NAME", "DIGEST", "GENESIS", "PART_BYTES",
            "SCHEMA_VERSION", "SPEND_NOTE", "BudgetExhaustedError", "ChargePlan", "Ledger", "LedgerCharges",
-           "LedgerDamagedError", "LedgerError", "ReleaseMeta", "VerifyResult", "_Index", "_decode_spend",
+           "LedgerDamagedError", "LedgerError", "MemoColumn", "ReleaseMeta", "VerifyResult", "_Index", "_decode_spend",
            "_encode_spend", "aggregate", "as_digests", "cap_plan", "charges_of", "check_cap", "default_ledger_path",
-           "memo_value_hashes", "subject_hashes", "value_hashes"]
+           "DIGEST_BYTES", "distinct", "memo_value_hashes", "subject_digests", "subject_hashes", "value_hashes"]

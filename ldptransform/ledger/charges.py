@@ -11,6 +11,7 @@ from typing import Any
 import numpy as np
 
 from .errors import LedgerError
+from .hashes import distinct
 
 CAP_TOLERANCE = 1e-9  # relative slack on the cap for floating-point sums (0.1 + 0.2 > 0.3)
 
@@ -31,8 +32,12 @@ def aggregate(h: np.ndarray, per_subject_eps: Any) -> tuple[np.ndarray, np.ndarr
     if not np.all(np.isfinite(eps)) or np.any(eps < 0):
         raise LedgerError("per-subject eps must be finite and >= 0 (the eps each subject's rows use in this "
                           "release).")
-    uniq, inv = np.unique(h, return_inverse=True)
-    return uniq, np.bincount(inv.reshape(-1), weights=eps, minlength=len(uniq))
+    uniq, inv = distinct(h)
+    if len(inv) == len(uniq):  # one entry per subject already
+        out = np.empty(len(uniq))
+        out[inv] = eps
+        return uniq, out
+    return uniq, np.bincount(inv, weights=eps, minlength=len(uniq))
 
 
 def cap_plan(spent: np.ndarray, add: np.ndarray, cap: float) -> ChargePlan:
@@ -50,50 +55,97 @@ def check_cap(cap: float | None) -> None:
 
 
 @dataclass
+class MemoColumn:
+    """A memoized column in a release's charges: per input row, the keyed digest of (subject,
+    value) (``hashes.memo_value_hashes``)."""
+
+    tags: np.ndarray                 # S16 per input row
+    eps: float = 0.0                 # what a changed value costs (added to the row's eps)
+    sets: np.ndarray | None = None   # per input row: the row sets its subject's state (None: every row)
+    free_if_same: bool = True        # a value the ledger last recorded costs nothing (False: always ``eps``)
+
+
+@dataclass
 class LedgerCharges:
     """What a release charges, from its pre-pass (all steward-only, data-dependent)."""
 
-    subjects: np.ndarray          # distinct subject hashes (S32), sorted
+    subjects: np.ndarray          # distinct subject digests (S16), in byte order
     eps: np.ndarray               # eps each distinct subject is charged
     within: np.ndarray            # per distinct subject: stays within lifetime_epsilon
     row_within: np.ndarray        # per input row: its subject stays within (rows to release)
-    memo: dict[str, tuple[np.ndarray, np.ndarray, np.ndarray]]  # column -> (row index, subject hash, value hash)
+    # memoized column -> (place among ``subjects`` of each subject whose state the release sets,
+    # the digest of its value: that of its last row that sets it)
+    memo: dict[str, tuple[np.ndarray, np.ndarray]]
     over_count: int = 0
     max_overshoot: float = 0.0
     # per memoized column and input row: the value is the one last recorded (its report is the one
     # already released); set by the release's pre-pass, used for the rows of held-back people
     memo_same: dict[str, np.ndarray] = field(default_factory=dict)
+    # the ledger (read-only) the charges were worked out from, kept open so that its record can
+    # use the state it read when nobody has written the ledger since (``Ledger.record_release``)
+    checked: Any | None = field(default=None, repr=False)
 
     def memo_updates(self) -> dict[str, tuple[np.ndarray, np.ndarray]]:
-        """Memo state of the released rows only (held-back subjects keep their old state)."""
+        """Memo state of the released subjects only (held-back subjects keep their old state)."""
         out = {}
-        for col, (rows, sh, vh) in self.memo.items():
-            keep = self.row_within[rows]
-            out[col] = (sh[keep], vh[keep])
+        for col, (pos, tags) in self.memo.items():
+            keep = self.within[pos]
+            out[col] = (self.subjects[pos], tags) if keep.all() else (self.subjects[pos[keep]], tags[keep])
         return out
 
 
-def _concat_memo(parts: list[tuple[np.ndarray, np.ndarray, np.ndarray]]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    return tuple(np.concatenate([pt[i] for pt in parts]) if parts else np.zeros(0, dtype=dt)  # type: ignore[return-value]
-                 for i, dt in enumerate((np.int64, "S32", "S32")))
+def _equal(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Element-wise equality of two S16 arrays (as words: numpy compares S16 strings slower)."""
+    return (np.ascontiguousarray(a).view("<u8").reshape(-1, 2) == np.ascontiguousarray(b).view("<u8").reshape(-1, 2)
+            ).all(axis=1)
 
 
-def charges_of(hashes: list[np.ndarray], eps: list[np.ndarray],
-               memo: Mapping[str, list[tuple[np.ndarray, np.ndarray, np.ndarray]]], ledger: Any | None,
-               cap: float | None) -> LedgerCharges:
-    """A release's charges from its rows' subject hashes and eps (in batches, input order): one
-    charge per distinct subject (the sum of its rows), checked against ``cap`` with what the
-    ``ledger`` (None: none yet) says each subject has spent; ``memo``: per memoized column, the
-    (row index, subject hash, value hash) batches of the rows whose state the release sets."""
-    all_h = np.concatenate(hashes) if hashes else np.zeros(0, dtype="S32")
-    all_e = np.concatenate(eps) if eps else np.zeros(0)
-    uniq, inv = np.unique(all_h, return_inverse=True)
-    inv = inv.reshape(-1)
-    eps_u = np.bincount(inv, weights=all_e, minlength=len(uniq))
+def _last_rows(inv: np.ndarray, sets: np.ndarray | None, n_subjects: int) -> tuple[np.ndarray, np.ndarray]:
+    """(subjects that have a row that sets their state, the last such row of each)."""
+    rows = np.arange(len(inv), dtype=np.int64)
+    if sets is not None:
+        rows = rows[sets]
+    last = np.full(n_subjects, -1, dtype=np.int64)
+    np.maximum.at(last, inv[rows], rows)
+    who = np.flatnonzero(last >= 0)
+    return who, last[who]
+
+
+def charges_of(subject_rows: np.ndarray, eps_rows: Any, memo: Mapping[str, MemoColumn],
+               ledger: Any | None, cap: float | None) -> LedgerCharges:
+    """A release's charges from its rows' subject digests and eps (input order): one charge per
+    distinct subject (the sum of its rows), checked against ``cap`` with what the ``ledger``
+    (None: none yet) says each subject has spent.  A memoized column adds its ``eps`` to each row
+    whose value differs from the ledger's last recorded one (``free_if_same``; a first release is
+    charged in full).  The ledger is searched once, for the distinct subjects in byte order."""
+    h = np.asarray(subject_rows)
+    uniq, inv = distinct(h)
+    n = len(inv)
+    eps_rows = np.array(np.broadcast_to(np.asarray(eps_rows, dtype=np.float64), (n,)))
+    pos = ledger.positions(uniq) if ledger is not None and len(uniq) else np.full(len(uniq), -1, dtype=np.int64)
+    memo_out: dict[str, tuple[np.ndarray, np.ndarray]] = {}
+    same_out: dict[str, np.ndarray] = {}
+    for col, m in memo.items():
+        if m.free_if_same and ledger is not None:
+            same = _equal(m.tags, ledger.last_values(col, uniq, pos)[inv])
+        else:
+            same = np.zeros(n, dtype=bool)
+        eps_rows += np.where(same, 0.0, m.eps)
+        same_out[col] = same
+        if m.sets is None and len(uniq) == n:  # one row per subject: no search for last rows
+            tags_u = np.empty(n, dtype=m.tags.dtype)
+            tags_u[inv] = m.tags
+            memo_out[col] = (np.arange(n, dtype=np.int64), tags_u)
+        else:
+            who, rows = _last_rows(inv, m.sets, len(uniq))
+            memo_out[col] = (who, m.tags[rows])
+    eps_u = np.bincount(inv, weights=eps_rows, minlength=len(uniq)) if n else np.zeros(0)
     if cap is not None:
-        spent = ledger.spent(uniq) if ledger is not None else np.zeros(len(uniq))
+        known = pos >= 0
+        spent = np.zeros(len(uniq))
+        if ledger is not None and known.any():
+            spent[known] = ledger.spend_totals()[pos[known]]
         over, overshoot, within = cap_plan(spent, eps_u, cap)
     else:
         within, over, overshoot = np.ones(len(uniq), dtype=bool), 0, 0.0
-    return LedgerCharges(uniq, eps_u, within, within[inv], {c: _concat_memo(parts) for c, parts in memo.items()},
-                         over, max(overshoot, 0.0))
+    return LedgerCharges(uniq, eps_u, within, within[inv], memo_out, over, max(overshoot, 0.0), same_out)

@@ -1,10 +1,29 @@
 """Keyed digests of subjects and values: nothing raw goes into a ledger.
 
-A subject is stored only as a 32-byte keyed digest (the AES-based PRF of
-``random.bits.SubjectPRF``, evaluated for a whole batch at once) under keys derived from the
-release key with labels of their own ("ledger", "subject-hash/v2"), and a last value only as a
-keyed digest of (subject digest, value code) under per-column keys ("ledger", "value-hash/v2",
-column, ...).
+Every digest is 16 bytes (dtype ``S16``), the output of a keyed pseudorandom function (PRF)
+built on AES-256 under keys derived from the release key (``SecretKey.subkey``, HMAC-SHA256)
+with labels of their own, so digests of one kind never meet another's keys:
+
+- a subject: ``subject_hashes``, labels ("ledger/v3", "subject", ...);
+- a value of a column: ``value_hashes``, labels ("ledger/v3", "value", column, ...);
+- a memoized column's last value: ``memo_value_hashes``, labels ("ledger/v3", "memo-value",
+  column, memo context), a digest of (subject digest, value code).
+
+Subjects and values are hashed with an encrypted CBC-MAC over a prefix-free message (block 0 is
+the byte length as a big-endian u64 and eight zero bytes, then the bytes zero-padded to whole
+16-byte blocks): ``AES(k_final, CBC-MAC(k_chain, message))``, a PRF on messages of any length.
+A memoized value is hashed with the CBC-MAC of the two-block message (value code block, subject
+digest), ``AES(k, AES(k, code block) XOR subject digest)``, under a key used for no message of
+another length: CBC-MAC on messages of one fixed length is a PRF.  The subject is in the
+message so that two subjects with the same value do not share a digest (no equality classes,
+hence no frequency analysis, in the ledger).
+
+All rows are hashed at once: one AES-ECB call over the whole batch per block position (the
+blocks that depend only on a length or a value code are encrypted once per distinct length or
+code), each row stopping after its own blocks, so a row's digest depends only on its own
+message.  Collisions of 128-bit PRF outputs are about n^2 / 2^129: negligible for any table
+(one in 10^26 at 10^6 subjects).  Without the key the digests cannot be linked to identifiers or
+values; with it, anyone can test a guess, so a ledger is as sensitive as the key.
 """
 
 from __future__ import annotations
@@ -14,14 +33,67 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
+from cryptography.hazmat.primitives.ciphers import Cipher, algorithms, modes
 
 from ..keys import SecretKey
-from ..random.bits import SubjectPRF
 from .errors import LedgerError
 
-_SUBJECT_LABELS = ("ledger", "subject-hash/v2")
-_VALUE_LABELS = ("ledger", "value-hash/v2")
-DIGEST = np.dtype("S32")
+HASH_VERSION = "ledger/v3"  # 16-byte AES-based digests (schema 3); schema 2 kept 32-byte digests
+DIGEST = np.dtype("S16")
+DIGEST_BYTES = DIGEST.itemsize
+
+
+def _ecb(key: bytes, blocks: np.ndarray) -> np.ndarray:
+    """AES-256-ECB of (n, 16) uint8 blocks, into a new (n, 16) array (no intermediate bytes)."""
+    n = len(blocks)
+    out = np.empty(16 * n + 16, dtype=np.uint8)  # update_into needs room for one block more
+    if n:
+        enc = Cipher(algorithms.AES(key), modes.ECB()).encryptor()
+        enc.update_into(np.ascontiguousarray(blocks, dtype=np.uint8).data, out.data)
+    return out[:16 * n].reshape(n, 16)
+
+
+class _MessageMAC:
+    """The encrypted CBC-MAC of length-prefixed byte strings under two derived keys."""
+
+    __slots__ = ("_chain", "_final")
+
+    def __init__(self, key: SecretKey, *labels: str | bytes) -> None:
+        self._chain = key.subkey(HASH_VERSION, *labels, "chain")
+        self._final = key.subkey(HASH_VERSION, *labels, "final")
+
+    def digests(self, data: np.ndarray, offs: np.ndarray) -> np.ndarray:
+        """Digests (dtype S16) of the n byte strings data[offs[i]:offs[i + 1]]."""
+        n = len(offs) - 1
+        if n <= 0:
+            return np.zeros(0, dtype=DIGEST)
+        lens = np.diff(offs)
+        # block 0 depends only on the length: encrypted once per distinct length
+        uniq_len, which = np.unique(lens, return_inverse=True)
+        head = np.zeros((len(uniq_len), 2), dtype=">u8")
+        head[:, 0] = uniq_len.astype(np.uint64)
+        state = _ecb(self._chain, head.view(np.uint8).reshape(-1, 16))[which.reshape(-1)]
+        nblocks = -(-lens // 16)
+        width = int(nblocks.max()) * 16
+        if width:
+            start = int(offs[0])
+            total = int(offs[-1]) - start
+            raw = np.asarray(data, dtype=np.uint8)[start:start + total]
+            if len(uniq_len) == 1:  # identifiers of one length: the bytes are already a matrix
+                mat = np.zeros((n, width), dtype=np.uint8)
+                mat[:, :int(uniq_len[0])] = raw.reshape(n, int(uniq_len[0]))
+            else:  # byte t goes to row r, column t - start(r): flat index t + r * width - start(r)
+                mat = np.zeros((n, width), dtype=np.uint8)
+                shift = np.arange(n, dtype=np.int64) * width - (offs[:-1] - start)
+                mat.reshape(-1)[np.arange(total, dtype=np.int64) + np.repeat(shift, lens)] = raw
+            for b in range(width // 16):
+                block = mat[:, 16 * b:16 * b + 16]
+                active = nblocks > b
+                if active.all():
+                    state = _ecb(self._chain, state ^ block)
+                else:
+                    state[active] = _ecb(self._chain, state[active] ^ block[active])
+        return _ecb(self._final, state).view(DIGEST).reshape(-1)
 
 
 def _encode_values(values: Any, what: str) -> tuple[np.ndarray, np.ndarray]:
@@ -58,59 +130,91 @@ def _encode_values(values: Any, what: str) -> tuple[np.ndarray, np.ndarray]:
     return data, offs
 
 
-def _keyed_digests(prf: SubjectPRF, data: np.ndarray, offs: np.ndarray,
-                   codes: np.ndarray | None = None) -> np.ndarray:
-    """32-byte keyed digests of n byte strings (and int64 codes), dtype S32, all rows at once:
-    the 128-bit seed of ``SubjectPRF`` (an encrypted CBC-MAC over a length-prefixed, hence
-    prefix-free, encoding: a PRF) expanded to four 64-bit words.  Collisions are governed by
-    the 128-bit seed (about n^2 / 2^129: negligible for any table)."""
-    n = len(offs) - 1
-    if n <= 0:
-        return np.zeros(0, dtype=DIGEST)
-    codes = np.zeros(n, dtype=np.int64) if codes is None else np.asarray(codes, dtype=np.int64)
-    words = prf.words(prf.seeds(data, offs, codes), 4)
-    return np.ascontiguousarray(words, dtype="<u8").view(DIGEST).reshape(-1)
-
-
 def subject_hashes(key: SecretKey, subject_values: Any) -> np.ndarray:
-    """Keyed hashes of subject identifiers: an array of dtype S32 (32-byte digests).
+    """Keyed digests of subject identifiers: an array of dtype S16 (16-byte digests).
 
     Use ``arr.tobytes()`` (or ``as_digests``) rather than indexing single elements: numpy
-    drops trailing zero bytes when it hands out one S32 element.
+    drops trailing zero bytes when it hands out one S16 element.
     """
-    return _keyed_digests(SubjectPRF(key, *_SUBJECT_LABELS), *_encode_values(subject_values, "subject identifiers"))
+    return _MessageMAC(key, "subject").digests(*_encode_values(subject_values, "subject identifiers"))
+
+
+def subject_digests(key: SecretKey, data: np.ndarray, offs: np.ndarray) -> np.ndarray:
+    """``subject_hashes`` of identifiers already given as their UTF-8 bytes (concatenated, with
+    n + 1 int64 offsets): the same digests, without converting them again."""
+    return _MessageMAC(key, "subject").digests(np.asarray(data, dtype=np.uint8), np.asarray(offs, dtype=np.int64))
 
 
 def value_hashes(key: SecretKey, column: str, values: Any) -> np.ndarray:
-    """Keyed hashes of a column's values (per-column sub-key), dtype S32."""
-    return _keyed_digests(SubjectPRF(key, *_VALUE_LABELS, column),
-                          *_encode_values(values, f"values of column {column!r}"))
+    """Keyed digests of a column's values (per-column keys), dtype S16."""
+    return _MessageMAC(key, "value", column).digests(*_encode_values(values, f"values of column {column!r}"))
 
 
 def memo_value_hashes(key: SecretKey, column: str, context: bytes, subject_h: np.ndarray,
                       codes: np.ndarray) -> np.ndarray:
-    """Keyed hashes of (subject, value code) for a memoized column, dtype S32, under per-column
-    keys that also bind ``context`` (the column's memo context: mechanism spec and grid); the
-    message is the subject's keyed hash with the code.  The subject is in the message so that
-    two subjects with the same value do not share a hash (no equality classes, hence no
-    frequency analysis, in the ledger); a changed mechanism or grid gives another hash, so the
-    next release is charged, as its randomness is fresh."""
+    """Keyed digests of (subject, value code) for a memoized column, dtype S16, under a per-column
+    key that also binds ``context`` (the column's memo context: mechanism spec and grid): the
+    CBC-MAC of the two blocks (code as a big-endian i64 after eight zero bytes, subject digest).
+    A changed mechanism or grid gives another digest, so the next release is charged, as its
+    randomness is fresh."""
     h = as_digests(subject_h)
-    data = np.frombuffer(h.tobytes(), dtype=np.uint8)
-    offs = np.arange(0, 32 * len(h) + 1, 32, dtype=np.int64)
-    return _keyed_digests(SubjectPRF(key, *_VALUE_LABELS, column, b"memo-context", context), data, offs, codes)
+    n = len(h)
+    if n == 0:
+        return np.zeros(0, dtype=DIGEST)
+    k = key.subkey(HASH_VERSION, "memo-value", column, b"memo-context", context)
+    uniq, which = np.unique(np.asarray(codes, dtype=np.int64), return_inverse=True)
+    blocks = np.zeros((len(uniq), 2), dtype=">i8")
+    blocks[:, 1] = uniq
+    first = _ecb(k, blocks.view(np.uint8).reshape(-1, 16))  # once per distinct code
+    state = first[which.reshape(-1)]
+    state ^= np.ascontiguousarray(h).view(np.uint8).reshape(n, 16)
+    return _ecb(k, state).view(DIGEST).reshape(-1)
+
+
+def prefix64(h: np.ndarray) -> np.ndarray:
+    """The first 8 bytes of each digest as a big-endian u64: sorts like the digests' leading bytes."""
+    return np.ascontiguousarray(np.ascontiguousarray(h).view(np.uint8).reshape(-1, DIGEST_BYTES)[:, :8]).view(
+        ">u8").reshape(-1)
+
+
+def distinct(h: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(the distinct digests in byte order, the place of each given digest among them), as
+    ``np.unique(h, return_inverse=True)`` but sorting the 64-bit prefixes (numpy sorts S16
+    strings several times slower); digests that share a prefix without being equal (about
+    n^2 / 2^65) fall back to sorting whole digests."""
+    h = as_digests(h)
+    n = len(h)
+    if n == 0:
+        return h, np.zeros(0, dtype=np.int64)
+    keys = prefix64(h)
+    if n > 1 and np.all(keys[1:] > keys[:-1]):  # already sorted and distinct (a release's charged subjects)
+        return h, np.arange(n, dtype=np.int64)
+    order = np.argsort(keys, kind="stable")
+    ks = keys[order]
+    hs = h[order]
+    tie = ks[1:] == ks[:-1]
+    words = np.ascontiguousarray(hs).view("<u8").reshape(n, 2)
+    same = tie & (words[1:, 1] == words[:-1, 1])
+    if (tie & ~same).any():  # two different digests with one prefix: sort whole digests
+        uniq, inv = np.unique(h, return_inverse=True)
+        return uniq, inv.reshape(-1).astype(np.int64)
+    start = np.concatenate([[True], ~same])
+    group = np.cumsum(start) - 1
+    inv = np.empty(n, dtype=np.int64)
+    inv[order] = group
+    return hs[start], inv
 
 
 def as_digests(h: Any, what: str = "subject hashes") -> np.ndarray:
-    """Accept S32 / V32 arrays, (n, 32) uint8 arrays or a list of 32-byte strings; return contiguous S32."""
+    """Accept S16 / V16 arrays, (n, 16) uint8 arrays or a list of 16-byte strings; return contiguous S16."""
     if isinstance(h, (list, tuple)):
-        if any(not isinstance(x, (bytes, bytearray)) or len(x) != 32 for x in h):
-            raise LedgerError(f"{what} must be 32-byte digests from ledger.subject_hashes.")
+        if any(not isinstance(x, (bytes, bytearray)) or len(x) != DIGEST_BYTES for x in h):
+            raise LedgerError(f"{what} must be {DIGEST_BYTES}-byte digests from ledger.subject_hashes.")
         return np.frombuffer(b"".join(h), dtype=DIGEST) if h else np.zeros(0, dtype=DIGEST)
     a = np.asarray(h)
-    if a.dtype.kind in "SV" and a.dtype.itemsize == 32 and a.ndim == 1:
+    if a.dtype.kind in "SV" and a.dtype.itemsize == DIGEST_BYTES and a.ndim == 1:
         return np.ascontiguousarray(a).view(DIGEST)
-    if a.dtype == np.uint8 and a.ndim == 2 and a.shape[1] == 32:
+    if a.dtype == np.uint8 and a.ndim == 2 and a.shape[1] == DIGEST_BYTES:
         return np.ascontiguousarray(a).view(DIGEST).reshape(-1)
-    raise LedgerError(f"{what} must be 32-byte digests from ledger.subject_hashes (got an array of dtype "
-                      f"{a.dtype} and shape {a.shape}).")
+    raise LedgerError(f"{what} must be {DIGEST_BYTES}-byte digests from ledger.subject_hashes (got an array of "
+                      f"dtype {a.dtype} and shape {a.shape}).")

@@ -4,8 +4,10 @@ A file is used as a ledger only if (each check O(1): the file's first 100 bytes,
 tables' declarations and the header table's few rows, never a scan of releases or state):
 
 - it is not empty and starts as a SQLite database does, with ldptransform's application id and
-  a schema version this version reads.  These are read from the file's first bytes before
-  SQLite opens it, so that a file of any other kind is never opened by SQLite, let alone changed;
+  a schema version this version reads, and it is a whole number of pages, no shorter than its
+  header says (unless the journal of a stopped write lies beside it, which SQLite then undoes).
+  These are read from the file's first bytes and its size before SQLite opens it, so that a
+  file of any other kind is never opened by SQLite, let alone changed;
 - its four tables exist with the columns, types, not-null flags and keys this version creates;
 - its header table (``meta``) holds the schema version, the creation time, the head hash and the
   release count, each well-formed, and a key fingerprint (if any) of the form a key gives.
@@ -24,7 +26,7 @@ from pathlib import Path
 
 from .errors import LedgerDamagedError, LedgerError
 
-SCHEMA_VERSION = 2  # 2: subjects and values hashed with the AES-based keyed PRF (1: HMAC-SHA256)
+SCHEMA_VERSION = 3  # 3: 16-byte AES-based digests; 2: 32-byte AES-based digests; 1: HMAC-SHA256
 APPLICATION_ID = 0x4C445450  # "LDTP": marks a SQLite file as an ldptransform ledger
 
 SCHEMA = [
@@ -139,12 +141,16 @@ def check_header(path: Path) -> None:
         raise LedgerError(f"ledger {path} was switched to SQLite's write-ahead log (journal mode WAL), which ldpt does "
                           "not use: in that mode even reading it writes files beside it. Switch it back, as the "
                           f"steward, with `sqlite3 {path} 'PRAGMA journal_mode=DELETE'` while no job uses it.")
+    cut = None if Path(f"{path}-journal").exists() else _truncation(path)  # a stopped write: SQLite undoes it
+    if cut is not None:  # a last page cut short would read as zeros
+        raise damaged(path, cut)
     if version != SCHEMA_VERSION:
         raise LedgerError(f"ledger {path} has schema version {version}; this ldptransform reads version "
                           f"{SCHEMA_VERSION}. Use the ldptransform version that wrote it"
-                          + (" (version 1 ledgers hash subjects differently, so this version cannot match "
+                          + (f" (version {version} ledgers hash subjects differently, and a keyed digest cannot "
+                             "be turned into another without the identifiers, so this version cannot match "
                              "them; start a new ledger only after your privacy officer has decided how to "
-                             "account for the eps already spent)." if version == 1 else "."))
+                             "account for the eps already spent)." if version in (1, 2) else "."))
 
 
 @functools.cache

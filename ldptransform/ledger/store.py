@@ -12,15 +12,16 @@ large writes, not a million SQL rows: the registry, totals and memo state are ar
 as blobs (split into parts of at most 32 MiB), aligned by registry index; a release's spend
 is its subjects' registry indices (sorted, delta-coded) and their eps, both zlib-compressed.
 The registry only grows (a release appends its new subjects); totals and the memo state of
-the columns a release updates are rewritten.
+the columns a release updates are rewritten in place of the old ones, whose pages SQLite
+reuses, so the file grows per release by its spend and its new subjects only: in proportion to
+the people it charges, not to everyone registered.  A new ledger has 64 KiB pages (SQLite's
+largest), for these few large blobs.
 
-Nothing raw goes in: a subject is stored only as a 32-byte keyed digest (the AES-based PRF
-of ``random.bits.SubjectPRF``, evaluated for a whole batch at once) under keys derived from the
-release key with labels of their own ("ledger", "subject-hash/v2"), and a last value only as
-a keyed digest of (subject digest, value code) under per-column keys ("ledger",
-"value-hash/v2", column, ...).  Without the
-key the hashes cannot be linked to identifiers; with it, anyone can test a guess, so the
-ledger is as sensitive as the key.  Per-subject spend depends on the data (who appears in
+Nothing raw goes in: a subject is stored only as a 16-byte keyed digest and a last value only
+as a 16-byte keyed digest of (subject digest, value code), under keys derived from the release
+key with labels of their own (``hashes.py``: AES-based PRFs evaluated for a whole batch at
+once; schema 3).  Without the key the digests cannot be linked to identifiers; with it, anyone
+can test a guess, so the ledger is as sensitive as the key.  Per-subject spend depends on the data (who appears in
 which release), so the summaries ``show`` gives are for the steward only.
 
 Integrity: releases form a hash chain.  ``row_hash`` = SHA-256 of a label, the canonical
@@ -34,12 +35,18 @@ checked against the last release's ``state_sha256`` and the totals against the s
 spend.  Every read of the current state (the release's pre-pass, its record, ``show``) checks
 it against the last release's ``state_sha256`` (one digest of the arrays it reads anyway), so a
 state deleted, shortened or edited after the last release is refused as damage rather than
-starting people from the wrong spend.  Someone who can write the file can rebuild the whole chain, so keep a copy of the
-head hash (``show`` prints it) somewhere else to anchor it.
+starting people from the wrong spend.  A release's record uses the state its pre-pass read and
+checked (on a read-only connection kept open for it) when nothing has been committed to the
+file since: SQLite's data version of that connection, read under the write lock, tells, as
+does the head hash; otherwise it reads and checks the state again under the lock.  Someone who
+can write the file can rebuild the whole chain, so keep a copy of the head hash (``show``
+prints it) somewhere else to anchor it.
 
 Concurrency and crashes: ``record_release`` runs in one ``BEGIN IMMEDIATE`` transaction
-(busy timeout 30 s) and re-checks the lifetime cap inside it, so two jobs cannot both pass
-a check and overspend, and a failure mid-record leaves nothing (rollback).
+(busy timeout 30 s) and re-checks the lifetime cap inside it (against the state as of the
+lock), so two jobs cannot both pass a check and overspend, and a failure mid-record leaves
+nothing (rollback).  The journal mode stays SQLite's rollback journal (write-ahead logging is
+refused: ``schema.py``).
 
 Damage: every file is checked before use (``schema.py``); one that is empty, not a ledger or
 damaged is a ``LedgerDamagedError`` and is never re-created or changed.  A new ledger is built in
@@ -71,7 +78,7 @@ from ..io import private_dir
 from ..keys import check_nonce, shared_access
 from .charges import CAP_TOLERANCE, ChargePlan, aggregate, cap_plan, check_cap
 from .errors import BudgetExhaustedError, LedgerError
-from .hashes import DIGEST, as_digests
+from .hashes import DIGEST, DIGEST_BYTES, as_digests, prefix64
 from .schema import (APPLICATION_ID, NOT_UTF8, READONLY_ROLLBACK, SCHEMA, SCHEMA_VERSION, check_header, check_schema,
                      damaged, sqlite_failure)
 
@@ -79,23 +86,24 @@ DEFAULT_NAME = "ledger.sqlite3"
 BUSY_TIMEOUT_S = 30.0
 GENESIS = "0" * 64
 _ROW_LABEL = b"ldptransform/ledger/release-row/v2\n"
-_SPEND_LABEL = b"ldptransform/ledger/subject-spend/v2\n"
+_SPEND_LABEL = b"ldptransform/ledger/subject-spend/v3\n"
 SPEND_NOTE = ("data-dependent (who appears in which release): steward-only, never publish or send to "
               "partners")
 
 
 PART_BYTES = 1 << 25  # largest blob part stored (32 MiB): far below SQLite's default 1e9-byte limit
+PAGE_SIZE = 1 << 16  # a new ledger's page size (SQLite's largest): the state is a few large blobs
 _STATE_LABEL = b"ldptransform/ledger/state/v2\n"
 _REGISTRY, _TOTALS, _STATE_PREFIX = "subjects", "totals", "state:"
 
 
 def _spend_digest(ids: np.ndarray, eps: np.ndarray) -> bytes:
-    """SHA-256 of a release's spend: (registry index as big-endian u64, eps as big-endian f64)
-    pairs in index order."""
-    rec = np.empty(len(ids), dtype=[("i", ">u8"), ("e", ">f8")])
-    rec["i"] = ids
-    rec["e"] = eps
-    return hashlib.sha256(_SPEND_LABEL + rec.tobytes()).digest()
+    """SHA-256 of a release's spend: its length (big-endian u64), the registry indices in index
+    order (big-endian u64), then their eps (big-endian f64)."""
+    h = hashlib.sha256(_SPEND_LABEL + len(ids).to_bytes(8, "big"))
+    h.update(_bytes_view(np.asarray(ids).astype(">u8")))
+    h.update(_bytes_view(np.asarray(eps).astype(">f8")))
+    return h.digest()
 
 
 def _encode_spend(ids: np.ndarray, eps: np.ndarray) -> tuple[bytes, bytes]:
@@ -115,18 +123,16 @@ def _decode_spend(ids_blob: bytes, eps_blob: bytes) -> tuple[np.ndarray, np.ndar
     return ids, np.frombuffer(e, dtype="<f8").astype(np.float64)
 
 
-def _prefix64(h: np.ndarray) -> np.ndarray:
-    """The first 8 bytes of each digest as a big-endian u64: sorts like the digests' leading bytes."""
-    return np.ascontiguousarray(np.ascontiguousarray(h).view(np.uint8).reshape(-1, 32)[:, :8]).view(">u8").reshape(-1)
+_prefix64 = prefix64
 
 
 def _words(h: np.ndarray) -> np.ndarray:
-    return np.ascontiguousarray(h).view("<u8").reshape(-1, 4)
+    return np.ascontiguousarray(h).view("<u8").reshape(-1, DIGEST_BYTES // 8)
 
 
 class _Index:
     """Finds digests in an array of distinct digests (vectorized).  Sorting and binary search use
-    the 64-bit prefix (numpy compares S32 strings several times slower), then the whole digest is
+    the 64-bit prefix (numpy compares S16 strings several times slower), then the whole digest is
     compared; should two stored digests share a prefix (about n^2 / 2^65: one in 10^7 at 10^6
     subjects), the index falls back to sorting whole digests."""
 
@@ -150,9 +156,12 @@ class _Index:
         if n == 0 or len(q) == 0:
             return out
         qk = q if self.exact else _prefix64(q)
-        qo = np.argsort(qk, kind="stable")  # sorted queries: binary searches walk the table in order
-        pos = np.empty(len(q), dtype=np.int64)
-        pos[qo] = np.searchsorted(self.keys, qk[qo])
+        if self.exact or len(qk) < 2 or np.all(qk[1:] >= qk[:-1]):  # already in order (a release's subjects)
+            pos = np.searchsorted(self.keys, qk)
+        else:
+            qo = np.argsort(qk, kind="stable")  # sorted queries: binary searches walk the table in order
+            pos = np.empty(len(q), dtype=np.int64)
+            pos[qo] = np.searchsorted(self.keys, qk[qo])
         pos = np.minimum(pos, n - 1)
         cand = self.order[pos]
         hit = self.keys[pos] == qk
@@ -170,10 +179,19 @@ class _Snapshot:
     totals: np.ndarray
     states: dict[str, np.ndarray]
     index: _Index = field(init=False, repr=False)
+    found: tuple[np.ndarray, np.ndarray] | None = field(init=False, repr=False, default=None)
     _padded: dict[str, np.ndarray] = field(init=False, repr=False, default_factory=dict)
 
     def __post_init__(self) -> None:
         self.index = _Index(self.digests)
+
+    def find(self, q: np.ndarray) -> np.ndarray:
+        """``index.find``, or the answer already found for the very same array of digests."""
+        if self.found is not None:
+            h, pos = self.found
+            if h is q or (len(h) == len(q) and h.dtype == q.dtype and q.ctypes.data == h.ctypes.data):
+                return pos
+        return self.index.find(q)
 
     def state(self, column: str) -> np.ndarray:
         """A column's last-value digests padded with zero digests to the registry's length
@@ -186,13 +204,18 @@ class _Snapshot:
             self._padded[column] = st
         return st
 
-    def arrays(self) -> dict[str, bytes]:
-        out = {_REGISTRY: self.digests.tobytes(), _TOTALS: np.asarray(self.totals, dtype="<f8").tobytes()}
-        out.update({_STATE_PREFIX + c: v.tobytes() for c, v in self.states.items()})
+    def arrays(self) -> dict[str, memoryview]:
+        """The stored form of each array, as views of the arrays' memory (no copies)."""
+        out = {_REGISTRY: _bytes_view(self.digests), _TOTALS: _bytes_view(np.asarray(self.totals, dtype="<f8"))}
+        out.update({_STATE_PREFIX + c: _bytes_view(v) for c, v in self.states.items()})
         return out
 
 
-def _state_digest(arrays: Mapping[str, bytes]) -> str:
+def _bytes_view(a: np.ndarray) -> memoryview:
+    return np.ascontiguousarray(a).view(np.uint8).reshape(-1).data
+
+
+def _state_digest(arrays: Mapping[str, bytes | memoryview]) -> str:
     """SHA-256 over the stored arrays (name, length, bytes), names in sorted order."""
     h = hashlib.sha256(_STATE_LABEL)
     for name in sorted(arrays):
@@ -202,7 +225,7 @@ def _state_digest(arrays: Mapping[str, bytes]) -> str:
     return h.hexdigest()
 
 
-def _state_fits(stored: Mapping[str, bytes], expected: str) -> bool:
+def _state_fits(stored: Mapping[str, bytes | memoryview], expected: str) -> bool:
     """The stored arrays are the state of digest ``expected`` (a release that charged nobody
     stores its empty registry and totals as no parts at all: either form fits)."""
     return expected in (_state_digest(stored), _state_digest({_REGISTRY: b"", _TOTALS: b"", **stored}))
@@ -324,18 +347,32 @@ def _memo_positions(cols: dict[str, dict[str, Any]], memo_updates: Mapping[str, 
             raise LedgerError(f"memo update for column {col!r}: {len(sh)} subject hashes but {len(vh)} value "
                               "hashes; give one value hash per subject.")
         memo.append((col, sh, vh))
-    uniq_index = _Index(uniq)
+    uniq_index: _Index | None = None
     out = []
     for col, sh, vh in memo:
+        if _same_digests(sh, uniq):  # one value per charged subject, in order
+            out.append((col, np.arange(len(uniq), dtype=np.int64), vh))
+            continue
+        uniq_index = uniq_index or _Index(uniq)
         pos = uniq_index.find(sh)
         if (pos < 0).any():
             raise LedgerError(f"memo update for column {col!r}: {int((pos < 0).sum())} subject(s) are not among "
                               "the release's charged subjects; a memoized value is only recorded for a subject "
                               "this release charges.")
+        if len(pos) and np.bincount(pos, minlength=len(uniq)).max() <= 1:  # no subject given twice
+            out.append((col, pos, vh))
+            continue
         rev = np.unique(pos[::-1], return_index=True)[1]  # a repeated subject: its last value wins
         keep = len(pos) - 1 - rev
         out.append((col, pos[keep], vh[keep]))
     return out
+
+
+def _same_digests(a: np.ndarray, b: np.ndarray) -> bool:
+    """Two S16 arrays hold the same digests in the same order (no copies)."""
+    if len(a) != len(b):
+        return False
+    return a.ctypes.data == b.ctypes.data or bool((_words(a) == _words(b)).all())
 
 
 def _next_state(snap: _Snapshot, idx: np.ndarray, uniq: np.ndarray, eps: np.ndarray,
@@ -362,6 +399,7 @@ def _init_file(path: Path) -> None:
     """Write a new, empty ledger into the empty file ``path`` (one transaction)."""
     conn = sqlite3.connect(str(path), timeout=BUSY_TIMEOUT_S, isolation_level=None)
     try:
+        conn.execute(f"PRAGMA page_size = {PAGE_SIZE}")  # before the first table: large pages for large blobs
         conn.execute("BEGIN IMMEDIATE")
         for stmt in SCHEMA:
             conn.execute(stmt)
@@ -460,6 +498,12 @@ class Ledger:
         self.readonly = readonly
         self._conn = conn
         self._snap: _Snapshot | None = None  # cached state, valid while the head is unchanged
+        self._version: int | None = None  # SQLite's data version when the cached state was read
+        try:
+            st = os.stat(path)
+            self._ident: tuple[int, int] | None = (st.st_dev, st.st_ino)
+        except OSError:
+            self._ident = None
 
     # opening ---------------------------------------------------------------------------
 
@@ -592,7 +636,7 @@ class Ledger:
         if not all(isinstance(n, str) for n in names):
             raise damaged(self.path, "its current state (arrays) holds an array whose name is not a text")
         reg, tot = self._get(_REGISTRY), self._get(_TOTALS)
-        if len(reg) % 32 or len(tot) != len(reg) // 32 * 8:
+        if len(reg) % DIGEST_BYTES or len(tot) != len(reg) // DIGEST_BYTES * 8:
             raise damaged(self.path, "its subject registry and running totals do not fit together (`ldpt ledger "
                           "verify` says more)")
         states = {}
@@ -600,7 +644,7 @@ class Ledger:
         for name in names:
             if name.startswith(_STATE_PREFIX):
                 data = self._get(name)
-                if len(data) % 32 or len(data) > len(reg):
+                if len(data) % DIGEST_BYTES or len(data) > len(reg):
                     raise damaged(self.path, f"the memo state of column {name[len(_STATE_PREFIX):]!r} does not fit "
                                   "the registry (`ldpt ledger verify` says more)")
                 states[name[len(_STATE_PREFIX):]] = np.frombuffer(data, dtype=DIGEST)
@@ -608,6 +652,7 @@ class Ledger:
             if name not in stored:
                 stored[name] = self._get(name)
         self._check_state_fits(stored)
+        self._version = int(c.execute("PRAGMA data_version").fetchone()[0])
         self._snap = _Snapshot(head, np.frombuffer(reg, dtype=DIGEST), np.frombuffer(tot, dtype="<f8").astype(
             np.float64), states)
         return self._snap
@@ -649,7 +694,11 @@ class Ledger:
     def positions(self, subject_hashes: Any) -> np.ndarray:
         """Each subject's place in the registry (-1 for subjects never charged), to look up
         several memoized columns of the same subjects with one search (``last_values``)."""
-        return self._read().index.find(as_digests(subject_hashes))
+        h = as_digests(subject_hashes)
+        snap = self._read()
+        pos = snap.index.find(h)
+        snap.found = (h, pos)  # a record that reuses this state finds the same subjects without a search
+        return pos
 
     def last_values(self, column: str, subject_hashes: Any, positions: np.ndarray | None = None) -> np.ndarray:
         """Keyed hash of each subject's last value of a memoized column (all-zero digest if none).
@@ -712,13 +761,17 @@ class Ledger:
 
     def record_release(self, meta: ReleaseMeta | Mapping[str, Any], subject_hashes: Any, per_subject_eps: Any,
                        memo_updates: Mapping[str, tuple[Any, Any]] | None = None, *,
-                       lifetime_epsilon: float | None = None, key_fingerprint: str | None = None) -> int:
+                       lifetime_epsilon: float | None = None, key_fingerprint: str | None = None,
+                       checked: Ledger | None = None) -> int:
         """Record one release in one transaction; returns its id.
 
         ``memo_updates``: memoized column -> (subject hashes, value hashes from ``value_hashes``).
         With ``lifetime_epsilon`` the cap is checked under the write lock, and the whole
         release is refused (``BudgetExhaustedError``, nothing written) if any subject would
-        go over it."""
+        go over it.  ``checked``: a ledger opened (read-only) on the same file whose current
+        state was read and checked before (the release's pre-pass); if no job has written the
+        file since (SQLite's data version of that connection, checked under the write lock) and
+        the head is the same, that state is used rather than read and checked again."""
         row, cols = _release_row(meta, lifetime_epsilon)
         check_cap(lifetime_epsilon)
         uniq, eps = aggregate(as_digests(subject_hashes), per_subject_eps)
@@ -730,8 +783,9 @@ class Ledger:
         try:
             self._begin_write()
             try:
-                snap = self._load()  # under the lock: nobody can record between this read and the commit
-                idx = snap.index.find(uniq)
+                # under the lock: nobody can record between this read and the commit
+                snap = self._unchanged(checked) or self._load()
+                idx = snap.find(uniq)
                 self._check_cap_locked(snap, idx, eps, lifetime_epsilon)
                 head, rid = self._head_for(key_fingerprint)
                 new, ids, added = _next_state(snap, idx, uniq, eps, memo_pos)
@@ -753,6 +807,21 @@ class Ledger:
         new.head = row_hash
         self._snap = new
         return rid
+
+    def _unchanged(self, checked: Ledger | None) -> _Snapshot | None:
+        """The state ``checked`` read, if the file is still the one it read (same file, no commit
+        by any connection since, same head); else None.  Call under the write lock."""
+        if checked is None or checked is self or checked._snap is None or checked._version is None:
+            return None
+        if self._ident is None or checked._ident != self._ident:
+            return None
+        try:
+            version = int(checked._conn.execute("PRAGMA data_version").fetchone()[0])
+        except sqlite3.Error:
+            return None
+        if version != checked._version or checked._snap.head != self._head():
+            return None
+        return checked._snap
 
     def _begin_write(self) -> None:
         try:
@@ -795,7 +864,7 @@ class Ledger:
                 c.execute("INSERT INTO meta VALUES ('key_fingerprint', ?)", (key_fingerprint,))
         return str(head), int(str(count)) + 1
 
-    def _write_release(self, row: dict[str, Any], head: str, arrays: dict[str, bytes], ids: np.ndarray,
+    def _write_release(self, row: dict[str, Any], head: str, arrays: Mapping[str, bytes | memoryview], ids: np.ndarray,
                        eps: np.ndarray,
                        added: np.ndarray, memo_cols: list[str]) -> str:
         """Insert the release row and its spend, store the new state, move the head; returns the row hash."""
@@ -808,7 +877,7 @@ class Ledger:
                   {**row, "prev_hash": head, "row_hash": row_hash})
         c.execute("INSERT INTO release_spend VALUES (?, ?, ?)", (row["id"], *_encode_spend(ids_sorted, eps_sorted)))
         if len(added):
-            self._append(_REGISTRY, added.tobytes())
+            self._append(_REGISTRY, _bytes_view(added))
         self._put(_TOTALS, arrays[_TOTALS])
         for col in memo_cols:
             self._put(_STATE_PREFIX + col, arrays[_STATE_PREFIX + col])
@@ -816,14 +885,14 @@ class Ledger:
                       [(row_hash, "head"), (str(row["id"]), "release_count")])
         return row_hash
 
-    def _put(self, name: str, data: bytes) -> None:
+    def _put(self, name: str, data: bytes | memoryview) -> None:
         """Replace a stored array (in parts of at most PART_BYTES)."""
         c = self._conn
         c.execute("DELETE FROM arrays WHERE name = ?", (name,))
         c.executemany("INSERT INTO arrays VALUES (?, ?, ?)",
                       [(name, i, data[o:o + PART_BYTES]) for i, o in enumerate(range(0, len(data), PART_BYTES))])
 
-    def _append(self, name: str, data: bytes) -> None:
+    def _append(self, name: str, data: bytes | memoryview) -> None:
         """Add parts at the end of a stored array (the registry only grows)."""
         c = self._conn
         first = c.execute("SELECT coalesce(max(part) + 1, 0) FROM arrays WHERE name = ?", (name,)).fetchone()[0]
@@ -845,7 +914,7 @@ class Ledger:
             if not all(isinstance(name, str) for name in names_stored):
                 raise damaged(self.path, "its current state (arrays) holds an array whose name is not a text")
             arrays = {name: self._get(name) for name in names_stored}
-            n_reg = len(arrays.get(_REGISTRY, b"")) // 32
+            n_reg = len(arrays.get(_REGISTRY, b"")) // DIGEST_BYTES
             acc = np.zeros(n_reg)
             prev = GENESIS
             for n, values in enumerate(rows, start=1):

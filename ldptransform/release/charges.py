@@ -14,20 +14,22 @@ import numpy as np
 from ..errors import DataError
 from ..keys import SecretKey
 from ..ledger import (
+    DIGEST,
     BudgetExhaustedError,
     Ledger,
     LedgerCharges,
+    MemoColumn,
     ReleaseMeta,
     charges_of,
     memo_value_hashes,
-    subject_hashes,
+    subject_digests,
 )
 from ..manifest import Manifest
 from ..policy import LoadedPolicy
 from .columns import ColumnDiagnostics, ColumnPlan
 from .encode import encode
 from .kernel import ColumnSampler, Held
-from .memo import memo_context, memo_round, subject_bytes, subject_text
+from .memo import memo_context, memo_round, subject_bytes
 from .options import ReleaseOptions
 
 
@@ -39,43 +41,26 @@ class _PrePass:
     memo_plans: list[ColumnPlan]
     contexts: dict[str, bytes]
     key: SecretKey
-    base: float
     sampler: ColumnSampler | None
-    ledger: Any | None
 
-    def batch(self, batch: Any, row0: int) -> tuple[np.ndarray, np.ndarray, dict[str, tuple], dict[str, np.ndarray]]:
-        """(subject hashes, eps per row, memoized column -> (rows, subject hashes, value hashes),
-        memoized column -> rows whose value is the one the ledger last recorded: their memoized
-        report is the one already released, so repeating it costs nothing)."""
+    def batch(self, batch: Any, row0: int) -> tuple[np.ndarray, dict[str, np.ndarray], dict[str, np.ndarray]]:
+        """(subject digests, memoized column -> digest of (subject, value) per row, memoized column ->
+        rows that set the subject's state (under sample: the rows that report the column))."""
         n = batch.num_rows
-        col = batch.column(self.subject)
-        sh = subject_hashes(self.key, subject_text(col, self.subject, row0))
-        eps = np.full(n, float(self.base))
-        reported = self.sampler.reported(row0, n) if self.sampler is not None else None
-        subjects = subject_bytes(col, self.subject, row0) if self.memo_plans else None
-        where = (self.ledger.positions(sh) if self.ledger is not None and self.memo_plans and reported is None
-                 else None)
-        memo, same = {}, {}
+        data, offs = subject_bytes(batch.column(self.subject), self.subject, row0)  # checked, trimmed
+        sh = subject_digests(self.key, data, offs)
+        reported = self.sampler.reported(row0, n) if self.sampler is not None and self.memo_plans else None
+        tags, sets = {}, {}
         for p in self.memo_plans:
-            vh = memo_value_hashes(self.key, p.rc.name, self.contexts[p.rc.name], sh,
-                                   self._codes(p, batch.column(p.rc.name), row0, subjects))
-            rows = np.arange(row0, row0 + n, dtype=np.int64)
-            if reported is not None:  # sample: the state is the last value a row *reported*
-                rep = reported[:, p.sample_index]
-                memo[p.rc.name] = (rows[rep], sh[rep], vh[rep])
-                same[p.rc.name] = np.zeros(n, dtype=bool)  # charged as any column: nothing is free
-                continue
-            last = (self.ledger.last_values(p.rc.name, sh, where) if self.ledger is not None
-                    else np.zeros(n, dtype=sh.dtype))
-            eps += np.where(vh != last, _eps(p), 0.0)
-            memo[p.rc.name] = (rows, sh, vh)
-            same[p.rc.name] = (vh == last) if self.ledger is not None else np.zeros(n, dtype=bool)
-        return sh, eps, memo, same
+            tags[p.rc.name] = memo_value_hashes(self.key, p.rc.name, self.contexts[p.rc.name], sh,
+                                                self._codes(p, batch.column(p.rc.name), row0, (data, offs)))
+            if reported is not None:
+                sets[p.rc.name] = reported[:, p.sample_index]
+        return sh, tags, sets
 
     @staticmethod
     def _codes(p: ColumnPlan, values: Any, row0: int, subjects: Any) -> np.ndarray:
         if p.rc.type == "numeric":
-            assert subjects is not None
             return memo_round(p, encode(values, p, row0), subjects)[1]
         return encode(values, p, row0)
 
@@ -91,33 +76,41 @@ def ledger_prepass(src: Any, plans: list[ColumnPlan], policy: LoadedPolicy, key:
                    cap: float | None, *, check: Callable[[], None] | None = None) -> LedgerCharges:
     """Read only the subject column and the memoized columns, in batches, and work out each
     subject's charge for this release.  Under split a row costs the eps of its non-memoized
-    privatized columns, plus each memoized column's eps when the (subject, value) hash differs from
-    the ledger's last recorded one for that column (first release: charged).  Under sample a row
-    costs epsilon_per_row_used, memoized or not (simple and conservative).  Rows of one subject add
-    up.  ``ledger`` None: no ledger yet (nothing spent, no last values).  Nothing is written.
-    ``check`` is called after every batch (a stop signal ends the pass there)."""
+    privatized columns, plus each memoized column's eps when the (subject, value) digest differs
+    from the ledger's last recorded one for that column (first release: charged).  Under sample a
+    row costs epsilon_per_row_used, memoized or not (simple and conservative).  Rows of one subject
+    add up.  ``ledger`` None: no ledger yet (nothing spent, no last values).  Nothing is written.
+    The batches give digests only; the ledger is searched once, after the last batch, for the
+    distinct subjects.  ``check`` is called after every batch (a stop signal ends the pass there)."""
     subject = policy.policy.subject_key
     assert subject is not None
     memo_plans = [replace(p, diag=ColumnDiagnostics()) for p in plans if p.memo is not None]  # no double counts
     priv = [p for p in plans if p.rc.mechanism is not None]
     base = policy.epsilon_total if sampler is not None else sum(_eps(p) for p in priv if p.memo is None)
-    pre = _PrePass(subject, memo_plans, {p.rc.name: memo_context(p.rc) for p in memo_plans}, key, base, sampler,
-                   ledger)
-    hashes, charges, memo, same = [], [], [], []
+    pre = _PrePass(subject, memo_plans, {p.rc.name: memo_context(p.rc) for p in memo_plans}, key, sampler)
+    hashes: list[np.ndarray] = []
+    tags: dict[str, list[np.ndarray]] = {p.rc.name: [] for p in memo_plans}
+    sets: dict[str, list[np.ndarray]] = {p.rc.name: [] for p in memo_plans}
     row0 = 0
     for batch in src.batches([subject] + [p.rc.name for p in memo_plans], batch_rows):
-        sh, eps, m, s = pre.batch(batch, row0)
+        sh, t, st = pre.batch(batch, row0)
         hashes.append(sh)
-        charges.append(eps)
-        memo.append(m)
-        same.append(s)
+        for name, v in t.items():
+            tags[name].append(v)
+        for name, v in st.items():
+            sets[name].append(v)
         row0 += batch.num_rows
         if check is not None:
             check()
-    out = charges_of(hashes, charges, {p.rc.name: [m[p.rc.name] for m in memo] for p in memo_plans}, ledger, cap)
-    out.memo_same = {p.rc.name: np.concatenate([s[p.rc.name] for s in same]) if same else np.zeros(0, dtype=bool)
-                     for p in memo_plans}
-    return out
+    memo = {p.rc.name: MemoColumn(_concat(tags[p.rc.name], DIGEST), 0.0 if sampler is not None else _eps(p),
+                                  _concat(sets[p.rc.name], bool) if sampler is not None else None,
+                                  free_if_same=sampler is None)
+            for p in memo_plans}
+    return charges_of(_concat(hashes, DIGEST), base, memo, ledger, cap)
+
+
+def _concat(parts: list[np.ndarray], dtype: Any) -> np.ndarray:
+    return np.concatenate(parts) if parts else np.zeros(0, dtype=dtype)
 
 
 def precharge(src: Any, plans: list[ColumnPlan], policy: LoadedPolicy, key: SecretKey, sampler: ColumnSampler | None,
@@ -134,10 +127,14 @@ def precharge(src: Any, plans: list[ColumnPlan], policy: LoadedPolicy, key: Secr
             led.check_state()  # a state deleted or edited after the last release: refused before anything is written
         charges = ledger_prepass(src, plans, policy, key, opts.batch_rows, sampler, led, opts.lifetime_epsilon,
                                  check=check)
-    finally:
+        _refuse_over_budget(charges, opts)
+    except BaseException:
         if led is not None:
             led.close()
-    _refuse_over_budget(charges, opts)
+        raise
+    # kept open (it holds no lock between reads): the record uses the state it read if nobody
+    # has written the ledger since (closed by record_release, or with the charges)
+    charges.checked = led
     return charges
 
 
@@ -188,7 +185,14 @@ def record_release(ledger_path: Path, charges: LedgerCharges, plans: list[Column
                        nonce=manifest.nonce,
                        columns={p.rc.name: {"eps": float(p.rc.mechanism.epsilon), "memoized": bool(p.rc.memoize)}
                                 for p in plans if p.rc.mechanism is not None})
-    with Ledger.open(ledger_path, create=True) as led:
-        return led.record_release(meta, charges.subjects[charges.within], charges.eps[charges.within],
-                                  charges.memo_updates(), lifetime_epsilon=cap,
-                                  key_fingerprint=manifest.key_fingerprint)
+    within = charges.within.all()
+    try:
+        with Ledger.open(ledger_path, create=True) as led:
+            return led.record_release(meta, charges.subjects if within else charges.subjects[charges.within],
+                                      charges.eps if within else charges.eps[charges.within],
+                                      charges.memo_updates(), lifetime_epsilon=cap,
+                                      key_fingerprint=manifest.key_fingerprint, checked=charges.checked)
+    finally:
+        if charges.checked is not None:
+            charges.checked.close()
+            charges.checked = None
