@@ -230,20 +230,41 @@ def _frame_from_csv(text: str) -> pd.DataFrame:
     return frame
 
 
-def test_the_csv_is_the_frame_written_out(releases: dict[str, Any]) -> None:
+FULL_ARGS = ["--quantiles", "0.1,0.5,0.9", "--crosstab", "site:grade", "--crosstab", "tenure:grade",
+             "--mean-by", "level:site", "--mean-by", "level:grade", "--range", "hours:10..20", "--range",
+             "score:20..40", "--range", "age:30..45"]
+
+
+@pytest.mark.parametrize("which", ["full", "sampled", "merged"])
+def test_the_csv_is_the_frame_written_out(releases: dict[str, Any], which: str) -> None:
     """``--format csv`` is ``to_frame()`` (through frame_csv), and reading it back gives the JSON:
     nothing in the JSON is left out of the CSV."""
-    res = _estimate(releases, "full")
-    args = ["estimate", str(releases["full"]), "--format", "csv", "--quantiles", "0.1,0.5,0.9",
-            "--crosstab", "site:grade", "--crosstab", "tenure:grade", "--mean-by", "level:site",
-            "--mean-by", "level:grade", "--range", "hours:10..20", "--range", "score:20..40", "--range", "age:30..45"]
-    r = CliRunner().invoke(app, args)
+    res = _estimate(releases, which)
+    extracts = [str(p) for p in releases[which]] if which == "merged" else [str(releases[which])]
+    args = ["estimate", *extracts, *(FULL_ARGS if which == "full" else [])]
+    r = CliRunner().invoke(app, [*args, "--format", "csv"])
     assert r.exit_code == 0, r.output
     assert r.stdout == frame_csv(res.to_frame())
-    js = CliRunner().invoke(app, [a if a != "csv" else "json" for a in args])
+    js = CliRunner().invoke(app, [*args, "--format", "json"])
     assert js.exit_code == 0, js.output
     back = EstimateResult.from_frame(_frame_from_csv(r.stdout))
     assert back.to_dict() == json.loads(js.stdout)
+
+
+def test_analyses_without_cells_and_columns_without_figures_read_back(releases: dict[str, Any]) -> None:
+    """What too few rows give (estimate.py: fewer than two reports): a cross-tab without cells, a
+    grouped mean without groups, a distribution column without its distribution and mean."""
+    res = _estimate(releases, "full")
+    bare = dataclasses.replace(
+        res, crosstabs=(dataclasses.replace(res.crosstabs[0], rows_used=1, cells=()),),
+        grouped_means=(dataclasses.replace(res.grouped_means[0], rows_used=0, groups=()),),
+        columns={**res.columns, "score": dataclasses.replace(res.columns["score"], mean=None, distribution=None)})
+    f = bare.to_frame()
+    assert list(f.loc[f["type"] == "crosstab", "statistic"]) == ["joint share"]
+    assert f.loc[f["type"] == "grouped mean", "estimate"].isna().all() and (f["type"] == "grouped mean").sum() == 1
+    assert list(f.loc[f["column"] == "score", "statistic"]) == ["column"]
+    assert EstimateResult.from_frame(f).to_dict() == strict(bare.to_dict())
+    assert strict(bare.to_dict())["crosstabs"][0]["cells"] == []
 
 
 def test_non_finite_figures_are_nan_in_the_frame_and_null_in_the_json(releases: dict[str, Any]) -> None:
