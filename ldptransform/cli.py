@@ -562,8 +562,10 @@ def _show_table(t: Table, console: Console | None = None) -> None:
     if console.is_terminal:
         console.print(t)
         return
+    from rich.measure import Measurement
+
     saved = console.width
-    console.width = max(saved, console.measure(t).maximum)
+    console.width = max(saved, Measurement.get(console, console.options.update_width(1 << 20), t).maximum)
     try:
         console.print(t)
     finally:
@@ -654,17 +656,17 @@ def privatize(
     manifest: Path | None = typer.Option(None, "--manifest",
                                          help="Manifest path [default: OUT with .manifest.json]."),
     diagnostics: Path | None = typer.Option(
-        None, "--diagnostics", help="Steward-only diagnostics file [default: in the private folder, "
-        "$LDPT_PRIVATE_DIR or ~/.local/state/ldptransform]."),
+        None, "--diagnostics", help="Steward-only diagnostics file [default: in the steward's private folder: "
+        "$LDPT_PRIVATE_DIR, else the state folder README.md names]."),
     batch_rows: int = typer.Option(65536, "--batch-rows", min=1, help="Rows per batch (memory; never the output)."),
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing extract and manifest."),
     nonce: str | None = typer.Option(None, "--nonce", help="Reuse a release nonce (from a manifest) to "
                                      "reproduce that release bit for bit."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar on a terminal; only the summary line."),
     ledger: Path | None = typer.Option(
-        None, "--ledger", help="Privacy ledger to charge this release to (needs the policy's subject_key) "
-        "[default: none, unless the policy sets budget.lifetime_epsilon: then ledger.sqlite3 in the private "
-        "folder, $LDPT_PRIVATE_DIR]."),
+        None, "--ledger", help="Privacy ledger to charge this release to (needs the policy's subject_key); a "
+        "ledger is used automatically when the policy sets budget.lifetime_epsilon [default: none; with "
+        "budget.lifetime_epsilon: ledger.sqlite3 in the private folder, $LDPT_PRIVATE_DIR]."),
     allow_partial: bool = typer.Option(
         False, "--allow-partial", help="With budget.lifetime_epsilon: release only the subjects still within "
         "it (the others' rows are left out) instead of refusing the whole release."),
