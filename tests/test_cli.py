@@ -757,3 +757,207 @@ def test_killed_run_leaves_no_release_and_the_next_run_cleans_up(survey: dict[st
     assert out.exists() and mpath.exists()
     assert json.loads(mpath.read_text())["extract"]["sha256"] == sha256(out)
     assert "1000000 rows" in res.stderr
+
+
+# -- help, tables and logs for unattended runs ---------------------------------------------------
+
+def _command_paths() -> list[list[str]]:
+    """Every command and group of ``ldpt`` (from the command tree itself)."""
+    import typer.main
+
+    from ldptransform.cli import app
+
+    out: list[list[str]] = []
+
+    def walk(cmd: Any, path: list[str]) -> None:
+        out.append(path)
+        for name, sub in sorted(getattr(cmd, "commands", {}).items()):
+            walk(sub, [*path, name])
+
+    walk(typer.main.get_command(app), [])
+    return out
+
+
+def _help(path: list[str], columns: str | None) -> tuple[str, Any]:
+    import typer.main
+    from typer.testing import CliRunner
+
+    from ldptransform.cli import app
+
+    res = CliRunner().invoke(app, [*path, "--help"], env={"COLUMNS": columns, "NO_COLOR": "1"}, prog_name="ldpt")
+    assert res.exit_code == 0, res.output
+    cmd = typer.main.get_command(app)
+    for name in path:
+        cmd = cmd.commands[name]
+    return res.stdout, cmd
+
+
+def _flat(text: str) -> str:
+    return " ".join(text.replace("│", " ").replace("╭", " ").replace("╰", " ").replace("─", " ").split())
+
+
+def _option_rows(text: str) -> dict[str, str]:
+    """The help's option table: each option's row (its lines joined), by its long name."""
+    rows: dict[str, str] = {}
+    name = None
+    for line in text.splitlines():
+        m = re.match(r"^│\s*\*?\s*(--[\w-]+)\s", line)
+        if m:
+            name = m.group(1)
+            rows[name] = ""
+        elif not line.startswith("│"):
+            name = None
+        if name is not None:
+            rows[name] += " " + _flat(line)
+    return {k: v.strip() for k, v in rows.items()}
+
+
+@pytest.mark.parametrize("columns", [None, "80"], ids=["file", "80-columns"])
+def test_every_help_shows_its_defaults_hints_and_flags(columns: str | None) -> None:
+    paths = _command_paths()
+    assert ["privatize"] in paths and ["ledger", "verify"] in paths and len(paths) >= 15
+    flags = 0
+    for path in paths:
+        text, cmd = _help(path, columns)
+        where = " ".join(path) or "ldpt"
+        assert "…" not in text and "<bool>" not in text, f"{where}:\n{text}"
+        rows = _option_rows(text)
+        for param in cmd.params:
+            if param.param_type_name != "option" or param.hidden:
+                continue
+            long = next(o for o in param.opts if o.startswith("--"))
+            row = rows[long]
+            help_text = " ".join((param.help or "").split()).replace("\\[", "[")
+            assert help_text in row, f"{where} {long}: {help_text!r} not shown in full: {row!r}"
+            after = row[row.index(long) + len(long):].strip()
+            if getattr(param, "is_flag", False):  # a flag: no value type after its names
+                flags += 1
+                after = re.sub(r"^-\w\s+", "", after)
+                assert not after.startswith("<") and after.startswith(help_text[:20]), f"{where} {long}: {row!r}"
+            else:
+                assert after.startswith("<"), f"{where} {long}: {row!r}"
+                if param.default is not None and not param.required and not param.multiple:
+                    assert "[default: " in row, f"{where} {long}: {row!r}"
+    assert flags >= 8
+
+
+def test_help_keeps_the_bracketed_hints() -> None:
+    text = _flat(_help(["privatize"], None)[0])
+    for hint in ("pip install 'ldptransform[dask]'", "[default: OUT with .manifest.json]",
+                 "a ledger is used automatically when the policy sets budget.lifetime_epsilon",
+                 "[default: none; with budget.lifetime_epsilon: ledger.sqlite3 in the private folder",
+                 "[default: 65536]", "--idempotent", "exit 5"):
+        assert hint in text, hint
+    assert "[default: beside each extract]" in _flat(_help(["estimate"], None)[0])
+    assert "[default: ledger.sqlite3 in the private folder" in _flat(_help(["ledger", "show"], None)[0])
+
+
+def test_tables_in_a_file_are_never_cut(released: dict[str, Path], ldpt, monkeypatch: pytest.MonkeyPatch) -> None:
+    """Piped into a file with an 80-column COLUMNS: no cell cut into an ellipsis, every interval in full."""
+    monkeypatch.setenv("COLUMNS", "80")
+    args = [released["out"], "--crosstab", "site:role", "--mean-by", "pay:site"]
+    res = ok(ldpt("estimate", *args))
+    assert "…" not in res.stdout
+    result = json.loads(ok(ldpt("estimate", *args, "--format", "json")).stdout)
+    assert max(len(line) for line in res.stdout.splitlines()) > 80  # laid out wider than the terminal would be
+    cells = result["crosstabs"][0]["cells"]
+    assert len(cells) >= len(SITES) * len(ROLES)
+    for c in cells:
+        assert f"{c['ci_low']:.3f}..{c['ci_high']:.3f}" in res.stdout
+    plan_res = ok(ldpt("plan", "--policy", released["policy"], "--rows", "20000"))
+    header = next(line for line in plan_res.stdout.splitlines() if "mechanism" in line)
+    for h in ("column", "mechanism", "statistic", "best possible", "rows needed", "efficiency"):
+        assert h in header, header  # no header folded over two lines
+    assert "…" not in plan_res.stdout
+
+
+def _log(res: subprocess.CompletedProcess) -> list[dict[str, Any]]:
+    recs = [json.loads(line) for line in res.stderr.splitlines()]
+    assert recs and recs[0]["event"] == "start" and recs[-1]["event"] in ("result", "error"), res.stderr
+    return recs
+
+
+def test_json_log_of_estimate_validate_plan_and_the_ledger(released: dict[str, Path], ldpt) -> None:
+    res = ok(ldpt("estimate", released["out"], "--format", "json", "--log-format", "json"))
+    assert json.loads(res.stdout)["rows"] == 12000  # stdout as without the log
+    recs = _log(res)
+    assert recs[0]["inputs"]["extracts"] == [str(released["out"])]
+    prog = [r for r in recs if r["event"] == "progress"]
+    assert prog and prog[-1] == {**prog[-1], "stage": "decoding", "unit": "rows", "done": 12000, "total": 12000,
+                                 "eta_seconds": 0.0}
+    assert recs[-1]["exit_code"] == 0 and recs[-1]["rows"] == 12000
+
+    res = ldpt("validate", released["out"], "--log-format", "json")
+    assert res.returncode == 0, res.stderr
+    recs = _log(res)
+    assert recs[-1]["ok"] is True and recs[-1]["failed"] == [] and recs[-1]["exit_code"] == 0
+    assert [r["done"] for r in recs if r["event"] == "progress"][-1] == 12000
+    _tamper_value(released["out"], lambda old: next(r for r in ROLES if r != old))
+    res = ldpt("validate", released["out"], "--log-format", "json")
+    assert res.returncode == 1
+    assert _log(res)[-1] == {**_log(res)[-1], "event": "result", "exit_code": 1, "ok": False,
+                             "failed": ["extract hash"]}
+
+    res = ok(ldpt("plan", "--policy", released["policy"], "--rows", "50", "--log-format", "json"))
+    recs = _log(res)
+    assert recs[-1]["event"] == "result" and recs[-1]["exit_code"] == 0
+    assert all(r["event"] in ("start", "message", "result") for r in recs)  # warnings as messages
+
+    res = ldpt("ledger", "verify", "--ledger", released["dir"] / "none.sqlite3", "--log-format", "json")
+    assert res.returncode == 2 and _log(res)[-1]["kind"] == "bad_ledger"
+
+
+def test_no_progress_when_not_on_a_terminal(released: dict[str, Path], ldpt_process) -> None:
+    res = ldpt_process("estimate", released["out"], "--format", "json")
+    assert res.returncode == 0 and res.stderr == ""
+    res = ldpt_process("validate", released["out"], "--format", "json")
+    assert res.returncode == 0 and res.stderr == ""
+
+
+def test_estimate_shows_progress_on_a_terminal(released: dict[str, Path], private_dir: Path) -> None:
+    code, stdout, err = _run_with_terminal_stderr(["estimate", released["out"], "--format", "json"], private_dir)
+    assert code == 0 and json.loads(stdout)["rows"] == 12000
+    assert "decoding" in err and "12,000" not in stdout
+
+
+def test_ledger_reports_are_typed_results(tmp_path: Path, survey: dict[str, Path], ldpt) -> None:
+    from ldptransform.ledger import Ledger
+    from ldptransform.ledger.report import LedgerCheck, LedgerSummary, ledger_check, ledger_summary
+
+    pol = survey_policy()
+    pol["subject_key"] = "staff_id"
+    policy = write_policy(survey["dir"] / "ledgered.yaml", pol)
+    led = tmp_path / "ledger.sqlite3"
+    for night in (1, 2):
+        ok(ldpt("privatize", survey["csv"], "--policy", policy, "--key", survey["key"], "--out",
+                survey["dir"] / f"n{night}.parquet", "--ledger", led))
+    summary = ledger_summary(led)
+    assert isinstance(summary, LedgerSummary) and summary.releases == 2
+    with Ledger.open(led, create=False, readonly=True) as lg:
+        assert summary.to_dict() == lg.show()  # the JSON shape of `ledger show` is kept
+    frame = summary.to_frame()
+    assert list(frame.columns) == ["id", "time", "eps_per_row", "subjects_charged", "lifetime_epsilon"]
+    assert frame["id"].tolist() == [1, 2]
+    assert json.loads(ok(ldpt("ledger", "show", "--ledger", led, "--format", "json")).stdout) == summary.to_dict()
+    check = ledger_check(led)
+    assert isinstance(check, LedgerCheck) and check.ok and check.releases == 2 and not check.damaged
+    assert check.to_frame().iloc[0]["releases"] == 2
+    assert json.loads(ok(ldpt("ledger", "verify", "--ledger", led, "--format", "json")).stdout) == check.to_dict()
+    junk = tmp_path / "junk.sqlite3"
+    junk.write_bytes(b"\x00" * 4096)
+    junk.chmod(0o600)
+    bad = ldpt("ledger", "verify", "--ledger", junk, "--format", "json")
+    assert bad.returncode == 1
+    assert json.loads(bad.stdout) == {**ledger_check(junk).to_dict(), "ok": False, "damaged": True}
+
+
+def test_plan_suggest_shows_a_status_on_a_terminal_only(tmp_path: Path, private_dir: Path, ldpt_process) -> None:
+    pol = write_policy(tmp_path / "tiny.yaml", {
+        "budget": {"epsilon_per_row": 1.0}, "quality": {"max_se": 0.05},
+        "columns": {"colour": {"type": "categorical", "categories": ["red", "blue", "green"], "epsilon": 1.0}}})
+    args = ["plan", "--policy", pol, "--rows", "1000", "--suggest"]
+    code, stdout, err = _run_with_terminal_stderr(args, private_dir)
+    assert code == 0 and "Suggested eps split" in stdout
+    assert "suggesting an eps split" in err
+    res = ldpt_process(*args)
+    assert res.returncode == 0 and "suggesting" not in res.stderr
