@@ -705,16 +705,6 @@ def privatize(
         sk = None if signing_key is None else prepare_release_signing(  # before anything is written
             signing_key, out, manifest, overwrite=overwrite,
             known=[("input", source if isinstance(source, Path) else None), ("policy file", policy), ("key file", key)])
-        extra: dict[str, Any] = {}
-        if idempotent:
-            import inspect
-
-            if "idempotent" not in inspect.signature(run).parameters:
-                from .errors import UsageError
-
-                raise UsageError("--idempotent is not available in this installation of ldptransform (its release "
-                                 "has no idempotent mode). Update ldptransform, or run without --idempotent.")
-            extra["idempotent"] = True
         prog = _release_progress(log, source, lp, show=not quiet)
         from .io import csv_bytes_read
 
@@ -724,10 +714,10 @@ def privatize(
                 res = run(source, lp, k, out, manifest_path=manifest, diagnostics_path=diagnostics,
                           batch_rows=batch_rows, overwrite=overwrite, nonce=nonce, on_progress=prog.add_rows,
                           ledger_path=ledger, allow_partial=allow_partial, engine=engine.value, scheduler=scheduler,
-                          fragment_rows=part_rows, **extra)
+                          fragment_rows=part_rows, idempotent=idempotent)
         finally:
             csv_bytes_read.reset(token)
-        already = bool(getattr(res, "already_published", False))
+        already = res.already_published
         signed = "" if already else after_release(res.manifest_path, sk, overwrite=overwrite)
         _privatize_summary(log, res, already, signed)
 
@@ -1318,6 +1308,7 @@ def audit(
     confidence: float = typer.Option(0.99, "--confidence", help="Confidence of the whole audit (shared among "
                                      "its tests)."),
     format: TableJson = typer.Option(TableJson.table, "--format", help="Output format."),
+    log_format: LogFormat = typer.Option(LogFormat.text, _LOG_OPTION, help=_LOG_HELP),
 ) -> None:
     """Audit a policy's mechanisms empirically; exit 0 if no lower bound exceeds its column's eps, 1 if one does.
 
@@ -1332,32 +1323,39 @@ def audit(
     from .errors import UsageError
     from .policy import load_policy
 
-    with _user_errors():
-        if (policy is None) == (manifest is None):
-            raise UsageError("give exactly one of --policy FILE (audit a policy file) and --manifest FILE (audit the "
-                             "policy embedded in a release's manifest).")
-        if policy is not None:
-            res = run(load_policy(policy), rows=rows, confidence=confidence)
+    with _run_log("audit", log_format, {"policy": policy, "manifest": manifest, "rows": rows}) as log:
+        with _user_errors():
+            if (policy is None) == (manifest is None):
+                raise UsageError("give exactly one of --policy FILE (audit a policy file) and --manifest FILE (audit "
+                                 "the policy embedded in a release's manifest).")
+            with _status(log, "auditing (releases of generated inputs)"):
+                if policy is not None:
+                    res = run(load_policy(policy), rows=rows, confidence=confidence)
+                else:
+                    assert manifest is not None
+                    res = audit_manifest(manifest, rows=rows, confidence=confidence)
+        log.result.update(ok=res.ok, failed=[c.column for c in res.columns if not c.ok])
+        if format == TableJson.json:
+            sys.stdout.write(json_text(res.to_dict()))
         else:
-            assert manifest is not None
-            res = audit_manifest(manifest, rows=rows, confidence=confidence)
-    if format == TableJson.json:
-        sys.stdout.write(json_text(res.to_dict()))
-    else:
-        t = Table(title=escape(f"audit of {res.policy}: {res.rows} rows per side, confidence {res.confidence:g}"),
-                  title_justify="left")
-        for name in ("column", "mechanism", "eps", "eps lower bound", "status", "worst pair and event"):
-            t.add_column(name, overflow="fold")
-        for c in res.columns:
-            w = c.worst
-            where = f"{w.first} over {w.second}: {w.event}" if w is not None else ""
-            t.add_row(escape(c.column), escape(c.mechanism), f"{c.epsilon:.4g}", f"{c.epsilon_lower:.4f}",
-                      "[green]pass[/]" if c.ok else "[bold red]fail[/]", escape(where))
-        _show_table(t)
-        out_console.print(f"{res.seconds:.1f} s. A lower bound at or below eps does not prove a release private; "
-                          "one above eps shows a violation.", markup=False)
-        out_console.print("result: " + ("[green]no violation found[/]" if res.ok else "[bold red]VIOLATION[/]"))
-    raise typer.Exit(code=ExitCode.OK if res.ok else ExitCode.CHECK_FAILED)
+            _audit_table(res)
+        raise typer.Exit(code=ExitCode.OK if res.ok else ExitCode.CHECK_FAILED)
+
+
+def _audit_table(res: Any) -> None:
+    t = Table(title=escape(f"audit of {res.policy}: {res.rows} rows per side, confidence {res.confidence:g}"),
+              title_justify="left")
+    for name in ("column", "mechanism", "eps", "eps lower bound", "status", "worst pair and event"):
+        t.add_column(name, overflow="fold")
+    for c in res.columns:
+        w = c.worst
+        where = f"{w.first} over {w.second}: {w.event}" if w is not None else ""
+        t.add_row(escape(c.column), escape(c.mechanism), f"{c.epsilon:.4g}", f"{c.epsilon_lower:.4f}",
+                  "[green]pass[/]" if c.ok else "[bold red]fail[/]", escape(where))
+    _show_table(t)
+    out_console.print(f"{res.seconds:.1f} s. A lower bound at or below eps does not prove a release private; "
+                      "one above eps shows a violation.", markup=False)
+    out_console.print("result: " + ("[green]no violation found[/]" if res.ok else "[bold red]VIOLATION[/]"))
 
 
 # -- demo -----------------------------------------------------------------------------------

@@ -961,3 +961,15 @@ def test_plan_suggest_shows_a_status_on_a_terminal_only(tmp_path: Path, private_
     assert "suggesting an eps split" in err
     res = ldpt_process(*args)
     assert res.returncode == 0 and "suggesting" not in res.stderr
+
+
+def test_audit_json_log(tmp_path: Path, ldpt) -> None:
+    pol = write_policy(tmp_path / "tiny.yaml", {
+        "budget": {"epsilon_per_row": 1.0},
+        "columns": {"colour": {"type": "categorical", "categories": ["red", "blue", "green"], "epsilon": 1.0}}})
+    res = ldpt("audit", "--policy", pol, "--rows", "2000", "--format", "json", "--log-format", "json")
+    assert res.returncode == 0, res.stderr
+    recs = _log(res)
+    assert recs[0]["command"] == "audit" and recs[0]["inputs"] == {"policy": str(pol), "rows": 2000}
+    assert recs[-1] == {**recs[-1], "event": "result", "exit_code": 0, "ok": True, "failed": []}
+    assert json.loads(res.stdout)["columns"][0]["column"] == "colour"
