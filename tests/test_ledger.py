@@ -24,6 +24,7 @@ from ldptransform.errors import LdptError
 from ldptransform.keys import SecretKey
 from ldptransform.ledger import (DIGEST, BudgetExhaustedError, Ledger, LedgerError, ReleaseMeta, _decode_spend,
                                  _encode_spend, _Index, distinct, memo_value_hashes, subject_hashes, value_hashes)
+from ldptransform.ledger.hashes import radix_order
 
 KEY = SecretKey(FIXED_KEY_BYTES)
 OTHER_KEY = SecretKey(bytes(range(32)))
@@ -107,16 +108,25 @@ def test_subject_hashes_are_keyed_digests_with_their_own_label() -> None:
 
 def test_memo_value_hashes_bind_subject_code_column_and_context() -> None:
     h = subject_hashes(KEY, ids(0, 4))
-    codes = np.array([3, 3, -1, 2**40], dtype=np.int64)
-    got = memo_value_hashes(KEY, "site", b"ctx", h, codes).tobytes()
-    for i in range(4):
-        assert got[16 * i:16 * i + 16] == _one_memo_digest("site", b"ctx", h.tobytes()[16 * i:16 * i + 16],
-                                                           int(codes[i]))
+    for codes in (np.array([5, 0, 5, 2], dtype=np.int64), np.array([3, 3, -1, 2**40], dtype=np.int64)):
+        got = memo_value_hashes(KEY, "site", b"ctx", h, codes).tobytes()  # codes in a short range, or not
+        for i in range(4):
+            assert got[16 * i:16 * i + 16] == _one_memo_digest("site", b"ctx", h.tobytes()[16 * i:16 * i + 16],
+                                                               int(codes[i]))
     # two subjects with one value do not share a digest; another column or context gives others
     assert got[:16] != got[16:32]
     assert memo_value_hashes(KEY, "pay", b"ctx", h, codes).tobytes()[:16] != got[:16]
     assert memo_value_hashes(KEY, "site", b"other", h, codes).tobytes()[:16] != got[:16]
     assert memo_value_hashes(KEY, "site", b"ctx", h[:0], codes[:0]).shape == (0,)
+
+
+def test_radix_order_is_the_stable_sorting_permutation() -> None:
+    rng = np.random.default_rng(16)
+    keys = rng.integers(0, 2**64, size=70_000, dtype=np.uint64)
+    keys[::7] = keys[::7][0]  # many equal keys: their rows stay in order
+    keys[1::11] = np.uint64(2**63 + 5)
+    for k in (keys, keys[:1000], np.sort(keys), keys[::-1].copy()):
+        np.testing.assert_array_equal(radix_order(k), np.argsort(k, kind="stable"))
 
 
 def test_distinct_is_unique_with_inverse_also_for_shared_prefixes() -> None:
@@ -159,6 +169,25 @@ def test_index_finds_digests_also_when_two_share_a_64_bit_prefix() -> None:
     fake = bytearray(raw[16 * 3:16 * 3 + 16])
     fake[15] ^= 0xFF  # same prefix as both, another digest
     assert idx.find(np.frombuffer(bytes(fake), dtype=DIGEST))[0] == -1
+
+
+def test_the_registry_keeps_its_sorting_order_and_a_wrong_one_is_not_used(led: Ledger) -> None:
+    """Each release that adds subjects stores the permutation that sorts the registry (merged,
+    not sorted anew); an index given an order that does not sort the digests sorts them itself."""
+    for n, (lo, hi) in enumerate([(0, 300), (200, 700), (650, 660), (0, 100)], start=1):
+        led.record_release(meta(n), subject_hashes(KEY, ids(lo, hi)), 0.5)
+    con = led._conn
+    reg = np.frombuffer(b"".join(r[0] for r in con.execute(
+        "SELECT data FROM arrays WHERE name = 'subjects' ORDER BY part")), dtype=DIGEST)
+    order = np.frombuffer(b"".join(r[0] for r in con.execute(
+        "SELECT data FROM arrays WHERE name = 'order' ORDER BY part")), dtype="<u4")
+    assert len(reg) == 700
+    np.testing.assert_array_equal(order, np.argsort(reg))
+    wrong = order[::-1].copy()
+    idx = _Index(reg, wrong)
+    np.testing.assert_array_equal(idx.order, np.argsort(reg))
+    np.testing.assert_array_equal(idx.find(reg[::-1]), np.arange(700)[::-1])
+    assert Ledger.open(led.path, readonly=True).verify().ok
 
 
 def test_memo_updates_must_be_charged_subjects_and_the_last_repeat_wins(led: Ledger) -> None:

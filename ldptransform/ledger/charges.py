@@ -88,7 +88,11 @@ class LedgerCharges:
     def memo_updates(self) -> dict[str, tuple[np.ndarray, np.ndarray]]:
         """Memo state of the released subjects only (held-back subjects keep their old state)."""
         out = {}
+        everyone = self.within.all()
         for col, (pos, tags) in self.memo.items():
+            if everyone and len(pos) == len(self.subjects):  # pos is every subject, in order: no copy
+                out[col] = (self.subjects, tags)
+                continue
             keep = self.within[pos]
             out[col] = (self.subjects[pos], tags) if keep.all() else (self.subjects[pos[keep]], tags[keep])
         return out

@@ -53,6 +53,21 @@ def _ecb(key: bytes, blocks: np.ndarray) -> np.ndarray:
     return out[:16 * n].reshape(n, 16)
 
 
+def _few_distinct(v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``np.unique(v, return_inverse=True)`` of int64 values, by counting when they span a short
+    range (lengths, value codes: linear time, no sort)."""
+    if len(v) == 0:
+        return v[:0], np.zeros(0, dtype=np.int64)
+    lo, hi = int(v.min()), int(v.max())
+    if hi - lo >= 1 << 20:
+        uniq, inv = np.unique(v, return_inverse=True)
+        return uniq, inv.reshape(-1)
+    present = np.bincount(v - lo, minlength=hi - lo + 1) > 0
+    uniq = np.flatnonzero(present)
+    rank = np.cumsum(present) - 1
+    return uniq + lo, rank[v - lo]
+
+
 class _MessageMAC:
     """The encrypted CBC-MAC of length-prefixed byte strings under two derived keys."""
 
@@ -69,7 +84,7 @@ class _MessageMAC:
             return np.zeros(0, dtype=DIGEST)
         lens = np.diff(offs)
         # block 0 depends only on the length: encrypted once per distinct length
-        uniq_len, which = np.unique(lens, return_inverse=True)
+        uniq_len, which = _few_distinct(lens)
         head = np.zeros((len(uniq_len), 2), dtype=">u8")
         head[:, 0] = uniq_len.astype(np.uint64)
         state = _ecb(self._chain, head.view(np.uint8).reshape(-1, 16))[which.reshape(-1)]
@@ -162,7 +177,7 @@ def memo_value_hashes(key: SecretKey, column: str, context: bytes, subject_h: np
     if n == 0:
         return np.zeros(0, dtype=DIGEST)
     k = key.subkey(HASH_VERSION, "memo-value", column, b"memo-context", context)
-    uniq, which = np.unique(np.asarray(codes, dtype=np.int64), return_inverse=True)
+    uniq, which = _few_distinct(np.asarray(codes, dtype=np.int64))
     blocks = np.zeros((len(uniq), 2), dtype=">i8")
     blocks[:, 1] = uniq
     first = _ecb(k, blocks.view(np.uint8).reshape(-1, 16))  # once per distinct code
@@ -177,6 +192,21 @@ def prefix64(h: np.ndarray) -> np.ndarray:
         ">u8").reshape(-1)
 
 
+def radix_order(keys: np.ndarray) -> np.ndarray:
+    """The stable permutation that sorts u64 ``keys``: a least-significant-digit radix sort in
+    four 16-bit passes (numpy sorts 16-bit keys by counting, in linear time), faster than
+    ``np.argsort`` on a million keys."""
+    keys = np.asarray(keys, dtype=np.uint64)
+    n = len(keys)
+    if n < 1 << 16:  # small: one comparison sort is cheaper than four passes
+        return np.argsort(keys, kind="stable")
+    order = np.argsort((keys & np.uint64(0xFFFF)).astype(np.uint16), kind="stable")
+    for shift in (16, 32, 48):
+        digit = ((keys[order] >> np.uint64(shift)) & np.uint64(0xFFFF)).astype(np.uint16)
+        order = order[np.argsort(digit, kind="stable")]
+    return order
+
+
 def distinct(h: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """(the distinct digests in byte order, the place of each given digest among them), as
     ``np.unique(h, return_inverse=True)`` but sorting the 64-bit prefixes (numpy sorts S16
@@ -189,7 +219,7 @@ def distinct(h: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     keys = prefix64(h)
     if n > 1 and np.all(keys[1:] > keys[:-1]):  # already sorted and distinct (a release's charged subjects)
         return h, np.arange(n, dtype=np.int64)
-    order = np.argsort(keys, kind="stable")
+    order = radix_order(keys)
     ks = keys[order]
     hs = h[order]
     tie = ks[1:] == ks[:-1]

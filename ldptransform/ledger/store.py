@@ -78,7 +78,7 @@ from ..io import private_dir
 from ..keys import check_nonce, shared_access
 from .charges import CAP_TOLERANCE, ChargePlan, aggregate, cap_plan, check_cap
 from .errors import BudgetExhaustedError, LedgerError
-from .hashes import DIGEST, DIGEST_BYTES, as_digests, prefix64
+from .hashes import DIGEST, DIGEST_BYTES, as_digests, prefix64, radix_order
 from .schema import (APPLICATION_ID, NOT_UTF8, READONLY_ROLLBACK, SCHEMA, SCHEMA_VERSION, check_header, check_schema,
                      damaged, sqlite_failure)
 
@@ -95,6 +95,7 @@ PART_BYTES = 1 << 25  # largest blob part stored (32 MiB): far below SQLite's de
 PAGE_SIZE = 1 << 16  # a new ledger's page size (SQLite's largest): the state is a few large blobs
 _STATE_LABEL = b"ldptransform/ledger/state/v2\n"
 _REGISTRY, _TOTALS, _STATE_PREFIX = "subjects", "totals", "state:"
+_ORDER = "order"  # u32 LE: the registry's sorting permutation (saves sorting it on every read)
 
 
 def _spend_digest(ids: np.ndarray, eps: np.ndarray) -> bytes:
@@ -136,18 +137,38 @@ class _Index:
     compared; should two stored digests share a prefix (about n^2 / 2^65: one in 10^7 at 10^6
     subjects), the index falls back to sorting whole digests."""
 
-    def __init__(self, digests: np.ndarray) -> None:
+    def __init__(self, digests: np.ndarray, order: np.ndarray | None = None) -> None:
+        """``order``: the permutation that sorts the digests' prefixes, if known (the stored
+        one): used when it does sort them (checked: strictly increasing), else sorted anew."""
         self.digests = digests
         self.exact = False
+        self.order = np.zeros(0, dtype=np.int64)
         if len(digests) == 0:
             return
         keys = _prefix64(digests)
-        self.order = np.argsort(keys, kind="stable")
+        if order is not None and len(order) == len(digests) and (len(order) == 0 or int(order.max()) < len(keys)):
+            self.order = order.astype(np.int64)
+            self.keys = keys[self.order]
+            if len(self.keys) < 2 or np.all(self.keys[1:] > self.keys[:-1]):
+                return
+        self.order = radix_order(keys)
         self.keys = keys[self.order]
         if len(self.keys) > 1 and not np.all(self.keys[1:] > self.keys[:-1]):
             self.exact = True
             self.order = np.argsort(digests, kind="stable")
             self.keys = digests[self.order]
+
+    def merged(self, added: np.ndarray, first: int) -> np.ndarray | None:
+        """The sorting order of the registry after ``added`` (sorted, distinct and new: a
+        release's new subjects) is appended at index ``first``; None if unknown (exact index)."""
+        if self.exact:
+            return None
+        ak = _prefix64(added)
+        if len(ak) > 1 and not np.all(ak[1:] > ak[:-1]):
+            return None
+        base = self.order if len(self.digests) else np.zeros(0, dtype=np.int64)
+        at = np.searchsorted(self.keys, ak) if len(self.digests) else np.zeros(len(ak), dtype=np.int64)
+        return np.insert(base, at, np.arange(first, first + len(ak), dtype=np.int64))
 
     def find(self, q: np.ndarray) -> np.ndarray:
         """Position in ``digests`` of each query digest, -1 where absent."""
@@ -178,12 +199,13 @@ class _Snapshot:
     digests: np.ndarray
     totals: np.ndarray
     states: dict[str, np.ndarray]
+    order: np.ndarray | None = None  # the permutation that sorts the registry's 64-bit prefixes
     index: _Index = field(init=False, repr=False)
     found: tuple[np.ndarray, np.ndarray] | None = field(init=False, repr=False, default=None)
     _padded: dict[str, np.ndarray] = field(init=False, repr=False, default_factory=dict)
 
     def __post_init__(self) -> None:
-        self.index = _Index(self.digests)
+        self.index = _Index(self.digests, self.order)
 
     def find(self, q: np.ndarray) -> np.ndarray:
         """``index.find``, or the answer already found for the very same array of digests."""
@@ -207,6 +229,8 @@ class _Snapshot:
     def arrays(self) -> dict[str, memoryview]:
         """The stored form of each array, as views of the arrays' memory (no copies)."""
         out = {_REGISTRY: _bytes_view(self.digests), _TOTALS: _bytes_view(np.asarray(self.totals, dtype="<f8"))}
+        if self.order is not None:
+            out[_ORDER] = _bytes_view(np.asarray(self.order, dtype="<u4"))
         out.update({_STATE_PREFIX + c: _bytes_view(v) for c, v in self.states.items()})
         return out
 
@@ -368,6 +392,21 @@ def _memo_positions(cols: dict[str, dict[str, Any]], memo_updates: Mapping[str, 
     return out
 
 
+def _by_index(ids: np.ndarray, eps: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """A release's spend in registry order: its distinct registry indices sorted, with their eps
+    (by marking the indices when they are dense in the registry: no sort)."""
+    if len(ids) == 0:
+        return ids.astype(np.int64), np.asarray(eps, dtype=np.float64)
+    size = int(ids.max()) + 1
+    if size > 8 * len(ids):
+        order = np.argsort(ids, kind="stable")
+        return ids[order], eps[order]
+    at = np.full(size, -1, dtype=np.int64)
+    at[ids] = np.arange(len(ids), dtype=np.int64)
+    ids_sorted = np.flatnonzero(at >= 0)
+    return ids_sorted, np.asarray(eps, dtype=np.float64)[at[ids_sorted]]
+
+
 def _same_digests(a: np.ndarray, b: np.ndarray) -> bool:
     """Two S16 arrays hold the same digests in the same order (no copies)."""
     if len(a) != len(b):
@@ -392,7 +431,13 @@ def _next_state(snap: _Snapshot, idx: np.ndarray, uniq: np.ndarray, eps: np.ndar
         st = np.concatenate([st, np.zeros(n_new, dtype=DIGEST)]) if n_new else st.copy()
         st[ids[pos]] = vh
         states[col] = st
-    return _Snapshot("", np.concatenate([snap.digests, added]), totals, states), ids, added
+    order = snap.order  # as stored: rewritten only with the registry
+    if n_new:
+        order = snap.index.merged(added, n_old)
+        if order is not None and len(order) >= 1 << 32:
+            order = None  # not stored beyond u32 indices: sorted on every read instead
+    digests = np.concatenate([snap.digests, added]) if n_new else snap.digests
+    return _Snapshot("", digests, totals, states, order), ids, added
 
 
 def _init_file(path: Path) -> None:
@@ -651,10 +696,15 @@ class Ledger:
                 stored[name] = data
             if name not in stored:
                 stored[name] = self._get(name)
+            if name == _ORDER and len(stored[name]) != len(reg) // DIGEST_BYTES * 4:
+                raise damaged(self.path, "the sorting order of its subject registry does not fit the registry "
+                              "(`ldpt ledger verify` says more)")
         self._check_state_fits(stored)
         self._version = int(c.execute("PRAGMA data_version").fetchone()[0])
+        # as stored (part of the state digest); the index uses it only if it does sort the registry
+        order = np.frombuffer(stored[_ORDER], dtype="<u4") if _ORDER in stored else None
         self._snap = _Snapshot(head, np.frombuffer(reg, dtype=DIGEST), np.frombuffer(tot, dtype="<f8").astype(
-            np.float64), states)
+            np.float64), states, order)
         return self._snap
 
     def _check_state_fits(self, stored: Mapping[str, bytes]) -> None:
@@ -869,8 +919,7 @@ class Ledger:
                        added: np.ndarray, memo_cols: list[str]) -> str:
         """Insert the release row and its spend, store the new state, move the head; returns the row hash."""
         c = self._conn
-        order = np.argsort(ids, kind="stable")
-        ids_sorted, eps_sorted = ids[order], eps[order]
+        ids_sorted, eps_sorted = _by_index(ids, eps)
         row_hash = _row_hash(row, head, _spend_digest(ids_sorted, eps_sorted))
         c.execute("INSERT INTO releases VALUES (:id, :time, :policy_sha256, :extract_sha256, :nonce, :columns, "
                   ":subjects_charged, :lifetime_epsilon, :state_sha256, :prev_hash, :row_hash)",
@@ -878,6 +927,10 @@ class Ledger:
         c.execute("INSERT INTO release_spend VALUES (?, ?, ?)", (row["id"], *_encode_spend(ids_sorted, eps_sorted)))
         if len(added):
             self._append(_REGISTRY, _bytes_view(added))
+            if _ORDER in arrays:
+                self._put(_ORDER, arrays[_ORDER])
+            else:
+                self._conn.execute("DELETE FROM arrays WHERE name = ?", (_ORDER,))
         self._put(_TOTALS, arrays[_TOTALS])
         for col in memo_cols:
             self._put(_STATE_PREFIX + col, arrays[_STATE_PREFIX + col])
