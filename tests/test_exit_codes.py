@@ -160,3 +160,25 @@ def test_the_docs_list_exactly_these_codes(doc: str) -> None:
     section = section[:section.find("\n## ", 4)] if "\n## " in section[4:] else section
     codes = [int(m) for m in re.findall(r"^\| (\d+) \|", section, re.MULTILINE)]
     assert codes == [int(c) for c in ExitCode], codes
+
+
+def test_a_reused_nonce_is_refused_for_privacy_in_the_log(survey: dict[str, Path], ldpt) -> None:
+    import pandas as pd
+
+    from conftest import FIXED_NONCE, listing
+
+    def release(out: str) -> Any:
+        return ldpt("privatize", survey["csv"], "--policy", survey["policy"], "--key", survey["key"], "--out",
+                    survey["dir"] / out, "--nonce", FIXED_NONCE, "--log-format", "json")
+
+    assert release("night1.parquet").returncode == 0
+    df = pd.read_csv(survey["csv"], dtype=str, keep_default_na=False)
+    df.loc[7, "role"] = "Management" if df.loc[7, "role"] != "Management" else "Laboratory"
+    df.to_csv(survey["csv"], index=False)
+    before = listing(survey["dir"])
+    res = release("night2.parquet")
+    assert res.returncode == 4
+    err = _json_lines(res.stderr)[-1]
+    assert err["event"] == "error" and err["exit_code"] == 4 and err["kind"] == "nonce_refused"
+    assert f"--nonce {FIXED_NONCE} was already used" in err["message"] and "privatize(" not in err["message"]
+    assert listing(survey["dir"]) == before

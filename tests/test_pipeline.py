@@ -240,3 +240,20 @@ def test_manifest_records_auto_choice(tmp_path):
     # CSV extract decodes the same way
     est = estimate(tmp_path / "x.csv")
     assert set(est["columns"]) == {"team", "hours"}
+
+
+def test_estimate_and_validate_tell_their_progress(tmp_path):
+    """``on_progress`` of estimate and validate is told the rows of every batch decoded: the counts
+    add up to the extract's rows, batch by batch, and the results are those without it."""
+    df = _synthetic(5000)
+    raw = tmp_path / "raw.parquet"
+    df.to_parquet(raw, index=False)
+    lp = load_policy(_write_policy(tmp_path / "p.yaml", POLICY))
+    out = tmp_path / "e.parquet"
+    privatize(raw, lp, KEY, out, nonce=nonce(1))
+    seen: list[int] = []
+    res = estimate(out, batch_rows=1000, on_progress=seen.append)
+    assert seen == [1000] * 5 and res.to_dict() == estimate(out, batch_rows=1000).to_dict()
+    told: list[int] = []
+    rep = validate(out, on_progress=told.append)
+    assert rep.ok and sum(told) == 5000 and all(n > 0 for n in told)
