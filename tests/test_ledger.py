@@ -355,9 +355,10 @@ def test_memoized_state_and_no_raw_values_in_the_file(led: Ledger, key_hex: str)
     for s in ["staff-00003", "Riverside", "Head Office"]:
         assert s.encode() not in blob
     assert bytes.fromhex(key_hex) not in blob and key_hex.encode() not in blob
-    for label in (("ledger", "subject-hash/v2"), ("ledger", "value-hash/v2", "site")):
-        for part in ("chain", "final", "expand"):
-            assert KEY.subkey("memoized/v1", *label, part) not in blob
+    for label in (("subject",), ("value", "site")):  # nor the digests' keys
+        for part in ("chain", "final"):
+            k = KEY.subkey("ledger/v3", *label, part)
+            assert k not in blob and k.hex().encode() not in blob
 
 
 def test_show_summarizes_without_identifiers(led: Ledger) -> None:

@@ -115,6 +115,33 @@ def test_unchanged_memoized_values_cost_only_the_other_columns(tmp_path: Path) -
         "SELECT extract_sha256 FROM releases WHERE id = 2").fetchone()[0]
 
 
+def test_the_record_uses_the_state_the_pre_pass_checked(tmp_path: Path, monkeypatch) -> None:
+    """A release reads and checks the ledger's state once (its pre-pass); its record, with nobody
+    writing the ledger in between, uses that state instead of reading it again, and the ledger it
+    leaves is the one a record that reads again would leave (verify intact, same spend)."""
+    df = people()
+    led = tmp_path / "ledger.sqlite3"
+    run(df, policy(cap=10.0), tmp_path, NIGHT1, "night1", led)
+    reads: list[str] = []
+    real_get = Ledger._get
+
+    def counted(self: Ledger, name: str) -> bytes:
+        reads.append(name)
+        return real_get(self, name)
+
+    monkeypatch.setattr(Ledger, "_get", counted)
+    df2 = df.assign(colour=df["colour"].where(df.index % 4 != 0, "red"))
+    run(df2, policy(cap=10.0), tmp_path, NIGHT2, "night2", led)
+    assert reads.count("subjects") == 1  # the pre-pass's read only
+    monkeypatch.undo()
+    ids = list(df["person"])
+    with Ledger.open(led, readonly=True) as check:
+        assert check.verify().ok
+        two = check.spent(subject_hashes(KEY, ids))
+    changed = (df2["colour"] != df["colour"]).to_numpy()
+    np.testing.assert_allclose(two, np.where(changed, 3.0 + 2.0, 3.0 + 1.0))
+
+
 def test_changed_value_is_charged_and_rows_of_one_subject_add_up(tmp_path: Path) -> None:
     df = people()
     led = tmp_path / "ledger.sqlite3"

@@ -48,8 +48,9 @@ SCHEMA = [
         release_id INTEGER PRIMARY KEY,
         subject_ids BLOB NOT NULL,
         eps BLOB NOT NULL)""",
-    # current state as arrays aligned by registry index: "subjects" (32-byte digests, appended
-    # one part per release), "totals" (f64 LE), "state:<column>" (32-byte last-value digests)
+    # current state as arrays aligned by registry index: "subjects" (16-byte digests, appended
+    # one part per release), "totals" (f64 LE), "state:<column>" (16-byte last-value digests);
+    # and "order" (u32 LE), the permutation that sorts the registry's 64-bit prefixes
     """CREATE TABLE IF NOT EXISTS arrays (
         name TEXT NOT NULL,
         part INTEGER NOT NULL,

@@ -4,6 +4,7 @@ lifetime budget, and the record of the staged release in the ledger."""
 
 from __future__ import annotations
 
+import weakref
 from collections.abc import Callable
 from dataclasses import dataclass, replace
 from pathlib import Path
@@ -133,7 +134,9 @@ def precharge(src: Any, plans: list[ColumnPlan], policy: LoadedPolicy, key: Secr
             led.close()
         raise
     # kept open (it holds no lock between reads): the record uses the state it read if nobody
-    # has written the ledger since (closed by record_release, or with the charges)
+    # has written the ledger since (closed by record_release, or when the charges are dropped)
+    if led is not None:
+        weakref.finalize(charges, led.close)
     charges.checked = led
     return charges
 
