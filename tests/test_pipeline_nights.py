@@ -170,3 +170,48 @@ def test_the_text_log_of_a_rerun_says_already_published_in_one_line(tmp_path: Pa
     assert ldpt(*args).returncode == 5
     shown = json.loads(ldpt("ledger", "show", "--ledger", tmp_path / "ledger.sqlite3", "--format", "json").stdout)
     assert shown["releases"] == 1
+
+
+def test_a_stopped_night_ends_its_log_with_an_interrupted_record(tmp_path: Path, private_dir: Path) -> None:
+    """SIGTERM (a scheduler's timeout) in the middle of a release: exit 130, the log's last line is an
+    error record of kind interrupted, every line before it a record, and nothing at the destination."""
+    import signal
+    import subprocess
+    import sys
+
+    from conftest import cli_env, partials
+
+    key = write_fixed_key(tmp_path / "release.key")
+    pol = write_policy(tmp_path / "nightly.yaml", _policy())
+    raw = tmp_path / "big.csv"
+    one = pd.read_csv(_raw(tmp_path / "raw.csv", 5))
+    pd.DataFrame({"person": [f"p{i:06d}" for i in range(200_000)],
+                  "colour": np.resize(one["colour"].to_numpy(), 200_000),
+                  "satisfaction": np.resize(one["satisfaction"].to_numpy(), 200_000)}).to_csv(raw, index=False)
+    out = tmp_path / "night" / "extract.parquet"
+    out.parent.mkdir()
+    p = subprocess.Popen([sys.executable, "-m", "ldptransform", "privatize", str(raw), "--policy", str(pol), "--key",
+                          str(key), "--out", str(out), "--ledger", str(tmp_path / "ledger.sqlite3"), "--batch-rows",
+                          "500", "--log-format", "json"], env=cli_env(private_dir), stdout=subprocess.PIPE,
+                         stderr=subprocess.PIPE, stdin=subprocess.DEVNULL, text=True)
+    assert p.stderr is not None
+    lines = [p.stderr.readline()]
+    assert json.loads(lines[0])["event"] == "start"
+    while True:  # wait until the release is under way
+        line = p.stderr.readline()
+        assert line, "the run ended before it could be stopped: " + "".join(lines)
+        lines.append(line)
+        if json.loads(line)["event"] == "progress":
+            break
+    p.send_signal(signal.SIGTERM)
+    _, rest = p.communicate(timeout=120)
+    assert p.returncode == 130, "".join(lines) + rest
+    recs = [json.loads(x) for x in [*lines, *rest.splitlines()]]
+    assert recs[-1]["event"] == "error" and recs[-1]["exit_code"] == 130 and recs[-1]["kind"] == "interrupted"
+    assert not any(r["event"] == "result" for r in recs)
+    assert listing(out.parent) == [] and partials(out.parent) == []
+    led = tmp_path / "ledger.sqlite3"
+    if led.exists():  # a ledger made for this release holds no release
+        shown = subprocess.run([sys.executable, "-m", "ldptransform", "ledger", "show", "--ledger", str(led),
+                                "--format", "json"], env=cli_env(private_dir), capture_output=True, text=True)
+        assert json.loads(shown.stdout)["releases"] == 0
