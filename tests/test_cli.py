@@ -786,7 +786,7 @@ def _help(path: list[str], columns: str | None) -> tuple[str, Any]:
 
     res = CliRunner().invoke(app, [*path, "--help"], env={"COLUMNS": columns, "NO_COLOR": "1"}, prog_name="ldpt")
     assert res.exit_code == 0, res.output
-    cmd = typer.main.get_command(app)
+    cmd: Any = typer.main.get_command(app)
     for name in path:
         cmd = cmd.commands[name]
     return res.stdout, cmd
@@ -955,7 +955,7 @@ def test_plan_suggest_shows_a_status_on_a_terminal_only(tmp_path: Path, private_
     pol = write_policy(tmp_path / "tiny.yaml", {
         "budget": {"epsilon_per_row": 1.0}, "quality": {"max_se": 0.05},
         "columns": {"colour": {"type": "categorical", "categories": ["red", "blue", "green"], "epsilon": 1.0}}})
-    args = ["plan", "--policy", pol, "--rows", "1000", "--suggest"]
+    args: list[str | Path] = ["plan", "--policy", pol, "--rows", "1000", "--suggest"]
     code, stdout, err = _run_with_terminal_stderr(args, private_dir)
     assert code == 0 and "Suggested eps split" in stdout
     assert "suggesting an eps split" in err
