@@ -71,10 +71,15 @@ DECODE_BATCH_ROWS = 65536
 
 
 def csv_type(dtype: str) -> pa.DataType:
+    """The type a CSV extract's column is read back as: the output type its manifest records
+    (every integer width, floats and booleans; text otherwise)."""
     if dtype.startswith("dictionary") or dtype in ("string", "large_string"):
         return pa.string()
-    return {"int64": pa.int64(), "int32": pa.int32(), "double": pa.float64(), "float": pa.float32()}.get(dtype,
-                                                                                                          pa.string())
+    try:
+        t = pa.type_for_alias(dtype)
+    except ValueError:
+        return pa.string()
+    return t if pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_boolean(t) else pa.string()
 
 
 # -- per-row estimates ------------------------------------------------------------------------
