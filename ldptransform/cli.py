@@ -256,6 +256,8 @@ class _Progress:
             return
         with self._lock:
             self.rows += n
+            if self.bar is not None:
+                self._tell()
 
     def at(self, done: int) -> None:
         """The position in this pass (bytes read so far); a position not past the last one starts a new pass."""
@@ -268,8 +270,10 @@ class _Progress:
 
     def _tell(self, force: bool = False) -> None:
         if self.bar is not None:
-            self.bar.update(self._task, completed=self.done, total=self.total, description=self.stage if
-                            self.passes == 1 else f"{self.stage} (pass {self.passes})")
+            what = self.stage if self.passes == 1 else f"{self.stage} (pass {self.passes})"
+            if self.unit == "bytes" and self.rows:
+                what += f", {self.rows} rows written"
+            self.bar.update(self._task, completed=self.done, total=self.total, description=what)
             return
         if not self.log.json:
             return
