@@ -160,6 +160,9 @@ def test_index_finds_digests_also_when_two_share_a_64_bit_prefix() -> None:
     assert not idx.exact
     np.testing.assert_array_equal(idx.find(h[::-1]), np.arange(1000)[::-1])
     assert (idx.find(subject_hashes(KEY, ids(1000, 1100))) == -1).all()
+    near = bytearray(h.tobytes()[:32])
+    near[31] ^= 0xFF  # subject 1's prefix, another digest: every prefix is found, not every digest
+    np.testing.assert_array_equal(idx.find(np.frombuffer(bytes(near), dtype=DIGEST)), [0, -1])
     raw = bytearray(h.tobytes())
     raw[16 * 7:16 * 7 + 8] = raw[16 * 3:16 * 3 + 8]  # subject 7 now shares subject 3's prefix
     twins = np.frombuffer(bytes(raw), dtype=DIGEST)

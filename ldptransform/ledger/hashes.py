@@ -223,6 +223,10 @@ def distinct(h: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     ks = keys[order]
     hs = h[order]
     tie = ks[1:] == ks[:-1]
+    if not tie.any():  # every subject once (one row per person): no groups to form
+        inv = np.empty(n, dtype=np.int64)
+        inv[order] = np.arange(n, dtype=np.int64)
+        return hs, inv
     words = np.ascontiguousarray(hs).view("<u8").reshape(n, 2)
     same = tie & (words[1:, 1] == words[:-1, 1])
     if (tie & ~same).any():  # two different digests with one prefix: sort whole digests

@@ -186,6 +186,9 @@ class _Index:
         pos = np.minimum(pos, n - 1)
         cand = self.order[pos]
         hit = self.keys[pos] == qk
+        if hit.all():  # every query's prefix is stored (a night of people already registered): no masks
+            same = (_words(self.digests[cand]) == _words(q)).all(axis=1)
+            return cand if same.all() else np.where(same, cand, -1)
         hit[hit] = (_words(self.digests[cand[hit]]) == _words(q[hit])).all(axis=1)
         out[hit] = cand[hit]
         return out
@@ -760,6 +763,8 @@ class Ledger:
             return out
         idx = snap.index.find(h) if positions is None else np.asarray(positions)
         hit = idx >= 0
+        if hit.all():
+            return snap.state(column)[idx]
         out[hit] = snap.state(column)[idx[hit]]
         return out
 
