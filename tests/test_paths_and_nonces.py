@@ -5,7 +5,8 @@ is written; a true reproduction (same input and policy) is allowed; the steward'
 in validate is neither refused by nor recorded in the nonce record.  No command writes over a
 file it reads or a secret it knows, nor replaces a file without --overwrite; diagnostics never
 go where partners' files go; private folders are private; one job writes a destination at a
-time.  Every refusal: exit 2, one paragraph naming the path, nothing written.
+time.  Every refusal: one paragraph naming the path, nothing written (exit 2; a reused nonce 4;
+an existing output 5).
 """
 
 from __future__ import annotations
