@@ -438,8 +438,8 @@ def _ledger_policy(work: Work) -> None:
 
 def test_csv_changed_between_the_ledger_pre_pass_and_the_release(work: Work, ldpt,
                                                                  monkeypatch: pytest.MonkeyPatch) -> None:
-    """With a ledger the input is read twice (the pre-pass works out each subject's charge first):
-    a change between the two passes is refused, and the ledger is not created."""
+    """With a ledger and --allow-partial the input is read twice (the pre-pass works out who is held
+    back before writing): a change between the two passes is refused, and the ledger is not created."""
     import ldptransform.release.run as run
 
     _ledger_policy(work)
@@ -456,7 +456,7 @@ def test_csv_changed_between_the_ledger_pre_pass_and_the_release(work: Work, ldp
     monkeypatch.setattr(run, "precharge", then_append)
     ledger = work.dir / "ledger.sqlite3"
     before = listing(work.dir)
-    res = work.run(ldpt, raw, "--ledger", ledger)
+    res = work.run(ldpt, raw, "--ledger", ledger, "--allow-partial")
     work.refused(res, [raw.name, "changed while the release was reading it"], before)
     assert not ledger.exists()
 
@@ -479,8 +479,8 @@ def _rewrite_in_place(path: Path, keep_times: bool = True) -> None:
 @pytest.mark.parametrize("fmt", ["csv", "parquet"])
 def test_rewrite_keeping_size_and_mtime_between_passes_is_refused(fmt: str, work: Work, ldpt,
                                                                   monkeypatch: pytest.MonkeyPatch) -> None:
-    """A same-size rewrite between the ledger's pre-pass and the release's pass that puts the
-    modification time back is refused (the status-change time moved), and the ledger and the
+    """A same-size rewrite between the ledger's pre-pass (--allow-partial) and the release's pass
+    that puts the modification time back is refused (the status-change time moved), and the ledger and the
     nonce record are not created."""
     import ldptransform.release.run as run
 
@@ -500,7 +500,7 @@ def test_rewrite_keeping_size_and_mtime_between_passes_is_refused(fmt: str, work
     monkeypatch.setattr(run, "precharge", then_rewrite)
     ledger = work.dir / "ledger.sqlite3"
     before = listing(work.dir)
-    res = work.run(ldpt, raw, "--ledger", ledger)
+    res = work.run(ldpt, raw, "--ledger", ledger, "--allow-partial")
     text = work.refused(res, [raw.name, "changed while the release was reading it", "status-change time"], before,
                         inputs={})
     assert "Nothing was written" in text
@@ -511,8 +511,8 @@ def test_rewrite_keeping_size_and_mtime_between_passes_is_refused(fmt: str, work
 def test_csv_passes_that_read_different_bytes_are_refused(work: Work, ldpt, monkeypatch: pytest.MonkeyPatch) -> None:
     """Where the file's times cannot show a rewrite (a file system with coarse timestamps, made so
     here by leaving the status-change time out of the file's state), the digest of every CSV pass
-    must equal the first: a same-size rewrite between the ledger's pre-pass and the release is
-    refused all the same."""
+    must equal the first: a same-size rewrite between the ledger's pre-pass (--allow-partial) and
+    the release is refused all the same."""
     import ldptransform.io as lio
     import ldptransform.release.run as run
 
@@ -532,7 +532,7 @@ def test_csv_passes_that_read_different_bytes_are_refused(work: Work, ldpt, monk
     monkeypatch.setattr(run, "precharge", then_rewrite)
     ledger = work.dir / "ledger.sqlite3"
     before = listing(work.dir)
-    res = work.run(ldpt, raw, "--ledger", ledger)
+    res = work.run(ldpt, raw, "--ledger", ledger, "--allow-partial")
     work.refused(res, [raw.name, "two passes over it read different bytes"], before, inputs={})
     assert not ledger.exists()
 
@@ -563,9 +563,10 @@ def test_file_replaced_under_its_name_is_refused(work: Work, ldpt, monkeypatch: 
 
 
 def test_csv_release_reads_the_input_once(work: Work, ldpt, monkeypatch: pytest.MonkeyPatch) -> None:
-    """Without a ledger a CSV release opens and reads its input exactly once: the nonce record's
-    digest is that of the bytes the extract was made from (no pass of its own), and it is the
-    SHA-256 of the file; with a ledger, two passes, each of the same bytes."""
+    """A CSV release opens and reads its input exactly once, with a ledger too (its charges come
+    from the writing pass's own batches): the nonce record's digest is that of the bytes the
+    extract was made from (no pass of its own), and it is the SHA-256 of the file.  Only with
+    --allow-partial (who is held back must be known before writing) are there two passes."""
     import hashlib
 
     import ldptransform.io as lio
@@ -591,6 +592,11 @@ def test_csv_release_reads_the_input_once(work: Work, ldpt, monkeypatch: pytest.
     opened.clear()
     _ledger_policy(work)
     res = work.run(ldpt, raw, "--ledger", work.dir / "ledger.sqlite3", out=work.dir / "second.parquet")
+    assert res.returncode == 0, res.stderr
+    assert [p.name for p in opened] == [raw.name]
+    opened.clear()
+    res = work.run(ldpt, raw, "--ledger", work.dir / "ledger.sqlite3", "--allow-partial",
+                   out=work.dir / "third.parquet")
     assert res.returncode == 0, res.stderr
     assert [p.name for p in opened] == [raw.name, raw.name]  # the ledger's pre-pass, then the release
 
@@ -722,6 +728,8 @@ def test_sigterm_during_a_pass_before_writing(which: str, work: Work, ldpt, tmp_
         pq.write_table(pacsv.read_csv(DEMO_CSV), raw)
     ledger = work.dir / "ledger.sqlite3"
     with_ledger = [] if which == "one row per person" else ["--ledger", str(ledger)]
+    if which == "ledger pre-pass":  # a pre-pass of its own only where who is held back must be known first
+        with_ledger.append("--allow-partial")
     first = work.run(ldpt, raw, *with_ledger, out=work.dir / "first.parquet")
     assert first.returncode == 0, first.stderr
     ledger_hash = sha256(ledger) if with_ledger else None

@@ -173,22 +173,25 @@ def _spool_files() -> list[str]:
 
 @pytest.mark.parametrize("kind", ["pandas", "table", "reader"])
 @pytest.mark.parametrize("out", ["out.parquet", "folder"])
-def test_with_a_ledger_same_bytes_and_same_charges(tmp_path: Path, kind: str, out: str) -> None:
+@pytest.mark.parametrize("partial", [False, True], ids=["one pass", "allow-partial"])
+def test_with_a_ledger_same_bytes_and_same_charges(tmp_path: Path, kind: str, out: str, partial: bool) -> None:
+    """With a ledger the charges come from the extract's own pass (a reader is read once, never
+    spooled); with --allow-partial a pre-pass comes first, so a reader is spooled privately."""
     df = rows()
     pol = policy(order="as-input" if out == "folder" else "shuffled", cap=10.0, memoize=True)
-    ref = reference(df, pol, tmp_path, f"ref/{out}", ledger_path=tmp_path / "ref.ledger")
+    ref = reference(df, pol, tmp_path, f"ref/{out}", ledger_path=tmp_path / "ref.ledger", allow_partial=partial)
     seen: list[int] = []
 
     def look(_: int) -> None:  # during the extract's pass: a reader is read from its private spooled copy
         seen.extend(stat.S_IMODE(os.stat(nonces.state_path().parent / n).st_mode) for n in _spool_files())
 
     res = release(as_input(df, kind), pol, tmp_path, f"mem/{out}", ledger_path=tmp_path / "mem.ledger",
-                  on_progress=look)
+                  on_progress=look, allow_partial=partial)
     assert extract_bytes(res.extract_path) == extract_bytes(ref.extract_path)
     ids = list(df["person"])
     np.testing.assert_array_equal(spent(tmp_path / "mem.ledger", ids), spent(tmp_path / "ref.ledger", ids))
     assert spent(tmp_path / "mem.ledger", ids).max() > 0
-    assert set(seen) == ({0o600} if kind == "reader" else set())
+    assert set(seen) == ({0o600} if kind == "reader" and partial else set())
     assert _spool_files() == []  # removed when the release ended
 
 
@@ -402,11 +405,12 @@ def test_a_stop_removes_the_spooled_copy_and_the_in_memory_folder(tmp_path: Path
         assert _spool_files()
         raise KeyboardInterrupt
 
-    with pytest.raises(KeyboardInterrupt):
+    with pytest.raises(KeyboardInterrupt):  # --allow-partial: a pre-pass first, so the reader is spooled
         release(as_input(df, "reader"), pol, tmp_path, "mem/out.parquet", ledger_path=tmp_path / "mem.ledger",
-                on_progress=stop)
+                on_progress=stop, allow_partial=True)
     assert _spool_files() == [] and os.listdir(tmp_path / "mem") == []
     assert not (tmp_path / "mem.ledger").exists() and not nonces.state_path().exists()
     with pytest.raises(KeyboardInterrupt):
-        privatize_to_memory(as_input(df, "reader"), pol, KEY, ledger_path=tmp_path / "mem.ledger", on_progress=stop)
+        privatize_to_memory(as_input(df, "reader"), pol, KEY, ledger_path=tmp_path / "mem.ledger", on_progress=stop,
+                            allow_partial=True)
     assert os.listdir(nonces.state_path().parent) == []

@@ -72,6 +72,67 @@ def _eps(p: ColumnPlan) -> float:
     return p.rc.permanent_epsilon
 
 
+class ChargeTap:
+    """What the ledger needs of every row (subject digests, memoized (subject, value) digests),
+    gathered batch by batch: by the pre-pass (``ledger_prepass``), or from the writing pass's own
+    batches (``TappedSource``) when nothing has to be known before writing (no ``--allow-partial``),
+    so that the input is read once."""
+
+    def __init__(self, plans: list[ColumnPlan], policy: LoadedPolicy, key: SecretKey,
+                 sampler: ColumnSampler | None) -> None:
+        subject = policy.policy.subject_key
+        assert subject is not None
+        # copies of the plans: no double counts of the steward-only diagnostics
+        self.memo_plans = [replace(p, diag=ColumnDiagnostics()) for p in plans if p.memo is not None]
+        priv = [p for p in plans if p.rc.mechanism is not None]
+        self.sampler = sampler
+        self.base = policy.epsilon_total if sampler is not None else sum(_eps(p) for p in priv if p.memo is None)
+        self.pre = _PrePass(subject, self.memo_plans, {p.rc.name: memo_context(p.rc) for p in self.memo_plans}, key,
+                            sampler)
+        self.columns = [subject] + [p.rc.name for p in self.memo_plans]
+        self.rows = 0
+        self._hashes: list[np.ndarray] = []
+        self._tags: dict[str, list[np.ndarray]] = {p.rc.name: [] for p in self.memo_plans}
+        self._sets: dict[str, list[np.ndarray]] = {p.rc.name: [] for p in self.memo_plans}
+
+    def add(self, batch: Any) -> None:
+        """The next batch of input rows (it holds at least ``columns``)."""
+        sh, t, st = self.pre.batch(batch, self.rows)
+        self._hashes.append(sh)
+        for name, v in t.items():
+            self._tags[name].append(v)
+        for name, v in st.items():
+            self._sets[name].append(v)
+        self.rows += batch.num_rows
+
+    def charges(self, ledger: Any | None, cap: float | None) -> LedgerCharges:
+        """Every subject's charge for the rows added (``ledger`` None: no ledger yet)."""
+        sampled = self.sampler is not None
+        memo = {p.rc.name: MemoColumn(_concat(self._tags[p.rc.name], DIGEST), 0.0 if sampled else _eps(p),
+                                      _concat(self._sets[p.rc.name], bool) if sampled else None,
+                                      free_if_same=not sampled)
+                for p in self.memo_plans}
+        return charges_of(_concat(self._hashes, DIGEST), self.base, memo, ledger, cap)
+
+
+class TappedSource:
+    """A source whose batches also go to a ``ChargeTap`` as the writing pass reads them (the
+    columns the tap needs are read with the pass's own and left out of what it is given)."""
+
+    def __init__(self, src: Any, tap: ChargeTap) -> None:
+        self._src = src
+        self._tap = tap
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._src, name)
+
+    def batches(self, columns: list[str], batch_rows: int, *args: Any, **kwargs: Any) -> Any:
+        extra = [c for c in self._tap.columns if c not in columns]
+        for batch in self._src.batches(list(columns) + extra, batch_rows, *args, **kwargs):
+            self._tap.add(batch)
+            yield batch.select(list(columns)) if extra else batch
+
+
 def ledger_prepass(src: Any, plans: list[ColumnPlan], policy: LoadedPolicy, key: SecretKey,
                    batch_rows: int, sampler: ColumnSampler | None, ledger: Any | None,
                    cap: float | None, *, check: Callable[[], None] | None = None) -> LedgerCharges:
@@ -83,31 +144,12 @@ def ledger_prepass(src: Any, plans: list[ColumnPlan], policy: LoadedPolicy, key:
     add up.  ``ledger`` None: no ledger yet (nothing spent, no last values).  Nothing is written.
     The batches give digests only; the ledger is searched once, after the last batch, for the
     distinct subjects.  ``check`` is called after every batch (a stop signal ends the pass there)."""
-    subject = policy.policy.subject_key
-    assert subject is not None
-    memo_plans = [replace(p, diag=ColumnDiagnostics()) for p in plans if p.memo is not None]  # no double counts
-    priv = [p for p in plans if p.rc.mechanism is not None]
-    base = policy.epsilon_total if sampler is not None else sum(_eps(p) for p in priv if p.memo is None)
-    pre = _PrePass(subject, memo_plans, {p.rc.name: memo_context(p.rc) for p in memo_plans}, key, sampler)
-    hashes: list[np.ndarray] = []
-    tags: dict[str, list[np.ndarray]] = {p.rc.name: [] for p in memo_plans}
-    sets: dict[str, list[np.ndarray]] = {p.rc.name: [] for p in memo_plans}
-    row0 = 0
-    for batch in src.batches([subject] + [p.rc.name for p in memo_plans], batch_rows):
-        sh, t, st = pre.batch(batch, row0)
-        hashes.append(sh)
-        for name, v in t.items():
-            tags[name].append(v)
-        for name, v in st.items():
-            sets[name].append(v)
-        row0 += batch.num_rows
+    tap = ChargeTap(plans, policy, key, sampler)
+    for batch in src.batches(tap.columns, batch_rows):
+        tap.add(batch)
         if check is not None:
             check()
-    memo = {p.rc.name: MemoColumn(_concat(tags[p.rc.name], DIGEST), 0.0 if sampler is not None else _eps(p),
-                                  _concat(sets[p.rc.name], bool) if sampler is not None else None,
-                                  free_if_same=sampler is None)
-            for p in memo_plans}
-    return charges_of(_concat(hashes, DIGEST), base, memo, ledger, cap)
+    return tap.charges(ledger, cap)
 
 
 def _concat(parts: list[np.ndarray], dtype: Any) -> np.ndarray:
@@ -120,14 +162,49 @@ def precharge(src: Any, plans: list[ColumnPlan], policy: LoadedPolicy, key: Secr
     ``allow_partial``); None without a ledger.  The ledger is only read (nothing is created)."""
     if opts.ledger_path is None:
         return None
-    led = (Ledger.open(opts.ledger_path, create=False, readonly=True)  # read-only: creates and changes nothing
-           if opts.ledger_path.exists() else None)
+    led = open_checked(opts, key)
     try:
-        if led is not None:
-            led.check_key(key.fingerprint())
-            led.check_state()  # a state deleted or edited after the last release: refused before anything is written
         charges = ledger_prepass(src, plans, policy, key, opts.batch_rows, sampler, led, opts.lifetime_epsilon,
                                  check=check)
+    except BaseException:
+        if led is not None:
+            led.close()
+        raise
+    return settle(charges, led, opts)
+
+
+def open_checked(opts: ReleaseOptions, key: SecretKey) -> Any | None:
+    """The release's ledger opened read-only (creates and changes nothing; None: no ledger yet),
+    its key and state checked: a ledger of another key, or a state deleted or edited after the
+    last release, is refused before the input is read."""
+    assert opts.ledger_path is not None
+    if not opts.ledger_path.exists():
+        return None
+    led = Ledger.open(opts.ledger_path, create=False, readonly=True)
+    try:
+        led.check_key(key.fingerprint())
+        led.check_state()
+    except BaseException:
+        led.close()
+        raise
+    return led
+
+
+def folded_charges(tap: ChargeTap, led: Any | None, opts: ReleaseOptions) -> LedgerCharges:
+    """The charges of a release whose writing pass fed ``tap``: refused over the lifetime budget
+    (the staged files are then removed: nothing reaches a destination)."""
+    try:
+        charges = tap.charges(led, opts.lifetime_epsilon)
+    except BaseException:
+        if led is not None:
+            led.close()
+        raise
+    return settle(charges, led, opts)
+
+
+def settle(charges: LedgerCharges, led: Any | None, opts: ReleaseOptions) -> LedgerCharges:
+    """Refuse ``charges`` over the lifetime budget (unless ``allow_partial``); keep ``led`` with them."""
+    try:
         _refuse_over_budget(charges, opts)
     except BaseException:
         if led is not None:

@@ -18,7 +18,16 @@ from ..manifest import Manifest
 from ..policy import LoadedPolicy
 from . import nonces, rerun
 from .central import check_one_row_per_person, check_repeats
-from .charges import check_same_rows, precharge, record_release, rows_held
+from .charges import (
+    ChargeTap,
+    TappedSource,
+    check_same_rows,
+    folded_charges,
+    open_checked,
+    precharge,
+    record_release,
+    rows_held,
+)
 from .columns import (
     ColumnPlan,
     attach_randomness,
@@ -138,8 +147,9 @@ def _release(opts: ReleaseOptions, policy: LoadedPolicy, key: SecretKey, staged:
     plans = plan_columns(policy, src.column_names, source_location(src, opts))
     check_csv_markers(policy, src, plans)
     check_input_types(src, plans, policy, opts)
+    fold = _folds(opts, policy, src)
     if hasattr(src, "prepare"):  # a streamed input read more than once is spooled privately first
-        src.prepare(_passes(opts, policy), stop=staged.check)
+        src.prepare(_passes(opts, policy, fold), stop=staged.check)
     if opts.ledger_path is None:  # with a ledger its pre-pass reads the subjects and checks this too
         check_one_row_per_person(src, policy, opts.batch_rows, source_location(src, opts), check=staged.check)
     schema = output_schema(plans, src.schema, src.format)
@@ -155,16 +165,17 @@ def _release(opts: ReleaseOptions, policy: LoadedPolicy, key: SecretKey, staged:
     nonce_done = False
     if not getattr(src, "digests_while_reading", False):
         nonce_use, nonce_done = nonces.check(opts, policy, key, src, stop=staged.check), True
-    charges = precharge(src, plans, policy, key, sampler, opts, check=staged.check)
+    # with a ledger, the charges: from a pre-pass when they must be known before writing (who is
+    # held back, --allow-partial; or a route that does not read through the source), else from the
+    # writing pass's own batches (_charged_write)
+    charges = None if fold else precharge(src, plans, policy, key, sampler, opts, check=staged.check)
     if charges is not None:
         check_repeats(len(charges.row_within) - len(charges.subjects), policy, source_location(src, opts))
     if not nonce_done and getattr(src, "content_sha256", None) is not None:
         nonce_use, nonce_done = nonces.check(opts, policy, key, src, stop=staged.check), True
-    held = rows_held(charges, plans)
     staged.check()
     hold_destinations(staged, opts, diag_path)
-    written = write_extract(job, src, held, opts, staged, on_progress)
-    check_same_rows(charges, written.input_rows, source_location(src, opts))
+    written, charges = _charged_write(job, src, charges, fold, policy, key, sampler, opts, staged, on_progress)
     if not nonce_done:  # a CSV read once: its digest is that of the bytes the extract was made from
         nonce_use = nonces.check(opts, policy, key, src, stop=staged.check)
     manifest = build_manifest(policy, key, plans, written, opts)
@@ -185,6 +196,30 @@ def _release(opts: ReleaseOptions, policy: LoadedPolicy, key: SecretKey, staged:
                          column_counts=changed, warnings=tuple(diag["warnings"]))
 
 
+def _charged_write(job: PartJob, src: Any, charges: LedgerCharges | None, fold: bool, policy: LoadedPolicy,
+                   key: SecretKey, sampler: Any, opts: ReleaseOptions, staged: StagedFiles,
+                   on_progress: Callable[[int], None] | None) -> tuple[Any, LedgerCharges | None]:
+    """Write the staged extract.  ``fold``: the ledger's charges come from the writing pass's own
+    batches (ChargeTap), refused over the budget once it is done (the staged files are removed,
+    nothing reaches a destination); else ``charges`` are the pre-pass's, or None without a ledger."""
+    tap, led = None, None
+    if fold:
+        led = open_checked(opts, key)  # a damaged ledger or another key's: refused before the work
+        tap = ChargeTap(job.plans, policy, key, sampler)
+    try:
+        written = write_extract(job, src if tap is None else TappedSource(src, tap), rows_held(charges, job.plans),
+                                opts, staged, on_progress)
+    except BaseException:
+        if led is not None:
+            led.close()
+        raise
+    if tap is not None:
+        charges = folded_charges(tap, led, opts)
+        check_repeats(len(charges.row_within) - len(charges.subjects), policy, source_location(src, opts))
+    check_same_rows(charges, written.input_rows, source_location(src, opts))
+    return written, charges
+
+
 def _record(staged: StagedFiles, charges: LedgerCharges | None, plans: list[ColumnPlan], manifest: Manifest,
             opts: ReleaseOptions) -> int | None:
     """Record the staged release in the ledger (None without one); a stop asked for before
@@ -196,9 +231,22 @@ def _record(staged: StagedFiles, charges: LedgerCharges | None, plans: list[Colu
     return record_release(opts.ledger_path, charges, plans, manifest, opts.lifetime_epsilon)
 
 
-def _passes(opts: ReleaseOptions, policy: LoadedPolicy) -> int:
+def _folds(opts: ReleaseOptions, policy: LoadedPolicy, src: Any) -> bool:
+    """Whether the ledger's charges come from the writing pass itself (the input read once): with a
+    ledger, without --allow-partial (who is held back must be known before writing), on the local
+    engine, through a route that reads the source's batches (not an as-input dataset of a Parquet
+    input's own fragments)."""
+    if opts.ledger_path is None or opts.allow_partial or opts.engine != "local":
+        return False
+    fragments = (opts.dataset_out and policy.policy.output.row_order != "shuffled" and hasattr(src, "parquet_dataset")
+                 and src.parquet_dataset(opts.fragment_rows) is not None)
+    return not fragments
+
+
+def _passes(opts: ReleaseOptions, policy: LoadedPolicy, fold: bool) -> int:
     """How many times the release reads its input: the extract's pass, and before it the ledger's
-    pre-pass or (without a ledger) the one-row-per-person check."""
-    extra = opts.ledger_path is not None or (policy.policy.output.one_row_per_person and
-                                             policy.policy.subject_key is not None)
+    pre-pass (unless it is folded into the extract's pass) or (without a ledger) the
+    one-row-per-person check."""
+    extra = (opts.ledger_path is not None and not fold) or (
+        opts.ledger_path is None and policy.policy.output.one_row_per_person and policy.policy.subject_key is not None)
     return 2 if extra else 1
