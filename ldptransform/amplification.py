@@ -72,6 +72,12 @@ class ShuffleGuarantee:
                 "row_epsilon": self.epsilon0, "largest_row_epsilon": self.largest_epsilon0,
                 "improves": self.improves, "reason": self.reason, "source": self.source}
 
+    def to_frame(self) -> Any:
+        """``to_dict()`` as a one-row pandas DataFrame."""
+        import pandas as pd
+
+        return pd.DataFrame([self.to_dict()])
+
 
 def closed_form_epsilon(epsilon0: float, n: int, delta: float) -> float:
     """The bound of Theorem 3.1 (module docstring), without checking its condition."""

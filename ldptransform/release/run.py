@@ -78,6 +78,31 @@ class ReleaseResult:
     # (else the steward's private folder, where the published release's diagnostics are by default)
     already_published: bool = False
 
+    def to_dict(self) -> dict[str, Any]:
+        """What the release did, for the steward (``steward_only``: the held-back figures, the
+        counts of changed values and the warnings depend on the data; never hand them to partners)."""
+        m = self.manifest
+        return {"extract": str(self.extract_path), "manifest": str(self.manifest_path),
+                "diagnostics": str(self.diagnostics_path), "rows": m.rows, "nonce": m.nonce,
+                "epsilon_per_row": m.privacy.epsilon_per_row_used, "seconds": self.seconds,
+                "already_published": self.already_published,
+                "ledger": None if self.ledger_path is None else str(self.ledger_path),
+                "ledger_release_id": self.ledger_release_id,
+                "steward_only": {"held_back_subjects": self.held_back_subjects, "held_back_rows": self.held_back_rows,
+                                 "column_counts": list(self.column_counts), "warnings": list(self.warnings)}}
+
+    def to_frame(self) -> Any:
+        """One row per released column: column, type, mechanism, epsilon (None for a public
+        column), and the steward-only text of its values changed before randomizing (None if none)."""
+        import pandas as pd
+
+        changed = {t.split(": ", 1)[0]: t.split(": ", 1)[1] for t in self.column_counts if ": " in t}
+        rows = [{"column": c.name, "type": c.type,
+                 "mechanism": None if c.mechanism is None else c.mechanism.get("mechanism"),
+                 "epsilon": None if c.mechanism is None else c.mechanism.get("epsilon"),
+                 "changed_steward_only": changed.get(c.name)} for c in self.manifest.columns]
+        return pd.DataFrame(rows, columns=["column", "type", "mechanism", "epsilon", "changed_steward_only"])
+
 
 def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey, out: Path | str, *,
               manifest_path: Path | str | None = None, diagnostics_path: Path | str | None = None,
