@@ -673,7 +673,8 @@ def privatize(
         "budget.lifetime_epsilon: ledger.sqlite3 in the private folder, $LDPT_PRIVATE_DIR]."),
     allow_partial: bool = typer.Option(
         False, "--allow-partial", help="With budget.lifetime_epsilon: release only the subjects still within "
-        "it (the others' rows are left out) instead of refusing the whole release."),
+        "it (the others' rows stay in place as placeholder rows, reports of random values) instead of refusing "
+        "the whole release; the input is then read twice (who is held back is worked out first)."),
     engine: Engine = typer.Option(Engine.local, "--engine", help="local: this process; dask: parts written "
                                   "in parallel by dask workers (needs OUT to be a folder; pip install "
                                   "'ldptransform[dask]'). Both write the same bytes."),
