@@ -209,7 +209,7 @@ def _run_log(command: str, fmt: LogFormat, inputs: dict[str, Any]) -> Iterator[R
 class _Progress:
     """Progress of a long step: a bar on stderr when it is a terminal (not with ``show=False``),
     ``progress`` records in JSON mode (at most every EVERY seconds, and when a pass ends),
-    nothing otherwise.  ``unit`` rows or bytes; ``total`` None when not known."""
+    nothing otherwise.  ``unit`` rows, bytes or steps; ``total`` None when not known."""
 
     EVERY = 0.5
 
@@ -1275,7 +1275,8 @@ def plan(
     format: TableJson = typer.Option(TableJson.table, "--format", help="Output format."),
     suggest: bool = typer.Option(False, "--suggest", help="Also suggest the smallest eps per column that meets the "
                                  "policy's quality targets, and compare with budget.strategy sample (a search: "
-                                 "it may take minutes; a status line on a terminal shows the time spent)."),
+                                 "it may take minutes; a progress bar on a terminal shows the steps done and the "
+                                 "time left)."),
     log_format: LogFormat = typer.Option(LogFormat.text, _LOG_OPTION, help=_LOG_HELP),
 ) -> None:
     """Predict each statistic's standard error before a release, against the policy's quality targets.
@@ -1291,8 +1292,12 @@ def plan(
             lp = load_policy(policy)
             result = make_plan(lp, rows).to_dict()
             if suggest:
-                with _status(log, "suggesting an eps split (searching)"):
-                    result["suggestion"] = make_suggestion(lp, rows)
+                with _Progress(log, "suggesting an eps split", None, "steps") as prog:
+                    def told(done: int, total: int | None) -> None:
+                        prog.total = total   # known before the search: the first call says it
+                        prog.add(done - prog.done)
+
+                    result["suggestion"] = make_suggestion(lp, rows, on_progress=told)
         log.result.update(targets_missed=list(result.get("targets_missed", [])),
                           impossible=list(result.get("impossible", [])))
         if format == TableJson.json:

@@ -37,7 +37,7 @@ the same spread term; means: the two-point bound, which two-point attains exactl
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field, fields, replace
 from typing import TYPE_CHECKING, Any, cast
 
@@ -654,36 +654,66 @@ def _sampled_epsilon(rc: ResolvedColumn, rows: int, rate: float, default: Qualit
     return min_epsilon(rc, rows, rate, default)
 
 
-def _sampled_row_epsilon(cols: list[ResolvedColumn], rows: int, m_cols: int, default: Quality | None) -> float | None:
-    """strategy sample with m = ``m_cols``: the epsilon_per_row meeting every target (None: none does)."""
+ProgressCallback = Callable[[int, int | None], None]
+"""``on_progress(done, total)``: the steps of a search done so far, and their total (None when not known)."""
+
+
+class _Steps:
+    """The steps of ``suggest``'s search, told to an ``on_progress`` callback after each one."""
+
+    def __init__(self, total: int | None, on_progress: ProgressCallback | None) -> None:
+        self.done, self.total, self.on_progress = 0, total, on_progress
+        if on_progress is not None:
+            on_progress(0, total)   # before the first step: the total
+
+    def advance(self, n: int = 1) -> None:
+        """``n`` more steps done (more than one: steps a search found it need not run)."""
+        if n <= 0:
+            return
+        self.done += n
+        if self.on_progress is not None:
+            self.on_progress(self.done, self.total)
+
+
+def _sampled_row_epsilon(cols: list[ResolvedColumn], rows: int, m_cols: int, default: Quality | None,
+                         steps: _Steps) -> float | None:
+    """strategy sample with m = ``m_cols``: the epsilon_per_row meeting every target (None: none does).
+    One step per column (the columns left once one cannot meet its targets count as done)."""
     need: list[float] = []
-    for rc in cols:
+    for i, rc in enumerate(cols):
         eps = _sampled_epsilon(rc, rows, m_cols / len(cols), default)
         if eps is None:
+            steps.advance(len(cols) - i)
             return None
+        steps.advance()
         need.append(eps)
     return round(max(need) * m_cols, 10)
 
 
-def _sample_options(cols: list[ResolvedColumn], rows: int,
-                    default: Quality | None) -> tuple[list[dict[str, Any]], dict[str, Any] | None]:
+def _sample_options(cols: list[ResolvedColumn], rows: int, default: Quality | None,
+                    steps: _Steps) -> tuple[list[dict[str, Any]], dict[str, Any] | None]:
     """strategy sample: for each m, the epsilon_per_row meeting every target (None: none does), and the best m."""
     best: dict[str, Any] | None = None
     samples: list[dict[str, Any]] = []
     for m_cols in range(1, len(cols) + 1):
-        eps_row = _sampled_row_epsilon(cols, rows, m_cols, default)
+        eps_row = _sampled_row_epsilon(cols, rows, m_cols, default, steps)
         samples.append({"sample_columns": m_cols, "epsilon_per_row": eps_row})
         if eps_row is not None and (best is None or eps_row < best["epsilon_per_row"]):
             best = {"sample_columns": m_cols, "epsilon_per_row": eps_row}
     return samples, best
 
 
+def _sample_compared(cols: list[ResolvedColumn], default: Quality | None) -> bool:
+    """Whether the planner compares strategy sample: two privatized columns or more, all with targets."""
+    return len(cols) > 1 and all(_has_target(rc, default) for rc in cols)
+
+
 def _sample_part(cols: list[ResolvedColumn], rows: int, default: Quality | None, unmet: list[str],
-                 total: float) -> dict[str, Any]:
+                 total: float, steps: _Steps) -> dict[str, Any]:
     """The planner's strategy-sample comparison: each row reports m of d columns at eps_row / m."""
-    if not (len(cols) > 1 and all(_has_target(rc, default) for rc in cols)):
+    if not _sample_compared(cols, default):
         return {"verdict": "not compared: strategy sample needs at least two privatized columns, all with targets"}
-    samples, best = _sample_options(cols, rows, default)
+    samples, best = _sample_options(cols, rows, default, steps)
     out: dict[str, Any] = {"options": samples, "best": best}
     if best is not None and (unmet or best["epsilon_per_row"] < total * (1 - 1e-9)):
         out["verdict"] = (f"strategy sample with sample_columns {best['sample_columns']} would meet every "
@@ -694,16 +724,24 @@ def _sample_part(cols: list[ResolvedColumn], rows: int, default: Quality | None,
     return out
 
 
-def suggest(policy: LoadedPolicy, rows: int) -> dict[str, Any]:
+def suggest(policy: LoadedPolicy, rows: int, *, on_progress: ProgressCallback | None = None) -> dict[str, Any]:
     """The smallest per-column eps meeting every target (split), and the smallest
-    epsilon_per_row meeting them under strategy sample, for each m."""
+    epsilon_per_row meeting them under strategy sample, for each m.
+
+    ``on_progress(done, total)`` is called with done 0 before the search and after each of its
+    steps: one step per privatized column for split, then (when strategy sample is compared) one
+    per column for each m, so the total, d + d * d for d privatized columns (d alone when sample
+    is not compared), is known before the search starts; the last call has done == total.  The
+    result does not depend on it."""
     default = policy.policy.quality
     cols = [rc for rc in policy.columns if rc.mechanism is not None]
+    steps = _Steps(len(cols) + (len(cols) ** 2 if _sample_compared(cols, default) else 0), on_progress)
     split: dict[str, Any] = {}
     total = 0.0
     unmet = []
     for rc in cols:
         split[rc.name], eps = _split_column(rc, rows, default)
+        steps.advance()
         if eps is None:
             unmet.append(rc.name)
         else:
@@ -712,11 +750,12 @@ def suggest(policy: LoadedPolicy, rows: int) -> dict[str, Any]:
     out: dict[str, Any] = {"rows": rows, "split": {"columns": split, "epsilon_per_row": None if unmet else
                                                    round(total, 10)}}
     out["split"]["verdict"] = _split_verdict(unmet, total, budget, rows)
-    out["sample"] = _sample_part(cols, rows, default, unmet, total)
+    out["sample"] = _sample_part(cols, rows, default, unmet, total, steps)
     return out
 
 
-__all__ = ["plan", "suggest", "PlanResult", "PlanColumn", "PlanStatistic", "column_statistics", "min_epsilon",
+__all__ = ["plan", "suggest", "ProgressCallback", "PlanResult", "PlanColumn", "PlanStatistic", "column_statistics",
+           "min_epsilon",
            "frequency_row_variance", "mean_row_variance", "memo_rounding_variance",
            "frequency_row_variance_bound", "mean_row_variance_bound", "simulated_median_se", "distribution_mean_se",
            "DistributionMeanSE", "sample_size",

@@ -445,3 +445,48 @@ def test_a_distribution_mean_target_is_checked_by_plan_and_validate(tmp_path):
         privatize(raw, policy, KEY, out)
         quality = validate(out).check("quality")
         assert quality is not None and quality.ok is status and "pay mean" in quality.detail, quality
+
+
+@pytest.mark.parametrize("rows, quality", [(20000, None), (100, {"max_se": 0.0001, "max_relative_se": 0.0001})],
+                         ids=["targets met", "targets unmet"])
+def test_suggest_progress_counts_steps_to_a_known_total(tmp_path, ldpt, monkeypatch, rows, quality):
+    """suggest's on_progress: done 0 first, then one call per step with done increasing to a total
+    fixed from the first call (3 privatized columns: 3 split searches + 3 x 3 for strategy sample;
+    with unmet targets the columns a sample option skips are counted at once); the result is the
+    same with and without the callback.  `plan --suggest --log-format json` tells the same
+    sequence as `progress` records (every step here: the records' rate limit is lifted)."""
+    pol = json.loads(json.dumps(POLICY))
+    if quality is not None:
+        pol["quality"] = quality
+    lp = parse_policy(pol, "test")
+    calls: list[tuple[int, int | None]] = []
+    got = suggest(lp, rows, on_progress=lambda done, total: calls.append((done, total)))
+    assert got == suggest(lp, rows)
+    done = [d for d, _ in calls]
+    assert {t for _, t in calls} == {12} and done[0] == 0 and done[-1] == 12
+    assert all(a < b for a, b in zip(done, done[1:])), done
+    assert len(calls) == (13 if quality is None else 7), calls   # unmet: each sample option skips 3 columns at once
+
+    import ldptransform.cli as cli
+
+    monkeypatch.setattr(cli._Progress, "EVERY", 0.0)
+    p = tmp_path / "policy.yaml"
+    p.write_text(yaml.safe_dump(pol, sort_keys=False), encoding="utf-8")   # the columns in the same order
+    r = ldpt("plan", "--policy", p, "--rows", rows, "--format", "json", "--suggest", "--log-format", "json")
+    assert r.returncode == 0, r.stderr
+    assert json.loads(r.stdout)["suggestion"] == got
+    recs = [json.loads(line) for line in r.stderr.splitlines()]
+    prog = [x for x in recs if x["event"] == "progress"]
+    assert [(x["done"], x["total"]) for x in prog] == calls
+    assert {(x["stage"], x["unit"]) for x in prog} == {("suggesting an eps split", "steps")}
+    assert set(prog[-1]) >= {"seconds", "eta_seconds"} and prog[-1]["eta_seconds"] == 0.0
+    assert all(a["seconds"] <= b["seconds"] for a, b in zip(prog, prog[1:]))
+    assert recs[-1]["event"] == "result" and recs[-1]["exit_code"] == 0
+
+
+def test_suggest_progress_without_strategy_sample_has_one_step_per_column():
+    """One privatized column: strategy sample is not compared, so the search is one step."""
+    lp = parse_policy({**POLICY, "columns": {"site": POLICY["columns"]["site"]}}, "test")
+    calls: list[tuple[int, int | None]] = []
+    sug = suggest(lp, 20000, on_progress=lambda done, total: calls.append((done, total)))
+    assert "not compared" in sug["sample"]["verdict"] and calls == [(0, 1), (1, 1)]
