@@ -184,6 +184,85 @@ def test_a_dask_dataframe_is_released_like_its_rows(dataset: Path, tmp_path: Pat
         privatize_frame(frame, pol, KEY, tmp_path / "x", nonce=NONCE, engine="local")
 
 
+def _typed_survey(survey: pd.DataFrame, rows: int) -> pd.DataFrame:
+    """The first ``rows`` rows of the survey with pandas' own dtypes: categorical columns (their
+    categories in another order than the policy's, plus a category no row has), nullable string,
+    Int64 and Float64 columns with pd.NA, and an index that is not 0..n-1 (never released)."""
+    df = survey.iloc[:rows].copy()
+    sites = sorted(df["site"].unique(), reverse=True) + ["Unused Site"]
+    df["site"] = df["site"].astype(pd.CategoricalDtype(sites))
+    df["would_recommend"] = df["would_recommend"].astype("category")
+    df["survey_wave"] = df["survey_wave"].astype("category")
+    df["role"] = df["role"].astype("string")
+    df["staff_id"] = df["staff_id"].astype("string")
+    df["satisfaction"] = df["satisfaction"].astype("Int64")  # whole numbers with pd.NA where missing
+    df["weekly_hours"] = df["weekly_hours"].astype("Float64")
+    df["tenure_years"] = df["tenure_years"].astype("Float64")
+    return df.set_axis(pd.RangeIndex(5000, 5000 + rows))
+
+
+def _text_as_string(t: pa.Table) -> pa.Table:
+    """``t`` with its large_string columns as string (field metadata kept)."""
+    return t.cast(pa.schema([f.with_type(pa.string()) if pa.types.is_large_string(f.type) else f for f in t.schema],
+                            metadata=t.schema.metadata))
+
+
+@pytest.mark.parametrize("policy_fn", [survey_policy, as_input_policy], ids=["shuffled", "rows-as-input"])
+def test_a_dask_dataframe_made_from_pandas_releases_the_pandas_frames_rows(policy_fn, survey: pd.DataFrame,
+                                                                           tmp_path: Path, cluster: str,
+                                                                           other_steward) -> None:
+    """dd.from_pandas of a frame with categorical and nullable dtypes, in 3 partitions of 1000
+    rows, through engine_dask.privatize_frame, against the local engine releasing the pandas
+    DataFrame itself with fragment_rows 1000 (the partition size), in both row orders (shuffled:
+    parts by rank in the keyed order; as-input: one part per partition, the local engine's
+    1000-row fragments).  Part by part, the privatized columns are identical (Arrow types, field
+    metadata, values) and so are their manifest entries.  The part files are not compared byte
+    for byte: dask holds text columns as Arrow large_string (its string[pyarrow] dtype; a
+    categorical's values too) and the dask engine writes a public text column with the type of the
+    frame it is given, while the local engine reads a pandas DataFrame's text as string; so a
+    public text column may differ in its Arrow type only (in the parts and in the manifest's
+    dtype), and with text read as string the parts and manifest columns are equal, value for
+    value and with the same metadata."""
+    import dask.dataframe as dd
+
+    from ldptransform.engine_dask import privatize_frame
+
+    df = _typed_survey(survey, 3000)
+    assert df["satisfaction"].isna().any() and df["weekly_hours"].isna().any()
+    frame = dd.from_pandas(df, npartitions=3)
+    assert [int(n) for n in frame.map_partitions(len).compute()] == [1000] * 3
+    assert isinstance(frame.dtypes["site"], pd.CategoricalDtype) and str(frame.dtypes["satisfaction"]) == "Int64"
+    pol = parse_policy(policy_fn(), "survey.yaml")
+    other_steward()  # a dask DataFrame cannot be digested: each release under this nonce in a state of its own
+    dsk = privatize_frame(frame, pol, KEY, tmp_path / "dask", nonce=NONCE, scheduler=cluster, fragment_rows=1000)
+    other_steward()
+    loc = privatize(df, pol, KEY, tmp_path / "local", nonce=NONCE, fragment_rows=1000)
+    assert loc.manifest.extract.parts is not None and dsk.manifest.extract.parts is not None
+    assert [p.file for p in dsk.manifest.extract.parts] == [p.file for p in loc.manifest.extract.parts]
+    assert [p.rows for p in dsk.manifest.extract.parts] == [p.rows for p in loc.manifest.extract.parts] == [1000] * 3
+    public = {c.name for c in pol.columns if c.mechanism is None}
+
+    def text_as_string(entry: Any) -> dict[str, Any]:
+        d = entry.model_dump()
+        for o in d["outputs"]:
+            o["dtype"] = "string" if o["dtype"] == "large_string" else o["dtype"]
+        return d
+
+    assert [c for c in dsk.manifest.columns if c.name not in public] == [
+        c for c in loc.manifest.columns if c.name not in public]
+    assert [text_as_string(c) for c in dsk.manifest.columns] == [text_as_string(c) for c in loc.manifest.columns]
+    privatized = [c.name for c in pol.columns if c.mechanism is not None]
+    for part in loc.manifest.extract.parts:
+        a, b = pq.read_table(tmp_path / "dask" / part.file), pq.read_table(tmp_path / "local" / part.file)
+        assert a.column_names == b.column_names and "__index_level_0__" not in a.column_names
+        assert a.select(privatized).equals(b.select(privatized), check_metadata=True), part.file
+        differ = {f.name for f in a.schema if f.type != b.schema.field(f.name).type}
+        assert differ <= public, differ
+        assert _text_as_string(a).equals(b, check_metadata=True), part.file
+    # a category no row has (a pandas category list) never reaches the extract
+    assert "Unused Site" not in str(pq.read_table(tmp_path / "dask").schema)
+
+
 def test_ledger_charges_are_the_same_with_either_engine(dataset: Path, tmp_path: Path, cluster: str) -> None:
     pol = parse_policy(memo_policy(), "survey.yaml")
     spends = []
