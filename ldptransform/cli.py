@@ -22,7 +22,7 @@ import sys
 import threading
 import time
 import traceback
-from collections.abc import Iterable, Iterator
+from collections.abc import Callable, Iterable, Iterator
 from contextlib import contextmanager
 from enum import StrEnum
 from pathlib import Path
@@ -295,35 +295,35 @@ class _Progress:
 def _status(log: RunLog, stage: str, show: bool = True) -> Iterator[None]:
     """A step whose length is not known: a status line with the time spent on a terminal,
     ``progress`` records (seconds so far) every second in JSON mode, nothing otherwise."""
-    stop = threading.Event()
     t0 = time.monotonic()
     if log.json:
-        def tick() -> None:
-            while not stop.wait(1.0):
-                log.record("progress", stage=stage, unit="seconds", done=None, total=None,
-                           seconds=round(time.monotonic() - t0, 3), eta_seconds=None)
-        th = threading.Thread(target=tick, daemon=True)
-        th.start()
-        try:
+        with _every_second(lambda: log.record("progress", stage=stage, unit="seconds", done=None, total=None,
+                                              seconds=round(time.monotonic() - t0, 3), eta_seconds=None)):
             yield
-        finally:
-            stop.set()
-            th.join()
         return
     if not (show and sys.stderr.isatty()):
         yield
         return
-    with err_console.status(f"{stage} ...") as st:
-        def tick_status() -> None:
-            while not stop.wait(1.0):
-                st.update(f"{stage} ... {time.monotonic() - t0:.0f} s")
-        th = threading.Thread(target=tick_status, daemon=True)
-        th.start()
-        try:
-            yield
-        finally:
-            stop.set()
-            th.join()
+    with err_console.status(f"{stage} ...") as st, \
+            _every_second(lambda: st.update(f"{stage} ... {time.monotonic() - t0:.0f} s")):
+        yield
+
+
+@contextmanager
+def _every_second(tick: Callable[[], None]) -> Iterator[None]:
+    """Call ``tick`` every second, in a thread of its own, while the block runs."""
+    stop = threading.Event()
+
+    def run() -> None:
+        while not stop.wait(1.0):
+            tick()
+    th = threading.Thread(target=run, daemon=True)
+    th.start()
+    try:
+        yield
+    finally:
+        stop.set()
+        th.join()
 
 
 def _raise_interrupt(signum: int, frame: Any) -> None:

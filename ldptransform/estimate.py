@@ -70,6 +70,14 @@ from .results import (ColumnResult, CrossTabCell, CrossTabResult, DistributionRe
 DECODE_BATCH_ROWS = 65536
 
 
+def damaged_extract(where: str, row: int, err: Exception) -> DataError:
+    """An extract whose bytes decode to values no release writes (a damaged page, an index out
+    of range): refused near ``row``, naming what the reader said in one word."""
+    return DataError(f"{where}: the extract's data is damaged and cannot be decoded (read stopped near data row "
+                     f"{row}: {type(err).__name__.removeprefix('Arrow')}). Use an intact copy of the release; "
+                     "`ldpt validate` compares it with the hash in its manifest.")
+
+
 def csv_type(dtype: str) -> pa.DataType:
     """The type a CSV extract's column is read back as: the output type its manifest records
     (every integer width, floats and booleans; text otherwise)."""
@@ -503,9 +511,7 @@ def _accumulate_one(extract: Path, manifest_path: Path | None, an: Analyses, bat
         raise
     except (pa.ArrowException, IndexError, OverflowError, ValueError) as err:
         # the bytes decode to values no release writes (a damaged page, an index out of range)
-        raise DataError(f"{where}: the extract's data is damaged and cannot be decoded (read stopped near data row "
-                        f"{acc.rows + 1}: {type(err).__name__.removeprefix('Arrow')}). Use an intact copy of the "
-                        "release; `ldpt validate` compares it with the hash in its manifest.") from None
+        raise damaged_extract(where, acc.rows + 1, err) from None
     acc.extracts = [str(extract)]
     if acc.rows != manifest.rows:
         raise ManifestError(f"extract {extract} has {acc.rows} rows but manifest {mpath} says {manifest.rows}. The "

@@ -106,7 +106,7 @@ def read_estimates(extract: Path | str, manifest: Path | str | None = None) -> p
         raise DataError(f"{where}: the per-row frame would hold two columns named {', '.join(map(repr, dup))} (a "
                         "column of the extract has the name of a category column NAME=CATEGORY of another). Read "
                         "the extract with pandas or pyarrow, or estimate it with ldpt estimate.")
-    from .estimate import csv_type
+    from .estimate import csv_type, damaged_extract
 
     types = {o.name: csv_type(o.dtype) for c in cols for o in c.entry.outputs}
     rows = 0
@@ -117,9 +117,7 @@ def read_estimates(extract: Path | str, manifest: Path | str | None = None) -> p
     except LdptError:
         raise
     except (pa.ArrowException, IndexError, OverflowError, ValueError) as err:
-        raise DataError(f"{where}: the extract's data is damaged and cannot be decoded (read stopped near data row "
-                        f"{rows + 1}: {type(err).__name__.removeprefix('Arrow')}). Use an intact copy of the "
-                        "release; `ldpt validate` compares it with the hash in its manifest.") from None
+        raise damaged_extract(where, rows + 1, err) from None
     if rows_stated is not None and rows != rows_stated:
         raise ManifestError(f"{where}: the extract has {rows} rows but its manifest says {rows_stated}. The files do "
                             "not belong together, or the extract is incomplete; run `ldpt validate`.")

@@ -476,20 +476,10 @@ def _rewrite_in_place(path: Path, keep_times: bool = True) -> None:
     assert path.stat().st_size == st.st_size and path.stat().st_mtime_ns == st.st_mtime_ns
 
 
-@pytest.mark.parametrize("fmt", ["csv", "parquet"])
-def test_rewrite_keeping_size_and_mtime_between_passes_is_refused(fmt: str, work: Work, ldpt,
-                                                                  monkeypatch: pytest.MonkeyPatch) -> None:
-    """A same-size rewrite between the ledger's pre-pass (--allow-partial) and the release's pass
-    that puts the modification time back is refused (the status-change time moved), and the ledger and the
-    nonce record are not created."""
+def _rewrite_after_the_pre_pass(monkeypatch: pytest.MonkeyPatch, raw: Path) -> None:
+    """The ledger's pre-pass, then ``_rewrite_in_place(raw)`` before the release's own pass."""
     import ldptransform.release.run as run
 
-    _ledger_policy(work)
-    raw = work.dir / f"survey.{fmt}"
-    if fmt == "csv":
-        raw.write_bytes(DEMO_CSV.read_bytes())
-    else:
-        pq.write_table(pacsv.read_csv(DEMO_CSV), raw)
     real = run.precharge
 
     def then_rewrite(*args: Any, **kwargs: Any) -> Any:
@@ -498,6 +488,21 @@ def test_rewrite_keeping_size_and_mtime_between_passes_is_refused(fmt: str, work
         return charges
 
     monkeypatch.setattr(run, "precharge", then_rewrite)
+
+
+@pytest.mark.parametrize("fmt", ["csv", "parquet"])
+def test_rewrite_keeping_size_and_mtime_between_passes_is_refused(fmt: str, work: Work, ldpt,
+                                                                  monkeypatch: pytest.MonkeyPatch) -> None:
+    """A same-size rewrite between the ledger's pre-pass (--allow-partial) and the release's pass
+    that puts the modification time back is refused (the status-change time moved), and the ledger and the
+    nonce record are not created."""
+    _ledger_policy(work)
+    raw = work.dir / f"survey.{fmt}"
+    if fmt == "csv":
+        raw.write_bytes(DEMO_CSV.read_bytes())
+    else:
+        pq.write_table(pacsv.read_csv(DEMO_CSV), raw)
+    _rewrite_after_the_pre_pass(monkeypatch, raw)
     ledger = work.dir / "ledger.sqlite3"
     before = listing(work.dir)
     res = work.run(ldpt, raw, "--ledger", ledger, "--allow-partial")
@@ -514,7 +519,6 @@ def test_csv_passes_that_read_different_bytes_are_refused(work: Work, ldpt, monk
     must equal the first: a same-size rewrite between the ledger's pre-pass (--allow-partial) and
     the release is refused all the same."""
     import ldptransform.io as lio
-    import ldptransform.release.run as run
 
     real_state = lio.file_state
     monkeypatch.setattr(lio, "file_state", lambda path, missing_ok=False: real_state(path, missing_ok)._replace(
@@ -522,14 +526,7 @@ def test_csv_passes_that_read_different_bytes_are_refused(work: Work, ldpt, monk
     _ledger_policy(work)
     raw = work.dir / "survey.csv"
     raw.write_bytes(DEMO_CSV.read_bytes())
-    real = run.precharge
-
-    def then_rewrite(*args: Any, **kwargs: Any) -> Any:
-        charges = real(*args, **kwargs)
-        _rewrite_in_place(raw)
-        return charges
-
-    monkeypatch.setattr(run, "precharge", then_rewrite)
+    _rewrite_after_the_pre_pass(monkeypatch, raw)
     ledger = work.dir / "ledger.sqlite3"
     before = listing(work.dir)
     res = work.run(ldpt, raw, "--ledger", ledger, "--allow-partial")
