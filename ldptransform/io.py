@@ -148,9 +148,39 @@ class TableSource:
             return encoding_message(self.path, *find_invalid_utf8(self.path, self._delim, columns))
         if "straddl" in text or "block size" in text:
             return large_cell_message(self.path, self._delim, rows_done)
+        m = re.search(r"Expected (\d+) columns?, got (\d+)", str(err))
+        bad = self._bad_row() if m else None
+        if m and bad is not None:
+            return (f"input file {self.path}: data row {bad} (record {bad + 1} of the file, the header being record "
+                    f"1) has {m.group(2)} field(s) where the header has {m.group(1)}. Fix that row (every row needs "
+                    "the same number of fields as the header; a quote that is opened and never closed, or a "
+                    "delimiter inside an unquoted cell, are the usual causes), and run the release again.")
         return (f"input file {self.path} could not be read after data row {rows_done}: "
                 f"{_clean_arrow_message(err)}. Fix that part of the file (for CSV: every row needs the same number "
                 "of fields, quotes must be closed).")
+
+    def _bad_row(self) -> int | None:
+        """The data row (1-based) of the first CSV record whose number of fields is not the
+        header's, found by reading the file again in one thread, where the reader counts records
+        (the error path only; the record's text is never kept)."""
+        found: list[int] = []
+
+        def handler(row: Any) -> str:
+            if row.number is not None:
+                found.append(int(row.number))
+            return "error"
+
+        read = pacsv.ReadOptions(block_size=CSV_BLOCK_BYTES, use_threads=False)
+        parse = pacsv.ParseOptions(delimiter=self._delim, newlines_in_values=True, invalid_row_handler=handler)
+        conv = pacsv.ConvertOptions(include_columns=[], null_values=self._nulls)
+        try:
+            with contextlib.closing(pacsv.open_csv(self.path, read_options=read, parse_options=parse,
+                                                   convert_options=conv)) as reader:
+                for _ in reader:
+                    pass
+        except (pa.ArrowException, OSError):
+            pass
+        return found[0] - 1 if found and found[0] > 1 else None
 
     def check_unchanged(self, bytes_read: int | None = None) -> None:
         """Refuse (a DataError) if the input file changed since it was opened: its size or

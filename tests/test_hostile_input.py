@@ -761,3 +761,24 @@ def test_sigterm_during_a_pass_before_writing(which: str, work: Work, ldpt, tmp_
     assert listing(work.dir) == before and partials(work.dir) == []
     assert (sha256(ledger) if with_ledger else None) == ledger_hash
     assert listing(work.private) == private_before
+
+
+@pytest.mark.parametrize("bad_row", [3, 40_000])
+def test_csv_row_with_the_wrong_number_of_fields_is_located(bad_row: int, work: Work, ldpt) -> None:
+    """A CSV record with fewer fields than the header is named by its data row, counted in records
+    (a quoted cell above it holds a line break), whether it lies in the reader's first block or far
+    beyond it; the record's text is never shown."""
+    lines = DEMO_CSV.read_text(encoding="utf-8").splitlines()
+    header, rows = lines[0], lines[1:]
+    body = [rows[i % len(rows)] for i in range(bad_row + 10)]
+    cells = body[0].split(",")
+    cells[1] = '"North\nWorks"'  # a quoted line break in data row 1: lines and records part ways
+    body[0] = ",".join(cells)
+    body[bad_row - 1] = "SECRETVALUE"
+    raw = work.dir / "survey.csv"
+    raw.write_text("\n".join([header, *body]) + "\n", encoding="utf-8")
+    before = listing(work.dir)
+    res = work.run(ldpt, raw)
+    text = work.refused(res, [raw.name, f"data row {bad_row} ", "1 field(s) where the header has 9"], before,
+                        forbidden=["SECRETVALUE"])
+    assert f"record {bad_row + 1} of the file" in text
