@@ -139,7 +139,8 @@ class MemorySource:
     size_bytes = 0
     digests_while_reading = True  # the first full pass gives content_sha256
 
-    def __init__(self, obj: Any, index_columns: frozenset[str] = frozenset()) -> None:
+    def __init__(self, obj: Any, index_columns: frozenset[str] = frozenset(),
+                 read_columns: frozenset[str] | None = None) -> None:
         kind = input_kind(obj)
         if kind is None:
             raise UsageError("the input must be a path, a URI, a pandas DataFrame, a pyarrow Table, a pyarrow "
@@ -153,6 +154,10 @@ class MemorySource:
         self._spool: Path | None = None
         self._spool_tmp: Path | None = None
         self._index: list[tuple[str, int]] = []  # DataFrame index levels read as columns (name, level)
+        # the columns a release may read (the policy's columns that are not dropped, and the
+        # subject); None: all.  Only these must have one type, and only they are digested: a
+        # column the policy drops is never read, whatever it holds
+        self._wanted = read_columns
         if kind == "pandas-dataframe":
             self.schema = self._frame_schema(obj, index_columns)
             self.num_rows = len(obj)
@@ -160,6 +165,7 @@ class MemorySource:
             self.schema = self._arrow_schema(obj.schema)
             if kind == "arrow-table":
                 self.num_rows = obj.num_rows
+        self._read_names = [n for n in self.schema.names if read_columns is None or n in read_columns]
 
     # -- the layout ------------------------------------------------------------------------
 
@@ -190,8 +196,20 @@ class MemorySource:
                             "example df.rename_axis(index=...)), or drop the column.")
         fields = [pa.field(n, self._series_type(n, df.index.get_level_values(i).to_series(index=None)))
                   for n, i in self._index]
-        fields += [pa.field(n, self._series_type(n, df.iloc[:, j])) for j, n in enumerate(names)]
+        fields += [pa.field(n, (self._series_type if self._reads(n) else self._any_type)(n, df.iloc[:, j]))
+                   for j, n in enumerate(names)]
         return pa.schema(fields)
+
+    def _reads(self, name: str) -> bool:
+        return self._wanted is None or name in self._wanted
+
+    def _any_type(self, name: str, s: pd.Series) -> pa.DataType:
+        """The type of a column no release reads (the policy drops it): its own where it has one,
+        else null (it is never converted)."""
+        try:
+            return self._series_type(name, s)
+        except DataError:
+            return pa.null()
 
     def _series_type(self, name: str, s: pd.Series) -> pa.DataType:
         if s.dtype == np.dtype(object):
@@ -283,9 +301,9 @@ class MemorySource:
 
     def _digesting(self, columns: list[str], stop: Callable[[], None] | None = None) -> Iterator[pa.RecordBatch]:
         """A full pass that also digests every column (the first one a release makes)."""
-        digest = _StreamDigest(self.schema)
+        digest = _StreamDigest(pa.schema([self.schema.field(n) for n in self._read_names]))
         rows = 0
-        for chunk in self._chunks(self.column_names):
+        for chunk in self._chunks(self._read_names):
             digest.add(chunk)
             rows += chunk.num_rows
             yield chunk.select(columns)
@@ -322,8 +340,9 @@ class MemorySource:
         fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
         self._spool_tmp = path
         try:
-            with os.fdopen(fd, "wb") as f, pa.ipc.new_file(f, self.schema) as writer:
-                for chunk in self._digesting(self.column_names, stop):
+            spooled = pa.schema([self.schema.field(n) for n in self._read_names])
+            with os.fdopen(fd, "wb") as f, pa.ipc.new_file(f, spooled) as writer:
+                for chunk in self._digesting(self._read_names, stop):
                     writer.write_batch(chunk)
         except BaseException:
             self.close()

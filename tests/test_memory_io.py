@@ -414,3 +414,30 @@ def test_a_stop_removes_the_spooled_copy_and_the_in_memory_folder(tmp_path: Path
         privatize_to_memory(as_input(df, "reader"), pol, KEY, ledger_path=tmp_path / "mem.ledger", on_progress=stop,
                             allow_partial=True)
     assert os.listdir(nonces.state_path().parent) == []
+
+
+@pytest.mark.parametrize("unlisted", [False, True], ids=["type: drop", "unlisted: drop"])
+def test_a_dropped_column_is_never_read(tmp_path: Path, unlisted: bool) -> None:
+    """A DataFrame column the policy drops (by name, or as an unlisted column under unlisted: drop)
+    may hold anything (mixed types, dictionaries): it is never converted, it is not digested, and
+    the extract is that of the frame without it (or with other values in it), bit for bit; the
+    nonce record sees the same input,
+    so giving the nonce again with the other frame is a true reproduction, not a reuse."""
+    df = rows()
+    messy = df.assign(notes=[1 if i % 2 else "free text" for i in range(len(df))],
+                      blob=[{"k": i} for i in range(len(df))])
+    pol_d = policy_dict()
+    if unlisted:
+        pol_d["unlisted"] = "drop"
+    else:
+        pol_d["columns"].update({"notes": {"type": "drop"}, "blob": {"type": "drop"}})
+    pol = parse_policy(pol_d, "memory-io.yaml")
+    other = df if unlisted else messy.assign(notes=[[i] for i in range(len(df))], blob=None)
+    first = release(messy, pol, tmp_path, "a/out.parquet")
+    again = release(other, pol, tmp_path, "b/out.parquet")  # the same nonce: allowed, the same input
+    assert extract_bytes(first.extract_path) == extract_bytes(again.extract_path)
+    records = [json.loads(line) for line in nonces.state_path().read_text().splitlines()]
+    assert len({r["input"]["sha256"] for r in records}) == 1
+    pol_d["columns"]["notes"] = {"type": "public"}
+    with pytest.raises(DataError, match="'notes'.*several types"):  # read when released: refused
+        release(messy, parse_policy(pol_d, "memory-io.yaml"), tmp_path, "c/out.parquet")

@@ -22,9 +22,11 @@ def open_source(opts: ReleaseOptions, policy: LoadedPolicy) -> Any:
         from ..memory import MemorySource
 
         names = set(policy.by_name)
+        read = {rc.name for rc in policy.columns if rc.type != "drop"}
         if policy.policy.subject_key is not None:
             names.add(policy.policy.subject_key)
-        return MemorySource(opts.input, index_columns=frozenset(names))
+            read.add(policy.policy.subject_key)
+        return MemorySource(opts.input, index_columns=frozenset(names), read_columns=frozenset(read))
     if opts.frame_input:
         if type(opts.input).__module__.split(".")[0] != "dask":
             raise UsageError("privatize: the input must be a path to a CSV or Parquet file or a Parquet dataset, a "
