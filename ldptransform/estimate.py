@@ -56,7 +56,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from . import mechanisms as mech
-from .errors import DataError, LdptError, ManifestError, UsageError
+from .errors import DataError, InputFileError, LdptError, ManifestError, UsageError
 from .mechanisms import decoders
 from .mechanisms.decoders import CONSISTENCY_METHODS, consistent, norm_additive, norm_mul, norm_sub  # noqa: F401
 from .mechanisms.decoders import mean_result as _mean
@@ -290,6 +290,11 @@ def open_extract(extract: Path, manifest_path: Path | None, *,
     refuse an extract whose hash or size disagrees with the manifest (``check_integrity``)."""
     extract = Path(extract)
     mpath = Path(manifest_path) if manifest_path else default_manifest_path(extract)
+    from .dataset import is_uri
+
+    if not is_uri(str(extract)) and not extract.exists() and not extract.is_symlink():
+        raise InputFileError(f"extract {extract} does not exist. Check the path (an extract is the .parquet or .csv "
+                             "file, or the dataset folder, that privatize wrote beside its manifest).")
     manifest = load_manifest(mpath)
     if verify:
         check_integrity(extract, mpath, manifest)

@@ -27,7 +27,7 @@ import pyarrow.compute as pc
 
 from . import mechanisms as mech
 from .distribution import Distribution
-from .errors import LdptError, UsageError
+from .errors import InputFileError, LdptError, UsageError
 from .estimate import Analyses, accumulate, report, rows_told, z_value
 from .integrity import check_extract
 from .io import TableSource
@@ -265,6 +265,10 @@ def validate(extract: Path | str, manifest_path: Path | str | None = None, *, ra
     extract = Path(extract)
     mpath = Path(manifest_path) if manifest_path else default_manifest_path(extract)
     rep = _Checks(str(extract), str(mpath))
+    if not extract.exists() and not extract.is_symlink() and not mpath.exists():
+        raise InputFileError(f"extract {extract} does not exist, nor its manifest {mpath}. Check the path (an extract "
+                             "is the .parquet or .csv file, or the dataset folder, that privatize wrote beside its "
+                             "manifest).")
     try:
         manifest = load_manifest(mpath)
     except DamagedManifest as err:  # the manifest itself is what failed: a failed check (exit 1)

@@ -536,3 +536,11 @@ def test_bad_nonce(release: Release, ldpt) -> None:
     before = listing(release.dir)
     assert_user_error(ldpt(*release.args(nonce="not-a-nonce")), ["--nonce", "manifest"])
     release.assert_nothing_written(before)
+
+
+@pytest.mark.parametrize("command", ["estimate", "validate"])
+def test_a_missing_extract_is_named_as_the_extract(command: str, ldpt: Any, tmp_path: Path) -> None:
+    """`estimate nothere.parquet` (and validate, when its manifest is missing too) names the
+    extract that does not exist, not only the manifest beside it."""
+    res = ldpt(command, tmp_path / "nothere.parquet")
+    assert_user_error(res, ["extract", "nothere.parquet", "does not exist"])

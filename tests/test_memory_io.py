@@ -424,15 +424,15 @@ def test_a_dropped_column_is_never_read(tmp_path: Path, unlisted: bool) -> None:
     nonce record sees the same input,
     so giving the nonce again with the other frame is a true reproduction, not a reuse."""
     df = rows()
-    messy = df.assign(notes=[1 if i % 2 else "free text" for i in range(len(df))],
-                      blob=[{"k": i} for i in range(len(df))])
+    messy = df.assign(notes=pd.Series([1 if i % 2 else "free text" for i in range(len(df))], dtype=object),
+                      blob=pd.Series([{"k": i} for i in range(len(df))], dtype=object))
     pol_d = policy_dict()
     if unlisted:
         pol_d["unlisted"] = "drop"
     else:
         pol_d["columns"].update({"notes": {"type": "drop"}, "blob": {"type": "drop"}})
     pol = parse_policy(pol_d, "memory-io.yaml")
-    other = df if unlisted else messy.assign(notes=[[i] for i in range(len(df))], blob=None)
+    other = df if unlisted else messy.assign(notes=pd.Series([[i] for i in range(len(df))], dtype=object), blob=None)
     first = release(messy, pol, tmp_path, "a/out.parquet")
     again = release(other, pol, tmp_path, "b/out.parquet")  # the same nonce: allowed, the same input
     assert extract_bytes(first.extract_path) == extract_bytes(again.extract_path)
