@@ -212,22 +212,25 @@ class MemorySource:
             return pa.null()
 
     def _series_type(self, name: str, s: pd.Series) -> pa.DataType:
-        if s.dtype == np.dtype(object):
-            inferred = pd.api.types.infer_dtype(s, skipna=True)
+        inferred = pd.api.types.infer_dtype(s, skipna=True) if s.dtype == np.dtype(object) else None
+        t = _OBJECT_TYPES.get(inferred) if inferred is not None else None
+        if t is not None:
+            return t
+        try:
+            if inferred is not None:
+                # dates, decimals, lists, dicts...: as pyarrow reads them (pandas calls a column of
+                # lists or dicts "mixed" too, but it has one type)
+                t = pa.array(s, from_pandas=True).type
+            else:
+                t = pa.array(s.iloc[:0], from_pandas=True).type
+            if inferred in _MIXED and not pa.types.is_nested(t):
+                raise TypeError  # scalars of several kinds (text and bytes, say), whatever pyarrow makes of them
+        except (pa.ArrowException, TypeError, ValueError):
             if inferred in _MIXED:
                 raise DataError(f"column {name!r} of {self.location} holds values of several types (for example "
                                 "text and numbers) in one object column, so it has no single type to release. "
                                 "Convert it to one type first (for example df[col].astype(str) for text, or "
-                                "pd.to_numeric(df[col], errors='coerce') for numbers).")
-            t = _OBJECT_TYPES.get(inferred)
-            if t is not None:
-                return t
-        try:
-            if s.dtype == np.dtype(object):
-                t = pa.array(s, from_pandas=True).type  # dates, decimals...: as pyarrow reads them
-            else:
-                t = pa.array(s.iloc[:0], from_pandas=True).type
-        except (pa.ArrowException, TypeError, ValueError):
+                                "pd.to_numeric(df[col], errors='coerce') for numbers).") from None
             raise DataError(self._type_message(name)) from None
         return _plain(t)
 

@@ -441,3 +441,18 @@ def test_a_dropped_column_is_never_read(tmp_path: Path, unlisted: bool) -> None:
     pol_d["columns"]["notes"] = {"type": "public"}
     with pytest.raises(DataError, match="'notes'.*several types"):  # read when released: refused
         release(messy, parse_policy(pol_d, "memory-io.yaml"), tmp_path, "c/out.parquet")
+
+
+def test_a_public_column_of_lists_is_released_as_from_arrow(tmp_path: Path) -> None:
+    """pandas calls an object column of lists "mixed", but it has one type (a list of text): a
+    public column of lists in a DataFrame is released as the Arrow Table of the same rows is."""
+    df = rows()
+    pol_d = policy_dict()
+    pol_d["columns"]["tags"] = {"type": "public"}
+    pol = parse_policy(pol_d, "memory-io.yaml")
+    framed = df.assign(tags=pd.Series([["a", "b"][: i % 3] for i in range(len(df))], dtype=object))
+    a = release(framed, pol, tmp_path, "a/out.parquet")
+    with nonces.rederiving():
+        b = release(pa.Table.from_pandas(framed, preserve_index=False), pol, tmp_path, "b/out.parquet")
+    assert a.extract_path.read_bytes() == b.extract_path.read_bytes()
+    assert pq.read_schema(a.extract_path).field("tags").type == pa.list_(pa.string())
