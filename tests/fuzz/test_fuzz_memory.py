@@ -9,7 +9,6 @@ nor records, so the two never meet there)."""
 from __future__ import annotations
 
 import os
-from pathlib import Path
 from typing import Any
 
 import pytest
