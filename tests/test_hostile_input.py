@@ -685,7 +685,7 @@ def slowly(real):
 
 
 if which == "ledger pre-pass":
-    charges._PrePass.batch = slowly(charges._PrePass.batch)
+    charges._PrePass.prepare = slowly(charges._PrePass.prepare)
 elif which == "one row per person":
     central.pd = type("pd", (), {"util": type("util", (), {"hash_array": staticmethod(
         slowly(central.pd.util.hash_array))})})

@@ -11,7 +11,7 @@ from typing import Any
 import numpy as np
 
 from .errors import LedgerError
-from .hashes import distinct
+from .hashes import distinct, equal_digests
 
 CAP_TOLERANCE = 1e-9  # relative slack on the cap for floating-point sums (0.1 + 0.2 > 0.3)
 
@@ -63,6 +63,9 @@ class MemoColumn:
     eps: float = 0.0                 # what a changed value costs (added to the row's eps)
     sets: np.ndarray | None = None   # per input row: the row sets its subject's state (None: every row)
     free_if_same: bool = True        # a value the ledger last recorded costs nothing (False: always ``eps``)
+    # per input row: its value is the one the ledger last recorded (worked out already, from the
+    # rows' registry positions; only with ``charges_of``'s ``row_pos``); None: looked up here
+    same: np.ndarray | None = None
 
 
 @dataclass
@@ -84,6 +87,19 @@ class LedgerCharges:
     # the ledger (read-only) the charges were worked out from, kept open so that its record can
     # use the state it read when nobody has written the ledger since (``Ledger.record_release``)
     checked: Any | None = field(default=None, repr=False)
+    # the record worked out ahead on that state (a future of ``Ledger.prepare_record``), if any
+    prepared: Any | None = field(default=None, repr=False)
+    _inputs: tuple[np.ndarray, np.ndarray, dict[str, tuple[np.ndarray, np.ndarray]]] | None = field(
+        default=None, repr=False)
+
+    def record_inputs(self) -> tuple[np.ndarray, np.ndarray, dict[str, tuple[np.ndarray, np.ndarray]]]:
+        """(subjects, eps, memo updates) of the subjects released, as the record takes them (made
+        once: the record prepared ahead is matched to its inputs by identity)."""
+        if self._inputs is None:
+            within = self.within.all()
+            self._inputs = (self.subjects if within else self.subjects[self.within],
+                            self.eps if within else self.eps[self.within], self.memo_updates())
+        return self._inputs
 
     def memo_updates(self) -> dict[str, tuple[np.ndarray, np.ndarray]]:
         """Memo state of the released subjects only (held-back subjects keep their old state)."""
@@ -98,12 +114,6 @@ class LedgerCharges:
         return out
 
 
-def _equal(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """Element-wise equality of two S16 arrays (as words: numpy compares S16 strings slower)."""
-    return (np.ascontiguousarray(a).view("<u8").reshape(-1, 2) == np.ascontiguousarray(b).view("<u8").reshape(-1, 2)
-            ).all(axis=1)
-
-
 def _last_rows(inv: np.ndarray, sets: np.ndarray | None, n_subjects: int) -> tuple[np.ndarray, np.ndarray]:
     """(subjects that have a row that sets their state, the last such row of each)."""
     rows = np.arange(len(inv), dtype=np.int64)
@@ -116,22 +126,32 @@ def _last_rows(inv: np.ndarray, sets: np.ndarray | None, n_subjects: int) -> tup
 
 
 def charges_of(subject_rows: np.ndarray, eps_rows: Any, memo: Mapping[str, MemoColumn],
-               ledger: Any | None, cap: float | None) -> LedgerCharges:
+               ledger: Any | None, cap: float | None, row_pos: np.ndarray | None = None) -> LedgerCharges:
     """A release's charges from its rows' subject digests and eps (input order): one charge per
     distinct subject (the sum of its rows), checked against ``cap`` with what the ``ledger``
     (None: none yet) says each subject has spent.  A memoized column adds its ``eps`` to each row
     whose value differs from the ledger's last recorded one (``free_if_same``; a first release is
-    charged in full).  The ledger is searched once, for the distinct subjects in byte order."""
+    charged in full).  The ledger is searched once, for the distinct subjects in byte order; or,
+    with ``row_pos`` (each row's registry position from ``ledger.row_positions``, searched batch
+    by batch as the rows were read), not at all."""
     h = np.asarray(subject_rows)
-    uniq, inv = distinct(h)
+    if ledger is not None and row_pos is not None:
+        uniq, inv, pos = ledger.distinct_rows(h, row_pos)
+    else:
+        uniq, inv = distinct(h)
+        pos = ledger.positions(uniq) if ledger is not None and len(uniq) else np.full(len(uniq), -1, dtype=np.int64)
+        row_pos = None
     n = len(inv)
     eps_rows = np.array(np.broadcast_to(np.asarray(eps_rows, dtype=np.float64), (n,)))
-    pos = ledger.positions(uniq) if ledger is not None and len(uniq) else np.full(len(uniq), -1, dtype=np.int64)
     memo_out: dict[str, tuple[np.ndarray, np.ndarray]] = {}
     same_out: dict[str, np.ndarray] = {}
     for col, m in memo.items():
-        if m.free_if_same and ledger is not None:
-            same = _equal(m.tags, ledger.last_values(col, uniq, pos)[inv])
+        if m.free_if_same and ledger is not None and m.same is not None and row_pos is not None:
+            same = m.same
+        elif m.free_if_same and ledger is not None:
+            last = ledger.last_values(col, h, row_pos) if row_pos is not None else \
+                ledger.last_values(col, uniq, pos)[inv]
+            same = equal_digests(m.tags, last)
         else:
             same = np.zeros(n, dtype=bool)
         eps_rows += np.where(same, 0.0, m.eps)

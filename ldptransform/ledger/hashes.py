@@ -186,6 +186,13 @@ def memo_value_hashes(key: SecretKey, column: str, context: bytes, subject_h: np
     return _ecb(k, state).view(DIGEST).reshape(-1)
 
 
+def equal_digests(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Element-wise equality of two S16 arrays of one length, as two 64-bit words each (numpy
+    compares S16 strings, and reduces rows of two, several times slower)."""
+    x = np.ascontiguousarray(a).view("<u8").reshape(-1, 2) ^ np.ascontiguousarray(b).view("<u8").reshape(-1, 2)
+    return (x[:, 0] | x[:, 1]) == 0
+
+
 def prefix64(h: np.ndarray) -> np.ndarray:
     """The first 8 bytes of each digest as a big-endian u64: sorts like the digests' leading bytes."""
     return np.ascontiguousarray(np.ascontiguousarray(h).view(np.uint8).reshape(-1, DIGEST_BYTES)[:, :8]).view(

@@ -78,7 +78,7 @@ from ..io import private_dir
 from ..keys import check_nonce, shared_access
 from .charges import CAP_TOLERANCE, ChargePlan, aggregate, cap_plan, check_cap
 from .errors import BudgetExhaustedError, LedgerError
-from .hashes import DIGEST, DIGEST_BYTES, as_digests, prefix64, radix_order
+from .hashes import DIGEST, DIGEST_BYTES, as_digests, distinct, equal_digests, prefix64, radix_order
 from .schema import (APPLICATION_ID, NOT_UTF8, READONLY_ROLLBACK, SCHEMA, SCHEMA_VERSION, check_header, check_schema,
                      damaged, sqlite_failure)
 
@@ -107,6 +107,13 @@ def _spend_digest(ids: np.ndarray, eps: np.ndarray) -> bytes:
     return h.digest()
 
 
+def _spend_of(ids: np.ndarray, eps: np.ndarray) -> tuple[bytes, bytes, bytes]:
+    """A release's spend (each charged subject's registry index and eps, in any order) as stored:
+    (its digest, the indices' blob, the eps' blob), in registry order."""
+    ids_sorted, eps_sorted = _by_index(ids, eps)
+    return (_spend_digest(ids_sorted, eps_sorted), *_encode_spend(ids_sorted, eps_sorted))
+
+
 def _encode_spend(ids: np.ndarray, eps: np.ndarray) -> tuple[bytes, bytes]:
     """(sorted registry indices, eps) -> two zlib blobs: the indices delta-coded (mostly 1s in
     a dense release, so they compress to a few bits each), the eps as they are."""
@@ -125,10 +132,6 @@ def _decode_spend(ids_blob: bytes, eps_blob: bytes) -> tuple[np.ndarray, np.ndar
 
 
 _prefix64 = prefix64
-
-
-def _words(h: np.ndarray) -> np.ndarray:
-    return np.ascontiguousarray(h).view("<u8").reshape(-1, DIGEST_BYTES // 8)
 
 
 class _Index:
@@ -180,18 +183,107 @@ class _Index:
         if self.exact or len(qk) < 2 or np.all(qk[1:] >= qk[:-1]):  # already in order (a release's subjects)
             pos = np.searchsorted(self.keys, qk)
         else:
-            qo = np.argsort(qk, kind="stable")  # sorted queries: binary searches walk the table in order
+            # queries in order of their top 16 bits (one counting sort, linear time): the binary
+            # searches then walk the table nearly in order (uniform digests: about n / 65536 stored
+            # digests per bucket), as fast as for fully sorted queries; the answers do not depend on it
+            qo = np.argsort((qk >> np.uint64(48)).astype(np.uint16), kind="stable")
             pos = np.empty(len(q), dtype=np.int64)
             pos[qo] = np.searchsorted(self.keys, qk[qo])
         pos = np.minimum(pos, n - 1)
         cand = self.order[pos]
         hit = self.keys[pos] == qk
         if hit.all():  # every query's prefix is stored (a night of people already registered): no masks
-            same = (_words(self.digests[cand]) == _words(q)).all(axis=1)
+            same = equal_digests(self.digests[cand], q)
             return cand if same.all() else np.where(same, cand, -1)
-        hit[hit] = (_words(self.digests[cand[hit]]) == _words(q[hit])).all(axis=1)
+        hit[hit] = equal_digests(self.digests[cand[hit]], q[hit])
         out[hit] = cand[hit]
         return out
+
+
+def _prepare(snap: _Snapshot, first: bool, subject_hashes: Any, per_subject_eps: Any,
+             memo_updates: Mapping[str, tuple[Any, Any]] | None) -> PreparedRecord:
+    uniq, eps = aggregate(as_digests(subject_hashes), per_subject_eps)
+    marked = {col: {"memoized": True} for col in (memo_updates or {})}  # the record checks them against its meta
+    memo_pos = _memo_positions(marked, memo_updates, uniq)
+    idx = snap.find(uniq)
+    new, ids, added = _next_state(snap, idx, uniq, eps, memo_pos)
+    arrays = new.arrays()
+    return PreparedRecord(snap, first, (subject_hashes, per_subject_eps, memo_updates), uniq, eps, idx,
+                          [col for col, _, _ in memo_pos], new, ids, added, arrays, _state_digest(arrays),
+                          _spend_of(ids, eps))
+
+
+@dataclass
+class PreparedRecord:
+    """A record worked out ahead by ``Ledger.prepare_record`` on one checked state."""
+
+    snap: _Snapshot
+    first: bool                   # prepared on the empty state of a ledger not made yet
+    inputs: tuple[Any, Any, Any]  # (subject hashes, eps, memo updates) it was made of: matched by identity
+    uniq: np.ndarray
+    eps: np.ndarray
+    idx: np.ndarray
+    memo_cols: list[str]
+    new: _Snapshot
+    ids: np.ndarray
+    added: np.ndarray
+    arrays: dict[str, memoryview]
+    state_sha256: str
+    spend: tuple[bytes, bytes, bytes]
+
+    def made_of(self, subject_hashes: Any, per_subject_eps: Any, memo_updates: Any) -> bool:
+        a, b, c = self.inputs
+        return a is subject_hashes and b is per_subject_eps and c is memo_updates
+
+    def fits(self, snap: _Snapshot, memo_cols: list[str]) -> bool:
+        """Prepared on ``snap`` (the state under the record's lock), for these memoized columns."""
+        if memo_cols != self.memo_cols:
+            return False
+        if self.first:
+            return snap.head == GENESIS and len(snap.digests) == 0 and len(snap.totals) == 0 and not snap.states
+        return self.snap is snap
+
+
+def _distinct_known(index: _Index, h: np.ndarray, row_pos: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """``Ledger.distinct_rows`` on the registry ``index``: the subjects found (``row_pos`` >= 0)
+    in byte order by marking them in the registry's sorting order (linear time, no sort); the new
+    ones sorted among themselves and merged in.  Two different digests that share a 64-bit prefix
+    (about n^2 / 2^65) fall back to ``distinct`` of every row."""
+    n_reg = len(index.digests)
+    known = row_pos >= 0
+    mark = np.zeros(n_reg, dtype=bool)
+    mark[row_pos[known]] = True
+    sel = index.order[mark[index.order]]  # registry positions of the subjects found, in byte order
+    rank = np.empty(n_reg, dtype=np.int64)
+    if known.all():
+        rank[sel] = np.arange(len(sel), dtype=np.int64)
+        return index.digests[sel], rank[row_pos], sel
+    if index.exact:
+        return _distinct_fallback(index, h)
+    new_u, new_inv = distinct(h[~known])
+    kk, kn = _prefix64(index.digests[sel]), _prefix64(new_u)
+    at = np.searchsorted(kk, kn)
+    if len(kk) and (kk[np.minimum(at, len(kk) - 1)] == kn).any():  # a new digest shares a stored prefix
+        return _distinct_fallback(index, h)
+    # merged like np.insert(known, at, new): known i lands at i + #(at <= i), new j at at[j] + j
+    fk = np.arange(len(sel), dtype=np.int64) + np.searchsorted(at, np.arange(len(sel)), side="right")
+    fn = at + np.arange(len(new_u), dtype=np.int64)
+    total = len(sel) + len(new_u)
+    uniq = np.empty(total, dtype=DIGEST)
+    uniq[fk] = index.digests[sel]
+    uniq[fn] = new_u
+    pos = np.full(total, -1, dtype=np.int64)
+    pos[fk] = sel
+    rank[sel] = fk
+    inv = np.empty(len(h), dtype=np.int64)
+    inv[known] = rank[row_pos[known]]
+    inv[~known] = fn[new_inv]
+    return uniq, inv, pos
+
+
+def _distinct_fallback(index: _Index, h: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    uniq, inv = distinct(h)
+    return uniq, inv, index.find(uniq)
 
 
 @dataclass
@@ -254,8 +346,11 @@ def _state_digest(arrays: Mapping[str, bytes | memoryview]) -> str:
 
 def _state_fits(stored: Mapping[str, bytes | memoryview], expected: str) -> bool:
     """The stored arrays are the state of digest ``expected`` (a release that charged nobody
-    stores its empty registry and totals as no parts at all: either form fits)."""
-    return expected in (_state_digest(stored), _state_digest({_REGISTRY: b"", _TOTALS: b"", **stored}))
+    stores its empty registry and totals as no parts at all: either form fits; the second
+    digest is only taken when the first does not fit)."""
+    return _state_digest(stored) == expected or (
+        not (_REGISTRY in stored and _TOTALS in stored)
+        and _state_digest({_REGISTRY: b"", _TOTALS: b"", **stored}) == expected)
 
 
 def _row_hash(row: Mapping[str, Any], prev_hash: str, spend_digest: bytes) -> str:
@@ -414,7 +509,7 @@ def _same_digests(a: np.ndarray, b: np.ndarray) -> bool:
     """Two S16 arrays hold the same digests in the same order (no copies)."""
     if len(a) != len(b):
         return False
-    return a.ctypes.data == b.ctypes.data or bool((_words(a) == _words(b)).all())
+    return a.ctypes.data == b.ctypes.data or bool(equal_digests(a, b).all())
 
 
 def _next_state(snap: _Snapshot, idx: np.ndarray, uniq: np.ndarray, eps: np.ndarray,
@@ -612,8 +707,10 @@ class Ledger:
     @classmethod
     def _connect_once(cls, path: Path, readonly: bool) -> Ledger:
         # mode=rw: SQLite never creates the file (it may have gone since it was checked)
+        # a read-only ledger may be read by a release's worker thread (release/charges.py), one
+        # thread at a time: the release waits for the worker before it uses the ledger itself
         conn = sqlite3.connect(_uri(path, "ro" if readonly else "rw"), uri=True, timeout=BUSY_TIMEOUT_S,
-                               isolation_level=None)
+                               isolation_level=None, check_same_thread=not readonly)
         led = cls(path, conn, readonly)
         try:
             led._check()
@@ -753,6 +850,26 @@ class Ledger:
         snap.found = (h, pos)  # a record that reuses this state finds the same subjects without a search
         return pos
 
+    def row_positions(self, subject_hashes: Any) -> np.ndarray:
+        """Each digest's place in the registry (-1 for subjects never charged), for the digests of
+        input rows as they come (any order, repeats allowed); nothing is remembered for the record
+        (``distinct_rows`` does that, from these positions)."""
+        return self._read().index.find(as_digests(subject_hashes))
+
+    def distinct_rows(self, subject_hashes: Any, row_pos: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """``hashes.distinct`` of input rows' digests whose registry positions ``row_positions``
+        gave: (the distinct digests in byte order, the place of each row among them, the registry
+        position of each distinct digest, -1 if new).  The registry's stored sorting order gives
+        the byte order of the subjects already registered, so only the new ones are sorted (none
+        on a night of people already registered).  The positions are remembered for the record,
+        like ``positions``."""
+        h = as_digests(subject_hashes)
+        snap = self._read()
+        row_pos = np.asarray(row_pos, dtype=np.int64)
+        uniq, inv, pos = _distinct_known(snap.index, h, row_pos)
+        snap.found = (uniq, pos)
+        return uniq, inv, pos
+
     def last_values(self, column: str, subject_hashes: Any, positions: np.ndarray | None = None) -> np.ndarray:
         """Keyed hash of each subject's last value of a memoized column (all-zero digest if none).
         ``positions``: from ``positions`` for the same subjects (saves the search)."""
@@ -814,10 +931,30 @@ class Ledger:
             row = c.execute("SELECT value FROM meta WHERE name = 'key_fingerprint'").fetchone()
         self._bind_key(row[0] if row else None, key_fingerprint)
 
+    def prepare_record(self, subject_hashes: Any, per_subject_eps: Any,
+                       memo_updates: Mapping[str, tuple[Any, Any]] | None = None) -> PreparedRecord:
+        """Work out ahead, on the state this (read-only) ledger read and checked, what
+        ``record_release`` of these very arguments would store: the new registry, totals and memo
+        state, their digest and the encoded spend.  Reads nothing from the file (a release's worker
+        thread runs it while the release writes).  The record uses it only if, under its write lock,
+        the state is still that one (``checked``) and it is given the same objects."""
+        if self._snap is None:
+            raise LedgerError(f"ledger {self.path}: prepare_record needs a state read and checked first "
+                              "(check_state).")
+        return _prepare(self._snap, False, subject_hashes, per_subject_eps, memo_updates)
+
+    @staticmethod
+    def prepare_first_record(subject_hashes: Any, per_subject_eps: Any,
+                             memo_updates: Mapping[str, tuple[Any, Any]] | None = None) -> PreparedRecord:
+        """``prepare_record`` for the first release of a ledger not made yet (on the empty state):
+        used by a record that finds the ledger without any release under its lock."""
+        empty = _Snapshot(GENESIS, np.zeros(0, dtype=DIGEST), np.zeros(0), {})
+        return _prepare(empty, True, subject_hashes, per_subject_eps, memo_updates)
+
     def record_release(self, meta: ReleaseMeta | Mapping[str, Any], subject_hashes: Any, per_subject_eps: Any,
                        memo_updates: Mapping[str, tuple[Any, Any]] | None = None, *,
                        lifetime_epsilon: float | None = None, key_fingerprint: str | None = None,
-                       checked: Ledger | None = None) -> int:
+                       checked: Ledger | None = None, prepared: PreparedRecord | None = None) -> int:
         """Record one release in one transaction; returns its id.
 
         ``memo_updates``: memoized column -> (subject hashes, value hashes from ``value_hashes``).
@@ -826,10 +963,15 @@ class Ledger:
         go over it.  ``checked``: a ledger opened (read-only) on the same file whose current
         state was read and checked before (the release's pre-pass); if no job has written the
         file since (SQLite's data version of that connection, checked under the write lock) and
-        the head is the same, that state is used rather than read and checked again."""
+        the head is the same, that state is used rather than read and checked again.  ``prepared``
+        (``prepare_record`` of these very arguments on ``checked``): used when that state is the
+        one under the lock, so the record only writes."""
         row, cols = _release_row(meta, lifetime_epsilon)
         check_cap(lifetime_epsilon)
-        uniq, eps = aggregate(as_digests(subject_hashes), per_subject_eps)
+        ready = prepared if prepared is not None and prepared.made_of(subject_hashes, per_subject_eps,
+                                                                      memo_updates) else None
+        uniq, eps = (ready.uniq, ready.eps) if ready is not None else aggregate(as_digests(subject_hashes),
+                                                                                 per_subject_eps)
         memo_pos = _memo_positions(cols, memo_updates, uniq)
         if self.readonly:
             raise LedgerError(f"ledger {self.path} was opened read-only (for a check); open it with "
@@ -840,14 +982,23 @@ class Ledger:
             try:
                 # under the lock: nobody can record between this read and the commit
                 snap = self._unchanged(checked) or self._load()
-                idx = snap.find(uniq)
+                memo_cols = [col for col, _, _ in memo_pos]
+                if ready is not None and not ready.fits(snap, memo_cols):
+                    ready = None  # prepared on another state (a job recorded since): worked out again
+                idx = ready.idx if ready is not None else snap.find(uniq)
                 self._check_cap_locked(snap, idx, eps, lifetime_epsilon)
                 head, rid = self._head_for(key_fingerprint)
-                new, ids, added = _next_state(snap, idx, uniq, eps, memo_pos)
-                arrays = new.arrays()
+                if ready is not None:
+                    new, added, arrays = ready.new, ready.added, ready.arrays
+                    state_sha, spend = ready.state_sha256, ready.spend
+                else:
+                    new, ids, added = _next_state(snap, idx, uniq, eps, memo_pos)
+                    arrays = new.arrays()
+                    state_sha, spend = _state_digest(arrays), _spend_of(ids, eps)
+                self._write_state(arrays, added, memo_cols)
                 row = {**row, "id": rid, "time": row["time"] or _utc_now(), "subjects_charged": len(uniq),
-                       "state_sha256": _state_digest(arrays)}
-                row_hash = self._write_release(row, head, arrays, ids, eps, added, [col for col, _, _ in memo_pos])
+                       "state_sha256": state_sha}
+                row_hash = self._write_row(row, head, spend)
                 c.execute("COMMIT")
             except BaseException:
                 self._snap = None
@@ -919,17 +1070,22 @@ class Ledger:
                 c.execute("INSERT INTO meta VALUES ('key_fingerprint', ?)", (key_fingerprint,))
         return str(head), int(str(count)) + 1
 
-    def _write_release(self, row: dict[str, Any], head: str, arrays: Mapping[str, bytes | memoryview], ids: np.ndarray,
-                       eps: np.ndarray,
-                       added: np.ndarray, memo_cols: list[str]) -> str:
-        """Insert the release row and its spend, store the new state, move the head; returns the row hash."""
+    def _write_row(self, row: dict[str, Any], head: str, spend: tuple[bytes, bytes, bytes]) -> str:
+        """Insert the release row and its spend (``_spend_of``), move the head; returns the row hash."""
         c = self._conn
-        ids_sorted, eps_sorted = _by_index(ids, eps)
-        row_hash = _row_hash(row, head, _spend_digest(ids_sorted, eps_sorted))
+        spend_digest, ids_blob, eps_blob = spend
+        row_hash = _row_hash(row, head, spend_digest)
         c.execute("INSERT INTO releases VALUES (:id, :time, :policy_sha256, :extract_sha256, :nonce, :columns, "
                   ":subjects_charged, :lifetime_epsilon, :state_sha256, :prev_hash, :row_hash)",
                   {**row, "prev_hash": head, "row_hash": row_hash})
-        c.execute("INSERT INTO release_spend VALUES (?, ?, ?)", (row["id"], *_encode_spend(ids_sorted, eps_sorted)))
+        c.execute("INSERT INTO release_spend VALUES (?, ?, ?)", (row["id"], ids_blob, eps_blob))
+        c.executemany("UPDATE meta SET value = ? WHERE name = ?",
+                      [(row_hash, "head"), (str(row["id"]), "release_count")])
+        return row_hash
+
+    def _write_state(self, arrays: Mapping[str, bytes | memoryview], added: np.ndarray, memo_cols: list[str]) -> None:
+        """Store the new state: the registry's new subjects (appended) and its sorting order, the
+        totals and the memo state of the columns the release updates."""
         if len(added):
             self._append(_REGISTRY, _bytes_view(added))
             if _ORDER in arrays:
@@ -939,13 +1095,20 @@ class Ledger:
         self._put(_TOTALS, arrays[_TOTALS])
         for col in memo_cols:
             self._put(_STATE_PREFIX + col, arrays[_STATE_PREFIX + col])
-        c.executemany("UPDATE meta SET value = ? WHERE name = ?",
-                      [(row_hash, "head"), (str(row["id"]), "release_count")])
-        return row_hash
 
     def _put(self, name: str, data: bytes | memoryview) -> None:
-        """Replace a stored array (in parts of at most PART_BYTES)."""
+        """Replace a stored array (in parts of at most PART_BYTES).  When its stored parts have the
+        new parts' sizes (totals and memo state on a night without new subjects), they are
+        overwritten where they are (SQLite's incremental blob writes, in the same transaction):
+        no pages freed and allocated again."""
         c = self._conn
+        spans = [(o, min(len(data), o + PART_BYTES)) for o in range(0, len(data), PART_BYTES)]
+        stored = c.execute("SELECT rowid, length(data) FROM arrays WHERE name = ? ORDER BY part", (name,)).fetchall()
+        if stored and len(stored) == len(spans) and all(size == e - o for (_, size), (o, e) in zip(stored, spans)):
+            for (rowid, _), (o, e) in zip(stored, spans):
+                with c.blobopen("arrays", "data", rowid) as blob:
+                    blob.write(data[o:e])
+            return
         c.execute("DELETE FROM arrays WHERE name = ?", (name,))
         c.executemany("INSERT INTO arrays VALUES (?, ?, ?)",
                       [(name, i, data[o:o + PART_BYTES]) for i, o in enumerate(range(0, len(data), PART_BYTES))])

@@ -12,7 +12,7 @@ for every row, so nothing else changes with the choice or the batch size.
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
@@ -75,19 +75,26 @@ def rebuild_dictionary(values: pa.Array) -> pa.Array:
     return rebuilt if rebuilt.type == values.type else pc.cast(rebuilt, values.type)
 
 
+Observer = Callable[[int, Subjects, dict[str, np.ndarray], np.ndarray | None], None]
+
+
 def privatize_batch(batch: pa.RecordBatch, row0: int, plans: list[ColumnPlan], schema: pa.Schema,
                     sampler: ColumnSampler | None = None, subject_key: str | None = None,
-                    held: Held | None = None) -> pa.RecordBatch:
+                    held: Held | None = None, observe: Observer | None = None) -> pa.RecordBatch:
     """The pure batch kernel: raw batch rows [row0, row0+n) -> privatized batch.
 
     ``held`` (``--allow-partial``): per privatized column, True for the rows of people held back
     by the ledger whose cell must not use their data.  Those cells are reports of placeholder
     values drawn from the keyed stream (``placeholders``), independently of anyone's data; their
-    public cells are copied as any row's are (a public column is released in the clear)."""
+    public cells are copied as any row's are (a public column is released in the clear).
+    ``observe`` (with ``subject_key``): called once per batch with (row0, the subject column's
+    bytes and offsets, each memoized column's value codes, the sampler's reported rows or None):
+    what the ledger needs of the rows, without encoding them twice (release/charges.py)."""
     n = batch.num_rows
     arrays: list[pa.Array] = []
     reported = sampler.reported(row0, n) if sampler is not None else None
     subjects = subject_bytes(batch.column(subject_key), subject_key, row0) if subject_key is not None else None
+    codes: dict[str, np.ndarray] | None = {} if observe is not None else None
     for p in plans:
         values = batch.column(p.rc.name)
         if p.rc.type == "public":
@@ -95,7 +102,7 @@ def privatize_batch(batch: pa.RecordBatch, row0: int, plans: list[ColumnPlan], s
             check_text(values, p.rc.name, row0)
             arrays.append(values if values.type == p.fields[0].type else pc.cast(values, p.fields[0].type))
             continue
-        out = privatize_column(p, values, row0, subjects, None if held is None else held.get(p.rc.name))
+        out = privatize_column(p, values, row0, subjects, None if held is None else held.get(p.rc.name), codes)
         if reported is None:
             arrays.extend(out)
         else:
@@ -103,6 +110,9 @@ def privatize_batch(batch: pa.RecordBatch, row0: int, plans: list[ColumnPlan], s
             rep = reported[:, p.sample_index]
             p.reported += int(rep.sum())
             arrays.extend(blank_unreported(a, rep) for a in out)
+    if observe is not None:
+        assert subjects is not None and codes is not None, "observe needs the subject column (subject_key)"
+        observe(row0, subjects, codes, reported)
     return pa.RecordBatch.from_arrays(arrays, schema=schema)
 
 
@@ -129,9 +139,11 @@ def placeholders(p: ColumnPlan, row0: int, n: int, subjects: Subjects | None = N
 
 
 def privatize_column(p: ColumnPlan, values: pa.Array, row0: int, subjects: Subjects | None,
-                     held: np.ndarray | None = None) -> list[pa.Array]:
+                     held: np.ndarray | None = None, codes_out: dict[str, np.ndarray] | None = None
+                     ) -> list[pa.Array]:
     """One privatized column of a batch: encode, (memoized: round to the memo grid), randomize.
-    Rows marked ``held`` randomize placeholder values instead of their own."""
+    Rows marked ``held`` randomize placeholder values instead of their own.  ``codes_out``: a
+    memoized column's value codes are put there under its name."""
     x = encode(values, p, row0)
     if held is not None and held.any():
         x = np.where(held, placeholders(p, row0, len(x), subjects), x).astype(x.dtype)
@@ -143,6 +155,8 @@ def privatize_column(p: ColumnPlan, values: pa.Array, row0: int, subjects: Subje
         x, codes = memo_round(p, x, subjects)
     else:
         codes = x
+    if codes_out is not None:
+        codes_out[p.rc.name] = codes
     reports = randomize_rows(p, x, row0, subjects, codes)
     if p.rc.rerandomize_epsilon is not None:  # the second layer: fresh noise in every release (release/memo.py)
         reports = rerandomize_rows(p, reports, row0, MAX_WORDS_PER_CALL)

@@ -24,7 +24,7 @@ from ..io import BatchWriter, StagedFiles, _rebatch, sha256_file
 from ..manifest import ExtractInfo, PartInfo
 from ..random.bits import KeyedStream
 from .columns import ColumnDiagnostics, ColumnPlan
-from .kernel import ColumnSampler, Held, privatize_batch
+from .kernel import ColumnSampler, Held, Observer, privatize_batch
 from .options import ReleaseOptions
 from .shuffle import Runs, RunWriter, Window, row_tags, spilling, windows, write_ranks
 
@@ -45,6 +45,10 @@ class PartJob:
     dictionary: list[str] = field(default_factory=list)  # Parquet text columns read dictionary-encoded
     order: KeyedStream | None = None  # the keyed row-order stream (None: rows keep the input's order)
     public: frozenset[str] = frozenset()  # public columns (their dictionaries are rebuilt from released rows)
+    # the ledger's tap (local engine only: never sent to a worker): given every batch's subjects and
+    # memoized value codes by the kernel (privatize_batch's ``observe``)
+    observe: Observer | None = None
+    on_pass_done: Callable[[], None] | None = None  # the tap's: every row has been privatized (local engine)
 
 
 @dataclass
@@ -70,7 +74,7 @@ def write_part(job: PartJob, batches: Any, row0: int, held: Held | None, path: P
         for batch in batches:
             n = batch.num_rows
             out_batch = privatize_batch(batch, row0 + rows, plans, job.schema, job.sampler, job.subject_key,
-                                        _mask_slice(held, rows, n))
+                                        _mask_slice(held, rows, n), job.observe)
             writer.write(out_batch)
             released += out_batch.num_rows
             rows += n
@@ -113,7 +117,7 @@ def spill_rows(job: PartJob, batches: Any, row0: int, held: Held | None, folder:
         for batch in batches:
             n = batch.num_rows
             out_batch = privatize_batch(batch, row0 + rows, plans, job.schema, job.sampler, job.subject_key,
-                                        _mask_slice(held, rows, n))
+                                        _mask_slice(held, rows, n), job.observe)
             runs.add(out_batch, row_tags(job.order, row0 + rows, n))
             rows += n
             if on_batch is not None:
@@ -224,6 +228,7 @@ def run_parts_local(job: PartJob, src: Any, held: Held | None, folder: Path, fra
                 break
     if not results:  # a dataset without row groups: one empty part keeps the schema
         results.append(write_part(job, iter(()), 0, None, folder / PART_NAME.format(0)))
+    _pass_done(job)
     return results
 
 
@@ -275,6 +280,11 @@ def add_part_counts(plans: list[ColumnPlan], parts: list[PartResult] | list[Spil
                 p.reported += part.reported.get(p.rc.name, 0)
 
 
+def _pass_done(job: PartJob) -> None:
+    if job.on_pass_done is not None:
+        job.on_pass_done()
+
+
 def _batches(src: Any, job: PartJob) -> Iterator[pa.RecordBatch]:
     if job.dictionary:
         return src.batches(job.read_cols, job.batch_rows, dictionary=job.dictionary)
@@ -289,12 +299,13 @@ def _write_file(job: PartJob, src: Any, held: Held | None, opts: ReleaseOptions,
     try:
         for batch in _batches(src, job):
             out_batch = privatize_batch(batch, rows, job.plans, job.schema, job.sampler, job.subject_key,
-                                        _mask_slice(held, rows, batch.num_rows))
+                                        _mask_slice(held, rows, batch.num_rows), job.observe)
             writer.write(out_batch)
             rows += batch.num_rows
             staged.check()  # stop between batches on SIGTERM/SIGINT
             if on_progress is not None:
                 on_progress(batch.num_rows)
+        _pass_done(job)
     finally:
         writer.close()
     digest, size = sha256_file(tmp)
@@ -318,6 +329,7 @@ def _write_shuffled(job: PartJob, src: Any, held: Held | None, opts: ReleaseOpti
             os.mkdir(tmp, 0o755)
             return run_shuffled(job, src, held, opts, tmp, folder, staged, on_progress)
         spilled = spill_rows(job, _batches(src, job), 0, held, folder, "run", in_memory=True, on_batch=tick)
+        _pass_done(job)  # the ledger's charges are worked out beside the second pass
         add_part_counts(job.plans, [spilled])
         runs, n = spilled.runs, spilled.input_rows
         wins = windows(runs)

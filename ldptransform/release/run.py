@@ -7,7 +7,7 @@ from __future__ import annotations
 import json
 import time
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -229,12 +229,21 @@ def _charged_write(job: PartJob, src: Any, charges: LedgerCharges | None, fold: 
     nothing reaches a destination); else ``charges`` are the pre-pass's, or None without a ledger."""
     tap, led = None, None
     if fold:
-        led = open_checked(opts, key)  # a damaged ledger or another key's: refused before the work
-        tap = ChargeTap(job.plans, policy, key, sampler)
+        # another key's ledger: refused before the work; a damaged one by the tap's worker, which
+        # checks the stored state beside the writing pass
+        led = open_checked(opts, key, state=False)
+        tap = ChargeTap(job.plans, policy, key, sampler, led, opts.lifetime_epsilon)
     try:
-        written = write_extract(job, src if tap is None else TappedSource(src, tap), rows_held(charges, job.plans),
-                                opts, staged, on_progress)
+        feed = src
+        if tap is not None and tap.kernel_fed:  # the kernel hands the tap its subjects and value codes
+            job = replace(job, observe=tap.observe, on_pass_done=tap.pass_done)
+        elif tap is not None:  # the tap reads the subject column with the pass's own batches
+            feed = TappedSource(src, tap)
+            job = replace(job, on_pass_done=tap.pass_done)
+        written = write_extract(job, feed, rows_held(charges, job.plans), opts, staged, on_progress)
     except BaseException:
+        if tap is not None:
+            tap.close()  # the worker is done with the ledger before it is closed
         if led is not None:
             led.close()
         raise
