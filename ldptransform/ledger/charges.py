@@ -166,9 +166,12 @@ def charges_of(subject_rows: np.ndarray, eps_rows: Any, memo: Mapping[str, MemoC
     eps_u = np.bincount(inv, weights=eps_rows, minlength=len(uniq)) if n else np.zeros(0)
     if cap is not None:
         known = pos >= 0
-        spent = np.zeros(len(uniq))
-        if ledger is not None and known.any():
-            spent[known] = ledger.spend_totals()[pos[known]]
+        if ledger is not None and len(pos) and known.all():  # everyone registered: no masks
+            spent = ledger.spend_totals()[pos]
+        else:
+            spent = np.zeros(len(uniq))
+            if ledger is not None and known.any():
+                spent[known] = ledger.spend_totals()[pos[known]]
         over, overshoot, within = cap_plan(spent, eps_u, cap)
     else:
         within, over, overshoot = np.ones(len(uniq), dtype=bool), 0, 0.0

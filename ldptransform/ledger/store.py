@@ -58,6 +58,7 @@ from __future__ import annotations
 
 import contextlib
 import errno
+import functools
 import hashlib
 import json
 import math
@@ -295,12 +296,14 @@ class _Snapshot:
     totals: np.ndarray
     states: dict[str, np.ndarray]
     order: np.ndarray | None = None  # the permutation that sorts the registry's 64-bit prefixes
-    index: _Index = field(init=False, repr=False)
     found: tuple[np.ndarray, np.ndarray] | None = field(init=False, repr=False, default=None)
     _padded: dict[str, np.ndarray] = field(init=False, repr=False, default_factory=dict)
 
-    def __post_init__(self) -> None:
-        self.index = _Index(self.digests, self.order)
+    @functools.cached_property
+    def index(self) -> _Index:
+        """The registry's search index, built when first needed (a state read to be checked builds
+        it at once, ``Ledger._load``; the state a record leaves may never be searched)."""
+        return _Index(self.digests, self.order)
 
     def find(self, q: np.ndarray) -> np.ndarray:
         """``index.find``, or the answer already found for the very same array of digests."""
@@ -805,6 +808,7 @@ class Ledger:
         order = np.frombuffer(stored[_ORDER], dtype="<u4") if _ORDER in stored else None
         self._snap = _Snapshot(head, np.frombuffer(reg, dtype=DIGEST), np.frombuffer(tot, dtype="<f8").astype(
             np.float64), states, order)
+        _ = self._snap.index  # built here, with the check (in the release's worker thread)
         return self._snap
 
     def _check_state_fits(self, stored: Mapping[str, bytes]) -> None:
