@@ -68,6 +68,7 @@ import sqlite3
 import stat
 import zlib
 from collections.abc import Iterator, Mapping
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
@@ -207,11 +208,26 @@ def _prepare(snap: _Snapshot, first: bool, subject_hashes: Any, per_subject_eps:
     marked = {col: {"memoized": True} for col in (memo_updates or {})}  # the record checks them against its meta
     memo_pos = _memo_positions(marked, memo_updates, uniq)
     idx = snap.find(uniq)
-    new, ids, added = _next_state(snap, idx, uniq, eps, memo_pos)
-    arrays = new.arrays()
-    return PreparedRecord(snap, first, (subject_hashes, per_subject_eps, memo_updates), uniq, eps, idx,
-                          [col for col, _, _ in memo_pos], new, ids, added, arrays, _state_digest(arrays),
-                          _spend_of(ids, eps))
+    ids = _registry_ids(idx, len(snap.digests))
+    # the spend's encoding (zlib and hashlib leave Python's lock) beside the new state and its digest
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="ldpt-ledger-spend") as pool:
+        spend = pool.submit(_spend_of, ids, eps)
+        new, _, added = _next_state(snap, idx, uniq, eps, memo_pos)
+        arrays = new.arrays()
+        state_sha = _state_digest(arrays)
+        return PreparedRecord(snap, first, (subject_hashes, per_subject_eps, memo_updates), uniq, eps, idx,
+                              [col for col, _, _ in memo_pos], new, ids, added, arrays, state_sha, spend.result())
+
+
+def _registry_ids(idx: np.ndarray, n_old: int) -> np.ndarray:
+    """Each charged subject's registry index after the release: its place (``idx``), or for a new
+    subject (-1) the next free index, in the order given (``_next_state`` appends them so)."""
+    known = idx >= 0
+    if known.all():
+        return idx
+    ids = idx.copy()
+    ids[~known] = n_old + np.arange(int((~known).sum()))
+    return ids
 
 
 @dataclass
@@ -521,8 +537,7 @@ def _next_state(snap: _Snapshot, idx: np.ndarray, uniq: np.ndarray, eps: np.ndar
     and memo state updated.  Returns (new state, registry index of each charged subject, added digests)."""
     known = idx >= 0
     n_old, n_new = len(snap.digests), int((~known).sum())
-    ids = idx.copy()
-    ids[~known] = n_old + np.arange(n_new)
+    ids = _registry_ids(idx, n_old)
     added = uniq[~known]
     totals = np.concatenate([snap.totals, np.zeros(n_new)])
     totals[ids] += eps
