@@ -38,7 +38,9 @@ state deleted, shortened or edited after the last release is refused as damage r
 starting people from the wrong spend.  A release's record uses the state its pre-pass read and
 checked (on a read-only connection kept open for it) when nothing has been committed to the
 file since: SQLite's data version of that connection, read under the write lock, tells, as
-does the head hash; otherwise it reads and checks the state again under the lock.  Someone who
+does the head hash; otherwise it reads and checks the state again under the lock.  A release may
+also hand the record the new state worked out ahead on that checked state (``prepare_record``, in
+the release's worker thread); it is used only on that very state, else worked out again.  Someone who
 can write the file can rebuild the whole chain, so keep a copy of the head hash (``show``
 prints it) somewhere else to anchor it.
 
