@@ -20,6 +20,7 @@ from .memory import InMemoryRelease, privatize_to_memory
 from .perrow import read_estimates
 from .policy import load_policy, parse_policy
 from .release import privatize
+from .report import release_report
 from .validate import validate
 
 __all__ = [
@@ -35,5 +36,6 @@ __all__ = [
            "privatize",
            "privatize_to_memory",
            "read_estimates",
+           "release_report",
            "validate",
 ]

@@ -1129,6 +1129,54 @@ def validate(
         raise typer.Exit(code=ExitCode.OK if rep.ok else ExitCode.CHECK_FAILED)
 
 
+# -- report ---------------------------------------------------------------------------------
+
+@app.command()
+def report(
+    extract: Path = typer.Argument(..., help="Extract (.csv or .parquet, or a dataset folder) written by privatize."),
+    out: Path = typer.Option(..., "--out", help="The report to write (NAME.html: one self-contained file)."),
+    manifest: Path | None = typer.Option(None, "--manifest", help="Manifest [default: beside the extract]."),
+    crosstab: list[str] | None = typer.Option(None, "--crosstab", help="A cross-tab of two categorical columns "
+                                              "drawn as heat maps, e.g. site:role (repeatable)."),
+    confidence: float = typer.Option(0.95, "--confidence", help="Confidence level of the intervals."),
+    raw: Path | None = typer.Option(None, "--raw", help="Raw input (steward only): adds the truth against every "
+                                    "estimate; the report is then the steward's, refused beside the partner's files."),
+    key: Path | None = typer.Option(None, "--key", help="Secret key (steward only), with --raw."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing report file."),
+    log_format: LogFormat = typer.Option(LogFormat.text, _LOG_OPTION, help=_LOG_HELP),
+) -> None:
+    """Write a release report people can read: one HTML file, no network needed.
+
+    The privacy statement in plain words, per column its estimand and estimates with interval
+    bars, cross-tabs as heat maps, and the quality checks (pass, warn, fail). With --raw and
+    --key: the steward's report, with the truth beside the estimates (steward only).
+
+    Example: ldpt report extract.parquet --out report.html --crosstab site:role
+    """
+    from .estimate import parse_pair
+    from .keys import load_key
+    from .report import release_report
+
+    inputs = {"extract": extract, "manifest": manifest, "raw": raw, "key": key, "out": out}
+    with _run_log("report", log_format, inputs) as log:
+        with _user_errors():
+            if (raw is None) != (key is None):
+                from .errors import UsageError
+
+                raise UsageError("--raw and --key go together: the steward's report needs both the raw input and "
+                                 "the secret key (steward only).")
+            k = load_key(key) if key is not None else None
+            pairs = [parse_pair(x, "--crosstab") for x in crosstab or []]
+            res = release_report(extract, out, manifest, crosstabs=pairs, confidence=confidence, raw=raw, key=k,
+                                 overwrite=overwrite)
+        log.result.update(res.to_dict())
+        who = "the steward's report (STEWARD ONLY: holds true values)" if res.steward else "the partner's report"
+        out_console.print(f"wrote {who}: {res.path} ({res.columns} columns, {res.crosstabs} cross-tabs, "
+                          f"{res.figures} plots); quality checks: " + ("all passed" if res.checks_ok else "a check "
+                          "FAILED (see the report)"), markup=False)
+        raise typer.Exit(code=ExitCode.OK if res.checks_ok else ExitCode.CHECK_FAILED)
+
+
 # -- sign -----------------------------------------------------------------------------------
 
 @app.command()
