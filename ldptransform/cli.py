@@ -460,7 +460,8 @@ class TableJsonCsv(StrEnum):
 # the library names its options as Python parameters; these commands name them by their flags
 _PRIVATIZE_FLAGS = {"batch_rows": "--batch-rows", "fragment_rows": "--part-rows", "engine": "--engine",
                     "scheduler": "--scheduler", "nonce": "--nonce", "out": "--out", "ledger_path": "--ledger",
-                    "allow_partial": "--allow-partial", "idempotent": "--idempotent", "overwrite": "--overwrite"}
+                    "allow_partial": "--allow-partial", "idempotent": "--idempotent", "overwrite": "--overwrite",
+                    "delimiter": "--delimiter"}
 
 
 # an operating-system error in plain words, and what to do about it
@@ -651,12 +652,13 @@ def _csv_extract_caution(manifest: Any) -> str:
 
 @app.command()
 def privatize(
-    input: str = typer.Argument(..., help="Raw table: a .csv or .parquet file, or a Parquet dataset (a folder, "
-                                "or an object-store URI such as s3://bucket/prefix)."),
+    input: str = typer.Argument(..., help="Raw table: a .csv, .tsv or .parquet file (text may be compressed: "
+                                ".csv.gz, .csv.zst), or a Parquet dataset (a folder, or an object-store URI such as "
+                                "s3://bucket/prefix)."),
     policy: Path = typer.Option(..., "--policy", help="Policy file (YAML or JSON)."),
     key: Path = typer.Option(..., "--key", help="Secret key file made by `ldpt key new`."),
     out: Path = typer.Option(..., "--out", help="Extract to write: a .csv or .parquet file, or a folder path "
-                             "(no extension) for a Parquet dataset of parts."),
+                             "(no extension) for a Parquet dataset of parts; missing folders are created."),
     manifest: Path | None = typer.Option(None, "--manifest",
                                          help="Manifest path [default: OUT with .manifest.json]."),
     diagnostics: Path | None = typer.Option(
@@ -689,6 +691,9 @@ def privatize(
                                     "at OUT (same input, policy, key and nonce record) is a no-op, exit 0, nothing "
                                     "charged or written; a different one there is refused, exit 5. Not with "
                                     "--overwrite."),
+    delimiter: str | None = typer.Option(None, "--delimiter", help="The delimiter of a CSV/TSV input: one "
+                                         "character, or the word tab; wins over the policy's input.csv_delimiter "
+                                         "[default: the policy's; else a tab for .tsv/.tab, a comma otherwise]."),
     log_format: LogFormat = typer.Option(LogFormat.text, _LOG_OPTION, help=_LOG_HELP),
 ) -> None:
     """Randomize INPUT column by column under POLICY into OUT, plus a public manifest.
@@ -719,7 +724,7 @@ def privatize(
                 res = run(source, lp, k, out, manifest_path=manifest, diagnostics_path=diagnostics,
                           batch_rows=batch_rows, overwrite=overwrite, nonce=nonce, on_progress=prog.add_rows,
                           ledger_path=ledger, allow_partial=allow_partial, engine=engine.value, scheduler=scheduler,
-                          fragment_rows=part_rows, idempotent=idempotent)
+                          fragment_rows=part_rows, idempotent=idempotent, delimiter=delimiter)
         finally:
             csv_bytes_read.reset(token)
         already = res.already_published
@@ -727,12 +732,22 @@ def privatize(
         _privatize_summary(log, res, already, signed)
 
 
+def _is_text_input(path: Path) -> bool:
+    """A CSV/TSV file (also compressed: its progress is by the file's bytes read)."""
+    from .io import input_kind
+
+    try:
+        return input_kind(path).format == "csv"
+    except LdptError:
+        return False
+
+
 def _release_progress(log: RunLog, source: str | Path, lp: Any, show: bool) -> _Progress:
     """The release's progress: a CSV file by the bytes read in each pass (its size known), a
     Parquet file or dataset by the rows written (its row count known), else by rows."""
     from .io import TableSource
 
-    if isinstance(source, Path) and source.suffix.lower() == ".csv" and source.is_file():
+    if isinstance(source, Path) and _is_text_input(source) and source.is_file():
         return _Progress(log, "privatizing", source.stat().st_size, "bytes", show=show)
     total = None
     if (show and sys.stderr.isatty()) or log.json:

@@ -50,20 +50,164 @@ def file_format(path: Path, role: str) -> FileFormat:
     return fmt
 
 
+# an input's text may be compressed: the codec by the name's last extension (data.csv.gz, data.tsv.zst)
+COMPRESSIONS = {".gz": "gzip", ".zst": "zstd"}
+_CODEC_TOOLS = {"gzip": "gzip", "zstd": "zstd"}
+TAB_SUFFIXES = frozenset({".tsv", ".tab"})  # text read as tab-separated without a delimiter being named
+DEFAULT_DELIMITER = ","
+
+
+class InputKind(NamedTuple):
+    """What an input file's name says of it: its format, the codec its text is compressed with
+    (None: not compressed) and whether it is named as tab-separated text (.tsv, .tab)."""
+
+    format: FileFormat
+    compression: str | None
+    tab: bool
+
+
+def input_kind(path: Path | str) -> InputKind:
+    """The ``InputKind`` of an input file by its name: .csv, .tsv or .tab text, optionally
+    compressed (.gz, .zst), or .parquet/.pq; a user error for any other name."""
+    name = Path(path).name.lower()
+    compression = None
+    for ext, codec in COMPRESSIONS.items():
+        if name.endswith(ext):
+            compression, name = codec, name[: -len(ext)]
+    suffix = Path(name).suffix if name else ""
+    if suffix in TAB_SUFFIXES:
+        kind = InputKind("csv", compression, True)
+    elif FORMATS.get(suffix) == "csv":
+        kind = InputKind("csv", compression, False)
+    elif FORMATS.get(suffix) == "parquet" and compression is None:
+        return InputKind("parquet", None, False)
+    elif FORMATS.get(suffix) == "parquet":
+        raise UsageError(f"input {path}: a Parquet file is compressed inside already and is read as it is, not "
+                         f"from a {Path(path).suffix} file. Decompress it and give the .parquet file.")
+    else:
+        raise UsageError(f"input {path}: the file name must end in .csv, .tsv or .tab (text, which may also be "
+                         "compressed: .csv.gz, .csv.zst, .tsv.gz, .tsv.zst), or in .parquet (the format is chosen "
+                         "by extension). Rename the file to say what it holds.")
+    if compression is not None and not pa.Codec.is_available(compression):
+        raise UsageError(f"input {path}: this installation cannot decompress {compression} (the pyarrow it runs on "
+                         f"was built without it). Decompress the file first (`{_CODEC_TOOLS[compression]} -d -k "
+                         f"{path}`) and release the plain file.")
+    return kind
+
+
+def delimiter_problem(delimiter: str) -> str | None:
+    """What is wrong with a CSV delimiter (None: nothing): it must be one character, and neither
+    the quote nor a line break (those mark quoted cells and the ends of rows)."""
+    if len(delimiter) != 1:
+        return (f"must be exactly one character, not {len(delimiter)} (for a tab: --delimiter tab, or \"\\t\" in "
+                "double quotes in a YAML policy)")
+    if delimiter in "\"\r\n":
+        return "cannot be the double quote or a line break: they mark quoted cells and the ends of rows"
+    return None
+
+
+def delimiter_option(value: str) -> str:
+    """A delimiter as a command line or caller names it: the word ``tab`` (or the two characters
+    backslash-t) stands for the tab character; anything else is itself."""
+    return "\t" if value.lower() in ("tab", "\\t") else value
+
+
+def resolve_delimiter(path: Path | str, csv_delimiter: str = DEFAULT_DELIMITER,
+                      delimiter: str | None = None) -> str:
+    """The delimiter a text input is read with: ``delimiter`` (a command line's or caller's
+    explicit choice) if given; else the policy's ``csv_delimiter`` when it names one other than the
+    default comma; else a tab for a file named .tsv or .tab (also compressed), else the comma."""
+    if delimiter is not None:
+        return delimiter
+    if csv_delimiter != DEFAULT_DELIMITER:
+        return csv_delimiter
+    try:
+        return "\t" if input_kind(path).tab else DEFAULT_DELIMITER
+    except UsageError:
+        return DEFAULT_DELIMITER
+
+
+def open_input_bytes(path: Path, compression: str | None = None) -> Any:
+    """A text input's bytes as a binary stream (``read(n)``), decompressed when ``compression``
+    names a codec; for the error paths that look into the file again."""
+    if compression is None:
+        return open(path, "rb")  # noqa: SIM115 (the caller closes it)
+    return pa.input_stream(str(path), compression=compression)
+
+
+def _skip_to(f: Any, offset: int, chunk: int = 1 << 22) -> None:
+    """Move a freshly opened stream to ``offset`` (seeking where it can, else reading past)."""
+    if getattr(f, "seekable", lambda: False)():
+        f.seek(offset)
+        return
+    left = offset
+    while left > 0:
+        got = f.read(min(chunk, left))
+        if not got:
+            return
+        left -= len(got)
+
+
+def _decompress_problem(err: BaseException) -> str | None:
+    """What a decompressor's error says of the file, in words (None: not such an error)."""
+    text = str(err).lower()
+    if "truncated" in text:
+        return "it ends in the middle of its compressed data: it was cut short"
+    if "header check" in text or "unknown frame" in text or "magic" in text or "unknown header" in text:
+        return _NOT_COMPRESSED
+    if any(w in text for w in ("inflate", "decompress", "zlib", "zstd", "gzip", "data check", "corrupt", "frame")):
+        return "its compressed data is damaged"
+    return None
+
+
+_NOT_COMPRESSED = "it does not hold data in that format"
+
+
+def compressed_message(path: Path, compression: str, what: str) -> str:
+    tool = _CODEC_TOOLS.get(compression, compression)
+    if what == _NOT_COMPRESSED:
+        fix = (f"If the file is not compressed, rename it without its {Path(path).suffix} ending; if it was compressed "
+               f"with another program, decompress it and release the plain file (`{tool} -t {path}` checks it).")
+    else:
+        fix = (f"The file may have been damaged or cut short by an interrupted copy or download: check it with `{tool} "
+               f"-t {path}`, copy or compress it again, and run the release again.")
+    return f"input file {path} cannot be decompressed as {compression} ({what}). Nothing was written. {fix}"
+
+
+def check_decompresses(path: Path, compression: str, chunk: int = 1 << 22) -> str | None:
+    """Read a compressed input through (streaming, the error path): None if it decompresses to
+    its end, else the refusal (``compressed_message``)."""
+    try:
+        with open_input_bytes(path, compression) as f:
+            while f.read(chunk):
+                pass
+    except (pa.ArrowException, OSError) as err:
+        return compressed_message(path, compression, _decompress_problem(err) or "its compressed data is damaged")
+    return None
+
+
 # -- reading ------------------------------------------------------------------------------
 
 class TableSource:
     """A CSV or Parquet file, or a Parquet dataset (a folder or object-store URI of Parquet
-    files, see dataset.py), read as a stream of record batches."""
+    files, see dataset.py), read as a stream of record batches.
+
+    Text input may be tab-separated (named .tsv or .tab, or another delimiter: see
+    ``resolve_delimiter``; ``delimiter`` is an explicit choice, which wins over the policy's
+    ``csv_delimiter`` and the file's name) and compressed (.gz, .zst: see ``input_kind``); a
+    compressed file is decompressed as it streams, and its digest and size are the file's own
+    (compressed) bytes."""
 
     def __init__(self, path: Path | str, *, csv_null_values: list[str] | None = None,
-                 csv_delimiter: str = ",", string_columns: bool = True) -> None:
+                 csv_delimiter: str = DEFAULT_DELIMITER, string_columns: bool = True,
+                 delimiter: str | None = None) -> None:
         from .dataset import ParquetDataset, is_uri
 
         self.location = str(path)
         self.path = Path(path) if not is_uri(path) else Path(str(path).split("://", 1)[1])
         self._nulls = csv_null_values if csv_null_values is not None else [""]
-        self._delim = csv_delimiter
+        self._delim = resolve_delimiter(self.path, csv_delimiter, delimiter)
+        self.compression: str | None = None
         self.dataset: ParquetDataset | None = None
         self.num_rows: int | None = None
         self.content_sha256: str | None = None  # CSV: SHA-256 of the bytes its first full pass read
@@ -76,7 +220,14 @@ class TableSource:
             self.size_bytes = self.dataset.size_bytes
             self._check_names()
             return
-        self.format = file_format(self.path, "input")
+        kind = input_kind(self.path)
+        self.format, self.compression = kind.format, kind.compression
+        if self.format == "csv":
+            problem = delimiter_problem(self._delim)
+            if problem is not None:
+                named = ("the delimiter given (--delimiter)" if delimiter is not None else
+                         "the policy's input.csv_delimiter")
+                raise UsageError(f"input {self.path}: {named} {self._delim!r} {problem}. Name another delimiter.")
         if not self.path.exists():
             raise InputFileError(f"input file {self.path} does not exist. Check the path.")
         if not self.path.is_file():
@@ -91,8 +242,8 @@ class TableSource:
                 self.schema = self._pf.schema_arrow
                 self.num_rows = self._pf.metadata.num_rows
             else:
-                sniff_csv_encoding(self.path)
-                with self._open_csv(None, {}) as reader:
+                sniff_csv_encoding(self.path, compression=self.compression)
+                with self._open_csv(None, {}, self._plain_stream()) as reader:
                     self.schema = reader.schema
                     self.schema.names  # noqa: B018  (names are decoded here: a header that is not UTF-8 fails now)
         except UnicodeDecodeError:
@@ -130,6 +281,15 @@ class TableSource:
     def column_names(self) -> list[str]:
         return list(self.schema.names)
 
+    @property
+    def delimiter(self) -> str:
+        """The delimiter a text input is read with (``resolve_delimiter``)."""
+        return self._delim
+
+    def _plain_stream(self) -> Any:
+        """A compressed text input's decompressed bytes (None for a plain file: the reader opens it)."""
+        return None if self.compression is None else open_input_bytes(self.path, self.compression)
+
     def _open_csv(self, columns: list[str] | None, types: dict[str, pa.DataType],
                   file: Any = None) -> Any:
         read = pacsv.ReadOptions(block_size=CSV_BLOCK_BYTES, use_threads=True)
@@ -143,11 +303,17 @@ class TableSource:
         """The message for a CSV the reader refused: an encoding problem and a cell too large for
         the reader are located in the file (line, data row, column); anything else keeps the
         reader's diagnosis (without the data it quotes)."""
+        if self.compression is not None:  # a damaged file first: the paths below read it through again
+            problem = _decompress_problem(err)
+            refusal = check_decompresses(self.path, self.compression) if problem is None else \
+                compressed_message(self.path, self.compression, problem)
+            if refusal is not None:
+                return refusal
         text = str(err).lower()
         if "utf8" in text or "utf-8" in text:
-            return encoding_message(self.path, *find_invalid_utf8(self.path, self._delim, columns))
+            return encoding_message(self.path, *find_invalid_utf8(self.path, self._delim, columns, self.compression))
         if "straddl" in text or "block size" in text:
-            return large_cell_message(self.path, self._delim, rows_done)
+            return large_cell_message(self.path, self._delim, rows_done, compression=self.compression)
         m = re.search(r"Expected (\d+) columns?, got (\d+)", str(err))
         bad = self._bad_row() if m else None
         if m and bad is not None:
@@ -174,8 +340,9 @@ class TableSource:
         parse = pacsv.ParseOptions(delimiter=self._delim, newlines_in_values=True, invalid_row_handler=handler)
         conv = pacsv.ConvertOptions(include_columns=[], null_values=self._nulls)
         try:
-            with contextlib.closing(pacsv.open_csv(self.path, read_options=read, parse_options=parse,
-                                                   convert_options=conv)) as reader:
+            plain = self._plain_stream()
+            with contextlib.closing(pacsv.open_csv(self.path if plain is None else plain, read_options=read,
+                                                   parse_options=parse, convert_options=conv)) as reader:
                 for _ in reader:
                     pass
         except (pa.ArrowException, OSError):
@@ -256,7 +423,8 @@ class TableSource:
         try:
             types = {c: csv_types.get(c, pa.string()) for c in columns}
             with DigestingFile(self.path) as raw, pa.PythonFile(raw, mode="r") as f, \
-                    self._open_csv(columns, types, f) as reader:
+                    self._open_csv(columns, types, f if self.compression is None else
+                                   pa.CompressedInputStream(f, self.compression)) as reader:
                 for b in reader:
                     rows_done += b.num_rows
                     yield b
@@ -375,10 +543,11 @@ _UTF16_HINT = ("CSV input must be UTF-8: convert it (for example save it as \"CS
                "or run `iconv -f {enc} -t UTF-8 {path} > converted.csv`) and release the converted file.")
 
 
-def sniff_csv_encoding(path: Path, size: int = 4096) -> None:
-    """Refuse a CSV file that is not UTF-8 text by its first ``size`` bytes: a UTF-16 or UTF-32
-    byte-order mark, or the zero bytes between characters of UTF-16 text without a mark."""
-    with open(path, "rb") as f:
+def sniff_csv_encoding(path: Path, size: int = 4096, compression: str | None = None) -> None:
+    """Refuse a CSV file that is not UTF-8 text by its first ``size`` bytes (decompressed): a
+    UTF-16 or UTF-32 byte-order mark, or the zero bytes between characters of UTF-16 text
+    without a mark."""
+    with open_input_bytes(path, compression) as f:
         head = f.read(size)
     boms = ((b"\xff\xfe\x00\x00", "UTF-32"), (b"\x00\x00\xfe\xff", "UTF-32"), (b"\xff\xfe", "UTF-16"),
             (b"\xfe\xff", "UTF-16"))
@@ -398,15 +567,15 @@ def sniff_csv_encoding(path: Path, size: int = 4096) -> None:
                         + _UTF16_HINT.format(enc=enc, path=path))
 
 
-def find_invalid_utf8(path: Path, delimiter: str, columns: list[str] | None,
+def find_invalid_utf8(path: Path, delimiter: str, columns: list[str] | None, compression: str | None = None,
                       chunk: int = 1 << 22) -> tuple[int, int | None, str | None]:
     """Where a CSV file first holds bytes that are not UTF-8 in a column the reader reads
     (``columns``; None: any): (line number, data row or None when a quoted cell above may hold a
     line break, column name or None); line 0 when none is found.  Streams the file in chunks
     (the error path only); each chunk is decoded by the codec, in C."""
-    header = _header(path, delimiter)
+    header = _header(path, delimiter, compression)
     line, quotes, carry = 1, 0, b""
-    with open(path, "rb") as f:
+    with open_input_bytes(path, compression) as f:
         while True:
             block = f.read(chunk)
             data = carry + block  # starts at the beginning of a line
@@ -437,11 +606,13 @@ def find_invalid_utf8(path: Path, delimiter: str, columns: list[str] | None,
             carry = data[cut:]
 
 
-def _header(path: Path, delimiter: str) -> list[str] | None:
+def _header(path: Path, delimiter: str, compression: str | None = None) -> list[str] | None:
     import csv
 
-    with open(path, "rb") as f:
-        first = f.readline(CSV_BLOCK_BYTES)
+    with open_input_bytes(path, compression) as f:
+        head = f.read(CSV_BLOCK_BYTES)
+    end = head.find(b"\n")
+    first = head if end < 0 else head[: end + 1]
     try:
         return next(csv.reader([first.decode("utf-8-sig").rstrip("\r\n")], delimiter=delimiter))
     except (UnicodeDecodeError, StopIteration, csv.Error):
@@ -490,10 +661,10 @@ def _long_line(f: Any, limit: int, chunk: int) -> tuple[int, int] | None:
 
 
 def _longest_field(f: Any, begin: int, delimiter: str, chunk: int) -> int:
-    """The 0-based index of the longest field of the line starting at ``begin`` (quotes ignored)."""
+    """The 0-based index of the longest field of the line starting at ``begin`` (quotes ignored),
+    ``f`` being a stream there."""
     import numpy as np
 
-    f.seek(begin)
     pos, prev, field, best, best_field = begin, begin - 1, 0, -1, 0
     while block := f.read(chunk):
         a = np.frombuffer(block, dtype=np.uint8)
@@ -515,20 +686,23 @@ def _longest_field(f: Any, begin: int, delimiter: str, chunk: int) -> int:
     return best_field
 
 
-def large_cell_message(path: Path, delimiter: str, rows_done: int, chunk: int = 1 << 22) -> str:
+def large_cell_message(path: Path, delimiter: str, rows_done: int, chunk: int = 1 << 22,
+                       compression: str | None = None) -> str:
     """A CSV row larger than the reader's block (CSV_BLOCK_BYTES): names the first line that long
     and its longest field, found by streaming the file (numpy over each chunk; the error path)."""
     limit = CSV_BLOCK_BYTES
     mib = f"{limit / (1 << 20):g} MiB"
-    with open(path, "rb") as f:
+    with open_input_bytes(path, compression) as f:
         found = _long_line(f, limit, chunk)
         if found is None:
             return (f"input file {path}: after data row {rows_done} a quoted value runs on for more than {mib} (the "
                     "largest row the CSV reader takes). A quote that is opened and never closed makes the rest of the "
                     "file one cell: check the quotes after that row, and run the release again.")
         line, begin = found
+    with open_input_bytes(path, compression) as f:
+        _skip_to(f, begin, chunk)
         field = _longest_field(f, begin, delimiter, chunk)
-    header = _header(path, delimiter)
+    header = _header(path, delimiter, compression)
     column = f"column {header[field]!r}" if header is not None and field < len(header) else f"field {field + 1}"
     return (f"input file {path}: line {line}, {column}, holds a cell too large for a release (its row is larger than "
             f"{mib}, the largest row the CSV reader takes). Cells of a release are categories, numbers or short "
@@ -798,6 +972,11 @@ class StagedFiles:
         self._old_handlers: dict[int, Any] = {}
         self._on_exit: list[Callable[[], None]] = []
         self.stop_signal: int | None = None
+
+    @property
+    def committed(self) -> bool:
+        """Every staged file was renamed into place (``commit``)."""
+        return self._committed
 
     def on_exit(self, fn: Callable[[], None]) -> None:
         """Call ``fn`` when the block ends, after the files are renamed or removed (last

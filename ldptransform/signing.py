@@ -570,7 +570,8 @@ def prepare_release_signing(signing_key: Path, out: Path, manifest: Path | None,
     key = load_signing_key(signing_key)
     mpath = Path(manifest) if manifest is not None else default_manifest_path(Path(out))
     check_key_apart(key, [mpath, Path(out)])
-    check_signature_destination(mpath, key, overwrite=overwrite, known=[("output", Path(out)), *known])
+    if mpath.parent.is_dir():  # else the release creates the folder (release/publish.py): the signature is new
+        check_signature_destination(mpath, key, overwrite=overwrite, known=[("output", Path(out)), *known])
     return key
 
 

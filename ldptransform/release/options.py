@@ -12,7 +12,7 @@ from pathlib import Path
 from typing import Any
 
 from ..errors import OptionError, UsageError
-from ..io import FileFormat, file_format, is_dataset_output
+from ..io import FileFormat, delimiter_option, delimiter_problem, file_format, is_dataset_output
 from ..keys import check_nonce, new_nonce
 from ..manifest import default_manifest_path
 from ..policy import LoadedPolicy
@@ -43,6 +43,7 @@ class ReleaseOptions:
     idempotent: bool = False      # an identical release already published is a no-op (release/rerun.py)
     nonce_given: bool = False     # the caller chose the nonce (a rerun must then be of that nonce)
     extract_text: str | None = None  # how the nonce record names the extract (None: its path)
+    delimiter: str | None = None  # a text input's delimiter, chosen by the caller (None: io.resolve_delimiter)
 
     @property
     def memory_kind(self) -> str | None:
@@ -76,7 +77,7 @@ class ReleaseOptions:
     def of(cls, input_path: Any, policy: LoadedPolicy, out: Path | str, *, manifest_path: Path | str | None,
            diagnostics_path: Path | str | None, batch_rows: int, overwrite: bool, nonce: str | None,
            ledger_path: Path | str | None, allow_partial: bool, engine: str, scheduler: str | None,
-           fragment_rows: int | None, idempotent: bool = False) -> ReleaseOptions:
+           fragment_rows: int | None, idempotent: bool = False, delimiter: str | None = None) -> ReleaseOptions:
         from ..dataset import DEFAULT_FRAGMENT_ROWS, is_uri
 
         if isinstance(input_path, (str, Path)) and not is_uri(input_path):
@@ -99,7 +100,22 @@ class ReleaseOptions:
                    batch_rows=batch_rows, fragment_rows=fragment_rows, overwrite=overwrite,
                    nonce=_nonce(nonce), ledger_path=_ledger(policy, ledger_path, allow_partial, cap),
                    lifetime_epsilon=cap, allow_partial=allow_partial, engine=engine, scheduler=scheduler,
-                   dataset_out=dataset_out, fmt_out=fmt_out, idempotent=idempotent, nonce_given=bool(nonce))
+                   dataset_out=dataset_out, fmt_out=fmt_out, idempotent=idempotent, nonce_given=bool(nonce),
+                   delimiter=_delimiter(delimiter))
+
+
+def _delimiter(delimiter: str | None) -> str | None:
+    """The caller's delimiter (``io.delimiter_option``: the word tab is a tab), checked."""
+    if delimiter is None:
+        return None
+    if not isinstance(delimiter, str):
+        raise OptionError(f"privatize(delimiter={delimiter!r})", "{delimiter} must be one character of text.")
+    value = delimiter_option(delimiter)
+    problem = delimiter_problem(value)
+    if problem is not None:
+        raise OptionError(f"privatize(delimiter={delimiter!r})", f"the {{delimiter}} {value!r} {problem}. Give "
+                          "another delimiter.")
+    return value
 
 
 def _check_sizes(batch_rows: int, fragment_rows: int) -> None:

@@ -4,14 +4,16 @@ extract, and the final move of everything into place (atomic renames, after the 
 
 from __future__ import annotations
 
+import contextlib
 import os
 import secrets
+import stat
 from pathlib import Path
 from typing import Any
 
 from .. import outputs
 from .._version import __version__
-from ..errors import OutputError
+from ..errors import OutputError, UsageError
 from ..io import StagedFiles, check_dataset_destination, private_dir, remove_stale_partials_in
 from ..keys import SecretKey
 from ..ledger import LedgerCharges
@@ -29,16 +31,80 @@ DIAGNOSTICS_SUFFIX = ".PRIVATE-diagnostics.json"
 
 
 def check_destinations(opts: ReleaseOptions) -> Path:
-    """The destinations' folders exist (a dataset output: see ``io.check_dataset_destination``);
-    returns the diagnostics file's path (by default a fresh name in the private folder:
-    re-running a release with the same nonce and file name must not collide).  Whether an
-    output may be replaced is ``check_paths_apart``'s question (asked next)."""
-    if opts.dataset_out:
-        check_dataset_destination(opts.out, opts.overwrite)
+    """The destinations' folders exist or can be created (``missing_folders``; a dataset output:
+    see ``io.check_dataset_destination``); returns the diagnostics file's path (by default a fresh
+    name in the private folder: re-running a release with the same nonce and file name must not
+    collide).  Whether an output may be replaced is ``check_paths_apart``'s question (asked next)."""
     path = opts.diagnostics_path
     if path is None:
         path = private_dir() / f"{opts.out.stem}.{opts.nonce[:12]}.{secrets.token_hex(4)}{DIAGNOSTICS_SUFFIX}"
+    missing_folders(opts, path)  # refuses a folder that cannot be created, before anything is read
+    if opts.dataset_out and opts.out.parent.is_dir():
+        check_dataset_destination(opts.out, opts.overwrite)
     return path
+
+
+PUBLIC_FOLDER_MODE = 0o777  # less the umask: the folders of what partners receive
+PRIVATE_FOLDER_MODE = 0o700  # the folders of steward-only files (diagnostics)
+
+
+def missing_folders(opts: ReleaseOptions, diag_path: Path) -> list[tuple[Path, int]]:
+    """The folders of the release's destinations that do not exist yet, outermost first, each
+    with the mode it is created with: 0700 for a folder only steward-only files need (the
+    diagnostics file's), else 0777 less the umask.  Refused (nothing created): a destination below
+    a file, or below a folder this user may not write in."""
+    wanted: dict[Path, int] = {}
+    dests = [(outputs.EXTRACT, opts.out, False), (outputs.MANIFEST, opts.manifest_path, False),
+             (outputs.DIAGNOSTICS, diag_path, True)]
+    for role, dest, private in dests:
+        folder = Path(os.path.abspath(dest)).parent
+        chain = []
+        while not folder.exists() and not folder.is_symlink() and folder != folder.parent:
+            chain.append(folder)
+            folder = folder.parent
+        if not folder.is_dir():
+            made = f", so folder {chain[-1]} cannot be created in it" if chain else ""
+            raise UsageError(f"{role} {dest}: {folder} is a file, not a folder{made}. Give the {role} a path in a "
+                             "folder.")
+        if not chain:
+            continue
+        if not os.access(folder, os.W_OK | os.X_OK):
+            raise OutputError(f"{role} {dest}: folder {chain[0]} does not exist and cannot be created: this user may "
+                              f"not write in {folder}. Create the folder yourself, or give the {role} a path in a "
+                              "folder you may write in.")
+        for f in chain:
+            mode = PRIVATE_FOLDER_MODE if private else PUBLIC_FOLDER_MODE
+            wanted[f] = max(wanted.get(f, mode), mode)  # a folder partners' files need too is not private
+    return sorted(wanted.items(), key=lambda item: len(item[0].parts))
+
+
+def create_folders(staged: StagedFiles, opts: ReleaseOptions, diag_path: Path) -> None:
+    """Create the destinations' missing folders (``missing_folders``), as late as possible: just
+    before the release writes.  If the release then fails, the folders it created are removed
+    again once its staged files are (only those, and only when empty): a refused release leaves
+    nothing behind.  An existing folder is never changed."""
+    created: list[Path] = []
+
+    def remove_created() -> None:
+        if staged.committed:
+            return
+        for folder in reversed(created):
+            with contextlib.suppress(OSError):
+                folder.rmdir()
+
+    staged.on_exit(remove_created)
+    for folder, mode in missing_folders(opts, diag_path):
+        try:
+            folder.mkdir(mode=mode)
+        except FileExistsError:
+            continue  # made meanwhile by someone else: theirs, never ours to change or remove
+        except OSError as err:
+            raise OutputError(f"folder {folder} for the release's files could not be created "
+                              f"({err.strerror or 'the system refused'}). Nothing was written. Create it yourself, or "
+                              "give paths in an existing folder.") from None
+        created.append(folder)
+        if mode == PRIVATE_FOLDER_MODE and stat.S_IMODE(folder.stat().st_mode) != PRIVATE_FOLDER_MODE:
+            os.chmod(folder, PRIVATE_FOLDER_MODE)  # ours, just made: private whatever the umask allowed
 
 
 def _outputs(opts: ReleaseOptions, diag_path: Path) -> list[tuple[str, Path | None]]:
@@ -68,7 +134,9 @@ def check_paths_apart(opts: ReleaseOptions, policy: LoadedPolicy, key: SecretKey
     known = [*sources, (outputs.LEDGER, opts.ledger_path)]
     dests = _outputs(opts, diag_path)
     outputs.check_apart(dests, known, folders=[(outputs.EXTRACT, opts.out)] if opts.dataset_out else [])
-    outputs.check_new(dests[1:] if opts.dataset_out else dests, opts.overwrite)
+    # a destination whose folder is still to be created (``create_folders``) is new
+    outputs.check_new([d for d in (dests[1:] if opts.dataset_out else dests)
+                       if d[1] is None or Path(d[1]).parent.is_dir()], opts.overwrite)
     outputs.check_private_place(outputs.DIAGNOSTICS, diag_path, dests[:2], "--diagnostics")
     outputs.probe_locks(_locked(opts, diag_path))
 
@@ -76,8 +144,10 @@ def check_paths_apart(opts: ReleaseOptions, policy: LoadedPolicy, key: SecretKey
 def hold_destinations(staged: StagedFiles, opts: ReleaseOptions, diag_path: Path) -> None:
     """Lock every destination of the release until ``staged`` ends (a second job on one of them
     stops with exit 2 and changes nothing), and check again, under the lock, that no job that
-    finished meanwhile left an output this release may not replace."""
+    finished meanwhile left an output this release may not replace.  The destinations' missing
+    folders are created first (``create_folders``)."""
     dests = _outputs(opts, diag_path)
+    create_folders(staged, opts, diag_path)
     lock = outputs.DestinationLock(_locked(opts, diag_path)).acquire()
     staged.on_exit(lock.release)
     remove_stale_partials_in(diag_path.parent, DIAGNOSTICS_SUFFIX)  # a killed run's diagnostics, whatever its name

@@ -109,7 +109,8 @@ def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey
               batch_rows: int = DEFAULT_BATCH_ROWS, overwrite: bool = False, nonce: str | None = None,
               on_progress: Callable[[int], None] | None = None, ledger_path: Path | str | None = None,
               allow_partial: bool = False, engine: str = "local", scheduler: str | None = None,
-              fragment_rows: int | None = None, idempotent: bool = False) -> ReleaseResult:
+              fragment_rows: int | None = None, idempotent: bool = False,
+              delimiter: str | None = None) -> ReleaseResult:
     """Privatize ``input_path`` under ``policy`` into ``out`` (+ manifest, + private diagnostics).
 
     With a ledger (``ledger_path``, or the default path when the policy sets
@@ -133,7 +134,7 @@ def privatize(input_path: Path | str | Any, policy: LoadedPolicy, key: SecretKey
     opts = ReleaseOptions.of(input_path, policy, out, manifest_path=manifest_path, diagnostics_path=diagnostics_path,
                              batch_rows=batch_rows, overwrite=overwrite, nonce=nonce, ledger_path=ledger_path,
                              allow_partial=allow_partial, engine=engine, scheduler=scheduler,
-                             fragment_rows=fragment_rows, idempotent=idempotent)
+                             fragment_rows=fragment_rows, idempotent=idempotent, delimiter=delimiter)
     return run_release(opts, policy, key, on_progress, t0)
 
 

@@ -18,6 +18,9 @@ from .options import ReleaseOptions
 
 def open_source(opts: ReleaseOptions, policy: LoadedPolicy) -> Any:
     """The input as a source of record batches (``batches``, ``schema``, ``column_names``...)."""
+    if opts.delimiter is not None and (opts.memory_kind is not None or opts.frame_input):
+        raise UsageError(f"privatize: a delimiter ({opts.delimiter!r}) applies to a CSV or TSV file, but the input "
+                         f"is {opts.input_text}, which has no delimiter. Leave the delimiter out.")
     if opts.memory_kind is not None:
         from ..memory import MemorySource
 
@@ -36,8 +39,12 @@ def open_source(opts: ReleaseOptions, policy: LoadedPolicy) -> Any:
         from ..engine_dask import FrameSource
 
         return FrameSource(opts.input)
-    return TableSource(opts.input, csv_null_values=policy.policy.input.csv_null_values,
-                       csv_delimiter=policy.policy.input.csv_delimiter)
+    src = TableSource(opts.input, csv_null_values=policy.policy.input.csv_null_values,
+                      csv_delimiter=policy.policy.input.csv_delimiter, delimiter=opts.delimiter)
+    if opts.delimiter is not None and src.format != "csv":
+        raise UsageError(f"privatize: the delimiter {opts.delimiter!r} (--delimiter) applies to a CSV or TSV file, but "
+                         f"input {src.location} is Parquet, which has no delimiter. Leave the delimiter out.")
+    return src
 
 
 def source_location(src: Any, opts: ReleaseOptions) -> str:
