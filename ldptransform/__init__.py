@@ -10,9 +10,11 @@ Public Python API::
     frame, manifest = privatize_to_memory(df, policy, key)  # the privatized table in memory (docs/python-api.md)
     figures = estimate("extract.parquet")          # EstimateResult: .to_dict() as `--format json`, .to_frame()
     report = validate("extract.parquet")           # report.ok, report.checks
+    problems = check_data("policy.yaml", "survey.csv")  # steward only: the policy against the raw table
 """
 
 from ._version import __version__
+from .datacheck import check_data
 from .errors import LdptError
 from .estimate import estimate
 from .keys import SecretKey, load_key, new_key_file
@@ -28,6 +30,7 @@ __all__ = [
            "LdptError",
            "SecretKey",
            "__version__",
+           "check_data",
            "estimate",
            "load_key",
            "load_policy",

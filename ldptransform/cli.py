@@ -1,13 +1,13 @@
 """The `ldpt` command line.  Thin: every command calls the Python API and prints.
 
 Exit codes (errors.ExitCode; README.md and docs/pipelines.md list them): 0 success; 1 a check
-ran and failed (validate, ledger verify, audit); 2 an error you can fix (bad policy, data, key,
-paths or options; the message says what and how); 3 an internal error (a bug: please report it
-with the traceback, which never shows local variables); 4 refused for privacy (lifetime budget
-exhausted, a nonce reused); 5 the output already exists; 6 the environment failed (disk full,
-permission denied writing an output); 130 interrupted.  Each error class carries its code
-(``exit_code``) and a stable ``kind`` for the JSON log (``--log-format json``: JSON lines on
-stderr instead of the usual lines; docs/pipelines.md).
+ran and failed (validate, ledger verify, audit, policy check --data, report); 2 an error you can
+fix (bad policy, data, key, paths or options; the message says what and how); 3 an internal
+error (a bug: please report it with the traceback, which never shows local variables); 4 refused
+for privacy (lifetime budget exhausted, a nonce reused); 5 the output already exists; 6 the
+environment failed (disk full, permission denied writing an output); 130 interrupted. Each error
+class carries its code (``exit_code``) and a stable ``kind`` for the JSON log (``--log-format
+json``: JSON lines on stderr instead of the usual lines; docs/pipelines.md).
 """
 
 from __future__ import annotations
@@ -1214,13 +1214,68 @@ def sign(
 
 # -- policy ---------------------------------------------------------------------------------
 
+def _data_check_report(report: Any, format: TableJson) -> None:
+    """`policy check --data`: the steward-only report of the policy against the raw table, on stdout."""
+    if format == TableJson.json:
+        sys.stdout.write(json_text(report.to_dict()))
+        return
+    from .datacheck import STEWARD_ONLY
+
+    c = report.counts()
+    out_console.print(f"{STEWARD_ONLY}. {report.policy} against {report.table} ({report.rows} rows): {c['error']} "
+                      f"error(s), {c['warning']} warning(s), {c['note']} note(s)", markup=False)
+    from .datacheck import example_text
+
+    def examples(f: Any) -> str:
+        return "; ".join(f"{r}: {example_text(v)}" for r, v in f.examples)
+
+    if report.findings and out_console.is_terminal:
+        t = Table(title=None)
+        for h in ("column", "problem", "severity", "rows", "examples (data row: value)", "what a release does"):
+            t.add_column(h)
+        for f in report.findings:
+            t.add_row(escape(f.column if f.column is not None else "-"), f.kind, f.severity,
+                      "-" if f.rows is None else str(f.rows), escape(examples(f)), escape(f.message))
+        _show_table(t)
+    for f in report.findings if not out_console.is_terminal else ():  # plain text: one block per problem
+        rows = "" if f.rows is None else f", {f.rows} row(s)"
+        out_console.print(f"{f.severity}: column {f.column!r}: {f.kind}{rows}" if f.column is not None else
+                          f"{f.severity}: {f.kind}{rows}", markup=False)
+        if f.examples:
+            out_console.print(f"  examples (data row: value): {examples(f)}", markup=False)
+        out_console.print(f"  {f.message}", markup=False)
+    out_console.print("data check: " + ("passed (no error or warning)" if report.ok else "FAILED (errors or "
+                      "warnings above; fix the table or the policy and check again)"), markup=False)
+
+
 @policy_app.command("check")
-def policy_check(policy: Path = typer.Argument(..., help="Policy file to check.")) -> None:
-    """Check a policy file and show what each column becomes. Example: ldpt policy check policy.yaml"""
+def policy_check(policy: Path = typer.Argument(..., help="Policy file to check."),
+                 data: Path | None = typer.Option(None, "--data", help="Also check the policy against this raw table "
+                                                  "(CSV or Parquet, read as a release reads it): every problem of "
+                                                  "every column in one pass, with example rows and raw values "
+                                                  "(steward only); exit 1 if an error or warning is found."),
+                 format: TableJson = typer.Option(TableJson.table, "--format", help="Output format of the data "
+                                                  "check (with --data).")) -> None:
+    """Check a policy file and show what each column becomes; with --data, check it against the raw table.
+
+    Example: ldpt policy check policy.yaml --data survey.csv
+    """
     from .policy import load_policy
 
     with _user_errors():
+        if format == TableJson.json and data is None:
+            from .errors import UsageError
+
+            raise UsageError("policy check: --format json is the shape of the data check; give --data TABLE with "
+                             "it, or leave --format out to see what each column becomes.")
         lp = load_policy(policy)
+        if data is not None:
+            from .datacheck import check_data
+
+            report = check_data(lp, data)
+    if data is not None:
+        _data_check_report(report, format)
+        raise typer.Exit(code=ExitCode.OK if report.ok else ExitCode.CHECK_FAILED)
     t = Table(title=escape(f"{policy}: valid"), title_justify="left")
     any_memo = any(rc.memoize for rc in lp.columns)
     for h in ("column", "type", "mechanism", "eps", "domain") + (("memoized",) if any_memo else ()):
@@ -1268,6 +1323,42 @@ def policy_schema() -> None:
     from .policy import policy_json_schema
 
     sys.stdout.write(json_text(policy_json_schema()))
+
+
+@policy_app.command("draft")
+def policy_draft(
+    table: Path = typer.Argument(..., help="The raw table (CSV or Parquet) to propose a policy for."),
+    out: Path | None = typer.Option(None, "--out", help="Where to write the draft (.yaml) [default: the steward's "
+                                    "private folder, TABLE-NAME.policy-draft.yaml]; never beside an extract or "
+                                    "manifest."),
+    min_count: int = typer.Option(20, "--min-count", help="Rows a category needs to be proposed as its own; rarer "
+                                  "values go to <other> (20: common practice, no published source)."),
+    target_se: float = typer.Option(0.02, "--target-se", help="SE of each frequency share the suggested eps must "
+                                    "meet at the table's row count (through the planner)."),
+    target_relative_se: float = typer.Option(0.02, "--target-relative-se", help="SE of a mean, as a share of the "
+                                             "width of its bounds, the suggested eps must meet."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing draft at --out."),
+) -> None:
+    """Write a commented starter policy from a table's profile, for the steward to review line by line.
+
+    Example: ldpt policy draft survey.csv --out ~/private/survey-policy.yaml
+    """
+    from .starter import draft_policy
+
+    with _user_errors({"min_count": "--min-count", "target_se": "--target-se",
+                       "target_relative_se": "--target-relative-se"}):
+        res = draft_policy(table, out, min_count=min_count, target_se=target_se,
+                           target_relative_se=target_relative_se, overwrite=overwrite)
+    out_console.print(f"draft policy written to {res.path} (mode 0600; steward-only): {res.rows} rows profiled",
+                      markup=False)
+    for line in res.summary_lines():
+        out_console.print(f"  {line}", markup=False)
+    if res.subject_key is not None:
+        out_console.print(f"  subject_key proposed (commented out): {terminal_safe(res.subject_key)}", markup=False)
+    out_console.print(f"eps per row: {res.epsilon_per_row:g} (the sum of the suggested column eps)", markup=False)
+    out_console.print("This is a DRAFT: review every line marked REVIEW with the privacy officer before any "
+                      "release (eps is a policy choice; public columns are not protected; columns together can be "
+                      "linked), then run `ldpt policy check` on it.", markup=False)
 
 
 # -- plan -----------------------------------------------------------------------------------

@@ -32,9 +32,9 @@ class ExitCode(IntEnum):
 
 # what each code means, in the words the docs and `ldpt exit-codes` use
 EXIT_CODE_MEANINGS: dict[ExitCode, str] = {
-    ExitCode.OK: "success (validate, ledger verify, audit: every check passed; privatize --idempotent: the "
-                 "identical release was already published)",
-    ExitCode.CHECK_FAILED: "a check ran and failed (validate, ledger verify, audit)",
+    ExitCode.OK: "success (validate, ledger verify, audit, policy check --data, report: every check passed; "
+                 "privatize --idempotent: the identical release was already published)",
+    ExitCode.CHECK_FAILED: "a check ran and failed (validate, ledger verify, audit, policy check --data, report)",
     ExitCode.BAD_INPUT: "bad input or usage (policy, data, key, manifest, paths, options): fix what the message "
                         "names and run again",
     ExitCode.INTERNAL: "internal error (a bug): a traceback is printed; please report it",
