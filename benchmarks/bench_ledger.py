@@ -1,4 +1,4 @@
-"""Cost of the privacy ledger in nightly releases, against its targets.
+"""Cost of the spend ledger in nightly releases, against its targets.
 
     python benchmarks/bench_ledger.py [--rows N] [--changed F] [--charged K] [--repeat R] [--out-dir DIR]
 

@@ -670,7 +670,7 @@ def privatize(
                                      "reproduce that release bit for bit."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar on a terminal; only the summary line."),
     ledger: Path | None = typer.Option(
-        None, "--ledger", help="Privacy ledger to charge this release to (needs the policy's subject_key); a "
+        None, "--ledger", help="Spend ledger to charge this release to (needs the policy's subject_key); a "
         "ledger is used automatically when the policy sets budget.lifetime_epsilon [default: none; with "
         "budget.lifetime_epsilon: ledger.sqlite3 in the private folder, $LDPT_PRIVATE_DIR]."),
     allow_partial: bool = typer.Option(
@@ -1558,7 +1558,7 @@ def demo(dir: Path = typer.Option(Path("demo_out"), "--dir", help="Folder for th
 
 # -- ledger ---------------------------------------------------------------------------------
 
-ledger_app = typer.Typer(no_args_is_help=True, help="The privacy ledger (steward only): eps spent per subject "
+ledger_app = typer.Typer(no_args_is_help=True, help="The spend ledger (steward only): eps spent per subject "
                          "over releases.")
 app.add_typer(ledger_app, name="ledger")
 

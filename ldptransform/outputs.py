@@ -114,7 +114,7 @@ def _secret_kind(path: Path) -> str | None:
     if head.startswith(SIGNING_KEY_HEADER.encode("ascii")):
         return "a private signing key file"
     if head.startswith(b"SQLite format 3\0"):
-        return "a SQLite database (such as a privacy ledger)"
+        return "a SQLite database (such as a spend ledger)"
     return None
 
 

@@ -322,7 +322,7 @@ class Budget(_Strict):
                           "max(1, min(d, floor(epsilon_per_row / 2.5))).")
     lifetime_epsilon: Annotated[float, Field(gt=0, allow_inf_nan=False, strict=True)] | None = Field(
         None, description="Most eps any one person (subject_key) may spend over all releases recorded in the "
-                          "privacy ledger; a release that would take someone past it is refused (or, with "
+                          "spend ledger; a release that would take someone past it is refused (or, with "
                           "--allow-partial, leaves them out). Needs subject_key.")
 
 

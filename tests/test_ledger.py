@@ -1,4 +1,4 @@
-"""The privacy ledger (ldptransform/ledger/) and `ldpt ledger show|verify`: keyed subject
+"""The spend ledger (ldptransform/ledger/) and `ldpt ledger show|verify`: keyed subject
 hashes, opening and refusing files, spend and the lifetime cap, memoized state, rollback
 of a failed record, the hash chain against hand edits, and two processes recording at once
 (both succeed, one waits; or, together over the cap, exactly one is refused).

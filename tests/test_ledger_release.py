@@ -1,4 +1,4 @@
-"""`privatize` charges the privacy ledger: memoized columns cost eps only when a person's value
+"""`privatize` charges the spend ledger: memoized columns cost eps only when a person's value
 changed since the last recorded release, budget.lifetime_epsilon caps the lifetime spend
 (refused before anything is written, or --allow-partial releases only the people within it),
 and nothing raw reaches the ledger or the manifest.

@@ -1,4 +1,4 @@
-"""The privacy ledger (steward only): how much eps each subject has spent over all releases.
+"""The spend ledger (steward only): how much eps each subject has spent over all releases.
 
     store.py    the SQLite store: opening, columnar state, hash chain, record, verify, show
     schema.py   the file's layout and its checks before use (empty, not a ledger, damaged), SQLite's

@@ -1,4 +1,4 @@
-"""The privacy ledger: how much eps each subject has spent over all releases.
+"""The spend ledger: how much eps each subject has spent over all releases.
 
 A ledger is one SQLite file, private to the steward (mode 0600, kept with the key).  It
 holds, per release, a row in ``releases`` (time, policy and extract hashes, nonce, the eps
@@ -654,7 +654,7 @@ def _undo_stopped_write(path: Path) -> None:
 # -- the ledger ---------------------------------------------------------------------------
 
 class Ledger:
-    """A steward's privacy ledger (one SQLite file).  Open with ``Ledger.open(path)``."""
+    """A steward's spend ledger (one SQLite file).  Open with ``Ledger.open(path)``."""
 
     def __init__(self, path: Path, conn: sqlite3.Connection, readonly: bool = False) -> None:
         self.path = path

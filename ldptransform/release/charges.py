@@ -1,4 +1,4 @@
-"""The release's side of the privacy ledger: what this release charges each subject, worked out
+"""The release's side of the spend ledger: what this release charges each subject, worked out
 from the writing pass's own batches in a worker thread beside the release (``ChargeTap``), or by a
 pre-pass before anything is written (``ledger_prepass``, with ``--allow-partial``); the refusal of a
 release over the lifetime budget; and the record of the staged release in the ledger."""
