@@ -1110,18 +1110,12 @@ def validate(
     Example: ldpt validate extract.parquet --raw survey.csv --key release.key
     """
     from .estimate import parse_quantiles
-    from .keys import load_key
     from .validate import validate as run
 
     inputs = {"extract": extract, "manifest": manifest, "raw": raw, "key": key, "public_key": public_key}
     with _run_log("validate", log_format, inputs) as log:
         with _user_errors():
-            if (raw is None) != (key is None):
-                from .errors import UsageError
-
-                raise UsageError("--raw and --key go together: re-deriving a release needs both the raw input and "
-                                 "the secret key (steward only).")
-            k = load_key(key) if key is not None else None
+            k = _steward_key(raw, key, "re-deriving a release")
             with _Progress(log, "decoding", _rows_of([extract], [manifest] if manifest else None)) as prog:
                 rep = run(extract, manifest, raw=raw, key=k, confidence=confidence,
                           quantiles=parse_quantiles(quantiles) if quantiles else None,
@@ -1169,18 +1163,12 @@ def report(
     Example: ldpt report extract.parquet --out report.html --crosstab site:role
     """
     from .estimate import parse_pair
-    from .keys import load_key
     from .report import release_report
 
     inputs = {"extract": extract, "manifest": manifest, "raw": raw, "key": key, "out": out}
     with _run_log("report", log_format, inputs) as log:
         with _user_errors():
-            if (raw is None) != (key is None):
-                from .errors import UsageError
-
-                raise UsageError("--raw and --key go together: the steward's report needs both the raw input and "
-                                 "the secret key (steward only).")
-            k = load_key(key) if key is not None else None
+            k = _steward_key(raw, key, "the steward's report")
             pairs = [parse_pair(x, "--crosstab") for x in crosstab or []]
             res = release_report(extract, out, manifest, crosstabs=pairs, confidence=confidence, raw=raw, key=k,
                                  overwrite=overwrite)
@@ -1190,6 +1178,18 @@ def report(
                           f"{res.figures} plots); quality checks: " + ("all passed" if res.checks_ok else "a check "
                           "FAILED (see the report)"), markup=False)
         raise typer.Exit(code=ExitCode.OK if res.checks_ok else ExitCode.CHECK_FAILED)
+
+
+def _steward_key(raw: Path | None, key: Path | None, what: str) -> Any:
+    """The key of --key (None without it); --raw and --key go together."""
+    from .keys import load_key
+
+    if (raw is None) != (key is None):
+        from .errors import UsageError
+
+        raise UsageError(f"--raw and --key go together: {what} needs both the raw input and the secret key "
+                         "(steward only).")
+    return load_key(key) if key is not None else None
 
 
 # -- sign -----------------------------------------------------------------------------------

@@ -24,6 +24,7 @@ from ldptransform.ledger import DIGEST, Ledger, LedgerError, ReleaseMeta, distin
 from ldptransform.ledger import store as ledger_store
 from ldptransform.policy import parse_policy
 from ldptransform.release import privatize
+from test_ledger_release import policy as ledger_release_policy
 
 KEY = SecretKey(bytes(range(100, 132)))
 COLOURS = ["red", "green", "blue", "white", "black"]
@@ -156,17 +157,9 @@ def _people(n: int, seed: int) -> pd.DataFrame:
 
 
 def _policy(strategy: str) -> dict[str, Any]:
-    pol: dict[str, Any] = {
-        "budget": {"epsilon_per_row": 3.0, "lifetime_epsilon": 100.0},
-        "subject_key": "person",
-        "columns": {
-            "colour": {"type": "categorical", "categories": COLOURS, "epsilon": 1.0, "mechanism": "grr",
-                       "memoize": True},
-            "score": {"type": "numeric", "bounds": [0, 100], "epsilon": 1.0, "mechanism": "hybrid",
-                      "memoize": True},
-            "hours": {"type": "numeric", "bounds": [0, 60], "epsilon": 1.0, "mechanism": "hybrid"},
-        },
-    }
+    """The ledger release tests' policy (a lifetime budget nobody reaches here), shuffled output."""
+    pol = ledger_release_policy(cap=100.0)
+    del pol["output"]
     if strategy == "sample":
         pol["budget"].update({"epsilon_per_row": 2.0, "strategy": "sample", "sample_columns": 2})
         for c in pol["columns"].values():
