@@ -1151,6 +1151,8 @@ def report(
     raw: Path | None = typer.Option(None, "--raw", help="Raw input (steward only): adds the truth against every "
                                     "estimate; the report is then the steward's, refused beside the partner's files."),
     key: Path | None = typer.Option(None, "--key", help="Secret key (steward only), with --raw."),
+    diagnostics: Path | None = typer.Option(None, "--diagnostics", help="With --raw and --key: the release's "
+                                            "steward-only diagnostics file, whose counts go in the steward's report."),
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing report file."),
     log_format: LogFormat = typer.Option(LogFormat.text, _LOG_OPTION, help=_LOG_HELP),
 ) -> None:
@@ -1165,13 +1167,13 @@ def report(
     from .estimate import parse_pair
     from .report import release_report
 
-    inputs = {"extract": extract, "manifest": manifest, "raw": raw, "key": key, "out": out}
+    inputs = {"extract": extract, "manifest": manifest, "raw": raw, "key": key, "out": out, "diagnostics": diagnostics}
     with _run_log("report", log_format, inputs) as log:
         with _user_errors():
             k = _steward_key(raw, key, "the steward's report")
             pairs = [parse_pair(x, "--crosstab") for x in crosstab or []]
             res = release_report(extract, out, manifest, crosstabs=pairs, confidence=confidence, raw=raw, key=k,
-                                 overwrite=overwrite)
+                                 diagnostics=diagnostics, overwrite=overwrite)
         log.result.update(res.to_dict())
         who = "the steward's report (STEWARD ONLY: holds true values)" if res.steward else "the partner's report"
         out_console.print(f"wrote {who}: {res.path} ({res.columns} columns, {res.crosstabs} cross-tabs, "

@@ -70,10 +70,13 @@ class ReportResult:
 def release_report(extract: Path | str, out: Path | str, manifest_path: Path | str | None = None, *,
                    crosstabs: Sequence[tuple[str, str]] = (), confidence: float = 0.95,
                    raw: Path | str | None = None, key: SecretKey | None = None,
+                   diagnostics: Path | str | None = None,
                    overwrite: bool = False, title: str | None = None) -> ReportResult:
     """Write the HTML report of a release to ``out`` (see the module docstring).  ``crosstabs``:
     pairs of categorical columns to show as heat maps.  ``raw`` and ``key`` (both or neither):
-    the steward's report, with the truth against every estimate."""
+    the steward's report, with the truth against every estimate; ``diagnostics`` (the
+    release's steward-only diagnostics file, with the steward's report only): its per-column
+    counts of missing, filled, clipped and unknown values and its warnings."""
     from .estimate import estimate
     from .validate import validate
 
@@ -83,15 +86,21 @@ def release_report(extract: Path | str, out: Path | str, manifest_path: Path | s
         raise UsageError("report: the steward's report needs both the raw table (--raw) and the key (--key); give "
                          "both for the steward's report with the truth, or neither for the partner's report.")
     steward = raw is not None
+    if diagnostics is not None and not steward:
+        raise UsageError("report: the release's diagnostics (--diagnostics) are steward-only: they go only in the "
+                         "steward's report; give --raw and --key too, or leave --diagnostics out.")
     known: list[tuple[str, Path | None]] = [("extract", extract), (MANIFEST, mpath)]
     if raw is not None:
         known.append(("raw input", Path(raw)))
+    if diagnostics is not None:
+        known.append(("diagnostics file", Path(diagnostics)))
     check_outputs([(REPORT, out)], known, overwrite=overwrite)
     if out.suffix.lower() not in (".html", ".htm"):
         raise UsageError(f"report: {out} does not end in .html; name the report file NAME.html.")
     if steward:
         check_private_place("steward's report", out, [("extract", extract), (MANIFEST, mpath)], "--out")
     manifest = load_manifest(mpath)
+    diag = _load_diagnostics(Path(diagnostics), manifest) if diagnostics is not None else None
     est = estimate(extract, mpath, confidence=confidence, crosstabs=list(crosstabs))
     checks = validate(extract, mpath, confidence=confidence)
     calibration = None
@@ -108,6 +117,8 @@ def release_report(extract: Path | str, out: Path | str, manifest_path: Path | s
     _checks(page, checks)
     if calibration is not None:
         _calibration(page, calibration)
+    if diag is not None:
+        _diagnostics(page, diag)
     text = page.render()
     _write(out, text, 0o600 if steward else 0o644)
     return ReportResult(out, steward, page.figures, len(est.columns), len(est.crosstabs), checks.ok)
@@ -394,6 +405,38 @@ def _calibration(page: _Page, cal: Any) -> None:
                [(e.column, e.statistic, e.value or "", e.truth, e.estimate, e.ci_low, e.ci_high, e.inside)
                 for e in cal.entries],
                ["pass" if e.inside else "fail" if e.inside is False else None for e in cal.entries])
+
+
+def _load_diagnostics(path: Path, manifest: Manifest) -> dict[str, Any]:
+    """The release's diagnostics file, checked to be this release's (its nonce)."""
+    import json
+
+    from .errors import InputFileError
+
+    try:
+        d = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, ValueError) as err:
+        why = "it does not exist" if isinstance(err, FileNotFoundError) else "it cannot be read as JSON"
+        raise InputFileError(f"report: diagnostics file {path}: {why}. Give the .PRIVATE-diagnostics.json file "
+                             "privatize wrote for this release (privatize prints its path).") from None
+    if not isinstance(d, dict) or not isinstance(d.get("columns"), dict) or d.get("nonce") != manifest.nonce:
+        raise InputFileError(f"report: diagnostics file {path} is not the diagnostics of this release (its nonce is "
+                             "not the manifest's). Give the diagnostics file privatize wrote for this extract.")
+    return d
+
+
+def _diagnostics(page: _Page, d: dict[str, Any]) -> None:
+    page.text("h2", "Steward only: what the release did to the data")
+    page.text("p", "Counts from the release's steward-only diagnostics: the values the policy changed before "
+                   "randomizing (missing values filled or kept as their own category, values clipped to the "
+                   "bounds, unknown categories counted as <other>).")
+    cols = [(name, c) for name, c in d["columns"].items() if isinstance(c, dict)]
+    keys = sorted({k for _, c in cols for k, v in c.items() if isinstance(v, (int, float)) and not isinstance(v, bool)})
+    page.table(["column", *[k.replace("_", " ") for k in keys]], [(name, *[c.get(k, "-") for k in keys])
+                                                                  for name, c in cols])
+    warnings = [str(w) for w in d.get("warnings", []) or []]
+    if warnings:
+        page.add("<ul>" + "".join(f'<li class="warn">{_e(w)}</li>' for w in warnings) + "</ul>")
 
 
 def _write(out: Path, text: str, mode: int) -> None:

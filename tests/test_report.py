@@ -156,6 +156,30 @@ def test_the_stewards_report_holds_the_truth_and_stays_with_the_steward(release:
         release_report(release["extract"], release["steward"] / "half.html", raw=release["raw"])
 
 
+def test_the_stewards_report_shows_the_releases_diagnostics(release: dict[str, Path]) -> None:
+    """The release's steward-only counts (missing, filled, clipped, unknown values) go in the
+    steward's report only; another release's diagnostics file is refused."""
+    import json
+
+    diag = json.loads((release["steward"] / "diag.json").read_text())
+    out = release["steward"] / "with-diagnostics.html"
+    release_report(release["extract"], out, raw=release["raw"], key=KEY, diagnostics=release["steward"] / "diag.json")
+    p = parsed(out)
+    text = " ".join(" ".join(p.text).split())
+    assert "what the release did to the data" in text
+    for name, counts in diag["columns"].items():
+        assert name in text
+        assert f"{counts['missing']:,}" in text
+    with pytest.raises(LdptError, match="steward-only"):
+        release_report(release["extract"], release["partner"] / "d.html", diagnostics=release["steward"] / "diag.json")
+    other = release["steward"] / "other-diag.json"
+    other.write_text(json.dumps({**diag, "nonce": "0" * 32}))
+    with pytest.raises(LdptError, match="not the diagnostics of this release"):
+        release_report(release["extract"], release["steward"] / "o.html", raw=release["raw"], key=KEY,
+                       diagnostics=other)
+    assert not (release["partner"] / "d.html").exists() and not (release["steward"] / "o.html").exists()
+
+
 def test_the_report_never_replaces_what_it_reads_or_an_existing_file(release: dict[str, Path]) -> None:
     out = release["partner"] / "again.html"
     release_report(release["extract"], out)
