@@ -663,7 +663,7 @@ def privatize(
                                          help="Manifest path [default: OUT with .manifest.json]."),
     diagnostics: Path | None = typer.Option(
         None, "--diagnostics", help="Steward-only diagnostics file [default: in the steward's private folder: "
-        "$LDPT_PRIVATE_DIR, else the state folder README.md names]."),
+        "$LDPT_PRIVATE_DIR, else the state folder docs/commands.md names]."),
     batch_rows: int = typer.Option(65536, "--batch-rows", min=1, help="Rows per batch (memory; never the output)."),
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing extract and manifest."),
     nonce: str | None = typer.Option(None, "--nonce", help="Reuse a release nonce (from a manifest) to "

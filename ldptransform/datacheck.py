@@ -86,7 +86,7 @@ class DataCheckReport:
         return {s: sum(f.severity == s for f in self.findings) for s in SEVERITIES}
 
     def to_dict(self) -> dict[str, Any]:
-        """The shape of `ldpt policy check POLICY --data TABLE --format json` (README.md)."""
+        """The shape of `ldpt policy check POLICY --data TABLE --format json` (docs/policy.md)."""
         return {"steward_only": True, "notice": STEWARD_ONLY, "policy": self.policy, "table": self.table,
                 "format": self.format, "rows": self.rows, "ok": self.ok, "counts": self.counts(),
                 "problems": [f.to_dict() for f in self.findings]}

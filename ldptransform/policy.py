@@ -892,7 +892,7 @@ def _format_validation(err: ValidationError) -> list[str]:
 def parse_policy(data: Any, source: str) -> LoadedPolicy:
     if not isinstance(data, dict):
         raise PolicyError(f"policy {source}: the top level must be a mapping with 'budget' and 'columns'. "
-                          "See README.md (Policy file) for an example.")
+                          "See docs/policy.md for an example.")
     try:
         policy = Policy.model_validate(data)
     except ValidationError as err:

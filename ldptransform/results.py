@@ -59,7 +59,7 @@ __all__ = [
 FRAME_COLUMNS = ("column", "type", "mechanism", "epsilon", "statistic", "value", "estimate", "se", "ci_low",
                  "ci_high", "consistent", "estimand", "confidence", "count_estimate", "share", "rows_used", "low",
                  "high", "first", "second", "first_value", "second_value", "method", "note")
-"""The columns of ``EstimateResult.to_frame()``, in order (README.md, "Estimates as a table",
+"""The columns of ``EstimateResult.to_frame()``, in order (docs/decoding.md, "Estimates as a table",
 lists what each holds and which rows fill it)."""
 
 _FLOAT_COLUMNS = ("epsilon", "estimate", "se", "ci_low", "ci_high", "consistent", "confidence", "count_estimate",

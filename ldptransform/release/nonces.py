@@ -27,7 +27,7 @@ Cost: a CSV file costs no pass of its own: the reader digests the bytes of every
 (``io.DigestingFile``), and the record takes the digest of the bytes the extract was made from
 (checked then, after the extract is staged, when no earlier pass was made); so does a table in
 memory (``memory.MemorySource``).  A Parquet file or dataset is read once more, through hashlib
-in 8 MiB chunks (measured in README.md).  The digest never leaves the steward's record: a digest
+in 8 MiB chunks (measured in docs/commands.md).  The digest never leaves the steward's record: a digest
 of the raw data would let a partner confirm a guessed table.
 """
 

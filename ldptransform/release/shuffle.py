@@ -26,7 +26,7 @@ Memory stays bounded whatever the number of rows (an external sort in two passes
    in advance, so a dataset's parts (``fragment_rows`` rows each, by rank) can be written by
    different workers (``write_ranks``), byte for byte as in one pass.
 
-Costs (measured by benchmarks/bench_privatize.py, see README): one extra write and read of the
+Costs (measured by benchmarks/bench_privatize.py, see docs/scale.md): one extra write and read of the
 privatized rows, plus sorting; peak memory holds one run or one window.
 """
 
