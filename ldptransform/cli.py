@@ -1339,6 +1339,9 @@ def policy_draft(
                                     "meet at the table's row count (through the planner)."),
     target_relative_se: float = typer.Option(0.02, "--target-relative-se", help="SE of a mean, as a share of the "
                                              "width of its bounds, the suggested eps must meet."),
+    delimiter: str | None = typer.Option(None, "--delimiter", help="The delimiter of a CSV/TSV table: one "
+                                         "character, or the word tab; written into the draft's input.csv_delimiter "
+                                         "[default: a tab for .tsv/.tab, a comma otherwise]."),
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing draft at --out."),
 ) -> None:
     """Write a commented starter policy from a table's profile, for the steward to review line by line.
@@ -1348,9 +1351,9 @@ def policy_draft(
     from .starter import draft_policy
 
     with _user_errors({"min_count": "--min-count", "target_se": "--target-se",
-                       "target_relative_se": "--target-relative-se"}):
+                       "target_relative_se": "--target-relative-se", "delimiter": "--delimiter"}):
         res = draft_policy(table, out, min_count=min_count, target_se=target_se,
-                           target_relative_se=target_relative_se, overwrite=overwrite)
+                           target_relative_se=target_relative_se, overwrite=overwrite, delimiter=delimiter)
     out_console.print(f"draft policy written to {res.path} (mode 0600; steward-only): {res.rows} rows profiled",
                       markup=False)
     for line in res.summary_lines():

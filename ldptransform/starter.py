@@ -23,6 +23,7 @@ manifest).  The profile itself (counts, extremes) stays in memory: it is never w
 
 from __future__ import annotations
 
+import json
 import math
 import os
 import re
@@ -189,12 +190,14 @@ def _kind(t: pa.DataType) -> str:
     return "other"
 
 
-def profile_table(table: Path | str, *, batch_rows: int = 65536) -> tuple[int, dict[str, _Stats]]:
-    """(rows, per-column profile) of a CSV or Parquet table in one streamed pass (steward-only)."""
+def profile_table(table: Path | str, *, batch_rows: int = 65536,
+                  delimiter: str | None = None) -> tuple[int, dict[str, _Stats]]:
+    """(rows, per-column profile) of a CSV or Parquet table in one streamed pass (steward-only).
+    ``delimiter``: of a text table (default: a tab for .tsv/.tab, else a comma)."""
     from .io import TableSource
     from .policy import DEFAULT_CSV_NULLS
 
-    src = TableSource(table, csv_null_values=list(DEFAULT_CSV_NULLS))
+    src = TableSource(table, csv_null_values=list(DEFAULT_CSV_NULLS), delimiter=delimiter)
     names = src.column_names
     if not names:
         raise DataError(f"input {table} has no columns. Give a table with a header row (CSV) or a schema (Parquet).")
@@ -478,7 +481,7 @@ HEADER = """\
 
 
 def render(drafts: list[ColumnDraft], rows: int, min_count: int, target_se: float, target_relative_se: float,
-           budget: float) -> str:
+           budget: float, delimiter: str | None = None) -> str:
     """The commented YAML text of the draft."""
     out = [HEADER.rstrip("\n"), "",
            f"# The minimum count ({min_count} rows) is a common practice for small cells, without a published "
@@ -489,6 +492,9 @@ def render(drafts: list[ColumnDraft], rows: int, min_count: int, target_se: floa
            f"  max_se: {_num(target_se)}   # REVIEW: SE of each frequency share (ldpt plan and validate check it)",
            f"  max_relative_se: {_num(target_relative_se)}   # REVIEW: SE of a mean as a share of its bounds' width",
            "", "unlisted: error   # REVIEW: a data column this file does not name stops the release", ""]
+    if delimiter is not None and delimiter != ",":
+        out += ["input:", f"  csv_delimiter: {json.dumps(delimiter)}   # REVIEW: the delimiter the table was read "
+                "with (--delimiter)", ""]
     subject = next((d for d in drafts if d.subject_candidate), None)
     if subject is not None:
         out += ["# REVIEW: this column looks like a person identifier. Uncomment to key memoized columns and the",
@@ -564,13 +570,15 @@ def check_draft_destination(out: Path, table: Path | str, overwrite: bool) -> No
 
 def draft_policy(table: Path | str, out: Path | str | None = None, *, min_count: int = DEFAULT_MIN_COUNT,
                  target_se: float = DEFAULT_TARGET_SE, target_relative_se: float = DEFAULT_TARGET_RELATIVE_SE,
-                 overwrite: bool = False, batch_rows: int = 65536) -> DraftResult:
+                 overwrite: bool = False, batch_rows: int = 65536, delimiter: str | None = None) -> DraftResult:
     """Profile ``table`` (CSV or Parquet) in one streamed pass and write a commented draft policy
     to ``out`` (default: the steward's private folder), mode 0600, loaded back as a valid policy
     before it is moved into place.  Refused (nothing written): an ``out`` that exists without
     ``overwrite`` (exit 5), that is not .yaml/.yml, lies beside an extract or manifest, or is the
-    table, a key or a ledger (exit 2)."""
-    from .io import partial_path, remove_stale_partials
+    table, a key or a ledger (exit 2).  ``delimiter``: of a text table (one character, or ``tab``;
+    default: a tab for .tsv/.tab, else a comma); a delimiter other than the comma is written into
+    the draft's ``input.csv_delimiter``, so that releases read the table as it was profiled."""
+    from .io import delimiter_option, delimiter_problem, partial_path, remove_stale_partials
     from .policy import load_policy
 
     if isinstance(min_count, bool) or not (isinstance(min_count, int) and min_count >= 1):
@@ -580,9 +588,14 @@ def draft_policy(table: Path | str, out: Path | str | None = None, *, min_count:
         if isinstance(v, bool) or not (isinstance(v, (int, float)) and math.isfinite(v) and 0 < v < 1):
             raise OptionError("draft_policy", f"{{{name}}} must be a number between 0 and 1 (a standard error as "
                                               f"a share), got {v!r}.")
+    if delimiter is not None:
+        delimiter = delimiter_option(delimiter)
+        problem = delimiter_problem(delimiter)
+        if problem:
+            raise OptionError("draft_policy", f"the {{delimiter}} {delimiter!r} {problem}. Give another delimiter.")
     dest = Path(out) if out is not None else default_draft_path(table)
     check_draft_destination(dest, table, overwrite)
-    rows, stats = profile_table(table, batch_rows=batch_rows)
+    rows, stats = profile_table(table, batch_rows=batch_rows, delimiter=delimiter)
     drafts = [propose_column(n, st, min_count) for n, st in stats.items()]
     if not any(d.kind != "drop" for d in drafts):
         raise DataError(f"input {table}: no column could be proposed for release (every one looks like an "
@@ -595,7 +608,7 @@ def draft_policy(table: Path | str, out: Path | str | None = None, *, min_count:
             total += d.epsilon
     budget = math.ceil(round(total, 9) * 100 - 1e-6) / 100
     subject = next((d.name for d in drafts if d.subject_candidate), None)
-    text = render(drafts, rows, min_count, target_se, target_relative_se, budget)
+    text = render(drafts, rows, min_count, target_se, target_relative_se, budget, delimiter)
     check_draft_destination(dest, table, overwrite)   # again: the pass may have taken a while
     remove_stale_partials(dest)
     tmp = partial_path(dest)

@@ -282,3 +282,24 @@ def test_hostile_labels_and_names_stay_valid(tmp_path: Path, ldpt) -> None:
         res = privatize(raw, lp, KEY, tmp_path / f"partner-{kind}" / "x.parquet", nonce=nonce,
                         diagnostics_path=steward / "d.json")
         assert res.manifest.rows == n
+
+
+def test_a_semicolon_table_is_drafted_with_its_delimiter_and_released_as_profiled(tmp_path: Path, ldpt,
+                                                                                  private_dir: Path) -> None:
+    """--delimiter: the table is profiled with it and the draft records it (input.csv_delimiter),
+    so the release reads the table as it was profiled; a bad delimiter is refused (exit 2)."""
+    from ldptransform.keys import SecretKey
+    from ldptransform.release import privatize
+
+    df = generated(600)
+    raw = tmp_path / "members.csv"
+    df.to_csv(raw, index=False, sep=";")
+    out = private_dir / "semicolon.yaml"
+    r = ldpt("policy", "draft", str(raw), "--out", str(out), "--delimiter", ";")
+    assert r.returncode == 0, r.stderr
+    lp = load_policy(out)
+    assert lp.policy.input.csv_delimiter == ";"
+    assert {rc.name for rc in lp.columns if rc.mechanism is not None} >= {"colour", "hours"}
+    privatize(raw, lp, SecretKey(bytes(range(32))), tmp_path / "release" / "x.parquet", nonce="5" * 32)
+    r = ldpt("policy", "draft", str(raw), "--out", str(private_dir / "bad.yaml"), "--delimiter", ";;")
+    assert r.returncode == 2 and "--delimiter" in r.stderr and not (private_dir / "bad.yaml").exists()
