@@ -22,12 +22,9 @@ manifest alone: what a partner could compute themselves.
 from __future__ import annotations
 
 import base64
-import contextlib
 import html
 import io
 import math
-import os
-import tempfile
 from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime
@@ -35,6 +32,7 @@ from pathlib import Path
 from typing import Any
 
 from .errors import UsageError
+from .io import write_text_atomic
 from .keys import SecretKey
 from .manifest import Manifest, default_manifest_path, load_manifest
 from .outputs import MANIFEST, check_outputs, check_private_place
@@ -120,7 +118,7 @@ def release_report(extract: Path | str, out: Path | str, manifest_path: Path | s
     if diag is not None:
         _diagnostics(page, diag)
     text = page.render()
-    _write(out, text, 0o600 if steward else 0o644)
+    write_text_atomic(out, text, 0o600 if steward else 0o644)
     return ReportResult(out, steward, page.figures, len(est.columns), len(est.crosstabs), checks.ok)
 
 
@@ -437,18 +435,4 @@ def _diagnostics(page: _Page, d: dict[str, Any]) -> None:
     warnings = [str(w) for w in d.get("warnings", []) or []]
     if warnings:
         page.add("<ul>" + "".join(f'<li class="warn">{_e(w)}</li>' for w in warnings) + "</ul>")
-
-
-def _write(out: Path, text: str, mode: int) -> None:
-    """Write ``text`` to ``out`` whole (a temporary file beside it, renamed into place)."""
-    fd, tmp = tempfile.mkstemp(prefix=f".{out.name}.", suffix=".tmp", dir=out.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as f:
-            f.write(text)
-        os.chmod(tmp, mode)
-        os.replace(tmp, out)
-    except BaseException:
-        with contextlib.suppress(FileNotFoundError):
-            os.unlink(tmp)
-        raise
 
