@@ -209,6 +209,13 @@ def _prepare(snap: _Snapshot, first: bool, subject_hashes: Any, per_subject_eps:
     uniq, eps = aggregate(as_digests(subject_hashes), per_subject_eps)
     marked = {col: {"memoized": True} for col in (memo_updates or {})}  # the record checks them against its meta
     memo_pos = _memo_positions(marked, memo_updates, uniq)
+    return _prepared_on(snap, first, (subject_hashes, per_subject_eps, memo_updates), uniq, eps, memo_pos)
+
+
+def _prepared_on(snap: _Snapshot, first: bool, inputs: tuple[Any, Any, Any], uniq: np.ndarray, eps: np.ndarray,
+                 memo_pos: list[tuple[str, np.ndarray, np.ndarray]]) -> PreparedRecord:
+    """The record of the distinct subjects ``uniq`` (charged ``eps``) with memo positions ``memo_pos``
+    on the state ``snap``: the one way both ``prepare_record`` and ``record_release`` work it out."""
     idx = snap.find(uniq)
     ids = _registry_ids(idx, len(snap.digests))
     # the spend's encoding (zlib and hashlib leave Python's lock) beside the new state and its digest
@@ -217,8 +224,8 @@ def _prepare(snap: _Snapshot, first: bool, subject_hashes: Any, per_subject_eps:
         new, _, added = _next_state(snap, idx, uniq, eps, memo_pos)
         arrays = new.arrays()
         state_sha = _state_digest(arrays)
-        return PreparedRecord(snap, first, (subject_hashes, per_subject_eps, memo_updates), uniq, eps, idx,
-                              [col for col, _, _ in memo_pos], new, ids, added, arrays, state_sha, spend.result())
+        return PreparedRecord(snap, first, inputs, uniq, eps, idx, [col for col, _, _ in memo_pos], new, ids, added,
+                              arrays, state_sha, spend.result())
 
 
 def _registry_ids(idx: np.ndarray, n_old: int) -> np.ndarray:
@@ -1006,17 +1013,13 @@ class Ledger:
                 memo_cols = [col for col, _, _ in memo_pos]
                 if ready is not None and not ready.fits(snap, memo_cols):
                     ready = None  # prepared on another state (a job recorded since): worked out again
-                idx = ready.idx if ready is not None else snap.find(uniq)
-                self._check_cap_locked(snap, idx, eps, lifetime_epsilon)
+                if ready is None:
+                    ready = _prepared_on(snap, False, (subject_hashes, per_subject_eps, memo_updates), uniq, eps,
+                                         memo_pos)
+                self._check_cap_locked(snap, ready.idx, eps, lifetime_epsilon)
                 head, rid = self._head_for(key_fingerprint)
-                if ready is not None:
-                    new, added, arrays = ready.new, ready.added, ready.arrays
-                    state_sha, spend = ready.state_sha256, ready.spend
-                else:
-                    new, ids, added = _next_state(snap, idx, uniq, eps, memo_pos)
-                    arrays = new.arrays()
-                    state_sha, spend = _state_digest(arrays), _spend_of(ids, eps)
-                self._write_state(arrays, added, memo_cols)
+                new, state_sha, spend = ready.new, ready.state_sha256, ready.spend
+                self._write_state(ready.arrays, ready.added, memo_cols)
                 row = {**row, "id": rid, "time": row["time"] or _utc_now(), "subjects_charged": len(uniq),
                        "state_sha256": state_sha}
                 row_hash = self._write_row(row, head, spend)
