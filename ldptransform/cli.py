@@ -76,6 +76,28 @@ def _tell_interrupted(text: str = "interrupted: stopped before finishing.") -> N
     _report_error(ExitCode.INTERRUPTED, "interrupted", text)
 
 
+def _interrupt_in_chain(err: BaseException) -> bool:
+    """Whether ``err`` was caused by an interrupt: Python turns a KeyboardInterrupt raised at some
+    points (a class body's ``__set_name__`` while a lazy import runs) into another exception with
+    the interrupt as its cause, which is still an interrupt, not a bug."""
+    seen: set[int] = set()
+    cur: BaseException | None = err
+    while cur is not None and id(cur) not in seen:
+        if isinstance(cur, KeyboardInterrupt):
+            return True
+        seen.add(id(cur))
+        cur = cur.__cause__ or cur.__context__
+    return False
+
+
+def _forget_unhandled_interrupt() -> None:
+    """Clear CPython's mark of an interrupt that escaped code run by ``exec`` of a string (dataclass
+    and namedtuple creation do that during lazy imports): under ``python -m`` the interpreter would
+    otherwise end itself by SIGINT (exit -2) after our exit 130.  Running any string through
+    ``exec`` clears the mark."""
+    exec("pass")  # noqa: S102 - a constant string
+
+
 # -- the JSON log (--log-format json) ---------------------------------------------------------
 
 class LogFormat(StrEnum):
@@ -193,7 +215,10 @@ def _run_log(command: str, fmt: LogFormat, inputs: dict[str, Any]) -> Iterator[R
     except KeyboardInterrupt:
         _tell_interrupted(INTERRUPTED)
         raise typer.Exit(code=ExitCode.INTERRUPTED) from None
-    except Exception:
+    except Exception as err:
+        if _interrupt_in_chain(err):
+            _tell_interrupted(INTERRUPTED)
+            raise typer.Exit(code=ExitCode.INTERRUPTED) from None
         if not log.json:
             raise
         _report_error(ExitCode.INTERNAL, "internal", "internal error (a bug); please report it with the traceback",
@@ -553,6 +578,11 @@ def _user_errors(flags: dict[str, str] | None = None) -> Iterator[None]:
         _report_error(code, kind, os_error_message(err))
         raise typer.Exit(code=code) from None
     except KeyboardInterrupt:
+        _tell_interrupted(INTERRUPTED)
+        raise typer.Exit(code=ExitCode.INTERRUPTED) from None
+    except Exception as err:
+        if not _interrupt_in_chain(err):
+            raise
         _tell_interrupted(INTERRUPTED)
         raise typer.Exit(code=ExitCode.INTERRUPTED) from None
 
@@ -1665,12 +1695,19 @@ def exit_codes(format: TableJson = typer.Option(TableJson.table, "--format", hel
 def main() -> None:
     try:
         app()
-    except SystemExit:
+    except SystemExit as done:
+        if done.code == ExitCode.INTERRUPTED:
+            _forget_unhandled_interrupt()
         raise
     except KeyboardInterrupt:
         sys.stderr.write("interrupted: stopped before finishing.\n")
+        _forget_unhandled_interrupt()
         sys.exit(int(ExitCode.INTERRUPTED))
-    except Exception:  # a bug: show where, never locals (they may hold key material)
+    except Exception as err:  # a bug: show where, never locals (they may hold key material)
+        if _interrupt_in_chain(err):  # an interrupt Python wrapped (during a lazy import): not a bug
+            sys.stderr.write("interrupted: stopped before finishing.\n")
+            _forget_unhandled_interrupt()
+            sys.exit(int(ExitCode.INTERRUPTED))
         sys.stderr.write("ldpt: internal error (a bug). Please report it with this traceback:\n")
         sys.stderr.write(terminal_safe(traceback.format_exc(limit=20), keep_layout=True))  # data-derived text too
         sys.exit(int(ExitCode.INTERNAL))

@@ -441,3 +441,27 @@ def test_option_errors_name_flags_never_a_python_call(ldpt, tmp_path: Path) -> N
     res = ldpt("demo", "--dir", tmp_path / "demo", "--nonce", "zz")
     text = assert_user_error(res, ["--nonce", "32 hex"])
     assert "privatize(" not in text and "nonce=" not in text
+
+
+@pytest.mark.parametrize("raise_it", [
+    'exec("raise KeyboardInterrupt")',   # an interrupt escaping code run by exec of a string
+    'exec("try:\\n    raise KeyboardInterrupt\\nexcept BaseException as e:\\n    '
+    'raise RuntimeError(\'wrapped\') from e")',   # as Python wraps one raised in __set_name__
+], ids=["escaped-exec", "wrapped"])
+def test_an_interrupt_during_a_lazy_import_still_exits_130(raise_it: str, tmp_path: Path) -> None:
+    """SIGTERM can land while a lazy import creates dataclasses (code run by ``exec`` of a string):
+    CPython then marks the interrupt unhandled and, under ``python -m``, ends the process by SIGINT
+    (exit -2) after ours; or it wraps the interrupt in a RuntimeError (``__set_name__``).  Both must
+    end as the one-line interrupted message with exit 130, never -2 or an internal error."""
+    pkg = tmp_path / "runner"
+    pkg.mkdir()
+    (pkg / "__main__.py").write_text(
+        "import ldptransform.cli as cli\n\n\ndef boom():\n    " + raise_it + "\n\n\ncli.app = boom\ncli.main()\n",
+        encoding="utf-8")
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join([str(Path(__file__).resolve().parent.parent),
+                                                        os.environ.get("PYTHONPATH", "")])}
+    res = subprocess.run([sys.executable, "-m", "runner"], cwd=tmp_path, env=env, capture_output=True, text=True,
+                         timeout=120)
+    assert res.returncode == 130, (res.returncode, res.stderr)
+    assert res.stderr.strip() == "interrupted: stopped before finishing.", res.stderr
+    assert res.stdout == ""
