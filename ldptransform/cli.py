@@ -1287,7 +1287,10 @@ def policy_check(policy: Path = typer.Argument(..., help="Policy file to check."
                                                   "every column in one pass, with example rows and raw values "
                                                   "(steward only); exit 1 if an error or warning is found."),
                  format: TableJson = typer.Option(TableJson.table, "--format", help="Output format of the data "
-                                                  "check (with --data).")) -> None:
+                                                  "check (with --data)."),
+                 delimiter: str | None = typer.Option(None, "--delimiter", help="The delimiter of a CSV/TSV table "
+                                                      "given with --data: one character, or the word tab; wins "
+                                                      "over the policy's input.csv_delimiter.")) -> None:
     """Check a policy file and show what each column becomes; with --data, check it against the raw table.
 
     Example: ldpt policy check policy.yaml --data survey.csv
@@ -1295,16 +1298,17 @@ def policy_check(policy: Path = typer.Argument(..., help="Policy file to check."
     from .policy import load_policy
 
     with _user_errors():
-        if format == TableJson.json and data is None:
+        if (format == TableJson.json or delimiter is not None) and data is None:
             from .errors import UsageError
 
-            raise UsageError("policy check: --format json is the shape of the data check; give --data TABLE with "
-                             "it, or leave --format out to see what each column becomes.")
+            flag = "--format json is the shape of" if format == TableJson.json else "--delimiter is for the table of"
+            raise UsageError(f"policy check: {flag} the data check; give --data TABLE with it, or leave it out to "
+                             "see what each column becomes.")
         lp = load_policy(policy)
         if data is not None:
             from .datacheck import check_data
 
-            report = check_data(lp, data)
+            report = check_data(lp, data, delimiter=delimiter)
     if data is not None:
         _data_check_report(report, format)
         raise typer.Exit(code=ExitCode.OK if report.ok else ExitCode.CHECK_FAILED)

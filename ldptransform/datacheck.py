@@ -26,7 +26,7 @@ import pyarrow.compute as pc
 import yaml
 
 from .errors import UsageError, terminal_safe
-from .io import TableSource
+from .io import TableSource, delimiter_option, delimiter_problem
 from .policy import MISSING_LABEL, OTHER_LABEL, LoadedPolicy, ResolvedColumn, load_policy
 from .release.encode import _NUMBER, _as_string_array, _label_codes
 from .release.memo import MAX_SUBJECT_BYTES
@@ -511,7 +511,7 @@ class _Checker:
 
 
 def check_data(policy: LoadedPolicy | Path | str, table: Path | str, *,
-               batch_rows: int = DEFAULT_BATCH_ROWS) -> DataCheckReport:
+               batch_rows: int = DEFAULT_BATCH_ROWS, delimiter: str | None = None) -> DataCheckReport:
     """Check ``policy`` (a loaded policy or its file) against the raw ``table`` (CSV or Parquet
     file, or a Parquet dataset folder, read as a release reads it) in one streamed pass, and
     report every problem of every column (``DataCheckReport``; ``.ok``, ``.to_dict()``).
@@ -519,12 +519,22 @@ def check_data(policy: LoadedPolicy | Path | str, table: Path | str, *,
     STEWARD ONLY: the report holds raw values of the table as examples; show it on the
     steward's terminal, never write it beside an extract or hand it to a partner.  A bad policy
     or an unreadable table raises the release's own errors (``PolicyError``, ``DataError``,
-    ``InputFileError``: exit code 2 on the command line)."""
+    ``InputFileError``: exit code 2 on the command line).  ``delimiter``: a text table's delimiter
+    (one character, or the word tab), winning over the policy's ``input.csv_delimiter`` as
+    ``privatize``'s does."""
     if batch_rows < 1:
         raise UsageError("check_data: batch_rows must be a positive number of rows.")
+    if delimiter is not None:
+        delimiter = delimiter_option(delimiter)
+        problem = delimiter_problem(delimiter)
+        if problem:
+            raise UsageError(f"policy check --data: the --delimiter {delimiter!r} {problem}. Give another delimiter.")
     lp = policy if isinstance(policy, LoadedPolicy) else load_policy(policy)
     src = TableSource(table, csv_null_values=lp.policy.input.csv_null_values,
-                      csv_delimiter=lp.policy.input.csv_delimiter)
+                      csv_delimiter=lp.policy.input.csv_delimiter, delimiter=delimiter)
+    if delimiter is not None and src.format != "csv":
+        raise UsageError(f"policy check --data: a --delimiter ({delimiter!r}) applies to a CSV or TSV table, but "
+                         f"{table} is not one. Leave --delimiter out.")
     checker = _Checker(lp, src)
     cols = checker.layout()
     names = [rc.name for rc in cols]

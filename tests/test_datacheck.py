@@ -434,3 +434,27 @@ def test_policy_side_problems(tmp_path: Path) -> None:
     got = _by_key(check_data(other, path))
     assert got[("person", "subject_key_not_in_table")].severity == "error"
     assert got[("who", "table_column_not_in_policy")].severity == "error"
+
+
+def test_delimiter_option(tmp_path: Path, policy_file: Path, ldpt) -> None:
+    """`--delimiter` (and ``check_data(delimiter=)``) reads a text table as `privatize --delimiter`
+    does, winning over the policy's input.csv_delimiter; misuse is exit 2 with one paragraph."""
+    table, _ = make_table(tmp_path, clean=True)
+    semi = tmp_path / "semi.csv"
+    semi.write_bytes(table.read_bytes().replace(b",", b";"))
+    plain = {**check_data(policy_file, table).to_dict(), "table": str(semi)}
+    by_option = check_data(policy_file, semi, delimiter=";").to_dict()
+    assert by_option == plain
+    assert check_data(policy_file, semi).to_dict() != plain     # read with commas: one column, other findings
+    res = ldpt("policy", "check", policy_file, "--data", semi, "--delimiter", ";", "--format", "json")
+    assert res.returncode == 1, res.stderr                       # the ghost column is missing from the table
+    assert json.loads(res.stdout) == plain
+    pq.write_table(pa.table({"pid": ["P1"]}), tmp_path / "t.parquet")
+    for args, words in (((policy_file, "--delimiter", ";"), ["--delimiter", "--data"]),
+                        ((policy_file, "--data", semi, "--delimiter", ";;"), ["--delimiter", "one character"]),
+                        ((policy_file, "--data", tmp_path / "t.parquet", "--delimiter", ";"), ["t.parquet", "CSV"])):
+        res = ldpt("policy", "check", *args)
+        assert res.returncode == 2, (args, res.stdout, res.stderr)
+        assert res.stdout == "" and "Traceback" not in res.stderr
+        assert len(res.stderr.strip().splitlines()) == 1, res.stderr
+        assert all(w in res.stderr for w in words), res.stderr
