@@ -37,6 +37,7 @@ from ldptransform.mechanisms import (
     DistributionMechanism,
     Hierarchy,
     SquareWave,
+    SubsetSelection,
     build,
     choose_categorical,
     registry,
@@ -114,17 +115,20 @@ def test_bad_parameters_are_refused():
 
 
 def test_hierarchy_picks_the_lower_variance_oracle_per_level():
-    """Same criterion as choose_categorical (total variance), restricted to GRR and OLH."""
+    """Same criterion as choose_categorical (total variance) among GRR and OLH; subset selection
+    (at its best size) only where it beats both by more than 1% (docs/formulas.md section 24)."""
     for eps in (0.5, 1.0, 3.0):
         m = Hierarchy(eps, PAY, 4, 1024)
         for o, k in zip(m.oracles, m.nodes):
             cats = [str(v) for v in range(k)]
             g, h = GRR(eps, cats).total_variance(), OLH(eps, cats).total_variance()
-            assert o.name == ("grr" if g <= h else "olh")
+            sv = SubsetSelection(eps, cats).total_variance()
+            assert o.name == ("subset" if sv * 1.01 < min(g, h) else "grr" if g <= h else "olh")
             # OUE, left out, would gain at most about 1% over OLH
             assert OUE(eps, cats).total_variance() >= 0.98 * min(g, h)
-        assert m.oracles[0].name == "grr"                 # 4 nodes: GRR always wins
-    assert [o.name for o in Hierarchy(1.0, PAY, 4, 256).oracles] == ["grr", "olh", "olh", "olh"]
+        assert m.oracles[0].name == ("subset" if eps == 0.5 else "grr")   # 4 nodes: subset of 2 at eps 0.5
+    assert [o.name for o in Hierarchy(1.0, PAY, 4, 256).oracles] == ["grr", "subset", "subset", "subset"]
+    assert [o.name for o in Hierarchy(1.0, PAY, 4, 1024).oracles] == ["grr", "subset", "subset", "subset", "olh"]
     # the column-level chooser also has subset selection, which beats both at k = 16, eps = 1
     top = choose_categorical(1.0, [str(v) for v in range(16)])[0]
     assert top.name != "grr"
@@ -270,11 +274,16 @@ def test_hierarchy_levels_are_data_independent_and_uniform():
     assert np.all(np.abs(counts - n / m.height) <= 5 * math.sqrt(n * (1 / m.height) * (1 - 1 / m.height)))
 
 
+# levels as the tool chose them at eps 1 before subset levels (specs of earlier releases)
+OLD_LEVELS_16 = [{"nodes": 4, "oracle": "grr"}, {"nodes": 16, "oracle": "olh", "hash_range": 4}]
+OLD_LEVELS_64 = OLD_LEVELS_16 + [{"nodes": 64, "oracle": "olh", "hash_range": 4}]
+
+
 def test_hierarchy_channel_meets_eps_level_by_level():
     """Given the level (data-independent, written out) and, for OLH, the public seed, a row's
     report is the level oracle's channel applied to its node: eps holds for every (level,
     seed, report) and every pair of inputs (here all 16 leaves), and the budget is used."""
-    m = Hierarchy(1.0, (0.0, 1.0), 4, 16)
+    m = Hierarchy(1.0, (0.0, 1.0), 4, 16, levels=OLD_LEVELS_16)   # the default now picks subset at 16 nodes
     assert [o.name for o in m.oracles] == ["grr", "olh"]
     leaves = np.arange(16)
     E = math.exp(1.0)
@@ -294,7 +303,7 @@ def test_hierarchy_channel_meets_eps_level_by_level():
 
 
 def test_hierarchy_outputs_and_alphabet():
-    m = Hierarchy(1.0, PAY, 4, 64)
+    m = Hierarchy(1.0, PAY, 4, 64, levels=OLD_LEVELS_64)     # grr/olh levels (subset levels: test_hierarchy_levels.py)
     n = 4000
     arrays = m.randomize(pay_data(n, 3), prf_words("h-alpha", n, m.words_per_row))
     assert [f.name for f in m.output_fields("pay")] == ["pay__level", "pay", "pay__hash"]
@@ -691,14 +700,14 @@ def test_release_writes_reports_that_decode_to_the_same_statistics(tmp_path, fmt
     out = tmp_path / f"x.{fmt}"
     res = privatize(raw, load_policy(tmp_path / "p.json"), KEY, out, nonce=NONCE)
     entries = {c.name: c for c in res.manifest.columns}
-    assert [o.name for o in entries["pay"].outputs] == ["pay__level", "pay", "pay__hash"]
+    assert [o.name for o in entries["pay"].outputs] == ["pay__level", "pay__subset", "pay"]   # eps 1: subset levels
     assert [o.name for o in entries["hours"].outputs] == ["hours"]
     assert "not an estimate" in entries["hours"].outputs[0].meaning
     assert "independent of the data" in entries["pay"].outputs[0].meaning
     if fmt == "parquet":
         table = pq.read_table(out)
     else:
-        types = {"pay__level": pa.int8(), "pay": pa.int32(), "pay__hash": pa.int64(), "hours": pa.int32()}
+        types = {"pay__level": pa.int8(), "pay": pa.int32(), "pay__subset": pa.string(), "hours": pa.int32()}
         table = pacsv.read_csv(out, convert_options=pacsv.ConvertOptions(column_types=types))
     for name, x in (("pay", df["pay"].to_numpy()), ("hours", np.clip(df["hours"].to_numpy(), 0, 70))):
         spec = entries[name].mechanism

@@ -23,9 +23,11 @@ whose per-column sufficient statistics are integer count vectors (``new_stats``,
   the bounds; each row is assigned to one of the h levels (root excluded) by a PRF word alone
   (independent of the data, uniform), and reports its node at that level through a frequency
   oracle at the full eps: GRR or OLH, whichever has the lower total variance for that level's
-  B^l nodes (``choose_categorical``'s criterion).  OUE is left out: the words a row consumes
-  are fixed across levels, and OUE needs one per node (256 per row at 256 leaves) for a
-  variance at most about 1% below OLH's (docs/formulas.md section 13).  Decoding: per level
+  B^l nodes (``choose_categorical``'s criterion), or subset selection at its best size where
+  its exact total variance is more than 1% below both (its report is B^l characters wide, so a
+  near tie goes to the compact report; docs/formulas.md section 24).  OUE is left out: the
+  words a row consumes are fixed across levels, and OUE needs one per node (256 per row at 256
+  leaves) for a variance at most about 1% below OLH's (docs/formulas.md section 13).  Decoding: per level
   unbiased node shares from that level's rows, then constrained inference (M. Hay, V. Rastogi,
   G. Miklau, D. Suciu, "Boosting the Accuracy of Differentially Private Histograms Through
   Consistency", PVLDB 3(1), 2010, as restated by Cormode et al.): weighted averaging bottom
@@ -63,15 +65,18 @@ from ..random.variates import (
     to_unit,
 )
 from .base import DistributionMechanism, check_epsilon, register
-from .categorical import GRR, HASH_PRIME, OLH, SupportSizeFit
-from .fit import FitResult, FitStats, HullFit, _impossible_result
+from .categorical import GRR, HASH_PRIME, OLH, SupportSizeFit, _as_strings, strings_to_bits
+from .fit import FitResult, FitStats, HullFit, SupportBoundsFit, _impossible_result
 from .numeric import GridMechanismParams, check_bounds
+from .subset import SubsetSelection
 
 DEFAULT_SW_GRID = 256
 MAX_SW_GRID = 4096          # (N+1) * 2^SAMPLING_BITS must stay below 2^63
 DEFAULT_BRANCHING = 4
 DEFAULT_LEAVES = 64          # lower median and range errors than 256 at eps 0.5-4 (benchmarks/README.md)
-MAX_LEAVES = 1024           # the decoder keeps a nodes x nodes co-support matrix per OLH level
+MAX_LEAVES = 1024           # the decoder keeps a nodes x nodes co-support matrix per OLH or subset level
+SUBSET_MARGIN = 0.01        # a subset level must beat grr and olh by more than this (relative total variance)
+_CHUNK_ELEMENTS = 1 << 22   # rows x nodes of subset reports handled at once
 EMS_TOL = 1e-3              # stop EMS when the log-likelihood changes by less (nats, whole extract)
 EMS_MAX_ITER = 10_000
 BOOTSTRAP_LABEL = b"ldptransform/ems-bootstrap/v1"
@@ -399,15 +404,46 @@ class HierarchyParams(BaseModel):
                                                  "(default 64)")
 
 
-# GRR or OLH (Any: the levels' callers choose what to call by the oracle's name, which mypy cannot narrow)
-def _level_oracle(epsilon: float, k: int, name: str | None = None, hash_range: int | None = None) -> Any:
+# GRR, OLH or subset (Any: the levels' callers choose what to call by the oracle's name, which mypy cannot narrow)
+def _level_oracle(epsilon: float, k: int, name: str | None = None, hash_range: int | None = None,
+                  subset_size: int | None = None) -> Any:
+    """The oracle of a level of k nodes.  Without a name, the tool's choice (docs/formulas.md
+    section 24): GRR or OLH, whichever has the lower exact total variance (a tie to GRR), unless
+    subset selection at its best size has a total variance more than SUBSET_MARGIN (1%) below
+    that one's: its report is k characters wide, so a near tie goes to the compact report."""
     cats = [str(v) for v in range(k)]
     if name is None:
         grr, olh = GRR(epsilon, cats), OLH(epsilon, cats)
-        return grr if grr.total_variance() <= olh.total_variance() * (1 + 1e-9) else olh
+        best = grr if grr.total_variance() <= olh.total_variance() * (1 + 1e-9) else olh
+        sub = SubsetSelection(epsilon, cats)
+        return sub if sub.total_variance() * (1 + SUBSET_MARGIN) < best.total_variance() else best
     if name == "grr":
         return GRR(epsilon, cats)
+    if name == "subset":
+        return SubsetSelection(epsilon, cats, subset_size)
     return OLH(epsilon, cats, hash_range)
+
+
+def _bits_to_level_strings(n: int, parts: list[tuple[np.ndarray, np.ndarray]]) -> pa.Array:
+    """The ``<col>__subset`` column: row r of ``rows`` gets its k-character '0'/'1' string from
+    ``bits`` (per subset level: (rows, (len(rows), k) booleans)), every other row a null.
+    Built from buffers (offsets, characters, validity), without a Python loop over rows."""
+    lengths = np.zeros(n, dtype=np.int64)
+    for rows, bits in parts:
+        lengths[rows] = bits.shape[1]
+    offsets = np.zeros(n + 1, dtype=np.int64)
+    np.cumsum(lengths, out=offsets[1:])
+    data = np.empty(int(offsets[-1]), dtype=np.uint8)
+    for rows, bits in parts:
+        k = bits.shape[1]
+        pos = offsets[rows][:, None] + np.arange(k)[None, :]
+        data[pos] = bits.astype(np.uint8) + np.uint8(48)
+    valid = np.packbits(lengths > 0, bitorder="little")
+    if offsets[-1] < (1 << 31) - 1:
+        return pa.StringArray.from_buffers(n, pa.py_buffer(offsets.astype(np.int32).tobytes()),
+                                           pa.py_buffer(data.tobytes()), pa.py_buffer(valid.tobytes()))
+    return pa.LargeStringArray.from_buffers(n, pa.py_buffer(offsets.tobytes()), pa.py_buffer(data.tobytes()),
+                                            pa.py_buffer(valid.tobytes()))
 
 
 @register
@@ -445,10 +481,15 @@ class Hierarchy(DistributionMechanism):
             self.oracles = []
             for l, lev in enumerate(levels):
                 k = branching ** (l + 1)
-                if not isinstance(lev, dict) or lev.get("nodes") != k or lev.get("oracle") not in ("grr", "olh"):
+                if (not isinstance(lev, dict) or lev.get("nodes") != k
+                        or lev.get("oracle") not in ("grr", "olh", "subset")):
                     raise PolicyError(f"mechanism {self.name}: level {l + 1} must be "
-                                      f"{{nodes: {k}, oracle: grr|olh}}")
-                self.oracles.append(_level_oracle(self.epsilon, k, lev["oracle"], lev.get("hash_range")))
+                                      f"{{nodes: {k}, oracle: grr|olh|subset}}")
+                if lev["oracle"] == "subset" and "subset_size" not in lev:
+                    raise PolicyError(f"mechanism {self.name}: level {l + 1} has oracle subset and needs its "
+                                      f"subset_size (a whole number from 1 to {k - 1})")
+                self.oracles.append(_level_oracle(self.epsilon, k, lev["oracle"], lev.get("hash_range"),
+                                                  lev.get("subset_size")))
 
     def to_spec(self) -> dict[str, Any]:
         levels = []
@@ -456,6 +497,8 @@ class Hierarchy(DistributionMechanism):
             lev: dict[str, Any] = {"nodes": o.k, "oracle": o.name}
             if o.name == "olh":
                 lev["hash_range"] = o.g
+            elif o.name == "subset":
+                lev["subset_size"] = o.m
             levels.append(lev)
         return {"mechanism": self.name, "epsilon": self.epsilon, "bounds": [self.lo, self.hi],
                 "branching": self.branching, "leaves": self.leaves, "levels": levels}
@@ -475,13 +518,40 @@ class Hierarchy(DistributionMechanism):
     def _has_olh(self) -> bool:
         return any(o.name == "olh" for o in self.oracles)
 
+    @property
+    def _has_subset(self) -> bool:
+        return any(o.name == "subset" for o in self.oracles)
+
+    @property
+    def _subset_field(self) -> int:
+        """Position of ``<col>__subset`` among the output fields: second, after the level, so that
+        the last field (report or hash) is never null on a reported row (the readers take a null
+        last field for a row that did not report the column, under strategy sample)."""
+        return 1
+
+    @property
+    def _report_field(self) -> int:
+        return 2 if self._has_subset else 1
+
     # randomization ----------------------------------------------------------------------------
     @property
     def words_per_row(self) -> int:
-        return 1 + (4 if self._has_olh else 2)
+        """Word 0 draws the level; the level's oracle reads words 1.. (grr 2, olh 4, subset 1 +
+        min(m, k - m)); every row takes the most any level needs, so the count is fixed."""
+        return 1 + max([4 if self._has_olh else 2] + [o.words_per_row for o in self.oracles if o.name == "subset"])
+
+    @property
+    def output_bytes_per_row(self) -> int:
+        """A subset level's report is as wide as its nodes (the release slices wide reports by this)."""
+        if not self._has_subset:
+            return 8
+        return 24 + max(o.k for o in self.oracles if o.name == "subset")
 
     def output_fields(self, column: str) -> list[pa.Field]:
-        fields = [pa.field(column + "__level", pa.int8()), pa.field(column, pa.int32())]
+        fields = [pa.field(column + "__level", pa.int8())]
+        if self._has_subset:
+            fields.append(pa.field(column + "__subset", pa.string()))
+        fields.append(pa.field(column, pa.int32()))
         if self._has_olh:
             fields.append(pa.field(column + "__hash", pa.int64()))
         return fields
@@ -490,7 +560,16 @@ class Hierarchy(DistributionMechanism):
         if field_name.endswith("__level"):
             return "tree level (1 = coarsest) this row reports; drawn from the keyed PRF, independent of the data"
         if field_name.endswith("__hash"):
-            return "public hash seed a*P+b of this row (P = 2^31-1) on levels reported by olh; 0 on grr levels"
+            return ("public hash seed a*P+b of this row (P = 2^31-1) on levels reported by olh; 0 on grr and "
+                    "subset levels" if self._has_subset else
+                    "public hash seed a*P+b of this row (P = 2^31-1) on levels reported by olh; 0 on grr levels")
+        if field_name.endswith("__subset"):
+            return ("reported subset of the nodes on levels reported by subset: character j is 1 if node j of that "
+                    "level is in the row's randomized subset (exactly the level's subset_size ones); empty on "
+                    "other levels")
+        if self._has_subset:
+            return ("reported node of that level: the node index (grr levels) or the reported hash bucket (olh "
+                    "levels), 0 on subset levels; see the mechanism spec's levels")
         return ("reported node of that level: the node index (grr levels) or the reported hash bucket (olh "
                 "levels); see the mechanism spec's levels")
 
@@ -541,6 +620,7 @@ class Hierarchy(DistributionMechanism):
         level = self.assign_levels(words)
         report = np.zeros(n, dtype=np.int64)
         seeds = np.zeros(n, dtype=np.int64)
+        subsets: list[tuple[np.ndarray, np.ndarray]] = []
         for l, o in enumerate(self.oracles):
             rows = np.flatnonzero(level == l + 1)
             if rows.size == 0:
@@ -549,33 +629,82 @@ class Hierarchy(DistributionMechanism):
             w = words[rows]
             if o.name == "grr":
                 report[rows] = o.randomize_codes(node, w[:, 1:3])
+            elif o.name == "subset":   # subset.py's exact sampler on words 1 .. 1 + min(m, k - m)
+                subsets.append((rows, o.randomize_bits(node, w[:, 1: 1 + o.words_per_row])))
             else:
                 s_arr, y_arr = o.randomize(node, w[:, 1:5])
                 seeds[rows] = s_arr.to_numpy()
                 report[rows] = y_arr.to_numpy()
-        out = [pa.array(level.astype(np.int8)), pa.array(report.astype(np.int32))]
+        out = [pa.array(level.astype(np.int8))]
+        if self._has_subset:
+            out.append(_bits_to_level_strings(n, subsets))
+        out.append(pa.array(report.astype(np.int32)))
         if self._has_olh:
-            out.append(pa.array(seeds))  # 0 on grr levels (a seed is at least 2^31 - 1): no nulls
+            out.append(pa.array(seeds))  # 0 on grr and subset levels (a seed is at least 2^31 - 1): no nulls
         return out
+
+    def _subset_chunks(self, arrays: list[pa.Array], level: np.ndarray, l: int,
+                       ok: np.ndarray | None = None) -> Any:
+        """Yield (rows, bits, bad) over the rows of subset level l+1 (those with ``ok``, if
+        given), in chunks of at most 2^22 characters: bits the (rows, k) booleans of the
+        reported subsets, bad the rows that are not k '0'/'1' characters with m ones."""
+        o = self.oracles[l]
+        at = level == l + 1
+        if ok is not None:
+            at &= ok
+        rows = np.flatnonzero(at)
+        arr = arrays[self._subset_field]
+        if isinstance(arr, pa.ChunkedArray):
+            arr = arr.combine_chunks()
+        step = max(1, _CHUNK_ELEMENTS // o.k)
+        for s in range(0, rows.size, step):
+            r = rows[s: s + step]
+            part = arr.take(pa.array(r))
+            if pa.types.is_integer(part.type):   # a CSV reader that dropped the leading zeros
+                part = pc.utf8_lpad(pc.cast(part, pa.string()), width=o.k, padding="0")
+            bits, bad = strings_to_bits(_as_strings(part), o.k)
+            bad |= np.count_nonzero(bits, axis=1) != o.m
+            bits[bad] = False
+            yield r, bits, bad
 
     def _parse(self, arrays: list[pa.Array]) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """(level, report, seed, bad) as numpy arrays; bad marks rows outside the alphabet (a
         null anywhere, a level out of range, a report beyond its level's alphabet, a seed that
-        is not 0 on a grr level or not a valid hash seed on an olh level)."""
+        is not 0 on a grr or subset level or not a valid hash seed on an olh level; with subset
+        levels, a report that is not 0 on them, a subset that is not null or empty on the other
+        levels, or not k characters '0'/'1' with the level's subset_size ones on its own)."""
         level, lnull = _integers(arrays[0], 0)
-        report, rnull = _integers(arrays[1], -1)
+        report, rnull = _integers(arrays[self._report_field], -1)
         bad = lnull | rnull | (level < 1) | (level > self.height) | (report < 0)
         if self._has_olh:
-            seed, snull = _integers(arrays[2], -1)
+            seed, snull = _integers(arrays[self._report_field + 1], -1)
             bad |= snull
         else:
             seed = np.zeros(len(level), dtype=np.int64)
+        sub_level = np.zeros(len(level), dtype=bool)
         for l, o in enumerate(self.oracles):
             at = level == l + 1
             if o.name == "grr":
                 bad |= at & ((report >= o.k) | (self._has_olh & (seed != 0)))
+            elif o.name == "subset":
+                sub_level |= at
+                bad |= at & ((report != 0) | (self._has_olh & (seed != 0)))
             else:
                 bad |= at & ((report >= o.g) | (seed < HASH_PRIME) | (seed >= HASH_PRIME * HASH_PRIME))
+        if self._has_subset:
+            arr = arrays[self._subset_field]
+            if isinstance(arr, pa.ChunkedArray):
+                arr = arr.combine_chunks()
+            if pa.types.is_integer(arr.type):
+                present = np.asarray(pc.is_valid(arr).to_numpy(zero_copy_only=False))
+            else:
+                text = _as_strings(arr)
+                present = np.asarray(pc.fill_null(pc.binary_length(text), 0).to_numpy(zero_copy_only=False)) > 0
+            bad |= ~sub_level & present
+            for l, o in enumerate(self.oracles):
+                if o.name == "subset":
+                    for r, _, b in self._subset_chunks(arrays, level, l):
+                        bad[r] |= b
         return level, report, seed, bad
 
     def count_invalid(self, arrays: list[pa.Array]) -> int:
@@ -588,7 +717,8 @@ class Hierarchy(DistributionMechanism):
     def audit_outcomes(self, arrays: list[pa.Array], pair: tuple[Any, Any]) -> np.ndarray:
         """What a report says about the pair (a, b) of values: its level, and whether it supports
         the node of a and the node of b on that level (the reported node for grr levels, the hash
-        bucket of the node for olh levels); malformed rows are one outcome of their own."""
+        bucket of the node for olh levels, membership in the reported subset for subset levels);
+        malformed rows are one outcome of their own."""
         level, report, seed, bad = self._parse(arrays)
         leaf = self.leaf_of(np.array([float(pair[0]), float(pair[1])]))
         code = np.full(len(level), 4 * self.height, dtype=np.int64)
@@ -597,6 +727,11 @@ class Hierarchy(DistributionMechanism):
             node = leaf // (self.branching ** (self.height - l - 1))
             if o.name == "grr":
                 sa, sb = report[at] == node[0], report[at] == node[1]
+            elif o.name == "subset":
+                sa, sb = np.zeros(at.size, dtype=bool), np.zeros(at.size, dtype=bool)
+                for r, bits, _ in self._subset_chunks(arrays, level, l, ~bad):
+                    i = np.searchsorted(at, r)
+                    sa[i], sb[i] = bits[:, node[0]], bits[:, node[1]]
             else:
                 seeds = seed[at].astype(np.uint64)
                 sa = o.hash_values(seeds, np.full(at.size, node[0], dtype=np.uint64)) == report[at]
@@ -615,7 +750,8 @@ class Hierarchy(DistributionMechanism):
 
     def realized_ratio(self) -> Fraction | None:
         """The worst level oracle's exact realized ratio (grr and olh sample with integer
-        thresholds; the level is drawn independently of the data and written out)."""
+        thresholds, subset gives an exact rational upper bound of its own; the level is drawn
+        independently of the data and written out)."""
         ratios = [o.realized_ratio() for o in self.oracles]
         return None if any(r is None for r in ratios) else max(ratios)
 
@@ -633,7 +769,7 @@ class Hierarchy(DistributionMechanism):
             out.append([off, o.k, -1, 0])
             off += o.k
         for rec, o in zip(out, self.oracles):
-            if o.name == "olh":
+            if o.name in ("olh", "subset"):
                 rec[2], rec[3] = off, o.k * o.k
                 off += o.k * o.k
         return [(a, b, c, d) for a, b, c, d in out], off
@@ -648,7 +784,7 @@ class Hierarchy(DistributionMechanism):
 
     def new_stats(self) -> np.ndarray:
         """int64 vector: rows per level (h), then per level the support count of each node,
-        then for OLH levels the node x node co-support counts (flattened)."""
+        then for OLH and subset levels the node x node co-support counts (flattened)."""
         return np.zeros(self.stats_size, dtype=np.int64)
 
     def add_stats(self, stats: np.ndarray, arrays: list[pa.Array]) -> None:
@@ -661,6 +797,16 @@ class Hierarchy(DistributionMechanism):
             y = report[rows]
             if o.name == "grr":
                 stats[soff: soff + k] += np.bincount(y, minlength=k)[:k]
+                continue
+            if o.name == "subset":
+                co = np.zeros((k, k))
+                for _, bits, _ in self._subset_chunks(arrays, level, l, ~bad):
+                    stats[soff: soff + k] += bits.sum(axis=0, dtype=np.int64)
+                    step = max(1, min(8192, (1 << 22) // k))  # float32 sums of 0/1 below 2^24 are exact
+                    for s in range(0, len(bits), step):
+                        Sf = bits[s: s + step].astype(np.float32)
+                        co += (Sf.T @ Sf).astype(np.float64)
+                stats[coff: coff + k * k] += np.rint(co).astype(np.int64).ravel()
                 continue
             seeds = seed[rows].astype(np.uint64)
             v = np.arange(k, dtype=np.uint64)
@@ -717,6 +863,10 @@ class Hierarchy(DistributionMechanism):
             parent = z[l] + np.repeat(adj, B, axis=0)
         return parent
 
+    @property
+    def _oracle_names(self) -> str:
+        return "/".join(f"subset of {o.m}" if o.name == "subset" else o.name for o in self.oracles)
+
     def decode(self, stats: np.ndarray, n: int) -> Distribution:
         stats = np.asarray(stats, dtype=np.int64)
         if stats.shape != (self.stats_size,):
@@ -726,7 +876,7 @@ class Hierarchy(DistributionMechanism):
             raise ValueError("hierarchy statistics do not add up to the row count")
         edges = np.linspace(self.lo, self.hi, self.leaves + 1)
         how = (f"hierarchy reports (eps {self.epsilon:g}, branching {self.branching}, {self.leaves} leaves, "
-               f"{self.height} levels, oracles {'/'.join(o.name for o in self.oracles)}): unbiased node shares per "
+               f"{self.height} levels, oracles {self._oracle_names}): unbiased node shares per "
                "level, then weighted constrained inference (consistent tree, root = 1); unbiased, may be "
                "negative in places; intervals hold whatever the shape inside a leaf (measured coverage of "
                "95% intervals on skewed, zero-spiked and count data, 20,000 and 200,000 rows, eps 0.5-4: "
@@ -752,7 +902,8 @@ class Hierarchy(DistributionMechanism):
 
 class HierarchyFit(FitStats):
     """``hierarchy``: each level's rows are tested as that level's oracle (grr: hull; olh:
-    support size and buckets).  The level itself is drawn from the PRF alone."""
+    support size and buckets; subset: the support counts' binomial bounds).  The level itself
+    is drawn from the PRF alone."""
 
     mechanism: Hierarchy
 
@@ -762,10 +913,15 @@ class HierarchyFit(FitStats):
 
     def __init__(self, mechanism: Hierarchy) -> None:
         super().__init__(mechanism)
-        self.parts: list[HullFit | SupportSizeFit] = []
+        self.parts: list[HullFit | SupportSizeFit | SupportBoundsFit] = []
         for o in mechanism.oracles:
-            self.parts.append(HullFit(o, o.channel(), lambda a: (np.zeros(0), np.zeros(0, bool)),
-                                      "reported nodes") if o.name == "grr" else SupportSizeFit(o))
+            if o.name == "grr":
+                self.parts.append(HullFit(o, o.channel(), lambda a: (np.zeros(0), np.zeros(0, bool)),
+                                          "reported nodes"))
+            elif o.name == "subset":
+                self.parts.append(SupportBoundsFit(o))
+            else:
+                self.parts.append(SupportSizeFit(o))
 
     def _add(self, arrays: list[pa.Array]) -> None:
         m = self.mechanism
@@ -776,6 +932,10 @@ class HierarchyFit(FitStats):
             at = (level == l + 1) & ~bad
             if isinstance(part, HullFit):
                 part.add_indices(report[at], np.zeros(int(at.sum()), dtype=bool))
+            elif isinstance(part, SupportBoundsFit):   # the level's valid subsets, as subset's summary
+                part.stats["rows"] += int(at.sum())
+                for _, bits, _ in m._subset_chunks(arrays, level, l, ~bad):
+                    part.stats["summary"] += bits.sum(axis=0, dtype=np.int64)
             else:
                 part.add_decoded(seed[at].astype(np.uint64), report[at], np.zeros(int(at.sum()), dtype=bool))
 
