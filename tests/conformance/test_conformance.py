@@ -178,7 +178,8 @@ EXAMPLES: dict[str, Example] = {
     "square-wave": Example(1.0, {"grid": 32}, no_exact_mean=(
         "decoded by EMS, biased toward smoothness by design; no unbiased estimator to check")),
     "hierarchy": Example(1.0, {"branching": 4, "leaves": 16}, channel=_hierarchy_channel, no_exact_mean=(
-        "unbiased through its level oracles (grr and olh, checked as such) and a linear consistency step")),
+        "unbiased through its level oracles (grr, olh and subset, checked as such) and a linear consistency "
+        "step")),
 }
 
 NAMES = sorted(registry())
@@ -438,7 +439,9 @@ def _corrupt(arr: pa.Array, rows: list[int]) -> tuple[pa.Array, list[int]]:
     vals = arr.to_pylist()
     t = arr.type
     for i, r in enumerate(rows):
-        if pa.types.is_string(t) or pa.types.is_large_string(t):
+        if (pa.types.is_string(t) or pa.types.is_large_string(t)) and vals[r] is None:
+            vals[r] = "0" * (i + 1)     # a field only some rows fill (hierarchy's subset levels): any text
+        elif pa.types.is_string(t) or pa.types.is_large_string(t):
             vals[r] = ["no-such-category", vals[r] + "0", "2" * len(vals[r])][i % 3]
         elif pa.types.is_integer(t):
             vals[r] = -1 - i

@@ -374,11 +374,17 @@ def test_a_composite_with_a_second_layer_reports_the_two_layer_ratio() -> None:
 
 @pytest.mark.parametrize("eps", EPS_GRID)
 def test_hierarchy_realized_channel(eps: float) -> None:
-    """hierarchy reports one data-independent level per row through that level's grr or olh: its
-    realized ratio is the worst level's, recomputed here from each level's keep threshold."""
+    """hierarchy reports one data-independent level per row through that level's grr, olh or subset:
+    its realized ratio is the worst level's, recomputed here from each level's keep threshold (grr,
+    olh); a subset level states its own exact upper bound, at least the bound from its exact word
+    counts (as test_subset_realized_channel checks it)."""
     for leaves in (16, 1024):
         m: Any = registry()["hierarchy"].from_policy(eps, (0.0, 100.0), {"branching": 4, "leaves": leaves})
-        worst = max(keep_channel(o.keep_threshold, o.k if o.name == "grr" else o.g)[0] for o in m.oracles)
+        for o in m.oracles:
+            if o.name == "subset":
+                assert subset_ratio_bound(o.k, o.m, o.thresholds[0]) <= o.realized_ratio() <= lower(eps)
+        worst = max(o.realized_ratio() if o.name == "subset" else
+                    keep_channel(o.keep_threshold, o.k if o.name == "grr" else o.g)[0] for o in m.oracles)
         assert m.realized_ratio() == worst <= lower(eps)
 
 
