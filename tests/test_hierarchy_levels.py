@@ -14,6 +14,7 @@ import functools
 import hashlib
 import json
 import math
+from typing import Any
 
 import numpy as np
 import pyarrow as pa
@@ -284,7 +285,7 @@ def test_monte_carlo_decode_quantiles_and_ranges() -> None:
 # -- old specs: the same fields and bytes as before subset levels ------------------------------------
 
 # computed with the code before subset levels (same inputs, key, nonce and stream as _digests)
-OLD_SPECS = {
+OLD_SPECS: dict[str, dict[str, Any]] = {
     "eps1-64": {"bounds": [20000.0, 200000.0], "branching": 4, "epsilon": 1.0, "leaves": 64, "levels": [
         {"nodes": 4, "oracle": "grr"}, {"hash_range": 4, "nodes": 16, "oracle": "olh"},
         {"hash_range": 4, "nodes": 64, "oracle": "olh"}], "mechanism": "hierarchy"},
@@ -406,10 +407,12 @@ def test_release_and_estimate_with_subset_levels(pay_csv, tmp_path, fmt: str) ->
     assert entry.mechanism is not None and [lv["oracle"] for lv in entry.mechanism["levels"]] == [
         "grr", "subset", "subset"]
     r = estimate(out, res.manifest_path, quantiles=[0.5], ranges=[("pay", 20000.0, 62187.5)])
-    q = r.columns["pay"].distribution.quantiles[0]
+    dist = r.columns["pay"].distribution
+    assert dist is not None
+    q, rg = dist.quantiles[0], dist.ranges[0]
     true_med = float(np.quantile(x, 0.5))
-    assert q.ci_low <= true_med <= q.ci_high
-    rg = r.columns["pay"].distribution.ranges[0]
+    assert q.ci_low is not None and q.ci_high is not None and q.ci_low <= true_med <= q.ci_high
+    assert rg.estimate is not None and rg.se is not None
     assert abs(rg.estimate - np.mean(x < 62187.5)) <= 5 * rg.se
-    assert "subset of 4" in r.columns["pay"].distribution.method
+    assert dist.method is not None and "subset of 4" in dist.method
 
