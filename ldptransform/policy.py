@@ -188,6 +188,7 @@ class NumericColumn(_Strict):
     quality: Quality | None = Field(None, description="Targets checked by `ldpt plan` and `ldpt validate`.")
     branching: int | None = Field(None, ge=2, le=16, description=_field_doc("branching", "distribution"))
     leaves: int | None = Field(None, ge=2, le=1024, description=_field_doc("leaves", "distribution"))
+    quantile: float | None = Field(None, gt=0, lt=1, description=_field_doc("quantile", "quantile"))
     memoize: Annotated[bool, Field(strict=True)] | None = Field(
         None, description="true: memoized randomness (permanent randomized response): a person (budget's "
                           "subject_key) with the same value gets the same report in every release; needs "
@@ -602,24 +603,26 @@ def _resolve_number(name: str, col: NumericColumn) -> ResolvedColumn:
     """A numeric column released as a number: a mean or distribution mechanism on its bounds."""
     rc = ResolvedColumn(name, "numeric", col)
     name_ = col.mechanism or "auto"
-    numeric = mech.names_of("mean", "distribution")
+    numeric = mech.names_of("mean", "distribution", "quantile")
     for fieldname in _set_fields(col, "frequency"):
         raise PolicyError(f"{_where(name, fieldname)}: {fieldname} applies to mechanism "
                           f"{_owners_text(fieldname, 'frequency')} on bins only")
-    if name_ == "auto" and "quantiles" in (col.needs or ()):
-        name_ = mech.DEFAULT_DISTRIBUTION
-        rc.chosen_because = mech.DEFAULT_DISTRIBUTION_REASON
+    auto_quantiles = name_ == "auto" and "quantiles" in (col.needs or ())
+    if auto_quantiles:   # one quantile named (quantile:): the mechanism with the smaller predicted SE for it
+        name_, rc.chosen_because = mech.choose_quantiles(col.epsilon, col.domain, col.quantile)
         _refuse_fields_of_others(name, col, name_)
     cls = mech.registry().get(name_)
     takes = cls.policy_fields() if cls is not None else mech.AUTO_NUMERIC_FIELDS if name_ == "auto" else ()
     params: dict[str, Any] = {}
     refused: list[str] = []
-    for fieldname in _set_fields(col, "mean", "distribution"):
+    for fieldname in _set_fields(col, "mean", "distribution", "quantile"):
+        if auto_quantiles and fieldname == "quantile" and fieldname not in takes:
+            continue   # the quantile the automatic choice was made for; the chosen mechanism estimates it too
         if fieldname in takes:
             params[fieldname] = getattr(col, fieldname)
         elif fieldname not in mech.AUTO_NUMERIC_FIELDS:
             raise PolicyError(f"{_where(name, fieldname)}: {fieldname} applies to mechanism "
-                              f"{_owners_text(fieldname, 'mean', 'distribution')} only")
+                              f"{_owners_text(fieldname, 'mean', 'distribution', 'quantile')} only")
         elif cls is not None and cls.family != "frequency":
             refused.append(fieldname)   # a field of the automatic choice that this mechanism has no use for
     if name_ == "auto":

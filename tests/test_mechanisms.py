@@ -27,6 +27,7 @@ from ldptransform.random import KeyedStream
 from ldptransform.mechanisms import (
     CATEGORICAL,
     DISTRIBUTION,
+    QUANTILE,
     GRR,
     NUMERIC,
     OLH,
@@ -127,8 +128,8 @@ def test_every_registered_mechanism_is_documented():
     assert not [n for n in names if f"`{n}`" not in readme], "mechanisms missing from docs/mechanisms.md"
     assert not [n for n in names if n not in table], "mechanisms missing from docs/architecture.md"
     assert len(names) >= 13
-    assert set(CATEGORICAL) | set(NUMERIC) | set(DISTRIBUTION) == names
-    assert len(CATEGORICAL) + len(NUMERIC) + len(DISTRIBUTION) == len(names)
+    assert set(CATEGORICAL) | set(NUMERIC) | set(DISTRIBUTION) | set(QUANTILE) == names
+    assert len(CATEGORICAL) + len(NUMERIC) + len(DISTRIBUTION) + len(QUANTILE) == len(names)
     assert {registry()[n].kind for n in CATEGORICAL} == {"categorical"}
     assert {registry()[n].kind for n in NUMERIC} == {"numeric"}
     tested = {c[0] for c in CAT_CASES} | {c[0] for c in NUM_CASES}
@@ -136,10 +137,11 @@ def test_every_registered_mechanism_is_documented():
     # newer oracles and discrete-laplace by their own files (test_hadamard_subset.py, test_matrix.py,
     # test_discrete_laplace.py)
     own_files = {"hadamard", "subset", "matrix", "discrete-laplace"}
-    assert tested == names - set(DISTRIBUTION) - own_files, "every registered mechanism must be exercised"
+    # sequential-quantile: tests/test_sequential_quantile.py
+    assert tested == names - set(DISTRIBUTION) - set(QUANTILE) - own_files, "every registered mechanism is exercised"
 
 
-FAMILY_OF_KIND = {"categorical": "frequency", "numeric": "mean", "distribution": "distribution"}
+FAMILY_OF_KIND = {"categorical": "frequency", "numeric": "mean", "distribution": "distribution", "quantile": "quantile"}
 
 
 def test_every_mechanism_fills_the_contract():
@@ -153,10 +155,12 @@ def test_every_mechanism_fills_the_contract():
         DistributionMechanism,
         FrequencyOracle,
         MeanMechanism,
+        Mechanism,
         names_of,
     )
 
-    base_of = {"frequency": FrequencyOracle, "mean": MeanMechanism, "distribution": DistributionMechanism}
+    base_of = {"frequency": FrequencyOracle, "mean": MeanMechanism, "distribution": DistributionMechanism,
+               "quantile": Mechanism}
     assert set(LISTED) == set(registry()) and len(LISTED) == len(set(LISTED))
     assert names_of("frequency") == CATEGORICAL and names_of("mean") == NUMERIC
     assert names_of("distribution") == DISTRIBUTION
@@ -164,7 +168,8 @@ def test_every_mechanism_fills_the_contract():
         assert cls.family in FAMILIES and FAMILY_OF_KIND[cls.kind] == cls.family, name
         assert issubclass(cls, base_of[cls.family]), name
         assert issubclass(cls.Params, BaseModel) and cls.Params.model_config.get("extra") == "forbid", name
-        assert set(cls.policy_fields()) <= {"hash_range", "subset_size", "matrix", "grid", "branching", "leaves"}, name
+        assert set(cls.policy_fields()) <= {"hash_range", "subset_size", "matrix", "grid", "branching", "leaves",
+                                            "quantile"}, name
     assert registry()["olh"].policy_fields() == ("hash_range",)
     assert registry()["two-point"].policy_fields() == ()
     assert "grid" in registry()["two-point"].field_refusals

@@ -31,6 +31,7 @@ from .hadamard import HadamardResponse
 from .matrix import Matrix
 from .missing import DEFAULT_FLAG_SHARE, MissingFlag, MissingFlagDistribution, with_missing_flag
 from .numeric import DEFAULT_GRID, GridMechanism, Hybrid, Piecewise, TwoPoint
+from .quantile import QuantileDecoder, QuantileEstimate, SequentialQuantile
 from .subset import SubsetSelection
 
 # The listing of every registered mechanism by family (frequency, mean, distribution), in the
@@ -38,7 +39,8 @@ from .subset import SubsetSelection
 CATEGORICAL = ("grr", "oue", "olh", "sue", "hadamard", "subset", "matrix")
 NUMERIC = ("hybrid", "piecewise", "two-point", "discrete-laplace")
 DISTRIBUTION = ("square-wave", "hierarchy")
-LISTED = CATEGORICAL + NUMERIC + DISTRIBUTION
+QUANTILE = ("sequential-quantile",)
+LISTED = CATEGORICAL + NUMERIC + DISTRIBUTION + QUANTILE
 # The policy fields `mechanism: auto` takes on a numeric column (choose_numeric's parameters).
 AUTO_NUMERIC_FIELDS = ("grid",)
 
@@ -61,7 +63,8 @@ __all__ = ["Mechanism", "FrequencyOracle", "MeanMechanism", "DistributionMechani
            "Matrix", "SquareWave", "Hierarchy", "build", "registry", "choose_categorical", "choose_numeric",
            "categorical_candidates", "AUTO_CATEGORICAL", "default_distribution", "make", "DEFAULT_DISTRIBUTION",
            "CATEGORICAL", "NUMERIC", "DISTRIBUTION", "MissingFlag", "MissingFlagDistribution", "with_missing_flag",
-           "DEFAULT_FLAG_SHARE", "PerRowColumn"]
+           "DEFAULT_FLAG_SHARE", "PerRowColumn", "QUANTILE", "QuantileDecoder", "QuantileEstimate", "choose_quantiles",
+           "SequentialQuantile"]
 
 
 # Candidates for `mechanism: auto` on a categorical column, in order of preference on a tie
@@ -119,6 +122,19 @@ DEFAULT_DISTRIBUTION_REASON = ("needs quantiles: hierarchy, whose unbiased estim
 def default_distribution(epsilon: float, bounds: tuple[float, float]) -> tuple[Mechanism, str]:
     """The tool's default mechanism for a numeric column whose policy needs quantiles."""
     return make(DEFAULT_DISTRIBUTION, "numeric", epsilon, bounds), DEFAULT_DISTRIBUTION_REASON
+
+
+def choose_quantiles(epsilon: float | None, bounds: Any, quantile: float | None) -> tuple[str, str]:
+    """The mechanism for `needs: [quantiles]` without a named mechanism: the default distribution
+    mechanism, or with one `quantile` named, the one with the smaller predicted SE of it
+    (``quantile.choose_quantile_mechanism``): (its name, why)."""
+    if quantile is None:
+        return DEFAULT_DISTRIBUTION, DEFAULT_DISTRIBUTION_REASON
+    from .quantile import choose_quantile_mechanism
+
+    assert epsilon is not None
+    chosen, why = choose_quantile_mechanism(epsilon, bounds, quantile, default_distribution(epsilon, bounds)[0])
+    return chosen.name, why
 
 
 def make(name: str, kind: str, epsilon: float, domain: Any, **params: Any) -> Mechanism:

@@ -75,8 +75,9 @@ if TYPE_CHECKING:
     from .fit import FitStats
 
 #: The decoder families: frequency oracles (categorical reports), mean mechanisms (each report
-#: an unbiased estimate of the row's value) and distribution mechanisms (decoded as a whole).
-FAMILIES = ("frequency", "mean", "distribution")
+#: an unbiased estimate of the row's value), distribution mechanisms (decoded as a whole) and
+#: quantile mechanisms (one quantile of a numeric column, decoded with its interval).
+FAMILIES = ("frequency", "mean", "distribution", "quantile")
 
 _REGISTRY: dict[str, type[Mechanism]] = {}
 
@@ -264,6 +265,26 @@ class Mechanism(ABC):
     @abstractmethod
     def randomize(self, x: np.ndarray, words: np.ndarray) -> list[pa.Array]:
         """Randomize encoded inputs ``x`` with ``words`` of shape (n, words_per_row)."""
+
+    #: True for a sequential mechanism: rows are grouped in phases by their global row index
+    #: (``phase_of``), every row of a phase is randomized with the phase's setting, which the
+    #: mechanism computes from the reports of the earlier phases only (``start_run`` gives the
+    #: release's run: ``setting(phase)``, ``add(phase, rows, reports)``), and ``randomize_phase``
+    #: randomizes rows of one phase.  The release reads rows in order and splits batches at phase
+    #: boundaries (release/kernel.py); the dask engine works the settings out in a pre-pass.
+    sequential: ClassVar[bool] = False
+
+    def phase_of(self, rows: np.ndarray) -> np.ndarray:
+        """The phase of each global row index (sequential mechanisms)."""
+        raise NotImplementedError(f"mechanism {self.name} is not sequential")
+
+    def start_run(self) -> Any:
+        """A fresh run of a sequential mechanism for one release (its settings and counts)."""
+        raise NotImplementedError(f"mechanism {self.name} is not sequential")
+
+    def randomize_phase(self, x: np.ndarray, words: np.ndarray, phase: int, setting: Any) -> list[pa.Array]:
+        """Randomize rows of one phase with that phase's setting (sequential mechanisms)."""
+        raise NotImplementedError(f"mechanism {self.name} is not sequential")
 
     #: True for exact rejection samplers that draw a variable number of extra words per row
     #: (they implement ``randomize_with``); the release then hands them a draw function too.

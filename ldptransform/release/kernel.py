@@ -14,7 +14,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pyarrow as pa
@@ -76,11 +76,18 @@ def rebuild_dictionary(values: pa.Array) -> pa.Array:
 
 
 Observer = Callable[[int, Subjects, dict[str, np.ndarray], np.ndarray | None], None]
+Runs = Mapping[str, Any]  # sequential column -> its run in this release (``Mechanism.start_run``)
+
+
+def sequential_names(plans: list[ColumnPlan]) -> list[str]:
+    """The privatized columns whose mechanism is sequential (``Mechanism.sequential``)."""
+    return [p.rc.name for p in plans if p.rc.mechanism is not None and p.rc.mechanism.sequential]
 
 
 def privatize_batch(batch: pa.RecordBatch, row0: int, plans: list[ColumnPlan], schema: pa.Schema,
                     sampler: ColumnSampler | None = None, subject_key: str | None = None,
-                    held: Held | None = None, observe: Observer | None = None) -> pa.RecordBatch:
+                    held: Held | None = None, observe: Observer | None = None,
+                    runs: Runs | None = None) -> pa.RecordBatch:
     """The pure batch kernel: raw batch rows [row0, row0+n) -> privatized batch.
 
     ``held`` (``--allow-partial``): per privatized column, True for the rows of people held back
@@ -89,7 +96,9 @@ def privatize_batch(batch: pa.RecordBatch, row0: int, plans: list[ColumnPlan], s
     public cells are copied as any row's are (a public column is released in the clear).
     ``observe`` (with ``subject_key``): called once per batch with (row0, the subject column's
     bytes and offsets, each memoized column's value codes, the sampler's reported rows or None):
-    what the ledger needs of the rows, without encoding them twice (release/charges.py)."""
+    what the ledger needs of the rows, without encoding them twice (release/charges.py).
+    ``runs``: the run of every sequential column (their batches must come in row order, each row
+    once: ``privatize_sequential``)."""
     n = batch.num_rows
     arrays: list[pa.Array] = []
     reported = sampler.reported(row0, n) if sampler is not None else None
@@ -102,7 +111,14 @@ def privatize_batch(batch: pa.RecordBatch, row0: int, plans: list[ColumnPlan], s
             check_text(values, p.rc.name, row0)
             arrays.append(values if values.type == p.fields[0].type else pc.cast(values, p.fields[0].type))
             continue
-        out = privatize_column(p, values, row0, subjects, None if held is None else held.get(p.rc.name), codes)
+        held_p = None if held is None else held.get(p.rc.name)
+        if p.rc.mechanism is not None and p.rc.mechanism.sequential:
+            if runs is None or p.rc.name not in runs:
+                raise RuntimeError(f"column {p.rc.name}: a sequential mechanism randomized without its run (a bug)")
+            rep_p = None if reported is None or p.sample_index is None else reported[:, p.sample_index]
+            out = privatize_sequential(p, values, row0, held_p, runs[p.rc.name], rep_p)
+        else:
+            out = privatize_column(p, values, row0, subjects, held_p, codes)
         if reported is None:
             arrays.extend(out)
         else:
@@ -161,6 +177,38 @@ def privatize_column(p: ColumnPlan, values: pa.Array, row0: int, subjects: Subje
     if p.rc.rerandomize_epsilon is not None:  # the second layer: fresh noise in every release (release/memo.py)
         reports = rerandomize_rows(p, reports, row0, MAX_WORDS_PER_CALL)
     return reports
+
+
+def privatize_sequential(p: ColumnPlan, values: pa.Array, row0: int, held: np.ndarray | None, run: Any,
+                         reported: np.ndarray | None) -> list[pa.Array]:
+    """A sequential column of a batch of rows [row0, row0 + n): encode, then randomize phase by
+    phase (``Mechanism.phase_of``; a batch spanning a phase boundary is split there), each phase
+    with its setting from ``run`` (computed from the reports of the earlier phases), and count
+    the reports the extract will hold (``reported``: under strategy sample, the rows that report
+    the column; the others are blanked) into ``run``.  Rows must come in order, each once: the
+    run refuses a phase whose predecessor is incomplete.  Memoize is refused for such mechanisms
+    (their ``memoize_refusal``), so the words are the row-addressed stream's."""
+    x = encode(values, p, row0)
+    if held is not None and held.any():
+        x = np.where(held, placeholders(p, row0, len(x)), x).astype(x.dtype)
+    m = p.rc.mechanism
+    assert m is not None and p.stream is not None and p.memo is None
+    n, wpr = len(x), m.words_per_row
+    bits = p.stream.rows(row0)
+    if n == 0:
+        return m.randomize(x, bits.take(0, 0, wpr))
+    phase = m.phase_of(row0 + np.arange(n, dtype=np.int64))
+    cuts = [0, *(np.flatnonzero(np.diff(phase)) + 1).tolist(), n]
+    parts: list[list[pa.Array]] = []
+    for a, b in zip(cuts[:-1], cuts[1:]):
+        k = int(phase[a])
+        out = m.randomize_phase(x[a:b], bits.take(a, b, wpr), k, run.setting(k))
+        shown = out if reported is None else [arr.filter(pa.array(reported[a:b])) for arr in out]
+        run.add(k, b - a, shown)
+        parts.append(out)
+    if len(parts) == 1:
+        return parts[0]
+    return [pa.concat_arrays([pt[i] for pt in parts]) for i in range(len(parts[0]))]
 
 
 def _bits(p: ColumnPlan, row0: int, subjects: Subjects | None, codes: np.ndarray | None) -> BitSource:

@@ -24,7 +24,7 @@ from ..io import BatchWriter, StagedFiles, _rebatch, sha256_file
 from ..manifest import ExtractInfo, PartInfo
 from ..random.bits import KeyedStream
 from .columns import ColumnDiagnostics, ColumnPlan
-from .kernel import ColumnSampler, Held, Observer, privatize_batch
+from .kernel import ColumnSampler, Held, Observer, privatize_batch, privatize_sequential, sequential_names
 from .options import ReleaseOptions
 from .shuffle import Runs, RunWriter, Window, row_tags, spilling, windows, write_ranks
 
@@ -49,6 +49,9 @@ class PartJob:
     # memoized value codes by the kernel (privatize_batch's ``observe``)
     observe: Observer | None = None
     on_pass_done: Callable[[], None] | None = None  # the tap's: every row has been privatized (local engine)
+    # sequential columns (``Mechanism.sequential``): their runs, set by ``write_extract`` (local engine: one
+    # run filled as the rows pass in order; dask: the settings of every phase worked out by ``sequential_prepass``)
+    runs: dict[str, Any] | None = None
 
 
 @dataclass
@@ -74,7 +77,7 @@ def write_part(job: PartJob, batches: Any, row0: int, held: Held | None, path: P
         for batch in batches:
             n = batch.num_rows
             out_batch = privatize_batch(batch, row0 + rows, plans, job.schema, job.sampler, job.subject_key,
-                                        _mask_slice(held, rows, n), job.observe)
+                                        _mask_slice(held, rows, n), job.observe, job.runs)
             writer.write(out_batch)
             released += out_batch.num_rows
             rows += n
@@ -117,7 +120,7 @@ def spill_rows(job: PartJob, batches: Any, row0: int, held: Held | None, folder:
         for batch in batches:
             n = batch.num_rows
             out_batch = privatize_batch(batch, row0 + rows, plans, job.schema, job.sampler, job.subject_key,
-                                        _mask_slice(held, rows, n), job.observe)
+                                        _mask_slice(held, rows, n), job.observe, job.runs)
             runs.add(out_batch, row_tags(job.order, row0 + rows, n))
             rows += n
             if on_batch is not None:
@@ -246,6 +249,7 @@ def write_extract(job: PartJob, src: Any, held: Held | None, opts: ReleaseOption
     """Privatize every row into the staged extract (a file, or a dataset folder of parts).
     ``held``: rows of people held back by the ledger (their reports are of placeholder values)."""
     tmp = staged.add(opts.out)
+    job = with_runs(job, src, held, opts.engine, staged)
     if job.order is not None:
         return _write_shuffled(job, src, held, opts, tmp, staged, on_progress)
     if not opts.dataset_out:
@@ -259,6 +263,42 @@ def write_extract(job: PartJob, src: Any, held: Held | None, opts: ReleaseOption
         parts = run_parts_local(job, src, held, tmp, opts.fragment_rows, staged, on_progress)
     add_part_counts(job.plans, parts)
     return _dataset_written(job, opts, parts, sum(part.input_rows for part in parts))
+
+
+def with_runs(job: PartJob, src: Any, held: Held | None, engine: str, staged: StagedFiles) -> PartJob:
+    """``job`` with a run for each sequential column (none: ``job`` itself).  The local engine reads
+    the rows in order, so each run is filled as the writing pass goes; the dask engine's workers
+    handle stretches of rows at once, so the settings of every phase are worked out first, on the
+    client, in a pass of its own over the sequential columns (``sequential_prepass``)."""
+    names = sequential_names(job.plans)
+    if not names:
+        return job
+    if engine == "dask":
+        return replace(job, runs=sequential_prepass(job, src, held, staged))
+    return replace(job, runs={p.rc.name: p.rc.mechanism.start_run() for p in job.plans  # type: ignore[union-attr]
+                              if p.rc.name in names})
+
+
+def sequential_prepass(job: PartJob, src: Any, held: Held | None, staged: StagedFiles) -> dict[str, Any]:
+    """Read the sequential columns once, in row order, and randomize them as the release will
+    (same words, same sampling, same placeholders), only to count each phase's reports: the
+    settings of every phase, fixed (``frozen``) for the workers.  Its cost: one more sequential
+    read of those columns (a Parquet input reads only them; a CSV file is parsed again)."""
+    names = sequential_names(job.plans)
+    plans = [replace(p, diag=ColumnDiagnostics(), reported=0) for p in job.plans if p.rc.name in names]
+    runs = {p.rc.name: p.rc.mechanism.start_run() for p in plans}  # type: ignore[union-attr]
+    rows = 0
+    for batch in src.batches(names, job.batch_rows):
+        n = batch.num_rows
+        reported = job.sampler.reported(rows, n) if job.sampler is not None else None
+        mask = _mask_slice(held, rows, n)
+        for p in plans:
+            rep = None if reported is None or p.sample_index is None else reported[:, p.sample_index]
+            privatize_sequential(p, batch.column(p.rc.name), rows, None if mask is None else mask.get(p.rc.name),
+                                 runs[p.rc.name], rep)
+        rows += n
+        staged.check()
+    return {name: run.frozen() for name, run in runs.items()}
 
 
 def _dataset_written(job: PartJob, opts: ReleaseOptions, parts: list[PartResult], input_rows: int) -> Written:
@@ -299,7 +339,7 @@ def _write_file(job: PartJob, src: Any, held: Held | None, opts: ReleaseOptions,
     try:
         for batch in _batches(src, job):
             out_batch = privatize_batch(batch, rows, job.plans, job.schema, job.sampler, job.subject_key,
-                                        _mask_slice(held, rows, batch.num_rows), job.observe)
+                                        _mask_slice(held, rows, batch.num_rows), job.observe, job.runs)
             writer.write(out_batch)
             rows += batch.num_rows
             staged.check()  # stop between batches on SIGTERM/SIGINT

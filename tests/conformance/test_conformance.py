@@ -145,6 +145,13 @@ def _lattice_channel(m: Any) -> np.ndarray:
     return np.asarray(fit.Q)
 
 
+def _bit_unbiasedness(m: Any) -> tuple[np.ndarray, np.ndarray]:
+    """sequential-quantile: E[debiased bit (z - (1-p)) / (2p-1) | value above / at most the threshold]
+    over the exact channel, and the indicator 1[value <= threshold] (0, 1)."""
+    p = m.truth_probability
+    return m.channel() @ ((np.array([0.0, 1.0]) - (1.0 - p)) / (2.0 * p - 1.0)), np.array([0.0, 1.0])
+
+
 @dataclass(frozen=True)
 class Example:
     """How the suite builds one mechanism: eps, its policy fields (``Params``), and its
@@ -177,6 +184,7 @@ EXAMPLES: dict[str, Example] = {
     "discrete-laplace": Example(2.0, {"grid": 32}, unbiased=_lattice_unbiasedness, channel=_lattice_channel),
     "square-wave": Example(1.0, {"grid": 32}, no_exact_mean=(
         "decoded by EMS, biased toward smoothness by design; no unbiased estimator to check")),
+    "sequential-quantile": Example(1.0, {"quantile": 0.5}, unbiased=lambda m: _bit_unbiasedness(m)),
     "hierarchy": Example(1.0, {"branching": 4, "leaves": 16}, channel=_hierarchy_channel, no_exact_mean=(
         "unbiased through its level oracles (grr, olh and subset, checked as such) and a linear consistency "
         "step")),
@@ -243,6 +251,8 @@ def decoded(m: Mechanism, dec: Any) -> dict[str, np.ndarray]:
     if m.family == "mean":
         r = dec.mean(1.96)
         return {"estimate": np.array([r.estimate]), "se": np.array([r.se])}
+    if m.family == "quantile":
+        return {"stats": np.asarray(dec.stats, dtype=float)}
     dist = dec.distribution()
     return {"mass": np.asarray(dist.mass)} | ({} if dist.cov is None else {"cov": np.asarray(dist.cov)})
 
@@ -409,6 +419,21 @@ def _mc_distribution(m: Any, x: np.ndarray, arrays: list[pa.Array], dec: Any) ->
         assert abs(z) <= MC_SE, (b, z, ci)
 
 
+def _mc_quantile(m: Any, x: np.ndarray, arrays: list[pa.Array], dec: Any) -> None:
+    """A sequential mechanism randomized without a release's phases (every row as of phase 0, whose
+    two thresholds are fixed by the spec): the debiased share of reports below each threshold within
+    5 exact SEs of the share of its rows whose value is at most it (the phases themselves are
+    tested through releases in tests/test_sequential_quantile.py)."""
+    p = m.truth_probability
+    side = np.asarray(arrays[1].to_numpy(zero_copy_only=False)) % 2
+    for s, theta in enumerate(m.setting(m.new_stats(), [], 0).thresholds()):
+        n, c = dec.stats[0, s]
+        truth = float(np.mean(x[side == s] <= theta))
+        est = (c / n - (1 - p)) / (2 * p - 1)
+        P = (1 - p) + (2 * p - 1) * truth
+        assert abs(est - truth) <= MC_SE * math.sqrt(P * (1 - P) / n) / (2 * p - 1), (s, est, truth)
+
+
 @pytest.mark.parametrize("name", NAMES)
 def test_monte_carlo(name: str) -> None:
     """30000 rows of fixed skewed input, decoded by the mechanism's decoder.  Frequency oracles
@@ -424,7 +449,8 @@ def test_monte_carlo(name: str) -> None:
     assert m.count_invalid(arrays) == 0
     dec = decode(m, arrays)
     assert dec.n == MC_ROWS
-    {"frequency": _mc_frequency, "mean": _mc_mean, "distribution": _mc_distribution}[m.family](m, x, arrays, dec)
+    {"frequency": _mc_frequency, "mean": _mc_mean, "distribution": _mc_distribution,
+     "quantile": _mc_quantile}[m.family](m, x, arrays, dec)
 
 
 # -- 5. the output alphabet -----------------------------------------------------------------------
