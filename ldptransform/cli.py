@@ -18,6 +18,7 @@ import json
 import math
 import os
 import signal
+import re
 import sys
 import threading
 import time
@@ -882,12 +883,18 @@ def _column_tables(name: str, col: ColumnResult) -> None:
                    (f", {col.rows_reported} rows reported" if col.rows_reported is not None else ""))
     if col.family == "frequency" or col.frequencies:   # a numeric column's frequencies: its share missing
         t = Table(title=title, title_justify="left")
-        for h in ("value", "share", "unbiased", "se", "ci_low", "ci_high"):
+        mle = col.decoder == "likelihood"   # the maximum-likelihood share is its own consistent version
+        for h in ("value", "share", "se", "ci_low", "ci_high") if mle else \
+                ("value", "share", "unbiased", "se", "ci_low", "ci_high"):
             t.add_column(h, justify="left" if h == "value" else "right")
         for f in col.frequencies:
-            t.add_row(escape(f.value), *(_num(v, ".4f") for v in (f.consistent, f.estimate, f.se, f.ci_low,
-                                                                  f.ci_high)))
+            t.add_row(escape(f.value), *(_num(v, ".4f") for v in ((f.estimate, f.se, f.ci_low, f.ci_high) if mle else
+                                                                  (f.consistent, f.estimate, f.se, f.ci_low,
+                                                                   f.ci_high))))
         _show_table(t)
+        if mle:   # how it converged (the whole method is printed once, above the tables)
+            how = re.search(r"NOT converged[^)]*|converged in \d+ updates", col.decoder_method or "")
+            _print(escape(f"{name} decoder: likelihood" + (f" ({how.group(0)})" if how else "")))
     if col.mean is not None:
         t = Table(title=title, title_justify="left")
         for h in ("statistic", "estimate", "se", "ci_low", "ci_high"):
@@ -941,13 +948,19 @@ def _grouped_mean_table(g: GroupedMeanResult) -> None:
 
 def _estimate_table(result: EstimateResult) -> None:
     """Render an ``EstimateResult`` as tables (the default output of ``ldpt estimate``)."""
-    cm = next((c.consistent_method for c in result.columns.values() if c.consistent_method), "norm-sub").split(" ")[0]
+    cm = next((c.consistent_method for c in result.columns.values() if c.consistent_method and c.decoder is None),
+              "norm-sub").split(" ")[0]
     _print(escape(f"{result.rows} rows" + (f" from {len(result.extracts)} merged extracts"
                                            if len(result.extracts) > 1 else "") +
                   f"; {result.confidence:.0%} intervals (normal approximation)."))
-    _print(escape(f"Frequencies: 'share' is the consistent estimate ({cm}: post-processed to a valid "
-                  "distribution, slightly biased); 'unbiased' is the raw unbiased estimate, which may fall "
-                  "outside [0, 1], with its SE and interval."))
+    if any(c.decoder is None and c.family == "frequency" for c in result.columns.values()):
+        _print(escape(f"Frequencies: 'share' is the consistent estimate ({cm}: post-processed to a valid "
+                      "distribution, slightly biased); 'unbiased' is the raw unbiased estimate, which may fall "
+                      "outside [0, 1], with its SE and interval."))
+    mle = next((c for c in result.columns.values() if c.decoder == "likelihood"), None)
+    if mle is not None:
+        _print(escape("Columns decoded with --decoder likelihood show the maximum-likelihood share as 'share', "
+                      f"with its SE and interval; {mle.decoder_method}."))
     for name, col in result.columns.items():
         _column_tables(name, col)
     for x in result.crosstabs:
@@ -1045,6 +1058,9 @@ def estimate(
                                             "[LOW, HIGH), COLUMN:LOW..HIGH (repeatable)."),
     consistency: str = typer.Option("norm-sub", "--consistency", help="Post-processing shown as 'share': "
                                     "norm-sub, norm-mul or norm."),
+    decoder: str = typer.Option("projection", "--decoder", help="How frequency columns are decoded: projection "
+                                "(unbiased shares) or likelihood (maximum-likelihood shares with parametric-"
+                                "bootstrap intervals; docs/decoding.md)."),
     out: Path | None = typer.Option(None, "--out", help="Write the result to this file instead of stdout "
                                     "(never over an extract or manifest it reads)."),
     overwrite: bool = typer.Option(False, "--overwrite", help="With --out: replace an existing file."),
@@ -1080,7 +1096,7 @@ def estimate(
                          mean_by=[parse_pair(x, "--mean-by") for x in mean_by or []],
                          quantiles=parse_quantiles(quantiles) if quantiles else None,
                          ranges=[_range(x) for x in range_ or []], consistency=consistency,
-                         engine=engine.value, scheduler=scheduler, on_progress=prog.add)
+                         engine=engine.value, scheduler=scheduler, on_progress=prog.add, decoder=decoder)
         log.result.update(rows=result.rows, outputs={"estimates": "stdout" if out is None else str(out)},
                           format=format.value)
         if format == TableJsonCsv.json:

@@ -57,7 +57,7 @@ import pyarrow.compute as pc
 
 from . import mechanisms as mech
 from .errors import DataError, InputFileError, LdptError, ManifestError, UsageError
-from .mechanisms import QuantileDecoder, decoders
+from .mechanisms import decoders
 from .mechanisms.decoders import CONSISTENCY_METHODS, consistent, norm_additive, norm_mul, norm_sub  # noqa: F401
 from .mechanisms.decoders import mean_result as _mean
 from .mechanisms.decoders import moments as _moments
@@ -68,6 +68,8 @@ from .results import (ColumnResult, CrossTabCell, CrossTabResult, DistributionRe
                       GroupedMeanResult, GroupMean, MeanResult, QuantileResult, RangeResult)
 
 DECODE_BATCH_ROWS = 65536
+#: how frequency columns are decoded (``estimate(decoder=...)``, ``ldpt estimate --decoder``)
+DECODERS = ("projection", "likelihood")
 
 
 def damaged_extract(where: str, row: int, err: Exception) -> DataError:
@@ -119,12 +121,17 @@ def is_distribution(m: mech.Mechanism) -> bool:
     return m.family == "distribution"
 
 
-def stats_for(entry: ColumnEntry) -> decoders.Decoder | None:
+def stats_for(entry: ColumnEntry, decoder: str = "projection") -> decoders.Decoder | None:
     """A fresh decoder for a privatized column (None for a public one); a binned column's also
-    keeps the co-support counts that the SEs of its ranges and quantiles need."""
+    keeps the co-support counts that the SEs of its ranges and quantiles need.  With ``decoder``
+    "likelihood" a frequency column's also keeps the counts its likelihood needs (refused, naming
+    the column, when its mechanism has no finite channel: mechanisms/likelihood.py)."""
     if entry.mechanism is None:
         return None
-    return mech.build(entry.mechanism).decoder(joint=entry.type == "binned")
+    st = mech.build(entry.mechanism).decoder(joint=entry.type == "binned")
+    if decoder == "likelihood" and isinstance(st, decoders.FrequencyDecoder):
+        st.use_likelihood(entry.name)
+    return st
 
 
 # -- two-column statistics ------------------------------------------------------------------
@@ -336,6 +343,7 @@ class Analyses:
     quantiles: list[float] = field(default_factory=lambda: [0.5])
     ranges: list[tuple[str, float, float]] = field(default_factory=list)
     consistency: str = "norm-sub"
+    decoder: str = "projection"   # frequency columns: "projection" (unbiased) or "likelihood" (MLE)
 
 
 def parse_range(text: str) -> tuple[str, float, float]:
@@ -400,6 +408,8 @@ def _check_analyses(manifest: Manifest, an: Analyses) -> None:
             raise UsageError(f"--range: column {col!r} has no distribution in this extract (ranges need a numeric "
                              "column released with bins: or a distribution mechanism such as square-wave or "
                              "hierarchy).")
+    if an.decoder not in DECODERS:
+        raise UsageError(f"--decoder must be one of {', '.join(DECODERS)}, got {an.decoder!r}")
     if an.consistency not in CONSISTENCY_METHODS:
         raise UsageError(f"--consistency must be one of {', '.join(CONSISTENCY_METHODS)}, got {an.consistency!r}")
 
@@ -428,7 +438,7 @@ class Accumulated:
 
 def _empty_stats(manifest: Manifest, an: Analyses) -> Accumulated:
     entries = {c.name: c for c in manifest.columns if c.mechanism is not None}
-    cols: dict[str, Any] = {name: stats_for(e) for name, e in entries.items()}
+    cols: dict[str, Any] = {name: stats_for(e, an.decoder) for name, e in entries.items()}
     xt = {(a, b): CrossStats(cols[a].mechanism, cols[b].mechanism) for a, b in an.crosstabs}
     mb = {(y, g): GroupMeanStats(cols[g].mechanism, cols[y].shift) for y, g in an.mean_by}
     return Accumulated(manifest, 0, cols, xt, mb, [])
@@ -579,12 +589,6 @@ def _check_merge(extracts: list[Path], manifests: list[Path | None]) -> None:
             raise UsageError(f"cannot merge {ex} with {seen[0][0]}: their manifests describe different columns "
                              "or mechanism specs (names, eps, categories, bounds, output columns must all be equal; "
                              "only the nonce, time and hashes may differ). Estimate them separately.")
-        sequential = [c.name for c in m.columns if c.mechanism is not None and mech.build(c.mechanism).sequential]
-        if seen and sequential:
-            raise UsageError(f"cannot merge {ex} with {seen[0][0]}: column(s) {', '.join(map(repr, sequential))} use a "
-                             "sequential mechanism, whose thresholds each release set from its own earlier reports; "
-                             "added together, the reports of two releases no longer replay to the thresholds either "
-                             "one used, so the merged estimate would be wrong. Estimate each release on its own.")
         for ex0, m0 in seen:
             if _same_people(m, m0):
                 cols = ", ".join(map(repr, memoized_columns(m)))
@@ -731,14 +735,19 @@ def _with(text: str, *clauses: str) -> str:
     return "; ".join([text, *[c for c in clauses if c]])
 
 
-def _frequency_estimands(manifest: Manifest, entry: ColumnEntry, labels: list[str]) -> list[str]:
+MLE_CLAUSE = "estimated by maximum likelihood (on the simplex; biased toward its interior at small n)"
+LIKELIHOOD_CONSISTENT = ("none needed: the maximum-likelihood shares are non-negative and sum to 1, so 'share' is "
+                         "the estimate itself")
+
+
+def _frequency_estimands(manifest: Manifest, entry: ColumnEntry, labels: list[str], how: str = "") -> list[str]:
     from .policy import MISSING_LABEL
 
     enc = column_estimand(manifest, entry)
     if entry.type == "binned":
         return [_with(f"share of rows with {entry.name} {'missing' if lab == MISSING_LABEL else 'in bin ' + lab} "
-                      "among all rows", enc) for lab in labels]
-    return [_with(f"share of rows with {_is(entry.name, lab)} among all rows", enc) for lab in labels]
+                      "among all rows", how, enc) for lab in labels]
+    return [_with(f"share of rows with {_is(entry.name, lab)} among all rows", how, enc) for lab in labels]
 
 
 def _distribution_result(dist: Any, an: Analyses, col: str, confidence: float, enc: str,
@@ -770,6 +779,40 @@ def _distribution_mean(d: Any, confidence: float, estimand: str) -> MeanResult:
                       note=f"mean of the estimated distribution; interval: {iv.method}", estimand=estimand)
 
 
+def _decoded_frequencies(st: decoders.FrequencyDecoder, manifest: Manifest, entry: ColumnEntry, confidence: float,
+                         z: float, an: Analyses, rows: int, head: dict[str, Any]) -> tuple[Any, ...]:
+    """A frequency column's shares: unbiased (projection), or with ``--decoder likelihood`` the
+    maximum-likelihood shares (mechanisms/likelihood.py), whose decoder and method go into ``head``."""
+    labels = list(st.mechanism.categories)
+    if not st.likelihood:
+        return st.frequencies(z, an.consistency, rows, _frequency_estimands(manifest, entry, labels))
+    freqs, how = st.likelihood_frequencies(confidence, rows, _frequency_estimands(manifest, entry, labels, MLE_CLAUSE))
+    head.update(decoder="likelihood", decoder_method=how)
+    return freqs
+
+
+def _bin_estimates(st: decoders.FrequencyDecoder, confidence: float) -> tuple[Any, Any]:
+    """A binned column's bin shares and their covariance: unbiased with the exact covariance, or the
+    maximum-likelihood shares with the covariance of their bootstrap replicates."""
+    if st.likelihood:
+        return st.likelihood_shares(confidence)
+    return st.estimates()[0], st.covariance()
+
+
+def _bin_method(st: decoders.FrequencyDecoder) -> dict[str, str]:
+    if not st.likelihood:
+        return {}
+    return {"method": "maximum-likelihood bin shares (--decoder likelihood; on the simplex, biased toward its interior "
+                      "at small n); intervals from the covariance of the parametric bootstrap replicates, reaching the "
+                      "bin edges (normal approximation)"}
+
+
+def _consistent_text(st: decoders.FrequencyDecoder, an: Analyses) -> str:
+    if st.likelihood:
+        return LIKELIHOOD_CONSISTENT
+    return f"{an.consistency} (post-processed to a valid distribution; biased, for display)"
+
+
 def _column_result(entry: ColumnEntry, st: decoders.Decoder, manifest: Manifest, rows: int, confidence: float, z: float,
                    an: Analyses) -> ColumnResult:
     spec = entry.mechanism or {}
@@ -781,14 +824,13 @@ def _column_result(entry: ColumnEntry, st: decoders.Decoder, manifest: Manifest,
     bounds = None if bounds is None else tuple(bounds)
     if isinstance(st, decoders.FrequencyDecoder):
         labels = list(st.mechanism.categories)
-        freqs = st.frequencies(z, an.consistency, rows, _frequency_estimands(manifest, entry, labels))
+        freqs = _decoded_frequencies(st, manifest, entry, confidence, z, an, rows, head)
         dist = None
         if entry.type == "binned" and entry.bins is not None and st.n > 1:
             from .distribution import binned_distribution
             from .policy import MISSING_LABEL
 
-            cov: np.ndarray | None = st.covariance()
-            shares = st.estimates()[0]
+            shares, cov = _bin_estimates(st, confidence)
             assert shares is not None and cov is not None  # st.n > 1
             among = "all rows"
             if MISSING_LABEL in labels:   # missing: as-answer: the distribution among rows with a value
@@ -796,14 +838,14 @@ def _column_result(entry: ColumnEntry, st: decoders.Decoder, manifest: Manifest,
                 among = "rows with a value"
             if shares is not None and cov is not None:
                 prefix_se = np.sqrt(np.maximum(np.diag(np.cumsum(np.cumsum(cov, axis=0), axis=1)), 0.0))
-                d = binned_distribution(np.asarray(entry.bins, float), shares, prefix_se, cov=cov, n=st.n)
+                d = binned_distribution(np.asarray(entry.bins, float), shares, prefix_se, cov=cov, n=st.n,
+                                        **_bin_method(st))
                 if among != "all rows":
                     d.method += ("; among rows with a value: the bin shares divided by their sum (delta-method "
                                  "covariance)")
                 dist = _distribution_result(d, an, entry.name, confidence, enc, among)
-        return ColumnResult(**head, family="frequency", frequencies=freqs,
-                            consistent_method=f"{an.consistency} (post-processed to a valid distribution; biased, "
-                                              "for display)", distribution=dist)
+        return ColumnResult(**head, family="frequency", frequencies=freqs, consistent_method=_consistent_text(st, an),
+                            distribution=dist)
     if isinstance(st, decoders.MissingDistributionDecoder):   # missing: as-answer, a distribution mechanism
         share = st.missing_share(z, rows, _with(f"share of rows with {entry.name} missing among all rows", enc))
         mean = dist = None
@@ -822,12 +864,6 @@ def _column_result(entry: ColumnEntry, st: decoders.Decoder, manifest: Manifest,
                                                            "distribution)", enc))
             dist = _distribution_result(d, an, entry.name, confidence, enc)
         return ColumnResult(**head, family="distribution", bounds=bounds, mean=mean, distribution=dist)
-    if isinstance(st, QuantileDecoder):   # one quantile, tracked by its mechanism (its family's decoder)
-        qe = st.quantile(confidence)
-        qres = QuantileResult(qe.q, qe.estimate, qe.se, qe.lo, qe.hi, qe.method,
-                              estimand=_with(f"{qe.q:g}-quantile of {entry.name} among all rows (from one-bit tests at "
-                                             "thresholds set in phases; --quantiles does not apply)", enc))
-        return ColumnResult(**head, family="quantile", bounds=bounds, quantile=qres)
     if isinstance(st, decoders.MissingAnswerDecoder):   # missing: as-answer without bins
         share = st.missing_share(z, rows, _with(f"share of rows with {entry.name} missing among all rows", enc))
         return ColumnResult(**head, family="mean", bounds=bounds, frequencies=(share,),
@@ -875,12 +911,15 @@ def estimate(extract: Path | str | Sequence[Path | str], manifest_path: Path | s
              crosstabs: list[tuple[str, str]] | None = None, mean_by: list[tuple[str, str]] | None = None,
              quantiles: list[float] | None = None, ranges: list[tuple[str, float, float]] | None = None,
              consistency: str = "norm-sub", engine: str = "local", scheduler: str | None = None,
-             on_progress: Callable[[int], None] | None = None) -> EstimateResult:
+             on_progress: Callable[[int], None] | None = None, decoder: str = "projection") -> EstimateResult:
     """Unbiased frequencies and means (and the requested joint analyses, quantiles and
     ranges) with SE and CI, as an ``EstimateResult`` (``to_dict()``: the JSON shape of
     ``ldpt estimate --format json``; ``to_frame()``: one row per statistic).  ``extract`` may
     be a list: extracts with identical mechanism specs are merged by adding their sufficient
-    statistics.  ``on_progress`` is told the rows decoded, batch by batch (a count each time)."""
+    statistics.  ``on_progress`` is told the rows decoded, batch by batch (a count each time).
+    ``decoder``: how frequency columns (categorical and binned) are decoded: "projection" (the
+    unbiased shares) or "likelihood" (maximum-likelihood shares by iterative Bayesian update, with
+    parametric-bootstrap SEs and intervals; mechanisms/likelihood.py, docs/decoding.md)."""
     z_value(confidence)
     extracts: list[Any] = list(extract) if isinstance(extract, (list, tuple)) else [extract]
     manifests: list[Any] | None
@@ -893,7 +932,7 @@ def estimate(extract: Path | str | Sequence[Path | str], manifest_path: Path | s
             raise UsageError("with several extracts, give one --manifest per extract or none")
     an = Analyses(crosstabs=list(crosstabs or []), mean_by=list(mean_by or []),
                   quantiles=list(quantiles) if quantiles else [0.5], ranges=list(ranges or []),
-                  consistency=consistency)
+                  consistency=consistency, decoder=decoder)
     if engine not in ("local", "dask"):
         raise UsageError(f"--engine {engine!r} is not known; use local or dask.")
     with rows_told(on_progress):

@@ -327,8 +327,7 @@ class ColumnResult(_Subscript):
     """Everything estimated for one privatized column.  ``family`` says which statistics it
     has: "frequency" (``frequencies``, and ``distribution`` for a binned numeric column),
     "mean" (``mean``; with ``missing: as-answer``, the mean among rows with a value and, in
-    ``frequencies``, the share missing), "distribution" (``distribution`` and its ``mean``) or
-    "quantile" (``quantile``: the one quantile its mechanism tracks)."""
+    ``frequencies``, the share missing) or "distribution" (``distribution`` and its ``mean``)."""
 
     name: str
     type: str
@@ -344,8 +343,10 @@ class ColumnResult(_Subscript):
     # what the column's values are, as the release encoded them (clipping, bins, missing and
     # unknown values), from the manifest; every statistic's own estimand ends with it
     estimand: str = field(default="", compare=False)
-    # family "quantile": the one quantile its mechanism tracks, with SE and interval
-    quantile: QuantileResult | None = None
+    # how the frequencies were decoded when not by the default unbiased projection: "likelihood"
+    # (maximum-likelihood shares, ``estimate(decoder="likelihood")``), with how it was done
+    decoder: str | None = None
+    decoder_method: str | None = None
 
     def to_dict(self) -> dict[str, Any]:
         d: dict[str, Any] = {"type": self.type, "mechanism": self.mechanism, "epsilon": self.epsilon}
@@ -362,10 +363,10 @@ class ColumnResult(_Subscript):
                 d["mean"] = self.mean.to_dict()
         if self.distribution is not None:
             d["distribution"] = self.distribution.to_dict()
-        if self.quantile is not None:
-            d["quantile"] = self.quantile.to_dict()
         if self.estimand:
             d["estimand"] = self.estimand
+        if self.decoder is not None:
+            d["decoder"] = {"name": self.decoder, "method": self.decoder_method}
         return d
 
     def frame_rows(self, rows: int | None = None, confidence: float | None = None) -> list[dict[str, Any]]:
@@ -379,13 +380,13 @@ class ColumnResult(_Subscript):
         lo, hi = self.bounds if self.bounds is not None else (None, None)
         out = [_row("column", **head, value=self.family, low=lo, high=hi, method=self.consistent_method,
                     estimand=self.estimand or None)]
+        if self.decoder is not None:
+            out.append(_row("decoder", **head, value=self.decoder, method=self.decoder_method))
         out += [r for f in self.frequencies for r in f.frame_rows(**head)]
         if self.mean is not None:
             out += self.mean.frame_rows(**head)
         if self.distribution is not None:
             out += self.distribution.frame_rows(self.estimand, **head)
-        if self.quantile is not None:
-            out += self.quantile.frame_rows(**head)
         return out
 
 
@@ -596,6 +597,8 @@ class _EstimateReader:
                 public.append(str(r["column"]))
             elif kind in ("crosstab", "grouped mean"):
                 self._joint(r)
+            elif st == "decoder" and r["column"] in self.columns:   # how a column's frequencies were decoded
+                self.columns[r["column"]].update(decoder=_text(r["value"]), decoder_method=_text(r["method"]))
             else:
                 self._column(r, rows)
         columns = {n: self._column_result(b) for n, b in self.columns.items()}
@@ -605,7 +608,7 @@ class _EstimateReader:
         return EstimateResult(rows, float(head["confidence"]), columns, head["method"] or "", xt, gm,
                               tuple(extracts), tuple(public))
 
-    def _column(self, r: dict[str, Any], rows: int) -> None:  # noqa: C901 (one branch per statistic)
+    def _column(self, r: dict[str, Any], rows: int) -> None:
         name, st = r["column"], r["statistic"]
         if st == "column":
             lo, hi = _num(r["low"]), _num(r["high"])
@@ -634,8 +637,6 @@ class _EstimateReader:
             among = among.removesuffix(f"; {enc}") if enc else among
             b["distribution"] = {"method": r["method"] or "", "among": among, "quantiles": [], "ranges": [],
                                  "mass": [], "edges": [], "x": [], "F": []}
-        elif st == "quantile" and d is None and b["family"] == "quantile":   # the one quantile of its family
-            b["quantile"] = QuantileResult(float(r["value"]), est, se, lo, hi, r["method"], what)
         elif d is None:
             raise self._refuse(f"the frame has a {st!r} row of column {name!r} before its 'distribution' row")
         elif st == "quantile":

@@ -118,6 +118,38 @@ class FrequencyOracle(Mechanism):
         a, b = int(pair[0]), int(pair[1])
         return AUDIT_SUPPORT_LABELS[S[:, a].astype(np.int64) * 2 + S[:, b]]
 
+    # The likelihood decoder (mechanisms/likelihood.py, ``estimate(decoder="likelihood")``) reads an
+    # oracle whose reports reduce to a finite channel: ``likelihood_channel`` (k x M, P(cell | x) as
+    # the sampler realizes it) and ``likelihood_counts`` (the reports per cell, additive).  An oracle
+    # that cannot sets ``likelihood_reason`` (or overrides ``likelihood_refusal`` for a size cap).
+    likelihood_reason: ClassVar[str] = (
+        "its reports do not reduce to a finite channel with a fixed matrix that the likelihood decoder could read")
+
+    def likelihood_refusal(self) -> str:
+        """Why the likelihood decoder cannot read this oracle's reports ('' when it can)."""
+        if self.likelihood_reason:
+            return self.likelihood_reason
+        from .likelihood import MAX_CHANNEL_ENTRIES
+
+        size = self.k * self.likelihood_cells
+        if size > MAX_CHANNEL_ENTRIES:
+            return (f"its channel has {self.k} categories x {self.likelihood_cells} report cells = {size} entries, "
+                    f"above the {MAX_CHANNEL_ENTRIES} the likelihood decoder and its bootstrap work on")
+        return ""
+
+    @property
+    def likelihood_cells(self) -> int:
+        """M: the number of cells of ``likelihood_channel`` (oracles the likelihood decoder reads)."""
+        raise NotImplementedError(self.likelihood_reason)
+
+    def likelihood_channel(self) -> np.ndarray:
+        """P(cell j | category x), shape (k, M), rows summing to 1, as the sampler realizes it."""
+        raise NotImplementedError(self.likelihood_reason)
+
+    def likelihood_counts(self, arrays: list[pa.Array]) -> np.ndarray:
+        """int64 counts of the reports in each of the M cells (malformed reports left out)."""
+        raise NotImplementedError(self.likelihood_reason)
+
     # The decoder's additive summary of a batch of reports.  By default the support counts;
     # a mechanism with a small output alphabet may keep the histogram of its outputs instead
     # and turn it into support counts when decoding (hadamard: one fast Walsh-Hadamard
@@ -292,6 +324,19 @@ class GRR(FrequencyOracle):
         p, q = self.p_star, self.q_star
         return np.full((self.k, self.k), q) + np.eye(self.k) * (p - q)
 
+    # the likelihood decoder: the cells are the reported categories
+    likelihood_reason: ClassVar[str] = ""
+
+    @property
+    def likelihood_cells(self) -> int:
+        return self.k
+
+    def likelihood_channel(self) -> np.ndarray:
+        return self.channel()
+
+    def likelihood_counts(self, arrays: list[pa.Array]) -> np.ndarray:
+        return self.support_counts(arrays).astype(np.int64)
+
     def max_log_ratio(self) -> float:
         return math.log(self._threshold_ratio())
 
@@ -421,6 +466,27 @@ class _UnaryEncoding(FrequencyOracle):
             P[x] = np.prod(np.where(outs == 1, prob1, 1 - prob1), axis=1)
         return P
 
+    # the likelihood decoder: the cells are the 2^k bit vectors (index: bit j = character j), k <= 12
+    likelihood_reason: ClassVar[str] = ""
+
+    def likelihood_refusal(self) -> str:
+        if self.k > 12:
+            return (f"its reports are bit vectors over the {self.k} categories, and the likelihood decoder enumerates "
+                    "the 2^k possible reports only for at most 12 categories")
+        return super().likelihood_refusal()
+
+    @property
+    def likelihood_cells(self) -> int:
+        return 1 << self.k
+
+    def likelihood_channel(self) -> np.ndarray:
+        return self.channel()
+
+    def likelihood_counts(self, arrays: list[pa.Array]) -> np.ndarray:
+        bits, bad = strings_to_bits(arrays[0], self.k)
+        index = bits[~bad].astype(np.int64) @ (np.int64(1) << np.arange(self.k, dtype=np.int64))
+        return np.bincount(index, minlength=1 << self.k).astype(np.int64)
+
     def max_log_ratio(self) -> float:
         # Two inputs differ in two bit positions; the worst output has 1 at x and 0 at x'
         # (the realized integer channel: ``realized_ratio``).
@@ -535,6 +601,10 @@ class OLH(FrequencyOracle):
 
     name: ClassVar[str] = "olh"
     Params: ClassVar[type[BaseModel]] = OLHParams
+    likelihood_reason: ClassVar[str] = (
+        "its reports carry a per-row public hash seed: which categories a report supports depends on that row's "
+        "seed, so the reports do not reduce to one finite channel, and the parametric bootstrap of the likelihood "
+        "decoder has no exact distribution of the supported sets to draw from")
     second_layer_reason: ClassVar[str] = (
         "mechanism olh writes its public hash seed as part of the memoized report: the seed stays the same for a "
         "person and value in every release, so it would remain an exact linkage key and still show every change "

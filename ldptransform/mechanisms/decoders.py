@@ -47,6 +47,7 @@ if TYPE_CHECKING:
 
     from .base import DistributionMechanism, MeanMechanism
     from .categorical import FrequencyOracle
+    from .likelihood import LikelihoodEstimate
     from .missing import MissingFlag, MissingFlagDistribution
 
 CONSISTENCY_METHODS = ("norm-sub", "norm-mul", "norm")
@@ -169,12 +170,33 @@ class FrequencyDecoder(Decoder):
     support: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
     joint: bool = False                             # also keep co-support counts (binned columns: range SEs)
     cosupport: np.ndarray = field(default_factory=lambda: np.zeros((0, 0), dtype=np.int64))
+    likelihood: bool = False                        # also keep the reports per cell of the likelihood channel
+    cells: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
+    _fit: Any = field(default=None, repr=False, compare=False)   # the last likelihood estimate, with its key
 
     def __post_init__(self) -> None:
         if self.support.size == 0:
             self.support = np.zeros(self.mechanism.summary_size, dtype=np.int64)
         if self.joint and self.cosupport.size == 0:
             self.cosupport = np.zeros((self.mechanism.k, self.mechanism.k), dtype=np.int64)
+        if self.likelihood and self.cells.size == 0:
+            self.cells = np.zeros(self.mechanism.likelihood_cells, dtype=np.int64)
+
+    def use_likelihood(self, column: str) -> Self:
+        """Also keep what the likelihood decoder needs (``likelihood_frequencies``); a mechanism that
+        cannot be decoded so is refused with one paragraph naming ``column`` and the reason."""
+        m = self.mechanism
+        why = m.likelihood_refusal()
+        if why:
+            raise UsageError(f"column {column!r} (mechanism {m.name}) cannot be decoded with --decoder likelihood: "
+                             f"{why}. Decode this extract with --decoder projection (the default: unbiased shares "
+                             "with normal-approximation intervals, for every frequency oracle); the likelihood "
+                             "decoder reads categorical and binned columns whose mechanism has a finite channel "
+                             "(docs/decoding.md lists them).")
+        self.likelihood = True
+        if self.cells.size == 0:
+            self.cells = np.zeros(m.likelihood_cells, dtype=np.int64)
+        return self
 
     def add(self, arrays: list[pa.Array]) -> Self:
         self.n += len(arrays[0])
@@ -182,6 +204,8 @@ class FrequencyDecoder(Decoder):
         if self.joint:
             si = self.mechanism.support(arrays).astype(np.int64)
             self.cosupport += si.T @ si       # reports supporting both v and w
+        if self.likelihood:
+            self.cells += self.mechanism.likelihood_counts(arrays)
         return self
 
     def merge(self, other: Self) -> Self:
@@ -189,6 +213,8 @@ class FrequencyDecoder(Decoder):
         self.support += other.support
         if self.joint:
             self.cosupport += other.cosupport
+        if self.likelihood:
+            self.cells += other.cells
         return self
 
     def sums(self) -> tuple[np.ndarray, np.ndarray]:
@@ -220,6 +246,52 @@ class FrequencyDecoder(Decoder):
         cons = consistent(est, method)
         return tuple(FrequencyResult(label, *interval(est[i], se[i], z), float(est[i] * rows), float(cons[i]),
                                      what[i]) for i, label in enumerate(m.categories))
+
+    def likelihood_estimate(self, confidence: float) -> LikelihoodEstimate | None:
+        """The maximum-likelihood shares with their parametric bootstrap (mechanisms/likelihood.py);
+        None before two reports.  Needs ``use_likelihood``; kept once made (per confidence)."""
+        from statistics import NormalDist
+
+        from .likelihood import estimate_shares
+
+        if not self.likelihood:
+            raise ValueError("likelihood_estimate needs a decoder made with use_likelihood")
+        if int(self.cells.sum()) < 2:
+            return None
+        key = (float(confidence), int(self.n), self.cells.tobytes())
+        if self._fit is not None and self._fit[0] == key:
+            return self._fit[1]
+        m = self.mechanism
+        z = NormalDist().inv_cdf(0.5 + confidence / 2)
+        est, se = self.estimates()
+        assert est is not None and se is not None
+        fit = estimate_shares(m.likelihood_channel(), self.cells, m.to_spec(), confidence,
+                              (est - z * se, est + z * se))
+        self._fit = (key, fit)
+        return fit
+
+    def likelihood_frequencies(self, confidence: float, rows: int | None = None,
+                               estimands: list[str] | None = None) -> tuple[tuple[FrequencyResult, ...], str]:
+        """Per value the maximum-likelihood share, its bootstrap SE and interval, the estimated count
+        (share x ``rows``) and, as the consistent share, the share itself (it lies on the simplex);
+        and the text saying how they were made."""
+        m = self.mechanism
+        rows = self.n if rows is None else rows
+        what = estimands or [""] * len(m.categories)
+        fit = self.likelihood_estimate(confidence)
+        if fit is None:
+            return (tuple(FrequencyResult(label, None, None, None, None, 0.0, None, what[i])
+                          for i, label in enumerate(m.categories)), "likelihood: fewer than two reports")
+        lo, hi = fit.interval()
+        return (tuple(FrequencyResult(label, float(fit.shares[i]), float(fit.se[i]), float(lo[i]), float(hi[i]),
+                                      float(fit.shares[i] * rows), float(fit.shares[i]), what[i])
+                      for i, label in enumerate(m.categories)), fit.method())
+
+    def likelihood_shares(self, confidence: float) -> tuple[np.ndarray | None, np.ndarray | None]:
+        """(maximum-likelihood shares, the covariance of their bootstrap replicates); (None, None)
+        before two reports."""
+        fit = self.likelihood_estimate(confidence)
+        return (None, None) if fit is None else (fit.shares, fit.cov)
 
 
 @dataclass

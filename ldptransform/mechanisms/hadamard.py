@@ -242,6 +242,19 @@ class HadamardResponse(FrequencyOracle):
         p, p_out = Tp / THRESHOLD_ONE, (THRESHOLD_ONE - Tp) / THRESHOLD_ONE
         return np.where(in_set, p, p_out) * (2.0 / self.K)
 
+    # the likelihood decoder (mechanisms/likelihood.py): the cells are the K output indices
+    likelihood_reason: ClassVar[str] = ""
+
+    @property
+    def likelihood_cells(self) -> int:
+        return self.K
+
+    def likelihood_channel(self) -> np.ndarray:
+        return self.channel()
+
+    def likelihood_counts(self, arrays: list[pa.Array]) -> np.ndarray:
+        return self.summarize(arrays)
+
     def max_log_ratio(self) -> float:
         # Q(y|x) is 2p/K or 2(1-p)/K with p = Tp / 2^64: every ratio is p/(1-p), 1 or its inverse,
         # and p/(1-p) <= e^eps occurs (two different sets differ in K/2 outputs).

@@ -234,6 +234,19 @@ class Matrix(FrequencyOracle):
         """Exact P(published y | true x) as realized by the sampler, shape (k, k)."""
         return self._masses / _UNIT
 
+    # the likelihood decoder (mechanisms/likelihood.py): the cells are the published categories
+    likelihood_reason: ClassVar[str] = ""
+
+    @property
+    def likelihood_cells(self) -> int:
+        return self.k
+
+    def likelihood_channel(self) -> np.ndarray:
+        return self.channel()
+
+    def likelihood_counts(self, arrays: list[pa.Array]) -> np.ndarray:
+        return self.support_counts(arrays)
+
     @cached_property
     def inverse(self) -> np.ndarray:
         """W = P^{-1} of the realized channel: row y is the per-row unbiased estimate for report y."""

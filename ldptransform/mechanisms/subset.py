@@ -306,6 +306,41 @@ class SubsetSelection(FrequencyOracle):
         miss = (THRESHOLD_ONE - Tp) / THRESHOLD_ONE / math.comb(self.k - 1, self.m)
         return np.where(member.T, hit, miss)
 
+    # the likelihood decoder (mechanisms/likelihood.py): the cells are the C(k, m) subsets, as bit masks
+    # (bit j: category j in the subset) in increasing order
+    likelihood_reason: ClassVar[str] = ""
+
+    def likelihood_refusal(self) -> str:
+        if math.comb(self.k, self.m) > MAX_CHANNEL_SUBSETS or self.k > 62:
+            return (f"its {math.comb(self.k, self.m)} possible reports (subsets of {self.m} of {self.k} categories) "
+                    "are too many for the likelihood decoder to enumerate")
+        return super().likelihood_refusal()
+
+    @property
+    def likelihood_cells(self) -> int:
+        return math.comb(self.k, self.m)
+
+    @cached_property
+    def _subset_masks(self) -> tuple[np.ndarray, np.ndarray]:
+        """(bit masks of ``channel_outputs`` in increasing order, the order that sorts them)."""
+        weights = np.int64(1) << np.arange(self.k, dtype=np.int64)
+        masks = np.array([sum(int(w) for w, c in zip(weights, s) if c == "1") for s in self.channel_outputs()],
+                         dtype=np.int64)
+        order = np.argsort(masks, kind="stable")
+        return masks[order], order
+
+    def likelihood_channel(self) -> np.ndarray:
+        return self.channel()[:, self._subset_masks[1]]
+
+    def likelihood_counts(self, arrays: list[pa.Array]) -> np.ndarray:
+        masks = self._subset_masks[0]
+        weights = np.int64(1) << np.arange(self.k, dtype=np.int64)
+        counts = np.zeros(masks.size, dtype=np.int64)
+        for _, bits, bad in self._chunks(arrays):
+            m = bits[~bad].astype(np.int64) @ weights
+            counts += np.bincount(np.searchsorted(masks, m), minlength=masks.size)
+        return counts
+
     def max_log_ratio(self) -> float:
         # P(S|x)/P(S|x') is r (x in S, x' not), 1 or 1/r, r <= e^eps (r occurs since 1 <= m <= k-1);
         # with the shuffle's modulo bias bounded exactly (``realized_ratio``, an upper bound).
