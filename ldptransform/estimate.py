@@ -57,7 +57,7 @@ import pyarrow.compute as pc
 
 from . import mechanisms as mech
 from .errors import DataError, InputFileError, LdptError, ManifestError, UsageError
-from .mechanisms import decoders
+from .mechanisms import QuantileDecoder, decoders
 from .mechanisms.decoders import CONSISTENCY_METHODS, consistent, norm_additive, norm_mul, norm_sub  # noqa: F401
 from .mechanisms.decoders import mean_result as _mean
 from .mechanisms.decoders import moments as _moments
@@ -589,6 +589,12 @@ def _check_merge(extracts: list[Path], manifests: list[Path | None]) -> None:
             raise UsageError(f"cannot merge {ex} with {seen[0][0]}: their manifests describe different columns "
                              "or mechanism specs (names, eps, categories, bounds, output columns must all be equal; "
                              "only the nonce, time and hashes may differ). Estimate them separately.")
+        sequential = [c.name for c in m.columns if c.mechanism is not None and mech.build(c.mechanism).sequential]
+        if seen and sequential:
+            raise UsageError(f"cannot merge {ex} with {seen[0][0]}: column(s) {', '.join(map(repr, sequential))} use a "
+                             "sequential mechanism, whose thresholds each release set from its own earlier reports; "
+                             "added together, the reports of two releases no longer replay to the thresholds either "
+                             "one used, so the merged estimate would be wrong. Estimate each release on its own.")
         for ex0, m0 in seen:
             if _same_people(m, m0):
                 cols = ", ".join(map(repr, memoized_columns(m)))
@@ -864,6 +870,12 @@ def _column_result(entry: ColumnEntry, st: decoders.Decoder, manifest: Manifest,
                                                            "distribution)", enc))
             dist = _distribution_result(d, an, entry.name, confidence, enc)
         return ColumnResult(**head, family="distribution", bounds=bounds, mean=mean, distribution=dist)
+    if isinstance(st, QuantileDecoder):   # one quantile, tracked by its mechanism (its family's decoder)
+        qe = st.quantile(confidence)
+        qres = QuantileResult(qe.q, qe.estimate, qe.se, qe.lo, qe.hi, qe.method,
+                              estimand=_with(f"{qe.q:g}-quantile of {entry.name} among all rows (from one-bit tests at "
+                                             "thresholds set in phases; --quantiles does not apply)", enc))
+        return ColumnResult(**head, family="quantile", bounds=bounds, quantile=qres)
     if isinstance(st, decoders.MissingAnswerDecoder):   # missing: as-answer without bins
         share = st.missing_share(z, rows, _with(f"share of rows with {entry.name} missing among all rows", enc))
         return ColumnResult(**head, family="mean", bounds=bounds, frequencies=(share,),

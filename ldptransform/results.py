@@ -327,7 +327,8 @@ class ColumnResult(_Subscript):
     """Everything estimated for one privatized column.  ``family`` says which statistics it
     has: "frequency" (``frequencies``, and ``distribution`` for a binned numeric column),
     "mean" (``mean``; with ``missing: as-answer``, the mean among rows with a value and, in
-    ``frequencies``, the share missing) or "distribution" (``distribution`` and its ``mean``)."""
+    ``frequencies``, the share missing), "distribution" (``distribution`` and its ``mean``) or
+    "quantile" (``quantile``: the one quantile its mechanism tracks)."""
 
     name: str
     type: str
@@ -347,6 +348,8 @@ class ColumnResult(_Subscript):
     # (maximum-likelihood shares, ``estimate(decoder="likelihood")``), with how it was done
     decoder: str | None = None
     decoder_method: str | None = None
+    # family "quantile": the one quantile its mechanism tracks, with SE and interval
+    quantile: QuantileResult | None = None
 
     def to_dict(self) -> dict[str, Any]:
         d: dict[str, Any] = {"type": self.type, "mechanism": self.mechanism, "epsilon": self.epsilon}
@@ -363,6 +366,8 @@ class ColumnResult(_Subscript):
                 d["mean"] = self.mean.to_dict()
         if self.distribution is not None:
             d["distribution"] = self.distribution.to_dict()
+        if self.quantile is not None:
+            d["quantile"] = self.quantile.to_dict()
         if self.estimand:
             d["estimand"] = self.estimand
         if self.decoder is not None:
@@ -387,6 +392,8 @@ class ColumnResult(_Subscript):
             out += self.mean.frame_rows(**head)
         if self.distribution is not None:
             out += self.distribution.frame_rows(self.estimand, **head)
+        if self.quantile is not None:
+            out += self.quantile.frame_rows(**head)
         return out
 
 
@@ -608,7 +615,7 @@ class _EstimateReader:
         return EstimateResult(rows, float(head["confidence"]), columns, head["method"] or "", xt, gm,
                               tuple(extracts), tuple(public))
 
-    def _column(self, r: dict[str, Any], rows: int) -> None:
+    def _column(self, r: dict[str, Any], rows: int) -> None:  # noqa: C901 (one branch per statistic)
         name, st = r["column"], r["statistic"]
         if st == "column":
             lo, hi = _num(r["low"]), _num(r["high"])
@@ -637,6 +644,8 @@ class _EstimateReader:
             among = among.removesuffix(f"; {enc}") if enc else among
             b["distribution"] = {"method": r["method"] or "", "among": among, "quantiles": [], "ranges": [],
                                  "mass": [], "edges": [], "x": [], "F": []}
+        elif st == "quantile" and d is None and b["family"] == "quantile":   # the one quantile of its family
+            b["quantile"] = QuantileResult(float(r["value"]), est, se, lo, hi, r["method"], what)
         elif d is None:
             raise self._refuse(f"the frame has a {st!r} row of column {name!r} before its 'distribution' row")
         elif st == "quantile":
