@@ -878,6 +878,20 @@ def _print(*args: object) -> None:
     out_console.print(*args)
 
 
+def _quantile_table(name: str, title: str, qr: Any) -> None:
+    """The one quantile of a column whose mechanism tracks a single quantile, and how its interval was made
+    (nothing for other columns: ``qr`` None)."""
+    if qr is None:
+        return
+    t = Table(title=title, title_justify="left")
+    for h in ("statistic", "estimate", "se", "ci_low", "ci_high"):
+        t.add_column(h, justify="left" if h == "statistic" else "right")
+    t.add_row(f"{qr.q:g}-quantile", _num(qr.estimate, ".6g"), _num(qr.se, ".4g"), _num(qr.ci_low, ".6g"),
+              _num(qr.ci_high, ".6g"))
+    _show_table(t)
+    _print(escape(f"{name} interval: {qr.method}"))
+
+
 def _column_tables(name: str, col: ColumnResult) -> None:
     title = escape(f"{name}: {col.type}, {col.mechanism}, eps {col.epsilon:g}" +
                    (f", {col.rows_reported} rows reported" if col.rows_reported is not None else ""))
@@ -902,6 +916,7 @@ def _column_tables(name: str, col: ColumnResult) -> None:
         m = col.mean
         t.add_row("mean", _num(m.estimate, ".6g"), _num(m.se, ".4g"), _num(m.ci_low, ".6g"), _num(m.ci_high, ".6g"))
         _show_table(t)
+    _quantile_table(name, title, col.quantile)   # family "quantile": the one quantile its mechanism tracks
     if col.distribution is not None:
         d = col.distribution
         t = Table(title=escape(f"{name}: quantiles and ranges ({d.method})"), title_justify="left")
