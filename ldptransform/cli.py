@@ -1458,6 +1458,14 @@ def _plan_row(c: dict, s: dict) -> tuple[str, ...]:
             "-" if s.get("rows_needed") is None else str(s["rows_needed"]), "-" if eff is None else f"{eff:.3f}")
 
 
+def _joint_verdicts(result: dict) -> None:
+    """Joint groups of a plan: the joint report against separate columns, per statistic."""
+    for c in result["columns"]:
+        if c.get("type") == "joint":
+            for st in c["statistics"]:
+                out_console.print(f"joint group {c['name']}, {st.get('note')}", markup=False)
+
+
 def _plan_table(result: dict) -> None:
     t = Table(title=f"Predicted precision at {result['rows']} rows (worst case over data, medians and distribution "
                     "means on skewed reference data; SE as `ldpt estimate` reports it)", title_justify="left")
@@ -1473,6 +1481,7 @@ def _plan_table(result: dict) -> None:
     _show_table(t)
     out_console.print(f"eps per row: {result['epsilon_per_row']:g} of the budget "
                       f"{result['epsilon_per_row_budget']:g} (strategy {result['strategy']})", markup=False)
+    _joint_verdicts(result)
     for item in result["impossible"]:
         err_console.print(f"warning: {item}: no eps-LDP mechanism can meet this target at {result['rows']} rows "
                           "(lower bound); more rows, a looser target or a larger eps is needed", markup=False)

@@ -205,6 +205,47 @@ class CrossStats:
 
 
 @dataclass
+class PairCrossStats(CrossStats):
+    """Cross-tab of two members of one joint group: the cells of the group's report summed over its
+    other members (docs/formulas.md section 22), so a cell's per-row estimate is the sum of the
+    group's per-row cell estimates, and the row's marginal the sum over the column's values; the
+    report (SEs, shares within a row by the delta method) is that of ``CrossStats``."""
+
+    layout: Any = None
+    pair: tuple[int, int] = (0, 1)
+
+    def add(self, arrays_a: list[pa.Array], arrays_b: list[pa.Array]) -> None:
+        for u in self.layout.row_slices(arrays_a):
+            w = self.layout.project(u, self.pair)       # (n, ka, kb): the pair's cells
+            ua = w.sum(axis=2)
+            self.n += u.shape[0]
+            self.S += w.sum(axis=0)
+            self.SS += (w * w).sum(axis=0)
+            self.T += np.einsum("na,nab->ab", ua, w)
+            self.SA += ua.sum(axis=0)
+            self.SAA += (ua * ua).sum(axis=0)
+
+
+def _joint_members(manifest: Manifest) -> dict[str, tuple[ColumnEntry, int]]:
+    """Member column -> (its joint group's entry, its place among the members)."""
+    return {m.name: (e, i) for e in manifest.columns if e.type == "joint" for i, m in enumerate(e.members or [])}
+
+
+def _layout(entry: ColumnEntry) -> Any:
+    from .joint import Layout
+
+    return Layout.of(entry, mech.build(entry.mechanism or {}))  # type: ignore[arg-type]
+
+
+def _member_entry(group: ColumnEntry, index: int) -> ColumnEntry:
+    """A joint group's member as a column entry of its own (for its estimands and result): its type,
+    labels and bins, and the group's mechanism (what randomized it)."""
+    m = (group.members or [])[index]
+    return ColumnEntry(name=m.name, type=m.type, mechanism=group.mechanism, labels=m.labels, bins=m.bins, outputs=[],
+                       report_rate=group.report_rate)
+
+
+@dataclass
 class GroupMeanStats:
     """Mean of a numeric column within each category of another: ratio of two unbiased
     averages, sum(y u_a)/sum(u_a), with a delta-method SE."""
@@ -376,6 +417,8 @@ def _spec_signature(m: Manifest) -> list[Any]:
 
 def _check_analyses(manifest: Manifest, an: Analyses) -> None:
     by = {c.name: c for c in manifest.columns}
+    members = _joint_members(manifest)
+    by.update({m: _member_entry(e, i) for m, (e, i) in members.items()})
 
     def need(name: str, option: str, kinds: tuple[str, ...]) -> ColumnEntry:
         c = by.get(name)
@@ -389,11 +432,14 @@ def _check_analyses(manifest: Manifest, an: Analyses) -> None:
         return c
 
     pairs = [("--crosstab", a, b) for a, b in an.crosstabs] + [("--mean-by", y, g) for y, g in an.mean_by]
+    pairs = [pr for pr in pairs if not (pr[1] in members and pr[2] in members   # one group's members: one report
+                                        and members[pr[1]][0].name == members[pr[2]][0].name)]
     if pairs and getattr(manifest.privacy, "strategy", "split") == "sample" and \
             getattr(manifest.privacy, "reported_columns", None) == 1:
         raise UsageError(f"{pairs[0][0]} {pairs[0][1]}:{pairs[0][2]}: this release uses budget.strategy sample with "
                          "one reported column per row, so no row reports two columns and joint analyses are "
-                         "impossible. Use one-column estimates, or a release with sample_columns of 2 or more.")
+                         "impossible (except between members of one joint group, which share one report). Use "
+                         "one-column estimates, or a release with sample_columns of 2 or more.")
     for a, b in an.crosstabs:
         need(a, "--crosstab", ("categorical",))
         need(b, "--crosstab", ("categorical",))
@@ -434,14 +480,32 @@ class Accumulated:
     crosstabs: dict[tuple[str, str], CrossStats]
     mean_by: dict[tuple[str, str], GroupMeanStats]
     extracts: list[str]
+    groups: dict[str, Any] = field(default_factory=dict)   # joint group -> joint.GroupStats (members' marginals)
 
 
 def _empty_stats(manifest: Manifest, an: Analyses) -> Accumulated:
     entries = {c.name: c for c in manifest.columns if c.mechanism is not None}
     cols: dict[str, Any] = {name: stats_for(e, an.decoder) for name, e in entries.items()}
-    xt = {(a, b): CrossStats(cols[a].mechanism, cols[b].mechanism) for a, b in an.crosstabs}
-    mb = {(y, g): GroupMeanStats(cols[g].mechanism, cols[y].shift) for y, g in an.mean_by}
-    return Accumulated(manifest, 0, cols, xt, mb, [])
+    from .joint import GroupStats, MemberView
+
+    members = _joint_members(manifest)
+    layouts = {e.name: _layout(e) for e in manifest.columns if e.type == "joint"}
+
+    def oracle(name: str) -> Any:   # a column's frequency oracle, or a member's view of its group
+        if name in members:
+            return MemberView(layouts[members[name][0].name], name)
+        return cols[name].mechanism
+
+    xt: dict[tuple[str, str], CrossStats] = {}
+    for a, b in an.crosstabs:
+        ga, gb = members.get(a), members.get(b)
+        if ga is not None and gb is not None and ga[0].name == gb[0].name:   # one group: its cells
+            xt[(a, b)] = PairCrossStats(oracle(a), oracle(b), layout=layouts[ga[0].name], pair=(ga[1], gb[1]))
+        else:
+            xt[(a, b)] = CrossStats(oracle(a), oracle(b))
+    mb = {(y, g): GroupMeanStats(oracle(g), cols[y].shift) for y, g in an.mean_by}
+    groups = {name: GroupStats(lay) for name, lay in layouts.items()}
+    return Accumulated(manifest, 0, cols, xt, mb, [], groups)
 
 
 # Told the rows decoded, batch by batch (``on_progress`` of estimate and validate; rows_told)
@@ -463,6 +527,7 @@ def _add_batches(acc: Accumulated, batches: Iterator[tuple[pa.RecordBatch, dict[
                  where: str, row0: int = 0) -> None:
     """Add decoded batches to ``acc`` (``where`` names the extract and manifest in errors)."""
     entries = {c.name: c for c in acc.manifest.columns if c.mechanism is not None}
+    sources = {m: e.name for m, (e, _) in _joint_members(acc.manifest).items()}
     tell = _rows_told.get()
     for batch, arrays in batches:
         masks = {name: reported_mask(a) for name, a in arrays.items()}
@@ -477,12 +542,16 @@ def _add_batches(acc: Accumulated, batches: Iterator[tuple[pa.RecordBatch, dict[
                                     f"{row0 + acc.rows + 1}. The extract was altered or does not belong to its "
                                     "manifest; run `ldpt validate` for details.")
             st.add(mine)
-        for (a, b), st in acc.crosstabs.items():
-            both = _both(masks[a], masks[b], batch.num_rows)
-            st.add(_take(arrays[a], both), _take(arrays[b], both))
+        for name, gst in acc.groups.items():
+            gst.add(_take(arrays[name], masks[name]))
+        for (a, b), st in acc.crosstabs.items():   # a joint group's member reads its group's reports
+            a_, b_ = sources.get(a, a), sources.get(b, b)
+            both = _both(masks[a_], masks[b_], batch.num_rows)
+            st.add(_take(arrays[a_], both), _take(arrays[b_], both))
         for (y, g), st in acc.mean_by.items():
-            both = _both(masks[y], masks[g], batch.num_rows)
-            st.add(_take(arrays[y], both), _take(arrays[g], both))
+            g_ = sources.get(g, g)
+            both = _both(masks[y], masks[g_], batch.num_rows)
+            st.add(_take(arrays[y], both), _take(arrays[g_], both))
         acc.rows += batch.num_rows
         if tell is not None:
             tell(batch.num_rows)
@@ -495,6 +564,8 @@ def _merge_into(total: Accumulated, acc: Accumulated) -> None:
         total.crosstabs[k].merge(st)
     for k, st in acc.mean_by.items():
         total.mean_by[k].merge(st)
+    for gname, gst in acc.groups.items():
+        total.groups[gname].merge(gst)
     total.rows += acc.rows
 
 
@@ -707,6 +778,8 @@ def handling(manifest: Manifest, entry: ColumnEntry) -> list[str]:
     the values so encoded."""
     from .policy import MISSING_LABEL, OTHER_LABEL
 
+    if entry.type == "joint":   # a joint group: its members' clauses, in order
+        return [c for i in range(len(entry.members or [])) for c in handling(manifest, _member_entry(entry, i))]
     cfg = _policy_column(manifest, entry.name)
     name = entry.name
     out: list[str] = []
@@ -750,6 +823,12 @@ def _frequency_estimands(manifest: Manifest, entry: ColumnEntry, labels: list[st
     from .policy import MISSING_LABEL
 
     enc = column_estimand(manifest, entry)
+    if entry.type == "joint":   # a cell: one label per member (joint_label: a JSON array)
+        import json
+
+        names = [m.name for m in entry.members or []]
+        return [_with("share of rows with " + " and ".join(_is(n, v) for n, v in zip(names, json.loads(lab)))
+                      + " among all rows", enc) for lab in labels]
     if entry.type == "binned":
         return [_with(f"share of rows with {entry.name} {'missing' if lab == MISSING_LABEL else 'in bin ' + lab} "
                       "among all rows", how, enc) for lab in labels]
@@ -885,6 +964,15 @@ def _column_result(entry: ColumnEntry, st: decoders.Decoder, manifest: Manifest,
                         mean=st.mean(z, _with(f"mean of {entry.name} among all rows", enc)))
 
 
+def _member_result(group: str, res: ColumnResult) -> ColumnResult:
+    """A joint group's member's result, its estimands saying that they are its group's cells summed."""
+    from dataclasses import replace
+
+    clause = f"the marginal of joint group {group} (the sum of its cells with each value)"
+    freqs = tuple(replace(f, estimand=_with(f.estimand, clause)) for f in res.frequencies)
+    return replace(res, frequencies=freqs, estimand=_with(res.estimand, clause))
+
+
 def _bounds(entry: ColumnEntry) -> tuple[float, float] | None:
     b = (entry.mechanism or {}).get("bounds")
     return None if b is None else (float(b[0]), float(b[1]))
@@ -901,8 +989,16 @@ def report(manifest: Manifest, stats: dict[str, Any], rows: int, confidence: flo
     an = analyses or Analyses()
     z = z_value(confidence)
     entries = {e.name: e for e in manifest.columns}
-    columns = {e.name: _column_result(e, stats[e.name], manifest, rows, confidence, z, an)
-               for e in manifest.columns if stats.get(e.name) is not None}
+    columns = {}
+    for e in manifest.columns:
+        if stats.get(e.name) is None:
+            continue
+        columns[e.name] = _column_result(e, stats[e.name], manifest, rows, confidence, z, an)
+        if e.type == "joint" and acc is not None and e.name in acc.groups:   # its members' marginals
+            for i, m in enumerate(e.members or []):
+                entries[m.name] = _member_entry(e, i)
+                columns[m.name] = _member_result(e.name, _column_result(
+                    entries[m.name], acc.groups[e.name].member(m.name), manifest, rows, confidence, z, an))
     crosstabs: tuple[CrossTabResult, ...] = ()
     grouped: tuple[GroupedMeanResult, ...] = ()
     extracts: tuple[str, ...] = ()

@@ -43,9 +43,19 @@ class OutputColumn(_Strict):
     meaning: str
 
 
+class JointMember(_Strict):
+    """A member column of a joint group: its codes (``labels``, in code order: the declared labels,
+    then <missing> and <other> where the policy adds them) and a binned column's edges."""
+
+    name: str
+    type: Literal["categorical", "binned"]
+    labels: list[str] = Field(min_length=2)
+    bins: list[float] | None = None
+
+
 class ColumnEntry(_Strict):
     name: str
-    type: Literal["categorical", "binned", "numeric", "public"]
+    type: Literal["categorical", "binned", "numeric", "public", "joint"]
     mechanism: dict[str, Any] | None = None
     chosen_because: str | None = None
     labels: list[str] | None = None
@@ -56,6 +66,9 @@ class ColumnEntry(_Strict):
     # other cells are empty; 1.0 otherwise).  A decoder counts an empty cell as a per-row
     # estimate of 0 and divides the reported per-row estimates by this rate.
     report_rate: float = Field(1.0, gt=0, le=1)
+    # type "joint": the group's member columns in order; the mechanism's categories are the cells of
+    # their product domain (JSON arrays of member labels; the first member varies slowest)
+    members: list[JointMember] | None = None
 
 
 class PartInfo(_Strict):
@@ -126,6 +139,9 @@ class Manifest(_Strict):
 
     def to_json(self) -> str:
         d = self.model_dump(mode="json")
+        for c in d["columns"]:
+            if c.get("members") is None:  # only a joint group's entry has members
+                c.pop("members", None)
         if d["extract"].get("parts") is None:  # single-file extracts: the manifest as before datasets existed
             d["extract"].pop("parts", None)
             d["extract"].pop("part_rows", None)
@@ -144,7 +160,8 @@ FIELD_PREFIX = "ldpt."
 FIELD_FORMAT = "1"
 #: The keys, without the prefix, in the order they are written (those after ``meaning`` only where
 #: the column entry has them).
-FIELD_KEYS = ("format", "column", "type", "privatized", "mechanism", "meaning", "spec", "labels", "bins", "note")
+FIELD_KEYS = ("format", "column", "type", "privatized", "mechanism", "meaning", "spec", "labels", "bins", "note",
+              "members")
 
 
 def _compact(value: Any) -> str:
@@ -170,6 +187,8 @@ def field_metadata(entry: ColumnEntry, output: OutputColumn) -> dict[bytes, byte
         md["bins"] = _compact(entry.bins)
     if entry.note is not None:
         md["note"] = entry.note
+    if entry.members is not None:
+        md["members"] = _compact([mb.model_dump(mode="json", exclude_none=True) for mb in entry.members])
     return {(FIELD_PREFIX + k).encode(): v.encode("utf-8") for k, v in md.items()}
 
 
@@ -211,7 +230,8 @@ def entries_from_fields(fields: list[Any], where: str) -> list[ColumnEntry] | No
                 name=md["column"], type=md["type"],  # type: ignore[arg-type]  # checked by the model
                 mechanism=json.loads(md["spec"]) if "spec" in md else None,
                 labels=json.loads(md["labels"]) if "labels" in md else None,
-                bins=json.loads(md["bins"]) if "bins" in md else None, outputs=outs, note=md.get("note")))
+                bins=json.loads(md["bins"]) if "bins" in md else None, outputs=outs, note=md.get("note"),
+                members=json.loads(md["members"]) if "members" in md else None))
         except (ValueError, ValidationError):
             raise DataError(f"{where}: the metadata of the field(s) of column {md['column']!r} cannot be read "
                             "(a type, spec, labels or bins that is not what ldptransform writes). Give the "
@@ -320,7 +340,8 @@ def _check_entry(path: Path, i: int, c: ColumnEntry) -> None:
         raise DamagedManifest(f"{where}.mechanism' {col} is missing: a {c.type} column needs its mechanism spec. "
                               f"{_AGAIN}")
     built = _check_spec(path, i, c)
-    if (built.family == "frequency") != (c.type in ("categorical", "binned")):
+    _check_joint(c, built, where, col)
+    if (built.family == "frequency") != (c.type in ("categorical", "binned", "joint")):
         raise DamagedManifest(f"{where}.type' {col}: {c.type!r} does not fit its mechanism {built.name} "
                               f"({built.family}). {_AGAIN}")
     want = [f.name for f in built.output_fields(c.name)]
@@ -339,6 +360,19 @@ def _check_entry(path: Path, i: int, c: ColumnEntry) -> None:
                                   f"increasing finite edges. {_AGAIN}")
     elif c.bins is not None:
         raise DamagedManifest(f"{where}.bins' {col}: only a binned column has bins. {_AGAIN}")
+
+
+def _check_joint(c: ColumnEntry, built: Any, where: str, col: str) -> None:
+    """A joint group's entry lists its members (no other entry does), whose product is its mechanism's domain."""
+    if (c.type == "joint") != (c.members is not None):
+        raise DamagedManifest(f"{where}.members' {col}: a joint group's entry lists its members, no other entry "
+                              f"does. {_AGAIN}")
+    if c.type == "joint":
+        from .joint import check_members
+
+        problem = check_members(c, built)
+        if problem:
+            raise DamagedManifest(f"{where}.members' {col}: {problem}. {_AGAIN}")
 
 
 def _check_spec(path: Path, i: int, c: ColumnEntry) -> Any:

@@ -391,7 +391,7 @@ class PlanResult(DictView):
 def needs_of(rc: ResolvedColumn) -> list[str]:
     cfg = rc.config
     needs = list(getattr(cfg, "needs", None) or [])
-    if rc.type in ("categorical", "binned"):
+    if rc.type in ("categorical", "binned", "joint"):
         if not needs:
             return ["frequencies"]
         return needs
@@ -556,6 +556,10 @@ def plan(policy: LoadedPolicy, rows: int, *, simulate: bool = True) -> PlanResul
             if rc.type == "public":
                 cols.append(PlanColumn(rc.name, "public", note="released in the clear: NOT protected"))
             continue
+        if rc.members is not None:   # a joint group: its cells and marginals, joint vs separate columns
+            cols.append(PlanColumn(rc.name, "joint", rc.mechanism.label, rc.mechanism.epsilon, rc.chosen_because,
+                                   rows * rate, tuple(joint_statistics(rc, policy, rows, simulate))))
+            continue
         cols.append(PlanColumn(rc.name, rc.type, rc.mechanism.label, rc.mechanism.epsilon, rc.chosen_because,
                                rows * rate, tuple(column_statistics(rc, rows, rate, default, simulate))))
     stats = [(c.name, st) for c in cols for st in c.statistics or ()]
@@ -563,6 +567,81 @@ def plan(policy: LoadedPolicy, rows: int, *, simulate: bool = True) -> PlanResul
     impossible = tuple(f"{name}: {st.statistic}" for name, st in stats if st.get("impossible_at_rows"))
     return PlanResult(rows, policy.strategy, policy.epsilon_total, policy.policy.budget.epsilon_per_row, rate,
                       tuple(cols), missed, impossible)
+
+
+# -- joint groups ---------------------------------------------------------------------------------
+
+JOINT_SIM_VALUES = 1 << 22   # the planner simulates at most this many per-row cell estimates per marginal
+
+
+def _verdict(joint: float, separate: float | None, what: str) -> str:
+    if separate is None:
+        return f"{what}: not available from separate columns here (no row would report both)"
+    if separate == joint:
+        return f"{what}: the joint report and separate columns are equally precise"
+    better, factor = ("the joint report", separate / joint) if joint < separate else ("separate columns",
+                                                                                      joint / separate)
+    return (f"{what}: {better} is better ({factor:.3g}x lower variance; n*Var {joint:.4g} joint, {separate:.4g} "
+            "separate)")
+
+
+def joint_statistics(rc: ResolvedColumn, policy: LoadedPolicy, rows: int, simulate: bool = True
+                     ) -> list[PlanStatistic]:
+    """A joint group's predicted SEs at ``rows`` table rows (docs/formulas.md section 22), each for one
+    small share (near 0: the noise alone, what dominates small cells): a cell of the group's report
+    (exact, the oracle's per-value noise) against a cell from separate columns (the product of
+    independent per-row estimates, exact); each member's marginal share read off the cells (by
+    simulation under the public planning key, ``joint.simulated_marginal_nvar``) against the member
+    released on its own at its eps (exact).  The note of each says which is better and by how much.
+    Separate columns are the members at their own eps under strategy split; under sample, each
+    member a unit of its own (d grows by members - 1) at epsilon_per_row / m."""
+    from . import joint
+
+    g = cast(mech.FrequencyOracle, rc.mechanism)
+    members = rc.members or []
+    pol = policy.policy
+    d = len(pol.privatized_columns)
+    if policy.strategy == "sample":
+        d_sep = d + len(members) - 1
+        m_sep = min(pol.reported_columns, d_sep)
+        eps_sep = [pol.budget.epsilon_per_row / m_sep] * len(members)
+        rate = m_sep / d_sep if pol.reported_columns else 1.0
+        rate_pair = m_sep * (m_sep - 1) / (d_sep * (d_sep - 1)) if m_sep > 1 else 0.0
+        rate_joint = policy.report_rate
+    else:
+        eps_sep = [float(m.config.epsilon or 0.0) for m in members]
+        rate = rate_pair = rate_joint = 1.0
+    alone = [mech.choose_categorical(e, m.domain_labels)[0] for e, m in zip(eps_sep, members)]
+    n_joint = rows * rate_joint
+    cell_joint = joint.small_share_nvar(g)
+    # separate: the product of r independent reports, in the rows that report all r (split: every row)
+    cell_sep = joint.product_cell_nvar(alone) if rate_pair > 0 or policy.strategy != "sample" else None
+    n_pair = rows * (rate_pair if policy.strategy == "sample" else 1.0)
+    sep_text = ", ".join(f"{m.name} at eps {e:g} ({o.name})" for m, e, o in zip(members, eps_sep, alone))
+    # compared per row of the table: n*Var over the rows that report, scaled to all rows
+    cj = cell_joint / rate_joint
+    cs = None if cell_sep is None else cell_sep / (rate_pair if policy.strategy == "sample" else 1.0)
+    out = [{"statistic": "cells", "se": math.sqrt(cell_joint / n_joint),
+            "se_meaning": "SE of one small cell's share (near 0) of the group's report, exact (the oracle's noise)",
+            "note": _verdict(cj, cs, "cells") + f"; separate columns: {sep_text}"
+                    + ("" if cell_sep is None else f", SE {math.sqrt(cell_sep / n_pair):.4g}"),
+            "target_se": None, "best_possible_se": None}]
+    sizes = [len(m.domain_labels) for m in members]
+    sim_rows = max(2000, min(200_000, JOINT_SIM_VALUES // g.k))
+    for i, (m, o) in enumerate(zip(members, alone)):
+        sep = joint.small_share_nvar(o) / (rate if policy.strategy == "sample" else 1.0)
+        if not simulate:
+            out.append({"statistic": f"marginal {m.name}", "se": None, "se_meaning": "no prediction (not simulated)",
+                        "note": f"separate column: n*Var {sep:.4g}", "target_se": None, "best_possible_se": None})
+            continue
+        v = joint.simulated_marginal_nvar(g, sizes, i, sim_rows)
+        out.append({"statistic": f"marginal {m.name}", "se": math.sqrt(v / n_joint),
+                    "se_meaning": f"SE of one small share (near 0) of {m.name}, the sum of its cells, simulated "
+                                  f"({sim_rows} reports under the public planning key; an approximation)",
+                    "note": _verdict(v / rate_joint, sep, f"marginal {m.name}")
+                            + f"; separate column: {m.name} at eps {eps_sep[i]:g} ({o.name})",
+                    "target_se": None, "best_possible_se": None})
+    return [PlanStatistic.from_dict(x) for x in out]
 
 
 # -- suggest ------------------------------------------------------------------------------------
@@ -627,6 +706,9 @@ def _split_column(rc: ResolvedColumn, rows: int, default: Quality | None) -> tup
     """strategy split: the planner's entry for one column, and the eps it adds to the row's total
     (None: no eps meets its targets)."""
     m = _mechanism(rc)
+    if rc.members is not None:
+        return {"epsilon": m.epsilon, "note": "joint group: eps kept as in the policy (the sum of its members'); "
+                                              "`ldpt plan` compares it with separate columns"}, m.epsilon
     if not _has_target(rc, default):
         return {"epsilon": m.epsilon, "note": "no target: eps kept as in the policy"}, m.epsilon
     if rc.rerandomize_epsilon is not None:

@@ -8,6 +8,7 @@ reports every problem with the column and field it concerns.
 from __future__ import annotations
 
 import hashlib
+import itertools
 import json
 import math
 import re
@@ -347,6 +348,24 @@ class OutputOptions(_Strict):
                            "shuffling gives.")
 
 
+MAX_JOINT_CELLS = 1024
+"""The largest product domain of a joint group: every row's report and its per-row estimate are
+vectors over all the cells (a subset report is one character per cell), so the extract's size and
+the decoder's memory and time grow with the number of cells."""
+
+
+class JointGroup(_Strict):
+    """A group of categorical (or binned) columns randomized as one report over their product domain."""
+
+    columns: list[Annotated[str, Field(strict=True, min_length=1)]] = Field(
+        description="The member columns, in order (the first varies slowest in the product code); each is "
+                    "declared under columns with its categories or bins, missing/unknown handling and epsilon.")
+    mechanism: str | None = Field(None, description=_mechanisms_doc("frequency") + " over the product domain; "
+                                  "absent or 'auto': the lowest variance, by the rule of a categorical column.")
+    hash_range: StrictInt | None = Field(None, description=_field_doc("hash_range", "frequency", only=True))
+    subset_size: StrictInt | None = Field(None, description=_field_doc("subset_size", "frequency", only=True))
+
+
 class Policy(_Strict):
     """A release policy (the file's top level)."""
 
@@ -360,11 +379,30 @@ class Policy(_Strict):
         None, description="Input column that identifies a person (memoized columns key their randomness on it). "
                           "It is never released: leave it out of columns or give it type: drop.")
     columns: dict[str, ColumnPolicy] = Field(min_length=1)
+    joint: dict[str, JointGroup] | None = Field(
+        None, description="Joint groups: name -> {columns: [A, B, ...]}; each group's members are randomized as one "
+                          "report over their product domain at the sum of their eps (docs/policy.md, joint groups).")
+
+    @property
+    def privatized_names(self) -> list[str]:
+        """Names of every categorical and numeric column, group members included, in policy order."""
+        return [n for n, c in self.columns.items() if isinstance(c, (CategoricalColumn, NumericColumn))]
+
+    @property
+    def group_of(self) -> dict[str, str]:
+        """Member column -> the name of its joint group."""
+        return {m: g for g, grp in (self.joint or {}).items() for m in grp.columns}
 
     @property
     def privatized_columns(self) -> list[str]:
-        """Names of the categorical and numeric columns (d of them), in policy order."""
-        return [n for n, c in self.columns.items() if isinstance(c, (CategoricalColumn, NumericColumn))]
+        """The d units a row's budget is spread over, in policy order: every categorical and numeric
+        column that is not in a joint group, and each joint group once, at its first member's place."""
+        group_of, out = self.group_of, []
+        for n in self.privatized_names:
+            unit = group_of.get(n, n)
+            if unit not in out:
+                out.append(unit)
+        return out
 
     @property
     def reported_columns(self) -> int:
@@ -378,6 +416,60 @@ class Policy(_Strict):
     def sampled_epsilon(self) -> float:
         """strategy sample: the epsilon of every reported column, epsilon_per_row / m."""
         return self.budget.epsilon_per_row / self.reported_columns
+
+    @model_validator(mode="after")
+    def _joint(self) -> Policy:
+        """Joint groups: at least two members, each a categorical or binned column of this policy in
+        one group only, neither memoized nor with a mechanism of its own; a name of its own."""
+        problems: list[_Problem] = []
+        seen: dict[str, str] = {}
+        for g, grp in (self.joint or {}).items():
+            loc = ("joint", g, "columns")
+            if g in self.columns:
+                problems.append((("joint", g), g, "has the name of a column of the policy; a group's report is "
+                                 "written under the group's name, so give the group a name of its own"))
+            if len(grp.columns) < 2:
+                problems.append((loc, grp.columns, "lists fewer than two columns; a joint group randomizes two or "
+                                 "more columns together (remove the group to release the column on its own)"))
+            if len(set(grp.columns)) != len(grp.columns):
+                problems.append((loc, grp.columns, "lists a column twice; list each member once"))
+            for m in grp.columns:
+                problems += self._member_problems(g, m, seen)
+                seen.setdefault(m, g)
+        if problems:
+            raise ValidationError.from_exception_data("Policy", [
+                InitErrorDetails(type=PydanticCustomError("policy_joint", msg), loc=loc, input=value)
+                for loc, value, msg in problems])
+        return self
+
+    def _member_problems(self, g: str, m: str, seen: dict[str, str]) -> list[_Problem]:
+        loc = ("joint", g, "columns")
+        col = self.columns.get(m)
+        if col is None:
+            return [(loc, m, f"names {m!r}, which is not a column of the policy; declare it under columns (with "
+                     "its categories or bins and epsilon) or remove it from the group")]
+        if m in seen and seen[m] != g:
+            return [(loc, m, f"lists {m!r}, which is already a member of joint group {seen[m]!r}; a column can "
+                     "be in one group only")]
+        if isinstance(col, (PublicColumn, DropColumn)):
+            return [(loc, m, f"lists {m!r}, a {col.type} column; only categorical columns and numeric columns "
+                     "with bins can be randomized jointly")]
+        if isinstance(col, NumericColumn) and col.bins is None:
+            return [(loc, m, f"lists {m!r}, a numeric column without bins (released for means or quantiles); "
+                     "give it bins: [edges] to release it as categories in the group, or remove it from the "
+                     "group")]
+        out: list[_Problem] = []
+        for f in ("memoize", "rerandomize_epsilon"):
+            if getattr(col, f, None):
+                out.append((loc, m, f"lists {m!r}, which sets {f}; memoized randomness is not available for a "
+                            "joint group's report: remove the column from the group or remove its " + f))
+        own = (["mechanism"] if col.mechanism is not None else []) + _set_fields(col, "frequency")
+        for f in own:
+            if f:
+                out.append((loc, m, f"lists {m!r}, which sets {f}; a member is randomized by its group's "
+                            f"report, so its own {f} would not be used: set mechanism (and its fields) on the "
+                            f"group joint.{g} instead, and remove {f} from column {m!r}"))
+        return out
 
     @model_validator(mode="after")
     def _budget(self) -> Policy:
@@ -405,7 +497,7 @@ class Policy(_Strict):
     def _split_problems(self, eps_of: dict[str, float | None]) -> list[_Problem]:
         """strategy split: every privatized column has its own epsilon; no sample_columns."""
         problems: list[_Problem] = []
-        for n in self.privatized_columns:
+        for n in self.privatized_names:
             if eps_of[n] is None:
                 problems.append((("columns", n, "epsilon"), self.columns[n].model_dump(exclude_none=True),
                                  "is required under budget.strategy split (the default): give this column its "
@@ -420,7 +512,7 @@ class Policy(_Strict):
         """strategy sample: no column epsilons; m within 1..d; each reported column's share within bounds."""
         problems: list[_Problem] = []
         names = self.privatized_columns
-        for n in names:
+        for n in self.privatized_names:
             eps = eps_of[n]
             if eps is not None:
                 problems.append((("columns", n, "epsilon"), eps,
@@ -500,6 +592,19 @@ class ResolvedColumn:
     # memoized columns with a second layer: its eps; ``mechanism`` is then the composite channel
     # (what one release reveals, what partners decode) and ``mechanism.permanent`` the memoized layer
     rerandomize_epsilon: float | None = None
+    group: str | None = None       # a member of a joint group: the group's name (its mechanism is then None)
+    members: list[ResolvedColumn] | None = None  # a joint group: its member columns, in order
+
+    @property
+    def domain_labels(self) -> list[str]:
+        """A categorical or binned column's codes 0.. as labels: its declared labels, then <missing>
+        and <other> where the policy adds them."""
+        out = list(self.labels)
+        if self.missing_code is not None:
+            out.append(MISSING_LABEL)
+        if self.other_code is not None:
+            out.append(OTHER_LABEL)
+        return out
 
     @property
     def privatized(self) -> bool:
@@ -731,9 +836,71 @@ def resolve(policy: Policy, source: str = "<policy>") -> LoadedPolicy:
                     and cls.exact_decimal_epsilon and "field 'epsilon'" in str(err)):
                 raise PolicyError(_sampled_exact_eps_message(policy, name, source, cls.name)) from None
             raise PolicyError(f"policy {source}: {err}") from None
+    for g, grp in (policy.joint or {}).items():
+        cols.append(_resolve_group(g, grp, [c for c in cols if c.name in grp.columns], policy, source))
     loaded = LoadedPolicy(policy, source, cols)
     _check_layered_budget(loaded)
     return loaded
+
+
+def joint_label(values: list[str]) -> str:
+    """The label of one cell of a joint group's product domain: its members' labels as a compact
+    JSON array (unambiguous whatever characters the labels hold)."""
+    return json.dumps(list(values), ensure_ascii=False, separators=(",", ":"))
+
+
+def _resolve_group(g: str, grp: JointGroup, found: list[ResolvedColumn], policy: Policy,
+                   source: str) -> ResolvedColumn:
+    """A joint group: one frequency oracle over the product of its members' domains (codes in mixed
+    radix, the first member most significant) at the sum of their eps (under strategy sample, the
+    eps of one reported unit); the members keep their encoding and lose their own mechanism."""
+    by = {c.name: c for c in found}
+    members = [by[m] for m in grp.columns]
+    sizes = [len(m.domain_labels) for m in members]
+    cells = math.prod(sizes)
+    where = f"policy {source}: joint group {g!r}, field 'columns'"
+    if cells > MAX_JOINT_CELLS:
+        raise PolicyError(f"{where}: its product domain has {' x '.join(map(str, sizes))} = {cells} cells, more "
+                          f"than the {MAX_JOINT_CELLS} a group may have (every row's report and per-row estimate "
+                          "is a vector over all the cells, so the extract's size and the decoder's memory and time "
+                          "grow with them); group fewer or coarser columns, or release some separately")
+    for m in members:
+        m.mechanism, m.chosen_because, m.group = None, None, g
+    if policy.budget.strategy == "sample":
+        eps = policy.sampled_epsilon
+    else:
+        eps = sum(float(m.config.epsilon or 0.0) for m in members)
+    domain = [joint_label(list(t)) for t in itertools.product(*(m.domain_labels for m in members))]
+    rc = ResolvedColumn(g, "categorical", grp, labels=domain, members=members)
+    name_ = grp.mechanism or "auto"
+    cls = mech.registry().get(name_)
+    frequency = mech.names_of("frequency")
+    takes = cls.policy_fields() if cls is not None else ()
+    params: dict[str, Any] = {}
+    gwhere = f"policy {source}: joint group {g!r}"
+    for fieldname in ("hash_range", "subset_size"):
+        value = getattr(grp, fieldname)
+        if value is None:
+            continue
+        if fieldname not in takes:
+            owner = _owners_text(fieldname, "frequency")
+            raise PolicyError(f"{gwhere}, field '{fieldname}': {fieldname} applies to mechanism {owner} only; set "
+                              f"mechanism: {owner} on the group to use it, or remove {fieldname}")
+        params[fieldname] = value
+    if name_ == "auto":
+        rc.mechanism, rc.chosen_because = mech.choose_categorical(eps, domain)
+    elif cls is not None and cls.family == "frequency":
+        try:
+            rc.mechanism = cls.from_policy(eps, domain, params)
+        except mech.MechanismParamError as err:
+            raise PolicyError(f"{gwhere}, field '{err.field}': {err}") from None
+        except PolicyError as err:
+            raise PolicyError(f"{gwhere}: {err}") from None
+    else:
+        raise PolicyError(f"{gwhere}, field 'mechanism': {name_!r} is not a frequency oracle; a group's report is "
+                          f"over the cells of its product domain: use one of {', '.join(frequency)}, or leave "
+                          "mechanism out to pick the lowest-variance one")
+    return rc
 
 
 def _check_layered_budget(lp: LoadedPolicy) -> None:
@@ -863,6 +1030,9 @@ def _format_loc(loc: tuple[Any, ...]) -> str:
                                                      "literal['error']", "function-after[_domain(), NumericColumn]")]
         rest = [p for p in rest if not p.startswith("function-") and not p.startswith("literal[")]
         return f"column {col!r}" + (f", field '{'.'.join(rest)}'" if rest else "")
+    if len(parts) >= 2 and parts[0] == "joint":
+        rest = parts[2:]
+        return f"joint group {parts[1]!r}" + (f", field '{'.'.join(rest)}'" if rest else "")
     if not parts:
         return "top level"
     return "field '" + ".".join(p for p in parts if not p.startswith("function-")) + "'"

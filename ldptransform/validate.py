@@ -41,6 +41,7 @@ from .release import (
     plan_columns,
     privatize,
 )
+from .release.columns import input_plans
 from .results import (
     CalibrationEntry,
     CalibrationResult,
@@ -226,9 +227,9 @@ def _true_stats(raw: Path, manifest: Manifest, dists: dict[str, Distribution] | 
     # missing: as-answer leaves a missing value NaN: means and distributions are among rows with a value
     present = {p.rc.name: 0 for p in plans if p.rc.type != "categorical"}
     n = 0
-    for batch in src.batches([p.rc.name for p in plans], 65536):
+    for batch in src.batches([m.rc.name for m in input_plans(plans)], 65536):
         for p in plans:
-            name, v = p.rc.name, batch.column(p.rc.name)
+            name, v = p.rc.name, p.values(batch)  # a joint group: its members' columns (its product codes)
             if p.rc.type == "categorical":
                 counts[name] += np.bincount(encode_categorical(v, p, n), minlength=counts[name].size)
                 continue

@@ -9,6 +9,7 @@ import pyarrow as pa
 
 from ..errors import DataError, PolicyError
 from ..keys import SecretKey
+from ..joint import joint_entry
 from ..manifest import ColumnEntry, OutputColumn, field_metadata
 from ..policy import LoadedPolicy, ResolvedColumn
 from ..random.bits import KeyedStream, SubjectPRF
@@ -40,6 +41,9 @@ def _share(count: int, rows: int) -> str:
 def counts_text(plan: ColumnPlan, rows: int) -> str | None:
     """How many of the column's values were changed before randomizing (steward-only: these
     counts depend on the data), e.g. ``age: 1500 clipped high (15.0%)``; None when none was."""
+    if plan.members is not None:
+        texts = [t for t in (counts_text(m, rows) for m in plan.members) if t is not None]
+        return "; ".join(texts) if texts else None
     d, rc = plan.diag, plan.rc
     parts = []
     for count, what, note in ((d.clipped_low, "clipped low", ""), (d.clipped_high, "clipped high", ""),
@@ -57,6 +61,8 @@ def column_warnings(plan: ColumnPlan, rows: int) -> list[str]:
     WARN_SHARE of the rows (clipped into the bounds, missing values filled, categories not in
     the domain), each saying what to do.  Only counts and the policy's own values (bounds, fill,
     category names) appear, never a value of the data."""
+    if plan.members is not None:
+        return [w for m in plan.members for w in column_warnings(m, rows)]
     d, rc, name = plan.diag, plan.rc, plan.rc.name
     limit = WARN_SHARE * rows
     out = []
@@ -98,6 +104,28 @@ class ColumnPlan:
     memo_offset: SubjectPRF | None = None  # memoize on a numeric column: per-subject offset of the coarse rounding
     layer_stream: KeyedStream | None = None  # memoize with rerandomize_epsilon: the second layer's fresh words
     placeholder_stream: KeyedStream | None = None  # --allow-partial: the placeholder values of held-back rows
+    members: list[ColumnPlan] | None = None  # a joint group: its member columns' plans (encoding, diagnostics)
+
+    def values(self, batch: pa.RecordBatch) -> pa.Array:
+        """The input values this plan encodes: its column of ``batch``; for a joint group, its members'
+        columns as the fields of one struct array (``encode`` combines their codes)."""
+        if self.members is None:
+            return batch.column(self.rc.name)
+        arrays = [batch.column(m.rc.name) for m in self.members]
+        arrays = [a.combine_chunks() if isinstance(a, pa.ChunkedArray) else a for a in arrays]
+        return pa.StructArray.from_arrays(arrays, names=[m.rc.name for m in self.members])
+
+    def sum_member_diagnostics(self) -> None:
+        """A joint group's diagnostics: the sums of its members' (which keep their own)."""
+        if self.members is None:
+            return
+        totals = [m.diag.as_dict() for m in self.members]
+        self.diag = ColumnDiagnostics(**{k: sum(t[k] for t in totals) for k in totals[0]})
+
+
+def input_plans(plans: list[ColumnPlan]) -> list[ColumnPlan]:
+    """The plans of input columns: a joint group's members in its place (checks of input columns)."""
+    return [m for p in plans for m in (p.members or [p])]
 
 
 
@@ -110,7 +138,7 @@ def plan_columns(policy: LoadedPolicy, input_columns: list[str], source: str) ->
         raise DataError(f"policy {policy.source}, field 'subject_key': column {subject!r} is not a column of input "
                         f"{source} (its columns: {', '.join(map(repr, input_columns))}). Name the input column that "
                         "identifies a person, or remove subject_key and memoize from the policy.")
-    absent = [n for n in by_name if n not in input_columns]
+    absent = [n for n, rc in by_name.items() if n not in input_columns and rc.members is None]
     if absent:
         raise DataError(f"the policy names column(s) {', '.join(map(repr, absent))} that input {source} does not have "
                         f"(its columns: {', '.join(map(repr, input_columns))}). Fix the names in the policy or "
@@ -120,9 +148,17 @@ def plan_columns(policy: LoadedPolicy, input_columns: list[str], source: str) ->
         raise DataError(f"input {source} has column(s) {', '.join(map(repr, unlisted))} that the policy does not "
                         "name. Add each one to the policy (type: drop to leave it out), or set unlisted: drop.")
     plans: list[ColumnPlan] = []
+    groups = {rc.name: rc for rc in policy.columns if rc.members is not None}
     for name in input_columns:
         rc = by_name.get(name)
         if rc is None or rc.type == "drop" or name == subject:
+            continue
+        if rc.group is not None:   # a joint group's member: the group's plan, at its first member's place
+            g = groups.pop(rc.group, None)
+            if g is not None:
+                assert g.mechanism is not None and g.members is not None
+                plans.append(ColumnPlan(g, g.mechanism.output_fields(g.name),
+                                        members=[ColumnPlan(m, []) for m in g.members]))
             continue
         if rc.type == "public":
             plans.append(ColumnPlan(rc, []))  # fields filled from the input schema
@@ -190,7 +226,7 @@ def attach_randomness(plans: list[ColumnPlan], policy: LoadedPolicy, key: Secret
 
 def read_columns(plans: list[ColumnPlan], policy: LoadedPolicy) -> tuple[list[str], str | None]:
     """The input columns a release reads, and the subject column (only with memoized columns)."""
-    read_cols = [p.rc.name for p in plans]
+    read_cols = [p.rc.name for p in input_plans(plans)]
     subject_key = policy.policy.subject_key if any(p.memo is not None for p in plans) else None
     if subject_key is not None:
         read_cols.append(subject_key)
@@ -210,6 +246,9 @@ def column_entries(plans: list[ColumnPlan], report_rate: float = 1.0) -> list[Co
         assert m is not None and rc.type != "drop"  # plan_columns leaves dropped columns out
         outs = [OutputColumn(name=f.name, dtype=str(f.type), meaning=m.output_meaning(f.name))
                 for f in p.fields]
+        if rc.members is not None:
+            out.append(joint_entry(rc, outs, report_rate))
+            continue
         cfg = rc.config
         out.append(ColumnEntry(
             name=rc.name, type=rc.type, mechanism=m.to_spec(), chosen_because=rc.chosen_because,

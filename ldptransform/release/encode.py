@@ -106,7 +106,10 @@ def _label_codes(strings: pa.Array, labels: list[str]) -> tuple[np.ndarray, np.n
 
 
 def encode_categorical(values: pa.Array, plan: ColumnPlan, row0: int) -> np.ndarray:
-    """Policy labels -> integer codes; missing/unknown handled as the policy says."""
+    """Policy labels -> integer codes; missing/unknown handled as the policy says (a joint group:
+    its product codes, ``encode_joint``)."""
+    if plan.members is not None:
+        return encode_joint(values, plan, row0)
     rc = plan.rc
     name = rc.name
     if rc.type == "binned":
@@ -219,8 +222,24 @@ def encode_binned(values: pa.Array, plan: ColumnPlan, row0: int) -> np.ndarray:
     return codes
 
 
+def encode_joint(values: pa.Array, plan: ColumnPlan, row0: int) -> np.ndarray:
+    """A joint group's product codes: each member encoded as on its own (its diagnostics counted), the
+    codes combined in mixed radix, the first member most significant (``joint.combine_codes``).
+    ``values`` is the struct array of the members' columns (``ColumnPlan.values``)."""
+    from ..joint import combine_codes
+
+    assert plan.members is not None
+    if isinstance(values, pa.ChunkedArray):
+        values = values.combine_chunks()
+    codes = [encode(values.field(i), m, row0) for i, m in enumerate(plan.members)]
+    plan.sum_member_diagnostics()
+    return combine_codes(codes, [len(m.rc.domain_labels) for m in plan.members])
+
+
 def encode(values: pa.Array, plan: ColumnPlan, row0: int) -> np.ndarray:
     """A privatized column's values as its mechanism takes them (codes, bin indices or numbers)."""
+    if plan.members is not None:
+        return encode_joint(values, plan, row0)
     if plan.rc.type == "categorical":
         return encode_categorical(values, plan, row0)
     if plan.rc.type == "binned":

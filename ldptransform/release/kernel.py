@@ -105,7 +105,7 @@ def privatize_batch(batch: pa.RecordBatch, row0: int, plans: list[ColumnPlan], s
     subjects = subject_bytes(batch.column(subject_key), subject_key, row0) if subject_key is not None else None
     codes: dict[str, np.ndarray] | None = {} if observe is not None else None
     for p in plans:
-        values = batch.column(p.rc.name)
+        values = p.values(batch)  # a joint group: its members' columns (ColumnPlan.values)
         if p.rc.type == "public":
             values = rebuild_dictionary(values)
             check_text(values, p.rc.name, row0)

@@ -12,7 +12,7 @@ import pyarrow as pa
 from ..errors import DataError, PolicyError, UsageError
 from ..io import TableSource
 from ..policy import LoadedPolicy
-from .columns import ColumnPlan
+from .columns import ColumnPlan, input_plans
 from .options import ReleaseOptions
 
 
@@ -25,7 +25,7 @@ def open_source(opts: ReleaseOptions, policy: LoadedPolicy) -> Any:
         from ..memory import MemorySource
 
         names = set(policy.by_name)
-        read = {rc.name for rc in policy.columns if rc.type != "drop"}
+        read = {rc.name for rc in policy.columns if rc.type != "drop" and rc.members is None}
         if policy.policy.subject_key is not None:
             names.add(policy.policy.subject_key)
             read.add(policy.policy.subject_key)
@@ -73,7 +73,7 @@ def check_csv_markers(policy: LoadedPolicy, src: Any, plans: list[ColumnPlan]) -
     if src.format != "csv":
         return
     nulls = set(policy.policy.input.csv_null_values)
-    for p in plans:
+    for p in input_plans(plans):
         clash = [lab for lab in p.rc.labels if lab in nulls]
         if clash:
             raise PolicyError(f"policy {policy.source}: column {p.rc.name!r}, field 'categories': "
@@ -84,7 +84,7 @@ def check_csv_markers(policy: LoadedPolicy, src: Any, plans: list[ColumnPlan]) -
 
 def dictionary_columns(src: Any, plans: list[ColumnPlan]) -> list[str]:
     """Categorical text columns read dictionary-encoded (Parquet), so each label is looked up once."""
-    names = [p.rc.name for p in plans if p.rc.type == "categorical"]
+    names = [p.rc.name for p in input_plans(plans) if p.rc.type == "categorical"]
     return src.dictionary_columns(names) if hasattr(src, "dictionary_columns") else []
 
 
@@ -116,7 +116,7 @@ def check_input_types(src: Any, plans: list[ColumnPlan], policy: LoadedPolicy, o
         return  # CSV input is read as text
     location = source_location(src, opts)
     subject = policy.policy.subject_key
-    names = [(p.rc.name, p.rc.type) for p in plans] + ([(subject, "subject")] if subject else [])
+    names = [(p.rc.name, p.rc.type) for p in input_plans(plans)] + ([(subject, "subject")] if subject else [])
     for name, kind in names:
         if name not in schema.names:
             continue
