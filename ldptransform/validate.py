@@ -451,7 +451,9 @@ def _check_quality(manifest: Manifest, rows: int, rep: _Checks) -> None:
     for c in manifest.columns:
         if c.mechanism is None or c.name not in configs:
             continue
-        rc = ResolvedColumn(c.name, c.type, configs[c.name].config, mechanism=mech.build(c.mechanism))
+        # a joint group's entry (type "joint") is judged as the categorical column of its cells (plan.needs_of)
+        rc = ResolvedColumn(c.name, c.type, configs[c.name].config,  # type: ignore[arg-type]
+                            mechanism=mech.build(c.mechanism))
         for st in column_statistics(rc, rows, rate, default):
             target = st.get("target_se")
             rel = st.get("target_relative_se")

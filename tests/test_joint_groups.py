@@ -1,3 +1,4 @@
+# mypy: disable-error-code="operator,index,misc,arg-type,comparison-overlap"
 """Joint groups (policy section ``joint``): several categorical or binned columns randomized as one
 report over their product domain at the sum of their eps (docs/formulas.md section 22).
 
