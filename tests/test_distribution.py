@@ -34,6 +34,7 @@ from ldptransform.mechanisms import (
     NUMERIC,
     OLH,
     OUE,
+    QUANTILE,
     DistributionMechanism,
     Hierarchy,
     SquareWave,
@@ -82,7 +83,7 @@ def assert_eps_ldp(Q: np.ndarray, eps: float) -> float:
 
 def test_registry_and_exports():
     assert DISTRIBUTION == ("square-wave", "hierarchy")
-    assert set(registry()) == set(CATEGORICAL) | set(NUMERIC) | set(DISTRIBUTION)
+    assert set(registry()) == set(CATEGORICAL) | set(NUMERIC) | set(DISTRIBUTION) | set(QUANTILE)
     assert {registry()[n].kind for n in DISTRIBUTION} == {"distribution"}
     assert DEFAULT_DISTRIBUTION in DISTRIBUTION
 
